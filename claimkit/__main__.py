@@ -1,0 +1,3 @@
+from claimkit.cli import run
+
+run()

@@ -1,0 +1,71 @@
+"""The ``claimkit`` command line: parse, call the Python API, print.
+
+Each area of the tool registers its own sub-commands from a module of this
+package (``engine``, ``evidence``, ``casework``, ``scale``), so that the
+commands of one area can change without touching the others. Nothing in the
+library imports this package.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+
+from claimkit import __version__
+from claimkit.errors import ClaimkitError
+
+# Modules that provide ``register(subparsers, common)``; a missing module is
+# skipped so that the tool still runs while an area is being built.
+AREAS = ("engine", "evidence", "casework", "scale")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("--home", metavar="DIR",
+                        help="owner profile folder (default: $CLAIMKIT_HOME or ~/.claimkit)")
+    common.add_argument("--debug", action="store_true",
+                        help="show a full traceback on errors")
+    parser = argparse.ArgumentParser(
+        prog="claimkit",
+        description="Mark photos invisibly, examine disputed copies, and hand over "
+                    "evidence that another expert can re-check. Technical evidence, "
+                    "not legal advice.",
+        parents=[common],
+    )
+    parser.add_argument("--version", action="version", version=f"claimkit {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    for name in AREAS:
+        try:
+            module = importlib.import_module(f"claimkit.cli.{name}")
+        except ModuleNotFoundError as exc:
+            if exc.name == f"claimkit.cli.{name}":
+                continue
+            raise
+        module.register(sub, common)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "func", None):
+        parser.print_help()
+        return 2
+    try:
+        code = args.func(args)
+    except ClaimkitError as exc:
+        if args.debug:
+            raise
+        print(f"claimkit: error: {exc.line()}", file=sys.stderr)
+        if exc.hint:
+            print(f"claimkit: hint: {exc.hint}", file=sys.stderr)
+        return exc.exit_code
+    except KeyboardInterrupt:
+        print("claimkit: interrupted", file=sys.stderr)
+        return 130
+    return int(code or 0)
+
+
+def run() -> None:  # pragma: no cover - console entry point
+    sys.exit(main())
