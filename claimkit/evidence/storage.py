@@ -1,0 +1,120 @@
+"""Streaming SHA-256 and crash-safe writes.
+
+Every file claimkit writes as evidence goes through :func:`atomic_write`: the
+bytes go to a temporary name in the same folder, are flushed to the disk, and
+the name is then swapped in one ``rename``. A crash or Ctrl-C leaves either the
+old file or the new one, never half of one.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import tempfile
+from pathlib import Path
+
+from claimkit.errors import InputError
+
+__all__ = ["sha256_file", "sha256_hex", "atomic_write", "fsync_dir", "write_new_file"]
+
+_CHUNK = 1 << 20
+
+
+def sha256_hex(data: bytes) -> str:
+    """Hex SHA-256 of bytes (FIPS 180-4)."""
+    return hashlib.sha256(data).hexdigest()
+
+
+def sha256_file(path: str | os.PathLike) -> str:
+    """Hex SHA-256 of a file, read in 1 MiB pieces so memory stays flat.
+
+    Raises
+    ------
+    InputError
+        When the file cannot be read, naming it and the cause.
+    """
+    h = hashlib.sha256()
+    try:
+        with open(path, "rb") as fh:
+            while True:
+                block = fh.read(_CHUNK)
+                if not block:
+                    break
+                h.update(block)
+    except FileNotFoundError:
+        raise InputError("no such file", path=path) from None
+    except IsADirectoryError:
+        raise InputError("is a folder, not a file", path=path) from None
+    except OSError as exc:
+        raise InputError(f"cannot read: {exc.strerror or exc}", path=path) from None
+    return h.hexdigest()
+
+
+def fsync_dir(path: str | os.PathLike) -> None:
+    """Flush a folder's entry list, so that a rename in it survives a power cut."""
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except OSError:
+        return  # some platforms cannot open folders; the rename is still atomic
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
+
+
+def atomic_write(path: str | os.PathLike, data: bytes, *, mode: int | None = None) -> None:
+    """Write ``data`` to ``path`` all at once: temp file in the same folder, fsync, rename.
+
+    Parameters
+    ----------
+    path : path-like
+        The destination; replaced if it exists.
+    data : bytes
+        The whole content.
+    mode : int, optional
+        Permission bits (e.g. ``0o600`` for key files). Default: ``0o666``
+        less the process umask, as for any new file.
+
+    Raises
+    ------
+    InputError
+        When the folder is missing or not writable, naming the file.
+    """
+    path = Path(path)
+    folder = path.parent if str(path.parent) else Path(".")
+    if mode is None:
+        umask = os.umask(0)
+        os.umask(umask)
+        mode = 0o666 & ~umask
+    try:
+        fd, tmp = tempfile.mkstemp(dir=folder, prefix=f".{path.name}.", suffix=".part")
+    except FileNotFoundError:
+        raise InputError("folder does not exist", path=folder) from None
+    except OSError as exc:
+        raise InputError(f"cannot write: {exc.strerror or exc}", path=path) from None
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.chmod(tmp, mode)
+        os.replace(tmp, path)
+    except BaseException as exc:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        if isinstance(exc, OSError):
+            raise InputError(f"cannot write: {exc.strerror or exc}", path=path) from None
+        raise
+    fsync_dir(folder)
+
+
+def write_new_file(path: str | os.PathLike, data: bytes, *, mode: int | None = None) -> None:
+    """Like :func:`atomic_write`, but refuse to replace an existing file."""
+    path = Path(path)
+    if path.exists():
+        raise InputError("already exists (will not overwrite)", path=path)
+    atomic_write(path, data, mode=mode)
