@@ -1,0 +1,818 @@
+"""Reading and writing photos: bit depth, colour, metadata, orientation, limits.
+
+Everything that touches an image file goes through this module, so that the
+numeric core (:mod:`claimkit.mark`) only ever sees arrays and the rest of the
+tool gets one consistent answer to "what is in this file". Pillow does the
+decoding and encoding; ``tifffile`` (a dependency of scikit-image) is used
+only for 16-bit colour TIFF, which Pillow cannot hold in memory.
+
+What is supported
+-----------------
+* Read: anything Pillow opens. 8-bit grey and colour; 16-bit grey PNG/TIFF;
+  16-bit colour TIFF at full precision (through ``tifffile``). 16-bit colour
+  PNG is read at 8 bits per channel (Pillow's limit) and a note says so.
+  CMYK, YCbCr, palette and 1-bit images are converted to RGB or grey; an
+  alpha channel is kept apart; of an animated or multi-page file the first
+  frame is used and a note says so.
+* Write, by the extension of the output path: JPEG, PNG, TIFF, WebP. 16-bit
+  pixels go to PNG (grey only) and TIFF at 16 bits; JPEG and WebP cannot hold
+  16 bits, so they get the pixels rounded to 8 bits. 16-bit colour PNG is
+  refused (Pillow cannot write it); use ``.tif``.
+* EXIF, ICC profile and XMP are carried over where the output format holds
+  them. The EXIF Orientation tag is applied to the pixels on reading and set
+  to 1 in the carried EXIF, so a reader never rotates twice.
+"""
+
+from __future__ import annotations
+
+import io
+import os
+import secrets
+import threading
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+from PIL import Image, UnidentifiedImageError
+from PIL.PngImagePlugin import PngInfo
+
+from claimkit.errors import InputError
+
+__all__ = [
+    "DEFAULT_MAX_PIXELS",
+    "MIN_SIDE",
+    "Picture",
+    "read_picture",
+    "write_picture",
+    "to_luma",
+    "add_luma_delta",
+    "resolve_max_pixels",
+]
+
+#: Default limit on width × height, a guard against decompression bombs
+#: (a small file that decodes to a huge image). 200 megapixels is well above
+#: any camera sold today; common practice, no source.
+DEFAULT_MAX_PIXELS = 200_000_000
+#: Environment variable that overrides :data:`DEFAULT_MAX_PIXELS`.
+MAX_PIXELS_ENV = "CLAIMKIT_MAX_PIXELS"
+#: Smallest side the engine accepts; enforced by the engine, not here.
+MIN_SIDE = 64
+
+# EXIF tag numbers (EXIF 2.32, CIPA DC-008).
+_ORIENTATION = 0x0112
+_EXIF_IFD = 0x8769
+_GPS_IFD = 0x8825
+_MAKE = 0x010F
+_MODEL = 0x0110
+_DATETIME_ORIGINAL = 0x9003
+_BODY_SERIAL = 0xA431
+# Descriptive IFD0 tags kept when the source is a TIFF, whose IFD0 also holds
+# the image-structure tags (strip offsets, sizes, compression) that would be
+# stale in any other file.
+_DESCRIPTIVE_IFD0 = {
+    0x010E,  # ImageDescription
+    _MAKE,
+    _MODEL,
+    _ORIENTATION,
+    0x011A,  # XResolution
+    0x011B,  # YResolution
+    0x0128,  # ResolutionUnit
+    0x0131,  # Software
+    0x0132,  # DateTime
+    0x013B,  # Artist
+    0x8298,  # Copyright
+    _EXIF_IFD,
+    _GPS_IFD,
+}
+# TIFF tags for what tifffile writes itself (TIFF 6.0; XMP: Adobe XMP part 3;
+# ICC: ICC.1 annex B).
+_TIFF_XMP = 700
+_TIFF_ICC = 34675
+_TIFF_ASCII_TAGS = (0x010E, _MAKE, _MODEL, 0x0131, 0x0132, 0x013B, 0x8298)
+
+_FORMAT_BY_SUFFIX = {
+    ".jpg": "JPEG",
+    ".jpeg": "JPEG",
+    ".png": "PNG",
+    ".tif": "TIFF",
+    ".tiff": "TIFF",
+    ".webp": "WEBP",
+}
+
+# File signatures, used only to tell "damaged image" from "not an image".
+_MAGIC = (b"\xff\xd8\xff", b"\x89PNG\r\n\x1a\n", b"II*\x00", b"MM\x00*", b"GIF8", b"RIFF")
+
+# Pillow's own bomb check reads a process-wide setting during Image.open; we
+# apply our own (configurable) limit instead, so the setting is lifted for
+# the duration of the open, under a lock so that threads do not race on it.
+_PIL_LIMIT_LOCK = threading.Lock()
+
+
+@dataclass
+class Picture:
+    """A decoded photo, upright, with the metadata to carry over.
+
+    Attributes
+    ----------
+    path : Path
+        The file it was read from.
+    pixels : ndarray
+        ``(H, W)`` grey or ``(H, W, 3)`` RGB, ``uint8`` or ``uint16``, with the
+        EXIF orientation already applied.
+    bit_depth : int
+        8 or 16, matching ``pixels.dtype``.
+    format : str
+        Pillow's format name of the source, e.g. ``"JPEG"``.
+    exif : bytes or None
+        Raw EXIF (``Exif\\0\\0`` header included) with Orientation set to 1.
+    icc_profile, xmp : bytes or None
+        The embedded ICC profile and XMP packet, unchanged.
+    alpha : ndarray or None
+        ``(H, W)`` alpha of the same dtype as ``pixels``, upright.
+    capture : dict
+        ``DateTimeOriginal``, ``Make``, ``Model``, ``BodySerialNumber`` from
+        EXIF where present, as strings.
+    notes : list of str
+        What was done to make the file usable (first frame taken, CMYK
+        converted, precision reduced); empty for an ordinary photo.
+    """
+
+    path: Path
+    pixels: np.ndarray
+    bit_depth: int
+    format: str
+    exif: bytes | None = None
+    icc_profile: bytes | None = None
+    xmp: bytes | None = None
+    alpha: np.ndarray | None = None
+    capture: dict = field(default_factory=dict)
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def height(self) -> int:
+        return int(self.pixels.shape[0])
+
+    @property
+    def width(self) -> int:
+        return int(self.pixels.shape[1])
+
+
+def resolve_max_pixels(max_pixels: int | None = None) -> int:
+    """Pixel limit: the argument, else ``$CLAIMKIT_MAX_PIXELS``, else the default."""
+    if max_pixels is None:
+        raw = os.environ.get(MAX_PIXELS_ENV, "").strip()
+        if not raw:
+            return DEFAULT_MAX_PIXELS
+        try:
+            max_pixels = int(raw.replace("_", ""))
+        except ValueError:
+            raise InputError(
+                f"{MAX_PIXELS_ENV}={raw!r} is not a whole number of pixels"
+            ) from None
+    if max_pixels <= 0:
+        raise InputError(f"the pixel limit must be positive, not {max_pixels}")
+    return int(max_pixels)
+
+
+# ---------------------------------------------------------------- reading
+
+
+def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None) -> Picture:
+    """Decode a photo into an upright array plus the metadata to carry over.
+
+    Parameters
+    ----------
+    path : str or path-like
+        The file to read. It is opened read-only and never modified.
+    max_pixels : int, optional
+        Refuse images with more than this many pixels (width × height),
+        checked from the header before any pixel is decoded. Default:
+        ``$CLAIMKIT_MAX_PIXELS`` or :data:`DEFAULT_MAX_PIXELS`.
+
+    Returns
+    -------
+    Picture
+
+    Raises
+    ------
+    claimkit.errors.InputError
+        Missing, unreadable, empty, truncated or non-image file; too many
+        pixels; a pixel layout that cannot be represented (e.g. floating
+        point). The message names the cause; ``.path`` names the file.
+    """
+    path = Path(path)
+    limit = resolve_max_pixels(max_pixels)
+    data = _read_bytes(path)
+    try:
+        with _PIL_LIMIT_LOCK, warnings.catch_warnings():
+            warnings.simplefilter("ignore", Image.DecompressionBombWarning)
+            saved = Image.MAX_IMAGE_PIXELS
+            Image.MAX_IMAGE_PIXELS = None
+            try:
+                im = Image.open(io.BytesIO(data))
+            finally:
+                Image.MAX_IMAGE_PIXELS = saved
+    except UnidentifiedImageError:
+        if data.startswith(_MAGIC):
+            raise InputError("truncated image data (damaged header)", path=path) from None
+        raise InputError("not an image Pillow can read", path=path) from None
+    except (OSError, SyntaxError, ValueError, EOFError) as exc:
+        raise InputError(f"truncated image data ({exc})", path=path) from None
+
+    with im:
+        width, height = im.size
+        if width * height > limit:
+            raise InputError(
+                f"{width}×{height} = {width * height} pixels exceeds the limit of {limit}; "
+                "raise it with --max-pixels",
+                path=path,
+            )
+        notes: list[str] = []
+        frames = int(getattr(im, "n_frames", 1) or 1)
+        if frames > 1:
+            # Image.open leaves the first frame selected.
+            notes.append(f"{frames} frames; the first frame was used")
+        fmt = im.format or "unknown"
+        rawmode = _rawmode(im)  # the tile list is gone once the pixels are loaded
+        try:
+            with warnings.catch_warnings():
+                # "XMP data cannot be read without defusedxml": we keep XMP raw.
+                warnings.simplefilter("ignore", UserWarning)
+                im.load()
+                pixels, alpha, bit_depth, icc_ok = _pixels_from_pillow(im, rawmode, notes, path)
+        except InputError:
+            raise
+        except (OSError, SyntaxError, ValueError, EOFError) as exc:
+            raise InputError(f"truncated image data ({exc})", path=path) from None
+
+        if fmt == "TIFF" and _is_16bit_multichannel_tiff(im):
+            full = _read_tiff16(data)
+            if full is not None:
+                pixels, alpha = full
+                bit_depth = 16
+                notes[:] = [n for n in notes if "8 bits" not in n]
+
+        exif_obj = im.getexif()
+        orientation = int(exif_obj.get(_ORIENTATION, 1) or 1)
+        exif_bytes, capture = _exif_for_copy(exif_obj, source_is_tiff=(fmt == "TIFF"))
+        icc = im.info.get("icc_profile") if icc_ok else None
+        if not icc_ok and im.info.get("icc_profile"):
+            notes.append("the embedded ICC profile was for another colour space and was dropped")
+        xmp = im.info.get("xmp")
+        if xmp is None and fmt == "TIFF":
+            xmp = im.tag_v2.get(_TIFF_XMP) if hasattr(im, "tag_v2") else None
+        if isinstance(xmp, str):
+            xmp = xmp.encode("utf-8")
+
+    pixels = _upright(pixels, orientation)
+    if alpha is not None:
+        alpha = _upright(alpha, orientation)
+    if orientation not in (1, 0) and orientation in _TRANSPOSES:
+        notes.append(f"EXIF orientation {orientation} applied to the pixels")
+    return Picture(
+        path=path,
+        pixels=np.ascontiguousarray(pixels),
+        bit_depth=bit_depth,
+        format=fmt,
+        exif=exif_bytes,
+        icc_profile=icc or None,
+        xmp=bytes(xmp) if xmp else None,
+        alpha=None if alpha is None else np.ascontiguousarray(alpha),
+        capture=capture,
+        notes=notes,
+    )
+
+
+def _read_bytes(path: Path) -> bytes:
+    """Read the whole file once, mapping OS errors to one-line causes."""
+    try:
+        data = path.read_bytes()
+    except FileNotFoundError:
+        raise InputError("no such file", path=path) from None
+    except IsADirectoryError:
+        raise InputError("is a folder, not an image file", path=path) from None
+    except PermissionError:
+        raise InputError("cannot read the file: permission denied", path=path) from None
+    except OSError as exc:
+        raise InputError(f"cannot read the file: {exc.strerror or exc}", path=path) from None
+    if not data:
+        raise InputError("empty file (0 bytes); truncated image data", path=path)
+    return data
+
+
+def _pixels_from_pillow(
+    im: Image.Image, rawmode: str, notes: list[str], path: Path
+) -> tuple[np.ndarray, np.ndarray | None, int, bool]:
+    """Pixels, alpha, bit depth, and whether the embedded ICC still applies."""
+    mode = im.mode
+    if rawmode and ";16" in rawmode and not mode.startswith("I;16"):
+        notes.append(f"{rawmode} data read at 8 bits per channel (Pillow's limit)")
+    if mode in ("I;16", "I;16L", "I;16B", "I;16N"):
+        return np.asarray(im).astype(np.uint16, copy=False), None, 16, True
+    if mode == "I":
+        arr = np.asarray(im)
+        if arr.size and (arr.min() < 0 or arr.max() > 65535):
+            raise InputError("32-bit integer pixels are not supported", path=path)
+        return arr.astype(np.uint16), None, 16, True
+    if mode == "F":
+        raise InputError("floating-point pixels are not supported", path=path)
+    if mode == "1":
+        return np.asarray(im.convert("L")), None, 8, True
+    if mode == "L":
+        return np.asarray(im), None, 8, True
+    if mode == "LA":
+        arr = np.asarray(im)
+        return arr[..., 0], arr[..., 1], 8, True
+    if mode == "RGB":
+        return np.asarray(im), None, 8, True
+    if mode in ("RGBA", "RGBa"):
+        arr = np.asarray(im.convert("RGBA") if mode == "RGBa" else im)
+        return arr[..., :3], arr[..., 3], 8, True
+    if mode in ("P", "PA"):
+        has_alpha = mode == "PA" or "transparency" in im.info
+        arr = np.asarray(im.convert("RGBA" if has_alpha else "RGB"))
+        if has_alpha:
+            return arr[..., :3], arr[..., 3], 8, True
+        return arr, None, 8, True
+    if mode == "CMYK":
+        notes.append("CMYK converted to RGB without colour management")
+        return np.asarray(im.convert("RGB")), None, 8, False
+    if mode == "YCbCr":
+        return np.asarray(im.convert("RGB")), None, 8, True
+    raise InputError(f"pixel mode {mode} is not supported", path=path)
+
+
+def _rawmode(im: Image.Image) -> str:
+    """Pillow's raw (on-disk) pixel layout of the first tile, if known."""
+    tile = getattr(im, "tile", None) or []
+    if not tile:
+        return ""
+    args = tile[0][3]
+    if isinstance(args, tuple):
+        args = args[0] if args else ""
+    return args if isinstance(args, str) else ""
+
+
+def _is_16bit_multichannel_tiff(im: Image.Image) -> bool:
+    tags = getattr(im, "tag_v2", None)
+    if tags is None:
+        return False
+    bits = tags.get(258)
+    bits = tuple(bits) if isinstance(bits, (tuple, list)) else (bits,)
+    return len(bits) >= 2 and all(b == 16 for b in bits)
+
+
+def _read_tiff16(data: bytes) -> tuple[np.ndarray, np.ndarray | None] | None:
+    """Full-precision 16-bit colour TIFF through tifffile; None if it cannot."""
+    try:
+        import tifffile
+    except ImportError:  # pragma: no cover - tifffile ships with scikit-image
+        return None
+    try:
+        with tifffile.TiffFile(io.BytesIO(data)) as tif:
+            page = tif.pages[0]
+            arr = page.asarray()
+            planar_separate = page.planarconfig == 2
+    except Exception:  # noqa: BLE001 - any codec gap falls back to Pillow's 8 bits
+        return None
+    if arr.dtype != np.uint16:
+        return None
+    if arr.ndim == 3 and planar_separate and arr.shape[0] in (2, 3, 4):
+        arr = np.moveaxis(arr, 0, -1)
+    if arr.ndim != 3 or arr.shape[-1] not in (2, 3, 4):
+        return None
+    if arr.shape[-1] == 2:
+        return arr[..., 0], arr[..., 1]
+    if arr.shape[-1] == 4:
+        return arr[..., :3], arr[..., 3]
+    return arr, None
+
+
+# EXIF orientation -> array operation producing the upright picture; the
+# meaning of each value is EXIF 2.32 (CIPA DC-008) §4.6.4, tag 0x0112.
+_TRANSPOSES = {
+    2: lambda a: a[:, ::-1],
+    3: lambda a: a[::-1, ::-1],
+    4: lambda a: a[::-1],
+    5: lambda a: a.swapaxes(0, 1),
+    6: lambda a: np.rot90(a, -1),
+    7: lambda a: np.rot90(a, 2).swapaxes(0, 1),
+    8: lambda a: np.rot90(a, 1),
+}
+
+
+def _upright(arr: np.ndarray, orientation: int) -> np.ndarray:
+    op = _TRANSPOSES.get(orientation)
+    return arr if op is None else op(arr)
+
+
+def _exif_for_copy(exif: Image.Exif, *, source_is_tiff: bool) -> tuple[bytes | None, dict]:
+    """EXIF bytes to write (Orientation 1) and the capture facts."""
+    capture: dict[str, str] = {}
+    if not len(exif):
+        return None, capture
+    try:
+        sub = dict(exif.get_ifd(_EXIF_IFD))
+    except Exception:  # noqa: BLE001 - a broken sub-IFD loses only the capture facts
+        sub = {}
+    for name, tag, src in (
+        ("Make", _MAKE, exif),
+        ("Model", _MODEL, exif),
+        ("DateTimeOriginal", _DATETIME_ORIGINAL, sub),
+        ("BodySerialNumber", _BODY_SERIAL, sub),
+    ):
+        value = src.get(tag)
+        if isinstance(value, bytes):
+            value = value.decode("utf-8", "replace")
+        if value is not None:
+            text = str(value).strip("\x00 ").strip()
+            if text:
+                capture[name] = text
+
+    out = Image.Exif()
+    for tag, value in exif.items():
+        if source_is_tiff and tag not in _DESCRIPTIVE_IFD0:
+            continue
+        if tag in (_EXIF_IFD, _GPS_IFD):
+            try:
+                value = dict(exif.get_ifd(tag))
+            except Exception:  # noqa: BLE001
+                continue
+            if not value:
+                continue
+        out[tag] = value
+    if not len(out):
+        return None, capture
+    if _ORIENTATION in out or any(t == _ORIENTATION for t in exif):
+        out[_ORIENTATION] = 1
+    try:
+        return out.tobytes(), capture
+    except Exception:  # noqa: BLE001 - unserialisable maker tags: carry none rather than fail
+        return None, capture
+
+
+# ---------------------------------------------------------------- writing
+
+
+def write_picture(
+    path: str | os.PathLike,
+    pixels: np.ndarray,
+    *,
+    like: Picture,
+    quality: int = 95,
+    force: bool = False,
+) -> None:
+    """Encode ``pixels`` to ``path`` atomically, with ``like``'s metadata.
+
+    Parameters
+    ----------
+    path : str or path-like
+        Output file; its extension picks the format (``.jpg``, ``.jpeg``,
+        ``.png``, ``.tif``, ``.tiff``, ``.webp``).
+    pixels : ndarray
+        ``(H, W)`` or ``(H, W, 3)``, ``uint8`` or ``uint16``, upright.
+    like : Picture
+        The picture these pixels derive from: its EXIF (Orientation 1), ICC
+        profile, XMP and alpha are written where the format holds them.
+    quality : int, default 95
+        JPEG/WebP quality. At 90 and above JPEG uses 4:4:4 chroma (no
+        subsampling), below it 4:2:0.
+    force : bool, default False
+        Replace an existing file. The original (``like.path``) is never
+        replaced, even with ``force``.
+
+    Raises
+    ------
+    claimkit.errors.InputError
+        Existing output without ``force``; the output is the original;
+        unknown extension; missing folder; no permission; a pixel layout the
+        format cannot hold (16-bit colour PNG).
+
+    Notes
+    -----
+    The file is written under a temporary name in the same folder, flushed to
+    disk (``fsync``) and renamed into place, so a crash or an error leaves
+    either no file or the complete one, never a partial file.
+    """
+    path = Path(path)
+    fmt = _FORMAT_BY_SUFFIX.get(path.suffix.lower())
+    if fmt is None:
+        known = ", ".join(sorted(_FORMAT_BY_SUFFIX))
+        raise InputError(
+            f"unknown output extension {path.suffix or '(none)'!r}; use one of {known}",
+            path=path,
+        )
+    pixels = np.asarray(pixels)
+    if pixels.dtype not in (np.uint8, np.uint16) or pixels.ndim not in (2, 3):
+        raise ValueError(f"pixels must be uint8/uint16 (H,W) or (H,W,3), got {pixels.dtype} "
+                         f"{pixels.shape}")
+    if pixels.ndim == 3 and pixels.shape[2] != 3:
+        raise ValueError(f"colour pixels must have 3 channels, got {pixels.shape[2]}")
+    if _same_file(path, like.path):
+        raise InputError("is the original; refusing to write over it", path=path)
+    if path.exists() and not force:
+        raise InputError("already exists; use --force to replace it", path=path)
+    if not path.parent.is_dir():
+        raise InputError(f"folder {path.parent} does not exist", path=path)
+
+    alpha = like.alpha
+    if alpha is not None and alpha.shape != pixels.shape[:2]:
+        alpha = None  # pixels were resized or cropped; the old alpha no longer fits
+    try:
+        payload = _encode(path, fmt, pixels, alpha, like, quality)
+    except OSError as exc:  # an encoder failure (e.g. a WebP side over 16383 px)
+        raise InputError(f"cannot encode as {fmt}: {exc}", path=path) from None
+    _atomic_write(path, payload, force=force)
+
+
+def _same_file(a: Path, b: Path) -> bool:
+    try:
+        if a.exists() and b.exists():
+            return os.path.samefile(a, b)
+    except OSError:
+        pass
+    return a.resolve() == Path(b).resolve()
+
+
+def _to8(arr: np.ndarray) -> np.ndarray:
+    if arr.dtype == np.uint8:
+        return arr
+    return np.rint(arr.astype(np.float32) / 257.0).clip(0, 255).astype(np.uint8)
+
+
+def _encode(
+    path: Path,
+    fmt: str,
+    pixels: np.ndarray,
+    alpha: np.ndarray | None,
+    like: Picture,
+    quality: int,
+) -> bytes:
+    """The complete file contents, built in memory before anything touches disk."""
+    sixteen = pixels.dtype == np.uint16
+    colour = pixels.ndim == 3
+    if sixteen and fmt == "TIFF" and (colour or alpha is not None):
+        return _encode_tiff16(pixels, alpha, like)
+    if sixteen and fmt == "PNG" and colour:
+        raise InputError(
+            "16-bit colour PNG cannot be written (Pillow's limit); use .tif to keep 16 bits "
+            "or convert to 8 bits",
+            path=path,
+        )
+    if sixteen and (fmt in ("JPEG", "WEBP")):
+        pixels = _to8(pixels)  # these formats hold 8 bits per channel only
+        sixteen = False
+    if alpha is not None:
+        if sixteen:
+            # Pillow has no 16-bit grey+alpha mode; keep the 16-bit grey and
+            # say so rather than reduce it silently.
+            raise InputError(
+                "16-bit grey with transparency cannot be written as PNG; use .tif",
+                path=path,
+            )
+        alpha = _to8(alpha)
+
+    if sixteen:
+        im = Image.fromarray(pixels.astype("<u2"), mode=None)  # I;16
+    elif alpha is not None and fmt != "JPEG":
+        stacked = np.dstack([pixels, alpha])
+        im = Image.fromarray(np.ascontiguousarray(stacked), "RGBA" if colour else "LA")
+    else:
+        im = Image.fromarray(np.ascontiguousarray(pixels), "RGB" if colour else "L")
+    if fmt == "WEBP" and im.mode == "L":
+        im = im.convert("RGB")  # WebP has no grey mode
+    if fmt == "WEBP" and im.mode == "LA":
+        im = im.convert("RGBA")
+
+    kw: dict = {}
+    if like.icc_profile and _icc_fits(like.icc_profile, grey=im.mode in ("L", "LA", "I;16")):
+        kw["icc_profile"] = like.icc_profile
+    if like.exif:
+        kw["exif"] = like.exif
+    if fmt == "JPEG":
+        kw.update(quality=int(quality), subsampling=0 if quality >= 90 else 2, optimize=True)
+        if like.xmp:
+            kw["xmp"] = like.xmp
+    elif fmt == "PNG":
+        if like.xmp:
+            info = PngInfo()
+            info.add_itxt("XML:com.adobe.xmp", like.xmp.decode("utf-8", "replace"), zip=False)
+            kw["pnginfo"] = info
+    elif fmt == "TIFF":
+        # Uncompressed on purpose: Pillow's libtiff path (used for any
+        # compression) cannot write the EXIF sub-IFD, its own writer can.
+        if like.xmp:
+            # Pillow writes either ``tiffinfo`` or ``exif``, not both, so the
+            # XMP tag goes into the same tag set as the EXIF.
+            tags = Image.Exif()
+            if like.exif:
+                tags.load(like.exif)
+            tags[_TIFF_XMP] = like.xmp
+            kw["exif"] = tags
+    elif fmt == "WEBP":
+        kw.update(quality=int(quality), method=4)
+        if like.xmp:
+            kw["xmp"] = like.xmp
+    buf = io.BytesIO()
+    im.save(buf, format=fmt, **kw)
+    return buf.getvalue()
+
+
+def _icc_fits(icc: bytes, *, grey: bool) -> bool:
+    """Whether a profile describes grey or RGB data as the image holds.
+
+    ICC.1:2022 §7.2.6: bytes 16..19 of the header name the data colour space.
+    A grey profile on RGB pixels (or the reverse) makes readers misrender or
+    reject the file, so such a profile is left out.
+    """
+    space = icc[16:20] if len(icc) >= 20 else b""
+    return space == (b"GRAY" if grey else b"RGB ")
+
+
+def _encode_tiff16(pixels: np.ndarray, alpha: np.ndarray | None, like: Picture) -> bytes:
+    """16-bit TIFF with alpha or colour, which Pillow cannot build, via tifffile.
+
+    ICC and XMP are written as TIFF tags, and the descriptive EXIF fields of
+    IFD0 (Make, Model, Artist, Copyright, ...) as plain TIFF tags. The EXIF
+    sub-IFD (e.g. DateTimeOriginal) is not written: tifffile has no way to
+    add one.
+    """
+    import tifffile
+
+    data = pixels
+    extrasamples = None
+    if alpha is not None:
+        data = np.dstack([pixels, alpha.astype(np.uint16)])
+        extrasamples = [2]  # unassociated alpha (TIFF 6.0, ExtraSamples)
+    extratags = []
+    if like.icc_profile and _icc_fits(like.icc_profile, grey=pixels.ndim == 2):
+        extratags.append((_TIFF_ICC, "B", len(like.icc_profile), like.icc_profile, True))
+    if like.xmp:
+        extratags.append((_TIFF_XMP, "B", len(like.xmp), like.xmp, True))
+    if like.exif:
+        exif = Image.Exif()
+        exif.load(like.exif)
+        for tag in _TIFF_ASCII_TAGS:
+            value = exif.get(tag)
+            if isinstance(value, str) and value:
+                extratags.append((tag, "s", 0, value, True))
+    buf = io.BytesIO()
+    tifffile.imwrite(
+        buf,
+        np.ascontiguousarray(data),
+        photometric="rgb" if pixels.ndim == 3 else "minisblack",
+        planarconfig="contig",
+        extrasamples=extrasamples,
+        compression="zlib",
+        extratags=extratags,
+        metadata=None,
+    )
+    return buf.getvalue()
+
+
+def _atomic_write(path: Path, payload: bytes, *, force: bool) -> None:
+    """Write under a temporary name in the same folder, fsync, then rename."""
+    tmp = path.parent / f".{path.name}.{secrets.token_hex(6)}.partial"
+    try:
+        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
+    except PermissionError:
+        raise InputError(
+            f"cannot write in {path.parent}: permission denied", path=path
+        ) from None
+    except OSError as exc:
+        raise InputError(f"cannot write: {exc.strerror or exc}", path=path) from None
+    try:
+        with os.fdopen(fd, "wb") as f:
+            f.write(payload)
+            f.flush()
+            os.fsync(f.fileno())
+        if force:
+            os.replace(tmp, path)
+        else:
+            # A hard link fails if the name appeared meanwhile, so a file that
+            # another process created after our check is never replaced.
+            try:
+                os.link(tmp, path)
+            except FileExistsError:
+                raise InputError("already exists; use --force to replace it", path=path) from None
+            except OSError:
+                if path.exists():
+                    raise InputError(
+                        "already exists; use --force to replace it", path=path
+                    ) from None
+                os.replace(tmp, path)  # file system without hard links
+    except OSError as exc:
+        raise InputError(f"cannot write: {exc.strerror or exc}", path=path) from None
+    finally:
+        try:
+            tmp.unlink()
+        except FileNotFoundError:
+            pass
+    _fsync_dir(path.parent)
+
+
+def _fsync_dir(folder: Path) -> None:
+    """Make the rename itself durable (POSIX); a no-op where unsupported."""
+    try:
+        fd = os.open(folder, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
+
+
+# ---------------------------------------------------------------- pixel helpers
+
+# ITU-R BT.601-7, §2.5.1: E'Y = 0.299 E'R + 0.587 E'G + 0.114 E'B.
+_BT601 = (0.299, 0.587, 0.114)
+
+
+def _scale_of(dtype: np.dtype) -> float:
+    if dtype == np.uint8:
+        return 1.0
+    if dtype == np.uint16:
+        return 257.0  # 65535 / 255: maps 16-bit full scale onto 0..255 exactly
+    raise ValueError(f"pixels must be uint8 or uint16, got {dtype}")
+
+
+def to_luma(pixels: np.ndarray) -> np.ndarray:
+    """Luma on a 0..255 scale, whatever the bit depth.
+
+    Parameters
+    ----------
+    pixels : ndarray
+        ``(H, W)`` grey or ``(H, W, 3)`` RGB, ``uint8`` or ``uint16``.
+
+    Returns
+    -------
+    ndarray
+        ``float32 (H, W)``; 16-bit values are divided by 257, colour is
+        weighted 0.299 R + 0.587 G + 0.114 B.
+
+    References
+    ----------
+    .. [1] ITU-R Recommendation BT.601-7, "Studio encoding parameters of
+       digital television for standard 4:3 and wide-screen 16:9 aspect
+       ratios", 2011, §2.5.1.
+    """
+    pixels = np.asarray(pixels)
+    scale = _scale_of(pixels.dtype)
+    if pixels.ndim == 2:
+        luma = pixels.astype(np.float32)
+    elif pixels.ndim == 3 and pixels.shape[2] == 3:
+        luma = np.zeros(pixels.shape[:2], np.float32)
+        for c, w in enumerate(_BT601):
+            luma += np.float32(w) * pixels[..., c].astype(np.float32)
+    else:
+        raise ValueError(f"expected (H, W) or (H, W, 3) pixels, got shape {pixels.shape}")
+    if scale != 1.0:
+        luma /= np.float32(scale)
+    return luma
+
+
+def add_luma_delta(pixels: np.ndarray, delta: np.ndarray) -> np.ndarray:
+    """Add a luma change to every channel, keeping dtype.
+
+    Parameters
+    ----------
+    pixels : ndarray
+        ``(H, W)`` or ``(H, W, 3)``, ``uint8`` or ``uint16``.
+    delta : ndarray
+        ``(H, W)`` change in 0..255 units (scaled by 257 for 16-bit).
+
+    Returns
+    -------
+    ndarray
+        Same shape and dtype as ``pixels``: rounded to the nearest level and
+        clipped to the valid range.
+
+    Notes
+    -----
+    Because the BT.601 weights sum to 1, adding the same amount to R, G and B
+    changes luma by exactly that amount and leaves the colour-difference
+    signals unchanged, so hue and saturation are kept. Where a channel is
+    clipped at 0 or full scale the change there is smaller than asked.
+    """
+    pixels = np.asarray(pixels)
+    scale = _scale_of(pixels.dtype)
+    delta = np.asarray(delta, dtype=np.float32)
+    if delta.shape != pixels.shape[:2]:
+        raise ValueError(f"delta shape {delta.shape} does not match pixels {pixels.shape[:2]}")
+    top = np.float32(np.iinfo(pixels.dtype).max)
+    step = delta * np.float32(scale) if scale != 1.0 else delta
+    out = np.empty_like(pixels)
+    planes = [slice(None)] if pixels.ndim == 2 else range(pixels.shape[2])
+    for c in planes:
+        idx = (Ellipsis,) if pixels.ndim == 2 else (Ellipsis, c)
+        # one channel at a time keeps peak memory to one float plane
+        plane = pixels[idx].astype(np.float32)
+        plane += step
+        np.rint(plane, out=plane)
+        np.clip(plane, 0, top, out=plane)
+        out[idx] = plane.astype(pixels.dtype)
+    return out
