@@ -682,6 +682,41 @@ class Profile:
                         self._db.execute("UPDATE meta SET value = ? WHERE key = ?", (v, k))
         return written
 
+    # ----------------------------------------------------------------- stamps, checks
+    def stamp_request(self, work_ids: list[str] | None = None):
+        """Request a timestamp over the Merkle root of these works (default: unstamped ones).
+
+        See :func:`claimkit.evidence.stamping.request_stamp`.
+        """
+        from claimkit.evidence.stamping import request_stamp
+        return request_stamp(self, work_ids)
+
+    def stamp_attach(self, tsr: bytes, tsa_cert_pem: bytes, **kw):
+        """Check a timestamp response against its request and store it.
+
+        See :func:`claimkit.evidence.stamping.attach_stamp`.
+        """
+        from claimkit.evidence.stamping import attach_stamp
+        return attach_stamp(self, tsr, tsa_cert_pem, **kw)
+
+    def check_work(self, work_id: str):
+        """Re-check a work: signature, registry agreement, each token and inclusion proof."""
+        from claimkit.evidence.checks import check_work
+        work = self.work(work_id)
+        if work is None:
+            raise InputError(f"no work {work_id} in this profile")
+        return check_work(self, work)
+
+    def audit(self):
+        """Verify the custody log and cross-check every record and token against it."""
+        from claimkit.evidence.checks import audit_profile
+        return audit_profile(self)
+
+    def disclose(self, work_id: str, out: Path) -> Path:
+        """Write the key disclosure for one work (see :mod:`claimkit.evidence.disclose`)."""
+        from claimkit.evidence.disclose import write_disclosure
+        return write_disclosure(self, work_id, out)
+
     # ----------------------------------------------------------------- internals
     def _meta(self, key: str) -> str:
         row = self._db.execute("SELECT value FROM meta WHERE key = ?", (key,)).fetchone()

@@ -1,0 +1,308 @@
+"""Commands of the evidence layer: init, works, stamp, log, disclose, key."""
+
+from __future__ import annotations
+
+import argparse
+import base64
+from pathlib import Path
+
+from claimkit.cli.common import home_dir, passphrase, print_json
+from claimkit.errors import CheckFailed, InputError
+
+CAUTION = "Technical evidence, not legal advice; rely on counsel and the local law."
+
+
+def _open(args, *, secrets: bool):
+    from claimkit.evidence.profile import Profile
+
+    home = home_dir(args)
+    if secrets:
+        return Profile.open(home, passphrase())
+    return Profile.open_public(home)
+
+
+def _work_id(profile, text: str) -> str:
+    wid = text.strip().upper()
+    if profile.work(wid) is None:
+        raise InputError(f"no work {text} in the profile at {profile.home}")
+    return wid
+
+
+def _read(path: str) -> bytes:
+    try:
+        return Path(path).read_bytes()
+    except FileNotFoundError:
+        raise InputError("no such file", path=path) from None
+    except OSError as exc:
+        raise InputError(f"cannot read: {exc.strerror}", path=path) from None
+
+
+# --------------------------------------------------------------------------- init
+
+def cmd_init(args) -> int:
+    from claimkit.evidence.profile import Profile
+
+    home = home_dir(args)
+    with Profile.create(home, args.owner, passphrase(confirm=True)) as p:
+        info = {"home": str(p.home), "owner": p.owner,
+                "public_key_sha256": p.public_key_fingerprint,
+                "owner_tag": f"{p.owner_tag:04X}"}
+    if args.json:
+        print_json(info)
+    else:
+        print(f"profile created for {info['owner']} at {info['home']}")
+        print(f"public key SHA-256: {info['public_key_sha256']}")
+        print(f"owner tag: {info['owner_tag']}")
+        print("Keep the passphrase safe: without it the keys cannot be recovered. "
+              "Publish the key fingerprint somewhere you control.")
+    return 0
+
+
+# --------------------------------------------------------------------------- works
+
+def _stamp_summary(profile) -> dict[str, str]:
+    out: dict[str, str] = {}
+    for work_id, gen_time in profile.db.execute(
+            "SELECT s.work_id, MIN(t.gen_time) FROM work_stamps s "
+            "JOIN tokens t ON t.token_id = s.token_id GROUP BY s.work_id"):
+        out[work_id] = gen_time
+    return out
+
+
+def cmd_works(args) -> int:
+    with _open(args, secrets=False) as p:
+        stamped = _stamp_summary(p)
+        works = p.works()
+        for w in works:
+            r = w.record
+            row = {"work_id": w.work_id, "serial": w.serial,
+                   "registered": r.get("registered", {}).get("time"),
+                   "original": r.get("original", {}).get("name"),
+                   "marked": r.get("marked", {}).get("name"),
+                   "sha256_marked": r.get("marked", {}).get("sha256"),
+                   "stamped": stamped.get(w.work_id)}
+            if args.json:
+                print_json(row)
+            else:
+                when = row["stamped"] or "not stamped"
+                print(f"{w.work_id}  {row['registered'][:19]}Z  {row['original']} -> "
+                      f"{row['marked']}  [{when}]")
+        if not works and not args.json:
+            print(f"no works registered in {p.home}")
+    return 0
+
+
+def cmd_works_show(args) -> int:
+    with _open(args, secrets=False) as p:
+        wid = _work_id(p, args.work_id)
+        work = p.work(wid)
+        status = p.check_work(wid)
+    problems = status.all_problems()
+    if args.json:
+        print_json({"work_id": wid, "ok": status.ok, "signature_ok": status.signature_ok,
+                    "signature": base64.b64encode(work.signature).decode(),
+                    "record_sha256": work.record_sha256, "record": work.record,
+                    "stamps": [s.as_dict() for s in status.stamps], "problems": problems})
+    else:
+        r = work.record
+        print(f"work {wid} (serial {work.serial})")
+        print(f"  owner:        {r.get('owner', {}).get('name')} "
+              f"(key {r.get('owner', {}).get('public_key_sha256', '')[:16]}...)")
+        print(f"  original:     {r.get('original', {}).get('name')}  "
+              f"sha256 {r.get('original', {}).get('sha256')}")
+        print(f"  marked:       {r.get('marked', {}).get('name')}  "
+              f"sha256 {r.get('marked', {}).get('sha256')}")
+        print(f"  fingerprint:  {r.get('fingerprint')}")
+        print(f"  registered:   {r.get('registered', {}).get('time')} (system clock)")
+        cap = r.get("capture") or {}
+        if cap:
+            print("  capture:      " + ", ".join(f"{k}={v}" for k, v in sorted(cap.items())))
+        print(f"  record:       sha256 {work.record_sha256}")
+        print("  signature:    " + ("valid (Ed25519)" if status.signature_ok else
+                                    "INVALID: the record was altered"))
+        if not status.stamps:
+            print("  timestamps:   none (run claimkit stamp request)")
+        for s in status.stamps:
+            verdict = "valid" if s.ok else "INVALID: " + "; ".join(s.problems)
+            print(f"  timestamp:    {s.token_id} {s.gen_time} by {s.tsa_name} "
+                  f"(leaf {s.leaf_index + 1} of {s.tree_size}): {verdict}")
+        for prob in status.problems:
+            if "signature" not in prob:
+                print(f"  problem:      {prob}")
+    return 0 if status.ok else 1
+
+
+# --------------------------------------------------------------------------- stamp
+
+def cmd_stamp_request(args) -> int:
+    from claimkit.evidence.storage import write_new_file
+
+    out = Path(args.out)
+    if out.exists():
+        raise InputError("already exists (will not overwrite)", path=out)
+    with _open(args, secrets=True) as p:
+        ids = [_work_id(p, w) for w in args.works]
+        req = p.stamp_request(ids or None)
+        write_new_file(out, req.tsq)
+    if args.json:
+        print_json({"request_id": req.request_id, "out": str(out), "merkle_root": req.root,
+                    "nonce": req.nonce, "works": req.work_ids})
+    else:
+        print(f"request {req.request_id} for {len(req.work_ids)} work(s) written to {out}")
+        print(f"Merkle root (SHA-256, RFC 6962): {req.root}")
+        print(f"send it to a timestamp authority, then: claimkit stamp attach RESPONSE.tsr "
+              f"--tsa-cert TSA.pem")
+    return 0
+
+
+def cmd_stamp_attach(args) -> int:
+    from claimkit.evidence import timestamp
+    from claimkit.evidence.stamping import latest_pending_tsq
+    from claimkit.evidence.storage import write_new_file
+
+    cert = _read(args.tsa_cert)
+    tsq = _read(args.request) if args.request else None
+    with _open(args, secrets=True) as p:
+        if args.tsa_url:
+            if Path(args.tsr).exists():
+                raise InputError("already exists (will not overwrite the response file)",
+                                 path=args.tsr)
+            if tsq is None:
+                tsq = latest_pending_tsq(p)
+            tsr = timestamp.send_request(args.tsa_url, tsq)
+            write_new_file(args.tsr, tsr)  # keep what the TSA said, accepted or not
+        else:
+            tsr = _read(args.tsr)
+        res = p.stamp_attach(tsr, cert, tsq=tsq, tsr_path=args.tsr, cert_path=args.tsa_cert)
+    if args.json:
+        print_json({"token_id": res.token_id, "request_id": res.request_id,
+                    "gen_time": res.gen_time, "tsa": res.tsa_name, "merkle_root": res.root,
+                    "works": res.work_ids})
+    else:
+        print(f"token {res.token_id} attached: {len(res.work_ids)} work(s) stamped at "
+              f"{res.gen_time} by {res.tsa_name}")
+    return 0
+
+
+# --------------------------------------------------------------------------- log
+
+def cmd_log_verify(args) -> int:
+    with _open(args, secrets=False) as p:
+        report = p.audit()
+    if args.json:
+        print_json(report.as_dict())
+        return 0 if report.ok else 1
+    for line in report.lines():
+        print(f"{report.log.path}: {line}")
+    if report.pending_entries:
+        print(f"note: {report.pending_entries} entry(ies) recorded in the registry wait to be "
+              "written to the log (an interrupted run); the next command with the passphrase "
+              "writes them")
+    summary = (f"{report.log.lines} log entries, {report.works} work records, "
+               f"{report.tokens} timestamp tokens checked")
+    if report.ok:
+        print(f"custody log intact: {summary}")
+        return 0
+    print(f"CHECK FAILED: {len(report.lines())} problem(s); {summary}")
+    return 1
+
+
+# --------------------------------------------------------------------------- disclose, key
+
+def cmd_disclose(args) -> int:
+    with _open(args, secrets=True) as p:
+        wid = _work_id(p, args.work_id)
+        out = p.disclose(wid, Path(args.out))
+    if args.json:
+        print_json({"work_id": wid, "out": str(out)})
+    else:
+        print(f"disclosure for {wid} written to {out}")
+        print("it holds the detection seed, this work's payload tag and commitment opening, the "
+              "public key and the signed record; never the signing key or the marking secret")
+        print(CAUTION)
+    return 0
+
+
+def cmd_key_export(args) -> int:
+    from claimkit.evidence.storage import atomic_write
+
+    out = Path(args.out)
+    if out.exists() and not args.force:
+        raise InputError("already exists (use --force to replace)", path=out)
+    with _open(args, secrets=False) as p:
+        atomic_write(out, p.public_key_pem())
+        fp = p.public_key_fingerprint
+    if args.json:
+        print_json({"out": str(out), "public_key_sha256": fp})
+    else:
+        print(f"public key written to {out} (SHA-256 of the raw key: {fp})")
+    return 0
+
+
+# --------------------------------------------------------------------------- registration
+
+def register(sub, common) -> None:
+    def add(parent, name, help_, func=None, **kw):
+        p = parent.add_parser(name, parents=[common], help=help_, description=help_, **kw)
+        if func:
+            p.set_defaults(func=func)
+        return p
+
+    def json_opt(p):
+        p.add_argument("--json", action="store_true", help="one JSON object per line")
+
+    p = add(sub, "init", "create the owner profile (Ed25519 key, marking secret, registry)",
+            cmd_init)
+    p.add_argument("--owner", required=True, metavar="NAME", help="the owner's name")
+    json_opt(p)
+
+    p = add(sub, "works", "list registered works (or: works show ID)", cmd_works)
+    json_opt(p)
+    wsub = p.add_subparsers(dest="works_command", metavar="show")
+    q = add(wsub, "show", "show one work record and check its signature and timestamps",
+            cmd_works_show)
+    q.add_argument("work_id", metavar="ID")
+    json_opt(q)
+
+    p = add(sub, "stamp", "RFC 3161 trusted timestamps for work records")
+    ssub = p.add_subparsers(dest="stamp_command", metavar="{request,attach}", required=True)
+    q = add(ssub, "request", "write a TimeStampReq over the Merkle root of work records",
+            cmd_stamp_request)
+    q.add_argument("works", nargs="*", metavar="WORK", help="work IDs (default: all unstamped)")
+    q.add_argument("--out", required=True, metavar="FILE.tsq")
+    json_opt(q)
+    q = add(ssub, "attach", "check a TimeStampResp against its request and store the token",
+            cmd_stamp_attach)
+    q.add_argument("tsr", metavar="FILE.tsr",
+                   help="the response (with --tsa-url: where to save it)")
+    q.add_argument("--tsa-cert", required=True, metavar="CERT.pem",
+                   help="the certificate to trust: the TSA's own or its CA's")
+    q.add_argument("--tsa-url", metavar="URL", help="send the pending request to this TSA")
+    q.add_argument("--request", metavar="FILE.tsq",
+                   help="the request this answers (default: matched by its digest)")
+    json_opt(q)
+
+    p = add(sub, "log", "the custody log")
+    lsub = p.add_subparsers(dest="log_command", metavar="verify", required=True)
+    q = add(lsub, "verify", "check the custody log chain, every record and every token",
+            cmd_log_verify)
+    json_opt(q)
+
+    p = add(sub, "disclose", "write what an independent expert needs to re-check one work",
+            cmd_disclose, formatter_class=argparse.RawDescriptionHelpFormatter,
+            epilog="Reveals the detection seed, the work's payload tag and commitment opening, "
+                   "the public key and the signed record. Never the signing key, the marking "
+                   "secret or the payload-tag key. " + CAUTION)
+    p.add_argument("work_id", metavar="WORK")
+    p.add_argument("--out", required=True, metavar="DIR")
+    json_opt(p)
+
+    p = add(sub, "key", "the owner's public key")
+    ksub = p.add_subparsers(dest="key_command", metavar="export", required=True)
+    q = add(ksub, "export", "write the Ed25519 public key as PEM", cmd_key_export)
+    q.add_argument("--out", required=True, metavar="FILE.pem")
+    q.add_argument("--force", action="store_true", help="replace an existing file")
+    json_opt(q)
+
+
+__all__ = ["register", "CheckFailed"]
