@@ -67,10 +67,13 @@ class Finding:
     payload_space: int
     payload_bits: list[int] | None
     payload_valid: bool
-    message_psnr_db: float | None
+    message_psnr_db: float | None        # spot estimate vs reference (see _message)
+    message_psnr_raw_db: float | None    # raw correlation map vs reference
+    message_psnr_flat_db: float          # an all-flat guess, for scale
     geometry: dict
     surface: np.ndarray = field(repr=False)      # pilot score (z units) over shifts, best variant
-    recovered: np.ndarray = field(repr=False)    # recovered message, aligned to the reference
+    recovered: np.ndarray = field(repr=False)    # recovered message (spot estimate), aligned
+    recovered_raw: np.ndarray = field(repr=False)  # raw correlation map, aligned
     reference: np.ndarray = field(repr=False)    # reference message template
     decoy_scores: list[float] = field(default_factory=list)
 
@@ -89,9 +92,15 @@ class Finding:
             "hypotheses": self.hypotheses,
             "payload_space": self.payload_space,
             "payload_valid": self.payload_valid,
-            "message_psnr_db": None if self.message_psnr_db is None else round(self.message_psnr_db, 2),
+            "message_psnr_db": _r2(self.message_psnr_db),
+            "message_psnr_raw_db": _r2(self.message_psnr_raw_db),
+            "message_psnr_flat_db": _r2(self.message_psnr_flat_db),
             "geometry": self.geometry,
         }
+
+
+def _r2(v: float | None) -> float | None:
+    return None if v is None else round(float(v), 2)
 
 
 # ---------------------------------------------------------------- preparation
@@ -248,16 +257,38 @@ def _decode_at(prep, pattern, ramps, g, d, ph, shift, payload_check):
     return bits, valid, z_full
 
 
-def _message_psnr(prep, pattern, ramps, g, d, ph, shift, bits):
-    """PSNR (peak 1) of the recovered message against the reference after a gain/offset fit."""
-    rec_ft = prep.spectra[g][d] * pattern.spot_ft * pattern.band * np.conj(pattern.carrier_phase) * ramps[ph]
-    rec = np.roll(np.real(np.fft.ifft2(rec_ft)), (-shift[0], -shift[1]), axis=(0, 1))
-    ref = message_template(pattern, ecc.encode(bits))
+def _fit_psnr(rec: np.ndarray, ref: np.ndarray) -> tuple[float, np.ndarray]:
+    """PSNR (peak 1) of ``rec`` against ``ref`` after a least-squares gain and offset."""
     a = np.stack([rec.ravel(), np.ones(rec.size)], axis=1)
     coef, *_ = np.linalg.lstsq(a, ref.ravel(), rcond=None)
     fit = (a @ coef).reshape(ref.shape)
     mse = float(np.mean((fit - ref) ** 2))
-    return 10.0 * np.log10(1.0 / max(mse, 1e-12)), rec * coef[0] + coef[1], ref
+    return 10.0 * np.log10(1.0 / max(mse, 1e-12)), fit
+
+
+def _message(prep, pattern, ramps, g, d, ph, shift, bits):
+    """Recovered messages (spot estimate and raw correlation map) against the reference.
+
+    The raw map is the inverse transform of the weighted, carrier-correlated
+    fold, aligned to the reference. The spot estimate keeps what the key says
+    carries the message: the measured amplitude at each spot position,
+    rendered as a spot. Both are compared with the reference (pilot spots plus
+    the spots of the decoded payload re-encoded) after a gain/offset fit.
+    """
+    weight = pattern.spot_ft * pattern.band
+    rec_ft = prep.spectra[g][d] * weight * np.conj(pattern.carrier_phase) * ramps[ph]
+    raw = np.roll(np.real(np.fft.ifft2(rec_ft)), (-shift[0], -shift[1]), axis=(0, 1))
+    codeword = ecc.encode(bits)
+    ref = message_template(pattern, codeword)
+    pos, _ = spot_signs(pattern, codeword)
+    n = pattern.tile
+    d_meas = np.zeros((n, n))
+    d_meas[pos[:, 0], pos[:, 1]] = raw[pos[:, 0], pos[:, 1]]
+    spots = np.real(np.fft.ifft2(np.fft.fft2(d_meas) * pattern.spot_ft))
+    psnr_spots, fit_spots = _fit_psnr(spots, ref)
+    psnr_raw, fit_raw = _fit_psnr(raw, ref)
+    zero = 10.0 * np.log10(1.0 / float(np.var(ref)))   # what an all-flat guess scores
+    return psnr_spots, psnr_raw, zero, fit_spots, fit_raw, ref
 
 
 def examine_luma(luma: np.ndarray, seed: bytes, *,
@@ -304,7 +335,7 @@ def examine_luma(luma: np.ndarray, seed: bytes, *,
             best = (lp, (g, d, ph, shift), bits, valid, z_full, float(flat[idx]))
     lp, (g, d, ph, shift), bits, valid, z_full, z_pilot = best
     detected = lp <= np.log10(threshold)
-    psnr, rec, ref = _message_psnr(prep, pattern, ramps, g, d, ph, shift, bits)
+    psnr, psnr_raw, psnr_zero, rec, rec_raw, ref = _message(prep, pattern, ramps, g, d, ph, shift, bits)
     geom = describe_geometry(prep, g, d, PHASES[ph], shift, n) if detected else {}
     decoy_scores = decoy_control(prep, decoys, decoy_seed) if decoys else []
     return Finding(
@@ -313,8 +344,11 @@ def examine_luma(luma: np.ndarray, seed: bytes, *,
         payload_bits=[int(b) for b in bits] if detected else None,
         payload_valid=valid and bool(detected),
         message_psnr_db=float(psnr) if detected else None,
+        message_psnr_raw_db=float(psnr_raw) if detected else None,
+        message_psnr_flat_db=float(psnr_zero),
         geometry=geom, surface=surf[g, d, ph].astype(np.float32),
-        recovered=rec.astype(np.float32), reference=ref.astype(np.float32),
+        recovered=rec.astype(np.float32), recovered_raw=rec_raw.astype(np.float32),
+        reference=ref.astype(np.float32),
         decoy_scores=decoy_scores,
     )
 

@@ -34,6 +34,7 @@ SSIM_C2 = (0.03 * 255.0) ** 2       # the SSIM stabiliser for 8-bit data (Wang e
 DEFAULT_LOCAL_SSIM = 0.988          # local SSIM the mask aims at
 DEFAULT_PSNR_DB = 42.4              # cap on the mean squared change (40 dB+ is usual for invisible marks; common practice, no source)
 MASK_WINDOW = 7
+MASK_MODE = "level"     # "level": flat areas keep their full SSIM allowance; "scale": uniform scaling
 
 
 def perceptual_mask(luma: np.ndarray, *, local_ssim: float = DEFAULT_LOCAL_SSIM,
@@ -61,14 +62,30 @@ def perceptual_mask(luma: np.ndarray, *, local_ssim: float = DEFAULT_LOCAL_SSIM,
     m2 = ndimage.uniform_filter(xs * xs, MASK_WINDOW // step or 1)
     var = np.maximum(m2 - m * m, 0.0)
     amp2 = (1.0 / local_ssim - 1.0) * (2.0 * var + SSIM_C2)
-    cap = 255.0 ** 2 / 10 ** (psnr_db / 10.0)
-    mean = float(amp2.mean())
-    if mean > cap:
-        amp2 *= cap / mean
+    budget = 255.0 ** 2 / 10 ** (psnr_db / 10.0)
+    if float(amp2.mean()) > budget:
+        if MASK_MODE == "scale":
+            amp2 *= budget / float(amp2.mean())
+        else:
+            amp2 = np.minimum(amp2, _water_level(amp2, budget))
     amp = np.sqrt(amp2, dtype=np.float32)
     if step > 1:
         amp = np.repeat(np.repeat(amp, step, axis=0), step, axis=1)[: x.shape[0], : x.shape[1]]
     return amp
+
+
+def _water_level(amp2: np.ndarray, budget: float) -> float:
+    """The level A with mean(min(amp2, A)) == budget (bisection on a sample)."""
+    sample = np.sort(amp2.ravel()[:: max(1, amp2.size // 200_000)])
+    csum = np.cumsum(sample, dtype=np.float64)
+    n = sample.size
+    # mean(min(a, A)) for A = sample[i] is (csum[i] + sample[i] * (n - 1 - i)) / n
+    means = (csum + sample * (n - 1 - np.arange(n))) / n
+    i = int(np.searchsorted(means, budget))
+    if i >= n:
+        return float(sample[-1])
+    lo_sum = csum[i - 1] if i > 0 else 0.0
+    return float((budget * n - lo_sum) / (n - i))
 
 
 def tiled(tile: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
