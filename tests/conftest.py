@@ -32,6 +32,14 @@ TEST_PASSPHRASE = b"harwick-bay-test-passphrase"
 TEST_OWNER = "Ilse Marrow"
 
 
+@pytest.fixture(autouse=True)
+def _no_real_home(tmp_path, monkeypatch):
+    """Keep every test away from the real ~/.claimkit: CLAIMKIT_HOME points into tmp_path
+    (an empty folder, so "no profile" still applies) unless a test sets it otherwise."""
+    monkeypatch.setenv("CLAIMKIT_HOME", str(tmp_path / "no-profile-home"))
+    monkeypatch.delenv("CLAIMKIT_PASSPHRASE", raising=False)
+
+
 @pytest.fixture
 def profile_passphrase() -> bytes:
     return TEST_PASSPHRASE

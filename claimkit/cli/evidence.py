@@ -241,7 +241,24 @@ def cmd_key_export(args) -> int:
 
 # --------------------------------------------------------------------------- registration
 
+def _sub_common() -> argparse.ArgumentParser:
+    """--home/--debug for the sub-commands, with SUPPRESS defaults.
+
+    With the frame's ``common`` parent on both levels, a sub-command's default
+    (None) would overwrite ``claimkit --home DIR works``'s DIR; SUPPRESS keeps
+    the value given before the sub-command and still accepts it after.
+    """
+    p = argparse.ArgumentParser(add_help=False)
+    p.add_argument("--home", metavar="DIR", default=argparse.SUPPRESS,
+                   help="owner profile folder (default: $CLAIMKIT_HOME or ~/.claimkit)")
+    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                   help="show a full traceback on errors")
+    return p
+
+
 def register(sub, common) -> None:
+    common = _sub_common()
+
     def add(parent, name, help_, func=None, **kw):
         p = parent.add_parser(name, parents=[common], help=help_, description=help_, **kw)
         if func:

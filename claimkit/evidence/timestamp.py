@@ -40,7 +40,7 @@ import urllib.request
 from dataclasses import dataclass
 from datetime import datetime
 
-from asn1crypto import algos, cms, tsp
+from asn1crypto import algos, cms, core, tsp
 from asn1crypto import x509 as asn1_x509
 from cryptography import x509
 from cryptography.exceptions import InvalidSignature, UnsupportedAlgorithm
@@ -75,6 +75,14 @@ class TokenInfo:
     @property
     def gen_time_iso(self) -> str:
         return self.gen_time.strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+class _Response(core.Sequence):
+    """TimeStampResp with the token optional, as RFC 3161 section 2.4.2 has it
+    (asn1crypto's own class requires the token, so a refusal would not parse)."""
+
+    _fields = [("status", tsp.PKIStatusInfo),
+               ("time_stamp_token", cms.ContentInfo, {"optional": True})]
 
 
 class _Refused(Exception):
@@ -237,18 +245,19 @@ _DER = _Enc.DER
 def token_from_response(tsr: bytes) -> bytes:
     """The DER token (ContentInfo) from a TimeStampResp, after checking its status."""
     try:
-        resp = tsp.TimeStampResp.load(tsr)
+        resp = _Response.load(tsr)
         status = resp["status"]["status"].native
+        text = resp["status"]["status_string"].native
+        fail = resp["status"]["fail_info"].native
     except (ValueError, TypeError, KeyError):
         raise _Refused("not an RFC 3161 time-stamp response") from None
     if status not in ("granted", "granted_with_mods"):
-        text = resp["status"]["status_string"].native
-        fail = resp["status"]["fail_info"].native
-        detail = "; ".join(str(x) for x in (text, fail and sorted(fail)) if x)
+        detail = "; ".join(" ".join(x) if isinstance(x, (list, set)) else str(x)
+                           for x in (text and list(text), fail and sorted(fail)) if x)
         raise _Refused(f"the TSA refused the request: status {status}"
                        + (f" ({detail})" if detail else ""))
     token = resp["time_stamp_token"]
-    if not token.contents:
+    if isinstance(token, core.Void) or not token.contents:
         raise _Refused("response granted but holds no token")
     return token.dump()
 
@@ -377,6 +386,10 @@ def _check(token_der: bytes, digest: bytes, nonce: int | None,
         token_der=token_der)
 
 
+# What a damaged token can raise once past the first parse (bad key, bad certificate, ...).
+_DAMAGE = (ValueError, TypeError, KeyError, AttributeError, IndexError, UnsupportedAlgorithm)
+
+
 def _tsa_name(tsa) -> str | None:
     """The TSA's name from TSTInfo (its common name when it is a directory name)."""
     if not tsa.native:
@@ -400,6 +413,9 @@ def check_token(token_der: bytes, *, digest: bytes, nonce: int | None,
         return _check(token_der, digest, nonce, trusted, hash_algorithm)
     except _Refused as exc:
         raise CheckFailed(str(exc), path=path) from None
+    except _DAMAGE as exc:
+        raise CheckFailed(f"the token is damaged ({type(exc).__name__}: {exc})",
+                          path=path) from None
 
 
 def check_response(tsr: bytes, *, digest: bytes, nonce: int | None,
@@ -411,6 +427,9 @@ def check_response(tsr: bytes, *, digest: bytes, nonce: int | None,
         return _check(token, digest, nonce, trusted, hash_algorithm)
     except _Refused as exc:
         raise CheckFailed(str(exc), path=path) from None
+    except _DAMAGE as exc:
+        raise CheckFailed(f"the token is damaged ({type(exc).__name__}: {exc})",
+                          path=path) from None
 
 
 def algorithm_name(alg: algos.DigestAlgorithm) -> str:  # pragma: no cover - helper for callers
