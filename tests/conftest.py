@@ -160,7 +160,7 @@ class LocalTSA:
         tsa = self
 
         class Handler(http.server.BaseHTTPRequestHandler):
-            def do_POST(self):  # noqa: N802 - name fixed by http.server
+            def do_POST(self):
                 body = self.rfile.read(int(self.headers.get("Content-Length", 0)))
                 if self.headers.get("Content-Type") != "application/timestamp-query":
                     self.send_error(415)

@@ -150,8 +150,8 @@ def cmd_stamp_request(args) -> int:
     else:
         print(f"request {req.request_id} for {len(req.work_ids)} work(s) written to {out}")
         print(f"Merkle root (SHA-256, RFC 6962): {req.root}")
-        print(f"send it to a timestamp authority, then: claimkit stamp attach RESPONSE.tsr "
-              f"--tsa-cert TSA.pem")
+        print("send it to a timestamp authority, then: claimkit stamp attach RESPONSE.tsr "
+              "--tsa-cert TSA.pem")
     return 0
 
 
@@ -322,4 +322,4 @@ def register(sub, common) -> None:
     json_opt(q)
 
 
-__all__ = ["register", "CheckFailed"]
+__all__ = ["CheckFailed", "register"]

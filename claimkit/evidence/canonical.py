@@ -30,7 +30,7 @@ _MAX_SAFE_INT = 2**53
 _encode_string = json.encoder.encode_basestring  # the escaping RFC 8785 asks for
 
 
-def format_number(value: float | int) -> str:
+def format_number(value: float) -> str:
     """Write a number as RFC 8785 (ECMAScript ``Number.prototype.toString``) does.
 
     Parameters

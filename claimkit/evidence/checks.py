@@ -13,7 +13,7 @@ from claimkit.evidence import custodylog
 from claimkit.evidence.stamping import StampStatus, stamps_of
 from claimkit.evidence.storage import sha256_hex
 
-__all__ = ["WorkStatus", "AuditReport", "check_work", "audit_profile"]
+__all__ = ["AuditReport", "WorkStatus", "audit_profile", "check_work"]
 
 
 @dataclass

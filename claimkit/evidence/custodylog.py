@@ -34,8 +34,15 @@ from pathlib import Path
 from claimkit.evidence import signing
 from claimkit.evidence.canonical import canonical_json
 
-__all__ = ["GENESIS", "LogProblem", "LogReport", "build_entry", "entry_hash", "verify_log",
-           "utc_now"]
+__all__ = [
+    "GENESIS",
+    "LogProblem",
+    "LogReport",
+    "build_entry",
+    "entry_hash",
+    "utc_now",
+    "verify_log",
+]
 
 GENESIS = "0" * 64
 _HEX64 = re.compile(r"[0-9a-f]{64}\Z")

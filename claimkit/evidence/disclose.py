@@ -42,7 +42,7 @@ from claimkit.evidence.profile import COMMITMENT_SCHEME, commitment_of
 from claimkit.evidence.stamping import inclusion_proof
 from claimkit.evidence.storage import atomic_write, fsync_dir, sha256_hex
 
-__all__ = ["write_disclosure", "check_disclosure", "DisclosureCheck", "WITHHELD"]
+__all__ = ["WITHHELD", "DisclosureCheck", "check_disclosure", "write_disclosure"]
 
 DISCLOSURE_TYPE = "claimkit/disclosure/v1"
 WITHHELD = [

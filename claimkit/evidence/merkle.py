@@ -23,7 +23,7 @@ from __future__ import annotations
 import hashlib
 from collections.abc import Sequence
 
-__all__ = ["leaf_hash", "node_hash", "MerkleTree", "root_of", "verify_inclusion", "EMPTY_ROOT"]
+__all__ = ["EMPTY_ROOT", "MerkleTree", "leaf_hash", "node_hash", "root_of", "verify_inclusion"]
 
 EMPTY_ROOT = hashlib.sha256(b"").digest()
 

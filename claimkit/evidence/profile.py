@@ -40,8 +40,14 @@ from claimkit.evidence.canonical import canonical_json
 from claimkit.evidence.keystore import Secrets, seal, unseal
 from claimkit.evidence.storage import atomic_write, fsync_dir, sha256_hex
 
-__all__ = ["Profile", "WorkRecord", "MAX_SERIAL", "commitment_of", "derive_detection_seed",
-           "derive_payload_tag"]
+__all__ = [
+    "MAX_SERIAL",
+    "Profile",
+    "WorkRecord",
+    "commitment_of",
+    "derive_detection_seed",
+    "derive_payload_tag",
+]
 
 OWNER_FILE = "owner.json"
 PUBLIC_FILE = "public.pem"
@@ -336,7 +342,7 @@ class Profile:
     def close(self) -> None:
         self._db.close()
 
-    def __enter__(self) -> Profile:
+    def __enter__(self) -> Profile:  # noqa: PYI034 - typing.Self needs Python 3.11
         return self
 
     def __exit__(self, *exc) -> None:
@@ -480,10 +486,11 @@ class Profile:
         -------
         WorkRecord
         """
-        return self.register_works([dict(
-            serial=serial, sha256_original=sha256_original, sha256_marked=sha256_marked,
-            original_name=original_name, marked_name=marked_name, fingerprint=fingerprint,
-            mark_params=mark_params, capture=capture, quality=quality)])[0]
+        return self.register_works([{
+            "serial": serial, "sha256_original": sha256_original,
+            "sha256_marked": sha256_marked, "original_name": original_name,
+            "marked_name": marked_name, "fingerprint": fingerprint,
+            "mark_params": mark_params, "capture": capture, "quality": quality}])[0]
 
     def register_works(self, works: list[dict]) -> list[WorkRecord]:
         """Register many works in one transaction (same fields as :meth:`register_work`)."""
@@ -550,7 +557,7 @@ class Profile:
             if len(fp) != len(fingerprint):
                 continue
             try:
-                d = bin(int(fp, 16) ^ want).count("1")
+                d = (int(fp, 16) ^ want).bit_count()
             except ValueError:
                 continue
             if d <= max_distance:

@@ -17,9 +17,17 @@ from cryptography.hazmat.primitives.asymmetric.ed25519 import (
 )
 
 __all__ = [
-    "Ed25519PrivateKey", "Ed25519PublicKey", "generate_seed", "private_from_seed",
-    "raw_public", "fingerprint", "public_pem", "load_public_pem", "public_from_raw",
-    "sign", "verify",
+    "Ed25519PrivateKey",
+    "Ed25519PublicKey",
+    "fingerprint",
+    "generate_seed",
+    "load_public_pem",
+    "private_from_seed",
+    "public_from_raw",
+    "public_pem",
+    "raw_public",
+    "sign",
+    "verify",
 ]
 
 
@@ -58,7 +66,7 @@ def load_public_pem(data: bytes) -> Ed25519PublicKey:
     """Read an Ed25519 public key from PEM; ValueError for anything else."""
     key = serialization.load_pem_public_key(data)
     if not isinstance(key, Ed25519PublicKey):
-        raise ValueError("not an Ed25519 public key")
+        raise ValueError("not an Ed25519 public key")  # noqa: TRY004 - callers catch ValueError
     return key
 
 

@@ -23,8 +23,15 @@ from claimkit.evidence import merkle, timestamp
 from claimkit.evidence.custodylog import utc_now
 from claimkit.evidence.storage import sha256_hex
 
-__all__ = ["StampRequest", "StampResult", "StampStatus", "request_stamp", "attach_stamp",
-           "stamps_of", "pending_requests"]
+__all__ = [
+    "StampRequest",
+    "StampResult",
+    "StampStatus",
+    "attach_stamp",
+    "pending_requests",
+    "request_stamp",
+    "stamps_of",
+]
 
 
 @dataclass
@@ -98,6 +105,12 @@ def request_stamp(profile, work_ids: list[str] | None = None) -> StampRequest:
         rows.update(profile.db.execute(
             f"SELECT work_id, canonical FROM works WHERE work_id IN ({q})", part).fetchall())
     leaves = [bytes(rows[w]) for w in chosen]
+    damaged = [w for w, leaf in zip(chosen, leaves)
+               if not profile.verify_signature(leaf, _signature(profile, w))]
+    if damaged:
+        raise CheckFailed(f"record signature does not verify for {', '.join(damaged[:5])}"
+                          f"{' ...' if len(damaged) > 5 else ''}; not stamping a damaged record",
+                          path=profile.home)
     root = merkle.root_of(leaves)
     tsq, nonce = timestamp.build_request(root)
     request_id = f"S-{utc_now()[:19].replace('-', '').replace(':', '')}-{os.urandom(3).hex()}"
@@ -110,6 +123,11 @@ def request_stamp(profile, work_ids: list[str] | None = None) -> StampRequest:
                                     "works": len(chosen)})
     profile._flush_outbox()
     return StampRequest(request_id, tsq, root.hex(), nonce, chosen)
+
+
+def _signature(profile, work_id: str) -> bytes:
+    return bytes(profile.db.execute("SELECT signature FROM works WHERE work_id = ?",
+                                    (work_id,)).fetchone()[0])
 
 
 def pending_requests(profile) -> list[dict]:
@@ -178,7 +196,7 @@ def attach_stamp(profile, tsr: bytes, tsa_cert_pem: bytes, *, tsq: bytes | None 
         row = find_request(profile, root=digest, path=tsr_path)
     else:
         row = find_request(profile, tsq=tsq, path=tsr_path)
-    request_id, nonce, root_hex, work_ids_json, _, state = row
+    request_id, nonce, root_hex, work_ids_json, _, _state = row
     root = bytes.fromhex(root_hex)
     info = timestamp.check_response(tsr, digest=root, nonce=int(nonce), trusted=trusted,
                                     path=tsr_path)

@@ -15,7 +15,7 @@ from pathlib import Path
 
 from claimkit.errors import InputError
 
-__all__ = ["sha256_file", "sha256_hex", "atomic_write", "fsync_dir", "write_new_file"]
+__all__ = ["atomic_write", "fsync_dir", "sha256_file", "sha256_hex", "write_new_file"]
 
 _CHUNK = 1 << 20
 

@@ -50,8 +50,17 @@ from cryptography.x509.oid import ExtendedKeyUsageOID
 
 from claimkit.errors import CheckFailed, InputError
 
-__all__ = ["TokenInfo", "build_request", "parse_request", "check_response", "check_token",
-           "load_certificates", "token_from_response", "send_request", "token_imprint"]
+__all__ = [
+    "TokenInfo",
+    "build_request",
+    "check_response",
+    "check_token",
+    "load_certificates",
+    "parse_request",
+    "send_request",
+    "token_from_response",
+    "token_imprint",
+]
 
 _HASHES = {"sha1": hashes.SHA1, "sha224": hashes.SHA224, "sha256": hashes.SHA256,
            "sha384": hashes.SHA384, "sha512": hashes.SHA512}
@@ -81,7 +90,7 @@ class _Response(core.Sequence):
     """TimeStampResp with the token optional, as RFC 3161 section 2.4.2 has it
     (asn1crypto's own class requires the token, so a refusal would not parse)."""
 
-    _fields = [("status", tsp.PKIStatusInfo),
+    _fields = [("status", tsp.PKIStatusInfo),  # noqa: RUF012 - asn1crypto API
                ("time_stamp_token", cms.ContentInfo, {"optional": True})]
 
 
@@ -128,7 +137,7 @@ def send_request(url: str, tsq: bytes, *, timeout: float = 30.0) -> bytes:
         "Content-Type": "application/timestamp-query",
         "Accept": "application/timestamp-reply"})
     try:
-        with urllib.request.urlopen(request, timeout=timeout) as resp:  # noqa: S310
+        with urllib.request.urlopen(request, timeout=timeout) as resp:
             return resp.read()
     except urllib.error.HTTPError as exc:
         raise InputError(f"the TSA answered HTTP {exc.code} {exc.reason}", path=url) from None
@@ -235,7 +244,7 @@ def _chain_to_trusted(signer: x509.Certificate, pool: list[x509.Certificate],
     return path
 
 
-from cryptography.hazmat.primitives.serialization import Encoding as _Enc  # noqa: E402
+from cryptography.hazmat.primitives.serialization import Encoding as _Enc
 
 _DER = _Enc.DER
 
@@ -357,7 +366,7 @@ def _check(token_der: bytes, digest: bytes, nonce: int | None,
         ok = cid["cert_hash"].native == hashlib.new(alg, cert_der).digest()
     elif ess_v1:
         cid = ess_v1[0][0]["certs"][0]
-        ok = cid["cert_hash"].native == hashlib.sha1(cert_der).digest()  # noqa: S324 - ESS v1
+        ok = cid["cert_hash"].native == hashlib.sha1(cert_der).digest()
     else:
         raise _Refused("the token lacks the ESS signing-certificate attribute")
     if not ok:
