@@ -227,3 +227,28 @@ def test_log_action_validates_items(profile):
     entry = profile.log_action("report built", items={"report": "ef" * 32}, actor="paralegal")
     assert entry["actor"] == "paralegal" and entry["seq"] == 2
     assert os.path.getsize(profile.log_path) > 0
+
+
+def test_two_processes_logging_at_once_keep_one_chain(profile):
+    # Two handles on one profile (as two claimkit processes would have) log in parallel.
+    other = Profile.open(profile.home, PASS)
+    errors: list[BaseException] = []
+
+    def work(p, tag):
+        try:
+            for i in range(15):
+                entry = p.log_action("examined", items={"exhibit": f"{tag}{i:02x}" * 21 + "0"})
+                assert entry["action"] == "examined"
+        except BaseException as exc:  # noqa: BLE001 - reported below
+            errors.append(exc)
+
+    threads = [threading.Thread(target=work, args=(p, t)) for p, t in ((profile, "a"),
+                                                                        (other, "b"))]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    other.close()
+    assert not errors, errors
+    report = profile.audit()
+    assert report.ok and report.log.lines == 31

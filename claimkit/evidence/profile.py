@@ -26,6 +26,7 @@ import json
 import os
 import re
 import sqlite3
+import threading
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -606,7 +607,18 @@ class Profile:
         with _transaction(self._db):
             entry_id = self._queue_log(action, items=items, details=details, actor=actor)
         written = self._flush_outbox()
-        return written[entry_id]
+        if entry_id in written:
+            return written[entry_id]
+        # Another process holding this profile flushed our entry first: read it back.
+        return self._entry_from_log(entry_id)
+
+    def _entry_from_log(self, entry_id: str) -> dict:
+        needle = f'"id":"{entry_id}"'.encode()
+        for raw in reversed(self.log_path.read_bytes().splitlines()):
+            if needle in raw:
+                return json.loads(raw)
+        raise CheckFailed(f"custody-log entry {entry_id} was queued but is not in the log",
+                          path=self.log_path)
 
     def _queue_log(self, action: str, *, items: dict, details: dict | None,
                    actor: str | None = None, time: str | None = None) -> str:
@@ -640,7 +652,7 @@ class Profile:
         if self._secrets is None:
             return {}
         written: dict[str, dict] = {}
-        with self._log_lock():
+        with self._db.lock, self._log_lock():
             seq, head = self.log_head()
             size = int(self._meta("log_size"))
             try:
@@ -752,9 +764,18 @@ def parse_work_id(work_id: str) -> tuple[int, int] | None:
     return (int(m.group(1), 16), int(m.group(2))) if m else None
 
 
+class _Connection(sqlite3.Connection):
+    """A registry connection that threads may share: transactions take ``lock`` in turn."""
+
+    def __init__(self, *args, **kwargs):
+        super().__init__(*args, **kwargs)
+        self.lock = threading.RLock()
+
+
 def _connect(path: Path) -> sqlite3.Connection:
     try:
-        db = sqlite3.connect(str(path), isolation_level=None, timeout=30)
+        db = sqlite3.connect(str(path), isolation_level=None, timeout=30,
+                             check_same_thread=False, factory=_Connection)
         db.execute("PRAGMA busy_timeout = 30000")
         db.execute("PRAGMA journal_mode = WAL")
         # FULL: a committed registry change survives a power cut, not just a crash.
@@ -768,11 +789,12 @@ def _connect(path: Path) -> sqlite3.Connection:
 
 @contextlib.contextmanager
 def _transaction(db: sqlite3.Connection) -> Iterator[sqlite3.Connection]:
-    db.execute("BEGIN IMMEDIATE")
-    try:
-        yield db
-    except BaseException:
-        db.execute("ROLLBACK")
-        raise
-    else:
-        db.execute("COMMIT")
+    with db.lock:
+        db.execute("BEGIN IMMEDIATE")
+        try:
+            yield db
+        except BaseException:
+            db.execute("ROLLBACK")
+            raise
+        else:
+            db.execute("COMMIT")
