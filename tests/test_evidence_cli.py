@@ -169,6 +169,14 @@ def test_disclose_and_key_export(profile_home, local_tsa, tmp_path, capsys):
                  "-in", str(out_dir / f"{name}.json"), "-sigfile", str(out_dir / f"{name}.sig")],
                 capture_output=True, text=True, check=False)
             assert proc.returncode == 0, proc.stderr
+        # The token as CHECK.txt tells the expert to check it: openssl ts -verify over the root.
+        stamp_info = json.loads((out_dir / "disclosure.json").read_bytes())["timestamps"][0]
+        proc = subprocess.run(
+            ["openssl", "ts", "-verify", "-digest", stamp_info["merkle_root"], "-token_in",
+             "-in", str(out_dir / stamp_info["token_file"]),
+             "-CAfile", str(out_dir / stamp_info["tsa_cert_file"])],
+            capture_output=True, text=True, check=False)
+        assert proc.returncode == 0, proc.stdout + proc.stderr
     # A changed byte in the disclosure is found.
     doc = out_dir / "disclosure.json"
     doc.write_bytes(doc.read_bytes().replace(b'"serial":', b'"seria1":'))

@@ -117,6 +117,8 @@ def cmd_works_show(args) -> int:
         cap = r.get("capture") or {}
         if cap:
             print("  capture:      " + ", ".join(f"{k}={v}" for k, v in sorted(cap.items())))
+        print(f"  commitment:   {r.get('key_commitment', {}).get('value')} "
+              "(to the detection seed and payload tag; opened only by claimkit disclose)")
         print(f"  record:       sha256 {work.record_sha256}")
         print("  signature:    " + ("valid (Ed25519)" if status.signature_ok else
                                     "INVALID: the record was altered"))

@@ -17,12 +17,20 @@ A disclosure folder holds:
 ``CHECK.txt``
     How to re-check every signature with the ``openssl`` command.
 
-Never included: the Ed25519 signing key, the marking secret, or the key that
-makes payload tags. With the disclosure one can detect the owner's marks and
-read their payloads, and check that this work's payload tag is the one the
-owner committed to when registering it; one cannot sign in the owner's name,
-nor compute the payload tag of any other serial, so one cannot make an image
-that decodes as another of the owner's registered works.
+What a disclosure reveals, and what it does not (the README states the same):
+
+It reveals the owner's 32-byte detection seed (from which the carrier, pilot
+and payload positions are derived), the work's serial and 24-bit payload tag,
+the opening of the key commitment in the signed record, the public key, the
+signed record, and each RFC 3161 token covering it with its Merkle inclusion
+proof. It never contains the Ed25519 signing key, the 256-bit marking secret,
+or the key that makes payload tags: a holder cannot sign in the owner's name
+or compute the payload tag of any other serial, so cannot make an image that
+claimkit accepts as another of the owner's registered works (a blind guess of
+a tag succeeds once in 2**24 tries). The detection seed is shared by all of
+the owner's works: its holder can find and read the mark in any of the
+owner's images, and with effort weaken or remove marks, or copy this work's
+mark into another picture.
 """
 
 from __future__ import annotations
@@ -80,6 +88,9 @@ Checking this disclosure with OpenSSL (no claimkit needed)
 
    openssl ts -verify -digest MERKLE_ROOT -in timestamps/TOKEN.tst -token_in \\
        -CAfile timestamps/TOKEN.tsa.pem
+
+   (add -partial_chain when TOKEN.tsa.pem is the TSA's own certificate rather
+   than its CA's)
 
    then the record's inclusion: leaf = SHA-256(0x00 || work-record.json), nodes
    SHA-256(0x01 || left || right) along "audit_path" (disclosure.json).

@@ -254,6 +254,10 @@ class Profile:
             raise ProfileError("the passphrase is empty")
         present = [n for n in (OWNER_FILE, SECRETS_FILE, REGISTRY_FILE, LOG_FILE)
                    if (home / n).exists()]
+        if present and OWNER_FILE not in present:
+            raise InputError(f"an unfinished profile is here ({', '.join(present)}; no "
+                             f"{OWNER_FILE}): move the folder aside, then run claimkit init "
+                             "again", path=home)
         if present:
             raise InputError(f"a profile already exists here ({', '.join(present)}); "
                              "claimkit never overwrites one", path=home)
