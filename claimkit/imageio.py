@@ -215,10 +215,10 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None) -> P
                 Image.MAX_IMAGE_PIXELS = saved
     except UnidentifiedImageError:
         if data.startswith(_MAGIC):
-            raise InputError("truncated image data (damaged header)", path=path) from None
+            raise InputError("damaged or truncated image data (header)", path=path) from None
         raise InputError("not an image Pillow can read", path=path) from None
     except (OSError, SyntaxError, ValueError, EOFError) as exc:
-        raise InputError(f"truncated image data ({exc})", path=path) from None
+        raise InputError(f"damaged or truncated image data ({exc})", path=path) from None
 
     with im:
         width, height = im.size
@@ -235,23 +235,26 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None) -> P
             notes.append(f"{frames} frames; the first frame was used")
         fmt = im.format or "unknown"
         rawmode = _rawmode(im)  # the tile list is gone once the pixels are loaded
-        try:
-            with warnings.catch_warnings():
-                # "XMP data cannot be read without defusedxml": we keep XMP raw.
-                warnings.simplefilter("ignore", UserWarning)
-                im.load()
-                pixels, alpha, bit_depth, icc_ok = _pixels_from_pillow(im, rawmode, notes, path)
-        except InputError:
-            raise
-        except (OSError, SyntaxError, ValueError, EOFError) as exc:
-            raise InputError(f"truncated image data ({exc})", path=path) from None
-
-        if fmt == "TIFF" and _is_16bit_multichannel_tiff(im):
-            full = _read_tiff16(data)
-            if full is not None:
-                pixels, alpha = full
-                bit_depth = 16
-                notes[:] = [n for n in notes if "8 bits" not in n]
+        # Pillow holds 16-bit colour only at 8 bits; tifffile reads it whole.
+        full = _read_tiff16(data) if fmt == "TIFF" and _is_16bit_multichannel_tiff(im) else None
+        icc_ok = True
+        if full is not None:
+            (pixels, alpha), bit_depth = full, 16
+        else:
+            try:
+                with warnings.catch_warnings():
+                    # "XMP data cannot be read without defusedxml": XMP is kept raw.
+                    warnings.simplefilter("ignore", UserWarning)
+                    im.load()
+                    pixels, alpha, bit_depth, icc_ok = _pixels_from_pillow(
+                        im, rawmode, notes, path
+                    )
+            except InputError:
+                raise
+            except (OSError, SyntaxError, ValueError, EOFError) as exc:
+                raise InputError(
+                    f"damaged or truncated image data ({exc})", path=path
+                ) from None
 
         exif_obj = im.getexif()
         orientation = int(exif_obj.get(_ORIENTATION, 1) or 1)
@@ -268,7 +271,7 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None) -> P
     pixels = _upright(pixels, orientation)
     if alpha is not None:
         alpha = _upright(alpha, orientation)
-    if orientation not in (1, 0) and orientation in _TRANSPOSES:
+    if orientation in _TRANSPOSES:
         notes.append(f"EXIF orientation {orientation} applied to the pixels")
     return Picture(
         path=path,
@@ -444,8 +447,8 @@ def _exif_for_copy(exif: Image.Exif, *, source_is_tiff: bool) -> tuple[bytes | N
         out[tag] = value
     if not len(out):
         return None, capture
-    if _ORIENTATION in out or any(t == _ORIENTATION for t in exif):
-        out[_ORIENTATION] = 1
+    if _ORIENTATION in out:
+        out[_ORIENTATION] = 1  # the pixels are upright now
     try:
         return out.tobytes(), capture
     except Exception:  # noqa: BLE001 - unserialisable maker tags: carry none rather than fail
@@ -591,7 +594,7 @@ def _encode(
     if like.exif:
         kw["exif"] = like.exif
     if fmt == "JPEG":
-        kw.update(quality=int(quality), subsampling=0 if quality >= 90 else 2, optimize=True)
+        kw.update(quality=int(quality), subsampling=0 if quality >= 90 else 2)
         if like.xmp:
             kw["xmp"] = like.xmp
     elif fmt == "PNG":
