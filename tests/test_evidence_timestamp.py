@@ -207,3 +207,23 @@ def test_single_byte_change_in_stored_token_is_named(profile, local_tsa):
     st = profile.check_work(works[0].work_id)
     assert any("Merkle tree" in p for p in st.all_problems())
     assert profile.check_work(works[1].work_id).ok
+
+
+def test_swapped_stored_tokens_are_named(profile, local_tsa):
+    first = _works(profile, 2)
+    res_a = profile.stamp_attach(local_tsa.reply(profile.stamp_request().tsq),
+                                 local_tsa.ca_cert.read_bytes())
+    second = _works(profile, 2)
+    res_b = profile.stamp_attach(local_tsa.reply(profile.stamp_request().tsq),
+                                 local_tsa.ca_cert.read_bytes())
+    db = sqlite3.connect(profile.home / "registry.sqlite")
+    rows = dict(db.execute("SELECT token_id, token FROM tokens").fetchall())
+    sums = dict(db.execute("SELECT token_id, token_sha256 FROM tokens").fetchall())
+    for mine, theirs in ((res_a.token_id, res_b.token_id), (res_b.token_id, res_a.token_id)):
+        db.execute("UPDATE tokens SET token = ?, token_sha256 = ? WHERE token_id = ?",
+                   (rows[theirs], sums[theirs], mine))
+    db.commit()
+    for w, tid in ((first[0], res_a.token_id), (second[1], res_b.token_id)):
+        problems = profile.check_work(w.work_id).all_problems()
+        assert any(tid in p and "for other data" in p for p in problems), problems
+    assert not profile.audit().ok

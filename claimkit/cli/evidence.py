@@ -194,8 +194,10 @@ def cmd_log_verify(args) -> int:
     if args.json:
         print_json(report.as_dict())
         return 0 if report.ok else 1
-    for line in report.lines():
-        print(f"{report.log.path}: {line}")
+    for problem in report.log.problems:
+        print(f"{report.log.path}: {problem}")
+    for problem in report.problems:
+        print(f"{p.home / 'registry.sqlite'}: {problem.removeprefix('registry: ')}")
     if report.pending_entries:
         print(f"note: {report.pending_entries} entry(ies) recorded in the registry wait to be "
               "written to the log (an interrupted run); the next command with the passphrase "
