@@ -49,6 +49,9 @@ def test_every_single_byte_change_is_found_at_its_line(logged):
                 r = check(logged)
                 assert not r.ok, (number, pos, mask)
                 assert r.problems[0].line == number, (number, pos, [str(x) for x in r.problems])
+                # Only this line and, through the chain, the next one are named.
+                assert {p.line for p in r.problems} <= {number, number + 1}, \
+                    (number, pos, [str(x) for x in r.problems])
     write(logged, original)
     assert check(logged).ok
 

@@ -99,7 +99,7 @@ class LogReport:
 
     path: Path
     lines: int = 0
-    entries: list[dict] = field(default_factory=list)  # the entries that verified
+    entries: list[dict] = field(default_factory=list)  # entries whose signature verified
     problems: list[LogProblem] = field(default_factory=list)
     head_seq: int = 0
     head_hash: str = GENESIS
@@ -169,12 +169,20 @@ def verify_log(path: Path, public_key: signing.Ed25519PublicKey, *,
         this_hash = entry_hash(raw)
         if entry is None:
             report.problems.append(LogProblem(number, why))
+            report.head_seq, report.head_hash = expected_seq, this_hash
             expected_seq, prev = expected_seq + 1, this_hash
             continue
         seq = entry["seq"]
         if why:
+            # An altered entry's own seq cannot be trusted: assume it stood in its place.
             report.problems.append(LogProblem(number, why))
-        elif seq in seen:
+            report.head_seq, report.head_hash = expected_seq, this_hash
+            expected_seq, prev = expected_seq + 1, this_hash
+            continue
+        # Signed by the owner's key: counts for cross-checks even where the chain around
+        # it is broken (that break is reported on its own line).
+        report.entries.append(entry)
+        if seq in seen:
             report.problems.append(LogProblem(
                 number, f"entry #{seq} appears again (first at line {seen[seq]}): "
                         "inserted or duplicated"))
@@ -191,8 +199,6 @@ def verify_log(path: Path, public_key: signing.Ed25519PublicKey, *,
             report.problems.append(LogProblem(
                 number, f"entry #{seq} does not chain to line {number - 1}: "
                         "the line before it was altered or replaced"))
-        else:
-            report.entries.append(entry)
         seen.setdefault(seq, number)
         expected_seq, prev = max(expected_seq, seq + 1), this_hash
         report.head_seq, report.head_hash = seq, this_hash
