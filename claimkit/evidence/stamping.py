@@ -98,15 +98,15 @@ def request_stamp(profile, work_ids: list[str] | None = None) -> StampRequest:
         if not chosen:
             raise InputError("every registered work already has a timestamp token "
                              "(name works to stamp them again)")
-    rows = {}
+    rows: dict[str, tuple[bytes, bytes]] = {}
     for i in range(0, len(chosen), 500):
         part = chosen[i:i + 500]
         q = ",".join("?" * len(part))
-        rows.update(profile.db.execute(
-            f"SELECT work_id, canonical FROM works WHERE work_id IN ({q})", part).fetchall())
-    leaves = [bytes(rows[w]) for w in chosen]
-    damaged = [w for w, leaf in zip(chosen, leaves)
-               if not profile.verify_signature(leaf, _signature(profile, w))]
+        for work_id, canonical, signature in profile.db.execute(
+                f"SELECT work_id, canonical, signature FROM works WHERE work_id IN ({q})", part):
+            rows[work_id] = (bytes(canonical), bytes(signature))
+    leaves = [rows[w][0] for w in chosen]
+    damaged = [w for w in chosen if not profile.verify_signature(*rows[w])]
     if damaged:
         raise CheckFailed(f"record signature does not verify for {', '.join(damaged[:5])}"
                           f"{' ...' if len(damaged) > 5 else ''}; not stamping a damaged record",
@@ -123,11 +123,6 @@ def request_stamp(profile, work_ids: list[str] | None = None) -> StampRequest:
                                     "works": len(chosen)})
     profile._flush_outbox()
     return StampRequest(request_id, tsq, root.hex(), nonce, chosen)
-
-
-def _signature(profile, work_id: str) -> bytes:
-    return bytes(profile.db.execute("SELECT signature FROM works WHERE work_id = ?",
-                                    (work_id,)).fetchone()[0])
 
 
 def pending_requests(profile) -> list[dict]:
