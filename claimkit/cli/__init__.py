@@ -64,6 +64,12 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("claimkit: interrupted", file=sys.stderr)
         return 130
+    except Exception as exc:  # an internal fault: one line unless --debug
+        if args.debug:
+            raise
+        print(f"claimkit: error: internal fault ({type(exc).__name__}: {exc}); "
+              "run again with --debug for the details", file=sys.stderr)
+        return 3
     return int(code or 0)
 
 

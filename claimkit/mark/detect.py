@@ -324,7 +324,8 @@ def examine_luma(luma: np.ndarray, seed: bytes, *,
     ramps = _ramps(n)
     surf = _surfaces(prep, pattern, ramps)
     flat = surf.reshape(-1)
-    order = np.argsort(flat)[::-1][:DECODE_TRIES]
+    top = np.argpartition(flat, -DECODE_TRIES)[-DECODE_TRIES:]
+    order = top[np.argsort(flat[top])[::-1]]
     best = None
     for idx in order:
         g, d, ph, r, c = np.unravel_index(idx, surf.shape)

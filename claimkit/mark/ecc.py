@@ -40,6 +40,10 @@ _OUT = np.stack([
     for b in (0, 1)
 ])  # shape (2, NSTATES, RATE_INV)
 _NEXT = np.stack([((b << (CONSTRAINT - 1)) | _STATES) >> 1 for b in (0, 1)])  # (2, NSTATES)
+# For each input bit, the previous states grouped in pairs by the next state they share.
+_ORDER = np.stack([np.argsort(_NEXT[b], kind="stable") for b in (0, 1)])
+_PREV = _STATES[_ORDER].reshape(2, -1, 2)
+_TARGET = np.stack([_NEXT[b][_ORDER[b]].reshape(-1, 2)[:, 0] for b in (0, 1)])
 
 
 def coded_length(n_bits: int) -> int:
@@ -88,17 +92,15 @@ def decode(soft: np.ndarray, n_bits: int) -> np.ndarray:
         choice = np.zeros(_NSTATES, dtype=np.int64)
         allowed = (0, 1) if t < n_bits else (0,)
         for b in allowed:
-            nxt = _NEXT[b]
             # Each next state is reached from exactly two previous states per bit.
-            order = np.argsort(nxt, kind="stable")
-            vals = cand[b][order].reshape(-1, 2)
-            prev = _STATES[order].reshape(-1, 2)
+            vals = cand[b][_ORDER[b]].reshape(-1, 2)
             pick = np.argmax(vals, axis=1)
-            best = vals[np.arange(vals.shape[0]), pick]
-            targets = nxt[order].reshape(-1, 2)[:, 0]
+            rows = np.arange(vals.shape[0])
+            best = vals[rows, pick]
+            targets = _TARGET[b]
             better = best > new[targets]
             new[targets[better]] = best[better]
-            choice[targets[better]] = (prev[np.arange(prev.shape[0]), pick][better] << 1) | b
+            choice[targets[better]] = (_PREV[b][rows, pick][better] << 1) | b
         metric = new
         back[t] = choice
     state = 0  # zero-terminated

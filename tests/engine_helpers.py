@@ -1,0 +1,80 @@
+"""Test images and attacks for the engine tests. Attacks use Pillow's own codecs and filters."""
+
+from __future__ import annotations
+
+import io
+
+import numpy as np
+from PIL import Image, ImageEnhance, ImageFilter
+from skimage import data
+
+from claimkit.imageio import add_luma_delta, to_luma
+from claimkit.mark.embed import mark_delta
+
+SEED = bytes(range(32))
+OTHER_SEED = bytes(range(100, 132))
+
+
+def payload(n: int = 0) -> np.ndarray:
+    return np.random.default_rng(1000 + n).integers(0, 2, 64).astype(np.uint8)
+
+
+def sky(h: int = 480, w: int = 640) -> np.ndarray:
+    """A smooth blue sky with faint sensor noise: the hardest case for invisibility."""
+    rng = np.random.default_rng(7)
+    y = np.linspace(0, 1, h)[:, None]
+    base = np.stack([90 + 60 * y, 140 + 50 * y, 220 + 20 * y], axis=-1) * np.ones((1, w, 1))
+    return np.clip(base + rng.normal(0, 1.2, base.shape), 0, 255).astype(np.uint8)
+
+
+def photos() -> dict[str, np.ndarray]:
+    """Natural photos from 300 to 1411 px a side (scikit-image's data set) and a sky."""
+    return {
+        "chelsea": data.chelsea(), "coffee": data.coffee(), "rocket": data.rocket(),
+        "hubble": data.hubble_deep_field(), "retina": data.retina(), "sky": sky(),
+    }
+
+
+def mark(rgb: np.ndarray, seed: bytes = SEED, bits: np.ndarray | None = None) -> np.ndarray:
+    bits = payload() if bits is None else bits
+    return add_luma_delta(rgb, mark_delta(to_luma(rgb), seed, bits))
+
+
+def jpeg(a: np.ndarray, q: int) -> np.ndarray:
+    buf = io.BytesIO()
+    Image.fromarray(a).save(buf, "JPEG", quality=q)
+    return np.array(Image.open(buf))
+
+
+def pil_filter(a: np.ndarray, f) -> np.ndarray:
+    return np.array(Image.fromarray(a).filter(f))
+
+
+def gamma(a: np.ndarray, g: float) -> np.ndarray:
+    lut = [min(255, int(255 * (i / 255) ** g + 0.5)) for i in range(256)]
+    return np.array(Image.fromarray(a).point(lut * (3 if a.ndim == 3 else 1)))
+
+
+def noise(a: np.ndarray, sigma: float, seed: int = 3) -> np.ndarray:
+    rng = np.random.default_rng(seed)
+    return np.clip(a + rng.normal(0, sigma, a.shape), 0, 255).astype(np.uint8)
+
+
+def crop_quarter(a: np.ndarray, oy: int = 37, ox: int = 53) -> np.ndarray:
+    """Keep a quarter of the area at an offset that is no multiple of anything."""
+    h, w = a.shape[:2]
+    return a[oy:oy + h // 2, ox:ox + w // 2]
+
+
+ATTACKS = {
+    "jpeg30": lambda a: jpeg(a, 30),
+    "jpeg50": lambda a: jpeg(a, 50),
+    "jpeg75": lambda a: jpeg(a, 75),
+    "blur1": lambda a: pil_filter(a, ImageFilter.GaussianBlur(1)),
+    "blur2": lambda a: pil_filter(a, ImageFilter.GaussianBlur(2)),
+    "median3": lambda a: pil_filter(a, ImageFilter.MedianFilter(3)),
+    "noise8": lambda a: noise(a, 8),
+    "contrast0.6": lambda a: np.array(ImageEnhance.Contrast(Image.fromarray(a)).enhance(0.6)),
+    "gamma1.5": lambda a: gamma(a, 1.5),
+    "crop25": crop_quarter,
+}

@@ -1,0 +1,113 @@
+"""The numeric core against independent references (named beside each check)."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from scipy import stats as sps
+from skimage import data, metrics
+
+from claimkit.mark import detect, ecc, payload, quality, stats
+from claimkit.mark.pattern import TILE, key_pattern, mark_tile
+from tests.engine_helpers import SEED
+
+
+def test_convolutional_code_round_trip_and_correction():
+    rng = np.random.default_rng(0)
+    for _ in range(20):
+        bits = rng.integers(0, 2, 64)
+        code = ecc.encode(bits)
+        assert code.size == 210
+        assert np.array_equal(ecc.decode(2.0 * code - 1.0, 64), bits)
+        # Per-symbol SNR 2 (about 10 % raw symbol errors): the code must fix them all.
+        noisy = 2.0 * (2.0 * code - 1.0) + rng.normal(0, 1, code.size)
+        assert (np.sign(noisy) != 2 * code - 1).sum() > 0
+        assert np.array_equal(ecc.decode(noisy, 64), bits)
+
+
+def test_encoder_matches_generator_polynomials_by_hand():
+    # A single 1 followed by zeros: the output is the impulse response, i.e. the
+    # generator polynomials 133, 171, 165 (octal) read bit by bit from the MSB.
+    out = ecc.encode(np.array([1] + [0] * 6)).reshape(-1, 3)[:7]
+    for j, g in enumerate((0o133, 0o171, 0o165)):
+        taps = [(g >> (6 - t)) & 1 for t in range(7)]
+        assert out[:, j].tolist() == taps
+
+
+def test_carrier_has_flat_magnitude_and_delta_autocorrelation():
+    # Computed with numpy's FFT independently of the module's own conventions.
+    pat = key_pattern(SEED)
+    carrier = np.real(np.fft.ifft2(pat.carrier_phase))
+    assert np.abs(np.fft.ifft2(pat.carrier_phase).imag).max() < 1e-12
+    mag = np.abs(np.fft.fft2(carrier))
+    assert np.allclose(mag[pat.band], mag[pat.band][0], rtol=1e-9)
+    acf = np.real(np.fft.ifft2(np.abs(np.fft.fft2(carrier)) ** 2))
+    off = np.abs(acf.ravel()[1:]).max()
+    assert off < 0.01 * acf[0, 0]
+    tile = mark_tile(pat, np.zeros(210, dtype=int))
+    assert tile.shape == (TILE, TILE) and abs(float(tile.mean())) < 1e-5
+
+
+def test_keys_give_different_patterns_and_are_deterministic():
+    a, b = key_pattern(SEED), key_pattern(bytes(32))
+    assert not np.allclose(a.carrier_phase, b.carrier_phase)
+    assert np.array_equal(key_pattern(SEED).pilot_pos, a.pilot_pos)
+
+
+def test_payload_packing():
+    bits = payload.pack(0xBEEF, 123456, 0xABCDEF)
+    assert bits.size == 64
+    assert payload.unpack(bits) == {"owner_tag": 0xBEEF, "serial": 123456, "tag": 0xABCDEF}
+    with pytest.raises(ValueError):
+        payload.pack(1 << 16, 1, 1)
+
+
+@pytest.mark.parametrize("z", [0.5, 1, 2, 3, 5, 8, 12, 20, 37])
+def test_tail_bound_is_above_the_gaussian_tail(z):
+    # scipy.stats.norm.logsf is the exact Gaussian tail; ours must never be smaller.
+    ours = stats.log10_tail_bound(z)
+    exact = sps.norm.logsf(z) / math.log(10)
+    assert ours >= exact
+    # ... and not absurdly loose: Gordon's Mills-ratio inequality Q(z) >= phi(z) z / (1 + z^2)
+    # bounds the gap by sqrt(2 pi) (1 + z^2) / z.
+    assert ours - exact <= math.log10(math.sqrt(2 * math.pi) * (1 + z * z) / z) + 1e-12
+
+
+def test_false_alarm_arithmetic_by_hand():
+    h, space = detect.hypotheses(), payload.PAYLOAD_SPACE
+    lp = stats.log10_false_alarm(9.0, None, h, space)
+    assert lp == pytest.approx(math.log10(2 * h * math.exp(-81 / 2)))
+    lp2 = stats.log10_false_alarm(5.0, 30.0, h, space)
+    assert lp2 == pytest.approx(math.log10(2 * h * space) - 900 / 2 / math.log(10))
+    assert stats.log10_false_alarm(0.5, None, h, space) == 0.0
+    assert stats.as_probability(-5000.0) > 0.0
+    assert stats.describe(-40.0) == "below 1e-12"
+
+
+def test_scores_are_standardised_over_keys_for_a_fixed_picture():
+    # The bound rests on this: for a fixed unmarked picture, the score at a fixed
+    # placement is a zero-mean, unit-variance, near-Gaussian variable over the key.
+    prep = detect.prepare(data.brick().astype(np.float32))
+    rng = np.random.default_rng(5)
+    zs = []
+    ramps = detect._ramps(TILE)
+    for _ in range(300):
+        surf = detect._surfaces(prep, key_pattern(rng.bytes(32)), ramps)
+        zs.append(surf[0, 0, 0, 17, 91])
+    key_pattern.cache_clear()
+    zs = np.asarray(zs)
+    assert abs(zs.mean()) < 0.2 and 0.85 < zs.std() < 1.15
+    assert sps.kstest(zs, "norm").pvalue > 1e-3   # scipy.stats Kolmogorov-Smirnov vs N(0, 1)
+
+
+def test_psnr_and_ssim_match_scikit_image():
+    a = data.coffee()[..., 1].astype(np.float64)
+    b = np.clip(a + np.random.default_rng(0).normal(0, 3, a.shape), 0, 255)
+    assert quality.psnr(a, b, peak=255) == pytest.approx(
+        metrics.peak_signal_noise_ratio(a, b, data_range=255), rel=1e-9)
+    ours, sampled = quality.ssim(a, b)
+    ref = metrics.structural_similarity(a, b, data_range=255, gaussian_weights=True,
+                                        sigma=1.5, use_sample_covariance=False)
+    assert not sampled and ours == pytest.approx(ref, abs=1e-5)

@@ -1,0 +1,90 @@
+"""Invisibility, robustness and calibration of the mark, with Pillow's codecs and filters as the attacker.
+
+Check values from the trade (common practice, no source): invisible marks aim at
+40 dB PSNR or more; ours is required to keep PSNR >= 42 dB and SSIM >= 0.985.
+PSNR and SSIM here come from ``skimage.metrics``, not from claimkit.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from skimage import data, metrics
+
+from claimkit.imageio import to_luma
+from claimkit.mark import detect
+from claimkit.mark.pattern import key_pattern
+from tests.engine_helpers import ATTACKS, OTHER_SEED, SEED, mark, payload, photos
+
+
+def examine(rgb, seed=SEED, bits=None):
+    want = payload() if bits is None else bits
+    return detect.examine_luma(to_luma(rgb), seed,
+                               payload_check=lambda b: bool(np.array_equal(b, want)))
+
+
+@pytest.fixture(scope="module")
+def marked():
+    return {name: (rgb, mark(rgb)) for name, rgb in photos().items()}
+
+
+def test_invisibility_on_natural_photos_and_a_smooth_sky(marked):
+    for name, (rgb, mk) in marked.items():
+        psnr = metrics.peak_signal_noise_ratio(rgb, mk, data_range=255)
+        ssim = metrics.structural_similarity(rgb, mk, channel_axis=2, data_range=255)
+        assert psnr >= 42.0, (name, psnr)
+        assert ssim >= 0.985, (name, ssim)
+
+
+def test_unattacked_copies_are_claimed_with_the_right_payload(marked):
+    for name, (_, mk) in marked.items():
+        f = examine(mk)
+        assert f.detected and f.payload_valid, name
+        assert f.payload_bits == payload().tolist()
+        assert f.false_alarm_probability <= 1e-9
+
+
+# Attacks each photo must survive. Known limit (measured, see the README): a
+# Gaussian blur of radius 2 erases the mark of busy pictures under ~1.2 MP,
+# so blur2 is required on the larger and the smoother photos only.
+CASES = [(p, a) for p in ("chelsea", "coffee", "hubble", "retina") for a in ATTACKS
+         if not (a == "blur2" and p in ("coffee", "hubble"))]
+
+
+@pytest.mark.parametrize("name,attack", CASES)
+def test_attacked_copy_is_claimed(marked, name, attack):
+    _, mk = marked[name]
+    f = examine(ATTACKS[attack](mk))
+    assert f.detected, (name, attack, f.log10_false_alarm)
+    assert f.payload_valid and f.payload_bits == payload().tolist()
+    assert f.false_alarm_probability <= 1e-9
+    # The recovered message must beat the score of a flat guess clearly.
+    assert f.message_psnr_db >= f.message_psnr_flat_db + 2.0
+
+
+def test_unmarked_and_other_owner_are_never_claimed(marked):
+    for name, (rgb, mk) in marked.items():
+        assert not examine(rgb).detected, name
+        assert not examine(mk, seed=OTHER_SEED).detected, name
+
+
+def test_calibration_on_unmarked_pictures_including_textures():
+    """Fraction of unmarked pictures with P_fa <= p must be at most p (many pictures x keys)."""
+    textures = [data.brick(), data.grass(), data.gravel(), data.text(), data.checkerboard(),
+                data.moon(), data.coins(), data.page()]
+    naturals = [to_luma(x) for x in (data.chelsea(), data.coffee(), data.rocket())]
+    tiled_floor = np.kron((np.indices((16, 16)).sum(0) % 2) * 120 + 60, np.ones((32, 32)))
+    pics = [t.astype(np.float32) for t in textures] + naturals + [tiled_floor.astype(np.float32)]
+    rng = np.random.default_rng(11)
+    pvals = []
+    for pic in pics:
+        prep = detect.prepare(pic)   # key-independent; reused for every key
+        for _ in range(25):
+            f = detect.examine_luma(pic, rng.bytes(32), payload_check=lambda b: False,
+                                    prepared=prep)
+            assert not f.detected
+            pvals.append(f.false_alarm_probability)
+    key_pattern.cache_clear()
+    pvals = np.asarray(pvals)
+    for p in (0.01, 0.05, 0.2):
+        assert np.mean(pvals <= p) <= p, p
