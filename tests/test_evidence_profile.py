@@ -252,3 +252,13 @@ def test_two_processes_logging_at_once_keep_one_chain(profile):
     assert not errors, errors
     report = profile.audit()
     assert report.ok and report.log.lines == 31
+
+
+def test_foreign_lines_at_the_end_of_the_log_stop_writing(profile):
+    # Lines the registry never queued (someone appended to the log): refuse to chain onto them.
+    from claimkit.errors import CheckFailed
+
+    with open(profile.log_path, "ab") as fh:
+        fh.write(b'{"action":"work registered","seq":2}\n')
+    with pytest.raises(CheckFailed, match="did not write"):
+        profile.log_action("examined", items={"exhibit": "aa" * 32})

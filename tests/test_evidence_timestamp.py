@@ -227,3 +227,18 @@ def test_swapped_stored_tokens_are_named(profile, local_tsa):
         problems = profile.check_work(w.work_id).all_problems()
         assert any(tid in p and "for other data" in p for p in problems), problems
     assert not profile.audit().ok
+
+
+def test_same_works_requested_twice_each_response_finds_its_request(profile, local_tsa):
+    works = _works(profile, 2)
+    ids = [w.work_id for w in works]
+    first = profile.stamp_request(ids)
+    second = profile.stamp_request(ids)
+    assert first.root == second.root and first.nonce != second.nonce
+    tsr_first = local_tsa.reply(first.tsq)
+    tsr_second = local_tsa.reply(second.tsq)
+    assert profile.stamp_attach(tsr_first, local_tsa.ca_cert.read_bytes()).request_id == \
+        first.request_id
+    assert profile.stamp_attach(tsr_second, local_tsa.ca_cert.read_bytes()).request_id == \
+        second.request_id
+    assert len(profile.check_work(ids[0]).stamps) == 2

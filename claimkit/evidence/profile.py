@@ -674,11 +674,20 @@ class Profile:
                 complete, torn = parts[:-1], parts[-1]
                 if torn:  # a torn last line from a crash: ours, never confirmed
                     os.truncate(self.log_path, actual - len(torn))
+                queued = {r[0] for r in self._db.execute("SELECT entry_id FROM log_outbox")}
                 for raw in complete:
-                    entry = json.loads(raw)
-                    seq, head = entry["seq"], custodylog.entry_hash(raw)
+                    try:
+                        entry = json.loads(raw)
+                        entry_id, entry_seq = entry["id"], int(entry["seq"])
+                    except (ValueError, KeyError, TypeError):
+                        entry_id, entry_seq = None, 0
+                    if entry_id not in queued or entry_seq != seq + 1:
+                        raise CheckFailed(
+                            f"custody log has lines after entry #{seq} that this registry did "
+                            "not write: run claimkit log verify", path=self.log_path)
+                    seq, head = entry_seq, custodylog.entry_hash(raw)
                     size += len(raw) + 1
-                    adopted.append(entry["id"])
+                    adopted.append(entry_id)
             rows = self._db.execute(
                 "SELECT entry_id, time, actor, action, items, details FROM log_outbox "
                 "ORDER BY ord").fetchall()

@@ -133,8 +133,9 @@ def pending_requests(profile) -> list[dict]:
 
 
 def find_request(profile, *, tsq: bytes | None = None, root: bytes | None = None,
-                 path: object = None):
-    """The pending request with these request bytes, or whose root is ``root``."""
+                 nonce: int | None = None, path: object = None):
+    """The request with these bytes, or whose root is ``root`` (and nonce ``nonce``, if any
+    request over that root has it; else the newest pending one, which the checks then refuse)."""
     if tsq is not None:
         row = profile.db.execute(
             "SELECT request_id, nonce, root, work_ids, tsq, state FROM stamp_requests "
@@ -142,10 +143,12 @@ def find_request(profile, *, tsq: bytes | None = None, root: bytes | None = None
         if row is None:
             raise InputError("this request was not made by this profile", path=path)
     else:
-        row = profile.db.execute(
+        rows = profile.db.execute(
             "SELECT request_id, nonce, root, work_ids, tsq, state FROM stamp_requests "
-            "WHERE root = ? ORDER BY (state = 'pending') DESC, created DESC LIMIT 1",
-            (root.hex(),)).fetchone()
+            "WHERE root = ? ORDER BY (state = 'pending') DESC, created DESC",
+            (root.hex(),)).fetchall()
+        row = next((r for r in rows if nonce is not None and int(r[1]) == nonce),
+                   rows[0] if rows else None)
         if row is None:
             raise CheckFailed(f"the token is for other data: its digest {root.hex()} matches "
                               "no stamp request of this profile", path=path)
@@ -183,12 +186,12 @@ def attach_stamp(profile, tsr: bytes, tsa_cert_pem: bytes, *, tsq: bytes | None 
     if tsq is None:
         try:
             token_der = timestamp.token_from_response(tsr)
-            digest, _, _ = timestamp.token_imprint(token_der)
+            digest, _, token_nonce = timestamp.token_imprint(token_der)
         except timestamp._Refused as exc:
             raise CheckFailed(str(exc), path=tsr_path) from None
         except (ValueError, TypeError, KeyError, AttributeError):
             raise CheckFailed("the token is damaged (not valid DER/CMS)", path=tsr_path) from None
-        row = find_request(profile, root=digest, path=tsr_path)
+        row = find_request(profile, root=digest, nonce=token_nonce, path=tsr_path)
     else:
         row = find_request(profile, tsq=tsq, path=tsr_path)
     request_id, nonce, root_hex, work_ids_json, _, _state = row
