@@ -1,0 +1,361 @@
+"""Scanning folders of found images for the owner's mark: ``claimkit scan``.
+
+A rights desk gets folders of candidate images (saved from shops, social
+media, search results). :func:`scan_folders` examines every image under them
+with the owner's key, in parallel, and says for each which work it is, how
+sure, and what was done to it; a summary closes the run.
+
+Why the cost per file does not depend on the size of the registry: the mark
+carries its own work serial in the payload, checked by a keyed payload tag,
+so the examination under the owner's one key names the work; the registry is
+asked once per *claimed* file, by serial (an indexed look-up). Nothing is
+compared against every registered work.
+
+What travels to the workers: the 32-byte detection seed and a payload
+checker (the owner tag and the payload-tag key). Both are secret; local
+workers are processes of this user on this machine. With ``--engine dask``
+they go to the cluster's workers: use only a cluster you trust, over TLS
+(``tls://`` scheduler addresses) when it leaves the machine.
+
+Exit status: 0 when every file was read (claimed or not); 1 when some files
+could not be read (each listed); 2 when no file could be read or none was
+found; 130 when interrupted (the lines and report cover the files done).
+"""
+
+from __future__ import annotations
+
+import csv
+import hashlib
+import hmac
+import io
+import os
+import sys
+import tempfile
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from claimkit.batch import IMAGE_SUFFIXES, find_images
+from claimkit.errors import ClaimkitError, InputError
+from claimkit.runner import Outcome, Progress, StopGuard, make_engine, run_ordered
+
+__all__ = ["CSV_COLUMNS", "PayloadChecker", "ScanSummary", "scan_folders", "scan_task"]
+
+EXIT_OK, EXIT_SOME_UNREADABLE, EXIT_NOTHING_READ, EXIT_INTERRUPTED = 0, 1, 2, 130
+
+CSV_COLUMNS = ("file", "status", "detected", "work_id", "registered",
+               "false_alarm_probability", "message_psnr_db", "rotation_deg", "scale",
+               "flipped", "shift_x_px", "shift_y_px", "width", "height", "sha256", "error")
+
+
+@dataclass(frozen=True)
+class PayloadChecker:
+    """Picklable form of :func:`claimkit.workflow.owner_payload_check`.
+
+    Valid payloads carry the owner's tag, a serial above 0 and the keyed tag
+    ``HMAC-SHA256(tag_key, owner_tag || serial)[:3]``, the derivation of
+    :func:`claimkit.evidence.profile.derive_payload_tag`; a test checks the
+    two agree for the profile's own serials.
+    """
+
+    owner_tag: int
+    tag_key: bytes = field(repr=False)
+
+    def __call__(self, bits) -> bool:
+        from claimkit.mark import payload
+
+        p = payload.unpack(bits)
+        if p["owner_tag"] != self.owner_tag or not 0 < p["serial"] < 2 ** 24:
+            return False
+        msg = self.owner_tag.to_bytes(2, "big") + p["serial"].to_bytes(3, "big")
+        want = int.from_bytes(hmac.new(self.tag_key, msg, hashlib.sha256).digest()[:3], "big")
+        return hmac.compare_digest(want.to_bytes(3, "big"), p["tag"].to_bytes(3, "big"))
+
+    @classmethod
+    def of(cls, profile) -> PayloadChecker:
+        """The checker of an open profile (needs its secrets)."""
+        maker = getattr(profile, "payload_checker", None)
+        if callable(maker):          # the evidence layer's own accessor, when it has one
+            return maker()
+        key = getattr(profile, "_tag_key", None)
+        if key is None:
+            raise InputError("scanning needs the profile opened with its passphrase")
+        return cls(profile.owner_tag, key)
+
+
+def scan_task(path: str, seed: bytes, checker, threshold: float,
+              max_pixels: int | None) -> dict:
+    """Examine one file (runs in a worker; no registry). Returns the report or ``{"error": ...}``."""
+    from claimkit import workflow
+    from claimkit.imageio import read_picture
+
+    p = Path(path)
+    try:
+        pic = read_picture(p, max_pixels=max_pixels)
+        finding = workflow.examine_picture(pic, seed, payload_check=checker, threshold=threshold)
+        rep = workflow.report_for(p, pic, finding, None)
+    except ClaimkitError as exc:
+        return {"file": path, "error": exc.line()}
+    except MemoryError:
+        return {"file": path, "error": f"{path}: not enough memory to examine this picture"}
+    except (OSError, ValueError) as exc:
+        return {"file": path, "error": f"{path}: {exc}"}
+    return rep
+
+
+@dataclass
+class ScanSummary:
+    read: int = 0
+    claimed: int = 0
+    registered: int = 0
+    unreadable: list[str] = field(default_factory=list)
+    added_to_case: int = 0
+    seconds: float = 0.0
+    not_started: int = 0
+    stopped: str | None = None
+
+    def as_dict(self) -> dict:
+        return {"summary": True, "files_read": self.read, "claimed": self.claimed,
+                "claimed_registered": self.registered, "unreadable": len(self.unreadable),
+                "added_to_case": self.added_to_case, "not_started": self.not_started,
+                "seconds": round(self.seconds, 2),
+                "files_per_second": round(self.read / self.seconds, 2) if self.seconds else None,
+                "stopped": self.stopped}
+
+
+class _CaseAdder:
+    """Puts claimed copies into a case through the case layer (skipped if it is missing)."""
+
+    def __init__(self, case_dir: Path, profile, notice):
+        self.case = None
+        self.profile = profile
+        self.notice = notice
+        self.add = None
+        try:
+            from claimkit.case.store import add_exhibit, open_case
+        except ImportError:
+            notice("claimkit: note: this build has no case layer; claimed copies are listed "
+                   f"but not added to {case_dir}")
+            return
+        self.case = open_case(case_dir)       # a missing case is bad input: raise before scanning
+        self.add = add_exhibit
+
+    def __call__(self, path: Path, rep: dict) -> str | None:
+        """Take ``path`` in; returns the exhibit id, or None (with a note) when it was not."""
+        if self.add is None:
+            return None
+        try:
+            ex = self.add(self.case, path, source=f"file found by claimkit scan: {path}",
+                          note=f"claimed as {rep.get('work_id')} by claimkit scan",
+                          profile=self.profile)
+        except ClaimkitError as exc:
+            self.notice(f"claimkit: note: not added to the case: {exc.line()}")
+            return None
+        return ex.exhibit_id
+
+
+def _csv_row(rep: dict) -> dict:
+    geom = rep.get("geometry") or {}
+    shift = geom.get("shift_px") or [None, None]
+    return {
+        "file": rep.get("file"),
+        "status": "unreadable" if "error" in rep else ("claimed" if rep.get("detected")
+                                                       else "not found"),
+        "detected": rep.get("detected"), "work_id": rep.get("work_id"),
+        "registered": rep.get("registered"),
+        "false_alarm_probability": rep.get("false_alarm_probability"),
+        "message_psnr_db": rep.get("message_psnr_db"),
+        "rotation_deg": geom.get("rotation_deg"), "scale": geom.get("scale"),
+        "flipped": geom.get("flipped"), "shift_x_px": shift[0], "shift_y_px": shift[1],
+        "width": rep.get("width"), "height": rep.get("height"), "sha256": rep.get("sha256"),
+        "error": rep.get("error"),
+    }
+
+
+class _CsvReport:
+    """The ``--report`` file: written under a temporary name, renamed when the scan ends."""
+
+    def __init__(self, path: Path):
+        self.path = path
+        if path.exists() and path.is_dir():
+            raise InputError("is a folder; --report names a CSV file", path=path)
+        if not path.parent.is_dir():
+            raise InputError(f"folder {path.parent} does not exist", path=path)
+        fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".partial")
+        self.tmp = Path(tmp)
+        self.fh = io.TextIOWrapper(os.fdopen(fd, "wb"), encoding="utf-8", newline="")
+        self.writer = csv.DictWriter(self.fh, fieldnames=CSV_COLUMNS)
+        self.writer.writeheader()
+
+    def add(self, rep: dict) -> None:
+        self.writer.writerow(_csv_row(rep))
+
+    def close(self) -> None:
+        self.fh.flush()
+        os.fsync(self.fh.fileno())
+        self.fh.close()
+        os.replace(self.tmp, self.path)
+
+    def discard(self) -> None:
+        self.fh.close()
+        self.tmp.unlink(missing_ok=True)
+
+
+def _human_line(rep: dict) -> str:
+    if "error" in rep:
+        return f"unreadable  {rep['error']}"
+    if not rep.get("detected"):
+        return f"-           {rep['file']}"
+    who = rep.get("work_id") or "payload unreadable"
+    reg = "" if rep.get("registered") else " (not in this registry)"
+    geom = rep.get("geometry_text") or ""
+    return (f"CLAIMED     {rep['file']}: {who}{reg}; false-alarm bound "
+            f"{rep.get('false_alarm_text', rep.get('false_alarm_probability'))}; {geom}")
+
+
+def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
+                 report: Path | None = None, case_dir: Path | None = None,
+                 engine: str = "local", scheduler: str | None = None,
+                 workers: int | None = None, progress: bool | None = None,
+                 threshold: float | None = None, max_pixels: int | None = None) -> int:
+    """Examine every image under ``folders`` with the owner's key.
+
+    Parameters
+    ----------
+    profile : Profile
+        Opened with its passphrase (the detection seed and payload check come from it).
+    folders : list of Path
+        Folders (walked recursively) or single files.
+    json_lines : bool
+        One JSON object per file on stdout, in a stable order (the
+        ``examine --json`` fields, plus ``error`` for an unreadable file);
+        the summary goes to stderr as a JSON object with ``"summary": true``.
+    report : Path, optional
+        Also write a CSV with one row per file (columns :data:`CSV_COLUMNS`).
+    case_dir : Path, optional
+        Take every claimed copy into this case (``claimkit case add``).
+    engine, scheduler, workers : see :func:`claimkit.runner.make_engine`.
+    progress : bool, optional
+        Progress bar on stderr (default: when stderr is a terminal).
+    threshold : float, optional
+        False-alarm bound at or below which a file is claimed (default 1e-9).
+
+    Returns
+    -------
+    int
+        Exit status (module notes).
+    """
+    from claimkit.mark import detect
+
+    threshold = detect.DEFAULT_THRESHOLD if threshold is None else float(threshold)
+    if not 0 < threshold < 1:
+        raise InputError(f"--threshold {threshold} must lie between 0 and 1")
+    files, problems = find_images([Path(f) for f in folders], IMAGE_SUFFIXES)
+    for p in problems:
+        if not Path(p.path or "").exists():
+            raise p                      # a folder that is not there is a usage error
+    seed = profile.detection_seed
+    checker = PayloadChecker.of(profile)
+    err = sys.stderr
+
+    def notice(msg: str) -> None:
+        bar.clear()
+        print(msg, file=err, flush=True)
+
+    bar = Progress(len(files), enabled=progress, label="scanning ")
+    adder = _CaseAdder(Path(case_dir), profile, notice) if case_dir is not None else None
+    csv_out = _CsvReport(Path(report)) if report is not None else None
+    s = ScanSummary()
+    for p in problems:
+        s.unreadable.append(p.line())
+    handed = 0
+
+    def handle(o: Outcome) -> None:
+        nonlocal handed
+        handed += 1
+        path = o.item
+        rep = o.value if o.error is None else {"file": str(path), "error": f"{path}: {o.error}"}
+        if "error" in rep:
+            s.unreadable.append(rep["error"])
+        else:
+            s.read += 1
+            if rep.get("detected"):
+                s.claimed += 1
+                serial = rep.get("serial")
+                work = profile.work_by_payload(profile.owner_tag, serial) if serial else None
+                if work is not None:
+                    rep["work_id"], rep["registered"] = work.work_id, True
+                    s.registered += 1
+                if adder is not None:
+                    with guard.critical():
+                        ex = adder(path, rep)
+                    if ex:
+                        rep["exhibit_id"] = ex
+                        s.added_to_case += 1
+        if csv_out is not None:
+            csv_out.add(rep)
+        if json_lines:
+            from claimkit.cli.common import print_json
+            bar.clear()
+            print_json(rep)
+            bar.draw(force=True)
+        else:
+            bar.write(_human_line(rep))
+        bar.advance()
+
+    start = time.monotonic()
+    try:
+        with StopGuard(notice) as guard:
+            if files:
+                eng = make_engine(engine, workers=workers, scheduler=scheduler)
+                run_ordered(eng, scan_task,
+                            ((f, (str(f), seed, checker, threshold, max_pixels))
+                             for f, _root, _rel in files),
+                            handle, guard=guard)
+            s.stopped = guard.reason if guard.requested else None
+    except BaseException:
+        if csv_out is not None:
+            csv_out.discard()
+        raise
+    finally:
+        bar.close()
+    s.seconds = time.monotonic() - start
+    s.not_started = len(files) - handed
+    if csv_out is not None:
+        csv_out.close()
+    return _finish(s, total=len(files) + len(problems), json_lines=json_lines, report=report)
+
+
+def _finish(s: ScanSummary, *, total: int, json_lines: bool, report: Path | None) -> int:
+    err = sys.stderr
+    if json_lines:
+        import json
+        print(json.dumps(s.as_dict(), sort_keys=True), file=err, flush=True)
+    else:
+        rate = s.read / s.seconds if s.seconds > 0 else 0.0
+        line = (f"{s.read} files read, {s.claimed} claimed ({s.registered} in this registry), "
+                f"{len(s.unreadable)} unreadable")
+        if s.added_to_case:
+            line += f", {s.added_to_case} added to the case"
+        if s.not_started:
+            line += f", {s.not_started} not examined"
+        print(f"{line}; {s.seconds:.1f} s, {rate:.1f} files/s", flush=True)
+        if report is not None:
+            print(f"report: {report}", flush=True)
+        if s.claimed:
+            print("A claim rests on technical evidence, not legal advice; consult counsel "
+                  "before acting on it.", flush=True)
+    if s.unreadable:
+        print(f"claimkit: {len(s.unreadable)} file(s) could not be read:", file=err)
+        for line in s.unreadable:
+            print(f"claimkit: error: {line}", file=err)
+    if s.stopped == "interrupted":
+        print("claimkit: interrupted; the lines above cover the files examined so far",
+              file=err, flush=True)
+        return EXIT_INTERRUPTED
+    if total == 0:
+        print("claimkit: error: no image files found", file=err)
+        return EXIT_NOTHING_READ
+    if s.read == 0:
+        return EXIT_NOTHING_READ
+    return EXIT_SOME_UNREADABLE if s.unreadable else EXIT_OK
