@@ -10,5 +10,7 @@ Modules read like the workflow:
 - :mod:`.custodylog` -- the append-only, hash-chained, signed custody log;
 - :mod:`.merkle` -- RFC 6962 Merkle trees and inclusion proofs;
 - :mod:`.timestamp` -- RFC 3161 requests and the checks on responses;
+- :mod:`.stamping` -- one token for many works (Merkle root), pending requests, proofs;
+- :mod:`.checks` -- re-checking a work, or the whole profile against its custody log;
 - :mod:`.disclose` -- what an independent expert receives, and its check.
 """

@@ -7,6 +7,7 @@ picture (as a verifier for evidence should).
 
 from __future__ import annotations
 
+import json
 from dataclasses import dataclass, field
 
 from claimkit.evidence import custodylog
@@ -95,7 +96,6 @@ def audit_profile(profile) -> AuditReport:
     stamped = logged.get("works stamped", set())
     pending_items: set[str] = set()
     for (items,) in profile.db.execute("SELECT items FROM log_outbox"):
-        import json
         pending_items.update(json.loads(items).values())
     for work in profile.works():
         report.works += 1
