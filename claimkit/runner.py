@@ -306,7 +306,8 @@ class DaskEngine(_Engine):
 
     name = "dask"
 
-    def __init__(self, scheduler: str | None = None, workers: int | None = None):
+    def __init__(self, scheduler: str | None = None, workers: int | None = None, *,
+                 timeout: float = 20.0):
         try:
             from dask.distributed import Client, LocalCluster
         except ImportError:
@@ -315,7 +316,7 @@ class DaskEngine(_Engine):
         self._cluster = None
         try:
             if scheduler:
-                self._client = Client(scheduler, timeout="20s")
+                self._client = Client(scheduler, timeout=f"{timeout}s")
             else:
                 self._cluster = LocalCluster(n_workers=workers or default_workers(),
                                              threads_per_worker=1, processes=True,
@@ -352,7 +353,7 @@ class DaskEngine(_Engine):
 
 
 def make_engine(kind: str = "local", *, workers: int | None = None,
-                scheduler: str | None = None) -> _Engine:
+                scheduler: str | None = None, timeout: float = 20.0) -> _Engine:
     """The engine for ``--engine`` / ``--workers`` / ``--scheduler``.
 
     ``local`` with one worker runs in this process (no pool to start).
@@ -360,7 +361,7 @@ def make_engine(kind: str = "local", *, workers: int | None = None,
     if kind not in ENGINES:
         raise InputError(f"unknown engine {kind!r}; use one of {', '.join(ENGINES)}")
     if kind == "dask":
-        return DaskEngine(scheduler, workers)
+        return DaskEngine(scheduler, workers, timeout=timeout)
     if scheduler:
         raise InputError("--scheduler needs --engine dask")
     n = default_workers() if workers is None else int(workers)
