@@ -89,7 +89,7 @@ def test_scan_claims_the_marked_copies_and_names_their_works(profile, finds, tmp
 
 def test_scan_exit_codes(profile, finds, tmp_path, capsys):
     (finds["web"] / "shop" / "broken.jpg").unlink()
-    code, rows, _ = _run(capsys, "scan", str(finds["web"]), "--workers", "1")
+    code, _, _ = _run(capsys, "scan", str(finds["web"]), "--workers", "1")
     assert code == 0
     empty = tmp_path / "empty"
     empty.mkdir()
