@@ -1,0 +1,257 @@
+"""Examine every exhibit of a case and keep the full result in the case folder.
+
+For each exhibit (after re-checking its SHA-256): the blind examination with
+the owner's key and a decoy-key control (the same search under
+:data:`DEFAULT_DECOYS` random keys, the null distribution the observed score
+is set against); the registered work it names (by the payload's work ID, or
+else by the perceptual fingerprint); where the registered file is at hand,
+the alignment of the copy to it (SSIM after alignment, crop box, difference
+map); and the robustness battery of the registered marked file, once per work.
+
+Numbers go to ``findings/EXX.json`` (canonical JSON) and arrays to
+``findings/EXX.npz``; the dossier reads both and computes nothing of its own.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import stat
+from pathlib import Path
+
+import numpy as np
+
+from claimkit import __version__
+from claimkit.case.align import align
+from claimkit.case.store import Case, Exhibit, checked_exhibit_path
+from claimkit.errors import CheckFailed, InputError
+from claimkit.evidence.canonical import canonical_json
+from claimkit.evidence.custodylog import utc_now
+from claimkit.evidence.storage import atomic_write, sha256_file, sha256_hex
+from claimkit.imageio import read_picture, to_luma
+from claimkit.mark import detect
+
+__all__ = ["DEFAULT_DECOYS", "DECOY_SEED", "examine_case", "examine_exhibit", "decoy_summary",
+           "find_reference", "FINDING_TYPE"]
+
+FINDING_TYPE = "claimkit/finding/v1"
+DEFAULT_DECOYS = 64     # random keys in the decoy control; each costs about one pilot search
+DECOY_SEED = 0          # fixed, so that anyone re-running the control gets the same keys
+FINGERPRINT_FRACTION = 0.2   # fingerprint bits that may differ for a match (of all bits)
+
+
+def decoy_summary(scores: list[float], observed: float) -> dict:
+    """How the observed score stands against the decoy keys' best scores.
+
+    The empirical p-value ``(k + 1) / (n + 1)``, with ``k`` decoys scoring at
+    least the observed score, is the standard Monte Carlo estimate (Davison &
+    Hinkley, *Bootstrap Methods and their Application*, 1997, eq. 4.11); it
+    can never be below ``1 / (n + 1)``, which is why the dossier's bound
+    comes from the statistics, and the decoys are a control of it.
+    """
+    arr = np.asarray(scores, dtype=float)
+    if arr.size == 0:
+        return {"count": 0}
+    k = int(np.sum(arr >= observed))
+    return {
+        "count": int(arr.size),
+        "seed": DECOY_SEED,
+        "max": round(float(arr.max()), 4),
+        "mean": round(float(arr.mean()), 4),
+        "std": round(float(arr.std()), 4),
+        "at_or_above_observed": k,
+        "empirical_p": round((k + 1) / (arr.size + 1), 6),
+    }
+
+
+def _fingerprint(luma: np.ndarray) -> str | None:
+    try:
+        from claimkit.mark.fingerprint import perceptual_fingerprint
+    except ImportError:
+        return None
+    return perceptual_fingerprint(luma)
+
+
+def _match_work(profile, rep: dict, luma: np.ndarray) -> dict | None:
+    """The registered work this copy derives from: by the payload, else by the fingerprint."""
+    if rep.get("registered") and rep.get("work_id"):
+        return {"work_id": rep["work_id"], "by": "payload"}
+    fp = _fingerprint(luma)
+    if fp is None:
+        return None
+    hits = profile.works_by_fingerprint(fp, int(len(fp) * 4 * FINGERPRINT_FRACTION))
+    if not hits:
+        return None
+    work, dist = hits[0]
+    return {"work_id": work.work_id, "by": "perceptual fingerprint",
+            "fingerprint_distance_bits": int(dist), "fingerprint_bits": len(fp) * 4}
+
+
+def find_reference(case: Case, work_record: dict, search: list[Path]) -> tuple[Path, str] | None:
+    """The registered marked (preferred) or original file, found by its SHA-256.
+
+    Looks in the case's ``references/`` first, then in the folders in
+    ``search`` (not recursively into hidden folders). A file found outside
+    is copied into ``references/`` (read-only), so the case and its bundle
+    hold it. Returns the path and which file it is ("marked" or "original").
+    """
+    wanted = {work_record.get("marked", {}).get("sha256"): "marked",
+              work_record.get("original", {}).get("sha256"): "original"}
+    wanted.pop(None, None)
+    refs = case.root / "references"
+    found: dict[str, Path] = {}
+    if refs.is_dir():
+        for p in sorted(refs.iterdir()):
+            if p.is_file() and not p.is_symlink() and p.name.split(".")[0] in wanted:
+                if sha256_file(p) == p.name.split(".")[0]:
+                    found[wanted[p.name.split(".")[0]]] = p
+    if "marked" not in found:
+        for folder in search:
+            for p in sorted(Path(folder).rglob("*")):
+                if not p.is_file() or p.is_symlink() or any(x.startswith(".") for x in p.parts[-3:]):
+                    continue
+                if p.stat().st_size > 512 << 20:
+                    continue
+                digest = sha256_file(p)
+                if digest in wanted and wanted[digest] not in found:
+                    refs.mkdir(exist_ok=True)
+                    dest = refs / f"{digest}{p.suffix.lower()}"
+                    if not dest.exists():
+                        tmp = refs / f".{dest.name}.part"
+                        shutil.copyfile(p, tmp)
+                        if sha256_file(tmp) != digest:
+                            tmp.unlink()
+                            raise CheckFailed("changed while it was copied", path=p)
+                        os.chmod(tmp, stat.S_IRUSR | stat.S_IRGRP | stat.S_IROTH)
+                        os.replace(tmp, dest)
+                    found[wanted[digest]] = dest
+            if "marked" in found:
+                break
+    for kind in ("marked", "original"):
+        if kind in found:
+            return found[kind], kind
+    return None
+
+
+def _robustness(profile, work_id: str, ref_path: Path) -> dict | None:
+    """The stress battery on the registered marked file, if the battery is available."""
+    try:
+        from claimkit.stress import run_battery
+    except ImportError:
+        return {"status": "not run", "reason": "the robustness battery is not part of this build"}
+    from claimkit.mark import payload
+    from claimkit.workflow import expected_payload_check
+
+    work = profile.work(work_id)
+    bits = payload.pack(profile.owner_tag, work.serial, profile.payload_tag(work.serial))
+    pic = read_picture(ref_path)
+    rows = run_battery(pic.pixels, profile.detection_seed, expected_payload_check(bits), quick=True)
+    return {"status": "run", "on": "registered marked file", "rows": _jsonable(rows)}
+
+
+def _jsonable(obj):
+    if isinstance(obj, dict):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_jsonable(v) for v in obj]
+    if hasattr(obj, "__dataclass_fields__"):
+        from dataclasses import asdict
+        return _jsonable(asdict(obj))
+    if isinstance(obj, np.generic):
+        return obj.item()
+    if isinstance(obj, float) and not np.isfinite(obj):
+        return None
+    return obj
+
+
+def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_DECOYS,
+                    search: list[Path] | None = None, threshold: float = detect.DEFAULT_THRESHOLD,
+                    robustness_cache: dict | None = None, workers: int = 1) -> dict:
+    """Examine one exhibit; write ``findings/EXX.json`` and ``.npz``; return the finding."""
+    from claimkit import workflow
+
+    path = checked_exhibit_path(case, ex)
+    pic = read_picture(path)
+    luma = to_luma(pic.pixels)
+    finding = workflow.examine_picture(pic, profile.detection_seed,
+                                       payload_check=workflow.owner_payload_check(profile),
+                                       threshold=threshold, decoys=decoys, workers=workers)
+    rep = workflow.report_for(path, pic, finding, profile)
+    rep["file"] = ex.file
+    if rep["sha256"] != ex.sha256:
+        raise CheckFailed(f"{ex.exhibit_id}: stored copy changed during the examination", path=path)
+    match = _match_work(profile, rep, luma)
+    arrays = {"surface": finding.surface.astype(np.float32),
+              "recovered": finding.recovered.astype(np.float32),
+              "reference": finding.reference.astype(np.float32)}
+    alignment = None
+    robustness = None
+    reference = None
+    if match is not None:
+        work = profile.work(match["work_id"])
+        found = find_reference(case, work.record, list(search or []))
+        if found is not None:
+            ref_path, kind = found
+            reference = {"file": ref_path.relative_to(case.root).as_posix(), "kind": kind,
+                         "sha256": sha256_file(ref_path)}
+            ref_pic = read_picture(ref_path)
+            al = align(to_luma(ref_pic.pixels), luma, finding.geometry or None)
+            alignment = al.numbers
+            arrays.update(aligned=al.aligned, difference=al.difference, mask=al.mask)
+            if kind == "marked":
+                cache = robustness_cache if robustness_cache is not None else {}
+                if match["work_id"] not in cache:
+                    cache[match["work_id"]] = _robustness(profile, match["work_id"], ref_path)
+                robustness = cache[match["work_id"]]
+        else:
+            reference = None
+            alignment = {"aligned": False,
+                         "reason": "the registered file was not at hand (give --originals)"}
+    npz = case.arrays_path(ex.exhibit_id)
+    tmp = npz.with_name(f".{npz.name}.part.npz")
+    np.savez_compressed(tmp, **arrays)
+    os.replace(tmp, npz)
+    doc = {
+        "type": FINDING_TYPE,
+        "exhibit_id": ex.exhibit_id,
+        "exhibit_sha256": ex.sha256,
+        "examined": {"time": utc_now(), "time_source": "system clock",
+                     "software": f"claimkit {__version__}", "threshold": threshold,
+                     "decoys": decoys, "decoy_seed": DECOY_SEED},
+        "result": _jsonable(rep),
+        "decoy_scores": [round(float(v), 4) for v in finding.decoy_scores],
+        "decoy_summary": decoy_summary(finding.decoy_scores, finding.z_pilot),
+        "match": match,
+        "reference": reference,
+        "alignment": alignment,
+        "robustness": robustness,
+        "arrays": {"file": npz.relative_to(case.root).as_posix(), "sha256": sha256_file(npz)},
+    }
+    data = canonical_json(doc)
+    atomic_write(case.finding_path(ex.exhibit_id), data + b"\n")
+    profile.log_action("exhibit examined",
+                       items={"exhibit": ex.sha256, "finding": sha256_hex(data + b"\n")},
+                       details={"case_id": case.case_id, "exhibit_id": ex.exhibit_id,
+                                "detected": rep["detected"], "work_id": rep.get("work_id"),
+                                "log10_false_alarm": rep["log10_false_alarm_probability"]})
+    return doc
+
+
+def examine_case(case: Case, profile, *, decoys: int = DEFAULT_DECOYS,
+                 search: list[Path] | None = None, threshold: float = detect.DEFAULT_THRESHOLD,
+                 workers: int = 1, progress=None) -> list[dict]:
+    """Examine every exhibit of the case (in order); returns the findings."""
+    exhibits = case.exhibits()
+    if not exhibits:
+        raise InputError("the case has no exhibits yet (claimkit case add)", path=case.root)
+    if not 0 <= decoys <= 10000:
+        raise InputError(f"decoys {decoys} is outside 0..10000")
+    cache: dict = {}
+    out = []
+    for ex in exhibits:
+        doc = examine_exhibit(case, ex, profile, decoys=decoys, search=search,
+                              threshold=threshold, robustness_cache=cache, workers=workers)
+        if progress is not None:
+            progress(ex, doc)
+        out.append(doc)
+    return out

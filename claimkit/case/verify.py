@@ -1,0 +1,503 @@
+"""``claimkit verify``: check a hand-over bundle as the other side would, trusting nothing in it.
+
+Policy (what must hold) is kept apart from mechanics (how each thing is read):
+every check runs, each failure is named, and the verdict is "all passed" or
+not. Checks, in order:
+
+1. the bundle itself: a zip (or folder) with no absolute paths, no ``..``,
+   no links, no duplicate names, within size limits;
+2. the manifest: its Ed25519 signature by the key in the bundle, every file
+   listed present with its SHA-256, and no file unlisted;
+3. the key: the manifest, the case, the work records and the disclosures all
+   name the same public key;
+4. each key disclosure: record and disclosure signatures, the key
+   commitment, each timestamp token (RFC 3161) and its Merkle inclusion;
+5. the custody log copy: every signature and the hash chain, and that every
+   exhibit's intake and examination are logged with the right hashes;
+6. each exhibit against its intake record; each finding against its exhibit;
+7. each examination re-run from the disclosed detection key, and every stored
+   number compared (the decoy control and the alignment included);
+8. the dossier data rebuilt from the bundle and compared byte for byte with
+   ``report/dossier.json``; the figures redrawn and compared pixel for pixel;
+   the HTML re-rendered and compared; the PDF's PAdES signature checked, and
+   its signed content compared with the PDF re-rendered from the data.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import math
+import os
+import shutil
+import stat
+import tempfile
+import zipfile
+from dataclasses import dataclass, field
+from pathlib import Path, PurePosixPath
+
+import numpy as np
+
+from claimkit.errors import CheckFailed, InputError
+
+__all__ = ["VerifyReport", "verify_bundle", "safe_extract", "MAX_BUNDLE_BYTES"]
+
+MAX_BUNDLE_BYTES = 4 << 30      # unpacked size limit (a guard against zip bombs)
+MAX_FILES = 100_000
+
+
+@dataclass
+class VerifyReport:
+    """Every check and its outcome."""
+
+    bundle: str
+    checks: list[dict] = field(default_factory=list)
+
+    def add(self, name: str, ok: bool, detail: str = "") -> bool:
+        self.checks.append({"check": name, "ok": bool(ok), "detail": detail})
+        return ok
+
+    @property
+    def ok(self) -> bool:
+        return bool(self.checks) and all(c["ok"] for c in self.checks)
+
+    @property
+    def failures(self) -> list[dict]:
+        return [c for c in self.checks if not c["ok"]]
+
+
+# ---------------------------------------------------------------- unpacking
+
+def _unsafe_name(name: str) -> str | None:
+    if not name or "\\" in name or "\x00" in name:
+        return "has a backslash or an empty or NUL name"
+    p = PurePosixPath(name)
+    if p.is_absolute() or name.startswith("/") or (len(name) > 1 and name[1] == ":"):
+        return "is an absolute path"
+    if any(part == ".." for part in p.parts):
+        return "climbs out of the bundle (..)"
+    return None
+
+
+def safe_extract(zip_path: Path, dest: Path) -> list[str]:
+    """Unpack a bundle zip into ``dest``, refusing anything that could escape it.
+
+    Raises
+    ------
+    CheckFailed
+        For an entry with an absolute path, ``..``, a link, a device, a
+        duplicate name, or sizes beyond the limits.
+    """
+    try:
+        zf = zipfile.ZipFile(zip_path)
+    except (zipfile.BadZipFile, OSError) as exc:
+        raise InputError(f"not a readable zip file ({exc})", path=zip_path) from None
+    names = []
+    total = 0
+    with zf:
+        infos = zf.infolist()
+        if len(infos) > MAX_FILES:
+            raise CheckFailed(f"bundle holds {len(infos)} entries (limit {MAX_FILES})",
+                              path=zip_path)
+        seen = set()
+        for info in infos:
+            why = _unsafe_name(info.filename)
+            if why:
+                raise CheckFailed(f"refused entry {info.filename!r}: it {why}", path=zip_path)
+            mode = (info.external_attr >> 16) & 0xFFFF
+            if mode and not (stat.S_ISREG(mode) or stat.S_ISDIR(mode)):
+                kind = "a symbolic link" if stat.S_ISLNK(mode) else "not a regular file"
+                raise CheckFailed(f"refused entry {info.filename!r}: it is {kind}", path=zip_path)
+            norm = str(PurePosixPath(info.filename))
+            if norm in seen:
+                raise CheckFailed(f"refused entry {info.filename!r}: the name appears twice",
+                                  path=zip_path)
+            seen.add(norm)
+            total += info.file_size
+            if total > MAX_BUNDLE_BYTES:
+                raise CheckFailed("bundle unpacks to more than the size limit", path=zip_path)
+        for info in infos:
+            if info.is_dir():
+                continue
+            target = dest / PurePosixPath(info.filename)
+            if not str(target.resolve()).startswith(str(dest.resolve()) + os.sep):
+                raise CheckFailed(f"refused entry {info.filename!r}: it leaves the bundle",
+                                  path=zip_path)
+            target.parent.mkdir(parents=True, exist_ok=True)
+            with zf.open(info) as src, open(target, "wb") as out:
+                shutil.copyfileobj(src, out, 1 << 20)
+            names.append(str(PurePosixPath(info.filename)))
+    return sorted(names)
+
+
+def _folder_files(root: Path) -> list[str]:
+    out = []
+    for dirpath, dirnames, filenames in os.walk(root, followlinks=False):
+        for d in list(dirnames):
+            if Path(dirpath, d).is_symlink():
+                raise CheckFailed(f"refused {Path(dirpath, d).relative_to(root)}: a symbolic link",
+                                  path=root)
+        for f in filenames:
+            p = Path(dirpath, f)
+            rel = p.relative_to(root)
+            if p.is_symlink():
+                raise CheckFailed(f"refused {rel}: a symbolic link", path=root)
+            if any(x.startswith(".") for x in rel.parts):
+                continue
+            out.append(rel.as_posix())
+    return sorted(out)
+
+
+# ---------------------------------------------------------------- comparisons
+
+def _close(a, b, path: str = "") -> list[str]:
+    """Differences between two JSON values; floats equal up to the stored precision."""
+    if isinstance(a, dict) and isinstance(b, dict):
+        out = []
+        for k in sorted(set(a) | set(b)):
+            if k in ("time", "examined_at"):
+                continue
+            if k not in a or k not in b:
+                out.append(f"{path}.{k}: present on one side only")
+            else:
+                out += _close(a[k], b[k], f"{path}.{k}")
+        return out
+    if isinstance(a, list) and isinstance(b, list):
+        if len(a) != len(b):
+            return [f"{path}: {len(a)} items stored, {len(b)} reproduced"]
+        out = []
+        for i, (x, y) in enumerate(zip(a, b)):
+            out += _close(x, y, f"{path}[{i}]")
+        return out
+    if isinstance(a, bool) or isinstance(b, bool) or not isinstance(a, (int, float)) \
+            or not isinstance(b, (int, float)):
+        return [] if a == b else [f"{path}: stored {a!r}, reproduced {b!r}"]
+    if a == b:
+        return []
+    # Rounded values may differ by one unit in their last stored digit.
+    digits = max(_decimals(a), _decimals(b))
+    tol = 1.01 * 10.0 ** (-digits) if digits else 0.0
+    if isinstance(a, float) and isinstance(b, float) and a != 0 and b != 0 and \
+            abs(math.log10(abs(a)) - math.log10(abs(b))) < 1e-9:
+        return []
+    return [] if abs(a - b) <= tol else [f"{path}: stored {a!r}, reproduced {b!r}"]
+
+
+def _decimals(x) -> int:
+    t = repr(x)
+    if "e" in t or "." not in t:
+        return 0
+    return len(t.split(".")[1])
+
+
+# ---------------------------------------------------------------- the checks
+
+def _check_manifest(root: Path, files: list[str], rep: VerifyReport):
+    from claimkit.dossier.build import MANIFEST, MANIFEST_SIG
+    from claimkit.dossier.data import PUBLIC_KEY
+    from claimkit.evidence import signing
+    from claimkit.evidence.storage import sha256_file
+
+    try:
+        body = (root / MANIFEST).read_bytes()
+        sig = (root / MANIFEST_SIG).read_bytes()
+        pub = signing.load_public_pem((root / PUBLIC_KEY).read_bytes())
+    except FileNotFoundError as exc:
+        rep.add("manifest", False, f"{Path(exc.filename).name} missing from the bundle")
+        return None, None
+    except ValueError:
+        rep.add("manifest", False, f"{PUBLIC_KEY} is not an Ed25519 public key")
+        return None, None
+    rep.add("manifest signature", signing.verify(pub, body, sig),
+            "manifest.json is signed by the key in the bundle" if signing.verify(pub, body, sig)
+            else "manifest.json: the Ed25519 signature does not verify (manifest altered or "
+                 "signed by another key)")
+    try:
+        manifest = json.loads(body)
+        listed = {f["path"]: f for f in manifest["files"]}
+    except (ValueError, KeyError, TypeError):
+        rep.add("manifest", False, "manifest.json is not a claimkit manifest")
+        return None, pub
+    fp = signing.fingerprint(signing.raw_public(pub))
+    rep.add("manifest signer", manifest.get("signer", {}).get("public_key_sha256") == fp,
+            f"signer key SHA-256 {fp}")
+    bad = []
+    for rel, f in sorted(listed.items()):
+        if _unsafe_name(rel):
+            bad.append(f"{rel}: unsafe path in the manifest")
+            continue
+        p = root / rel
+        if not p.is_file():
+            bad.append(f"{rel}: listed but missing")
+        elif sha256_file(p) != f["sha256"]:
+            bad.append(f"{rel}: SHA-256 differs from the manifest (file altered)")
+    extra = sorted(set(files) - set(listed) - {MANIFEST, MANIFEST_SIG})
+    bad += [f"{rel}: in the bundle but not in the manifest" for rel in extra]
+    rep.add("file hashes", not bad,
+            "; ".join(bad) if bad else f"{len(listed)} files, every SHA-256 matches")
+    return manifest, pub
+
+
+def _check_disclosures(root: Path, fp: str, rep: VerifyReport) -> dict:
+    """Check each disclosure; returns work_id -> (seed, payload bits, check)."""
+    from claimkit.dossier.data import DISCLOSURES
+    from claimkit.evidence.disclose import check_disclosure
+    from claimkit.mark import payload
+
+    out = {}
+    folder = root / DISCLOSURES
+    if not folder.is_dir():
+        rep.add("key disclosures", False, "no key disclosure in the bundle; nothing can be re-run")
+        return out
+    for d in sorted(folder.iterdir()):
+        try:
+            chk = check_disclosure(d)
+        except InputError as exc:
+            rep.add(f"disclosure {d.name}", False, exc.message)
+            continue
+        probs = list(chk.problems)
+        if chk.public_key_sha256 != fp:
+            probs.append("its public key is not the bundle's (key replaced)")
+        rep.add(f"disclosure {d.name}", not probs,
+                "; ".join(probs) if probs else
+                f"record and disclosure signatures, key commitment and "
+                f"{len(chk.timestamps)} timestamp token(s) verified")
+        if not probs:
+            bits = payload.pack(chk.owner_tag, chk.serial, chk.payload_tag)
+            out[chk.work_id] = (chk.detection_seed, bits, chk)
+    return out
+
+
+def _check_custody(root: Path, pub, exhibits: list[dict], findings: dict, rep: VerifyReport):
+    from claimkit.dossier.data import CUSTODY_COPY
+    from claimkit.evidence.custodylog import verify_log
+    from claimkit.evidence.storage import sha256_file
+
+    log = verify_log(root / CUSTODY_COPY, pub)
+    rep.add("custody log", log.ok, "; ".join(str(p) for p in log.problems) if log.problems
+            else f"{log.lines} entries, signatures and hash chain intact")
+    intake = {}
+    examined = {}
+    for e in log.entries:
+        d = e.get("details", {})
+        if e["action"] == "disputed file taken in":
+            intake[d.get("exhibit_id")] = e["items"]
+        elif e["action"] == "exhibit examined":
+            examined[d.get("exhibit_id")] = e["items"]
+    probs = []
+    for ex in exhibits:
+        i = ex["exhibit_id"]
+        rec = root / "exhibits" / f"{i}.json"
+        if intake.get(i, {}).get("exhibit") != ex["sha256"]:
+            probs.append(f"{i}: no custody entry takes in these bytes")
+        elif rec.is_file() and intake[i].get("intake_record") != sha256_file(rec):
+            probs.append(f"{i}: the intake record differs from the one logged")
+        if i in findings:
+            fpath = root / "findings" / f"{i}.json"
+            if examined.get(i, {}).get("finding") != sha256_file(fpath):
+                probs.append(f"{i}: the stored finding is not the one logged at examination")
+    rep.add("custody of exhibits", not probs,
+            "; ".join(probs) if probs else "every intake and examination is logged with its hashes")
+
+
+def _rerun(root: Path, ex: dict, finding: dict, keys: dict, rep: VerifyReport) -> None:
+    from claimkit.case.align import align
+    from claimkit.case.examine import decoy_summary
+    from claimkit.imageio import read_picture, to_luma
+    from claimkit.mark import detect
+    from claimkit.workflow import examine_picture
+
+    i = ex["exhibit_id"]
+    if not keys:
+        rep.add(f"{i} re-run", False, "no verified disclosure, so no key to re-run with")
+        return
+    seed = next(iter(keys.values()))[0]
+    wanted = [bits for _, bits, _ in keys.values()]
+
+    def check(got) -> bool:
+        g = np.asarray(got, dtype=np.uint8)
+        return any(np.array_equal(g, w) for w in wanted)
+
+    pic = read_picture(root / ex["file"])
+    params = finding["examined"]
+    f = examine_picture(pic, seed, payload_check=check, threshold=params["threshold"],
+                        decoys=params["decoys"])
+    stored = finding["result"]
+    got = f.to_json()
+    got["geometry_text"] = detect.describe_in_words(f.geometry)
+    diffs = []
+    for k, v in got.items():
+        diffs += _close(stored.get(k), v, k)
+    want_work = stored.get("work_id") if stored.get("detected") else None
+    if stored.get("detected"):
+        match = [w for w, (_, bits, _) in keys.items()
+                 if f.payload_bits is not None and np.array_equal(np.asarray(f.payload_bits,
+                                                                             np.uint8), bits)]
+        if want_work and match != [want_work]:
+            diffs.append(f"work_id: stored {want_work}, the re-run payload names {match or 'none'}")
+    diffs += _close(finding["decoy_scores"], [round(float(v), 4) for v in f.decoy_scores],
+                    "decoy_scores")
+    diffs += _close(finding["decoy_summary"], decoy_summary(f.decoy_scores, f.z_pilot),
+                    "decoy_summary")
+    with np.load(root / finding["arrays"]["file"]) as arr:
+        for name in ("surface", "recovered", "reference"):
+            a = arr[name]
+            b = getattr(f, name)
+            if a.shape != b.shape or not np.allclose(a, b, rtol=1e-4, atol=1e-4):
+                diffs.append(f"arrays.{name}: differs from the re-run")
+        stored_arrays = {k: arr[k] for k in arr.files}
+    al = finding.get("alignment")
+    if al and al.get("aligned"):
+        ref = root / finding["reference"]["file"]
+        rpic = read_picture(ref)
+        again = align(to_luma(rpic.pixels), to_luma(pic.pixels), f.geometry or None)
+        diffs += _close(al, again.numbers, "alignment")
+        if "difference" in stored_arrays and not np.array_equal(stored_arrays["difference"],
+                                                               again.difference):
+            diffs.append("arrays.difference: the difference map differs from the re-run")
+    rep.add(f"{i} re-run", not diffs, "; ".join(diffs[:8]) if diffs else
+            f"{'detected' if f.detected else 'not detected'}, log10 P_fa "
+            f"{round(f.log10_false_alarm, 4)}, {len(f.decoy_scores)} decoys and every stored "
+            "number reproduced")
+
+
+def _check_dossier(root: Path, pub, rep: VerifyReport) -> None:
+    from claimkit.dossier.build import DATA, HTML, PDF, draw_figures
+    from claimkit.dossier.data import build_data
+    from claimkit.dossier.pdfsign import check_pdf_signature
+    from claimkit.dossier.render import render_html, render_pdf
+    from claimkit.evidence.canonical import canonical_json
+
+    try:
+        stored = (root / DATA).read_bytes()
+    except FileNotFoundError:
+        rep.add("dossier data", False, f"{DATA} missing")
+        return
+    try:
+        data = build_data(root)
+    except (InputError, CheckFailed, KeyError, ValueError, TypeError) as exc:
+        rep.add("dossier data", False, f"cannot be rebuilt from the bundle ({exc})")
+        return
+    rebuilt = canonical_json(data) + b"\n"
+    if rebuilt == stored:
+        rep.add("dossier data", True, "report/dossier.json equals the data rebuilt from the "
+                                      "findings and records")
+    else:
+        try:
+            diffs = _close(json.loads(stored), data, "dossier")
+        except ValueError:
+            diffs = ["not JSON"]
+        rep.add("dossier data", False, "report/dossier.json differs from the data rebuilt from "
+                "the bundle: " + "; ".join(diffs[:6] or ["(byte differences)"]))
+    from PIL import Image
+    bad = []
+    try:
+        figs = draw_figures(root, data)
+    except (InputError, OSError, KeyError, ValueError) as exc:
+        figs = {}
+        bad.append(f"cannot be redrawn ({exc})")
+    for rel, png in figs.items():
+        p = root / rel
+        if not p.is_file():
+            bad.append(f"{rel}: missing")
+            continue
+        with Image.open(io.BytesIO(png)) as a, Image.open(p) as b:
+            if a.size != b.size or not np.array_equal(np.asarray(a), np.asarray(b.convert(a.mode))):
+                bad.append(f"{rel}: does not show the stored data")
+    rep.add("figures", not bad, "; ".join(bad) if bad else
+            f"{len(figs)} figures redrawn from the stored data, pixel for pixel equal")
+    try:
+        html = render_html(data, root).encode("utf-8")
+        same = (root / HTML).read_bytes() == html
+        rep.add("HTML dossier", same, "re-rendered from the data, identical" if same else
+                "report/dossier.html is not what the data renders to (edited)")
+    except FileNotFoundError:
+        rep.add("HTML dossier", False, f"{HTML} missing")
+    try:
+        pdf = (root / PDF).read_bytes()
+    except FileNotFoundError:
+        rep.add("PDF signature", False, f"{PDF} missing")
+        return
+    chk = check_pdf_signature(pdf, pub)
+    rep.add("PDF signature", chk.ok, "; ".join(chk.problems) if chk.problems else
+            f"PAdES signature by {chk.signer}, certificate issued by the owner's key, "
+            "whole file covered")
+    unsigned = render_pdf(data, root, root / PDF)
+    same = pdf.startswith(unsigned)
+    rep.add("PDF content", same, "the signed PDF is exactly the dossier the data renders to"
+            if same else "the signed PDF's content is not what the data renders to "
+                         "(edited, or rendered with another version of reportlab)")
+
+
+def verify_bundle(path: str | os.PathLike) -> VerifyReport:
+    """Verify a bundle zip or an unpacked bundle/case folder; never raises for a failed check."""
+    from claimkit.dossier.data import case_files
+    from claimkit.evidence import signing
+
+    path = Path(path)
+    rep = VerifyReport(str(path))
+    if not path.exists():
+        raise InputError("no such file or folder", path=path)
+    tmp = None
+    try:
+        if path.is_dir():
+            root = path
+            try:
+                files = _folder_files(root)
+            except CheckFailed as exc:
+                rep.add("bundle layout", False, exc.message)
+                return rep
+        else:
+            tmp = Path(tempfile.mkdtemp(prefix="claimkit-verify-"))
+            try:
+                files = safe_extract(path, tmp)
+            except CheckFailed as exc:
+                rep.add("bundle layout", False, exc.message)
+                return rep
+            root = tmp
+        rep.add("bundle layout", True, f"{len(files)} files, no links, no paths leaving the bundle")
+        manifest, pub = _check_manifest(root, files, rep)
+        if pub is None:
+            return rep
+        fp = signing.fingerprint(signing.raw_public(pub))
+        try:
+            case, exhibits, findings = case_files(root)
+        except (InputError, KeyError, ValueError) as exc:
+            rep.add("case files", False, str(exc))
+            return rep
+        owner_fp = case.get("owner", {}).get("public_key_sha256")
+        rep.add("case key", owner_fp == fp, "case.json names the bundle's key" if owner_fp == fp
+                else "case.json names another key than the bundle's (key replaced)")
+        listed = {f["path"] for f in (manifest or {}).get("files", [])}
+        keys = _check_disclosures(root, fp, rep)
+        _check_custody(root, pub, exhibits, findings, rep)
+        from claimkit.evidence.storage import sha256_file
+        for ex in exhibits:
+            i = ex["exhibit_id"]
+            rel = ex.get("file", "")
+            p = root / rel
+            if _unsafe_name(rel) or not p.is_file():
+                rep.add(f"{i} exhibit", False, f"{rel}: missing (exhibit removed)")
+                continue
+            if rel not in listed:
+                rep.add(f"{i} exhibit", False, f"{rel}: not in the manifest")
+            got = sha256_file(p)
+            rep.add(f"{i} exhibit", got == ex["sha256"],
+                    f"{rel}: SHA-256 as at intake" if got == ex["sha256"] else
+                    f"{rel}: SHA-256 {got[:16]}... differs from the intake record")
+            f = findings.get(i)
+            if f is None:
+                rep.add(f"{i} finding", False, "not examined (no finding in the bundle)")
+                continue
+            if f.get("exhibit_sha256") != ex["sha256"]:
+                rep.add(f"{i} finding", False, "the finding is for other bytes than the exhibit")
+                continue
+            try:
+                _rerun(root, ex, f, keys, rep)
+            except (InputError, OSError, KeyError, ValueError) as exc:
+                rep.add(f"{i} re-run", False, f"cannot be re-run ({exc})")
+        _check_dossier(root, pub, rep)
+        return rep
+    finally:
+        if tmp is not None:
+            shutil.rmtree(tmp, ignore_errors=True)

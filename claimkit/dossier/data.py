@@ -1,0 +1,239 @@
+"""The dossier's data: every number and fact the report shows, gathered from stored files.
+
+One source of truth: :func:`build_data` reads only files of the hand-over
+bundle (``case.json``, the intake records, the stored findings, the key
+disclosures and the custody-log copy) and never computes a result of its
+own. ``claimkit verify`` calls the same function on the bundle it was given
+and compares the outcome, byte for byte, with the stored ``dossier.json``;
+then it re-runs each examination and compares the findings.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+from claimkit import __version__
+from claimkit.errors import InputError
+from claimkit.evidence import signing
+from claimkit.evidence.canonical import canonical_json
+from claimkit.evidence.custodylog import verify_log
+from claimkit.evidence.disclose import check_disclosure
+from claimkit.mark import detect, pattern, stats
+
+__all__ = ["build_data", "DOSSIER_TYPE", "HANDOVER", "CUSTODY_COPY", "PUBLIC_KEY",
+           "REFERENCES_CITED", "case_files"]
+
+DOSSIER_TYPE = "claimkit/dossier/v1"
+HANDOVER = "handover"
+CUSTODY_COPY = f"{HANDOVER}/custody.jsonl"
+PUBLIC_KEY = f"{HANDOVER}/public-key.pem"
+DISCLOSURES = f"{HANDOVER}/disclosures"
+
+#: The published methods the analysis rests on (the method section lists them).
+REFERENCES_CITED = [
+    "J. Ruanaidh, T. Pun, \"Rotation, scale and translation invariant spread spectrum digital "
+    "image watermarking\", Signal Processing 66(3), 303-317, 1998. doi:10.1016/S0165-1684(98)00012-7",
+    "Q. Chen, M. Defrise, F. Deconinck, \"Symmetric phase-only matched filtering of "
+    "Fourier-Mellin transforms for image registration and recognition\", IEEE Trans. PAMI "
+    "16(12), 1156-1168, 1994. doi:10.1109/34.387491",
+    "I. J. Cox, M. L. Miller, J. A. Bloom, J. Fridrich, T. Kalker, Digital Watermarking and "
+    "Steganography, 2nd ed., Morgan Kaufmann, 2008.",
+    "W. Hoeffding, \"Probability inequalities for sums of bounded random variables\", "
+    "J. Amer. Statist. Assoc. 58(301), 13-30, 1963. doi:10.1080/01621459.1963.10500830",
+    "A. J. Viterbi, \"Error bounds for convolutional codes and an asymptotically optimum "
+    "decoding algorithm\", IEEE Trans. Inf. Theory 13(2), 260-269, 1967. doi:10.1109/TIT.1967.1054010",
+    "Z. Wang, A. C. Bovik, H. R. Sheikh, E. P. Simoncelli, \"Image quality assessment: from "
+    "error visibility to structural similarity\", IEEE Trans. Image Process. 13(4), 600-612, "
+    "2004. doi:10.1109/TIP.2003.819861",
+    "D. Padfield, \"Masked object registration in the Fourier domain\", IEEE Trans. Image "
+    "Process. 21(5), 2706-2718, 2012. doi:10.1109/TIP.2011.2181402",
+    "C. Adams, P. Cain, D. Pinkas, R. Zuccherato, \"Time-Stamp Protocol (TSP)\", RFC 3161, "
+    "2001; B. Laurie, A. Langley, E. Kasper, \"Certificate Transparency\", RFC 6962, 2013 "
+    "(Merkle trees); S. Josefsson, I. Liusvaara, \"Edwards-Curve Digital Signature Algorithm "
+    "(EdDSA)\", RFC 8032, 2017.",
+]
+
+
+def _read_json(root: Path, rel: str) -> dict:
+    p = root / rel
+    try:
+        return json.loads(p.read_bytes())
+    except FileNotFoundError:
+        raise InputError("missing", path=p) from None
+    except ValueError:
+        raise InputError("not JSON", path=p) from None
+
+
+def case_files(root: Path) -> tuple[dict, list[dict], dict[str, dict]]:
+    """``case.json``, the intake records in order, and findings by exhibit ID."""
+    case = _read_json(root, "case.json")
+    exhibits = []
+    for p in sorted((root / "exhibits").glob("E[0-9]*.json")):
+        exhibits.append(json.loads(p.read_bytes()))
+    exhibits.sort(key=lambda r: int(r["exhibit_id"][1:]))
+    findings = {}
+    for ex in exhibits:
+        p = root / "findings" / f"{ex['exhibit_id']}.json"
+        if p.is_file():
+            findings[ex["exhibit_id"]] = json.loads(p.read_bytes())
+    return case, exhibits, findings
+
+
+def _works(root: Path) -> list[dict]:
+    out = []
+    folder = root / DISCLOSURES
+    if not folder.is_dir():
+        return out
+    for d in sorted(folder.iterdir()):
+        if not d.is_dir() or d.is_symlink():
+            continue
+        chk = check_disclosure(d)
+        try:
+            record = json.loads((d / "work-record.json").read_bytes())
+        except (OSError, ValueError):
+            record = {}
+        out.append({
+            "work_id": chk.work_id or d.name,
+            "folder": d.relative_to(root).as_posix(),
+            "checks_passed": chk.ok,
+            "problems": list(chk.problems),
+            "serial": chk.serial,
+            "original": record.get("original", {}),
+            "marked": record.get("marked", {}),
+            "registered": record.get("registered", {}),
+            "capture": record.get("capture", {}),
+            "quality": record.get("quality", {}),
+            "mark_params": record.get("mark_params", {}),
+            "fingerprint": record.get("fingerprint"),
+            "key_commitment": record.get("key_commitment", {}),
+            "record_software": record.get("software"),
+            "timestamps": chk.timestamps,
+        })
+    return out
+
+
+def _custody(root: Path, case_id: str, work_ids: set[str]) -> dict:
+    """The custody-log copy: its check, and the entries that concern this case and its works."""
+    log = root / CUSTODY_COPY
+    try:
+        pub = signing.load_public_pem((root / PUBLIC_KEY).read_bytes())
+    except (OSError, ValueError):
+        return {"checked": False, "problems": ["public key missing or unreadable"], "entries": []}
+    rep = verify_log(log, pub)
+    rows = []
+    for e in rep.entries:
+        d = e.get("details", {})
+        if (d.get("case_id") == case_id or d.get("work_id") in work_ids
+                or e["action"] in ("profile created", "works stamped")):
+            rows.append({"seq": e["seq"], "time": e["time"], "actor": e["actor"],
+                         "action": e["action"],
+                         "what": d.get("exhibit_id") or d.get("work_id") or d.get("token_id")
+                         or d.get("title") or "",
+                         "items": {k: v[:16] for k, v in sorted(e["items"].items())}})
+    return {"checked": True, "lines": rep.lines, "ok": rep.ok,
+            "problems": [str(p) for p in rep.problems], "entries": rows,
+            "head_seq": rep.head_seq, "head_sha256": rep.head_hash}
+
+
+def _engine_parameters() -> dict:
+    return {
+        "tile_px": pattern.TILE, "payload_bits": pattern.PAYLOAD_BITS,
+        "pilot_spots": pattern.PILOT_SPOTS, "code_spots": pattern.CODE_SPOTS,
+        "spot_sigma_px": pattern.SPOT_SIGMA,
+        "prefilter_px": detect.PREFILTER, "normalisation_block_px": detect.BLOCK,
+        "geometries_tried": detect.GEOMETRIES, "quarter_turns_and_mirrors": detect.DIHEDRAL,
+        "subpixel_phases": len(detect.PHASES), "hypotheses": detect.hypotheses(),
+        "decode_tries": detect.DECODE_TRIES, "spectral_weighting": detect.WEIGHTING,
+        "bound": "P_fa <= 2 x H x exp(-z^2/2) (sub-Gaussian tail, union over hypotheses)",
+        "floor_log10": stats.FLOOR_LOG10,
+    }
+
+
+def _result(ex: dict, f: dict | None) -> dict:
+    if f is None:
+        return {"exhibit_id": ex["exhibit_id"], "examined": False}
+    r = f["result"]
+    return {
+        "exhibit_id": ex["exhibit_id"], "examined": True,
+        "examined_at": f["examined"]["time"], "threshold": f["examined"]["threshold"],
+        "detected": r["detected"],
+        "log10_false_alarm": r["log10_false_alarm_probability"],
+        "false_alarm_text": r["false_alarm_text"],
+        "score_pilot": r["score_pilot"], "score_full": r["score_full"],
+        "hypotheses": r["hypotheses"], "payload_space": r["payload_space"],
+        "payload_valid": r["payload_valid"], "work_id": r.get("work_id"),
+        "registered": r.get("registered", False),
+        "message_psnr_db": r["message_psnr_db"], "geometry": r["geometry"],
+        "geometry_text": r.get("geometry_text", ""),
+        "decoys": f["decoy_summary"], "match": f.get("match"),
+        "reference": f.get("reference"), "alignment": f.get("alignment"),
+        "robustness": f.get("robustness"),
+        "finding_sha256": None,
+    }
+
+
+def build_data(root: str | Path) -> dict:
+    """Gather the dossier's data from the files of a case folder or an unpacked bundle.
+
+    Returns
+    -------
+    dict
+        JSON-ready; its canonical JSON is stored as ``report/dossier.json``.
+    """
+    from claimkit.evidence.storage import sha256_file
+
+    root = Path(root)
+    case, exhibits, findings = case_files(root)
+    works = _works(root)
+    results = []
+    for ex in exhibits:
+        res = _result(ex, findings.get(ex["exhibit_id"]))
+        if res["examined"]:
+            res["finding_sha256"] = sha256_file(root / "findings" / f"{ex['exhibit_id']}.json")
+        results.append(res)
+    work_ids = {w["work_id"] for w in works}
+    try:
+        pub_pem = (root / PUBLIC_KEY).read_bytes()
+        fp = signing.fingerprint(signing.raw_public(signing.load_public_pem(pub_pem)))
+    except (OSError, ValueError):
+        fp = None
+    owner = case.get("owner", {})
+    detected = [r for r in results if r.get("detected")]
+    data = {
+        "type": DOSSIER_TYPE,
+        "software": f"claimkit {__version__}",
+        "case": {"title": case["title"], "case_id": case["case_id"], "opened": case["opened"]},
+        "claimant": {"name": owner.get("name"), "public_key_sha256": fp,
+                     "case_names_key": owner.get("public_key_sha256") == fp},
+        "works": works,
+        "exhibits": [{k: ex.get(k) for k in ("exhibit_id", "original_name", "file", "sha256",
+                                              "size", "media_type", "width", "height",
+                                              "source", "found", "taken_in", "note")}
+                     for ex in exhibits],
+        "results": results,
+        "summary": {"exhibits": len(exhibits),
+                    "examined": sum(1 for r in results if r["examined"]),
+                    "detected": [r["exhibit_id"] for r in detected],
+                    "works": sorted({r["work_id"] for r in detected if r.get("work_id")}),
+                    "best_log10": min([r["log10_false_alarm"] for r in detected] or [0.0])},
+        "method": {"engine": _engine_parameters(),
+                   "mark": works[0]["mark_params"] if works else {},
+                   "references": REFERENCES_CITED},
+        "custody": _custody(root, case["case_id"], work_ids),
+        "figures": {r["exhibit_id"]: _figure_names(r) for r in results},
+    }
+    canonical_json(data)   # refuse anything that could not be stored
+    return data
+
+
+def _figure_names(r: dict) -> dict:
+    e = r["exhibit_id"]
+    out = {"thumbnail": f"report/figures/{e}-thumbnail.png"}
+    if r.get("examined"):
+        out.update(message=f"report/figures/{e}-message.png",
+                   surface=f"report/figures/{e}-surface.png",
+                   decoys=f"report/figures/{e}-decoys.png")
+        if (r.get("alignment") or {}).get("aligned"):
+            out["aligned"] = f"report/figures/{e}-aligned.png"
+    return out
