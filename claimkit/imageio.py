@@ -768,9 +768,9 @@ def to_luma(pixels: np.ndarray) -> np.ndarray:
     if pixels.ndim == 2:
         luma = pixels.astype(np.float32)
     elif pixels.ndim == 3 and pixels.shape[2] == 3:
-        luma = np.zeros(pixels.shape[:2], np.float32)
-        for c, w in enumerate(_BT601):
-            luma += np.float32(w) * pixels[..., c].astype(np.float32)
+        # einsum reads the interleaved channels in one pass (no per-channel copies)
+        luma = np.einsum("ijk,k->ij", pixels, np.asarray(_BT601, dtype=np.float32),
+                         dtype=np.float32)
     else:
         raise ValueError(f"expected (H, W) or (H, W, 3) pixels, got shape {pixels.shape}")
     if scale != 1.0:

@@ -86,7 +86,7 @@ def mark_file(profile, src: str | os.PathLike, out: str | os.PathLike, *, force:
     measures = {
         "psnr_db": round(quality.psnr(pic.pixels, marked, peak=peak), 3),
     }
-    ssim_value, sampled = quality.ssim(luma, to_luma(marked))
+    ssim_value, sampled = quality.ssim(pic.pixels, marked, grey=to_luma)
     measures["ssim"] = round(ssim_value, 5)
     measures["ssim_sampled"] = sampled
     write_picture(out, marked, like=pic, quality=jpeg_quality, force=force)

@@ -48,6 +48,7 @@ DEFAULT_THRESHOLD = 1e-9
 DEFAULT_PAYLOAD_SPACE = 2 ** 24   # valid payloads per owner: one per work serial
 DECODE_TRIES = 3
 MIN_SIDE = 32
+MAX_EXAMINE_PIXELS = 4_000_000   # larger copies are examined on a central window this big
 
 
 def hypotheses(tile: int = TILE) -> int:
@@ -194,17 +195,32 @@ def spectral_weight(s: np.ndarray) -> np.ndarray:
 class _Prepared:
     """Key-independent part of an examination: folds for every geometric hypothesis."""
 
-    spectra: list[np.ndarray]   # per geometry: (8, T, T) phase-only spectra of the variants
+    spectra: list[np.ndarray]   # per geometry: (8, T, T) weighted spectra of the variants
     transforms: list[np.ndarray | None]
     offsets: list[np.ndarray]
     lattices: list[geometry.Lattice | None]
+    window: tuple[int, int, int, int]   # row, col, height, width of the examined window
+
+
+def central_window(shape: tuple[int, int], max_pixels: int = MAX_EXAMINE_PIXELS):
+    """Row, col, height, width of a central window of at most ``max_pixels`` (same aspect)."""
+    h, w = shape
+    if h * w <= max_pixels:
+        return 0, 0, h, w
+    f = (max_pixels / (h * w)) ** 0.5
+    wh, ww = int(h * f), int(w * f)
+    return (h - wh) // 2, (w - ww) // 2, wh, ww
 
 
 def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1) -> _Prepared:
     """Whiten, estimate the lattice, resample and fold: everything that needs no key."""
     if min(luma.shape) < MIN_SIDE:
         raise ValueError(f"image side below {MIN_SIDE} pixels")
-    x = whiten(luma)
+    # A 4-megapixel window holds far more than enough of a tiled mark; beyond
+    # it, cost would grow with size for no gain in evidence.
+    win = central_window(luma.shape)
+    r0, c0, wh, ww = win
+    x = whiten(luma[r0:r0 + wh, c0:c0 + ww])
     spectra, transforms, offsets, lattices = [], [], [], []
 
     def add(canon, transform, offset, lattice):
@@ -220,7 +236,7 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1) -> _Prepare
         t = lat.transform(tile)
         canon, offset = geometry.to_canonical(x, t)
         add(canon, t, offset, lat)
-    return _Prepared(spectra, transforms, offsets, lattices)
+    return _Prepared(spectra, transforms, offsets, lattices, win)
 
 
 def _surfaces(prep: _Prepared, pattern: KeyPattern, ramps: np.ndarray):
@@ -393,6 +409,7 @@ def describe_geometry(prep: _Prepared, g: int, d: int, phase, shift, tile: int) 
         oy, ox = origin
     else:
         oy, ox = (t @ origin + prep.offsets[g])
+    oy, ox = oy + prep.window[0], ox + prep.window[1]
     return {
         "rotation_deg": round((angle + 180.0) % 360.0 - 180.0, 3),
         "scale": round(float(np.sqrt(abs(np.linalg.det(m)))), 5),
@@ -402,6 +419,7 @@ def describe_geometry(prep: _Prepared, g: int, d: int, phase, shift, tile: int) 
         "resampled": t is not None,
         "lattice_peaks": None if lat is None else lat.inliers,
         "matrix": [[round(float(v), 6) for v in row] for row in m],
+        "examined_window": [int(v) for v in (prep.window[1], prep.window[0], prep.window[3], prep.window[2])],
     }
 
 

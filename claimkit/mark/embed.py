@@ -118,5 +118,20 @@ def mark_delta(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
     e0 = mark_tile(pattern, codeword)
     amp = perceptual_mask(luma, local_ssim=local_ssim, psnr_db=psnr_db)
     if strength != 1.0:
-        amp *= np.float32(strength)
-    return amp * tiled(e0, amp.shape)
+        e0 = e0 * np.float32(strength)
+    return apply_tiled(amp, e0)
+
+
+def apply_tiled(amp: np.ndarray, tile: np.ndarray) -> np.ndarray:
+    """``amp * tiled(tile)`` computed in place on ``amp`` without building the tiled array."""
+    n0, n1 = tile.shape
+    h, w = amp.shape
+    bh, bw = h - h % n0, w - w % n1
+    if bh and bw:
+        blocks = amp[:bh, :bw].reshape(bh // n0, n0, bw // n1, n1)
+        blocks *= tile[None, :, None, :]
+    if bh < h:
+        amp[bh:, :] *= tiled(tile, (h, w))[bh:, :]
+    if bw < w:
+        amp[:bh, bw:] *= tiled(tile, (bh, w))[:, bw:]
+    return amp

@@ -24,8 +24,20 @@ PATCH = 512
 
 
 def psnr(a: np.ndarray, b: np.ndarray, *, peak: float) -> float:
-    """Peak signal-to-noise ratio in dB (inf for identical inputs)."""
-    mse = float(np.mean((np.asarray(a, np.float64) - np.asarray(b, np.float64)) ** 2))
+    """Peak signal-to-noise ratio in dB (inf for identical inputs).
+
+    Integer images are differenced in chunks of rows with exact integer
+    arithmetic, so a 24-megapixel photo needs no float64 copies.
+    """
+    a, b = np.asarray(a), np.asarray(b)
+    if a.dtype.kind == "u" and b.dtype == a.dtype:
+        total = 0
+        for r in range(0, a.shape[0], 256):
+            d = (a[r:r + 256].astype(np.int64) - b[r:r + 256]).ravel()
+            total += int(d @ d)
+        mse = total / a.size
+    else:
+        mse = float(np.mean((a.astype(np.float64) - b.astype(np.float64)) ** 2))
     return float("inf") if mse == 0 else 10.0 * np.log10(peak * peak / mse)
 
 
@@ -41,21 +53,25 @@ def _ssim_map_mean(x: np.ndarray, y: np.ndarray, data_range: float) -> float:
     return float(s[pad:-pad, pad:-pad].astype(np.float64).mean())
 
 
-def ssim(a: np.ndarray, b: np.ndarray, *, data_range: float = 255.0,
+def ssim(a: np.ndarray, b: np.ndarray, *, data_range: float = 255.0, grey=None,
          rng: np.random.Generator | None = None) -> tuple[float, bool]:
-    """Mean SSIM of two grey images and whether it was estimated from sampled patches.
+    """Mean SSIM of two images and whether it was estimated from sampled patches.
 
-    Pictures above ``SAMPLE_ABOVE`` pixels are measured on 24 random
-    ``PATCH x PATCH`` patches (a seeded generator, so the result repeats).
+    ``grey`` (optional) turns a picture or a patch of it into a grey float
+    image (e.g. luma of RGB); it is applied to patches only when sampling, so
+    large photos are never converted whole. Pictures above ``SAMPLE_ABOVE``
+    pixels are measured on 24 random ``PATCH x PATCH`` patches (a seeded
+    generator, so the result repeats).
     """
-    x = np.asarray(a, dtype=np.float32)
-    y = np.asarray(b, dtype=np.float32)
-    if x.size <= SAMPLE_ABOVE or min(x.shape) < 2 * PATCH:
-        return _ssim_map_mean(x, y, data_range), False
+    grey = grey or (lambda z: np.asarray(z, dtype=np.float32))
+    h, w = np.shape(a)[:2]
+    if h * w <= SAMPLE_ABOVE or min(h, w) < 2 * PATCH:
+        return _ssim_map_mean(grey(a), grey(b), data_range), False
     rng = rng or np.random.default_rng(0)
     vals = []
     for _ in range(24):
-        r = int(rng.integers(0, x.shape[0] - PATCH))
-        c = int(rng.integers(0, x.shape[1] - PATCH))
-        vals.append(_ssim_map_mean(x[r:r + PATCH, c:c + PATCH], y[r:r + PATCH, c:c + PATCH], data_range))
+        r = int(rng.integers(0, h - PATCH))
+        c = int(rng.integers(0, w - PATCH))
+        win = (slice(r, r + PATCH), slice(c, c + PATCH))
+        vals.append(_ssim_map_mean(grey(a[win]), grey(b[win]), data_range))
     return float(np.mean(vals)), True
