@@ -21,10 +21,12 @@ AREAS = ("engine", "evidence", "casework", "scale")
 
 
 def build_parser() -> argparse.ArgumentParser:
+    # SUPPRESS: an option given before the command must not be reset by the
+    # command's own copy of it (both levels accept --home and --debug).
     common = argparse.ArgumentParser(add_help=False)
-    common.add_argument("--home", metavar="DIR",
+    common.add_argument("--home", metavar="DIR", default=argparse.SUPPRESS,
                         help="owner profile folder (default: $CLAIMKIT_HOME or ~/.claimkit)")
-    common.add_argument("--debug", action="store_true",
+    common.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
                         help="show a full traceback on errors")
     parser = argparse.ArgumentParser(
         prog="claimkit",
@@ -55,7 +57,7 @@ def main(argv: list[str] | None = None) -> int:
     try:
         code = args.func(args)
     except ClaimkitError as exc:
-        if args.debug:
+        if getattr(args, "debug", False):
             raise
         print(f"claimkit: error: {exc.line()}", file=sys.stderr)
         if exc.hint:
@@ -65,7 +67,7 @@ def main(argv: list[str] | None = None) -> int:
         print("claimkit: interrupted", file=sys.stderr)
         return 130
     except Exception as exc:  # an internal fault: one line unless --debug
-        if args.debug:
+        if getattr(args, "debug", False):
             raise
         print(f"claimkit: error: internal fault ({type(exc).__name__}: {exc}); "
               "run again with --debug for the details", file=sys.stderr)
