@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import argparse
 import importlib
+import os
 import sys
 
 from claimkit import __version__
@@ -63,6 +64,9 @@ def main(argv: list[str] | None = None) -> int:
         if exc.hint:
             print(f"claimkit: hint: {exc.hint}", file=sys.stderr)
         return exc.exit_code
+    except BrokenPipeError:  # output piped into e.g. `head`: stop quietly
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 0
     except KeyboardInterrupt:
         print("claimkit: interrupted", file=sys.stderr)
         return 130
