@@ -2,26 +2,51 @@
 
 The mark repeats with period ``TILE`` in the original, so the copy's
 autocorrelation has peaks on a lattice ``L = A Z^2`` whose basis ``A`` is the
-copy's linear distortion times ``TILE``. We estimate ``A`` from a
-spectrally-flattened autocorrelation of the pre-whitened copy (flattening the
-power spectrum makes the picture's own autocorrelation nearly a delta, while
-the mark's comb of spectral lines survives), pick the lattice that explains
-most peaks, refine it by least squares on sub-pixel peak positions, and
-resample the copy onto the mark's grid. The key is never used here, so the
-number of geometric hypotheses is fixed in advance and the statistics of
-:mod:`claimkit.mark.stats` stay valid. The eight symmetries of the square
+copy's linear distortion times ``TILE``. A single peak of that lattice is
+often too weak to see (a dark, noisy picture; a copy shrunk, rotated and
+recompressed), but the lattice has many points, and their evidence adds up.
+So instead of picking peaks we score whole lattice hypotheses:
+
+1. **Autocorrelation.** The pre-whitened copy (a central window, zero-padded
+   so that lags do not wrap) is transformed; its power spectrum is divided by
+   a local average of itself (the picture's own spectrum becomes nearly flat,
+   the mark's comb of spectral lines survives) and clipped, so that a few
+   strong lines of a periodic texture (brick, a tiled floor, text) cannot
+   outweigh the mark's thousands of weak ones. Each lag is then expressed in
+   units of its own noise level.
+2. **Coarse search in log-polar coordinates.** A square lattice turned by
+   ``theta`` and scaled by ``s`` puts its points at ``log r = log s +
+   log(TILE |n|)`` and ``phi = theta + arg n``: in log-polar coordinates every
+   similarity is a shift of one fixed comb, so all (scale, angle) hypotheses
+   of a grid are scored by summing shifted copies of one resampled array
+   (the idea of Fourier-Mellin registration [1]_, [2]_, applied to the
+   lattice rather than to an image). A few aspect ratios along the picture's
+   axes (a copy squeezed to fit a box) are tried by resampling the same
+   autocorrelation.
+3. **Refinement.** The best few hypotheses are refined as general linear maps
+   (four parameters): the sub-pixel peak near each predicted lattice point is
+   located and the basis is fitted to them by weighted least squares, widening
+   the radius as the estimate sharpens, so that the far lattice points (which
+   fix the basis most precisely) are used last.
+
+The key is never used here, and the number of hypotheses handed to the
+detector is fixed in advance, so the statistics of :mod:`claimkit.mark.stats`
+stay valid whatever the search finds. The eight symmetries of the square
 lattice (quarter turns and mirror) are not estimated: the detector tries all
 eight on the folded tile, where they are exact permutations.
 
 References
 ----------
-.. [1] M. Kutter, "Watermarking resisting to translation, rotation, and
+.. [1] B. S. Reddy, B. N. Chatterji, "An FFT-based technique for translation,
+   rotation, and scale-invariant image registration", IEEE Trans. Image
+   Process. 5(8), 1266-1271, 1996. doi:10.1109/83.506761
+.. [2] J. J. K. O Ruanaidh, T. Pun, "Rotation, scale and translation invariant
+   spread spectrum digital image watermarking", Signal Processing 66(3),
+   303-317, 1998. doi:10.1016/S0165-1684(98)00012-7
+.. [3] M. Kutter, "Watermarking resisting to translation, rotation, and
    scaling", Proc. SPIE 3528, Multimedia Systems and Applications, 1999.
    doi:10.1117/12.337432
-.. [2] S. Voloshynovskiy, F. Deguillaume, T. Pun, "Multibit digital
-   watermarking robust against local nonlinear geometrical distortions",
-   Proc. ICIP 2001. doi:10.1109/ICIP.2001.958473
-.. [3] J. L. Lagrange / C. F. Gauss lattice basis reduction, as in
+.. [4] J. L. Lagrange / C. F. Gauss lattice basis reduction, as in
    H. Cohen, *A Course in Computational Algebraic Number Theory*, Springer,
    1993, alg. 1.3.14.
 """
@@ -29,73 +54,344 @@ References
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 from scipy import fft as sfft
-from scipy import ndimage
+from scipy import ndimage, optimize
 
-ACF_SIZE = 1024          # side of the central window used for the autocorrelation
+ACF_WINDOW = 1152          # largest side of the central window whose autocorrelation is taken
+LAG_MAX = 576              # largest lag used (the zero padding is this wide)
 SCALE_RANGE = (0.45, 2.2)  # copy/original scale the search covers (0.5x..2x with margin)
-LATTICE_CANDIDATES = 2   # fixed number of lattice hypotheses (counted in the statistics)
+ASPECT_RANGE = 0.1         # aspect changes along the picture's axes: up to +-10 %
+LATTICE_CANDIDATES = 2     # fixed number of lattice hypotheses (counted in the statistics)
 MAX_CANON_PIXELS = 6_000_000
+
+FLATTEN_WINDOW = 15        # frequencies averaged to estimate the picture's own power
+FLATTEN_CLIP = 6.0         # cap on the flattened power: no single spectral line dominates
+COARSE_BLUR = 1.2          # smoothing of the autocorrelation for the coarse grids (pixels)
+FINE_BLUR = 0.7            # smoothing for refinement and final scores (pixels)
+# Coarse grids: (largest lag used, log-radius and angle step in radians, aspects, kept).
+# Similarities get a fine grid over many lattice points; squeezed copies a
+# coarser one (2 % aspect steps) over the nearer points, where a 1 % aspect
+# error still moves a point by less than the smoothing.
+SIMILARITY_GRID = (320, 0.005, (1.0,), 6)
+ASPECT_GRID = (192, 0.008, tuple(float(a) for a in np.arange(0.90, 1.105, 0.02) if abs(a - 1) > 0.01), 3)
+REFINE_RADII = (200, 360, LAG_MAX)   # growing radii of the refinement passes
+POLISH_EXTRA = 1           # lattices polished beyond the number returned
 
 
 @dataclass(frozen=True)
 class Lattice:
-    """A lattice found in the copy: basis columns in (row, col) pixels and its support."""
+    """A lattice found in the copy: basis columns in (row, col) pixels and how well it is supported.
+
+    ``score`` is the lattice's summed autocorrelation in standard-normal units
+    (about 0 for a picture without the mark, more than about 6 when the
+    lattice is clearly present); ``inliers`` counts the lattice points whose
+    own peak stands out.
+    """
 
     basis: np.ndarray   # 2x2, columns are the two basis vectors
-    score: float        # summed strength of the peaks it explains (flattened ACF units)
+    score: float
     inliers: int
+    points: int = 0     # lattice points inside the lags searched
 
     def transform(self, tile: int) -> np.ndarray:
         """Linear map from original (row, col) to copy (row, col)."""
         return self.basis / float(tile)
 
 
-def _fast_window(n: int) -> int:
-    return sfft.next_fast_len(n, real=True) if n >= 64 else n
+# ---------------------------------------------------------------- autocorrelation
+
+@dataclass
+class _Acf:
+    z: np.ndarray        # lag map in noise units, lag (0, 0) at [c, c]
+    coarse: np.ndarray   # the same, smoothed more, for the coarse grid
+    weight: np.ndarray   # expected relative signal at each lag (overlap of the window with itself)
+    c: int               # index of lag zero
 
 
-def flattened_acf(x: np.ndarray, *, size: int = ACF_SIZE, workers: int = 1) -> np.ndarray:
-    """Autocorrelation of a central window after flattening its power spectrum (fft-shifted)."""
+def _fast(n: int) -> int:
+    return sfft.next_fast_len(n, real=True)
+
+
+def lag_map(x: np.ndarray, *, window: int = ACF_WINDOW, lag_max: int = LAG_MAX,
+            workers: int = 1) -> _Acf:
+    """Spectrally flattened, clipped autocorrelation of a central window, in noise units.
+
+    Parameters
+    ----------
+    x : ndarray, (H, W)
+        The pre-whitened copy.
+    window : int
+        Largest side of the central window used.
+    lag_max : int
+        Largest lag kept (the window is zero-padded by this much, so lags up
+        to ``lag_max`` do not wrap around).
+
+    Returns
+    -------
+    _Acf
+    """
     h, w = x.shape
-    sh, sw = min(h, size), min(w, size)
+    sh, sw = min(h, window), min(w, window)
     r0, c0 = (h - sh) // 2, (w - sw) // 2
-    win = x[r0:r0 + sh, c0:c0 + sw].astype(np.float32, copy=True)
-    win -= win.mean()
-    win *= np.outer(np.hanning(sh), np.hanning(sw)).astype(np.float32)
-    spec = sfft.rfft2(win, workers=workers)
-    power = (spec.real ** 2 + spec.imag ** 2).astype(np.float32)
-    smooth = ndimage.uniform_filter(power, 9, mode="wrap") + 1e-12
-    acf = sfft.irfft2(power / smooth, s=win.shape, workers=workers)
-    return np.fft.fftshift(acf)
+    win = np.asarray(x[r0:r0 + sh, c0:c0 + sw], dtype=np.float32)
+    win = win - np.float32(win.mean())
+    lag = min(lag_max, max(sh, sw))
+    fh, fw = _fast(sh + lag), _fast(sw + lag)
+    spec = sfft.rfft2(win, s=(fh, fw), workers=workers)
+    power = spec.real * spec.real
+    power += spec.imag * spec.imag
+    del spec
+    local = ndimage.uniform_filter(power, FLATTEN_WINDOW, mode="wrap")
+    local += np.float32(1e-20 + 1e-9 * float(local.mean()))
+    flat = np.minimum(power / local, np.float32(FLATTEN_CLIP))
+    flat[0, 0] = 0.0
+    acf = sfft.irfft2(flat, s=(fh, fw), workers=workers)
+    # Keep lags -lag..lag in both directions, lag zero at the centre.
+    idx_r = np.arange(-lag, lag + 1) % fh
+    idx_c = np.arange(-lag, lag + 1) % fw
+    a = acf[np.ix_(idx_r, idx_c)].astype(np.float32)
+    # The raw autocorrelation at lag L sums over the overlap of the window with
+    # its shifted self: signal grows with the overlap, noise with its square root.
+    d = np.arange(-lag, lag + 1, dtype=np.float32)
+    ov_r = np.clip(1.0 - np.abs(d) / sh, 0.0, None)
+    ov_c = np.clip(1.0 - np.abs(d) / sw, 0.0, None)
+    overlap = np.outer(ov_r, ov_c)
+    noise = np.sqrt(np.maximum(overlap, 1e-6))
+    z = a / noise
+    z[overlap < 0.05] = 0.0
+    fine = _ring_normalise(ndimage.gaussian_filter(z, FINE_BLUR), lag)
+    coarse = _ring_normalise(ndimage.gaussian_filter(z, COARSE_BLUR), lag)
+    weight = np.sqrt(overlap) * (overlap >= 0.05)
+    return _Acf(z=fine, coarse=coarse, weight=weight.astype(np.float32), c=lag)
 
 
-def _peaks(acf: np.ndarray, rmin: float, rmax: float, count: int) -> tuple[np.ndarray, np.ndarray]:
-    """Strongest local maxima in the annulus rmin..rmax, sub-pixel refined (positions rel. to centre)."""
-    h, w = acf.shape
-    cy, cx = h // 2, w // 2
-    yy, xx = np.ogrid[:h, :w]
-    r2 = (yy - cy) ** 2 + (xx - cx) ** 2
-    valid = (r2 >= rmin ** 2) & (r2 <= rmax ** 2)
-    local = (acf == ndimage.maximum_filter(acf, size=5, mode="wrap")) & valid
-    ys, xs = np.nonzero(local)
-    if ys.size == 0:
-        return np.zeros((0, 2)), np.zeros(0)
-    vals = acf[ys, xs]
-    order = np.argsort(vals)[::-1][:count]
-    ys, xs, vals = ys[order], xs[order], vals[order]
-    pos = np.empty((ys.size, 2))
-    for i, (y, x) in enumerate(zip(ys, xs)):
-        pos[i, 0] = y - cy + _parabolic(acf[(y - 1) % h, x], acf[y, x], acf[(y + 1) % h, x])
-        pos[i, 1] = x - cx + _parabolic(acf[y, (x - 1) % w], acf[y, x], acf[y, (x + 1) % w])
-    return pos, vals
+@lru_cache(maxsize=4)
+def _rings(c: int, width: float = 4.0, step: int = 3) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Ring index of every lag of a (2c+1)^2 map, the same on a sparse subgrid, and counts there."""
+    d = np.arange(-c, c + 1, dtype=np.float32)
+    ring = (np.sqrt(d[:, None] ** 2 + d[None, :] ** 2) / np.float32(width)).astype(np.int32)
+    sub = ring[::step, ::step].ravel()
+    return ring, sub, np.bincount(sub, minlength=ring.max() + 1).astype(np.float64)
 
 
-def _parabolic(a: float, b: float, c: float) -> float:
+def _ring_normalise(z: np.ndarray, c: int) -> np.ndarray:
+    """Divide each ring of lags by its own robust spread (picture structure left at short lags).
+
+    The spread is estimated on every third lag in each direction: it varies
+    slowly with the radius, and the full map would cost more than the search.
+    """
+    ring, sub, n = _rings(c)
+    v = z[::3, ::3].ravel()
+    v2 = v * v
+    s2 = np.bincount(sub, v2, minlength=n.size) / np.maximum(n, 1)
+    # Second pass without the outliers (the mark's own peaks would inflate the spread);
+    # a Gaussian clipped at 4 sigma keeps 99.99 % of its variance, so no correction.
+    keep = v2 <= 16.0 * s2[sub]
+    n2 = np.bincount(sub, keep, minlength=n.size)
+    s2 = np.bincount(sub, np.where(keep, v2, 0.0), minlength=n.size) / np.maximum(n2, 1)
+    inv = np.where(s2 > 0, 1.0 / np.sqrt(np.maximum(s2, 1e-30)), 1.0).astype(np.float32)
+    return z * inv[ring]
+
+
+# ---------------------------------------------------------------- coarse search
+
+def _comb(max_norm: float) -> tuple[np.ndarray, np.ndarray]:
+    """Lattice vectors n != 0 with |n| <= max_norm, one per orbit of the quarter turn.
+
+    Returns log|n| and arg n in [0, pi/2) (angle measured from +col towards +row).
+    """
+    m = int(np.ceil(max_norm))
+    i, j = np.meshgrid(np.arange(-m, m + 1), np.arange(-m, m + 1), indexing="ij")
+    i, j = i.ravel(), j.ravel()
+    nrm = np.hypot(i, j)
+    keep = (nrm > 0) & (nrm <= max_norm)
+    ang = np.arctan2(i[keep], j[keep])
+    rep = (ang >= 0) & (ang < np.pi / 2 - 1e-9)     # one of the four quarter-turn copies
+    return np.log(nrm[keep][rep]), ang[rep]
+
+
+def _coarse(acf: _Acf, tile: int, grid) -> list[tuple[float, np.ndarray]]:
+    """Score a log-polar grid of (scale, angle, aspect) hypotheses; return the best few."""
+    radius, d, aspects, keep = grid
+    lo, hi = SCALE_RANGE
+    r_lo = lo * tile * (1 - ASPECT_RANGE)
+    r_hi = min(radius, acf.c - 2)
+    if r_hi <= r_lo * 1.2:
+        return []
+    n_phi = int(round((np.pi / 2) / d))
+    dphi = (np.pi / 2) / n_phi
+    n_rho = int(np.ceil(np.log(r_hi / r_lo) / d)) + 1
+    rho = np.log(r_lo) + d * np.arange(n_rho)
+    phi = dphi * np.arange(n_phi)
+    rr = np.exp(rho)[:, None]
+    # Expected signal weight and noise-normalising denominator depend on the
+    # radius; take them radially (mean over directions) for the grid.
+    wr = _radial_profile(acf.weight, acf.c, np.exp(rho))
+    log_n, arg_n = _comb(r_hi / (lo * tile * (1 - ASPECT_RANGE)))
+    sh_rho = np.rint(log_n / d).astype(int)
+    sh_phi = np.rint(arg_n / dphi).astype(int)
+    # Scale index k: log s = rho[k] - log(tile), so lattice point n sits at row k + sh_rho.
+    k_lo = int(np.ceil((np.log(lo * tile) - rho[0]) / d))
+    k_hi = min(n_rho - 1, int(np.floor((np.log(hi * tile) - rho[0]) / d)))
+    if k_hi < k_lo:
+        return []
+    best = []
+    for a in aspects:
+        # Sample at lag (row, col) = (r sin phi, a r cos phi); both quarter-turn copies summed.
+        sp, cp = np.sin(phi)[None, :], np.cos(phi)[None, :]
+        coords1 = np.stack([acf.c + rr * sp, acf.c + a * rr * cp])
+        coords2 = np.stack([acf.c + rr * cp, acf.c - a * rr * sp])
+        g = (ndimage.map_coordinates(acf.coarse * acf.weight, coords1.reshape(2, -1), order=1)
+             + ndimage.map_coordinates(acf.coarse * acf.weight, coords2.reshape(2, -1), order=1))
+        g = g.reshape(n_rho, n_phi)
+        num = np.zeros((k_hi - k_lo + 1, n_phi))
+        den = np.zeros(k_hi - k_lo + 1)
+        ks = np.arange(k_lo, k_hi + 1)
+        for sr, sp_ in zip(sh_rho, sh_phi):
+            rows = ks + sr
+            ok = rows < n_rho
+            if not ok.any():
+                continue
+            num[ok] += np.roll(g[rows[ok]], -sp_, axis=1)
+            den[ok] += 2.0 * wr[rows[ok]] ** 2
+        score = num / np.sqrt(np.maximum(den, 1e-12))[:, None]
+        # Local maxima of the score surface (angle is circular).
+        mx = ndimage.maximum_filter(score, size=(7, 7), mode=("nearest", "wrap"))
+        peaks = np.argwhere((score == mx) & (score > 0))
+        vals = score[peaks[:, 0], peaks[:, 1]]
+        order = np.argsort(vals)[::-1][:keep]
+        for (ki, pj), v in zip(peaks[order], vals[order]):
+            s = np.exp(rho[ki + k_lo]) / tile
+            theta = phi[pj]
+            best.append((float(v), _basis(s * tile, theta, a)))
+    best.sort(key=lambda t: -t[0])
+    return best[:keep]
+
+
+def _radial_profile(img: np.ndarray, c: int, radii: np.ndarray) -> np.ndarray:
+    """Mean of ``img`` over directions at each radius (sampled on 64 directions)."""
+    ang = np.linspace(0, 2 * np.pi, 64, endpoint=False)
+    rr = radii[:, None]
+    coords = np.stack([c + rr * np.sin(ang)[None, :], c + rr * np.cos(ang)[None, :]])
+    vals = ndimage.map_coordinates(img, coords.reshape(2, -1), order=1, mode="constant")
+    return vals.reshape(radii.size, ang.size).mean(axis=1)
+
+
+def _basis(period: float, theta: float, aspect: float) -> np.ndarray:
+    """Basis (columns, (row, col)) of a square lattice turned by theta, columns scaled by aspect."""
+    c, s = np.cos(theta), np.sin(theta)
+    # Column 0 is the image of the original +col step, column 1 of the +row step.
+    u = np.array([s, aspect * c]) * period
+    v = np.array([c, -aspect * s]) * period
+    return np.stack([v, u], axis=1)
+
+
+# ---------------------------------------------------------------- refinement and scoring
+
+def _points(basis: np.ndarray, r_min: float, r_max: float) -> np.ndarray:
+    """Integer vectors n (one of each +-pair) with r_min <= |basis n| <= r_max."""
+    inv = np.linalg.inv(basis)
+    m = int(np.ceil(r_max * np.max(np.abs(inv)) * 2)) + 1
+    i, j = np.meshgrid(np.arange(-m, m + 1), np.arange(0, m + 1), indexing="ij")
+    n = np.stack([i.ravel(), j.ravel()])
+    half = (n[1] > 0) | ((n[1] == 0) & (n[0] > 0))
+    n = n[:, half]
+    r = np.linalg.norm(basis @ n, axis=0)
+    return n[:, (r >= r_min) & (r <= r_max)].astype(float)
+
+
+def lattice_score(acf: _Acf, basis: np.ndarray, r_min: float, r_max: float) -> tuple[float, int]:
+    """Summed weighted autocorrelation over the lattice points, in standard-normal units."""
+    n = _points(basis, r_min, min(r_max, acf.c - 2))
+    if n.shape[1] == 0:
+        return 0.0, 0
+    p = basis @ n + acf.c
+    z = ndimage.map_coordinates(acf.z, p, order=1)
+    w = ndimage.map_coordinates(acf.weight, p, order=1)
+    return float(np.sum(w * z) / np.sqrt(np.sum(w * w) + 1e-12)), int(n.shape[1])
+
+
+def _refine(acf: _Acf, basis: np.ndarray, r_min: float) -> tuple[np.ndarray, int]:
+    """Weighted least-squares fit of the basis to sub-pixel peaks near the predicted lattice points."""
+    z = acf.z
+    size = z.shape[0]
+    inliers = 0
+    shortest = float(np.min(np.linalg.norm(basis, axis=0)))
+    for radius in REFINE_RADII:
+        radius = min(max(radius, 1.6 * shortest), acf.c - 4)
+        for _ in range(2):
+            n = _points(basis, r_min, radius)
+            if n.shape[1] < 2:
+                return basis, inliers
+            p = basis @ n + acf.c
+            ip = np.rint(p).astype(int)
+            ok = np.all((ip >= 3) & (ip < size - 3), axis=0)
+            n, p, ip = n[:, ok], p[:, ok], ip[:, ok]
+            # Best integer position in a 5x5 neighbourhood of each prediction.
+            offs = np.arange(-2, 3)
+            rr = ip[0][:, None, None] + offs[None, :, None]
+            cc = ip[1][:, None, None] + offs[None, None, :]
+            patch = z[rr, cc].reshape(ip.shape[1], -1)
+            k = np.argmax(patch, axis=1)
+            pr = ip[0] + offs[k // 5]
+            pc = ip[1] + offs[k % 5]
+            peak = z[pr, pc]
+            # Parabolic sub-pixel offsets along each axis.
+            dr = _parabola(z[pr - 1, pc], peak, z[pr + 1, pc])
+            dc = _parabola(z[pr, pc - 1], peak, z[pr, pc + 1])
+            obs = np.stack([pr + dr, pc + dc]).astype(float)
+            # Only peaks that stand out carry weight; stronger peaks count more.
+            wgt = np.clip(peak - 2.5, 0.0, None) ** 2
+            inliers = int(np.count_nonzero(wgt))
+            if inliers < 3:
+                return basis, inliers
+            # Residuals far beyond the prediction error are noise peaks.
+            wgt = np.where(np.linalg.norm(obs - p, axis=0) <= 2.2, wgt, 0.0)
+            nn = (n * wgt) @ n.T
+            if abs(np.linalg.det(nn)) < 1e-9:
+                return basis, inliers
+            basis = ((obs - acf.c) * wgt) @ n.T @ np.linalg.inv(nn)
+    return basis, inliers
+
+
+def _polish(acf: _Acf, basis: np.ndarray, r_min: float) -> np.ndarray:
+    """Maximise the lattice score itself over the four entries of the basis (Nelder-Mead).
+
+    Where the individual peaks are too weak for :func:`_refine` to locate, the
+    sum over all lattice points still has a clear maximum; its position fixes
+    the basis to a small fraction of a pixel at the largest lag.
+    """
+    n = _points(basis, r_min, acf.c - 2)
+    if n.shape[1] < 3:
+        return basis
+    period = float(np.mean(np.linalg.norm(basis, axis=0)))
+    far = float(np.max(np.linalg.norm(basis @ n, axis=0)))
+    unit = period / far          # a unit step moves the farthest point by about a pixel
+    zw = acf.z * acf.weight
+
+    def cost(v):
+        p = (basis + unit * v.reshape(2, 2)) @ n + acf.c
+        return -float(np.sum(ndimage.map_coordinates(zw, p, order=1)))
+
+    res = optimize.minimize(cost, np.zeros(4), method="Nelder-Mead",
+                            options={"initial_simplex": _simplex(1.0), "xatol": 0.02,
+                                     "fatol": 1e-9, "maxfev": 300})
+    return basis + unit * res.x.reshape(2, 2)
+
+
+def _simplex(step: float) -> np.ndarray:
+    s = np.zeros((5, 4))
+    s[1:] = np.eye(4) * step
+    return s
+
+
+def _parabola(a: np.ndarray, b: np.ndarray, c: np.ndarray) -> np.ndarray:
     den = a - 2 * b + c
-    return 0.0 if den >= 0 else float(np.clip(0.5 * (a - c) / den, -0.5, 0.5))
+    safe = np.where(den < 0, den, -1.0)
+    return np.where(den < 0, np.clip(0.5 * (a - c) / safe, -0.5, 0.5), 0.0)
 
 
 def _reduce(basis: np.ndarray) -> np.ndarray:
@@ -112,61 +408,80 @@ def _reduce(basis: np.ndarray) -> np.ndarray:
     return np.stack([u, v], axis=1)
 
 
-def _fit(basis, pos, vals, tol):
-    coef = np.linalg.solve(basis, pos.T)          # 2 x m
-    idx = np.rint(coef)
-    resid = np.linalg.norm(pos.T - basis @ idx, axis=0)
-    ok = (resid < tol) & np.any(idx != 0, axis=0)
-    return ok, idx
+def _same_lattice(a: np.ndarray, b: np.ndarray, tol: float = 0.02) -> bool:
+    m = np.linalg.solve(a, b)
+    return bool(np.allclose(m, np.rint(m), atol=tol) and round(abs(np.linalg.det(m))) == 1)
+
+
+def _plausible(basis: np.ndarray, tile: int) -> bool:
+    lo, hi = SCALE_RANGE
+    s = np.sqrt(abs(np.linalg.det(basis))) / tile
+    sv = np.linalg.svd(basis, compute_uv=False)
+    return bool(lo * 0.97 <= s <= hi * 1.03 and sv[0] / sv[1] <= (1 + ASPECT_RANGE) / (1 - ASPECT_RANGE) * 1.02)
 
 
 def find_lattices(x: np.ndarray, tile: int, *, workers: int = 1,
                   candidates: int = LATTICE_CANDIDATES) -> list[Lattice]:
-    """Up to ``candidates`` lattices that could be the mark's, best first."""
-    acf = flattened_acf(x, workers=workers)
-    lo, hi = SCALE_RANGE
-    rmin, rmax = 0.9 * lo * tile, min(1.1 * hi * tile, 0.45 * min(acf.shape))
-    if rmax <= rmin:
+    """The ``candidates`` lattices most likely to be the mark's, best first.
+
+    Parameters
+    ----------
+    x : ndarray, (H, W)
+        The pre-whitened copy (see :func:`claimkit.mark.detect.whiten`).
+    tile : int
+        Period of the mark in the original, pixels.
+    workers : int
+        Threads for the Fourier transforms.
+    candidates : int
+        How many lattices to return at most; the detector counts exactly
+        this many geometric hypotheses, found or not.
+
+    Returns
+    -------
+    list of Lattice
+        Best first (highest ``score``); may be shorter than ``candidates``
+        for a copy too small to hold two periods.
+    """
+    if min(x.shape) < 2 * SCALE_RANGE[0] * tile:
         return []
-    pos, vals = _peaks(acf, rmin, min(2.2 * rmax, 0.48 * min(acf.shape)), 40)
-    if pos.shape[0] < 2:
-        return []
-    # Basis candidates come from the strongest peaks inside the primitive range.
-    norms = np.linalg.norm(pos, axis=1)
-    short = np.nonzero(norms <= rmax)[0][:14]
+    acf = lag_map(x, workers=workers)
+    r_min = SCALE_RANGE[0] * tile * (1 - ASPECT_RANGE) * 0.9
+    rough: list[Lattice] = []
+    for _, basis in _coarse(acf, tile, SIMILARITY_GRID) + _coarse(acf, tile, ASPECT_GRID):
+        refined, inliers = _refine(acf, basis, r_min)
+        refined = _reduce(refined)
+        if _plausible(refined, tile):
+            score, points = lattice_score(acf, refined, r_min, acf.c)
+            rough.append(Lattice(basis=refined, score=score, inliers=inliers, points=points))
+    # Polish only the best few (the costly step), then rank again.
     found: list[Lattice] = []
-    tried = []
-    for i in short:
-        for j in short:
-            if j <= i:
-                continue
-            basis = np.stack([pos[i], pos[j]], axis=1)
-            det = abs(np.linalg.det(basis))
-            if det < (0.9 * lo * tile) ** 2 * 0.5:
-                continue
-            basis = _reduce(basis)
-            if np.linalg.norm(basis[:, 0]) < rmin:
-                continue
-            ok, idx = _fit(basis, pos, vals, tol=1.5)
-            if ok.sum() < 3:
-                continue
-            # Least-squares refinement on the sub-pixel peaks that fit.
-            n_ = idx[:, ok]
-            p_ = pos[ok].T
-            refined = p_ @ n_.T @ np.linalg.inv(n_ @ n_.T)
-            refined = _reduce(refined)
-            score = float(vals[ok].sum())
-            if any(_same_lattice(refined, t) for t in tried):
-                continue
-            tried.append(refined)
-            found.append(Lattice(basis=refined, score=score, inliers=int(ok.sum())))
-    found.sort(key=lambda l: (-l.score, abs(np.linalg.det(l.basis))))
-    return found[:candidates]
+    for lat in _distinct(rough)[:candidates + POLISH_EXTRA]:
+        basis = _reduce(_polish(acf, lat.basis, r_min))
+        if _plausible(basis, tile):
+            score, points = lattice_score(acf, basis, r_min, acf.c)
+            found.append(Lattice(basis=basis, score=score, inliers=lat.inliers, points=points))
+    return _distinct(found)[:candidates]
 
 
-def _same_lattice(a: np.ndarray, b: np.ndarray) -> bool:
-    m = np.linalg.solve(a, b)
-    return bool(np.allclose(m, np.rint(m), atol=0.05) and abs(round(abs(np.linalg.det(m)))) == 1)
+def _distinct(lattices: list[Lattice]) -> list[Lattice]:
+    """Best first, dropping aliases.
+
+    A lattice that contains, or is contained in, a better one is its alias
+    (every other point, or points halfway between): only the best is kept.
+    """
+    kept: list[Lattice] = []
+    for lat in sorted(lattices, key=lambda item: -item.score):
+        if not any(_related(lat.basis, k.basis) for k in kept):
+            kept.append(lat)
+    return kept
+
+
+def _related(a: np.ndarray, b: np.ndarray, tol: float = 0.03) -> bool:
+    """True when one lattice is (nearly) a sublattice of the other, the same lattice included."""
+    for m in (np.linalg.solve(a, b), np.linalg.solve(b, a)):
+        if np.allclose(m, np.rint(m), atol=tol) and abs(np.linalg.det(np.rint(m))) >= 1:
+            return True
+    return False
 
 
 def to_canonical(x: np.ndarray, transform: np.ndarray, *,
@@ -176,6 +491,13 @@ def to_canonical(x: np.ndarray, transform: np.ndarray, *,
     ``transform`` maps original (row, col) offsets to copy offsets. The output
     covers the copy (or its central part when that would exceed
     ``max_pixels``); pixels outside the copy are 0.
+
+    Returns
+    -------
+    canon : ndarray
+        The resampled copy.
+    offset : ndarray, (2,)
+        Copy position of canonical pixel (0, 0): copy = transform @ canon + offset.
     """
     h, w = x.shape
     inv = np.linalg.inv(transform)
