@@ -158,13 +158,18 @@ def tables(data: dict, name: str, arg: str | None) -> tuple[list[str], list[list
     if name == "robustness":
         r = next(x for x in data["results"] if x["exhibit_id"] == arg)
         rows_in = (r.get("robustness") or {}).get("rows") or []
-        if isinstance(rows_in, dict):
-            rows_in = [{"edit": k, **(v if isinstance(v, dict) else {"value": v})}
-                       for k, v in rows_in.items()]
-        if not rows_in:
-            return ["Robustness"], [["no rows"]]
-        keys = [k for k in rows_in[0] if not isinstance(rows_in[0][k], (dict, list))]
-        return keys, [[_cell(row.get(k)) for k in keys] for row in rows_in]
+        head = ["Edit", "Found", "Same work", "False-alarm bound", "Message PSNR (dB)",
+                "Geometry right"]
+        rows = []
+        for row in rows_in:
+            lp = row.get("log10_false_alarm_probability")
+            bound = "" if lp is None else (f"below 1e{int(math.floor(lp))}" if lp < -3
+                                           else f"{10 ** lp:.2g}")
+            rows.append([str(row.get("attack", "")), _cell(row.get("detected")),
+                         _cell(row.get("same_payload")) or "n/a", bound,
+                         _cell(row.get("message_psnr_db")) or "n/a",
+                         _cell(row.get("geometry_ok"))])
+        return head, rows or [["(no rows)", "", "", "", "", ""]]
     raise KeyError(f"no table {name}")
 
 

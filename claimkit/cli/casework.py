@@ -1,0 +1,216 @@
+"""Commands of casework: case new/add/examine/export, report, verify, demo."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from claimkit.cli.common import home_dir, passphrase, print_json
+from claimkit.errors import CheckFailed
+
+CAUTION = ("Technical evidence, not legal advice. Consult counsel; the rules on evidence, "
+           "registration and takedown notices differ between jurisdictions.")
+
+
+def _profile(args):
+    from claimkit.evidence.profile import Profile
+
+    return Profile.open(home_dir(args), passphrase())
+
+
+def cmd_case_new(args) -> int:
+    from claimkit.case.store import new_case
+
+    with _profile(args) as p:
+        case = new_case(args.dir, args.title, p)
+    if args.json:
+        print_json({"case": str(case.root), "case_id": case.case_id, "title": case.title})
+    else:
+        print(f"case {case.case_id} opened in {case.root}: {case.title}")
+    return 0
+
+
+def cmd_case_add(args) -> int:
+    from claimkit.case.store import add_exhibit, open_case
+
+    case = open_case(args.dir)
+    with _profile(args) as p:
+        out = []
+        for f in args.files:
+            ex = add_exhibit(case, f, source=args.source, found=args.found, by=args.by,
+                             note=args.note, profile=p)
+            out.append(ex)
+    for ex in out:
+        r = ex.record
+        if args.json:
+            print_json({"exhibit_id": ex.exhibit_id, "file": r["file"], "sha256": r["sha256"],
+                        "size": r["size"], "media_type": r["media_type"],
+                        "width": r["width"], "height": r["height"]})
+        else:
+            print(f"{ex.exhibit_id}: {r['original_name']} taken in, {r['width']}x{r['height']}, "
+                  f"{r['size']} bytes, SHA-256 {r['sha256']}")
+    return 0
+
+
+def cmd_case_examine(args) -> int:
+    from claimkit.case.examine import DEFAULT_DECOYS, examine_case
+    from claimkit.case.store import open_case
+
+    case = open_case(args.dir)
+    search = [Path(p) for p in (args.originals or [])]
+
+    def progress(ex, doc):
+        r = doc["result"]
+        if args.json:
+            print_json({"exhibit_id": ex.exhibit_id, "file": r["file"], "detected": r["detected"],
+                        "false_alarm_probability": r["false_alarm_probability"],
+                        "work_id": r.get("work_id"), "message_psnr_db": r["message_psnr_db"],
+                        "geometry": r["geometry"], "match": doc["match"],
+                        "ssim_aligned": (doc["alignment"] or {}).get("ssim"),
+                        "decoys": doc["decoy_summary"]})
+            return
+        if r["detected"]:
+            line = (f"{ex.exhibit_id}: MARK FOUND, work {r.get('work_id')}; false-alarm bound "
+                    f"{r['false_alarm_text']}; {r['geometry_text']}")
+        else:
+            line = f"{ex.exhibit_id}: no mark of this owner found"
+        al = doc.get("alignment") or {}
+        if al.get("aligned"):
+            line += f"; SSIM after alignment {al['ssim']:.3f}"
+        d = doc["decoy_summary"]
+        if d.get("count"):
+            line += f"; decoys: {d['at_or_above_observed']} of {d['count']} reached the score"
+        print(line)
+
+    with _profile(args) as p:
+        examine_case(case, p, decoys=DEFAULT_DECOYS if args.decoys is None else args.decoys, search=search, progress=progress,
+                     workers=args.workers)
+    return 0
+
+
+def cmd_case_export(args) -> int:
+    from claimkit.case.bundle import export_bundle
+    from claimkit.case.store import open_case
+
+    case = open_case(args.dir)
+    with _profile(args) as p:
+        rep = export_bundle(case, args.out, p, force=args.force)
+    if args.json:
+        print_json(rep)
+    else:
+        print(f"bundle written to {rep['bundle']} ({rep['files']} files, SHA-256 {rep['sha256']})")
+        print("Anyone can check it with: claimkit verify " + rep["bundle"])
+    return 0
+
+
+def cmd_report(args) -> int:
+    from claimkit.case.store import open_case
+    from claimkit.dossier.build import build_report
+
+    case = open_case(args.dir)
+    with _profile(args) as p:
+        rep = build_report(case, p, out_pdf=Path(args.out) if args.out else None)
+    if args.json:
+        print_json(rep)
+    else:
+        print(f"dossier: {rep['out'] or rep['pdf']} (signed, PAdES)")
+        print(f"same content as a web page: {rep['html']}")
+        print(f"signed manifest of {rep['files']} files: {case.root / 'manifest.json'}")
+        print(CAUTION)
+    return 0
+
+
+def cmd_verify(args) -> int:
+    from claimkit.case.verify import verify_bundle
+
+    rep = verify_bundle(args.bundle)
+    if args.json:
+        for c in rep.checks:
+            print_json(c)
+        print_json({"bundle": rep.bundle, "ok": rep.ok, "checks": len(rep.checks),
+                    "failed": [c["check"] for c in rep.failures]})
+    else:
+        for c in rep.checks:
+            mark = "ok  " if c["ok"] else "FAIL"
+            print(f"{mark} {c['check']}: {c['detail']}")
+        if rep.ok:
+            print(f"all {len(rep.checks)} checks passed")
+    if not rep.ok:
+        names = ", ".join(c["check"] for c in rep.failures)
+        raise CheckFailed(f"{len(rep.failures)} check(s) failed: {names}", path=args.bundle)
+    return 0
+
+
+def cmd_demo(args) -> int:
+    from claimkit.demo import run_demo
+
+    out = run_demo(Path(args.dir) if args.dir else None, echo=None if args.json else print)
+    if args.json:
+        print_json(out)
+    return 0 if out["verified"] else 1
+
+
+def register(sub, common) -> None:
+    case = sub.add_parser("case", parents=[common], help="a case: disputed copies and findings",
+                          description="Open a case, take in disputed copies, examine them, "
+                                      "export the hand-over bundle.")
+    csub = case.add_subparsers(dest="case_command", metavar="ACTION")
+    csub.required = True
+
+    p = csub.add_parser("new", parents=[common], help="open a new case folder")
+    p.add_argument("dir", metavar="DIR")
+    p.add_argument("--title", required=True, metavar="T")
+    p.add_argument("--json", action="store_true")
+    p.set_defaults(func=cmd_case_new)
+
+    p = csub.add_parser("add", parents=[common], help="take in a disputed copy (byte for byte)")
+    p.add_argument("dir", metavar="DIR")
+    p.add_argument("files", nargs="+", metavar="FILE")
+    p.add_argument("--source", required=True, metavar="S",
+                   help="where it was found (URL, shop, publication)")
+    p.add_argument("--found", metavar="WHEN", help="when it was found, as you state it")
+    p.add_argument("--by", metavar="NAME", help="who takes it in (default: the profile owner)")
+    p.add_argument("--note", metavar="TEXT")
+    p.add_argument("--json", action="store_true")
+    p.set_defaults(func=cmd_case_add)
+
+    p = csub.add_parser("examine", parents=[common], help="examine every exhibit")
+    p.add_argument("dir", metavar="DIR")
+    p.add_argument("--originals", nargs="*", metavar="FOLDER",
+                   help="folders holding the registered files (found by SHA-256) for alignment")
+    p.add_argument("--decoys", type=int, default=None, metavar="N",
+                   help="random decoy keys in the control (default 64)")
+    p.add_argument("--workers", type=int, default=1, metavar="N")
+    p.add_argument("--json", action="store_true")
+    p.set_defaults(func=cmd_case_examine)
+
+    p = csub.add_parser("export", parents=[common], help="pack the hand-over bundle (zip)")
+    p.add_argument("dir", metavar="DIR")
+    p.add_argument("--out", required=True, metavar="FILE.zip")
+    p.add_argument("--force", action="store_true")
+    p.add_argument("--json", action="store_true")
+    p.set_defaults(func=cmd_case_export)
+
+    p = sub.add_parser("report", parents=[common], help="build the signed dossier of a case",
+                       description="Build the dossier (PDF signed the PDF way, HTML, data), "
+                                   "the key disclosures and the signed manifest.")
+    p.add_argument("dir", metavar="DIR")
+    p.add_argument("--out", metavar="FILE.pdf", help="also write the PDF here")
+    p.add_argument("--json", action="store_true")
+    p.set_defaults(func=cmd_report)
+
+    p = sub.add_parser("verify", parents=[common], help="check a hand-over bundle",
+                       description="Check every hash, signature, timestamp token and the "
+                                   "custody chain of a bundle, and re-run every examination. "
+                                   "Exit 0 only when every check passes.")
+    p.add_argument("bundle", metavar="BUNDLE_OR_DIR")
+    p.add_argument("--json", action="store_true")
+    p.set_defaults(func=cmd_verify)
+
+    p = sub.add_parser("demo", parents=[common], help="run the whole job on a fictional case",
+                       description="A fictional photographer, a marked photo, two unlicensed "
+                                   "copies, a dossier and its verification, end to end.")
+    p.add_argument("dir", nargs="?", metavar="DIR", help="where to put it (default: a new "
+                                                         "folder claimkit-demo-*)")
+    p.add_argument("--json", action="store_true")
+    p.set_defaults(func=cmd_demo)
+
