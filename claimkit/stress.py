@@ -159,7 +159,7 @@ def gamma(pixels: np.ndarray, g: float) -> np.ndarray:
 
 def social(pixels: np.ndarray, width: int = 1080, quality: int = 80) -> np.ndarray:
     """A social-media upload: resize to ``width`` wide, crop to 4:5 portrait, JPEG."""
-    h, w = pixels.shape[:2]
+    w = pixels.shape[1]
     s = width / w
     out = resize(pixels, s)
     hh, ww = out.shape[:2]

@@ -75,7 +75,8 @@ FINE_BLUR = 0.7            # smoothing for refinement and final scores (pixels)
 # Similarities get a fine grid over many lattice points; squeezed copies a
 # coarser one (2 % aspect steps) over the nearer points, where a 1 % aspect
 # error still moves a point by less than the smoothing.
-SIMILARITY_GRID = (320, 0.005, (1.0,), 6)
+COARSE_LAG = 320           # largest lag of the coarse grids
+SIMILARITY_GRID = (COARSE_LAG, 0.005, (1.0,), 6)
 ASPECT_GRID = (192, 0.008, tuple(float(a) for a in np.arange(0.90, 1.105, 0.02) if abs(a - 1) > 0.01), 3)
 REFINE_RADII = (200, 360, LAG_MAX)   # growing radii of the refinement passes
 POLISH_EXTRA = 1           # lattices polished beyond the number returned
@@ -106,9 +107,11 @@ class Lattice:
 @dataclass
 class _Acf:
     z: np.ndarray        # lag map in noise units, lag (0, 0) at [c, c]
-    coarse: np.ndarray   # the same, smoothed more, for the coarse grid
     weight: np.ndarray   # expected relative signal at each lag (overlap of the window with itself)
-    c: int               # index of lag zero
+    zw: np.ndarray       # z * weight: what the lattice scores sum
+    coarse: np.ndarray   # z * weight smoothed more, central lags only, lag (0, 0) at [cc, cc]
+    c: int               # index of lag zero in z
+    cc: int              # index of lag zero in coarse
 
 
 def _fast(n: int) -> int:
@@ -116,7 +119,7 @@ def _fast(n: int) -> int:
 
 
 def lag_map(x: np.ndarray, *, window: int = ACF_WINDOW, lag_max: int = LAG_MAX,
-            workers: int = 1) -> _Acf:
+            coarse_lag: int = COARSE_LAG, workers: int = 1) -> _Acf:
     """Spectrally flattened, clipped autocorrelation of a central window, in noise units.
 
     Parameters
@@ -128,6 +131,8 @@ def lag_map(x: np.ndarray, *, window: int = ACF_WINDOW, lag_max: int = LAG_MAX,
     lag_max : int
         Largest lag kept (the window is zero-padded by this much, so lags up
         to ``lag_max`` do not wrap around).
+    coarse_lag : int
+        Largest lag of the more smoothed copy used by the coarse search.
 
     Returns
     -------
@@ -148,6 +153,13 @@ def lag_map(x: np.ndarray, *, window: int = ACF_WINDOW, lag_max: int = LAG_MAX,
     local += np.float32(1e-20 + 1e-9 * float(local.mean()))
     flat = np.minimum(power / local, np.float32(FLATTEN_CLIP))
     flat[0, 0] = 0.0
+    # Light smoothing of the lags (so that bilinear sampling between pixels
+    # loses little of a one-pixel-wide peak) is free in the frequency domain.
+    fy = np.fft.fftfreq(fh).astype(np.float32)
+    fx = np.fft.rfftfreq(fw).astype(np.float32)
+    g = np.float32(-2.0 * (np.pi * FINE_BLUR) ** 2)
+    flat *= np.exp(g * fy * fy)[:, None]
+    flat *= np.exp(g * fx * fx)[None, :]
     acf = sfft.irfft2(flat, s=(fh, fw), workers=workers)
     # Keep lags -lag..lag in both directions, lag zero at the centre.
     idx_r = np.arange(-lag, lag + 1) % fh
@@ -159,13 +171,17 @@ def lag_map(x: np.ndarray, *, window: int = ACF_WINDOW, lag_max: int = LAG_MAX,
     ov_r = np.clip(1.0 - np.abs(d) / sh, 0.0, None)
     ov_c = np.clip(1.0 - np.abs(d) / sw, 0.0, None)
     overlap = np.outer(ov_r, ov_c)
-    noise = np.sqrt(np.maximum(overlap, 1e-6))
-    z = a / noise
-    z[overlap < 0.05] = 0.0
-    fine = _ring_normalise(ndimage.gaussian_filter(z, FINE_BLUR), lag)
-    coarse = _ring_normalise(ndimage.gaussian_filter(z, COARSE_BLUR), lag)
-    weight = np.sqrt(overlap) * (overlap >= 0.05)
-    return _Acf(z=fine, coarse=coarse, weight=weight.astype(np.float32), c=lag)
+    valid = overlap >= 0.05
+    weight = (np.sqrt(overlap) * valid).astype(np.float32)
+    z = a / np.sqrt(np.maximum(overlap, 1e-6))
+    z[~valid] = 0.0
+    z = _ring_normalise(z, lag)
+    zw = z * weight
+    cl = min(coarse_lag, lag)
+    extra = float(np.sqrt(COARSE_BLUR ** 2 - FINE_BLUR ** 2))
+    region = zw[lag - cl - 4:lag + cl + 5, lag - cl - 4:lag + cl + 5]
+    coarse = ndimage.gaussian_filter(region, extra)
+    return _Acf(z=z, weight=weight, zw=zw, coarse=coarse, c=lag, cc=cl + 4)
 
 
 @lru_cache(maxsize=4)
@@ -218,10 +234,10 @@ def _coarse(acf: _Acf, tile: int, grid) -> list[tuple[float, np.ndarray]]:
     radius, d, aspects, keep = grid
     lo, hi = SCALE_RANGE
     r_lo = lo * tile * (1 - ASPECT_RANGE)
-    r_hi = min(radius, acf.c - 2)
+    r_hi = min(radius, acf.cc - 6)
     if r_hi <= r_lo * 1.2:
         return []
-    n_phi = int(round((np.pi / 2) / d))
+    n_phi = round((np.pi / 2) / d)
     dphi = (np.pi / 2) / n_phi
     n_rho = int(np.ceil(np.log(r_hi / r_lo) / d)) + 1
     rho = np.log(r_lo) + d * np.arange(n_rho)
@@ -230,6 +246,7 @@ def _coarse(acf: _Acf, tile: int, grid) -> list[tuple[float, np.ndarray]]:
     # Expected signal weight and noise-normalising denominator depend on the
     # radius; take them radially (mean over directions) for the grid.
     wr = _radial_profile(acf.weight, acf.c, np.exp(rho))
+    cc = acf.cc
     log_n, arg_n = _comb(r_hi / (lo * tile * (1 - ASPECT_RANGE)))
     sh_rho = np.rint(log_n / d).astype(int)
     sh_phi = np.rint(arg_n / dphi).astype(int)
@@ -242,10 +259,10 @@ def _coarse(acf: _Acf, tile: int, grid) -> list[tuple[float, np.ndarray]]:
     for a in aspects:
         # Sample at lag (row, col) = (r sin phi, a r cos phi); both quarter-turn copies summed.
         sp, cp = np.sin(phi)[None, :], np.cos(phi)[None, :]
-        coords1 = np.stack([acf.c + rr * sp, acf.c + a * rr * cp])
-        coords2 = np.stack([acf.c + rr * cp, acf.c - a * rr * sp])
-        g = (ndimage.map_coordinates(acf.coarse * acf.weight, coords1.reshape(2, -1), order=1)
-             + ndimage.map_coordinates(acf.coarse * acf.weight, coords2.reshape(2, -1), order=1))
+        coords1 = np.stack([cc + rr * sp, cc + a * rr * cp])
+        coords2 = np.stack([cc + rr * cp, cc - a * rr * sp])
+        g = (ndimage.map_coordinates(acf.coarse, coords1.reshape(2, -1), order=1)
+             + ndimage.map_coordinates(acf.coarse, coords2.reshape(2, -1), order=1))
         g = g.reshape(n_rho, n_phi)
         num = np.zeros((k_hi - k_lo + 1, n_phi))
         den = np.zeros(k_hi - k_lo + 1)
@@ -309,9 +326,9 @@ def lattice_score(acf: _Acf, basis: np.ndarray, r_min: float, r_max: float) -> t
     if n.shape[1] == 0:
         return 0.0, 0
     p = basis @ n + acf.c
-    z = ndimage.map_coordinates(acf.z, p, order=1)
+    zw = ndimage.map_coordinates(acf.zw, p, order=1)
     w = ndimage.map_coordinates(acf.weight, p, order=1)
-    return float(np.sum(w * z) / np.sqrt(np.sum(w * w) + 1e-12)), int(n.shape[1])
+    return float(np.sum(zw) / np.sqrt(np.sum(w * w) + 1e-12)), int(n.shape[1])
 
 
 def _refine(acf: _Acf, basis: np.ndarray, r_min: float) -> tuple[np.ndarray, int]:
@@ -370,7 +387,7 @@ def _polish(acf: _Acf, basis: np.ndarray, r_min: float) -> np.ndarray:
     period = float(np.mean(np.linalg.norm(basis, axis=0)))
     far = float(np.max(np.linalg.norm(basis @ n, axis=0)))
     unit = period / far          # a unit step moves the farthest point by about a pixel
-    zw = acf.z * acf.weight
+    zw = acf.zw
 
     def cost(v):
         p = (basis + unit * v.reshape(2, 2)) @ n + acf.c
