@@ -156,8 +156,21 @@ def make_copy(published: Path, out: Path, edits: dict) -> None:
         im.save(out, format="JPEG", quality=int(edits.get("jpeg_quality", 75)))
 
 
-def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None = print) -> dict:
-    """Run the fictional case end to end in ``folder``; returns what was made and the verdict."""
+def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None = print,
+             scenario: dict | None = None, decoys: int | None = None) -> dict:
+    """Run the fictional case end to end in ``folder``; returns what was made and the verdict.
+
+    Parameters
+    ----------
+    folder : Path, optional
+        A new or empty folder (default: ``claimkit-demo-DATE`` in the current folder).
+    echo : callable, optional
+        Where progress lines go (None: nowhere).
+    scenario : dict, optional
+        Default :func:`load_scenario`; tests pass a smaller picture.
+    decoys : int, optional
+        Decoy keys per examination (default: the case default).
+    """
     from claimkit.case.bundle import export_bundle
     from claimkit.case.examine import examine_case
     from claimkit.case.store import add_exhibit, new_case
@@ -168,7 +181,7 @@ def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None =
     from PIL import Image
 
     say = echo or (lambda s: None)
-    sc = load_scenario()
+    sc = scenario or load_scenario()
     t0 = time.perf_counter()
     if folder is None:
         folder = Path(f"claimkit-demo-{datetime.now(timezone.utc):%Y%m%d-%H%M%S}")
@@ -208,7 +221,8 @@ def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None =
             add_exhibit(case, p, source=c["source"], found=c.get("found"), by=c.get("by"),
                         note=c.get("note"), profile=profile)
         say(f"5. case {case.case_id}: {len(copies)} exhibits taken in (copied, hashed, logged)")
-        findings = examine_case(case, profile, search=[studio])
+        kw = {} if decoys is None else {"decoys": decoys}
+        findings = examine_case(case, profile, search=[studio], **kw)
         for f in findings:
             r = f["result"]
             al = f.get("alignment") or {}

@@ -136,17 +136,30 @@ def _custody(root: Path, case_id: str, work_ids: set[str]) -> dict:
             "head_seq": rep.head_seq, "head_sha256": rep.head_hash}
 
 
+def _constants(module) -> dict:
+    """Every upper-case scalar setting of an engine module (the parameters, all of them)."""
+    out = {}
+    for name in sorted(vars(module)):
+        v = getattr(module, name)
+        if name.isupper() and not name.startswith("_") and isinstance(v, (int, float, str, tuple)) \
+                and not isinstance(v, bool):
+            out[f"{module.__name__.rsplit('.', 1)[-1]}.{name}"] = \
+                list(v) if isinstance(v, tuple) else v
+    return out
+
+
 def _engine_parameters() -> dict:
+    from claimkit.mark import geometry
+
     return {
         "tile_px": pattern.TILE, "payload_bits": pattern.PAYLOAD_BITS,
         "pilot_spots": pattern.PILOT_SPOTS, "code_spots": pattern.CODE_SPOTS,
-        "spot_sigma_px": pattern.SPOT_SIGMA,
-        "prefilter_px": detect.PREFILTER, "normalisation_block_px": detect.BLOCK,
+        "prefilter_px": getattr(detect, "PREFILTER", None),
         "geometries_tried": detect.GEOMETRIES, "quarter_turns_and_mirrors": detect.DIHEDRAL,
         "subpixel_phases": len(detect.PHASES), "hypotheses": detect.hypotheses(),
-        "decode_tries": detect.DECODE_TRIES, "spectral_weighting": detect.WEIGHTING,
         "bound": "P_fa <= 2 x H x exp(-z^2/2) (sub-Gaussian tail, union over hypotheses)",
-        "floor_log10": stats.FLOOR_LOG10,
+        "settings": {**_constants(pattern), **_constants(detect), **_constants(geometry),
+                     **_constants(stats)},
     }
 
 

@@ -147,7 +147,9 @@ def tables(data: dict, name: str, arg: str | None) -> tuple[list[str], list[list
                  e["sha256"]] for e in data["exhibits"]]
         return ["Exhibit", "Found at", "Found (stated)", "Taken in by, at", "SHA-256"], rows
     if name == "parameters":
-        rows = [[k, str(v)] for k, v in sorted(data["method"]["engine"].items())]
+        eng = data["method"]["engine"]
+        rows = [[k, str(v)] for k, v in sorted(eng.items()) if k != "settings"]
+        rows += [[k, str(v)] for k, v in sorted(eng.get("settings", {}).items())]
         rows += [[f"mark: {k}", str(v)] for k, v in sorted(data["method"]["mark"].items())]
         return ["Parameter", "Value"], rows
     if name == "custody":
@@ -222,7 +224,8 @@ def render_pdf(data: dict, root: Path, out: Path) -> bytes:
     _register_fonts()
     rl_config.invariant = 1   # no time or random ID in the file: same data, same bytes
     rl_config.canvas_basefontname = "Vera"   # else every page starts in (unembedded) Helvetica
-    base = ParagraphStyle("body", fontName="Vera", fontSize=9.5, leading=13, spaceAfter=5)
+    base = ParagraphStyle("body", fontName="Vera", bulletFontName="Vera", fontSize=9.5, leading=13,
+                          spaceAfter=5)
     st = {
         "p": base,
         "h1": ParagraphStyle("h1", parent=base, fontName="Vera-Bold", fontSize=15, leading=19,
@@ -257,6 +260,7 @@ def render_pdf(data: dict, root: Path, out: Path) -> bytes:
                 ("BACKGROUND", (0, 0), (-1, 0), colors.HexColor("#e4e8ef")),
                 ("GRID", (0, 0), (-1, -1), 0.3, colors.HexColor("#9aa3b0")),
                 ("VALIGN", (0, 0), (-1, -1), "TOP"),
+                ("FONTNAME", (0, 0), (-1, -1), "Vera"),
             ]))
             story.append(t)
             story.append(Spacer(1, 6))

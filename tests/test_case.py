@@ -1,0 +1,195 @@
+"""Case intake and examination: byte-for-byte exhibits, custody, decoy control, alignment."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import stat
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from claimkit.case.examine import decoy_summary
+from claimkit.case.store import add_exhibit, checked_exhibit_path, new_case, open_case
+from claimkit.cli import main
+from claimkit.errors import CheckFailed, InputError
+from claimkit.evidence.custodylog import verify_log
+from claimkit.evidence.signing import load_public_pem
+from test_case_fixtures import DECOYS, built_case  # noqa: F401 - the shared fixture
+
+pytestmark = pytest.mark.slow
+
+
+def _sha(path) -> str:
+    # hashlib's SHA-256 is FIPS 180-4; claimkit's own is checked against the standard's
+    # vectors in the evidence tests, so this is an independent computation of the same digest.
+    return hashlib.sha256(open(path, "rb").read()).hexdigest()
+
+
+def test_exhibits_are_byte_for_byte_read_only_and_logged(built_case):
+    case = open_case(built_case.case)
+    exhibits = case.exhibits()
+    assert [e.exhibit_id for e in exhibits] == ["E01", "E02", "E03"]
+    for ex, src in zip(exhibits, built_case.copies + [built_case.unmarked]):
+        stored = built_case.case / ex.file
+        assert stored.read_bytes() == src.read_bytes()
+        assert ex.sha256 == _sha(src) == _sha(stored)
+        assert ex.record["size"] == src.stat().st_size
+        with Image.open(src) as im:
+            assert (ex.record["width"], ex.record["height"]) == im.size
+        assert ex.record["media_type"] == "image/jpeg"
+        assert not stored.stat().st_mode & (stat.S_IWUSR | stat.S_IWGRP | stat.S_IWOTH)
+        assert ex.record["taken_in"]["time_source"] == "system clock"
+    first = exhibits[0].record
+    sc = built_case.scenario["copies"][0]
+    assert first["source"] == sc["source"] and first["found"]["when"] == sc["found"]
+    assert first["found"]["time_source"] == f"stated by {sc['by']}"
+    # Every intake is in the signed custody log with the exhibit's hash.
+    pub = load_public_pem((built_case.home / "public.pem").read_bytes())
+    log = verify_log(built_case.home / "custody.jsonl", pub)
+    assert log.ok, log.problems
+    taken = {e["details"]["exhibit_id"]: e["items"]["exhibit"] for e in log.entries
+             if e["action"] == "disputed file taken in"}
+    assert taken == {e.exhibit_id: e.sha256 for e in exhibits}
+
+
+def test_intake_refuses_duplicates_non_images_and_missing_files(built_case, tmp_path, profile):
+    case = new_case(tmp_path / "c", "Refusals", profile)
+    add_exhibit(case, built_case.copies[0], source="shop", profile=profile)
+    with pytest.raises(InputError, match="already exhibit E01"):
+        add_exhibit(case, built_case.copies[0], source="shop", profile=profile)
+    junk = tmp_path / "notes.jpg"
+    junk.write_bytes(b"this is not a photo at all")
+    with pytest.raises(InputError, match="not an image") as err:
+        add_exhibit(case, junk, source="shop", profile=profile)
+    assert str(junk) in err.value.line()
+    with pytest.raises(InputError, match="no such file"):
+        add_exhibit(case, tmp_path / "gone.jpg", source="shop", profile=profile)
+    with pytest.raises(InputError, match="source"):
+        add_exhibit(case, built_case.copies[1], source="  ", profile=profile)
+    with pytest.raises(InputError, match="not an empty folder"):
+        new_case(tmp_path / "c", "again", profile)
+    # The failed intakes left nothing behind.
+    assert sorted(p.name for p in (tmp_path / "c" / "exhibits").iterdir()) == \
+        ["E01-tidewater-mug-listing.jpg", "E01.json"]
+
+
+def test_source_file_is_never_modified(built_case):
+    src = built_case.copies[0]
+    before = (src.stat().st_mtime_ns, _sha(src))
+    case = open_case(built_case.case)
+    checked_exhibit_path(case, case.exhibits()[0])
+    assert (src.stat().st_mtime_ns, _sha(src)) == before
+
+
+def test_altered_exhibit_is_caught_before_use(built_case, tmp_path, profile):
+    case = new_case(tmp_path / "c", "Tamper", profile)
+    ex = add_exhibit(case, built_case.copies[0], source="shop", profile=profile)
+    stored = tmp_path / "c" / ex.file
+    os.chmod(stored, 0o600)
+    data = bytearray(stored.read_bytes())
+    data[len(data) // 2] ^= 0x01
+    stored.write_bytes(bytes(data))
+    with pytest.raises(CheckFailed, match="altered since intake"):
+        checked_exhibit_path(case, ex)
+    code = main(["case", "examine", str(tmp_path / "c"), "--decoys", "0"])
+    assert code == 1
+
+
+def test_marked_copies_found_unmarked_not(built_case):
+    case = open_case(built_case.case)
+    f1, f2, f3 = (case.finding(e) for e in ("E01", "E02", "E03"))
+    for f in (f1, f2):
+        r = f["result"]
+        assert r["detected"] and r["work_id"] == built_case.work_id and r["registered"]
+        assert r["log10_false_alarm_probability"] < -9
+        assert f["match"] == {"work_id": built_case.work_id, "by": "payload"}
+    assert not f3["result"]["detected"] and f3["result"]["work_id"] is None
+    assert f3["match"] is None and f3["alignment"] is None
+
+
+def test_decoy_control_is_the_null_the_score_is_set_against(built_case):
+    case = open_case(built_case.case)
+    for e in ("E01", "E02", "E03"):
+        f = case.finding(e)
+        scores = f["decoy_scores"]
+        assert len(scores) == DECOYS == f["decoy_summary"]["count"]
+        assert len(set(scores)) == DECOYS           # different keys, different scores
+        assert f["decoy_summary"] == decoy_summary(scores, f["result"]["score_pilot"])
+    marked, unmarked = case.finding("E01"), case.finding("E03")
+    assert marked["result"]["score_pilot"] > max(marked["decoy_scores"])
+    assert marked["decoy_summary"]["at_or_above_observed"] == 0
+    # Under no mark the owner's key is just one more random key: its score sits among them.
+    obs = unmarked["result"]["score_pilot"]
+    assert min(unmarked["decoy_scores"]) - 1.5 < obs < max(unmarked["decoy_scores"]) + 1.5
+
+
+def test_decoy_summary_arithmetic():
+    # Monte Carlo p-value (k + 1) / (n + 1): Davison & Hinkley (1997), eq. 4.11.
+    s = decoy_summary([1.0, 2.0, 3.0, 4.0], 3.0)
+    assert s["at_or_above_observed"] == 2 and s["empirical_p"] == pytest.approx(3 / 5)
+    assert s["max"] == 4.0 and s["mean"] == 2.5
+
+
+def test_alignment_recovers_the_crop_and_measures_similarity(built_case):
+    """The crop box must match the edit's known parameters (Pillow's resize and crop)."""
+    case = open_case(built_case.case)
+    with Image.open(built_case.studio / "morning-cup.png") as im:
+        W, H = im.size
+    edits = built_case.scenario["copies"][0]["edits"]
+    s = edits["scale"]
+    x0, y0, x1, y1 = edits["crop"]
+    sw, sh = round(W * s), round(H * s)
+    want = [round(x0 * sw) / s, round(y0 * sh) / s, round(x1 * sw) / s, round(y1 * sh) / s]
+    al = case.finding("E01")["alignment"]
+    assert al["aligned"]
+    assert np.allclose(al["crop_box_px"], want, atol=4), (al["crop_box_px"], want)
+    assert al["scale"] == pytest.approx(s, abs=0.01)
+    assert abs(al["rotation_deg"]) < 0.3
+    assert al["ssim"] > 0.9
+    turned = case.finding("E02")["alignment"]
+    assert turned["aligned"] and turned["rotation_deg"] == pytest.approx(4.0, abs=0.3)
+    assert turned["scale"] == pytest.approx(0.8, abs=0.01) and turned["ssim"] > 0.85
+    ref = case.finding("E01")["reference"]
+    assert ref["kind"] == "marked"
+    assert ref["sha256"] == _sha(built_case.studio / "morning-cup-web.jpg")
+
+
+def test_alignment_ssim_matches_skimage_on_the_stored_arrays(built_case):
+    """Recompute the SSIM from the stored aligned copy with skimage.metrics directly."""
+    from scipy import ndimage
+    from skimage.metrics import structural_similarity
+    from skimage.transform import rescale
+
+    from claimkit.imageio import read_picture, to_luma
+
+    case = open_case(built_case.case)
+    f = case.finding("E01")
+    with np.load(built_case.case / f["arrays"]["file"]) as a:
+        aligned, mask = a["aligned"].astype(float), a["mask"]
+    ref = to_luma(read_picture(built_case.case / f["reference"]["file"]).pixels).astype(float)
+    s = f["alignment"]["work_scale"]
+    ref = rescale(ref, s, anti_aliasing=True, preserve_range=True) if s < 1 else ref
+    _, smap = structural_similarity(ref, aligned, data_range=255.0, full=True)
+    inner = ndimage.binary_erosion(mask, iterations=4)
+    # The stored copy is rounded to 8 bits, so allow a little.
+    assert smap[inner].mean() == pytest.approx(f["alignment"]["ssim"], abs=0.01)
+
+
+def test_examine_json_lines(built_case, monkeypatch, capsys, tmp_path):
+    import shutil
+
+    work = tmp_path / "case"
+    shutil.copytree(built_case.case, work)
+    monkeypatch.setenv("CLAIMKIT_PASSPHRASE", "harwick-bay-casework-tests")
+    code = main(["--home", str(built_case.home), "case", "examine", str(work), "--decoys", "2",
+                 "--json"])
+    assert code == 0
+    rows = [json.loads(x) for x in capsys.readouterr().out.splitlines()]
+    assert [r["exhibit_id"] for r in rows] == ["E01", "E02", "E03"]
+    assert [r["detected"] for r in rows] == [True, True, False]
+    for r in rows:
+        assert set(r) >= {"file", "detected", "false_alarm_probability", "work_id",
+                          "message_psnr_db", "geometry"}

@@ -1,0 +1,97 @@
+"""A small fictional case built once per test session, through the command line.
+
+Scenario (invented): Ilse Marrow of Harwick Bay Studio marks scikit-image's
+``coffee`` photo (upscaled 2x), stamps it with a local OpenSSL test TSA, and
+finds two copies on the fictional shop Tidewater Home Goods: one resized to
+70 %, cropped and saved at JPEG quality 72 (Pillow's encoder), one resized to
+80 %, turned 4 degrees counter-clockwise, cropped, JPEG quality 80. A third
+exhibit is an unmarked photo (``chelsea``) that must not be claimed.
+
+Other test modules import the ``built_case`` fixture from here.
+"""
+
+from __future__ import annotations
+
+import copy
+import shutil
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from claimkit.cli import main
+from claimkit.demo import SCENARIO, make_copy, make_test_tsa
+
+PASS = "harwick-bay-casework-tests"
+DECOYS = 12
+
+
+@dataclass
+class BuiltCase:
+    root: Path
+    home: Path
+    case: Path
+    studio: Path
+    copies: list[Path]
+    unmarked: Path
+    bundle: Path
+    work_id: str
+    scenario: dict
+
+
+def _run(argv: list[str]) -> int:
+    return main(argv)
+
+
+@pytest.fixture(scope="session")
+def built_case(tmp_path_factory) -> BuiltCase:
+    from skimage import data
+
+    if shutil.which("openssl") is None:
+        pytest.skip("openssl command not installed")
+    root = tmp_path_factory.mktemp("casework")
+    home, studio, web = root / "home", root / "studio", root / "web"
+    studio.mkdir()
+    web.mkdir()
+    sc = copy.deepcopy(SCENARIO)
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setenv("CLAIMKIT_PASSPHRASE", PASS)
+        mp.setenv("CLAIMKIT_TEST_FAST_KDF", "1")
+        assert _run(["--home", str(home), "init", "--owner", sc["photographer"]]) == 0
+        pic = data.coffee()
+        big = np.asarray(Image.fromarray(pic).resize((pic.shape[1] * 2, pic.shape[0] * 2),
+                                                     Image.Resampling.BICUBIC))
+        original = studio / "morning-cup.png"
+        Image.fromarray(big).save(original)
+        published = studio / "morning-cup-web.jpg"
+        from claimkit.evidence.profile import Profile
+        from claimkit.workflow import mark_file
+
+        with Profile.open(home, PASS.encode()) as p:
+            rep = mark_file(p, original, published)
+            reply = make_test_tsa(root / "tsa", "Casework Test TSA")
+            req = p.stamp_request([rep["work_id"]])
+            p.stamp_attach(reply(req.tsq), (root / "tsa" / "ca.pem").read_bytes())
+        copies = []
+        for c in sc["copies"]:
+            out = web / c["name"]
+            make_copy(published, out, c["edits"])
+            copies.append(out)
+        unmarked = web / "tidewater-cat-cushion.jpg"
+        Image.fromarray(data.chelsea()).save(unmarked, quality=85)
+        case = root / "case"
+        h = ["--home", str(home)]
+        assert _run(["case", "new", str(case), "--title", sc["case_title"], *h]) == 0
+        for c, f in zip(sc["copies"], copies):
+            assert _run(["case", "add", str(case), str(f), "--source", c["source"],
+                         "--found", c["found"], "--by", c["by"], "--note", c["note"], *h]) == 0
+        assert _run(["case", "add", str(case), str(unmarked), "--source",
+                     "https://tidewater-home-goods.example/products/cat-cushion", *h]) == 0
+        assert _run(["case", "examine", str(case), "--originals", str(studio),
+                     "--decoys", str(DECOYS), *h]) == 0
+        assert _run(["report", str(case), *h]) == 0
+        bundle = root / "bundle.zip"
+        assert _run(["case", "export", str(case), "--out", str(bundle), *h]) == 0
+    return BuiltCase(root, home, case, studio, copies, unmarked, bundle, rep["work_id"], sc)

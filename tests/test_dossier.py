@@ -1,0 +1,211 @@
+"""The dossier as a reader gets it: poppler and pypdf read the PDF; figures match their data."""
+
+from __future__ import annotations
+
+import io
+import json
+import re
+import shutil
+import subprocess
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from claimkit.dossier import figures
+from claimkit.dossier.render import parse_markup, render_markup, template_dir
+from test_case_fixtures import built_case  # noqa: F401 - the shared fixture
+
+pytestmark = pytest.mark.slow
+
+SECTIONS = ["Summary for the reader", "Please note", "The claimant and the work",
+            "The exhibits", "Method", "Published references", "Results for each exhibit",
+            "Limitations", "Chain of custody", "Reproducing every number"]
+
+
+def _poppler(tool: str):
+    if shutil.which(tool) is None:
+        pytest.skip(f"{tool} not installed (Debian: apt-get install poppler-utils)")
+
+
+def _data(bc) -> dict:
+    return json.loads((bc.case / "report" / "dossier.json").read_bytes())
+
+
+def _flat(text: str) -> str:
+    return re.sub(r"\s+", " ", text)
+
+
+def test_pdftotext_finds_every_section_and_the_numbers(built_case):
+    _poppler("pdftotext")
+    pdf = built_case.case / "report" / "dossier.pdf"
+    text = _flat(subprocess.run(["pdftotext", "-layout", str(pdf), "-"], capture_output=True,
+                                text=True, check=True).stdout)
+    for s in SECTIONS:
+        assert s in text, s
+    d = _data(built_case)
+    assert f"work {built_case.work_id}" in text
+    for r in d["results"]:
+        assert f"Exhibit {r['exhibit_id']}" in text
+        assert f"log10 = {r['log10_false_alarm']}" in text
+        if r["detected"]:
+            assert f"PSNR of {r['message_psnr_db']} dB" in text
+            assert f"SSIM after alignment {r['alignment']['ssim']}" in text
+            assert f"highest {r['decoys']['max']}" in text
+    for e in d["exhibits"]:
+        # The table wraps long hashes; the exhibit paragraph keeps each one whole.
+        assert e["sha256"] in text.replace(" ", "")
+    assert "technical evidence, not legal advice" in text
+    assert "differ between jurisdictions" in text and "counsel" in text
+    assert "does not show who took the photograph" in text
+    assert "claimkit verify BUNDLE.zip" in text
+    # The plain-language line, for the non-technical reader.
+    first = d["results"][0]
+    n = int(-first["log10_false_alarm"] // 1)
+    assert f"a 1 followed by {n} zeros" in text
+
+
+def test_pypdf_reads_the_same_text_and_metadata(built_case):
+    pypdf = pytest.importorskip("pypdf")
+    reader = pypdf.PdfReader(str(built_case.case / "report" / "dossier.pdf"))
+    text = _flat(" ".join(p.extract_text() for p in reader.pages))
+    for s in SECTIONS:
+        assert s in text, s
+    d = _data(built_case)
+    assert reader.metadata.title == f"Evidence dossier: {d['case']['title']}"
+    assert reader.metadata.subject == d["case"]["case_id"]
+    # A4 pages (595 x 842 points), readable on paper.
+    box = reader.pages[0].mediabox
+    assert round(float(box.width)) == 595 and round(float(box.height)) == 842
+
+
+def test_every_font_is_embedded(built_case):
+    _poppler("pdffonts")
+    out = subprocess.run(["pdffonts", str(built_case.case / "report" / "dossier.pdf")],
+                         capture_output=True, text=True, check=True).stdout.splitlines()[2:]
+    assert out, "no fonts listed"
+    for line in out:
+        cols = line.split()
+        # name type encoding emb sub uni object ID: "emb" is the 4th column from the right end
+        assert cols[-5] == "yes", line
+
+
+def test_pdf_signature_is_valid_for_poppler(built_case):
+    _poppler("pdfsig")
+    pdf = built_case.case / "report" / "dossier.pdf"
+    out = subprocess.run(["pdfsig", "-nocert", str(pdf)], capture_output=True, text=True).stdout
+    assert "Signature is Valid" in out, out
+    assert "Ilse Marrow" in out and "Total document signed" in out
+    assert "ETSI.CAdES.detached" in out      # PAdES (ETSI EN 319 142)
+    # One changed byte inside the signed range and poppler no longer accepts it.
+    data = bytearray(pdf.read_bytes())
+    i = data.find(b"Evidence dossier")
+    data[i] ^= 0x20
+    bad = built_case.root / "tampered.pdf"
+    bad.write_bytes(bytes(data))
+    out = subprocess.run(["pdfsig", "-nocert", str(bad)], capture_output=True, text=True).stdout
+    assert "Signature is Valid" not in out
+
+
+def test_pages_render_and_are_not_blank(built_case, tmp_path):
+    _poppler("pdftoppm")
+    subprocess.run(["pdftoppm", "-png", "-r", "40", str(built_case.case / "report" / "dossier.pdf"),
+                    str(tmp_path / "page")], check=True)
+    pages = sorted(tmp_path.glob("page*.png"))
+    assert len(pages) >= 6
+    for p in pages:
+        a = np.asarray(Image.open(p).convert("L"))
+        assert (a < 128).mean() > 0.005, p.name    # every page has ink
+
+
+def test_html_has_the_same_content_and_is_self_contained(built_case):
+    html = (built_case.case / "report" / "dossier.html").read_text(encoding="utf-8")
+    for s in SECTIONS:
+        assert s in html, s
+    d = _data(built_case)
+    for r in d["results"]:
+        assert f"log10 = {r['log10_false_alarm']}" in html
+    srcs = re.findall(r'src="([^"]*)"', html)
+    assert srcs and all(s.startswith("data:image/png;base64,") for s in srcs)
+    assert "http://" not in html.split("<body>")[0] and "<link" not in html
+
+
+def test_every_text_block_comes_from_a_template():
+    folder = template_dir()
+    names = {p.name for p in (folder / "sections").glob("*.md.j2")}
+    assert names >= {"summary.md.j2", "claimant.md.j2", "exhibits.md.j2", "method.md.j2",
+                     "results.md.j2", "limitations.md.j2", "custody.md.j2",
+                     "reproduce.md.j2", "caution.md.j2"}
+    main = (folder / "dossier.md.j2").read_text()
+    for n in names:
+        assert f"sections/{n}" in main
+
+
+def test_figures_show_the_stored_data(built_case):
+    d = _data(built_case)
+    f = json.loads((built_case.case / "findings" / "E01.json").read_bytes())
+    with np.load(built_case.case / f["arrays"]["file"]) as a:
+        surface, recovered, reference = a["surface"], a["recovered"], a["reference"]
+    figs = d["figures"]["E01"]
+    # Correlation surface: drawn 3x, origin at (20, 40); the hottest drawn pixel is the peak.
+    img = np.asarray(Image.open(built_case.case / figs["surface"]).convert("RGB")).astype(int)
+    n = surface.shape[0]
+    panel = img[40:40 + 3 * n, 20:20 + 3 * n][1::3, 1::3]
+    hot = figures.colour_map(np.array([surface.max()]), -1, 0)[0]   # the ramp's last stop
+    r, c = np.unravel_index(np.argmax(surface), surface.shape)
+    dist = np.abs(panel - hot).sum(axis=2)
+    assert dist[r, c] == dist.min()
+    # Recovered message: the left panel's grey levels follow the stored array.
+    img = np.asarray(Image.open(built_case.case / figs["message"]).convert("L")).astype(float)
+    m = recovered.shape[0]
+    left = img[30:30 + 2 * m, 20:20 + 2 * m][::2, ::2]
+    right = img[30:30 + 2 * m, 40 + 2 * m:40 + 4 * m][::2, ::2]
+    lo, hi = float(reference.min()), float(reference.max())
+    want = np.clip((recovered - lo) / (hi - lo), 0, 1) * 255
+    assert np.corrcoef(left.ravel(), want.ravel())[0, 1] > 0.99
+    assert np.corrcoef(right.ravel(), reference.ravel())[0, 1] > 0.99
+    # Decoy histogram: the observed line (accent colour) sits right of every decoy bar.
+    img = np.asarray(Image.open(built_case.case / figs["decoys"]).convert("RGB")).astype(int)
+    accent = np.all(np.abs(img - np.array(figures.ACCENT)) < 10, axis=2)[30:250]
+    bars = np.all(np.abs(img - np.array(figures.BAR)) < 10, axis=2)[30:250]
+    assert accent.any() and bars.any()
+    assert np.nonzero(accent.any(axis=0))[0].min() > np.nonzero(bars.any(axis=0))[0].max()
+
+
+def test_decoy_figure_places_the_observed_score():
+    """An independent check of the axis: a score at the axis end is drawn at its right end."""
+    img = figures.decoy_figure([1.0, 2.0, 2.5], 10.0)
+    a = np.asarray(img.convert("RGB")).astype(int)
+    accent = np.all(np.abs(a - np.array(figures.ACCENT)) < 10, axis=2)[40:240]
+    cols = np.nonzero(accent.any(axis=0))[0]
+    # xmax = 10 * 1.08 + 0.5 = 11.3; x = 60 + 10 / 11.3 * (620 - 60)
+    assert abs(cols.mean() - (60 + 10 / 11.3 * 560)) < 3
+
+
+def test_markup_parser():
+    blocks = parse_markup("# Head\n\npara one\ncontinued\n\n- item\n[[figure:surface:E01]]\n")
+    assert blocks == [("h1", "Head"), ("p", "para one continued"), ("li", "item"),
+                      ("marker", "figure", "surface", "E01")]
+
+
+def test_summary_for_an_unmarked_exhibit_claims_nothing(built_case):
+    d = _data(built_case)
+    text = _flat(render_markup(d))
+    assert "**Exhibit E03** (https://tidewater-home-goods.example/products/cat-cushion): " \
+           "no mark of this owner was found" in text
+    assert "2 carry the owner's mark" in text
+
+
+def test_report_json_and_out(built_case, tmp_path, monkeypatch, capsys):
+    from claimkit.cli import main
+
+    work = tmp_path / "case"
+    shutil.copytree(built_case.case, work)
+    monkeypatch.setenv("CLAIMKIT_PASSPHRASE", "harwick-bay-casework-tests")
+    out = tmp_path / "dossier-copy.pdf"
+    assert main(["--home", str(built_case.home), "report", str(work), "--out", str(out),
+                 "--json"]) == 0
+    rep = json.loads(capsys.readouterr().out)
+    assert rep["summary"]["detected"] == ["E01", "E02"]
+    assert out.read_bytes()[:5] == b"%PDF-"
+    assert io.BytesIO(out.read_bytes()).getbuffer().nbytes == (work / "report/dossier.pdf").stat().st_size
