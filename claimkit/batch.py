@@ -279,6 +279,10 @@ class _MarkBatch:
                 job.early = {"status": "failed", "error": exc.line(),
                              "kind": "disk-full" if _disk_full(exc) else "input"}
                 args = None
+            except (OSError, sqlite3.Error) as exc:     # e.g. the registry's disk is full
+                job.early = {"status": "failed", "error": f"{src}: {exc}",
+                             "kind": "disk-full" if _disk_full(exc) else "internal"}
+                args = None
             yield job, args
 
     def _prepare(self, job: _Job):
@@ -537,6 +541,9 @@ def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
     # Staged copies of tasks abandoned by a second Ctrl-C were never registered.
     for staged in batch.in_flight:
         staged.unlink(missing_ok=True)
+        # A worker stopped mid-write may leave the writer's temporary file too.
+        for tmp in staged.parent.glob(f".{staged.name}.*.partial"):
+            tmp.unlink(missing_ok=True)
     return _finish_report(batch.summary, total=len(pairs) + len(problems),
                           json_lines=json_lines)
 

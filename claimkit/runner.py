@@ -263,7 +263,7 @@ def _mp_context():
         ctx = multiprocessing.get_context("forkserver")
         # Workers fork from a server that has already imported the engine, so
         # starting one costs milliseconds instead of a fresh numpy import.
-        ctx.set_forkserver_preload(["claimkit.batch", "claimkit.scan"])
+        ctx.set_forkserver_preload(["claimkit.workflow", "claimkit.batch", "claimkit.scan"])
         return ctx
     return multiprocessing.get_context("spawn")
 
@@ -286,13 +286,17 @@ class LocalEngine(_Engine):
 
     def close(self, *, cancel: bool = False) -> None:
         if cancel:
-            self._pool.shutdown(wait=False, cancel_futures=True)
             # Tasks already running cannot be cancelled; their workers are
             # stopped so that the command returns now (their staged outputs
-            # are removed by the caller or at the next run).
-            for proc in list(getattr(self._pool, "_processes", {}).values()):
+            # are removed by the caller or overwritten at the next run).
+            procs = list((getattr(self._pool, "_processes", None) or {}).values())
+            self._pool.shutdown(wait=False, cancel_futures=True)
+            for proc in procs:
                 with contextlib.suppress(Exception):
                     proc.terminate()
+            for proc in procs:
+                with contextlib.suppress(Exception):
+                    proc.join(timeout=5)
         else:
             self._pool.shutdown(wait=True)
 

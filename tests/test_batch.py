@@ -15,7 +15,6 @@ import os
 import signal
 import subprocess
 import sys
-import textwrap
 import threading
 import time
 from concurrent.futures import ThreadPoolExecutor
@@ -271,6 +270,35 @@ def test_full_disk_stops_keeps_what_was_done_and_resumes(profile, shoot, tmp_pat
     assert_consistent(profile, out, _originals(shoot))
 
 
+def test_full_registry_disk_registers_nothing_half_way(profile, shoot, tmp_path,
+                                                      monkeypatch, capsys):
+    import sqlite3
+
+    real = profile.register_work
+    calls = []
+
+    def register(*a, **k):
+        calls.append(a)
+        if len(calls) == 2:
+            raise sqlite3.OperationalError("database or disk is full")
+        return real(*a, **k)
+
+    monkeypatch.setattr(profile, "register_work", register)
+    out = tmp_path / "marked"
+    code = batch.mark_many(profile, [shoot], out, workers=1, json_lines=True)
+    rows, err = _lines(capsys)
+    assert code == 1
+    assert [r["status"] for r in rows] == ["marked", "failed"]
+    assert rows[1]["kind"] == "disk-full" and "stopped early" in err
+    assert not Path(rows[1]["output"]).exists()          # never in place unregistered
+    assert len(profile.works()) == 1
+    assert_consistent(profile, out, _originals(shoot))
+    monkeypatch.setattr(profile, "register_work", real)
+    assert batch.mark_many(profile, [shoot], out, workers=1) == 0
+    assert len(profile.works()) == 5
+    assert_consistent(profile, out, _originals(shoot))
+
+
 def test_ctrl_c_in_process_finishes_the_current_file(profile, shoot, tmp_path,
                                                      monkeypatch, capsys):
     real = batch.mark_task
@@ -341,28 +369,22 @@ def test_output_folder_rules(profile, shoot, tmp_path, capsys):
 
 # --------------------------------------------------------------------------- a real pool, a real Ctrl-C
 
-_CHILD = textwrap.dedent("""
-    import sys
-    from pathlib import Path
-    from claimkit.batch import mark_many
-    from claimkit.evidence.profile import Profile
-    with Profile.open(Path(sys.argv[1]), sys.argv[2].encode()) as p:
-        sys.exit(mark_many(p, [Path(sys.argv[3])], Path(sys.argv[4]), workers=2,
-                           json_lines=True))
-""")
 
 
-def test_ctrl_c_with_worker_processes(profile_home, tmp_path):
+
+@pytest.mark.parametrize("presses", [1, 2])
+def test_ctrl_c_with_worker_processes(profile_home, tmp_path, presses):
     shoot = tmp_path / "big-shoot"
     base = data.coffee()
-    for i in range(10):
-        # Ten different 1200 x 1800 pictures: each takes a worker a moment.
-        img = np.kron(np.roll(base, 37 * i, axis=1), np.ones((3, 3, 1), np.uint8))
+    for i in range(8):
+        # Eight different 800 x 1200 pictures: each takes a worker a moment.
+        img = np.kron(np.roll(base, 37 * i, axis=1), np.ones((2, 2, 1), np.uint8))
         _save(img, shoot / f"frame{i:02d}.jpg", quality=90)
     out = tmp_path / "marked"
     env = dict(os.environ, PYTHONPATH=str(Path(__file__).resolve().parents[1]))
-    cmd = [sys.executable, "-c", _CHILD, str(profile_home), TEST_PASSPHRASE.decode(),
-           str(shoot), str(out)]
+    # The real command line (CLAIMKIT_HOME and CLAIMKIT_PASSPHRASE come from the fixture).
+    cmd = [sys.executable, "-m", "claimkit", "mark", str(shoot), "--out", str(out),
+           "--workers", "2", "--json"]
     proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=env,
                             text=True)
     lines: list[str] = []
@@ -373,12 +395,15 @@ def test_ctrl_c_with_worker_processes(profile_home, tmp_path):
         time.sleep(0.05)
     assert lines, "no file was marked within a minute"
     proc.send_signal(signal.SIGINT)
+    if presses == 2:          # the second press abandons the files in progress
+        time.sleep(0.05)
+        proc.send_signal(signal.SIGINT)
     code = proc.wait(timeout=60)
     reader.join(timeout=5)
     err = proc.stderr.read()
     assert code == 130, err
     done = [json.loads(x) for x in lines]
-    assert 1 <= len(done) < 10, "the run should stop early"
+    assert 1 <= len(done) < 8, "the run should stop early"
     assert all(r["status"] == "marked" for r in done)
     with Profile.open(profile_home, TEST_PASSPHRASE) as p:
         assert len(p.works()) == len(done)
@@ -388,7 +413,7 @@ def test_ctrl_c_with_worker_processes(profile_home, tmp_path):
     assert again.returncode == 0, again.stderr
     rows = [json.loads(x) for x in again.stdout.splitlines()]
     assert sum(r["status"] == "skipped" for r in rows) == len(done)
-    assert sum(r["status"] == "marked" for r in rows) == 10 - len(done)
+    assert sum(r["status"] == "marked" for r in rows) == 8 - len(done)
     with Profile.open(profile_home, TEST_PASSPHRASE) as p:
-        assert len(p.works()) == 10
+        assert len(p.works()) == 8
         assert_consistent(p, out, sorted(shoot.glob("*.jpg")))

@@ -1,0 +1,352 @@
+"""Throughput at a photographer's scale (issue 6), printed as ratios measured in this one run.
+
+    python benchmarks/bench_scale.py [--count12 N] [--scan-count N] [--quick]
+
+What it measures (nothing is asserted; targets are printed beside the numbers):
+
+1. **scan** of web-size JPEGs (1-2 megapixels, half of them marked and
+   recompressed): files per second on 2 worker processes, and the scan's
+   wall time against the time Pillow takes just to decode the same files in
+   one process. Targets: >= 12 files/s, <= 4x the decode time.
+2. **batch mark** of 12-megapixel JPEGs: one worker (in this process) against
+   two worker processes, and the one-worker time per file against Pillow's
+   decode + encode of the same file. Target: >= 1.8x faster on 2 cores.
+3. **cost growth** from 1 to 24 megapixels for one file in one process:
+   seconds per megapixel of examine and mark (close to linear if the
+   per-megapixel cost stays flat).
+4. **peak memory** of the whole process tree (parent, forkserver, workers)
+   during the 2-worker batch mark and the 24-megapixel mark. Target: < 2 GB.
+
+Pictures are made from ``skimage.data`` (coffee, chelsea, rocket, brick,
+grass, gravel) resized and mixed with a little noise, each one different (a
+batch skips a file it has seen). The profile uses the lowered test key
+derivation; opening a profile is not what is measured.
+"""
+
+from __future__ import annotations
+
+import argparse
+import contextlib
+import io
+import os
+import sys
+import tempfile
+import threading
+import time
+from pathlib import Path
+
+os.environ.setdefault("CLAIMKIT_TEST_FAST_KDF", "1")
+
+import numpy as np
+from PIL import Image
+
+TARGET_SCAN_RATE = 12.0
+TARGET_SCAN_VS_DECODE = 4.0
+TARGET_SPEEDUP = 1.8
+TARGET_PEAK_MB = 2048
+
+
+# --------------------------------------------------------------------------- pictures
+
+def _sources() -> list[np.ndarray]:
+    from skimage import data
+    out = []
+    for name in ("coffee", "chelsea", "rocket", "brick", "grass", "gravel"):
+        img = getattr(data, name)()
+        if img.ndim == 2:
+            img = np.stack([img] * 3, axis=-1)
+        out.append(img[..., :3])
+    return out
+
+
+def make_picture(index: int, width: int, height: int, sources) -> np.ndarray:
+    """A distinct natural-looking picture: one source enlarged, a second blended in, noise."""
+    rng = np.random.default_rng(index)
+    a = sources[index % len(sources)]
+    b = sources[(index * 5 + 1) % len(sources)]
+    big = np.asarray(Image.fromarray(a).resize((width, height), Image.BICUBIC), np.float32)
+    small = np.asarray(Image.fromarray(b).resize((width // 3, height // 3), Image.BICUBIC),
+                       np.float32)
+    y, x = rng.integers(0, height - small.shape[0]), rng.integers(0, width - small.shape[1])
+    big[y:y + small.shape[0], x:x + small.shape[1]] *= 0.5
+    big[y:y + small.shape[0], x:x + small.shape[1]] += 0.5 * small
+    big += rng.normal(0, 3.0, big.shape[:2])[..., None].astype(np.float32)
+    return np.clip(big, 0, 255).astype(np.uint8)
+
+
+def write_jpegs(folder: Path, count: int, size: tuple[int, int], *, start: int = 0,
+                quality: int = 90) -> list[Path]:
+    folder.mkdir(parents=True, exist_ok=True)
+    src = _sources()
+    paths = []
+    for i in range(count):
+        p = folder / f"img{start + i:04d}.jpg"
+        Image.fromarray(make_picture(start + i, *size, src)).save(p, quality=quality)
+        paths.append(p)
+    return paths
+
+
+# --------------------------------------------------------------------------- memory
+
+class TreeMemory:
+    """Samples the resident memory of this process and all its descendants (Linux /proc)."""
+
+    def __init__(self, interval: float = 0.05):
+        self.interval = interval
+        self.peak = 0
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, daemon=True)
+
+    @staticmethod
+    def tree_rss() -> int:
+        me = os.getpid()
+        parent: dict[int, int] = {}
+        for entry in os.listdir("/proc"):
+            if not entry.isdigit():
+                continue
+            try:
+                with open(f"/proc/{entry}/stat") as fh:
+                    fields = fh.read().rsplit(")", 1)[1].split()
+                parent[int(entry)] = int(fields[1])
+            except (OSError, IndexError, ValueError):
+                continue
+        members, changed = {me}, True
+        while changed:
+            changed = False
+            for pid, ppid in parent.items():
+                if ppid in members and pid not in members:
+                    members.add(pid)
+                    changed = True
+        total = 0
+        for pid in members:
+            try:
+                with open(f"/proc/{pid}/status") as fh:
+                    for line in fh:
+                        if line.startswith("VmRSS:"):
+                            total += int(line.split()[1]) * 1024
+                            break
+            except OSError:
+                continue
+        return total
+
+    def _run(self):
+        while not self._stop.is_set():
+            self.peak = max(self.peak, self.tree_rss())
+            self._stop.wait(self.interval)
+
+    def __enter__(self):
+        self._thread.start()
+        return self
+
+    def __exit__(self, *exc):
+        self._stop.set()
+        self._thread.join()
+
+
+# --------------------------------------------------------------------------- helpers
+
+@contextlib.contextmanager
+def quiet():
+    """Silence the per-file lines of the batch commands (stdout and stderr)."""
+    with open(os.devnull, "w") as null, contextlib.redirect_stdout(null), \
+            contextlib.redirect_stderr(null):
+        yield
+
+
+def pillow_decode(paths: list[Path]) -> float:
+    t = time.perf_counter()
+    for p in paths:
+        with Image.open(p) as im:
+            np.asarray(im.convert("RGB"))
+    return time.perf_counter() - t
+
+
+def pillow_decode_encode(paths: list[Path]) -> float:
+    """Decode and re-encode as claimkit writes a JPEG (quality 95, 4:4:4, optimised)."""
+    t = time.perf_counter()
+    for p in paths:
+        with Image.open(p) as im:
+            im.load()
+            buf = io.BytesIO()
+            im.save(buf, format="JPEG", quality=95, subsampling=0, optimize=True)
+    return time.perf_counter() - t
+
+
+def line(label: str, value: str, target: str = "") -> None:
+    print(f"  {label:<58} {value:>14}   {target}")
+
+
+# --------------------------------------------------------------------------- sections
+
+def steady_rate(files: list[Path], fn, args_of, workers: int) -> float:
+    """Files per second once the pool is up (two warm-up tasks first)."""
+    from claimkit.runner import StopGuard, make_engine, run_ordered
+
+    eng = make_engine("local", workers=workers)
+    for f in files[:2]:
+        eng.submit(fn, *args_of(f)).result()
+    t = time.perf_counter()
+    run_ordered(eng, fn, ((f, args_of(f)) for f in files), lambda o: None, guard=StopGuard())
+    return len(files) / (time.perf_counter() - t)
+
+
+def load() -> str:
+    one, five, _ = os.getloadavg()
+    return f"load average {one:.2f} (1 min), {five:.2f} (5 min)"
+
+
+def bench_scan(profile, work: Path, count: int) -> None:
+    from claimkit import batch, scan
+
+    print(f"\n1. scan of {count} web-size JPEGs (1.2-1.9 MP, half marked and recompressed)"
+          f"  [{load()}]")
+    half = count // 2
+    write_jpegs(work / "scan-src", half, (1600, 1200), start=1000, quality=95)
+    with quiet():
+        batch.mark_many(profile, [work / "scan-src"], work / "scan-marked", workers=2)
+    web = work / "web"
+    web.mkdir()
+    for p in sorted((work / "scan-marked").glob("*.jpg")):
+        Image.open(p).save(web / f"found-{p.name}", quality=80)
+    write_jpegs(web, count - half, (1280, 960), start=2000, quality=80)
+    files = sorted(web.glob("*.jpg"))
+    mp = np.mean([Image.open(f).size[0] * Image.open(f).size[1] for f in files]) / 1e6
+    t_decode = min(pillow_decode(files) for _ in range(2))
+    seed, checker = profile.detection_seed, scan.PayloadChecker.of(profile)
+    cpu = time.process_time()
+    t = time.perf_counter()
+    claimed = sum(bool(scan.scan_task(str(f), seed, checker, 1e-9, None).get("detected"))
+                  for f in files)
+    t_one = time.perf_counter() - t
+    cpu_one = (time.process_time() - cpu) / len(files)
+    with quiet():
+        t = time.perf_counter()
+        scan.scan_folders(profile, [web], workers=2, json_lines=True)
+        t_cmd = time.perf_counter() - t
+    rate2 = steady_rate(files, scan.scan_task, lambda f: (str(f), seed, checker, 1e-9, None), 2)
+    line("mean picture size", f"{mp:.2f} MP")
+    line("claimed (of the marked half)", f"{claimed}/{half}")
+    line("Pillow decode, one process, per file", f"{1000 * t_decode / len(files):.0f} ms")
+    line("examine, one process: CPU time per file", f"{1000 * cpu_one:.0f} ms")
+    line("examine CPU per file / Pillow decode per file", f"{cpu_one * len(files) / t_decode:.1f}x",
+         f"target <= {TARGET_SCAN_VS_DECODE:.0f}x (on 2 cores: "
+         f"{cpu_one * len(files) / 2 / t_decode:.1f}x)")
+    line("scan, 1 worker (in process)", f"{len(files) / t_one:.1f} files/s")
+    line("scan, 2 worker processes, pool already up", f"{rate2:.1f} files/s",
+         f"target >= {TARGET_SCAN_RATE:.0f} files/s")
+    line("  the same with no other load (2 / CPU per file)", f"{2 / cpu_one:.1f} files/s")
+    line("claimkit scan command, 2 workers, incl. pool start", f"{len(files) / t_cmd:.1f} files/s")
+    line("scan wall time on 2 workers / Pillow decode time", f"{len(files) / rate2 / t_decode:.1f}x",
+         f"target <= {TARGET_SCAN_VS_DECODE:.0f}x")
+    line("speed-up of scan, 2 workers over 1", f"{rate2 * t_one / len(files):.2f}x")
+
+
+def bench_mark(profile, work: Path, count: int) -> None:
+    from claimkit import batch
+
+    print(f"\n2. batch mark of {count} 12-megapixel JPEGs (4000 x 3000)  [{load()}]")
+    folder = work / "mark12"
+    files = write_jpegs(folder, count, (4000, 3000), start=3000, quality=92)
+    t_de = pillow_decode_encode(files[:2]) / 2
+    times, peaks = {}, {}
+    for workers in (1, 2):
+        out = work / f"mark12-out-{workers}"
+        # A fresh profile per run: the second run must not skip what the first marked.
+        with fresh_profile(work / f"home-mark-{workers}") as prof, TreeMemory() as mem, quiet():
+            t, cpu = time.perf_counter(), time.process_time()
+            code = batch.mark_many(prof, [folder], out, workers=workers)
+            times[workers] = time.perf_counter() - t
+            if workers == 1:
+                cpu_per_file = (time.process_time() - cpu) / count
+            else:
+                parent_cpu = (time.process_time() - cpu) / count
+        peaks[workers] = mem.peak / 2**20
+        assert code == 0, f"batch mark failed with exit {code}"
+    per_file = times[1] / count
+    line("Pillow decode + encode (q95, 4:4:4), per file", f"{t_de:.2f} s")
+    line("batch mark, 1 worker (in process), per file", f"{per_file:.2f} s")
+    line("batch mark, 1 worker, CPU time per file", f"{cpu_per_file:.2f} s")
+    line("mark CPU per file / (decode + encode) per file", f"{cpu_per_file / t_de:.1f}x")
+    line("batch mark, 2 workers (incl. pool start), per file", f"{times[2] / count:.2f} s")
+    line("  of which the parent's own CPU per file (hash, register)", f"{parent_cpu:.3f} s")
+    line("speed-up, 2 workers over 1", f"{times[1] / times[2]:.2f}x",
+         f"target >= {TARGET_SPEEDUP}x")
+    line("peak memory of the process tree, 1 worker", f"{peaks[1]:.0f} MB")
+    line("peak memory of the process tree, 2 workers", f"{peaks[2]:.0f} MB",
+         f"target < {TARGET_PEAK_MB} MB")
+
+
+def bench_growth(profile, work: Path, sizes) -> None:
+    from claimkit import batch, scan
+    from claimkit.mark import payload
+
+    print(f"\n3. cost growth with picture size (one file, one process)  [{load()}]")
+    print(f"  {'MP':>5} {'decode s':>9} {'examine s':>10} {'s/MP':>7} {'mark s':>8} "
+          f"{'s/MP':>7} {'peak MB':>8}")
+    seed = profile.detection_seed
+    checker = scan.PayloadChecker.of(profile)
+    bits = [int(b) for b in payload.pack(profile.owner_tag, 1, profile.payload_tag(1))]
+    rows = []
+    for w, h in sizes:
+        p = write_jpegs(work / f"growth-{w}", 1, (w, h), start=4000 + w, quality=92)[0]
+        t_dec = pillow_decode([p])
+        staged = p.with_name(".staged.jpg")
+        with TreeMemory() as mem:
+            t = time.perf_counter()
+            res = batch.mark_task(str(p), str(staged), seed, bits, 1.0, 95, None)
+            t_mark = time.perf_counter() - t
+            assert "error" not in res, res
+            t = time.perf_counter()
+            rep = scan.scan_task(str(staged), seed, checker, 1e-9, None)
+            t_exam = time.perf_counter() - t
+        assert rep.get("detected"), rep
+        mp = w * h / 1e6
+        rows.append((mp, t_exam / mp, t_mark / mp))
+        print(f"  {mp:5.1f} {t_dec:9.2f} {t_exam:10.2f} {t_exam / mp:7.3f} {t_mark:8.2f} "
+              f"{t_mark / mp:7.3f} {mem.peak / 2**20:8.0f}")
+    first, last = rows[0], rows[-1]
+    line(f"examine s/MP at {last[0]:.0f} MP / at {first[0]:.0f} MP", f"{last[1] / first[1]:.2f}x",
+         "1.0 = linear in pixels")
+    line(f"mark s/MP at {last[0]:.0f} MP / at {first[0]:.0f} MP", f"{last[2] / first[2]:.2f}x",
+         "1.0 = linear in pixels")
+
+
+@contextlib.contextmanager
+def fresh_profile(home: Path):
+    from claimkit.evidence.profile import Profile
+
+    Profile.create(home, "Ilse Marrow (benchmark)", b"bench").close()
+    prof = Profile.open(home, b"bench")
+    try:
+        yield prof
+    finally:
+        prof.close()
+
+
+def main() -> int:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    ap.add_argument("--count12", type=int, default=8,
+                    help="12-MP files in the batch-mark test (issue 6 names 200; default 8)")
+    ap.add_argument("--scan-count", type=int, default=48, help="web-size files to scan")
+    ap.add_argument("--quick", action="store_true", help="small counts, sizes up to 12 MP")
+    args = ap.parse_args()
+    sizes = [(1200, 900), (2400, 1800), (4000, 3000), (6000, 4000)]
+    if args.quick:
+        args.count12, args.scan_count, sizes = 4, 16, sizes[:3]
+    from claimkit.runner import default_workers
+    print(f"claimkit scale benchmark: {default_workers()} usable cores, "
+          f"Python {sys.version.split()[0]}")
+    with tempfile.TemporaryDirectory(prefix="claimkit-bench-") as tmp:
+        work = Path(tmp)
+        with fresh_profile(work / "home") as profile:
+            bench_scan(profile, work, args.scan_count)
+            bench_mark(profile, work, args.count12)
+            bench_growth(profile, work, sizes)
+    print(f"\n[{load()}] Numbers are from this run on this machine; nothing is asserted. "
+          "Other work on the machine (see the load averages) lowers the wall-clock rates "
+          "and the speed-ups; CPU times per file are not affected.")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
