@@ -37,7 +37,7 @@ def mark_parameters(strength: float) -> dict:
         "pilot_spots": pattern.PILOT_SPOTS,
         "code_spots": pattern.CODE_SPOTS,
         "spot_sigma_px": pattern.SPOT_SIGMA,
-        "code": "convolutional, rate 1/3, constraint 7, generators 133/171/165 (octal)",
+        "code": "convolutional, rate 1/3, constraint 9, generators 557/663/711 (octal)",
         "mask": "SSIM-derived local amplitude",
         "local_ssim_target": embed.DEFAULT_LOCAL_SSIM,
         "psnr_cap_db": embed.DEFAULT_PSNR_DB,
@@ -127,13 +127,27 @@ def expected_payload_check(bits: np.ndarray) -> Callable[[np.ndarray], bool]:
     return lambda got: bool(np.array_equal(np.asarray(got, dtype=np.uint8), want))
 
 
-def examine_picture(pic: Picture, seed: bytes, *, payload_check=None,
+def known_owner_bits(owner_tag: int) -> np.ndarray:
+    """The payload bits fixed by the owner tag (the rest unknown, -1)."""
+    known = np.full(pattern.PAYLOAD_BITS, -1, dtype=np.int64)
+    known[:16] = payload.pack(owner_tag, 0, 0)[:16]
+    return known
+
+
+def examine_picture(pic: Picture, seed: bytes, *, owner_tag: int | None = None, payload_check=None,
                     threshold: float = detect.DEFAULT_THRESHOLD, decoys: int = 0,
                     workers: int = 1) -> Finding:
-    """Examine a decoded picture (no registry lookup)."""
+    """Examine a decoded picture for the mark of ``seed`` (no registry lookup).
+
+    ``owner_tag`` is the tag of the owner whose payloads are looked for (public:
+    it is in every work record); the decoder keeps to its bits, which makes
+    weak marks decodable more often. Give it wherever it is known.
+    """
     _check_size(pic, MIN_EXAMINE_SIDE, "examination")
     return detect.examine_luma(to_luma(pic.pixels), seed, payload_check=payload_check,
-                               payload_space=payload.PAYLOAD_SPACE, threshold=threshold,
+                               payload_space=payload.PAYLOAD_SPACE,
+                               known_bits=None if owner_tag is None else known_owner_bits(owner_tag),
+                               threshold=threshold,
                                decoys=decoys, workers=workers)
 
 
@@ -146,7 +160,8 @@ def examine_file(profile, path: str | os.PathLike, *, threshold: float = detect.
     """
     path = Path(path)
     pic = read_picture(path, max_pixels=max_pixels)
-    finding = examine_picture(pic, profile.detection_seed, payload_check=owner_payload_check(profile),
+    finding = examine_picture(pic, profile.detection_seed, owner_tag=profile.owner_tag,
+                              payload_check=owner_payload_check(profile),
                               threshold=threshold, decoys=decoys, workers=workers)
     return report_for(path, pic, finding, profile), finding
 

@@ -19,7 +19,7 @@ def test_convolutional_code_round_trip_and_correction():
     for _ in range(20):
         bits = rng.integers(0, 2, 64)
         code = ecc.encode(bits)
-        assert code.size == 210
+        assert code.size == 216
         assert np.array_equal(ecc.decode(2.0 * code - 1.0, 64), bits)
         # Per-symbol SNR 2 (about 10 % raw symbol errors): the code must fix them all.
         noisy = 2.0 * (2.0 * code - 1.0) + rng.normal(0, 1, code.size)
@@ -29,10 +29,10 @@ def test_convolutional_code_round_trip_and_correction():
 
 def test_encoder_matches_generator_polynomials_by_hand():
     # A single 1 followed by zeros: the output is the impulse response, i.e. the
-    # generator polynomials 133, 171, 165 (octal) read bit by bit from the MSB.
-    out = ecc.encode(np.array([1] + [0] * 6)).reshape(-1, 3)[:7]
-    for j, g in enumerate((0o133, 0o171, 0o165)):
-        taps = [(g >> (6 - t)) & 1 for t in range(7)]
+    # generator polynomials 557, 663, 711 (octal) read bit by bit from the MSB.
+    out = ecc.encode(np.array([1] + [0] * 8)).reshape(-1, 3)[:9]
+    for j, g in enumerate((0o557, 0o663, 0o711)):
+        taps = [(g >> (8 - t)) & 1 for t in range(9)]
         assert out[:, j].tolist() == taps
 
 
@@ -46,7 +46,7 @@ def test_carrier_has_flat_magnitude_and_delta_autocorrelation():
     acf = np.real(np.fft.ifft2(np.abs(np.fft.fft2(carrier)) ** 2))
     off = np.abs(acf.ravel()[1:]).max()
     assert off < 0.01 * acf[0, 0]
-    tile = mark_tile(pat, np.zeros(210, dtype=int))
+    tile = mark_tile(pat, np.zeros(216, dtype=int))
     assert tile.shape == (TILE, TILE) and abs(float(tile.mean())) < 1e-5
 
 

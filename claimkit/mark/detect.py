@@ -2,8 +2,8 @@
 
 Steps, for a copy with no original at hand:
 
-1. Pre-whiten the luma (subtract a local mean) and normalise it block by
-   block by its standard deviation, so that no single busy area dominates.
+1. Pre-whiten the luma (subtract a local mean) and divide by the local
+   standard deviation, so that no busy area dominates.
 2. Estimate the mark's lattice in the copy (:mod:`claimkit.mark.geometry`)
    and resample onto the original grid; the unwarped copy is always tried too.
 3. Fold: sum all periods into one ``TILE x TILE`` array.
@@ -40,7 +40,7 @@ from claimkit.mark.pattern import (
 )
 
 PREFILTER = 9                 # local-mean window of the whitening prefilter, pixels
-BLOCK = 64                    # block size of the standard-deviation normalisation
+NORM_WINDOW = 9               # window of the local standard-deviation normalisation
 PHASES = ((0.0, 0.0), (0.0, 0.5), (0.5, 0.0), (0.5, 0.5))   # sub-pixel phases tried
 GEOMETRIES = 1 + geometry.LATTICE_CANDIDATES                  # unwarped + lattice fits
 DIHEDRAL = 8
@@ -107,20 +107,20 @@ def _r2(v: float | None) -> float | None:
 # ---------------------------------------------------------------- preparation
 
 def whiten(luma: np.ndarray) -> np.ndarray:
-    """Local-mean prefilter and block-wise standard-deviation normalisation (float32)."""
+    """Local-mean prefilter, then division by the local standard deviation (float32).
+
+    The local normalisation (a 9 x 9 window) keeps busy areas, where the
+    picture itself is the loudest noise, from drowning the quiet ones; it
+    measured better than block-wise normalisation (64, 32, 16 or 8 px) and
+    than a mask-matched weighting on JPEG, blur, crop and noise attacks.
+    """
     x = np.asarray(luma, dtype=np.float32)
     x = x - ndimage.uniform_filter(x, PREFILTER, mode="reflect")
-    h, w = x.shape
-    bh, bw = -(-h // BLOCK), -(-w // BLOCK)
-    pad = np.zeros((bh * BLOCK, bw * BLOCK), dtype=np.float32)
-    pad[:h, :w] = x * x
-    ones = np.zeros_like(pad)
-    ones[:h, :w] = 1.0
-    s2 = pad.reshape(bh, BLOCK, bw, BLOCK).sum(axis=(1, 3))
-    cnt = ones.reshape(bh, BLOCK, bw, BLOCK).sum(axis=(1, 3))
-    inv = 1.0 / np.sqrt(s2 / np.maximum(cnt, 1.0) + 1e-3)
-    scale = np.repeat(np.repeat(inv.astype(np.float32), BLOCK, axis=0), BLOCK, axis=1)[:h, :w]
-    return x * scale
+    var = ndimage.uniform_filter(x * x, NORM_WINDOW, mode="reflect")
+    var += 1e-3
+    np.sqrt(var, out=var)
+    x /= var
+    return x
 
 
 def fold(x: np.ndarray, tile: int = TILE) -> np.ndarray:
@@ -254,14 +254,14 @@ def _surfaces(prep: _Prepared, pattern: KeyPattern, ramps: np.ndarray):
     return np.stack(out)
 
 
-def _decode_at(prep, pattern, ramps, g, d, ph, shift, payload_check):
+def _decode_at(prep, pattern, ramps, g, d, ph, shift, payload_check, known_bits):
     n = pattern.tile
     weight = pattern.spot_ft * pattern.band
     rec_ft = prep.spectra[g][d] * weight * np.conj(pattern.carrier_phase) * ramps[ph]
     rec = np.real(np.fft.ifft2(rec_ft))
     pos = (pattern.code_pos + shift) % n
     soft = rec[pos[:, 0], pos[:, 1]]
-    bits = ecc.decode(soft, PAYLOAD_BITS)
+    bits = ecc.decode(soft, PAYLOAD_BITS, known=known_bits)
     valid = bool(payload_check(bits)) if payload_check is not None else False
     z_full = None
     if valid:
@@ -310,6 +310,7 @@ def _message(prep, pattern, ramps, g, d, ph, shift, bits):
 def examine_luma(luma: np.ndarray, seed: bytes, *,
                  payload_check: Callable[[np.ndarray], bool] | None = None,
                  payload_space: int = DEFAULT_PAYLOAD_SPACE,
+                 known_bits: np.ndarray | None = None,
                  threshold: float = DEFAULT_THRESHOLD, decoys: int = 0,
                  decoy_seed: int = 0, workers: int = 1,
                  prepared: _Prepared | None = None) -> Finding:
@@ -325,6 +326,10 @@ def examine_luma(luma: np.ndarray, seed: bytes, *,
         payload tag matches). Only a valid payload earns the full-template score.
     payload_space : int
         How many valid payloads ``payload_check`` could accept; counted in the bound.
+    known_bits : ndarray, optional
+        Payload bits the examiner already knows (0/1, -1 for unknown), such as
+        the owner tag; decoding keeps to them. This narrows nothing in the
+        bound: every valid payload already agrees with them.
     threshold : float
         ``detected`` means the false-alarm bound is at most this.
     decoys : int
@@ -346,7 +351,8 @@ def examine_luma(luma: np.ndarray, seed: bytes, *,
     for idx in order:
         g, d, ph, r, c = np.unravel_index(idx, surf.shape)
         shift = np.array([r, c])
-        bits, valid, z_full = _decode_at(prep, pattern, ramps, g, d, ph, shift, payload_check)
+        bits, valid, z_full = _decode_at(prep, pattern, ramps, g, d, ph, shift, payload_check,
+                                         known_bits)
         lp = stats.log10_false_alarm(float(flat[idx]), z_full, hypotheses(n), payload_space)
         if best is None or lp < best[0]:
             best = (lp, (g, d, ph, shift), bits, valid, z_full, float(flat[idx]))

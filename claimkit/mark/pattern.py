@@ -29,7 +29,7 @@ from claimkit.mark import ecc
 TILE = 128            # period of the tiled mark, in pixels of the original
 PAYLOAD_BITS = 64     # owner tag (16) + work serial (24) + payload tag (24)
 PILOT_SPOTS = 64      # spots with key-fixed signs, for detection and alignment
-CODE_SPOTS = ecc.coded_length(PAYLOAD_BITS)   # 210
+CODE_SPOTS = ecc.coded_length(PAYLOAD_BITS)   # 216
 SPOT_SIGMA = 1.0      # width of each message spot (Gaussian sigma, pixels): trades message sharpness for survival of JPEG and blur
 MIN_SPACING = 4       # minimum cyclic distance between spot centres, pixels
 
