@@ -105,7 +105,9 @@ def safe_extract(zip_path: Path, dest: Path) -> list[str]:
             if why:
                 raise CheckFailed(f"refused entry {info.filename!r}: it {why}", path=zip_path)
             mode = (info.external_attr >> 16) & 0xFFFF
-            if mode and not (stat.S_ISREG(mode) or stat.S_ISDIR(mode)):
+            # Many zip writers store permission bits only; a file type, when present, must
+            # be a regular file or a folder.
+            if stat.S_IFMT(mode) and not (stat.S_ISREG(mode) or stat.S_ISDIR(mode)):
                 kind = "a symbolic link" if stat.S_ISLNK(mode) else "not a regular file"
                 raise CheckFailed(f"refused entry {info.filename!r}: it is {kind}", path=zip_path)
             norm = str(PurePosixPath(info.filename))
@@ -361,7 +363,7 @@ def _rerun(root: Path, ex: dict, finding: dict, keys: dict, rep: VerifyReport) -
             "number reproduced")
 
 
-def _check_dossier(root: Path, pub, rep: VerifyReport) -> None:
+def _check_dossier(root: Path, pub, rep: VerifyReport, *, full: bool = True) -> None:
     from claimkit.dossier.build import DATA, HTML, PDF, draw_figures
     from claimkit.dossier.data import build_data
     from claimkit.dossier.pdfsign import check_pdf_signature
@@ -383,12 +385,24 @@ def _check_dossier(root: Path, pub, rep: VerifyReport) -> None:
         rep.add("dossier data", True, "report/dossier.json equals the data rebuilt from the "
                                       "findings and records")
     else:
+        from claimkit.evidence.canonical import canonicalize
         try:
-            diffs = _close(json.loads(stored), data, "dossier")
+            diffs = _close(json.loads(stored), canonicalize(data), "dossier")
         except ValueError:
             diffs = ["not JSON"]
-        rep.add("dossier data", False, "report/dossier.json differs from the data rebuilt from "
-                "the bundle: " + "; ".join(diffs[:6] or ["(byte differences)"]))
+        # Settings of the verifier's own engine are not evidence; a difference there means
+        # this claimkit is not the one that made the dossier, and is reported as such.
+        mine = [x for x in diffs if x.startswith("dossier.method.engine")]
+        rest = [x for x in diffs if x not in mine]
+        if mine:
+            rep.add("software settings", False, "this claimkit's engine settings differ from "
+                    "the ones the dossier was made with (numbers may not reproduce): "
+                    + "; ".join(mine[:4]))
+        if rest or not mine:
+            rep.add("dossier data", False, "report/dossier.json differs from the data rebuilt "
+                    "from the bundle: " + "; ".join(rest[:6] or ["(byte differences)"]))
+    if not full:
+        return
     from PIL import Image
     bad = []
     try:
@@ -509,10 +523,10 @@ def verify_bundle(path: str | os.PathLike, *, rerun: bool = True) -> VerifyRepor
                 _rerun(root, ex, f, keys, rep)
             except (InputError, OSError, KeyError, ValueError) as exc:
                 rep.add(f"{i} re-run", False, f"cannot be re-run ({exc})")
-        if rerun:
-            _check_dossier(root, pub, rep)
-        else:
-            rep.add("re-run", False, "skipped on request: the numbers were not re-derived")
+        _check_dossier(root, pub, rep, full=rerun)
+        if not rerun:
+            rep.add("re-run", False, "skipped on request: the examinations, figures and PDF "
+                                     "were not re-derived")
         return rep
     finally:
         if tmp is not None:

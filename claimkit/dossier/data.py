@@ -16,7 +16,7 @@ from pathlib import Path
 from claimkit import __version__
 from claimkit.errors import InputError
 from claimkit.evidence import signing
-from claimkit.evidence.canonical import canonical_json
+from claimkit.evidence.canonical import canonical_json, canonicalize
 from claimkit.evidence.custodylog import verify_log
 from claimkit.evidence.disclose import check_disclosure
 from claimkit.mark import detect, pattern, stats
@@ -143,8 +143,7 @@ def _constants(module) -> dict:
         v = getattr(module, name)
         if name.isupper() and not name.startswith("_") and isinstance(v, (int, float, str, tuple)) \
                 and not isinstance(v, bool):
-            out[f"{module.__name__.rsplit('.', 1)[-1]}.{name}"] = \
-                list(v) if isinstance(v, tuple) else v
+            out[f"{module.__name__.rsplit('.', 1)[-1]}.{name}"] = canonicalize(v)
     return out
 
 

@@ -1,0 +1,235 @@
+"""``claimkit verify``: passes a sound bundle, names every kind of tampering, refuses unsafe zips."""
+
+from __future__ import annotations
+
+import json
+import shutil
+import stat
+import zipfile
+from pathlib import Path
+
+import pytest
+
+from claimkit.case.verify import safe_extract, verify_bundle
+from claimkit.cli import main
+from claimkit.errors import CheckFailed
+from claimkit.evidence.canonical import canonical_json
+from test_case_fixtures import PASS, built_case  # noqa: F401 - the shared fixture
+
+pytestmark = pytest.mark.slow
+
+
+def _unpack(bundle: Path, dest: Path) -> Path:
+    with zipfile.ZipFile(bundle) as zf:
+        zf.extractall(dest)
+    return dest
+
+
+def _failed(rep) -> str:
+    return " | ".join(f"{c['check']}: {c['detail']}" for c in rep.failures)
+
+
+def _resign(folder: Path, home: Path) -> None:
+    """What an owner who edits a number would do: rebuild and re-sign the manifest."""
+    from claimkit.evidence.profile import Profile
+    from claimkit.evidence.storage import sha256_file
+
+    doc = json.loads((folder / "manifest.json").read_bytes())
+    for f in doc["files"]:
+        f["sha256"] = sha256_file(folder / f["path"])
+        f["size"] = (folder / f["path"]).stat().st_size
+    data = canonical_json(doc)
+    (folder / "manifest.json").write_bytes(data)
+    with Profile.open(home, PASS.encode()) as p:
+        (folder / "manifest.sig").write_bytes(p.sign(data))
+
+
+def test_sound_bundle_passes_every_check(built_case, capsys):
+    assert main(["verify", str(built_case.bundle), "--json"]) == 0
+    lines = [json.loads(x) for x in capsys.readouterr().out.splitlines()]
+    checks, verdict = lines[:-1], lines[-1]
+    assert verdict["ok"] and verdict["failed"] == [] and verdict["checks"] == len(checks)
+    names = {c["check"] for c in checks}
+    assert {"manifest signature", "file hashes", "custody log", "custody of exhibits",
+            "E01 re-run", "E02 re-run", "E03 re-run", "dossier data", "figures",
+            "HTML dossier", "PDF signature", "PDF content"} <= names
+    disclosure = [c for c in checks if c["check"].startswith("disclosure ")]
+    assert len(disclosure) == 1 and "1 timestamp token(s) verified" in disclosure[0]["detail"]
+
+
+def test_the_case_folder_itself_verifies(built_case):
+    rep = verify_bundle(built_case.case, rerun=False)
+    # The quick path says plainly that it did not re-derive the numbers, and nothing else fails.
+    assert [c["check"] for c in rep.failures] == ["re-run"], _failed(rep)
+    assert {"dossier data", "custody of exhibits", "file hashes"} <= \
+        {c["check"] for c in rep.checks if c["ok"]}
+
+
+def test_any_single_byte_change_is_named(built_case, tmp_path):
+    """Flip one byte in every file in turn; the quick path (no re-run) already names it."""
+    base = _unpack(built_case.bundle, tmp_path / "base")
+    files = sorted(p.relative_to(base).as_posix() for p in base.rglob("*") if p.is_file())
+    assert len(files) > 20
+    for rel in files:
+        work = tmp_path / "w"
+        shutil.rmtree(work, ignore_errors=True)
+        shutil.copytree(base, work)
+        p = work / rel
+        p.chmod(0o644)
+        data = bytearray(p.read_bytes())
+        data[len(data) // 2] ^= 0x01
+        p.write_bytes(bytes(data))
+        rep = verify_bundle(work, rerun=False)
+        assert not rep.ok
+        text = _failed(rep)
+        if rel in ("manifest.json", "manifest.sig"):
+            assert "manifest" in text, (rel, text)
+        elif rel == "handover/public-key.pem":
+            assert "manifest" in text or "key" in text, (rel, text)
+        else:
+            assert f"{rel}: SHA-256 differs from the manifest" in text, (rel, text)
+
+
+def test_a_changed_exhibit_fails_the_full_verify_too(built_case, tmp_path):
+    work = _unpack(built_case.bundle, tmp_path / "w")
+    p = next((work / "exhibits").glob("E01-*"))
+    data = bytearray(p.read_bytes())
+    data[-100] ^= 0x01
+    p.write_bytes(bytes(data))
+    rep = verify_bundle(work, rerun=False)
+    text = _failed(rep)
+    assert f"{p.relative_to(work).as_posix()}: SHA-256 differs" in text
+    assert "E01 exhibit" in text and "differs from the intake record" in text
+
+
+def test_removed_exhibit_is_named(built_case, tmp_path):
+    work = _unpack(built_case.bundle, tmp_path / "w")
+    p = next((work / "exhibits").glob("E02-*"))
+    p.unlink()
+    rep = verify_bundle(work, rerun=False)
+    text = _failed(rep)
+    assert "listed but missing" in text and "E02 exhibit" in text and "exhibit removed" in text
+
+
+def test_replaced_key_is_named(built_case, tmp_path):
+    from claimkit.evidence.profile import Profile
+
+    work = _unpack(built_case.bundle, tmp_path / "w")
+    other = Profile.create(tmp_path / "mallory", "Someone Else", b"other-passphrase")
+    (work / "handover" / "public-key.pem").write_bytes(other.public_key_pem())
+    # Even a manifest re-signed with the other key does not pass.
+    _resign_with(work, other)
+    other.close()
+    rep = verify_bundle(work, rerun=False)
+    text = _failed(rep)
+    assert "case.json names another key" in text
+    assert "its public key is not the bundle's" in text or "signature does not verify" in text
+    assert "custody log" in text
+
+
+def _resign_with(folder: Path, profile) -> None:
+    from claimkit.evidence.storage import sha256_file
+
+    doc = json.loads((folder / "manifest.json").read_bytes())
+    for f in doc["files"]:
+        f["sha256"] = sha256_file(folder / f["path"])
+    doc["signer"]["public_key_sha256"] = profile.public_key_fingerprint
+    data = canonical_json(doc)
+    (folder / "manifest.json").write_bytes(data)
+    (folder / "manifest.sig").write_bytes(profile.sign(data))
+
+
+def test_edited_number_in_the_dossier_data_is_named(built_case, tmp_path):
+    work = _unpack(built_case.bundle, tmp_path / "w")
+    p = work / "report" / "dossier.json"
+    d = json.loads(p.read_bytes())
+    d["results"][0]["alignment"]["ssim"] = 0.9999
+    p.write_bytes(canonical_json(d) + b"\n")
+    rep = verify_bundle(work, rerun=False)
+    text = _failed(rep)
+    assert "report/dossier.json: SHA-256 differs from the manifest" in text
+    assert "dossier.results[0].alignment.ssim: stored 0.9999" in text
+
+
+def test_edited_finding_is_caught_even_when_the_owner_re_signs(built_case, tmp_path):
+    """An owner who edits a score and re-signs everything is still caught by the re-run."""
+    work = _unpack(built_case.bundle, tmp_path / "w")
+    p = work / "findings" / "E01.json"
+    f = json.loads(p.read_bytes())
+    f["result"]["score_pilot"] = round(f["result"]["score_pilot"] + 3.0, 4)
+    f["result"]["log10_false_alarm_probability"] -= 10
+    p.write_bytes(canonical_json(f) + b"\n")
+    _resign(work, built_case.home)
+    rep = verify_bundle(work)
+    names = {c["check"] for c in rep.failures}
+    assert "E01 re-run" in names, _failed(rep)
+    assert "custody of exhibits" in names          # not the finding that was logged
+    assert "dossier data" in names                 # the dossier no longer matches its findings
+    assert "score_pilot: stored" in _failed(rep)
+
+
+def test_exit_code_and_error_line(built_case, tmp_path, capsys):
+    work = _unpack(built_case.bundle, tmp_path / "w")
+    (work / "exhibits" / "E03.json").write_bytes(b"{}")
+    assert main(["verify", str(work)]) == 1
+    captured = capsys.readouterr()
+    assert "FAIL" in captured.out
+    assert captured.err.startswith(f"claimkit: error: {work}: ")
+    assert "check(s) failed" in captured.err
+
+
+def _zip_with(path: Path, name: str, data: bytes = b"x", *, mode: int = 0o100644) -> None:
+    with zipfile.ZipFile(path, "w") as zf:
+        info = zipfile.ZipInfo(name)
+        info.external_attr = mode << 16
+        zf.writestr(info, data)
+
+
+@pytest.mark.parametrize("name, why", [
+    ("../escape.txt", "climbs out"),
+    ("report/../../escape.txt", "climbs out"),
+    ("/etc/claimkit-test", "absolute path"),
+    ("C:/windows/file", "absolute path"),
+    ("report\\..\\x", "backslash"),
+])
+def test_unsafe_zip_names_are_refused(tmp_path, name, why):
+    z = tmp_path / "evil.zip"
+    _zip_with(z, name)
+    dest = tmp_path / "out"
+    dest.mkdir()
+    with pytest.raises(CheckFailed, match=why):
+        safe_extract(z, dest)
+    assert not (tmp_path / "escape.txt").exists()
+    rep = verify_bundle(z)
+    assert not rep.ok and rep.failures[0]["check"] == "bundle layout"
+
+
+def test_symlink_entries_are_refused(tmp_path):
+    z = tmp_path / "link.zip"
+    _zip_with(z, "report/dossier.pdf", b"/etc/passwd", mode=stat.S_IFLNK | 0o777)
+    with pytest.raises(CheckFailed, match="symbolic link"):
+        safe_extract(z, tmp_path)
+
+
+def test_duplicate_names_are_refused(tmp_path):
+    z = tmp_path / "dup.zip"
+    with zipfile.ZipFile(z, "w") as zf:
+        zf.writestr("case.json", b"{}")
+        with pytest.warns(UserWarning):
+            zf.writestr("case.json", b"{}")
+    with pytest.raises(CheckFailed, match="appears twice"):
+        safe_extract(z, tmp_path)
+
+
+def test_folder_with_a_link_out_is_refused(built_case, tmp_path):
+    work = _unpack(built_case.bundle, tmp_path / "w")
+    (work / "references" / "outside.jpg").symlink_to("/etc/hostname")
+    rep = verify_bundle(work, rerun=False)
+    assert not rep.ok and "symbolic link" in _failed(rep)
+
+
+def test_not_a_zip_is_bad_input(tmp_path, capsys):
+    p = tmp_path / "bundle.zip"
+    p.write_bytes(b"not a zip")
+    assert main(["verify", str(p)]) == 2
+    assert "not a readable zip file" in capsys.readouterr().err
