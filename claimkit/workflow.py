@@ -144,11 +144,19 @@ def examine_picture(pic: Picture, seed: bytes, *, owner_tag: int | None = None, 
     weak marks decodable more often. Give it wherever it is known.
     """
     _check_size(pic, MIN_EXAMINE_SIDE, "examination")
-    return detect.examine_luma(to_luma(pic.pixels), seed, payload_check=payload_check,
-                               payload_space=payload.PAYLOAD_SPACE,
-                               known_bits=None if owner_tag is None else known_owner_bits(owner_tag),
-                               threshold=threshold,
-                               decoys=decoys, workers=workers)
+    # Convert only the window the detector will read (large photos are examined
+    # on a central window; see detect.MAX_EXAMINE_PIXELS).
+    r0, c0, h, w = detect.central_window(pic.pixels.shape[:2])
+    finding = detect.examine_luma(
+        to_luma(pic.pixels[r0:r0 + h, c0:c0 + w]), seed, payload_check=payload_check,
+        payload_space=payload.PAYLOAD_SPACE,
+        known_bits=None if owner_tag is None else known_owner_bits(owner_tag),
+        threshold=threshold, decoys=decoys, workers=workers)
+    if finding.geometry:
+        g = finding.geometry
+        g["shift_px"] = [round(g["shift_px"][0] + c0, 2), round(g["shift_px"][1] + r0, 2)]
+        g["examined_window"] = [c0, r0, w, h]
+    return finding
 
 
 def examine_file(profile, path: str | os.PathLike, *, threshold: float = detect.DEFAULT_THRESHOLD,

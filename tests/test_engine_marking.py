@@ -89,3 +89,18 @@ def test_calibration_on_unmarked_pictures_including_textures():
     pvals = np.asarray(pvals)
     for p in (0.01, 0.05, 0.2):
         assert np.mean(pvals <= p) <= p, p
+
+
+@pytest.mark.parametrize("oy,ox,mirror", [(37, 53, False), (200, 301, False), (37, 53, True)])
+def test_grid_offset_and_mirror_reported_exactly(marked, oy, ox, mirror):
+    # The original's grid origin lies at (-ox mod 128, -oy mod 128) in a crop made at
+    # (ox, oy); a mirror of a W-wide copy puts it at W - 1 - x.
+    _, mk = marked["hubble"]
+    copy = mk[oy:oy + 500, ox:ox + 600]
+    x0, y0 = (-ox) % 128, (-oy) % 128
+    if mirror:
+        copy = copy[:, ::-1]
+        x0 = (599 - x0) % 128
+    g = examine(np.ascontiguousarray(copy)).geometry
+    assert g["flipped"] is mirror and g["rotation_deg"] == 0.0 and g["scale"] == 1.0
+    assert g["shift_px"][0] % 128 == x0 and g["shift_px"][1] % 128 == y0

@@ -139,17 +139,17 @@ def _variants(f: np.ndarray) -> np.ndarray:
     return np.stack(out)
 
 
-def _variant_matrices(tile: int) -> list[np.ndarray]:
-    """For each variant v, the integer matrix D with v(F)[u] = F[D u + c] (row, col)."""
+def _variant_maps(tile: int) -> list[tuple[np.ndarray, np.ndarray]]:
+    """For each variant v, the integer matrix D and offset c with v(F)[u] = F[(D u + c) mod T]."""
     r, c = np.meshgrid(np.arange(tile), np.arange(tile), indexing="ij")
     vr, vc = _variants(r), _variants(c)
-    mats = []
+    maps = []
     for i in range(DIHEDRAL):
         o = np.array([vr[i, 0, 0], vc[i, 0, 0]])
         d0 = (np.array([vr[i, 1, 0], vc[i, 1, 0]]) - o + 1) % tile - 1
         d1 = (np.array([vr[i, 0, 1], vc[i, 0, 1]]) - o + 1) % tile - 1
-        mats.append(np.stack([d0, d1], axis=1).astype(float))
-    return mats
+        maps.append((np.stack([d0, d1], axis=1).astype(float), o.astype(float)))
+    return maps
 
 
 def _ramps(tile: int) -> np.ndarray:
@@ -232,8 +232,15 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1) -> _Prepare
         lattices.append(lattice)
 
     add(x, None, np.zeros(2), None)
+    half = np.array([wh, ww], dtype=float) / 2
     for lat in geometry.find_lattices(x, tile, workers=workers):
         t = lat.transform(tile)
+        # A lattice that is the identity to within a fifth of a pixel across the
+        # window adds nothing to the unwarped fold: skip the costly resampling.
+        # (The hypothesis count stays fixed, so skipping is conservative.)
+        drift = np.abs(t - np.eye(2)) @ half
+        if drift.max() < 0.2:
+            continue
         canon, offset = geometry.to_canonical(x, t)
         add(canon, t, offset, lat)
     return _Prepared(spectra, transforms, offsets, lattices, win)
@@ -394,9 +401,11 @@ _SWAP = np.array([[0.0, 1.0], [1.0, 0.0]])
 
 def describe_geometry(prep: _Prepared, g: int, d: int, phase, shift, tile: int) -> dict:
     """Rotation (counter-clockwise on screen), scale, aspect, mirror and grid offset."""
-    dmat = _variant_matrices(tile)[d]
+    # The canonical picture is the original under some lattice symmetry S; the
+    # variant that matched undoes it (S D = I), so original -> copy is T D.
+    dmat, dofs = _variant_maps(tile)[d]
     t = prep.transforms[g]
-    lin = (np.eye(2) if t is None else t) @ np.linalg.inv(dmat)
+    lin = (np.eye(2) if t is None else t) @ dmat
     m = _SWAP @ lin @ _SWAP            # (x, y) with y pointing down
     u, s, vt = np.linalg.svd(m)
     rot = u @ vt
@@ -405,12 +414,12 @@ def describe_geometry(prep: _Prepared, g: int, d: int, phase, shift, tile: int) 
     if flipped:
         rot = rot @ np.diag([-1.0, 1.0])
         stretch = np.diag([-1.0, 1.0]) @ stretch @ np.diag([-1.0, 1.0])
-    # With y pointing down, a counter-clockwise turn on screen is [[c, s], [-s, c]]
-    # applied to original offsets; ``lin`` maps original to copy, so the angle is:
-    angle = -float(np.degrees(np.arctan2(rot[0, 1], rot[0, 0])))
+    # With y pointing down, a counter-clockwise turn on screen maps original
+    # offsets to copy offsets by [[c, s], [-s, c]].
+    angle = float(np.degrees(np.arctan2(rot[0, 1], rot[0, 0])))
     lat = prep.lattices[g]
     # Grid origin: where the original's period origin falls in the copy (modulo one period).
-    origin = np.asarray(shift, dtype=float) + np.asarray(phase)
+    origin = (dmat @ (np.asarray(shift, dtype=float) + np.asarray(phase)) + dofs) % tile
     if t is None:
         oy, ox = origin
     else:
