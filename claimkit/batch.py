@@ -181,13 +181,15 @@ def mark_task(src: str, staged: str, seed: bytes, bits: list[int], strength: flo
         pic = read_picture(src_p, max_pixels=max_pixels)
         workflow._check_size(pic, workflow.MIN_MARK_SIDE, "marking")
         sha_orig = sha256_file(src_p)
+        # The same steps and measures as workflow.mark_file (a test holds the two
+        # to the same bytes), minus the registry, which stays in the parent.
         luma = to_luma(pic.pixels)
         delta = embed.mark_delta(luma, seed, np.asarray(bits, dtype=np.uint8), strength=strength)
         marked = add_luma_delta(pic.pixels, delta)
         del delta
         peak = 65535.0 if pic.pixels.dtype == np.uint16 else 255.0
         measures = {"psnr_db": round(quality.psnr(pic.pixels, marked, peak=peak), 3)}
-        ssim_value, sampled = quality.ssim(luma, to_luma(marked))
+        ssim_value, sampled = quality.ssim(pic.pixels, marked, grey=to_luma)
         measures["ssim"] = round(ssim_value, 5)
         measures["ssim_sampled"] = sampled
         fingerprint = perceptual_fingerprint(luma)

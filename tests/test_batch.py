@@ -164,6 +164,24 @@ def test_marks_a_tree_and_registers_every_file(profile, shoot, tmp_path, capsys)
     assert_consistent(profile, out, originals)
 
 
+def test_a_batch_worker_marks_exactly_as_mark_file(profile, shoot, tmp_path):
+    """Same picture, same serial: the same bytes and the same recorded measures."""
+    from claimkit.mark import payload
+
+    src = shoot / "day1" / "coffee.jpg"
+    single = workflow.mark_file(profile, src, tmp_path / "single.jpg")
+    serial = single["serial"]
+    bits = payload.pack(profile.owner_tag, serial, profile.payload_tag(serial))
+    staged = tmp_path / ".staged.jpg"
+    got = batch.mark_task(str(src), str(staged), profile.detection_seed,
+                          [int(b) for b in bits], 1.0, 95, None)
+    assert got["sha256_marked"] == single["sha256_marked"] == sha256_file(staged)
+    record = profile.work(single["work_id"]).record
+    assert got["quality"] == record["quality"]
+    assert got["fingerprint"] == record["fingerprint"]
+    assert got["capture"] == record["capture"]
+
+
 def test_second_run_marks_nothing_twice(profile, shoot, tmp_path, capsys):
     out = tmp_path / "marked"
     assert batch.mark_many(profile, [shoot], out, workers=1) == 0
