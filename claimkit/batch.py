@@ -36,6 +36,7 @@ run was interrupted (Ctrl-C) — run the same command again to finish.
 from __future__ import annotations
 
 import errno
+import json
 import os
 import sqlite3
 import sys
@@ -509,6 +510,10 @@ def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
         The exit status (see the module notes).
     """
     out = Path(out)
+    if not 0 < strength <= 4:
+        raise InputError(f"strength {strength} is outside 0..4")
+    if not 1 <= int(jpeg_quality) <= 100:
+        raise InputError(f"JPEG quality {jpeg_quality} is outside 1..100")
     for p in inputs:
         if Path(p).is_dir() and out.exists() and os.path.samefile(p, out):
             raise InputError("the output folder is an input folder; choose another --out",
@@ -559,7 +564,11 @@ def _finish_report(s: BatchSummary, *, total: int, json_lines: bool) -> int:
     if s.not_started:
         line += f", {s.not_started} not started"
     line += f" ({total} inputs, {s.seconds:.1f} s, {rate:.2f} files/s)"
-    print(line, file=err if json_lines else sys.stdout, flush=True)
+    if json_lines:    # stdout stays one object per file; the summary goes to stderr
+        print(json.dumps({"summary": True, "inputs": total, **s.as_dict()}, sort_keys=True),
+              file=err, flush=True)
+    else:
+        print(line, flush=True)
     if s.failures:
         print(f"claimkit: {len(s.failures)} file(s) failed:", file=err)
         for f in s.failures:

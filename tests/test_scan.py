@@ -196,3 +196,29 @@ def test_report_is_not_left_half_written(profile, finds, tmp_path, monkeypatch, 
         scan.scan_folders(profile, [finds["web"]], workers=1, report=report)
     assert report.read_text() == "an older report\n"
     assert not list(tmp_path.glob(".scan.csv.*"))
+
+
+def test_ctrl_c_keeps_the_report_of_the_files_done(profile, finds, tmp_path, monkeypatch,
+                                                   capsys):
+    import signal
+
+    real = scan.scan_task
+    calls = []
+
+    def task(*args):
+        calls.append(args[0])
+        if len(calls) == 2:
+            signal.raise_signal(signal.SIGINT)
+        return real(*args)
+
+    monkeypatch.setattr(scan, "scan_task", task)
+    report = tmp_path / "partial.csv"
+    code = scan.scan_folders(profile, [finds["web"]], workers=1, json_lines=True, report=report)
+    cap = capsys.readouterr()
+    assert code == 130 and "interrupted" in cap.err
+    rows = [json.loads(x) for x in cap.out.splitlines()]
+    assert len(rows) == 2
+    with report.open(newline="") as fh:
+        assert [r["file"] for r in csv.DictReader(fh)] == [r["file"] for r in rows]
+    summary = next(json.loads(x) for x in cap.err.splitlines() if x.startswith("{"))
+    assert summary["files_read"] == 2 and summary["not_started"] == 2
