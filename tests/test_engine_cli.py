@@ -30,7 +30,8 @@ def photo(tmp_path) -> Path:
 
 
 def run(*args, env=None):
-    return subprocess.run([*CK, *map(str, args)], capture_output=True, text=True, env=env)
+    return subprocess.run([*CK, *map(str, args)], capture_output=True, text=True, env=env,
+                          check=False)
 
 
 def test_mark_then_examine_json_contract(profile_home, photo, tmp_path):

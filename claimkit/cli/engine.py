@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import argparse
 from pathlib import Path
 
 from claimkit.cli.common import home_dir, passphrase, print_json

@@ -36,7 +36,12 @@ from scipy import ndimage
 
 from claimkit.mark import ecc, geometry, stats
 from claimkit.mark.pattern import (
-    PAYLOAD_BITS, TILE, KeyPattern, key_pattern, message_template, spot_signs,
+    PAYLOAD_BITS,
+    TILE,
+    KeyPattern,
+    key_pattern,
+    message_template,
+    spot_signs,
 )
 
 PREFILTER = 9                 # local-mean window of the whitening prefilter, pixels
