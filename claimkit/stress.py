@@ -330,3 +330,88 @@ def summary(rows: list[dict]) -> dict:
     return {"attacks": len(rows), "detected": len(detected),
             "geometry_ok": sum(1 for r in rows if r["geometry_ok"]),
             "missed": [r["attack"] for r in rows if r not in detected]}
+
+
+# ---------------------------------------------------------------- picture of the results
+
+_OK = (38, 122, 110)        # found, geometry right
+_WARN = (214, 146, 36)      # found, geometry off or payload differs
+_MISS = (178, 58, 50)       # not found
+_INK = (30, 30, 30)
+_FAINT = (150, 150, 150)
+PLOT_CAP = 60.0             # -log10 of the bound shown at full length
+
+
+def plot_png(rows: list[dict], *, title: str = "", threshold: float = detect.DEFAULT_THRESHOLD) -> bytes:
+    """One bar per attack: strength of the evidence (-log10 of the false-alarm bound), PNG bytes.
+
+    The bar's colour says whether the copy was found with the right payload
+    and geometry; the dashed line marks the detection threshold; the text on
+    the right gives the true and the estimated geometry.
+    """
+    from PIL import ImageDraw, ImageFont
+
+    font = ImageFont.load_default(size=13)
+    small = ImageFont.load_default(size=11)
+    row_h, left, bar_w, right = 22, 200, 360, 330
+    top = 52 if title else 30
+    width = left + bar_w + right
+    height = top + row_h * len(rows) + 66
+    im = Image.new("RGB", (width, height), (255, 255, 255))
+    d = ImageDraw.Draw(im)
+    if title:
+        d.text((12, 10), title, fill=_INK, font=font)
+    d.text((left, top - 20), "evidence: -log10 of the false-alarm bound", fill=_FAINT, font=small)
+    d.text((left + bar_w + 12, top - 20), "geometry: true -> estimated", fill=_FAINT, font=small)
+    for i, r in enumerate(rows):
+        y = top + i * row_h
+        d.text((12, y + 4), r["attack"], fill=_INK, font=font)
+        strength = min(PLOT_CAP, max(0.0, -float(r["log10_false_alarm_probability"])))
+        if not r["detected"]:
+            colour = _MISS
+        elif r.get("same_payload") is False or not r["geometry_ok"]:
+            colour = _WARN
+        else:
+            colour = _OK
+        length = int(bar_w * strength / PLOT_CAP)
+        d.rectangle([left, y + 4, left + max(length, 1), y + row_h - 4], fill=colour)
+        d.text((left + bar_w + 12, y + 4), geometry_text(r), fill=_INK, font=small)
+    # Threshold line and axis.
+    x_thr = left + int(bar_w * min(PLOT_CAP, -math.log10(threshold)) / PLOT_CAP)
+    y0, y1 = top, top + row_h * len(rows)
+    for yy in range(y0, y1, 6):
+        d.line([x_thr, yy, x_thr, min(yy + 3, y1)], fill=_INK)
+    d.line([left, y1 + 2, left + bar_w, y1 + 2], fill=_FAINT)
+    for v in (0, 20, 40, 60):
+        x = left + int(bar_w * v / PLOT_CAP)
+        d.line([x, y1 + 2, x, y1 + 6], fill=_FAINT)
+        d.text((x - 6, y1 + 8), f"{v:g}" + ("+" if v == PLOT_CAP else ""), fill=_FAINT, font=small)
+    d.text((x_thr + 4, y1 + 24), f"threshold {threshold:g}", fill=_INK, font=small)
+    legend = [(_OK, "found, geometry right"), (_WARN, "found, geometry off"), (_MISS, "not found")]
+    x = 12
+    for colour, text in legend:
+        d.rectangle([x, y1 + 46, x + 10, y1 + 56], fill=colour)
+        d.text((x + 14, y1 + 44), text, fill=_INK, font=small)
+        x += 170
+    buf = io.BytesIO()
+    im.save(buf, "PNG")
+    return buf.getvalue()
+
+
+def geometry_text(row: dict) -> str:
+    t = row["true_geometry"]
+    e = row.get("estimated_geometry")
+    true = _geom_words(t)
+    if not e:
+        return f"{true} -> not found"
+    return f"{true} -> {_geom_words(e)}"
+
+
+def _geom_words(g: dict) -> str:
+    # Adding 0.0 turns a rounded -0.0 into 0.0.
+    parts = [f"{round(g['rotation_deg'], 1) + 0.0:+.1f}°", f"x{g['scale']:.3f}"]
+    if abs(g.get("aspect", 1.0) - 1.0) >= 0.005:
+        parts.append(f"aspect {g['aspect']:.2f}")
+    if g.get("flipped"):
+        parts.append("mirrored")
+    return " ".join(parts)

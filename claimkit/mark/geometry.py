@@ -69,16 +69,17 @@ MAX_CANON_PIXELS = 6_000_000
 
 FLATTEN_WINDOW = 15        # frequencies averaged to estimate the picture's own power
 FLATTEN_CLIP = 6.0         # cap on the flattened power: no single spectral line dominates
-COARSE_BLUR = 1.2          # smoothing of the autocorrelation for the coarse grids (pixels)
+COARSE_BLUR = 1.0          # smoothing of the autocorrelation for the coarse grids (pixels)
 FINE_BLUR = 0.7            # smoothing for refinement and final scores (pixels)
 # Coarse grids: (largest lag used, log-radius and angle step in radians, aspects, kept).
 # Similarities get a fine grid over many lattice points; squeezed copies a
 # coarser one (2 % aspect steps) over the nearer points, where a 1 % aspect
 # error still moves a point by less than the smoothing.
 COARSE_LAG = 320           # largest lag of the coarse grids
-SIMILARITY_GRID = (COARSE_LAG, 0.005, (1.0,), 6)
+SIMILARITY_GRID = (COARSE_LAG, 0.004, (1.0,), 6)
 ASPECT_GRID = (192, 0.008, tuple(float(a) for a in np.arange(0.90, 1.105, 0.02) if abs(a - 1) > 0.01), 3)
 REFINE_RADII = (200, 360, LAG_MAX)   # growing radii of the refinement passes
+MIN_SUPPORT = 0.25         # least summed squared weight of a coarse hypothesis
 POLISH_EXTRA = 1           # lattices polished beyond the number returned
 
 
@@ -110,6 +111,7 @@ class _Acf:
     weight: np.ndarray   # expected relative signal at each lag (overlap of the window with itself)
     zw: np.ndarray       # z * weight: what the lattice scores sum
     coarse: np.ndarray   # z * weight smoothed more, central lags only, lag (0, 0) at [cc, cc]
+    coarse_w2: np.ndarray  # weight ** 2 on the same central lags (the coarse scores' variance)
     c: int               # index of lag zero in z
     cc: int              # index of lag zero in coarse
 
@@ -175,13 +177,14 @@ def lag_map(x: np.ndarray, *, window: int = ACF_WINDOW, lag_max: int = LAG_MAX,
     weight = (np.sqrt(overlap) * valid).astype(np.float32)
     z = a / np.sqrt(np.maximum(overlap, 1e-6))
     z[~valid] = 0.0
-    z = _ring_normalise(z, lag)
+    z = _ring_normalise(z, lag, valid)
     zw = z * weight
-    cl = min(coarse_lag, lag)
+    cl = min(coarse_lag, lag - 5)
     extra = float(np.sqrt(COARSE_BLUR ** 2 - FINE_BLUR ** 2))
     region = zw[lag - cl - 4:lag + cl + 5, lag - cl - 4:lag + cl + 5]
     coarse = ndimage.gaussian_filter(region, extra)
-    return _Acf(z=z, weight=weight, zw=zw, coarse=coarse, c=lag, cc=cl + 4)
+    w2 = weight[lag - cl - 4:lag + cl + 5, lag - cl - 4:lag + cl + 5] ** 2
+    return _Acf(z=z, weight=weight, zw=zw, coarse=coarse, coarse_w2=w2, c=lag, cc=cl + 4)
 
 
 @lru_cache(maxsize=4)
@@ -193,22 +196,28 @@ def _rings(c: int, width: float = 4.0, step: int = 3) -> tuple[np.ndarray, np.nd
     return ring, sub, np.bincount(sub, minlength=ring.max() + 1).astype(np.float64)
 
 
-def _ring_normalise(z: np.ndarray, c: int) -> np.ndarray:
+def _ring_normalise(z: np.ndarray, c: int, valid: np.ndarray) -> np.ndarray:
     """Divide each ring of lags by its own robust spread (picture structure left at short lags).
 
-    The spread is estimated on every third lag in each direction: it varies
-    slowly with the radius, and the full map would cost more than the search.
+    Only lags with enough overlap (``valid``) count. The spread is estimated
+    on every third lag in each direction: it varies slowly with the radius,
+    and the full map would cost more than the search.
     """
-    ring, sub, n = _rings(c)
-    v = z[::3, ::3].ravel()
+    ring, sub, _ = _rings(c)
+    ok = valid[::3, ::3].ravel()
+    v = z[::3, ::3].ravel()[ok]
+    sub = sub[ok]
+    size = int(ring.max()) + 1
     v2 = v * v
-    s2 = np.bincount(sub, v2, minlength=n.size) / np.maximum(n, 1)
+    n = np.bincount(sub, minlength=size).astype(np.float64)
+    s2 = np.bincount(sub, v2, minlength=size) / np.maximum(n, 1)
     # Second pass without the outliers (the mark's own peaks would inflate the spread);
     # a Gaussian clipped at 4 sigma keeps 99.99 % of its variance, so no correction.
     keep = v2 <= 16.0 * s2[sub]
-    n2 = np.bincount(sub, keep, minlength=n.size)
-    s2 = np.bincount(sub, np.where(keep, v2, 0.0), minlength=n.size) / np.maximum(n2, 1)
-    inv = np.where(s2 > 0, 1.0 / np.sqrt(np.maximum(s2, 1e-30)), 1.0).astype(np.float32)
+    n2 = np.bincount(sub, keep, minlength=size)
+    s2 = np.bincount(sub, np.where(keep, v2, 0.0), minlength=size) / np.maximum(n2, 1)
+    # Rings with too few valid lags to estimate a spread are left out.
+    inv = np.where((s2 > 0) & (n2 >= 8), 1.0 / np.sqrt(np.maximum(s2, 1e-30)), 0.0).astype(np.float32)
     return z * inv[ring]
 
 
@@ -243,9 +252,6 @@ def _coarse(acf: _Acf, tile: int, grid) -> list[tuple[float, np.ndarray]]:
     rho = np.log(r_lo) + d * np.arange(n_rho)
     phi = dphi * np.arange(n_phi)
     rr = np.exp(rho)[:, None]
-    # Expected signal weight and noise-normalising denominator depend on the
-    # radius; take them radially (mean over directions) for the grid.
-    wr = _radial_profile(acf.weight, acf.c, np.exp(rho))
     cc = acf.cc
     log_n, arg_n = _comb(r_hi / (lo * tile * (1 - ASPECT_RANGE)))
     sh_rho = np.rint(log_n / d).astype(int)
@@ -264,8 +270,13 @@ def _coarse(acf: _Acf, tile: int, grid) -> list[tuple[float, np.ndarray]]:
         g = (ndimage.map_coordinates(acf.coarse, coords1.reshape(2, -1), order=1)
              + ndimage.map_coordinates(acf.coarse, coords2.reshape(2, -1), order=1))
         g = g.reshape(n_rho, n_phi)
+        # The variance of each score (sum of squared weights) on the same grid,
+        # so that hypotheses with few or short-overlap points are not favoured.
+        g2 = (ndimage.map_coordinates(acf.coarse_w2, coords1.reshape(2, -1), order=1)
+              + ndimage.map_coordinates(acf.coarse_w2, coords2.reshape(2, -1), order=1))
+        g2 = g2.reshape(n_rho, n_phi)
         num = np.zeros((k_hi - k_lo + 1, n_phi))
-        den = np.zeros(k_hi - k_lo + 1)
+        den = np.zeros((k_hi - k_lo + 1, n_phi))
         ks = np.arange(k_lo, k_hi + 1)
         for sr, sp_ in zip(sh_rho, sh_phi):
             rows = ks + sr
@@ -273,8 +284,9 @@ def _coarse(acf: _Acf, tile: int, grid) -> list[tuple[float, np.ndarray]]:
             if not ok.any():
                 continue
             num[ok] += np.roll(g[rows[ok]], -sp_, axis=1)
-            den[ok] += 2.0 * wr[rows[ok]] ** 2
-        score = num / np.sqrt(np.maximum(den, 1e-12))[:, None]
+            den[ok] += np.roll(g2[rows[ok]], -sp_, axis=1)
+        # Hypotheses with almost no lags inside the window say nothing.
+        score = np.where(den >= MIN_SUPPORT, num / np.sqrt(np.maximum(den, 1e-12)), 0.0)
         # Local maxima of the score surface (angle is circular).
         mx = ndimage.maximum_filter(score, size=(7, 7), mode=("nearest", "wrap"))
         peaks = np.argwhere((score == mx) & (score > 0))
@@ -286,15 +298,6 @@ def _coarse(acf: _Acf, tile: int, grid) -> list[tuple[float, np.ndarray]]:
             best.append((float(v), _basis(s * tile, theta, a)))
     best.sort(key=lambda t: -t[0])
     return best[:keep]
-
-
-def _radial_profile(img: np.ndarray, c: int, radii: np.ndarray) -> np.ndarray:
-    """Mean of ``img`` over directions at each radius (sampled on 64 directions)."""
-    ang = np.linspace(0, 2 * np.pi, 64, endpoint=False)
-    rr = radii[:, None]
-    coords = np.stack([c + rr * np.sin(ang)[None, :], c + rr * np.cos(ang)[None, :]])
-    vals = ndimage.map_coordinates(img, coords.reshape(2, -1), order=1, mode="constant")
-    return vals.reshape(radii.size, ang.size).mean(axis=1)
 
 
 def _basis(period: float, theta: float, aspect: float) -> np.ndarray:
