@@ -157,7 +157,8 @@ def make_copy(published: Path, out: Path, edits: dict) -> None:
 
 
 def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None = print,
-             scenario: dict | None = None, decoys: int | None = None) -> dict:
+             scenario: dict | None = None, decoys: int | None = None,
+             robustness: bool = True) -> dict:
     """Run the fictional case end to end in ``folder``; returns what was made and the verdict.
 
     Parameters
@@ -170,6 +171,8 @@ def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None =
         Default :func:`load_scenario`; tests pass a smaller picture.
     decoys : int, optional
         Decoy keys per examination (default: the case default).
+    robustness : bool
+        Run the robustness battery on the published file (the dossier's table).
     """
     from claimkit.case.bundle import export_bundle
     from claimkit.case.examine import examine_case
@@ -222,7 +225,7 @@ def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None =
                         note=c.get("note"), profile=profile)
         say(f"5. case {case.case_id}: {len(copies)} exhibits taken in (copied, hashed, logged)")
         kw = {} if decoys is None else {"decoys": decoys}
-        findings = examine_case(case, profile, search=[studio], **kw)
+        findings = examine_case(case, profile, search=[studio], robustness=robustness, **kw)
         for f in findings:
             r = f["result"]
             al = f.get("alignment") or {}

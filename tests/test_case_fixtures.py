@@ -45,8 +45,18 @@ def _run(argv: list[str]) -> int:
     return main(argv)
 
 
+_CACHE: dict[str, BuiltCase] = {}
+
+
 @pytest.fixture(scope="session")
 def built_case(tmp_path_factory) -> BuiltCase:
+    """Built once per session, whichever module asks first (each module imports this fixture)."""
+    if "case" not in _CACHE:
+        _CACHE["case"] = _build(tmp_path_factory)
+    return _CACHE["case"]
+
+
+def _build(tmp_path_factory) -> BuiltCase:
     from skimage import data
 
     if shutil.which("openssl") is None:

@@ -111,6 +111,18 @@ def test_removed_exhibit_is_named(built_case, tmp_path):
     assert "listed but missing" in text and "E02 exhibit" in text and "exhibit removed" in text
 
 
+def test_exhibit_removed_with_its_records_and_re_signed_is_still_named(built_case, tmp_path):
+    work = _unpack(built_case.bundle, tmp_path / "w")
+    for p in list((work / "exhibits").glob("E02*")) + list((work / "findings").glob("E02*")):
+        p.unlink()
+    doc = json.loads((work / "manifest.json").read_bytes())
+    doc["files"] = [f for f in doc["files"] if (work / f["path"]).exists()]
+    (work / "manifest.json").write_bytes(canonical_json(doc))
+    _resign(work, built_case.home)
+    rep = verify_bundle(work, rerun=False)
+    assert "E02: taken in according to the custody log, but not in the bundle" in _failed(rep)
+
+
 def test_replaced_key_is_named(built_case, tmp_path):
     from claimkit.evidence.profile import Profile
 

@@ -166,10 +166,12 @@ def _jsonable(obj):
 
 def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_DECOYS,
                     search: list[Path] | None = None, threshold: float = detect.DEFAULT_THRESHOLD,
-                    robustness_cache: dict | None = None, workers: int = 1) -> dict:
+                    robustness_cache: dict | None = None, workers: int = 1,
+                    robustness: bool = True) -> dict:
     """Examine one exhibit; write ``findings/EXX.json`` and ``.npz``; return the finding."""
     from claimkit import workflow
 
+    robustness_wanted = robustness
     path = checked_exhibit_path(case, ex)
     pic = read_picture(path)
     luma = to_luma(pic.pixels)
@@ -198,7 +200,9 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
             al = align(to_luma(ref_pic.pixels), luma, finding.geometry or None)
             alignment = al.numbers
             arrays.update(aligned=al.aligned, difference=al.difference, mask=al.mask)
-            if kind == "marked":
+            if kind == "marked" and not robustness_wanted:
+                robustness = {"status": "not run", "reason": "skipped at the examiner's request"}
+            elif kind == "marked":
                 cache = robustness_cache if robustness_cache is not None else {}
                 if match["work_id"] not in cache:
                     cache[match["work_id"]] = _robustness(profile, match["work_id"], ref_path)
@@ -239,7 +243,7 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
 
 def examine_case(case: Case, profile, *, decoys: int = DEFAULT_DECOYS,
                  search: list[Path] | None = None, threshold: float = detect.DEFAULT_THRESHOLD,
-                 workers: int = 1, progress=None) -> list[dict]:
+                 workers: int = 1, progress=None, robustness: bool = True) -> list[dict]:
     """Examine every exhibit of the case (in order); returns the findings."""
     exhibits = case.exhibits()
     if not exhibits:
@@ -250,7 +254,8 @@ def examine_case(case: Case, profile, *, decoys: int = DEFAULT_DECOYS,
     out = []
     for ex in exhibits:
         doc = examine_exhibit(case, ex, profile, decoys=decoys, search=search,
-                              threshold=threshold, robustness_cache=cache, workers=workers)
+                              threshold=threshold, robustness_cache=cache, workers=workers,
+                              robustness=robustness)
         if progress is not None:
             progress(ex, doc)
         out.append(doc)

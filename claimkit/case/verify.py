@@ -280,8 +280,15 @@ def _check_custody(root: Path, pub, exhibits: list[dict], findings: dict, rep: V
             else f"{log.lines} entries, signatures and hash chain intact")
     intake = {}
     examined = {}
+    case_id = None
+    try:
+        case_id = json.loads((root / "case.json").read_bytes()).get("case_id")
+    except (OSError, ValueError):
+        pass
     for e in log.entries:
         d = e.get("details", {})
+        if d.get("case_id") != case_id:
+            continue
         if e["action"] == "disputed file taken in":
             intake[d.get("exhibit_id")] = e["items"]
         elif e["action"] == "exhibit examined":
@@ -298,6 +305,10 @@ def _check_custody(root: Path, pub, exhibits: list[dict], findings: dict, rep: V
             fpath = root / "findings" / f"{i}.json"
             if examined.get(i, {}).get("finding") != sha256_file(fpath):
                 probs.append(f"{i}: the stored finding is not the one logged at examination")
+    present = {ex["exhibit_id"] for ex in exhibits}
+    for i in sorted(set(intake) - present):
+        probs.append(f"{i}: taken in according to the custody log, but not in the bundle "
+                     "(exhibit removed)")
     rep.add("custody of exhibits", not probs,
             "; ".join(probs) if probs else "every intake and examination is logged with its hashes")
 

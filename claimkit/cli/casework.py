@@ -83,7 +83,7 @@ def cmd_case_examine(args) -> int:
 
     with _profile(args) as p:
         examine_case(case, p, decoys=DEFAULT_DECOYS if args.decoys is None else args.decoys, search=search, progress=progress,
-                     workers=args.workers)
+                     workers=args.workers, robustness=not args.no_robustness)
     return 0
 
 
@@ -180,6 +180,8 @@ def register(sub, common) -> None:
     p.add_argument("--decoys", type=int, default=None, metavar="N",
                    help="random decoy keys in the control (default 64)")
     p.add_argument("--workers", type=int, default=1, metavar="N")
+    p.add_argument("--no-robustness", action="store_true",
+                   help="skip the robustness battery on the registered marked file")
     p.add_argument("--json", action="store_true")
     p.set_defaults(func=cmd_case_examine)
 
