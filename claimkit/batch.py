@@ -540,7 +540,8 @@ def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
         start = time.monotonic()
         eng = make_engine(engine, workers=workers, scheduler=scheduler) if pairs else None
         if eng is not None:
-            run_ordered(eng, mark_task, batch.jobs(pairs), batch.handle, guard=guard)
+            run_ordered(eng, mark_task, batch.jobs(pairs), batch.handle, guard=guard,
+                        tick=bar.draw)
         bar.close()
         batch.summary.seconds = time.monotonic() - start
         batch.summary.not_started = len(pairs) - batch.handed_back

@@ -311,7 +311,7 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
                 run_ordered(eng, scan_task,
                             ((f, (str(f), seed, checker, threshold, max_pixels))
                              for f, _root, _rel in files),
-                            handle, guard=guard)
+                            handle, guard=guard, tick=bar.draw)
             s.stopped = guard.reason if guard.requested else None
     except BaseException:
         if csv_out is not None:
