@@ -367,11 +367,13 @@ class _MarkBatch:
             want = job.restore_of.record.get("marked", {}).get("sha256")
             if value["sha256_marked"] != want:
                 staged.unlink(missing_ok=True)
+                name = job.restore_of.record.get("marked", {}).get("name", "?")
                 return {"status": "failed", "kind": "input", "error": (
-                    f"{job.out}: is registered as {job.restore_of.work_id} but its marked copy "
-                    "is missing and could not be re-made bit for bit (other software "
-                    "version?); find the copy, or mark the original again with --force "
-                    "into another folder")}
+                    f"{job.src}: already registered as {job.restore_of.work_id}, whose marked "
+                    f"copy ({name}) is not in {job.out.parent} and could not be re-made bit "
+                    "for bit (made by another software version?); use that copy, or mark "
+                    "this file on its own (claimkit mark FILE --out OUT) to register it as "
+                    "a new work")}
             with self.guard.critical():
                 _place(staged, job.out, force=self.force)
             return {"status": "restored", "work_id": job.restore_of.work_id,
