@@ -4,9 +4,10 @@ Steps, for a copy with no original at hand:
 
 1. Pre-whiten the luma (subtract a local mean) and divide by the local
    standard deviation, so that no busy area dominates.
-2. Estimate the mark's lattice in the copy (:mod:`claimkit.mark.geometry`)
-   and resample onto the original grid; the unwarped copy is always tried too.
-3. Fold: sum all periods into one ``TILE x TILE`` array.
+2. Estimate the mark's lattice in the copy (:mod:`claimkit.mark.geometry`).
+3. Fold: sum all periods into one ``TILE x TILE`` array; for a distorted
+   copy, each pixel goes to its place on the original's grid (bilinear
+   splatting, :func:`fold_resampled`). The unwarped fold is always tried too.
 4. In the frequency domain, keep only the phase of the fold (symmetric
    phase-only matched filtering), weight by the spot spectrum, multiply by the
    conjugate carrier: the inverse transform is the recovered message.
@@ -137,6 +138,41 @@ def fold(x: np.ndarray, tile: int = TILE) -> np.ndarray:
     return pad.reshape(th, tile, tw, tile).sum(axis=(0, 2))
 
 
+def fold_resampled(x: np.ndarray, transform: np.ndarray, tile: int = TILE) -> np.ndarray:
+    """Fold a geometrically distorted copy straight onto the original's period grid.
+
+    Each copy pixel ``y`` belongs at original position ``u = transform^-1 y``;
+    its value is spread bilinearly onto the four fold cells around
+    ``u mod tile``, and each cell is divided by the weight it received, so a
+    cell holds the average of the copy samples that fell near it. This is the
+    fold of the resampled picture without building the resampled picture:
+    cost is linear in the copy's pixels whatever the scale.
+    """
+    h, w = x.shape
+    inv = np.linalg.inv(transform).astype(np.float64)
+    rows = np.arange(h, dtype=np.float64)
+    cols = np.arange(w, dtype=np.float64)
+    acc = np.zeros(tile * tile)
+    wsum = np.zeros(tile * tile)
+    step = max(1, 1_000_000 // max(w, 1))
+    for r0 in range(0, h, step):
+        rr = rows[r0:r0 + step, None]
+        u0 = (inv[0, 0] * rr + inv[0, 1] * cols[None, :]).ravel()
+        u1 = (inv[1, 0] * rr + inv[1, 1] * cols[None, :]).ravel()
+        f0, f1 = np.floor(u0), np.floor(u1)
+        a0, a1 = u0 - f0, u1 - f1
+        i0 = f0.astype(np.int64) % tile
+        i1 = f1.astype(np.int64) % tile
+        j0, j1 = (i0 + 1) % tile, (i1 + 1) % tile
+        v = x[r0:r0 + step].ravel().astype(np.float64)
+        for ia, ib, wt in ((i0, i1, (1 - a0) * (1 - a1)), (j0, i1, a0 * (1 - a1)),
+                           (i0, j1, (1 - a0) * a1), (j0, j1, a0 * a1)):
+            idx = ia * tile + ib
+            acc += np.bincount(idx, weights=wt * v, minlength=tile * tile)
+            wsum += np.bincount(idx, weights=wt, minlength=tile * tile)
+    return (acc / np.maximum(wsum, 1e-9)).reshape(tile, tile)
+
+
 def _variants(f: np.ndarray) -> np.ndarray:
     """The eight quarter-turn/mirror variants of a square array."""
     out = [np.rot90(f, k) for k in range(4)]
@@ -201,8 +237,7 @@ class _Prepared:
     """Key-independent part of an examination: folds for every geometric hypothesis."""
 
     spectra: list[np.ndarray]   # per geometry: (8, T, T) weighted spectra of the variants
-    transforms: list[np.ndarray | None]
-    offsets: list[np.ndarray]
+    transforms: list[np.ndarray | None]   # original -> copy (row, col); None = unwarped
     lattices: list[geometry.Lattice | None]
     window: tuple[int, int, int, int]   # row, col, height, width of the examined window
 
@@ -226,17 +261,16 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1) -> _Prepare
     win = central_window(luma.shape)
     r0, c0, wh, ww = win
     x = whiten(luma[r0:r0 + wh, c0:c0 + ww])
-    spectra, transforms, offsets, lattices = [], [], [], []
+    spectra, transforms, lattices = [], [], []
 
-    def add(canon, transform, offset, lattice):
-        f = _variants(fold(canon, tile))
+    def add(f, transform, lattice):
+        f = _variants(f)
         s = np.fft.fft2(f)
         spectra.append(s * spectral_weight(s))
         transforms.append(transform)
-        offsets.append(offset)
         lattices.append(lattice)
 
-    add(x, None, np.zeros(2), None)
+    add(fold(x, tile), None, None)
     half = np.array([wh, ww], dtype=float) / 2
     for lat in geometry.find_lattices(x, tile, workers=workers):
         t = lat.transform(tile)
@@ -246,9 +280,8 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1) -> _Prepare
         drift = np.abs(t - np.eye(2)) @ half
         if drift.max() < 0.2:
             continue
-        canon, offset = geometry.to_canonical(x, t)
-        add(canon, t, offset, lat)
-    return _Prepared(spectra, transforms, offsets, lattices, win)
+        add(fold_resampled(x, t, tile), t, lat)
+    return _Prepared(spectra, transforms, lattices, win)
 
 
 def _surfaces(prep: _Prepared, pattern: KeyPattern, ramps: np.ndarray):
@@ -428,7 +461,7 @@ def describe_geometry(prep: _Prepared, g: int, d: int, phase, shift, tile: int) 
     if t is None:
         oy, ox = origin
     else:
-        oy, ox = (t @ origin + prep.offsets[g])
+        oy, ox = t @ origin
     oy, ox = oy + prep.window[0], ox + prep.window[1]
     return {
         "rotation_deg": round((angle + 180.0) % 360.0 - 180.0, 3),
