@@ -364,6 +364,22 @@ def test_a_registered_copy_is_moved_into_place_or_made_again(profile, shoot, tmp
     assert_consistent(profile, out, _originals(shoot))
 
 
+def test_a_copy_that_cannot_be_made_again_is_reported(profile, shoot, tmp_path, capsys):
+    one = shoot / "day1" / "coffee.jpg"
+    assert batch.mark_many(profile, [one], tmp_path / "first", workers=1) == 0
+    capsys.readouterr()
+    # Another JPEG quality gives other bytes: the registered copy cannot be re-made.
+    code = batch.mark_many(profile, [one, shoot / "day2" / "brick.tif"], tmp_path / "second",
+                           workers=1, jpeg_quality=90, json_lines=True)
+    rows, _ = _lines(capsys)
+    assert code == 1
+    assert rows[0]["status"] == "failed" and "could not be re-made bit for bit" in rows[0]["error"]
+    assert rows[1]["status"] == "marked"
+    assert not (tmp_path / "second" / "coffee.jpg").exists()
+    assert len(profile.works()) == 2
+    assert_consistent(profile, tmp_path / "second", _originals(shoot))
+
+
 def test_output_folder_rules(profile, shoot, tmp_path, capsys):
     # Inside an input folder: not walked into (nothing is marked twice).
     inside = shoot / "marked"
