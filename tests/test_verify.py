@@ -1,4 +1,5 @@
 """``claimkit verify``: passes a sound bundle, names every kind of tampering, refuses unsafe zips."""
+# ruff: noqa: F811 - the shared fixture is imported, then requested by name
 
 from __future__ import annotations
 
@@ -9,12 +10,12 @@ import zipfile
 from pathlib import Path
 
 import pytest
+from test_case_fixtures import PASS, built_case  # noqa: F401 - the shared fixture
 
 from claimkit.case.verify import safe_extract, verify_bundle
 from claimkit.cli import main
 from claimkit.errors import CheckFailed
 from claimkit.evidence.canonical import canonical_json
-from test_case_fixtures import PASS, built_case  # noqa: F401 - the shared fixture
 
 pytestmark = pytest.mark.slow
 

@@ -177,7 +177,7 @@ def align(reference_luma: np.ndarray, copy_luma: np.ndarray, geometry: dict | No
     shared = float(mask.mean())
     # Rotation and scale of the reading that aligned best (y points down on screen, so a
     # counter-clockwise turn of the picture has a negative angle in these coordinates).
-    u, sv, vt = np.linalg.svd(m)
+    u, _, vt = np.linalg.svd(m)
     rot = u @ vt
     angle = float(np.degrees(np.arctan2(rot[1, 0], rot[0, 0])))
     numbers = {
@@ -192,7 +192,7 @@ def align(reference_luma: np.ndarray, copy_luma: np.ndarray, geometry: dict | No
         "shared_area_fraction": round(shared, 4),
         "mean_abs_difference": round(float(diff[inner].mean()), 3),
         "p95_abs_difference": round(float(np.percentile(diff[inner], 95)), 3),
-        "crop_box_px": [int(round(x0)), int(round(y0)), int(round(x1)), int(round(y1))],
+        "crop_box_px": [round(float(x0)), round(float(y0)), round(float(x1)), round(float(y1))],
         "translation_px": [round(float(v), 2) for v in t],
     }
     return Alignment(numbers, np.clip(aligned, 0, 255).astype(np.uint8),

@@ -52,7 +52,7 @@ def export_bundle(case: Case, out: str | os.PathLike, profile=None, *, force: bo
     changed += [rel for rel in listed if rel not in present]
     if changed:
         raise CheckFailed(f"{len(changed)} file(s) changed since the report was built "
-                          f"(first: {sorted(changed)[0]}); run claimkit report again", path=root)
+                          f"(first: {min(changed)}); run claimkit report again", path=root)
     names = sorted(listed) + [MANIFEST, MANIFEST_SIG]
     parent = out.parent if str(out.parent) else Path(".")
     if not parent.is_dir():

@@ -31,8 +31,15 @@ from claimkit.evidence.storage import atomic_write, sha256_file, sha256_hex
 from claimkit.imageio import read_picture, to_luma
 from claimkit.mark import detect
 
-__all__ = ["DEFAULT_DECOYS", "DECOY_SEED", "examine_case", "examine_exhibit", "decoy_summary",
-           "find_reference", "FINDING_TYPE"]
+__all__ = [
+    "DECOY_SEED",
+    "DEFAULT_DECOYS",
+    "FINDING_TYPE",
+    "decoy_summary",
+    "examine_case",
+    "examine_exhibit",
+    "find_reference",
+]
 
 FINDING_TYPE = "claimkit/finding/v1"
 DEFAULT_DECOYS = 64     # random keys in the decoy control; each costs about one pilot search
@@ -102,9 +109,9 @@ def find_reference(case: Case, work_record: dict, search: list[Path]) -> tuple[P
     found: dict[str, Path] = {}
     if refs.is_dir():
         for p in sorted(refs.iterdir()):
-            if p.is_file() and not p.is_symlink() and p.name.split(".")[0] in wanted:
-                if sha256_file(p) == p.name.split(".")[0]:
-                    found[wanted[p.name.split(".")[0]]] = p
+            stem = p.name.split(".")[0]
+            if p.is_file() and not p.is_symlink() and stem in wanted and sha256_file(p) == stem:
+                found[wanted[stem]] = p
     if "marked" not in found:
         for folder in search:
             for p in sorted(Path(folder).rglob("*")):

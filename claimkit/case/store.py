@@ -34,8 +34,15 @@ from claimkit.evidence.canonical import canonical_json
 from claimkit.evidence.custodylog import utc_now
 from claimkit.evidence.storage import atomic_write, fsync_dir, sha256_file, sha256_hex
 
-__all__ = ["Case", "Exhibit", "CASE_FILE", "open_case", "new_case", "add_exhibit",
-           "checked_exhibit_path"]
+__all__ = [
+    "CASE_FILE",
+    "Case",
+    "Exhibit",
+    "add_exhibit",
+    "checked_exhibit_path",
+    "new_case",
+    "open_case",
+]
 
 CASE_FILE = "case.json"
 CASE_TYPE = "claimkit/case/v1"

@@ -40,7 +40,7 @@ import numpy as np
 
 from claimkit.errors import CheckFailed, InputError
 
-__all__ = ["VerifyReport", "verify_bundle", "safe_extract", "MAX_BUNDLE_BYTES"]
+__all__ = ["MAX_BUNDLE_BYTES", "VerifyReport", "safe_extract", "verify_bundle"]
 
 MAX_BUNDLE_BYTES = 4 << 30      # unpacked size limit (a guard against zip bombs)
 MAX_FILES = 100_000

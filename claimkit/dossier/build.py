@@ -23,7 +23,7 @@ import numpy as np
 from claimkit import __version__
 from claimkit.case.store import Case, checked_exhibit_path
 from claimkit.dossier import figures
-from claimkit.dossier.data import CUSTODY_COPY, DISCLOSURES, HANDOVER, PUBLIC_KEY, build_data
+from claimkit.dossier.data import HANDOVER, PUBLIC_KEY, build_data
 from claimkit.dossier.render import render_html, render_pdf
 from claimkit.errors import CheckFailed, InputError
 from claimkit.evidence.canonical import canonical_json
@@ -31,8 +31,17 @@ from claimkit.evidence.custodylog import utc_now
 from claimkit.evidence.storage import atomic_write, sha256_file, sha256_hex
 from claimkit.imageio import read_picture, to_luma
 
-__all__ = ["build_report", "draw_figures", "bundle_files", "write_manifest", "MANIFEST",
-           "MANIFEST_SIG", "PDF", "HTML", "DATA"]
+__all__ = [
+    "DATA",
+    "HTML",
+    "MANIFEST",
+    "MANIFEST_SIG",
+    "PDF",
+    "build_report",
+    "bundle_files",
+    "draw_figures",
+    "write_manifest",
+]
 
 MANIFEST = "manifest.json"
 MANIFEST_SIG = "manifest.sig"

@@ -21,8 +21,15 @@ from claimkit.evidence.custodylog import verify_log
 from claimkit.evidence.disclose import check_disclosure
 from claimkit.mark import detect, pattern, stats
 
-__all__ = ["build_data", "DOSSIER_TYPE", "HANDOVER", "CUSTODY_COPY", "PUBLIC_KEY",
-           "REFERENCES_CITED", "case_files"]
+__all__ = [
+    "CUSTODY_COPY",
+    "DOSSIER_TYPE",
+    "HANDOVER",
+    "PUBLIC_KEY",
+    "REFERENCES_CITED",
+    "build_data",
+    "case_files",
+]
 
 DOSSIER_TYPE = "claimkit/dossier/v1"
 HANDOVER = "handover"
@@ -32,26 +39,26 @@ DISCLOSURES = f"{HANDOVER}/disclosures"
 
 #: The published methods the analysis rests on (the method section lists them).
 REFERENCES_CITED = [
-    "J. Ruanaidh, T. Pun, \"Rotation, scale and translation invariant spread spectrum digital "
-    "image watermarking\", Signal Processing 66(3), 303-317, 1998. doi:10.1016/S0165-1684(98)00012-7",
-    "Q. Chen, M. Defrise, F. Deconinck, \"Symmetric phase-only matched filtering of "
+    ("J. J. K. O Ruanaidh, T. Pun, \"Rotation, scale and translation invariant spread spectrum digital "
+    "image watermarking\", Signal Processing 66(3), 303-317, 1998. doi:10.1016/S0165-1684(98)00012-7"),
+    ("Q. Chen, M. Defrise, F. Deconinck, \"Symmetric phase-only matched filtering of "
     "Fourier-Mellin transforms for image registration and recognition\", IEEE Trans. PAMI "
-    "16(12), 1156-1168, 1994. doi:10.1109/34.387491",
-    "I. J. Cox, M. L. Miller, J. A. Bloom, J. Fridrich, T. Kalker, Digital Watermarking and "
-    "Steganography, 2nd ed., Morgan Kaufmann, 2008.",
-    "W. Hoeffding, \"Probability inequalities for sums of bounded random variables\", "
-    "J. Amer. Statist. Assoc. 58(301), 13-30, 1963. doi:10.1080/01621459.1963.10500830",
-    "A. J. Viterbi, \"Error bounds for convolutional codes and an asymptotically optimum "
-    "decoding algorithm\", IEEE Trans. Inf. Theory 13(2), 260-269, 1967. doi:10.1109/TIT.1967.1054010",
-    "Z. Wang, A. C. Bovik, H. R. Sheikh, E. P. Simoncelli, \"Image quality assessment: from "
+    "16(12), 1156-1168, 1994. doi:10.1109/34.387491"),
+    ("I. J. Cox, M. L. Miller, J. A. Bloom, J. Fridrich, T. Kalker, Digital Watermarking and "
+    "Steganography, 2nd ed., Morgan Kaufmann, 2008."),
+    ("W. Hoeffding, \"Probability inequalities for sums of bounded random variables\", "
+    "J. Amer. Statist. Assoc. 58(301), 13-30, 1963. doi:10.1080/01621459.1963.10500830"),
+    ("A. J. Viterbi, \"Error bounds for convolutional codes and an asymptotically optimum "
+    "decoding algorithm\", IEEE Trans. Inf. Theory 13(2), 260-269, 1967. doi:10.1109/TIT.1967.1054010"),
+    ("Z. Wang, A. C. Bovik, H. R. Sheikh, E. P. Simoncelli, \"Image quality assessment: from "
     "error visibility to structural similarity\", IEEE Trans. Image Process. 13(4), 600-612, "
-    "2004. doi:10.1109/TIP.2003.819861",
-    "D. Padfield, \"Masked object registration in the Fourier domain\", IEEE Trans. Image "
-    "Process. 21(5), 2706-2718, 2012. doi:10.1109/TIP.2011.2181402",
-    "C. Adams, P. Cain, D. Pinkas, R. Zuccherato, \"Time-Stamp Protocol (TSP)\", RFC 3161, "
+    "2004. doi:10.1109/TIP.2003.819861"),
+    ("D. Padfield, \"Masked object registration in the Fourier domain\", IEEE Trans. Image "
+    "Process. 21(5), 2706-2718, 2012. doi:10.1109/TIP.2011.2181402"),
+    ("C. Adams, P. Cain, D. Pinkas, R. Zuccherato, \"Time-Stamp Protocol (TSP)\", RFC 3161, "
     "2001; B. Laurie, A. Langley, E. Kasper, \"Certificate Transparency\", RFC 6962, 2013 "
     "(Merkle trees); S. Josefsson, I. Liusvaara, \"Edwards-Curve Digital Signature Algorithm "
-    "(EdDSA)\", RFC 8032, 2017.",
+    "(EdDSA)\", RFC 8032, 2017."),
 ]
 
 

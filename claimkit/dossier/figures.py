@@ -14,8 +14,15 @@ from pathlib import Path
 import numpy as np
 from PIL import Image, ImageDraw, ImageFont
 
-__all__ = ["thumbnail", "message_figure", "surface_figure", "decoy_figure", "aligned_figure",
-           "colour_map", "png_bytes"]
+__all__ = [
+    "aligned_figure",
+    "colour_map",
+    "decoy_figure",
+    "message_figure",
+    "png_bytes",
+    "surface_figure",
+    "thumbnail",
+]
 
 INK = (20, 24, 32)
 GRID = (200, 204, 210)
@@ -107,7 +114,7 @@ def surface_figure(surface: np.ndarray) -> Image.Image:
     ramp = np.linspace(hi, lo, n)[:, None].repeat(20, axis=1)
     img.paste(Image.fromarray(colour_map(ramp, lo, hi)), (bx, 40))
     for v in np.linspace(lo, hi, 5):
-        y = 40 + int(round((hi - v) / (hi - lo) * (n - 1)))
+        y = 40 + round(float((hi - v) / (hi - lo) * (n - 1)))
         d.line([bx + 20, y, bx + 26, y], fill=INK)
         d.text((bx + 30, y - 7), f"{v:.0f}", fill=INK, font=_font(12))
     d.text((bx - 10, 18), "z", fill=INK, font=_font(13, True))
@@ -159,7 +166,7 @@ def aligned_figure(original: np.ndarray, aligned: np.ndarray, difference: np.nda
     panel = 300
     o = np.asarray(original, float)
     scale = panel / max(o.shape)
-    size = (max(1, int(round(o.shape[1] * scale))), max(1, int(round(o.shape[0] * scale))))
+    size = (max(1, round(o.shape[1] * scale)), max(1, round(o.shape[0] * scale)))
     img, d = _canvas(3 * size[0] + 80, size[1] + 50)
     diff = np.asarray(difference, float)
     vmax = max(float(np.percentile(diff[mask], 99)) if mask.any() else 1.0, 8.0)

@@ -18,8 +18,14 @@ from pathlib import Path
 
 import jinja2
 
-__all__ = ["template_dir", "render_markup", "parse_markup", "render_pdf", "render_html",
-           "tables"]
+__all__ = [
+    "parse_markup",
+    "render_html",
+    "render_markup",
+    "render_pdf",
+    "tables",
+    "template_dir",
+]
 
 PAGE_NOTE = "Technical evidence, not legal advice. Consult counsel; rules differ between jurisdictions."
 
@@ -41,7 +47,7 @@ def _day(iso: str) -> str:
 
 def _chance(log10p: float) -> str:
     if log10p <= -3:
-        n = int(math.floor(-log10p))
+        n = math.floor(-log10p)
         return f"below 1 in 10^{n} (a 1 followed by {n} zeros)"
     return f"about {10 ** log10p:.2g}"
 
@@ -165,7 +171,7 @@ def tables(data: dict, name: str, arg: str | None) -> tuple[list[str], list[list
         rows = []
         for row in rows_in:
             lp = row.get("log10_false_alarm_probability")
-            bound = "" if lp is None else (f"below 1e{int(math.floor(lp))}" if lp < -3
+            bound = "" if lp is None else (f"below 1e{math.floor(lp)}" if lp < -3
                                            else f"{10 ** lp:.2g}")
             rows.append([str(row.get("attack", "")), _cell(row.get("detected")),
                          _cell(row.get("same_payload")) or "n/a", bound,
@@ -218,7 +224,14 @@ def render_pdf(data: dict, root: Path, out: Path) -> bytes:
     from reportlab.lib.styles import ParagraphStyle
     from reportlab.lib.units import cm
     from reportlab.platypus import (
-        Image, KeepTogether, PageBreak, Paragraph, SimpleDocTemplate, Spacer, Table, TableStyle,
+        Image,
+        KeepTogether,
+        PageBreak,
+        Paragraph,
+        SimpleDocTemplate,
+        Spacer,
+        Table,
+        TableStyle,
     )
 
     _register_fonts()
@@ -229,9 +242,11 @@ def render_pdf(data: dict, root: Path, out: Path) -> bytes:
     st = {
         "p": base,
         "h1": ParagraphStyle("h1", parent=base, fontName="Vera-Bold", fontSize=15, leading=19,
-                             spaceBefore=10, spaceAfter=7, textColor=colors.HexColor("#1b2a44")),
+                             spaceBefore=10, spaceAfter=7, textColor=colors.HexColor("#1b2a44"),
+                             keepWithNext=1),
         "h2": ParagraphStyle("h2", parent=base, fontName="Vera-Bold", fontSize=11.5, leading=15,
-                             spaceBefore=8, spaceAfter=4, textColor=colors.HexColor("#1b2a44")),
+                             spaceBefore=8, spaceAfter=4, textColor=colors.HexColor("#1b2a44"),
+                             keepWithNext=1),
         "li": ParagraphStyle("li", parent=base, leftIndent=12, bulletIndent=2),
         "title": ParagraphStyle("title", parent=base, fontName="Vera-Bold", fontSize=20,
                                 leading=25, spaceAfter=10, textColor=colors.HexColor("#1b2a44")),
