@@ -111,3 +111,37 @@ def test_psnr_and_ssim_match_scikit_image():
     ref = metrics.structural_similarity(a, b, data_range=255, gaussian_weights=True,
                                         sigma=1.5, use_sample_covariance=False)
     assert not sampled and ours == pytest.approx(ref, abs=1e-5)
+
+
+@pytest.mark.parametrize("angle,scale", [(0.0, 0.7), (17.0, 1.0), (-128.0, 1.3)])
+def test_fold_resampled_recovers_the_period_of_a_distorted_tiling(angle, scale):
+    # Distortion made by scikit-image (skimage.transform.warp), undone by our splatting fold.
+    from skimage import transform as sk
+    rng = np.random.default_rng(2)
+    tile = ndi_smooth(rng.normal(size=(TILE, TILE)))
+    plane = np.tile(tile, (6, 6))
+    # copy(y) = plane(A^-1 y): A maps original (row, col) to copy (row, col).
+    th = np.radians(angle)
+    a = scale * np.array([[np.cos(th), np.sin(th)], [-np.sin(th), np.cos(th)]])
+    a_inv = np.linalg.inv(a)
+    centre = np.array(plane.shape) / 2
+    out_shape = (500, 500)
+
+    def inverse_map(xy):   # skimage passes (col, row) output coordinates
+        rc = xy[:, ::-1] - np.array(out_shape) / 2
+        src = rc @ a_inv.T + centre
+        return src[:, ::-1]
+
+    copy = sk.warp(plane, inverse_map, output_shape=out_shape, order=3)
+    f = detect.fold_resampled(copy, a, TILE)
+    # Undo the grid offset by cross-correlation, then compare with the true period.
+    spec = np.fft.fft2(f) * np.conj(np.fft.fft2(tile))
+    peak = np.unravel_index(np.argmax(np.real(np.fft.ifft2(spec))), f.shape)
+    aligned = np.roll(f, (-peak[0], -peak[1]), axis=(0, 1))
+    r = np.corrcoef(aligned.ravel(), tile.ravel())[0, 1]
+    assert r > 0.9, r
+
+
+def ndi_smooth(x):
+    from scipy import ndimage
+    return ndimage.gaussian_filter(x, 2.0, mode="wrap")
