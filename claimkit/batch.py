@@ -70,7 +70,8 @@ EXIT_OK, EXIT_SOME_FAILED, EXIT_BAD_INPUT, EXIT_INTERRUPTED = 0, 1, 2, 130
 # --------------------------------------------------------------------------- finding files
 
 def find_images(inputs: list[Path], suffixes: tuple[str, ...], *,
-                exclude: Path | None = None) -> tuple[list[tuple[Path, Path, Path]], list]:
+                exclude: Path | None = None, passed_over: list[Path] | None = None
+                ) -> tuple[list[tuple[Path, Path, Path]], list]:
     """Files to work on, in a stable order.
 
     Parameters
@@ -84,6 +85,8 @@ def find_images(inputs: list[Path], suffixes: tuple[str, ...], *,
     exclude : Path, optional
         A folder not to walk into (the output folder, when it sits inside an
         input folder).
+    passed_over : list, optional
+        Receives the files found in folders and left out for their extension.
 
     Returns
     -------
@@ -105,7 +108,11 @@ def find_images(inputs: list[Path], suffixes: tuple[str, ...], *,
                 dirnames[:] = sorted(d for d in dirnames if not d.startswith(".")
                                      and (excl is None or (here / d).resolve() != excl))
                 for name in sorted(filenames):
-                    if name.startswith(".") or Path(name).suffix.lower() not in suffixes:
+                    if name.startswith("."):
+                        continue
+                    if Path(name).suffix.lower() not in suffixes:
+                        if passed_over is not None:
+                            passed_over.append(here / name)
                         continue
                     f = here / name
                     found.append((f, root, f.relative_to(root)))

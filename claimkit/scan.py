@@ -110,6 +110,7 @@ class ScanSummary:
     registered: int = 0
     unreadable: list[str] = field(default_factory=list)
     added_to_case: int = 0
+    passed_over: int = 0
     seconds: float = 0.0
     not_started: int = 0
     stopped: str | None = None
@@ -118,6 +119,7 @@ class ScanSummary:
         return {"summary": True, "files_read": self.read, "claimed": self.claimed,
                 "claimed_registered": self.registered, "unreadable": len(self.unreadable),
                 "added_to_case": self.added_to_case, "not_started": self.not_started,
+                "passed_over": self.passed_over,
                 "seconds": round(self.seconds, 2),
                 "files_per_second": round(self.read / self.seconds, 2) if self.seconds else None,
                 "stopped": self.stopped}
@@ -250,7 +252,9 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
     threshold = detect.DEFAULT_THRESHOLD if threshold is None else float(threshold)
     if not 0 < threshold < 1:
         raise InputError(f"--threshold {threshold} must lie between 0 and 1")
-    files, problems = find_images([Path(f) for f in folders], IMAGE_SUFFIXES)
+    passed_over: list[Path] = []
+    files, problems = find_images([Path(f) for f in folders], IMAGE_SUFFIXES,
+                                  passed_over=passed_over)
     for p in problems:
         if not Path(p.path or "").exists():
             raise p                      # a folder that is not there is a usage error
@@ -265,7 +269,7 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
     bar = Progress(len(files), enabled=progress, label="scanning ")
     adder = _CaseAdder(Path(case_dir), profile, notice) if case_dir is not None else None
     csv_out = _CsvReport(Path(report)) if report is not None else None
-    s = ScanSummary()
+    s = ScanSummary(passed_over=len(passed_over))
     for p in problems:
         s.unreadable.append(p.line())
     handed = 0
@@ -339,6 +343,9 @@ def _finish(s: ScanSummary, *, total: int, json_lines: bool, report: Path | None
             line += f", {s.added_to_case} added to the case"
         if s.not_started:
             line += f", {s.not_started} not examined"
+        if s.passed_over:
+            line += (f", {s.passed_over} other files passed over (not "
+                     f"{'/'.join(x.lstrip('.') for x in IMAGE_SUFFIXES)})")
         print(f"{line}; {s.seconds:.1f} s, {rate:.1f} files/s", flush=True)
         if report is not None:
             print(f"report: {report}", flush=True)

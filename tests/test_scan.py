@@ -76,7 +76,7 @@ def test_scan_claims_the_marked_copies_and_names_their_works(profile, finds, tmp
     assert "broken.jpg" in by["broken.jpg"]["error"]
     summary = json.loads(err.strip().splitlines()[0])
     assert summary["summary"] and summary["files_read"] == 3 and summary["claimed"] == 2
-    assert summary["unreadable"] == 1
+    assert summary["unreadable"] == 1 and summary["passed_over"] == 1    # page.html
     assert "claimkit: error: " in err and "broken.jpg" in err
     # The CSV has the same files, in the same order, with the same verdicts.
     with report.open(newline="") as fh:
