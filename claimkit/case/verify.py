@@ -16,7 +16,8 @@ not. Checks, in order:
    exhibit's intake and examination are logged with the right hashes;
 6. each exhibit against its intake record; each finding against its exhibit;
 7. each examination re-run from the disclosed detection key, and every stored
-   number compared (the decoy control and the alignment included);
+   number compared (the decoy control and the alignment included); the
+   robustness battery re-run on the registered marked file, row by row;
 8. the dossier data rebuilt from the bundle and compared byte for byte with
    ``report/dossier.json``; the figures redrawn and compared pixel for pixel;
    the HTML re-rendered and compared; the PDF's PAdES signature checked, and
@@ -374,6 +375,39 @@ def _rerun(root: Path, ex: dict, finding: dict, keys: dict, rep: VerifyReport) -
             "number reproduced")
 
 
+def _rerun_robustness(root: Path, findings: dict, keys: dict, rep: VerifyReport) -> None:
+    """Re-run the robustness battery once per work and compare its table."""
+    from claimkit.imageio import read_picture
+    from claimkit.workflow import expected_payload_check
+
+    done = set()
+    for i, f in sorted(findings.items()):
+        rob = f.get("robustness") or {}
+        wid = (f.get("match") or {}).get("work_id")
+        if rob.get("status") != "run" or wid in done:
+            continue
+        done.add(wid)
+        if wid not in keys:
+            rep.add(f"robustness {wid}", False, "no verified disclosure of this work")
+            continue
+        try:
+            from claimkit.stress import run_battery
+        except ImportError:
+            rep.add(f"robustness {wid}", False, "this claimkit has no robustness battery")
+            continue
+        seed, bits, _ = keys[wid]
+        pic = read_picture(root / f["reference"]["file"])
+        rows = run_battery(pic.pixels, seed, expected_payload_check(bits), quick=True)
+        from claimkit.case.examine import _jsonable
+        again = _jsonable(rows)
+        stored = rob.get("rows") or []
+        strip = [{k: v for k, v in r.items() if k != "seconds"} for r in stored]
+        fresh = [{k: v for k, v in r.items() if k != "seconds"} for r in again]
+        diffs = _close(strip, fresh, "rows")
+        rep.add(f"robustness {wid}", not diffs, "; ".join(diffs[:6]) if diffs else
+                f"{len(fresh)} edits of the registered file re-run, every row reproduced")
+
+
 def _check_dossier(root: Path, pub, rep: VerifyReport, *, full: bool = True) -> None:
     from claimkit.dossier.build import DATA, HTML, PDF, draw_figures
     from claimkit.dossier.data import build_data
@@ -454,7 +488,8 @@ def _check_dossier(root: Path, pub, rep: VerifyReport, *, full: bool = True) -> 
                          "(edited, or rendered with another version of reportlab)")
 
 
-def verify_bundle(path: str | os.PathLike, *, rerun: bool = True) -> VerifyReport:
+def verify_bundle(path: str | os.PathLike, *, rerun: bool = True,
+                  robustness: bool = True) -> VerifyReport:
     """Verify a bundle zip or an unpacked bundle/case folder; never raises for a failed check.
 
     Parameters
@@ -466,6 +501,9 @@ def verify_bundle(path: str | os.PathLike, *, rerun: bool = True) -> VerifyRepor
         it only hashes, signatures, tokens and the custody chain are checked,
         and the report says so with a failed "re-run" check, so that a quick
         check can never pass for a full one.
+    robustness : bool
+        Also re-run the robustness battery (with ``rerun``); skipping it is
+        reported as a failed check too.
     """
     from claimkit.dossier.data import case_files
     from claimkit.evidence import signing
@@ -534,6 +572,13 @@ def verify_bundle(path: str | os.PathLike, *, rerun: bool = True) -> VerifyRepor
                 _rerun(root, ex, f, keys, rep)
             except (InputError, OSError, KeyError, ValueError) as exc:
                 rep.add(f"{i} re-run", False, f"cannot be re-run ({exc})")
+        if rerun and robustness:
+            try:
+                _rerun_robustness(root, findings, keys, rep)
+            except (InputError, OSError, KeyError, ValueError) as exc:
+                rep.add("robustness", False, f"cannot be re-run ({exc})")
+        elif rerun:
+            rep.add("robustness re-run", False, "skipped on request")
         _check_dossier(root, pub, rep, full=rerun)
         if not rerun:
             rep.add("re-run", False, "skipped on request: the examinations, figures and PDF "

@@ -36,7 +36,10 @@ def template_dir() -> Path:
     for cand in (here.parent / "templates", here / "templates"):
         if (cand / "dossier.md.j2").is_file():
             return cand
-    raise FileNotFoundError("claimkit's templates/ folder is missing from this installation")
+    from claimkit.errors import InputError
+
+    raise InputError("claimkit's templates/ folder is missing from this installation; "
+                     "reinstall claimkit from its source tree", path=here)
 
 
 # ---------------------------------------------------------------- jinja2
