@@ -23,11 +23,15 @@ So instead of picking peaks we score whole lattice hypotheses:
    lattice rather than to an image). A few aspect ratios along the picture's
    axes (a copy squeezed to fit a box) are tried by resampling the same
    autocorrelation.
-3. **Refinement.** The best few hypotheses are refined as general linear maps
-   (four parameters): the sub-pixel peak near each predicted lattice point is
-   located and the basis is fitted to them by weighted least squares, widening
-   the radius as the estimate sharpens, so that the far lattice points (which
-   fix the basis most precisely) are used last.
+3. **Refinement.** Each basis vector of the best few hypotheses is moved in
+   turn, on a pixel grid within the aspect range, to where the near lattice
+   points score best (this catches squeezes and shears the grids do not
+   model); then the sub-pixel peak near each predicted lattice point is
+   located and the basis (a general linear map, four parameters) is fitted to
+   them by weighted least squares, widening the radius as the estimate
+   sharpens, so that the far lattice points, which fix the basis most
+   precisely, are used last. Lattices that are aliases of a better one (every
+   other point, or points halfway between) are dropped.
 
 The key is never used here, and the number of hypotheses handed to the
 detector is fixed in advance, so the statistics of :mod:`claimkit.mark.stats`
@@ -58,7 +62,7 @@ from functools import lru_cache
 
 import numpy as np
 from scipy import fft as sfft
-from scipy import ndimage, optimize
+from scipy import ndimage
 
 ACF_WINDOW = 1152          # largest side of the central window whose autocorrelation is taken
 LAG_MAX = 576              # largest lag used (the zero padding is this wide)
@@ -67,6 +71,7 @@ ASPECT_RANGE = 0.1         # aspect changes along the picture's axes: up to +-10
 LATTICE_CANDIDATES = 2     # fixed number of lattice hypotheses (counted in the statistics)
 MAX_CANON_PIXELS = 6_000_000
 
+MIN_OVERLAP = 0.05         # lags where the window overlaps itself less than this are not used
 FLATTEN_WINDOW = 15        # frequencies averaged to estimate the picture's own power
 FLATTEN_CLIP = 6.0         # cap on the flattened power: no single spectral line dominates
 COARSE_BLUR = 1.0          # smoothing of the autocorrelation for the coarse grids (pixels)
@@ -80,7 +85,6 @@ SIMILARITY_GRID = (COARSE_LAG, 0.004, (1.0,), 6)
 ASPECT_GRID = (192, 0.008, tuple(float(a) for a in np.arange(0.90, 1.105, 0.02) if abs(a - 1) > 0.01), 3)
 REFINE_RADII = (200, 360, LAG_MAX)   # growing radii of the refinement passes
 MIN_SUPPORT = 0.25         # least summed squared weight of a coarse hypothesis
-POLISH_EXTRA = 1           # lattices polished beyond the number returned
 
 
 @dataclass(frozen=True)
@@ -111,9 +115,15 @@ class _Acf:
     weight: np.ndarray   # expected relative signal at each lag (overlap of the window with itself)
     zw: np.ndarray       # z * weight: what the lattice scores sum
     coarse: np.ndarray   # z * weight smoothed more, central lags only, lag (0, 0) at [cc, cc]
-    coarse_w2: np.ndarray  # weight ** 2 on the same central lags (the coarse scores' variance)
     c: int               # index of lag zero in z
     cc: int              # index of lag zero in coarse
+    window: tuple[int, int]   # height and width of the window
+
+    def overlap(self, dy: np.ndarray, dx: np.ndarray) -> np.ndarray:
+        """Squared weight (overlap fraction) at lags (dy, dx); zero where too small to use."""
+        sh, sw = self.window
+        ov = np.clip(1.0 - np.abs(dy) / sh, 0.0, None) * np.clip(1.0 - np.abs(dx) / sw, 0.0, None)
+        return np.where(ov >= MIN_OVERLAP, ov, 0.0)
 
 
 def _fast(n: int) -> int:
@@ -173,7 +183,7 @@ def lag_map(x: np.ndarray, *, window: int = ACF_WINDOW, lag_max: int = LAG_MAX,
     ov_r = np.clip(1.0 - np.abs(d) / sh, 0.0, None)
     ov_c = np.clip(1.0 - np.abs(d) / sw, 0.0, None)
     overlap = np.outer(ov_r, ov_c)
-    valid = overlap >= 0.05
+    valid = overlap >= MIN_OVERLAP
     weight = (np.sqrt(overlap) * valid).astype(np.float32)
     z = a / np.sqrt(np.maximum(overlap, 1e-6))
     z[~valid] = 0.0
@@ -183,8 +193,7 @@ def lag_map(x: np.ndarray, *, window: int = ACF_WINDOW, lag_max: int = LAG_MAX,
     extra = float(np.sqrt(COARSE_BLUR ** 2 - FINE_BLUR ** 2))
     region = zw[lag - cl - 4:lag + cl + 5, lag - cl - 4:lag + cl + 5]
     coarse = ndimage.gaussian_filter(region, extra)
-    w2 = weight[lag - cl - 4:lag + cl + 5, lag - cl - 4:lag + cl + 5] ** 2
-    return _Acf(z=z, weight=weight, zw=zw, coarse=coarse, coarse_w2=w2, c=lag, cc=cl + 4)
+    return _Acf(z=z, weight=weight, zw=zw, coarse=coarse, c=lag, cc=cl + 4, window=(sh, sw))
 
 
 @lru_cache(maxsize=4)
@@ -272,9 +281,7 @@ def _coarse(acf: _Acf, tile: int, grid) -> list[tuple[float, np.ndarray]]:
         g = g.reshape(n_rho, n_phi)
         # The variance of each score (sum of squared weights) on the same grid,
         # so that hypotheses with few or short-overlap points are not favoured.
-        g2 = (ndimage.map_coordinates(acf.coarse_w2, coords1.reshape(2, -1), order=1)
-              + ndimage.map_coordinates(acf.coarse_w2, coords2.reshape(2, -1), order=1))
-        g2 = g2.reshape(n_rho, n_phi)
+        g2 = acf.overlap(coords1[0] - cc, coords1[1] - cc) + acf.overlap(coords2[0] - cc, coords2[1] - cc)
         num = np.zeros((k_hi - k_lo + 1, n_phi))
         den = np.zeros((k_hi - k_lo + 1, n_phi))
         ks = np.arange(k_lo, k_hi + 1)
@@ -334,6 +341,36 @@ def lattice_score(acf: _Acf, basis: np.ndarray, r_min: float, r_max: float) -> t
     return float(np.sum(zw) / np.sqrt(np.sum(w * w) + 1e-12)), int(n.shape[1])
 
 
+def _widen(acf: _Acf, basis: np.ndarray, r_min: float) -> np.ndarray:
+    """Move each basis vector in turn to where the near lattice points score best.
+
+    The coarse grids model similarities and squeezes along the picture's
+    axes; a copy squeezed along other axes (or sheared) leaves one or both
+    basis vectors several pixels off, beyond the reach of :func:`_refine`.
+    Each vector is searched on a pixel grid within ``ASPECT_RANGE`` of its
+    length, the other held fixed, scoring the lattice points up to twice the
+    longer vector (the coarse smoothing makes the score forgiving).
+    """
+    cc = acf.cc
+    for _ in range(2):
+        for k in (0, 1):
+            b = basis.copy()
+            reach = int(np.ceil(ASPECT_RANGE * np.linalg.norm(b[:, k]))) + 1
+            n = _points(b, r_min, min(2.05 * float(np.max(np.linalg.norm(b, axis=0))), cc - reach - 6))
+            n = n[:, n[k] != 0]                    # only the points this vector moves
+            if n.shape[1] == 0:
+                return basis
+            off = np.arange(-reach, reach + 1, dtype=float)
+            dy, dx = np.meshgrid(off, off, indexing="ij")
+            delta = np.stack([dy.ravel(), dx.ravel()])          # 2 x m candidate shifts
+            p = (b @ n)[:, None, :] + delta[:, :, None] * n[k][None, None, :] + cc
+            vals = ndimage.map_coordinates(acf.coarse, p.reshape(2, -1), order=1)
+            best = int(np.argmax(vals.reshape(delta.shape[1], -1).sum(axis=1)))
+            basis = b
+            basis[:, k] = b[:, k] + delta[:, best]
+    return basis
+
+
 def _refine(acf: _Acf, basis: np.ndarray, r_min: float) -> tuple[np.ndarray, int]:
     """Weighted least-squares fit of the basis to sub-pixel peaks near the predicted lattice points."""
     z = acf.z
@@ -375,37 +412,6 @@ def _refine(acf: _Acf, basis: np.ndarray, r_min: float) -> tuple[np.ndarray, int
                 return basis, inliers
             basis = ((obs - acf.c) * wgt) @ n.T @ np.linalg.inv(nn)
     return basis, inliers
-
-
-def _polish(acf: _Acf, basis: np.ndarray, r_min: float) -> np.ndarray:
-    """Maximise the lattice score itself over the four entries of the basis (Nelder-Mead).
-
-    Where the individual peaks are too weak for :func:`_refine` to locate, the
-    sum over all lattice points still has a clear maximum; its position fixes
-    the basis to a small fraction of a pixel at the largest lag.
-    """
-    n = _points(basis, r_min, acf.c - 2)
-    if n.shape[1] < 3:
-        return basis
-    period = float(np.mean(np.linalg.norm(basis, axis=0)))
-    far = float(np.max(np.linalg.norm(basis @ n, axis=0)))
-    unit = period / far          # a unit step moves the farthest point by about a pixel
-    zw = acf.zw
-
-    def cost(v):
-        p = (basis + unit * v.reshape(2, 2)) @ n + acf.c
-        return -float(np.sum(ndimage.map_coordinates(zw, p, order=1)))
-
-    res = optimize.minimize(cost, np.zeros(4), method="Nelder-Mead",
-                            options={"initial_simplex": _simplex(1.0), "xatol": 0.02,
-                                     "fatol": 1e-9, "maxfev": 300})
-    return basis + unit * res.x.reshape(2, 2)
-
-
-def _simplex(step: float) -> np.ndarray:
-    s = np.zeros((5, 4))
-    s[1:] = np.eye(4) * step
-    return s
 
 
 def _parabola(a: np.ndarray, b: np.ndarray, c: np.ndarray) -> np.ndarray:
@@ -468,19 +474,12 @@ def find_lattices(x: np.ndarray, tile: int, *, workers: int = 1,
     r_min = SCALE_RANGE[0] * tile * (1 - ASPECT_RANGE) * 0.9
     rough: list[Lattice] = []
     for _, basis in _coarse(acf, tile, SIMILARITY_GRID) + _coarse(acf, tile, ASPECT_GRID):
-        refined, inliers = _refine(acf, basis, r_min)
+        refined, inliers = _refine(acf, _widen(acf, basis, r_min), r_min)
         refined = _reduce(refined)
         if _plausible(refined, tile):
             score, points = lattice_score(acf, refined, r_min, acf.c)
             rough.append(Lattice(basis=refined, score=score, inliers=inliers, points=points))
-    # Polish only the best few (the costly step), then rank again.
-    found: list[Lattice] = []
-    for lat in _distinct(rough)[:candidates + POLISH_EXTRA]:
-        basis = _reduce(_polish(acf, lat.basis, r_min))
-        if _plausible(basis, tile):
-            score, points = lattice_score(acf, basis, r_min, acf.c)
-            found.append(Lattice(basis=basis, score=score, inliers=lat.inliers, points=points))
-    return _distinct(found)[:candidates]
+    return _distinct(rough)[:candidates]
 
 
 def _distinct(lattices: list[Lattice]) -> list[Lattice]:

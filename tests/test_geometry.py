@@ -1,0 +1,245 @@
+"""Blind lattice estimation (claimkit.mark.geometry) against transforms made by other people's code.
+
+Every distorted copy is made with Pillow (``Image.rotate``, ``Image.resize``)
+or scikit-image (``transform.rescale``, ``transform.warp``), never with the
+project's own resampling, so the true geometry is known independently of the
+code under test.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from PIL import Image
+from skimage import data
+from skimage import transform as sktf
+
+from claimkit.imageio import to_luma
+from claimkit.mark import detect, geometry
+from claimkit.mark.pattern import TILE, key_pattern
+from claimkit.stress import jpeg, resize, rotate_crop
+from tests.engine_helpers import SEED, mark, payload
+
+ROTATION_TOL_DEG = 0.1   # much tighter than the 0.5 degrees the issue asks of the whole examination
+SCALE_TOL = 0.003        # likewise (the issue asks 2 %)
+
+
+def true_transform(rot_deg: float = 0.0, scale: float = 1.0, sx: float = 1.0, sy: float = 1.0) -> np.ndarray:
+    """Original (row, col) -> copy (row, col) for a counter-clockwise turn on screen, then axis scales."""
+    t = math.radians(rot_deg)
+    c, s = math.cos(t), math.sin(t)
+    turn = np.array([[c, -s], [s, c]])   # row axis points down, so a screen CCW turn is this
+    return np.diag([sy, sx]) @ turn * scale
+
+
+def lattice_error(basis: np.ndarray, truth: np.ndarray) -> tuple[float, float, float]:
+    """Residual rotation (deg), scale and shear of ``basis`` against ``TILE * truth``.
+
+    The lattice fixes the transform only up to the eight symmetries of the
+    square, so the symmetry that fits best is taken out first.
+    """
+    m = np.linalg.solve(TILE * truth, basis)          # ~ a signed permutation matrix
+    d = np.rint(m)
+    assert abs(abs(np.linalg.det(d)) - 1) < 1e-9 and np.all(np.abs(d).sum(axis=0) == 1), m
+    q = m @ np.linalg.inv(d)                          # ~ identity
+    angle = math.degrees(math.atan2(q[1, 0] - q[0, 1], q[0, 0] + q[1, 1]))
+    scale = math.sqrt(abs(np.linalg.det(q)))
+    u, s, vt = np.linalg.svd(q)
+    return angle, scale - 1.0, s[0] / s[1] - 1.0
+
+
+def best_match(copy: np.ndarray, truth: np.ndarray) -> tuple[int, tuple[float, float, float]]:
+    lats = geometry.find_lattices(detect.whiten(to_luma(copy)), TILE)
+    for i, lat in enumerate(lats):
+        try:
+            err = lattice_error(lat.basis, truth)
+        except AssertionError:
+            continue
+        if abs(err[0]) < 1 and abs(err[1]) < 0.02:
+            return i, err
+    raise AssertionError(f"no candidate near the truth: {[l.basis.round(1).tolist() for l in lats]}")
+
+
+@pytest.fixture(scope="module")
+def hubble():
+    """The hard case: a dark, noisy photo whose own spectrum hides the mark's lattice peaks."""
+    return mark(data.hubble_deep_field())
+
+
+@pytest.fixture(scope="module")
+def coffee():
+    return mark(data.coffee())
+
+
+def skimage_rescale(a: np.ndarray, f: float) -> np.ndarray:
+    out = sktf.rescale(a / 255.0, f, anti_aliasing=True, channel_axis=-1, order=3)
+    return np.clip(np.rint(out * 255), 0, 255).astype(np.uint8)
+
+
+CASES = [
+    # name, picture, attack, true transform
+    ("Pillow rotate 17", "hubble", lambda a: rotate_crop(a, 17), true_transform(17)),
+    ("Pillow rotate 45", "hubble", lambda a: rotate_crop(a, 45), true_transform(45)),
+    ("Pillow rotate -128", "coffee", lambda a: rotate_crop(a, -128), true_transform(-128)),
+    ("skimage rescale 0.5", "hubble", lambda a: skimage_rescale(a, 0.5), true_transform(scale=0.5)),
+    ("skimage rescale 1.6", "coffee", lambda a: skimage_rescale(a, 1.6), true_transform(scale=1.6)),
+    ("Pillow width x0.9", "hubble", lambda a: resize(a, 0.9, 1.0), true_transform(sx=0.9)),
+    ("Pillow shrink 0.6, rotate 2, JPEG 70", "hubble",
+     lambda a: jpeg(rotate_crop(resize(a, 0.6), 2), 70), true_transform(2, 0.6)),
+]
+
+
+@pytest.mark.parametrize("name,pic,attack,truth", CASES, ids=[c[0] for c in CASES])
+def test_lattice_estimate_matches_the_true_geometry(request, name, pic, attack, truth):
+    copy = attack(request.getfixturevalue(pic))
+    rank, (rot_err, scale_err, shear) = best_match(copy, truth)
+    assert rank == 0, name                            # the mark's lattice is the best candidate
+    assert abs(rot_err) <= ROTATION_TOL_DEG, (name, rot_err)
+    assert abs(scale_err) <= SCALE_TOL, (name, scale_err)
+    assert abs(shear) <= 2 * SCALE_TOL, (name, shear)
+
+
+def test_general_affine_map_made_by_skimage_warp():
+    # A periodic noise pattern (period TILE) under rotation + unequal scales + shear,
+    # warped by scikit-image: the lattice is a general parallelogram.
+    rng = np.random.default_rng(5)
+    tile = rng.normal(0, 1, (TILE, TILE))
+    big = np.tile(tile, (7, 7))
+    aff = sktf.AffineTransform(rotation=0.35, scale=(1.15, 1.05), shear=0.04)
+    warped = sktf.warp(big, aff.inverse, output_shape=(700, 700), order=3)
+    x = detect.whiten(warped[50:650, 50:650] * 40 + 128)
+    lat = geometry.find_lattices(x, TILE)[0]
+    # skimage works in (x, y); our transforms in (row, col).
+    swap = np.array([[0.0, 1.0], [1.0, 0.0]])
+    truth = swap @ aff.params[:2, :2] @ swap
+    m = np.linalg.solve(TILE * truth, lat.basis)
+    d = np.rint(m)
+    assert np.allclose(m, d, atol=2e-3), m
+    assert abs(abs(np.linalg.det(d)) - 1) < 1e-9
+
+
+def test_candidates_are_ranked_distinct_and_repeatable(hubble):
+    x = detect.whiten(to_luma(rotate_crop(hubble, 17)))
+    a = geometry.find_lattices(x, TILE, candidates=3)
+    b = geometry.find_lattices(x, TILE, candidates=3)
+    assert 1 <= len(a) <= 3
+    assert [lat.score for lat in a] == sorted((lat.score for lat in a), reverse=True)
+    # No candidate is an alias (sub- or super-lattice) of another.
+    for i in range(len(a)):
+        for j in range(i + 1, len(a)):
+            assert not geometry._related(a[i].basis, a[j].basis)
+    # Deterministic: the search uses no key and no randomness.
+    assert all(np.array_equal(p.basis, q.basis) for p, q in zip(a, b))
+
+
+def test_tiny_copies_give_no_lattice_rather_than_an_error():
+    x = detect.whiten(np.random.default_rng(1).normal(128, 20, (40, 300)).astype(np.float32))
+    assert geometry.find_lattices(x, TILE) == []
+
+
+def test_to_canonical_is_exact_on_a_linear_ramp():
+    # Bilinear interpolation reproduces a linear function exactly, so every
+    # canonical pixel must hold the copy's value at transform @ u + offset.
+    h, w = 300, 400
+    rr, cc = np.mgrid[0:h, 0:w].astype(np.float64)
+    copy = 2.0 * rr + 3.0 * cc + 5.0
+    t = true_transform(23, 0.8, sx=1.05)
+    canon, offset = geometry.to_canonical(copy, t)
+    u = np.stack(np.mgrid[0:canon.shape[0], 0:canon.shape[1]]).reshape(2, -1).astype(float)
+    pos = t @ u + offset[:, None]
+    inside = (pos[0] >= 0) & (pos[0] <= h - 1) & (pos[1] >= 0) & (pos[1] <= w - 1)
+    expect = 2.0 * pos[0] + 3.0 * pos[1] + 5.0
+    got = canon.reshape(-1)
+    assert inside.mean() > 0.3
+    assert np.allclose(got[inside], expect[inside], atol=1e-6)
+
+
+def tiled_floor(h: int = 640, w: int = 800, period: float = 97.0, angle: float = 13.0) -> np.ndarray:
+    """A generated tiled floor: checker tiles with dark grout, turned, with sensor noise."""
+    yy, xx = np.mgrid[0:h, 0:w].astype(float)
+    t = math.radians(angle)
+    u = xx * math.cos(t) + yy * math.sin(t)
+    v = -xx * math.sin(t) + yy * math.cos(t)
+    grout = ((u % period) < 5) | ((v % period) < 5)
+    checker = (np.floor(u / period) + np.floor(v / period)) % 2
+    img = 120 + 60 * checker - 70 * grout + np.random.default_rng(3).normal(0, 6, (h, w))
+    return np.clip(img, 0, 255).astype(np.uint8)
+
+
+def test_marked_tiled_floor_is_found_despite_its_own_lattice():
+    # The floor's own lattice is far stronger than the mark's; the mark's must
+    # still be among the candidates, and the copy must be claimed.
+    rgb = np.stack([tiled_floor()] * 3, axis=-1)
+    copy = rotate_crop(mark(rgb), 17)
+    f = detect.examine_luma(to_luma(copy), SEED,
+                            payload_check=lambda b: np.array_equal(b, payload()))
+    assert f.detected and f.payload_bits == payload().tolist()
+    assert abs(f.geometry["rotation_deg"] - 17) <= 0.5
+
+
+def test_null_calibration_after_the_geometric_search_on_textures():
+    """Unmarked pictures with strong periodic texture of their own, turned and rescaled by Pillow.
+
+    The search locks onto the texture's lattice; the false-alarm bound must
+    still hold: the fraction of (picture, key) pairs with P_fa <= p is at most
+    p, and nothing is claimed.
+    """
+    pics = []
+    for base in (data.brick(), data.grass(), data.gravel(), data.text(), tiled_floor(),
+                 np.kron((np.indices((12, 14)).sum(0) % 2) * 150 + 50, np.ones((61, 61))).astype(np.uint8)):
+        base = np.ascontiguousarray(base)
+        pics += [base, rotate_crop(base, 10), resize(base, 0.8)]
+    rng = np.random.default_rng(23)
+    pvals = []
+    lattices_found = 0
+    for pic in pics:
+        luma = to_luma(pic)
+        prep = detect.prepare(luma)      # key-independent; reused for every key
+        lattices_found += sum(lat is not None for lat in prep.lattices)
+        for _ in range(6):
+            f = detect.examine_luma(luma, rng.bytes(32), payload_check=lambda b: False,
+                                    prepared=prep)
+            assert not f.detected
+            # Every geometric hypothesis counts, found or not.
+            assert f.hypotheses == detect.hypotheses(TILE)
+            pvals.append(f.false_alarm_probability)
+    key_pattern.cache_clear()
+    assert lattices_found >= len(pics)   # the textures did offer lattices to the search
+    pvals = np.asarray(pvals)
+    for p in (0.01, 0.05, 0.2):
+        assert np.mean(pvals <= p) <= p, p
+
+
+def test_lattice_search_cost_does_not_depend_on_the_key():
+    # The geometric hypotheses are fixed before any key is used: the search
+    # takes the whitened copy and the period only.
+    import inspect
+
+    params = inspect.signature(geometry.find_lattices).parameters
+    assert list(params)[:2] == ["x", "tile"]
+    assert "seed" not in params and "pattern" not in params
+    assert detect.GEOMETRIES == 1 + geometry.LATTICE_CANDIDATES
+
+
+def test_flattened_lag_map_shows_a_known_period():
+    # A noise pattern repeating every 100 px horizontally and 90 px vertically
+    # must give its strongest off-centre peaks exactly at those lags.
+    rng = np.random.default_rng(2)
+    img = np.tile(rng.normal(0, 1, (90, 100)), (6, 6)).astype(np.float32)
+    acf = geometry.lag_map(img)
+    c = acf.c
+    assert acf.z[c, c + 100] > 10 and acf.z[c + 90, c] > 10
+    assert acf.z[c, c + 100] > 5 * np.abs(acf.z[c + 20:c + 60, c + 20:c + 60]).max()
+
+
+def test_pillow_rotate_convention():
+    # Independent check of the sign convention the tests rely on: Pillow's
+    # rotate(+90) turns counter-clockwise on screen (top-right goes to top-left).
+    a = np.zeros((4, 4), dtype=np.uint8)
+    a[0, 3] = 255
+    r = np.asarray(Image.fromarray(a).rotate(90))
+    assert r[0, 0] == 255
+    # ... and true_transform(+90) maps the original's +col step to the copy's -row step.
+    assert np.allclose(true_transform(90) @ np.array([0.0, 1.0]), [-1.0, 0.0])
