@@ -46,7 +46,7 @@ def lattice_error(basis: np.ndarray, truth: np.ndarray) -> tuple[float, float, f
     q = m @ np.linalg.inv(d)                          # ~ identity
     angle = math.degrees(math.atan2(q[1, 0] - q[0, 1], q[0, 0] + q[1, 1]))
     scale = math.sqrt(abs(np.linalg.det(q)))
-    u, s, vt = np.linalg.svd(q)
+    s = np.linalg.svd(q, compute_uv=False)
     return angle, scale - 1.0, s[0] / s[1] - 1.0
 
 
