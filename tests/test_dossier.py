@@ -223,3 +223,41 @@ def test_report_json_and_out(built_case, tmp_path, monkeypatch, capsys):
     assert rep["summary"]["detected"] == ["E01", "E02"]
     assert out.read_bytes()[:5] == b"%PDF-"
     assert io.BytesIO(out.read_bytes()).getbuffer().nbytes == (work / "report/dossier.pdf").stat().st_size
+
+
+def test_pdf_signature_check_and_certificate_chain(built_case, tmp_path):
+    """The one-time signing certificate chains to the owner's Ed25519 key (OpenSSL agrees)."""
+    from pyhanko.pdf_utils.reader import PdfFileReader
+
+    from claimkit.dossier.pdfsign import check_pdf_signature
+    from claimkit.evidence.profile import Profile
+    from claimkit.evidence.signing import load_public_pem
+
+    pdf = (built_case.case / "report" / "dossier.pdf").read_bytes()
+    owner = load_public_pem((built_case.home / "public.pem").read_bytes())
+    assert check_pdf_signature(pdf, owner).ok
+    bad = bytearray(pdf)
+    bad[pdf.find(b"Evidence dossier")] ^= 0x20
+    probs = " ".join(check_pdf_signature(bytes(bad), owner).problems)
+    assert "changed after it was signed" in probs or "does not verify" in probs
+    other = Profile.create(tmp_path / "other", "Someone Else", b"other-pass")
+    probs = " ".join(check_pdf_signature(pdf, other.public_key).problems)
+    other.close()
+    assert "not issued by the owner's key" in probs
+    if shutil.which("openssl") is None:
+        return
+    import io as _io
+    sig = PdfFileReader(_io.BytesIO(pdf)).embedded_signatures[0]
+    leaf = sig.signer_cert
+    root = next(c for c in sig.other_embedded_certs if c.public_key.algorithm == "ed25519")
+    from asn1crypto import pem
+    (tmp_path / "leaf.pem").write_bytes(pem.armor("CERTIFICATE", leaf.dump()))
+    (tmp_path / "owner.pem").write_bytes(pem.armor("CERTIFICATE", root.dump()))
+    proc = subprocess.run(["openssl", "verify", "-CAfile", str(tmp_path / "owner.pem"),
+                           str(tmp_path / "leaf.pem")], capture_output=True, text=True,
+                          check=False)
+    assert proc.returncode == 0 and ": OK" in proc.stdout, proc.stdout + proc.stderr
+    # And the owner certificate carries exactly the owner's public key (the profile's PEM).
+    proc = subprocess.run(["openssl", "x509", "-in", str(tmp_path / "owner.pem"), "-noout",
+                           "-pubkey"], capture_output=True, text=True, check=True)
+    assert proc.stdout.strip() == (built_case.home / "public.pem").read_text().strip()

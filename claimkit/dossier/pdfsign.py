@@ -158,7 +158,7 @@ def check_pdf_signature(pdf: bytes, owner_public_key: ed25519.Ed25519PublicKey) 
              and c.public_key["public_key"].native == owner_public_key.public_bytes_raw()]
     from pyhanko_certvalidator import ValidationContext
 
-    ctx = ValidationContext(trust_roots=roots[:1], allow_fetching=False) if roots else None
+    ctx = ValidationContext(trust_roots=roots[:1], allow_fetching=False)
     quiet = logging.getLogger("pyhanko")
     level = quiet.level
     quiet.setLevel(logging.CRITICAL)   # pyHanko logs an untrusted path as an error trace
