@@ -47,7 +47,7 @@ from pathlib import Path
 import numpy as np
 
 from claimkit.errors import ClaimkitError, InputError
-from claimkit.runner import Outcome, Progress, StopGuard, make_engine, run_ordered
+from claimkit.runner import Outcome, Progress, StopGuard, make_engine, remote_path_hint, run_ordered
 
 __all__ = [
     "IMAGE_SUFFIXES",
@@ -277,6 +277,7 @@ class _MarkBatch:
         self.summary = BatchSummary()
         self.handed_back = 0
         self.in_flight: set[Path] = set()   # staged names a worker may be writing
+        self.engine = None                  # set once the engine is up (for error hints)
 
     # ---------------------------------------------------------------- planning
     def jobs(self, pairs: list[tuple[Path, Path]]):
@@ -358,7 +359,8 @@ class _MarkBatch:
             result = {"status": "failed", "error": f"{job.src}: {outcome.error}",
                       "kind": "internal"}
         elif "error" in outcome.value:
-            result = {"status": "failed", "error": outcome.value["error"],
+            result = {"status": "failed",
+                      "error": remote_path_hint(self.engine, job.src, outcome.value["error"]),
                       "kind": outcome.value.get("kind", "input")}
         else:
             result = self._finish(job, outcome.value)
@@ -548,6 +550,7 @@ def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
             batch.summary.failure_kinds.append("input")
         start = time.monotonic()
         eng = make_engine(engine, workers=workers, scheduler=scheduler) if pairs else None
+        batch.engine = eng
         if eng is not None:
             run_ordered(eng, mark_task, batch.jobs(pairs), batch.handle, guard=guard,
                         tick=bar.draw)

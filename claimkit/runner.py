@@ -42,7 +42,8 @@ from typing import Any
 
 from claimkit.errors import InputError
 
-__all__ = ["Outcome", "Progress", "StopGuard", "default_workers", "make_engine", "run_ordered"]
+__all__ = ["Outcome", "Progress", "StopGuard", "default_workers", "make_engine",
+           "remote_path_hint", "run_ordered"]
 
 ENGINES = ("local", "dask")
 
@@ -354,6 +355,17 @@ class DaskEngine(_Engine):
         finally:
             if self._cluster is not None:
                 self._cluster.close()
+
+
+def remote_path_hint(engine: _Engine, path, error: str) -> str:
+    """Add a hint when a cluster worker could not see a file this machine can see."""
+    import os.path
+
+    if engine is not None and not engine.in_process and engine.name == "dask" \
+            and "no such file" in error.lower() and os.path.exists(path):
+        return (error + " (on the Dask worker; the cluster must see the same files under "
+                "the same paths)")
+    return error
 
 
 def make_engine(kind: str = "local", *, workers: int | None = None,

@@ -37,7 +37,7 @@ from pathlib import Path
 
 from claimkit.batch import IMAGE_SUFFIXES, find_images
 from claimkit.errors import ClaimkitError, InputError
-from claimkit.runner import Outcome, Progress, StopGuard, make_engine, run_ordered
+from claimkit.runner import Outcome, Progress, StopGuard, make_engine, remote_path_hint, run_ordered
 
 __all__ = ["CSV_COLUMNS", "PayloadChecker", "ScanSummary", "scan_folders", "scan_task"]
 
@@ -273,6 +273,7 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
     for p in problems:
         s.unreadable.append(p.line())
     handed = 0
+    eng = None
 
     def handle(o: Outcome) -> None:
         nonlocal handed
@@ -280,6 +281,7 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
         path = o.item
         rep = o.value if o.error is None else {"file": str(path), "error": f"{path}: {o.error}"}
         if "error" in rep:
+            rep["error"] = remote_path_hint(eng, path, rep["error"])
             s.unreadable.append(rep["error"])
         else:
             s.read += 1

@@ -84,3 +84,18 @@ def test_unreachable_scheduler_is_a_clear_error():
 
     with pytest.raises(InputError, match="cannot reach the Dask scheduler tcp://127.0.0.1:9"):
         make_engine("dask", scheduler="tcp://127.0.0.1:9", timeout=1)
+
+
+def test_a_file_the_cluster_cannot_see_gets_a_hint(tmp_path):
+    from claimkit.runner import remote_path_hint
+
+    class Remote:
+        name, in_process = "dask", False
+
+    here = tmp_path / "here.jpg"
+    here.write_bytes(b"x")
+    hinted = remote_path_hint(Remote(), here, f"{here}: no such file")
+    assert hinted.endswith("the cluster must see the same files under the same paths)")
+    # A file missing everywhere is just missing.
+    gone = tmp_path / "gone.jpg"
+    assert remote_path_hint(Remote(), gone, f"{gone}: no such file") == f"{gone}: no such file"
