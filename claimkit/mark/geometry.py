@@ -64,8 +64,8 @@ import numpy as np
 from scipy import fft as sfft
 from scipy import ndimage
 
-ACF_WINDOW = 1152          # largest side of the central window whose autocorrelation is taken
-LAG_MAX = 576              # largest lag used (the zero padding is this wide)
+ACF_WINDOW = 1024          # largest side of the central window whose autocorrelation is taken
+LAG_MAX = 512              # largest lag used (the zero padding is this wide)
 SCALE_RANGE = (0.45, 2.2)  # copy/original scale the search covers (0.5x..2x with margin)
 ASPECT_RANGE = 0.1         # aspect changes along the picture's axes: up to +-10 %
 LATTICE_CANDIDATES = 2     # fixed number of lattice hypotheses (counted in the statistics)
@@ -84,6 +84,8 @@ COARSE_LAG = 320           # largest lag of the coarse grids
 SIMILARITY_GRID = (COARSE_LAG, 0.004, (1.0,), 6)
 ASPECT_GRID = (192, 0.008, tuple(float(a) for a in np.arange(0.90, 1.105, 0.02) if abs(a - 1) > 0.01), 3)
 REFINE_RADII = (200, 360, LAG_MAX)   # growing radii of the refinement passes
+CLEAR_SCORE = 15.0         # a lattice scoring this much stands out clearly from noise (~5 at most)
+RUNNER_UP = 0.25           # ... and then lattices below this fraction of it are not resampled
 MIN_SUPPORT = 0.25         # least summed squared weight of a coarse hypothesis
 
 
@@ -465,8 +467,10 @@ def find_lattices(x: np.ndarray, tile: int, *, workers: int = 1,
     Returns
     -------
     list of Lattice
-        Best first (highest ``score``); may be shorter than ``candidates``
-        for a copy too small to hold two periods.
+        Best first (highest ``score``); may be shorter than ``candidates``:
+        for a copy too small to hold two periods, when the best lattice is
+        the original grid itself (the detector's unwarped hypothesis covers
+        it), and when the others are far weaker than the best.
     """
     if min(x.shape) < 2 * SCALE_RANGE[0] * tile:
         return []
@@ -479,7 +483,35 @@ def find_lattices(x: np.ndarray, tile: int, *, workers: int = 1,
         if _plausible(refined, tile):
             score, points = lattice_score(acf, refined, r_min, acf.c)
             rough.append(Lattice(basis=refined, score=score, inliers=inliers, points=points))
-    return _distinct(rough)[:candidates]
+    return _worth_trying(_distinct(rough), x.shape, tile)[:candidates]
+
+
+def _worth_trying(ranked: list[Lattice], shape: tuple[int, int], tile: int) -> list[Lattice]:
+    """Drop lattices whose resampling would be wasted work (never the key's business).
+
+    * A lattice that is the original grid up to a quarter turn or mirror, to
+      within a third of a pixel across the copy, is tried exactly by the
+      detector's unwarped hypothesis.
+    * Once one lattice stands out clearly, lattices far weaker than it are
+      noise: resampling and folding a copy costs more than the search.
+
+    The detector counts every hypothesis it could have tried, so trying
+    fewer keeps its false-alarm bound valid (conservative).
+    """
+    if not ranked:
+        return []
+    best = ranked[0].score
+    out = []
+    for lat in ranked:
+        if best >= CLEAR_SCORE and lat.score < RUNNER_UP * best:
+            break
+        m = lat.basis / tile
+        d = np.rint(m)
+        exact = abs(abs(np.linalg.det(d)) - 1) < 1e-9 and np.all(np.abs(d).sum(axis=0) == 1)
+        if exact and np.abs(m - d).sum(axis=0).max() * max(shape) <= 0.33:
+            continue
+        out.append(lat)
+    return out
 
 
 def _distinct(lattices: list[Lattice]) -> list[Lattice]:
