@@ -29,6 +29,7 @@ import argparse
 import contextlib
 import io
 import os
+import shutil
 import sys
 import tempfile
 import threading
@@ -241,7 +242,8 @@ def load() -> str:
 def bench_scan(profile, work: Path, count: int) -> None:
     from claimkit import batch, scan
 
-    print(f"\n1. scan of {count} web-size JPEGs (1.2-1.9 MP, half marked and recompressed)"
+    print(f"\n1. scan of {count} web-size JPEGs (1.2-1.9 MP, half marked and recompressed), "
+          "best of 2 runs"
           f"  [{load()}]")
     half = count // 2
     write_jpegs(work / "scan-src", half, (1600, 1200), start=1000, quality=95)
@@ -256,17 +258,21 @@ def bench_scan(profile, work: Path, count: int) -> None:
     mp = np.mean([Image.open(f).size[0] * Image.open(f).size[1] for f in files]) / 1e6
     t_decode = min(pillow_decode(files) for _ in range(2))
     seed, checker = profile.detection_seed, scan.PayloadChecker.of(profile)
-    cpu = time.process_time()
-    t = time.perf_counter()
-    claimed = sum(bool(scan.scan_task(str(f), seed, checker, 1e-9, None).get("detected"))
-                  for f in files)
-    t_one = time.perf_counter() - t
-    cpu_one = (time.process_time() - cpu) / len(files)
+    t_one = cpu_one = rate2 = 0.0
+    for _ in range(2):        # alternate and keep the best of each (see bench_mark)
+        cpu = time.process_time()
+        t = time.perf_counter()
+        claimed = sum(bool(scan.scan_task(str(f), seed, checker, 1e-9, None).get("detected"))
+                      for f in files)
+        dt = time.perf_counter() - t
+        if not t_one or dt < t_one:
+            t_one, cpu_one = dt, (time.process_time() - cpu) / len(files)
+        rate2 = max(rate2, steady_rate(files, scan.scan_task,
+                                       lambda f: (str(f), seed, checker, 1e-9, None), 2))
     with quiet():
         t = time.perf_counter()
         scan.scan_folders(profile, [web], workers=2, json_lines=True)
         t_cmd = time.perf_counter() - t
-    rate2 = steady_rate(files, scan.scan_task, lambda f: (str(f), seed, checker, 1e-9, None), 2)
     line("mean picture size", f"{mp:.2f} MP")
     line("claimed (of the marked half)", f"{claimed}/{half}")
     line("Pillow decode, one process, per file", f"{1000 * t_decode / len(files):.0f} ms")
@@ -284,14 +290,27 @@ def bench_scan(profile, work: Path, count: int) -> None:
     line("speed-up of scan, 2 workers over 1", f"{rate2 * t_one / len(files):.2f}x")
 
 
-def bench_mark(profile, work: Path, count: int) -> None:
+def timed_mark_task(*args):
+    """``batch.mark_task`` that also reports the CPU seconds it used in its worker."""
     from claimkit import batch
 
-    print(f"\n2. batch mark of {count} 12-megapixel JPEGs (4000 x 3000)  [{load()}]")
+    t0 = time.process_time()
+    out = _ORIGINAL_MARK_TASK(*args) if _ORIGINAL_MARK_TASK else batch.mark_task(*args)
+    out["_cpu"] = time.process_time() - t0
+    return out
+
+
+_ORIGINAL_MARK_TASK = None
+
+
+def bench_mark(profile, work: Path, count: int, rounds: int = 2) -> None:
+    from claimkit import batch
+
+    print(f"\n2. batch mark of {count} 12-megapixel JPEGs (4000 x 3000), best of {rounds} "
+          f"runs each  [{load()}]")
     folder = work / "mark12"
     files = write_jpegs(folder, count, (4000, 3000), start=3000, quality=92)
     t_de = pillow_decode_encode(files[:2]) / 2
-    times, peaks = {}, {}
     # The parent's own work per file (hash, serial, register, rename), timed on its main
     # thread only, so that the pool's helper threads and the memory sampler do not count.
     parent = [0.0]
@@ -307,20 +326,46 @@ def bench_mark(profile, work: Path, count: int) -> None:
 
     batch._MarkBatch._prepare = timed(batch._MarkBatch._prepare)
     batch._MarkBatch._finish = timed(batch._MarkBatch._finish)
-    for workers in (1, 2):
+    # CPU used inside the workers, to tell work done from CPU time obtained.
+    global _ORIGINAL_MARK_TASK
+    _ORIGINAL_MARK_TASK = batch.mark_task
+    batch.mark_task = timed_mark_task
+    task_cpu: list[float] = []
+    finish = batch._MarkBatch._finish
+
+    def record(self, job, value):
+        task_cpu.append(value.get("_cpu", float("nan")))
+        return finish(self, job, value)
+
+    batch._MarkBatch._finish = record
+    share = {1: 0.0, 2: 0.0}
+    cpu_in_task = {1: float("inf"), 2: float("inf")}
+    # 1, 2, 1, 2 workers, the best time of each kept: other work on the machine can only
+    # slow a run down, so the fastest run is the least disturbed one.
+    times = {1: float("inf"), 2: float("inf")}
+    peaks = {1: (0.0, 0.0), 2: (0.0, 0.0)}
+    cpu_per_file = parent_cpu = float("inf")
+    for run, workers in enumerate((1, 2) * rounds):
         parent[0] = 0.0
-        out = work / f"mark12-out-{workers}"
-        # A fresh profile per run: the second run must not skip what the first marked.
-        with fresh_profile(work / f"home-mark-{workers}") as prof, TreeMemory() as mem, quiet():
+        task_cpu.clear()
+        out = work / f"mark12-out-{run}"
+        # A fresh profile per run: a run must not skip what the one before marked.
+        with fresh_profile(work / f"home-mark-{run}") as prof, TreeMemory() as mem, quiet():
             t, cpu = time.perf_counter(), time.process_time()
             code = batch.mark_many(prof, [folder], out, workers=workers)
-            times[workers] = time.perf_counter() - t
+            wall = time.perf_counter() - t
+            if wall < times[workers]:
+                times[workers] = wall
+                share[workers] = sum(task_cpu) / wall
+                cpu_in_task[workers] = sum(task_cpu) / len(task_cpu)
             if workers == 1:
-                cpu_per_file = (time.process_time() - cpu) / count
+                cpu_per_file = min(cpu_per_file, (time.process_time() - cpu) / count)
             else:
-                parent_cpu = parent[0] / count
-        peaks[workers] = (mem.peak / 2**20, mem.bound / 2**20)
+                parent_cpu = min(parent_cpu, parent[0] / count)
+        peaks[workers] = (max(peaks[workers][0], mem.peak / 2**20),
+                          max(peaks[workers][1], mem.bound / 2**20))
         assert code == 0, f"batch mark failed with exit {code}"
+        shutil.rmtree(out)
     per_file = times[1] / count
     line("Pillow decode + encode (q95, 4:4:4), per file", f"{t_de:.2f} s")
     line("batch mark, 1 worker (in process), per file", f"{per_file:.2f} s")
@@ -330,6 +375,10 @@ def bench_mark(profile, work: Path, count: int) -> None:
     line("  the parent's own CPU per file (hash, register, rename)", f"{parent_cpu:.3f} s")
     line("speed-up, 2 workers over 1", f"{times[1] / times[2]:.2f}x",
          f"target >= {TARGET_SPEEDUP}x")
+    line("  CPU seconds per file inside the task, 1 / 2 workers",
+         f"{cpu_in_task[1]:.2f} / {cpu_in_task[2]:.2f}", "equal: no extra work in parallel")
+    line("  cores the tasks actually got, 1 / 2 workers", f"{share[1]:.2f} / {share[2]:.2f}",
+         "2 workers on an idle machine: close to 2")
     line("peak memory of the process tree, 1 worker (sampled)", f"{peaks[1][0]:.0f} MB")
     line("peak memory of the process tree, 2 workers (sampled)", f"{peaks[2][0]:.0f} MB",
          f"target < {TARGET_PEAK_MB} MB")
@@ -419,8 +468,8 @@ def fresh_profile(home: Path):
 
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    ap.add_argument("--count12", type=int, default=8,
-                    help="12-MP files in the batch-mark test (issue 6 names 200; default 8)")
+    ap.add_argument("--count12", type=int, default=16,
+                    help="12-MP files in the batch-mark test (issue 6 names 200; default 16)")
     ap.add_argument("--scan-count", type=int, default=48, help="web-size files to scan")
     ap.add_argument("--quick", action="store_true", help="small counts, sizes up to 12 MP")
     ap.add_argument("--growth-child", nargs=2, metavar=("FILE", "HOME"), help=argparse.SUPPRESS)
