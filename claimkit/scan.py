@@ -161,8 +161,7 @@ def _csv_row(rep: dict) -> dict:
     shift = geom.get("shift_px") or [None, None]
     return {
         "file": rep.get("file"),
-        "status": "unreadable" if "error" in rep else ("claimed" if rep.get("detected")
-                                                       else "not found"),
+        "status": rep.get("status"),
         "detected": rep.get("detected"), "work_id": rep.get("work_id"),
         "registered": rep.get("registered"),
         "false_alarm_probability": rep.get("false_alarm_probability"),
@@ -229,9 +228,10 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
     folders : list of Path
         Folders (walked recursively) or single files.
     json_lines : bool
-        One JSON object per file on stdout, in a stable order (the
-        ``examine --json`` fields, plus ``error`` for an unreadable file);
-        the summary goes to stderr as a JSON object with ``"summary": true``.
+        One JSON object per file on stdout, in a stable order: the
+        ``examine --json`` fields plus ``status`` (``claimed``, ``not found``
+        or ``unreadable``, the last with ``error``); the summary goes to
+        stderr as a JSON object with ``"summary": true``.
     report : Path, optional
         Also write a CSV with one row per file (columns :data:`CSV_COLUMNS`).
     case_dir : Path, optional
@@ -282,6 +282,7 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
         rep = o.value if o.error is None else {"file": str(path), "error": f"{path}: {o.error}"}
         if "error" in rep:
             rep["error"] = remote_path_hint(eng, path, rep["error"])
+            rep.update(status="unreadable", detected=None, work_id=None)
             s.unreadable.append(rep["error"])
         else:
             s.read += 1
@@ -298,6 +299,8 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
                     if ex:
                         rep["exhibit_id"] = ex
                         s.added_to_case += 1
+        if "status" not in rep:
+            rep["status"] = "claimed" if rep.get("detected") else "not found"
         if csv_out is not None:
             csv_out.add(rep)
         if json_lines:

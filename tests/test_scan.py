@@ -74,6 +74,7 @@ def test_scan_claims_the_marked_copies_and_names_their_works(profile, finds, tmp
         assert set(by[name]["geometry"]) >= {"rotation_deg", "scale", "flipped", "shift_px"}
     assert by["cat.jpg"]["detected"] is False and by["cat.jpg"]["work_id"] is None
     assert "broken.jpg" in by["broken.jpg"]["error"]
+    assert [by[n]["status"] for n in names] == ["not found", "claimed", "unreadable", "claimed"]
     summary = json.loads(err.strip().splitlines()[0])
     assert summary["summary"] and summary["files_read"] == 3 and summary["claimed"] == 2
     assert summary["unreadable"] == 1 and summary["passed_over"] == 1    # page.html
