@@ -66,7 +66,7 @@ from scipy import ndimage
 
 ACF_WINDOW = 1024          # largest side of the central window whose autocorrelation is taken
 LAG_MAX = 512              # largest lag used (the zero padding is this wide)
-SCALE_RANGE = (0.45, 2.2)  # copy/original scale the search covers (0.5x..2x with margin)
+SCALE_RANGE = (0.45, 2.8)  # copy/original scale the search covers (0.5x..2x, and a 400 px photo posted 1080 wide)
 ASPECT_RANGE = 0.1         # aspect changes along the picture's axes: up to +-10 %
 LATTICE_CANDIDATES = 2     # fixed number of lattice hypotheses (counted in the statistics)
 MAX_CANON_PIXELS = 6_000_000
@@ -80,12 +80,13 @@ FINE_BLUR = 0.7            # smoothing for refinement and final scores (pixels)
 # Similarities get a fine grid over many lattice points; squeezed copies a
 # coarser one (2 % aspect steps) over the nearer points, where a 1 % aspect
 # error still moves a point by less than the smoothing.
-COARSE_LAG = 320           # largest lag of the coarse grids
+COARSE_LAG = 420           # largest lag of the coarse grids
 SIMILARITY_GRID = (COARSE_LAG, 0.004, (1.0,), 6)
 ASPECT_GRID = (192, 0.008, tuple(float(a) for a in np.arange(0.90, 1.105, 0.02) if abs(a - 1) > 0.01), 3)
 REFINE_RADII = (200, 360, LAG_MAX)   # growing radii of the refinement passes
 CLEAR_SCORE = 15.0         # a lattice scoring this much stands out clearly from noise (~5 at most)
 RUNNER_UP = 0.25           # ... and then lattices below this fraction of it are not resampled
+DEN_STEP = 8               # angle subsampling of the coarse scores' variance
 MIN_SUPPORT = 0.25         # least summed squared weight of a coarse hypothesis
 
 
@@ -176,9 +177,8 @@ def lag_map(x: np.ndarray, *, window: int = ACF_WINDOW, lag_max: int = LAG_MAX,
     flat *= np.exp(g * fx * fx)[None, :]
     acf = sfft.irfft2(flat, s=(fh, fw), workers=workers)
     # Keep lags -lag..lag in both directions, lag zero at the centre.
-    idx_r = np.arange(-lag, lag + 1) % fh
-    idx_c = np.arange(-lag, lag + 1) % fw
-    a = acf[np.ix_(idx_r, idx_c)].astype(np.float32)
+    rows = np.concatenate([acf[fh - lag:], acf[:lag + 1]], axis=0)
+    a = np.concatenate([rows[:, fw - lag:], rows[:, :lag + 1]], axis=1).astype(np.float32, copy=False)
     # The raw autocorrelation at lag L sums over the overlap of the window with
     # its shifted self: signal grows with the overlap, noise with its square root.
     d = np.arange(-lag, lag + 1, dtype=np.float32)
@@ -283,9 +283,12 @@ def _coarse(acf: _Acf, tile: int, grid) -> list[tuple[float, np.ndarray]]:
         g = g.reshape(n_rho, n_phi)
         # The variance of each score (sum of squared weights) on the same grid,
         # so that hypotheses with few or short-overlap points are not favoured.
-        g2 = acf.overlap(coords1[0] - cc, coords1[1] - cc) + acf.overlap(coords2[0] - cc, coords2[1] - cc)
+        # It varies slowly with the angle: every DEN_STEP-th angle is enough.
+        c1, c2 = coords1[:, :, ::DEN_STEP], coords2[:, :, ::DEN_STEP]
+        g2 = acf.overlap(c1[0] - cc, c1[1] - cc) + acf.overlap(c2[0] - cc, c2[1] - cc)
+        n_sub = g2.shape[1]
         num = np.zeros((k_hi - k_lo + 1, n_phi))
-        den = np.zeros((k_hi - k_lo + 1, n_phi))
+        den = np.zeros((k_hi - k_lo + 1, n_sub))
         ks = np.arange(k_lo, k_hi + 1)
         for sr, sp_ in zip(sh_rho, sh_phi):
             rows = ks + sr
@@ -293,8 +296,9 @@ def _coarse(acf: _Acf, tile: int, grid) -> list[tuple[float, np.ndarray]]:
             if not ok.any():
                 continue
             num[ok] += np.roll(g[rows[ok]], -sp_, axis=1)
-            den[ok] += np.roll(g2[rows[ok]], -sp_, axis=1)
+            den[ok] += np.roll(g2[rows[ok]], -round(sp_ / DEN_STEP), axis=1)
         # Hypotheses with almost no lags inside the window say nothing.
+        den = np.repeat(den, DEN_STEP, axis=1)[:, :n_phi]
         score = np.where(den >= MIN_SUPPORT, num / np.sqrt(np.maximum(den, 1e-12)), 0.0)
         # Local maxima of the score surface (angle is circular).
         mx = ndimage.maximum_filter(score, size=(7, 7), mode=("nearest", "wrap"))
@@ -478,11 +482,18 @@ def find_lattices(x: np.ndarray, tile: int, *, workers: int = 1,
     r_min = SCALE_RANGE[0] * tile * (1 - ASPECT_RANGE) * 0.9
     rough: list[Lattice] = []
     for _, basis in _coarse(acf, tile, SIMILARITY_GRID) + _coarse(acf, tile, ASPECT_GRID):
-        refined, inliers = _refine(acf, _widen(acf, basis, r_min), r_min)
-        refined = _reduce(refined)
-        if _plausible(refined, tile):
-            score, points = lattice_score(acf, refined, r_min, acf.c)
-            rough.append(Lattice(basis=refined, score=score, inliers=inliers, points=points))
+        # Where the lattice is faint the wide search can land on noise: refine
+        # both starting points and keep the one whose lattice scores better.
+        best = None
+        for start in (basis, _widen(acf, basis, r_min)):
+            refined, inliers = _refine(acf, start, r_min)
+            refined = _reduce(refined)
+            if _plausible(refined, tile):
+                score, points = lattice_score(acf, refined, r_min, acf.c)
+                if best is None or score > best.score:
+                    best = Lattice(basis=refined, score=score, inliers=inliers, points=points)
+        if best is not None:
+            rough.append(best)
     return _worth_trying(_distinct(rough), x.shape, tile)[:candidates]
 
 
