@@ -26,7 +26,7 @@ import numpy as np
 
 from claimkit.errors import InputError
 
-__all__ = ["run_demo", "load_scenario", "make_test_tsa", "SCENARIO"]
+__all__ = ["SCENARIO", "load_scenario", "make_test_tsa", "run_demo"]
 
 SCENARIO_FILE = Path(__file__).resolve().parent.parent / "sample_case" / "scenario.json"
 
@@ -124,7 +124,7 @@ def make_test_tsa(folder: Path, name: str) -> Callable[[bytes], bytes]:
     return reply
 
 
-def _picture(name: str, upscale: int) -> np.ndarray:
+def _picture(name: str, upscale: float) -> np.ndarray:
     from skimage import data
     from skimage.transform import rescale
 
@@ -174,6 +174,8 @@ def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None =
     robustness : bool
         Run the robustness battery on the published file (the dossier's table).
     """
+    from PIL import Image
+
     from claimkit.case.bundle import export_bundle
     from claimkit.case.examine import examine_case
     from claimkit.case.store import add_exhibit, new_case
@@ -181,7 +183,6 @@ def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None =
     from claimkit.dossier.build import build_report
     from claimkit.evidence.profile import Profile
     from claimkit.workflow import mark_file
-    from PIL import Image
 
     say = echo or (lambda s: None)
     sc = scenario or load_scenario()
@@ -201,7 +202,7 @@ def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None =
     profile = Profile.create(home, sc["photographer"], sc["passphrase"].encode())
     say(f"1. profile for {profile.owner} in {home} (demo passphrase: {sc['passphrase']})")
     try:
-        pixels = _picture(sc["work"]["picture"], int(sc["work"]["upscale"]))
+        pixels = _picture(sc["work"]["picture"], float(sc["work"]["upscale"]))
         original = studio / sc["work"]["original_name"]
         Image.fromarray(pixels).save(original, format="PNG")
         published = studio / sc["work"]["published_name"]

@@ -25,7 +25,7 @@ def test_demo_runs_end_to_end(tmp_path, monkeypatch):
         pytest.skip("openssl command not installed")
     monkeypatch.setenv("CLAIMKIT_TEST_FAST_KDF", "1")
     sc = copy.deepcopy(SCENARIO)
-    sc["work"]["upscale"] = 2          # the real demo uses 3; the steps are the same
+    sc["work"]["upscale"] = 1.5        # the real demo uses 3; the steps are the same
     lines: list[str] = []
     out = run_demo(tmp_path / "demo", echo=lines.append, scenario=sc, decoys=8,
                    robustness=False)   # the battery itself is covered by the case tests
