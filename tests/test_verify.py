@@ -242,6 +242,25 @@ def test_folder_with_a_link_out_is_refused(built_case, tmp_path):
     assert not rep.ok and "symbolic link" in _failed(rep)
 
 
+@pytest.mark.parametrize("target, field, value", [
+    ("findings/E01.json", "arrays", {"file": "../../outside.npz", "sha256": "0" * 64}),
+    ("findings/E01.json", "reference", {"file": "/etc/hostname", "kind": "marked",
+                                         "sha256": "0" * 64}),
+    ("exhibits/E01.json", "file", "exhibits/../../../etc/hostname"),
+    ("exhibits/E01.json", "exhibit_id", "../E01"),
+])
+def test_paths_named_inside_records_are_not_followed(built_case, tmp_path, target, field, value):
+    work = _unpack(built_case.bundle, tmp_path / "w")
+    p = work / target
+    d = json.loads(p.read_bytes())
+    d[field] = value
+    p.write_bytes(canonical_json(d) + b"\n")
+    _resign(work, built_case.home)         # even a re-signed bundle may not point outside
+    rep = verify_bundle(work)
+    names = [c["check"] for c in rep.failures]
+    assert names == ["paths in the bundle"], _failed(rep)
+
+
 def test_not_a_zip_is_bad_input(tmp_path, capsys):
     p = tmp_path / "bundle.zip"
     p.write_bytes(b"not a zip")

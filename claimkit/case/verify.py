@@ -151,6 +151,67 @@ def _folder_files(root: Path) -> list[str]:
     return sorted(out)
 
 
+def _inside(root: Path, rel, folder: str) -> str | None:
+    """Why a path named inside a bundle file is unsafe, or None when it is fine."""
+    if not isinstance(rel, str):
+        return f"{rel!r} is not a path"
+    why = _unsafe_name(rel)
+    if why:
+        return f"{rel!r} {why}"
+    if not rel.startswith(folder + "/"):
+        return f"{rel!r} is outside {folder}/"
+    p = root / rel
+    if p.is_symlink():
+        return f"{rel!r} is a symbolic link"
+    try:
+        p.resolve().relative_to(root.resolve())
+    except ValueError:
+        return f"{rel!r} leads out of the bundle"
+    return None
+
+
+def _path_audit(root: Path, exhibits: list[dict], findings: dict) -> list[str]:
+    """Every path that a JSON file of the bundle names, checked before anything is read."""
+    import re
+
+    bad = []
+    for ex in exhibits:
+        i = ex.get("exhibit_id")
+        if not isinstance(i, str) or not re.fullmatch(r"E\d{2,6}", i):
+            bad.append(f"intake record names the exhibit {i!r}")
+            continue
+        why = _inside(root, ex.get("file"), "exhibits")
+        if why:
+            bad.append(f"{i}: intake record path {why}")
+        f = findings.get(i)
+        if f is None:
+            continue
+        why = _inside(root, (f.get("arrays") or {}).get("file"), "findings")
+        if why:
+            bad.append(f"{i}: finding arrays path {why}")
+        if f.get("reference"):
+            why = _inside(root, f["reference"].get("file"), "references")
+            if why:
+                bad.append(f"{i}: finding reference path {why}")
+    from claimkit.dossier.data import DISCLOSURES
+
+    folder = root / DISCLOSURES
+    if folder.is_dir():
+        for d in sorted(folder.iterdir()):
+            try:
+                doc = json.loads((d / "disclosure.json").read_bytes())
+                stamps = doc.get("timestamps", [])
+            except (OSError, ValueError, AttributeError):
+                continue
+            for st in stamps if isinstance(stamps, list) else []:
+                for key in ("token_file", "tsa_cert_file"):
+                    rel = st.get(key) if isinstance(st, dict) else None
+                    why = _inside(d, rel, "timestamps") if rel is not None else None
+                    if why:
+                        bad.append(f"{d.name}: disclosure {key} {why}")
+    return bad
+
+
 # ---------------------------------------------------------------- comparisons
 
 def _close(a, b, path: str = "") -> list[str]:
@@ -538,6 +599,11 @@ def verify_bundle(path: str | os.PathLike, *, rerun: bool = True,
             case, exhibits, findings = case_files(root)
         except (InputError, KeyError, ValueError) as exc:
             rep.add("case files", False, str(exc))
+            return rep
+        unsafe = _path_audit(root, exhibits, findings)
+        rep.add("paths in the bundle", not unsafe, "; ".join(unsafe) if unsafe else
+                "every path named in the bundle's records stays inside it")
+        if unsafe:
             return rep
         owner_fp = case.get("owner", {}).get("public_key_sha256")
         rep.add("case key", owner_fp == fp, "case.json names the bundle's key" if owner_fp == fp

@@ -11,6 +11,7 @@ then it re-runs each examination and compares the findings.
 from __future__ import annotations
 
 import json
+import re
 from pathlib import Path
 
 from claimkit import __version__
@@ -32,6 +33,7 @@ __all__ = [
 ]
 
 DOSSIER_TYPE = "claimkit/dossier/v1"
+_EXHIBIT_ID = re.compile(r"E\d{2,6}")
 HANDOVER = "handover"
 CUSTODY_COPY = f"{HANDOVER}/custody.jsonl"
 PUBLIC_KEY = f"{HANDOVER}/public-key.pem"
@@ -78,10 +80,18 @@ def case_files(root: Path) -> tuple[dict, list[dict], dict[str, dict]]:
     exhibits = []
     for p in sorted((root / "exhibits").glob("E[0-9]*.json")):
         exhibits.append(json.loads(p.read_bytes()))
-    exhibits.sort(key=lambda r: int(r["exhibit_id"][1:]))
+    def order(r: dict):
+        i = r.get("exhibit_id")
+        ok = isinstance(i, str) and _EXHIBIT_ID.fullmatch(i)
+        return (0, int(i[1:]), "") if ok else (1, 0, str(i))
+
+    exhibits.sort(key=order)
     findings = {}
     for ex in exhibits:
-        p = root / "findings" / f"{ex['exhibit_id']}.json"
+        i = ex.get("exhibit_id")
+        if not (isinstance(i, str) and _EXHIBIT_ID.fullmatch(i)):
+            continue     # never used to build a path; verify names it
+        p = root / "findings" / f"{i}.json"
         if p.is_file():
             findings[ex["exhibit_id"]] = json.loads(p.read_bytes())
     return case, exhibits, findings
