@@ -198,3 +198,30 @@ def test_examine_json_lines(built_case, monkeypatch, capsys, tmp_path):
     for r in rows:
         assert set(r) >= {"file", "detected", "false_alarm_probability", "work_id",
                           "message_psnr_db", "geometry"}
+
+
+def test_unmarked_copy_of_the_original_is_matched_by_appearance_only(built_case, tmp_path):
+    """A copy of the unmarked original carries no mark: matched by fingerprint, never claimed."""
+    from test_case_fixtures import PASS
+
+    from claimkit.case.examine import examine_case
+    from claimkit.evidence.profile import Profile
+
+    leak = tmp_path / "leaked-original.jpg"
+    with Image.open(built_case.studio / "morning-cup.png") as im:
+        im.resize((im.width // 2, im.height // 2), Image.Resampling.LANCZOS).save(leak, quality=85)
+    with Profile.open(built_case.home, PASS.encode()) as p:
+        case = new_case(tmp_path / "case", "Leak", p)
+        add_exhibit(case, leak, source="a printed flyer, scanned", profile=p)
+        (f,) = examine_case(case, p, decoys=4, search=[built_case.studio], robustness=False)
+    assert not f["result"]["detected"]
+    assert f["match"]["by"] == "perceptual fingerprint"
+    assert f["match"]["work_id"] == built_case.work_id
+    al = f["alignment"]
+    # No mark geometry: the assumed scales are tried and the half size is found.
+    assert al["aligned"] and al["scale"] == pytest.approx(0.5, abs=0.01) and al["ssim"] > 0.9
+    from claimkit.dossier.data import build_data
+    from claimkit.dossier.render import render_markup
+
+    text = " ".join(render_markup(build_data(tmp_path / "case")).split())
+    assert "which is a resemblance, not proof of origin" in text

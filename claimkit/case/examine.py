@@ -86,7 +86,11 @@ def _match_work(profile, rep: dict, luma: np.ndarray) -> dict | None:
     fp = _fingerprint(luma)
     if fp is None:
         return None
-    hits = profile.works_by_fingerprint(fp, int(len(fp) * 4 * FINGERPRINT_FRACTION))
+    try:
+        from claimkit.mark.fingerprint import MATCH_DISTANCE as limit
+    except ImportError:
+        limit = int(len(fp) * 4 * FINGERPRINT_FRACTION)
+    hits = profile.works_by_fingerprint(fp, limit)
     if not hits:
         return None
     work, dist = hits[0]
