@@ -31,11 +31,15 @@ So instead of picking peaks we score whole lattice hypotheses:
    them by weighted least squares, widening the radius as the estimate
    sharpens, so that the far lattice points, which fix the basis most
    precisely, are used last. Lattices that are aliases of a better one (every
-   other point, or points halfway between) are dropped.
+   other point, or points halfway between) are dropped, and so are lattices
+   not worth resampling (the original grid itself, which the detector's
+   unwarped hypothesis covers exactly, and runners-up far weaker than a
+   clear winner).
 
-The key is never used here, and the number of hypotheses handed to the
-detector is fixed in advance, so the statistics of :mod:`claimkit.mark.stats`
-stay valid whatever the search finds. The eight symmetries of the square
+The key is never used here, and the number of hypotheses the detector counts
+is fixed in advance (at most ``LATTICE_CANDIDATES`` lattices, counted whether
+or not they are found), so the statistics of :mod:`claimkit.mark.stats` stay
+valid whatever the search finds. The eight symmetries of the square
 lattice (quarter turns and mirror) are not estimated: the detector tries all
 eight on the folded tile, where they are exact permutations.
 
@@ -94,10 +98,11 @@ MIN_SUPPORT = 0.25         # least summed squared weight of a coarse hypothesis
 class Lattice:
     """A lattice found in the copy: basis columns in (row, col) pixels and how well it is supported.
 
-    ``score`` is the lattice's summed autocorrelation in standard-normal units
-    (about 0 for a picture without the mark, more than about 6 when the
-    lattice is clearly present); ``inliers`` counts the lattice points whose
-    own peak stands out.
+    ``score`` is the lattice's weighted sum of autocorrelation in
+    standard-normal units: about 0 for a lattice that is not there, up to
+    about 5 for the best of the search's many hypotheses on a picture
+    without the mark, tens to hundreds when the mark is plainly present.
+    ``inliers`` counts the lattice points whose own peak stands out.
     """
 
     basis: np.ndarray   # 2x2, columns are the two basis vectors
