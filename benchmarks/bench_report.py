@@ -19,18 +19,18 @@ from pathlib import Path
 
 os.environ.setdefault("CLAIMKIT_TEST_FAST_KDF", "1")   # key derivation is not what is measured
 
-import numpy as np  # noqa: E402
-from PIL import Image  # noqa: E402
-from skimage import data  # noqa: E402
+import numpy as np
+from PIL import Image
+from skimage import data
 
-from claimkit.case.bundle import export_bundle  # noqa: E402
-from claimkit.case.examine import examine_case  # noqa: E402
-from claimkit.case.store import add_exhibit, new_case  # noqa: E402
-from claimkit.case.verify import verify_bundle  # noqa: E402
-from claimkit.demo import make_copy  # noqa: E402
-from claimkit.dossier.build import build_report  # noqa: E402
-from claimkit.evidence.profile import Profile  # noqa: E402
-from claimkit.workflow import mark_file  # noqa: E402
+from claimkit.case.bundle import export_bundle
+from claimkit.case.examine import examine_case
+from claimkit.case.store import add_exhibit, new_case
+from claimkit.case.verify import verify_bundle
+from claimkit.demo import make_copy
+from claimkit.dossier.build import build_report
+from claimkit.evidence.profile import Profile
+from claimkit.workflow import mark_file
 
 REPORT_TARGET_S = 30.0
 
