@@ -189,3 +189,21 @@ def test_console_script_runs(profile_home):
     proc = subprocess.run([sys.executable, "-m", "claimkit", "works"], capture_output=True,
                           text=True, check=False)
     assert proc.returncode == 0, proc.stderr
+
+
+def test_disclosure_check_never_reads_outside_its_folder(profile_home, local_tsa, tmp_path, capsys):
+    ids = add_works(profile_home, 1)
+    tsq = tmp_path / "s.tsq"
+    run(capsys, "stamp", "request", "--out", str(tsq))
+    tsr = local_tsa.reply_file(tsq, tmp_path / "s.tsr")
+    run(capsys, "stamp", "attach", str(tsr), "--tsa-cert", str(local_tsa.ca_cert))
+    out_dir = tmp_path / "for-expert"
+    assert run(capsys, "disclose", ids[0], "--out", str(out_dir))[0] == 0
+    outside = tmp_path / "outside.tsr"
+    outside.write_bytes(b"not for reading")
+    doc = json.loads((out_dir / "disclosure.json").read_bytes())
+    doc["timestamps"][0]["token_file"] = "../outside.tsr"
+    (out_dir / "disclosure.json").write_text(json.dumps(doc))
+    check = check_disclosure(out_dir)
+    assert not check.ok
+    assert any("outside the disclosure folder" in p for p in check.problems)

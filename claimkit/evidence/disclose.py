@@ -202,6 +202,15 @@ class DisclosureCheck:
         return not self.problems
 
 
+def _inside(folder: Path, name: str) -> Path:
+    """A file named by the disclosure, refused unless it lies inside the folder (no links out)."""
+    path = (folder / name)
+    base = folder.resolve()
+    if path.is_symlink() or not path.resolve().is_relative_to(base):
+        raise ValueError(f"{name} points outside the disclosure folder")
+    return path
+
+
 def check_disclosure(folder: Path) -> DisclosureCheck:
     """Re-check a disclosure folder as the other side's expert would, without any secret."""
     folder = Path(folder)
@@ -254,8 +263,8 @@ def check_disclosure(folder: Path) -> DisclosureCheck:
     for st in doc.get("timestamps", []):
         label = st.get("token_id", "token")
         try:
-            token = (folder / st["token_file"]).read_bytes()
-            certs = timestamp.load_certificates((folder / st["tsa_cert_file"]).read_bytes())
+            token = _inside(folder, st["token_file"]).read_bytes()
+            certs = timestamp.load_certificates(_inside(folder, st["tsa_cert_file"]).read_bytes())
             root = bytes.fromhex(st["merkle_root"])
             info = timestamp.check_token(token, digest=root, nonce=int(st["nonce"]), trusted=certs)
             path = [bytes.fromhex(p) for p in st["audit_path"]]

@@ -18,10 +18,10 @@ Steps, for a copy with no original at hand:
 
 References
 ----------
-.. [1] J. Ruanaidh, T. Pun, "Rotation, scale and translation invariant
+.. [1] J. J. K. Ó Ruanaidh, T. Pun, "Rotation, scale and translation invariant
    spread spectrum digital image watermarking", Signal Processing 66(3),
    303-317, 1998. doi:10.1016/S0165-1684(98)00012-7
-.. [2] Q. Chen, J. Defrise, F. Deconinck, "Symmetric phase-only matched
+.. [2] Q. Chen, M. Defrise, F. Deconinck, "Symmetric phase-only matched
    filtering of Fourier-Mellin transforms for image registration and
    recognition", IEEE Trans. PAMI 16(12), 1156-1168, 1994.
    doi:10.1109/34.387491
