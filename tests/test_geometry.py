@@ -86,6 +86,11 @@ CASES = [
     ("skimage rescale 0.5", "hubble", lambda a: skimage_rescale(a, 0.5), true_transform(scale=0.5)),
     ("skimage rescale 1.6", "coffee", lambda a: skimage_rescale(a, 1.6), true_transform(scale=1.6)),
     ("Pillow width x0.9", "hubble", lambda a: resize(a, 0.9, 1.0), true_transform(sx=0.9)),
+    # Squeezed first, turned after: the squeeze is along the original's axes, not the copy's.
+    ("Pillow width x1.07 then rotate 33", "hubble", lambda a: rotate_crop(resize(a, 1.07, 1.0), 33),
+     true_transform(33) @ np.diag([1.0, 1.07])),
+    ("Pillow rotate 20 then height x0.93", "coffee", lambda a: resize(rotate_crop(a, 20), 1.0, 0.93),
+     true_transform(20, sy=0.93)),
     ("Pillow shrink 0.6, rotate 2, JPEG 70", "hubble",
      lambda a: jpeg(rotate_crop(resize(a, 0.6), 2), 70), true_transform(2, 0.6)),
 ]

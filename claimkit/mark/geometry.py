@@ -80,13 +80,15 @@ FLATTEN_WINDOW = 15        # frequencies averaged to estimate the picture's own 
 FLATTEN_CLIP = 6.0         # cap on the flattened power: no single spectral line dominates
 COARSE_BLUR = 1.0          # smoothing of the autocorrelation for the coarse grids (pixels)
 FINE_BLUR = 0.7            # smoothing for refinement and final scores (pixels)
-# Coarse grids: (largest lag used, log-radius and angle step in radians, aspects, kept).
+# Coarse grids: (largest lag used, log-radius and angle step in radians,
+# aspects along the picture's axes, aspects along the original's axes, kept).
 # Similarities get a fine grid over many lattice points; squeezed copies a
-# coarser one (2 % aspect steps) over the nearer points, where a 1 % aspect
-# error still moves a point by less than the smoothing.
+# coarser one over the nearer points (3-4 % steps: the wide search of the
+# refinement takes over from there).
 COARSE_LAG = 420           # largest lag of the coarse grids
-SIMILARITY_GRID = (COARSE_LAG, 0.004, (1.0,), 6)
-ASPECT_GRID = (192, 0.008, tuple(float(a) for a in np.arange(0.90, 1.105, 0.02) if abs(a - 1) > 0.01), 3)
+SIMILARITY_GRID = (COARSE_LAG, 0.004, (1.0,), (), 6)
+ASPECT_GRID = (192, 0.008, (0.90, 0.93, 0.96, 1 / 0.96, 1 / 0.93, 1 / 0.90),
+               (0.92, 0.96, 1 / 0.96, 1 / 0.92), 4)
 REFINE_RADII = (200, 360, LAG_MAX)   # growing radii of the refinement passes
 CLEAR_SCORE = 15.0         # a lattice scoring this much stands out clearly from noise (~5 at most)
 RUNNER_UP = 0.25           # ... and then lattices below this fraction of it are not resampled
@@ -255,8 +257,15 @@ def _comb(max_norm: float) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _coarse(acf: _Acf, tile: int, grid) -> list[tuple[float, np.ndarray]]:
-    """Score a log-polar grid of (scale, angle, aspect) hypotheses; return the best few."""
-    radius, d, aspects, keep = grid
+    """Score a log-polar grid of (scale, angle, aspect) hypotheses; return the best few.
+
+    ``grid`` is (largest lag, step, picture aspects, lattice aspects, kept).
+    A *picture* aspect squeezes the copy along its own axes after any turn
+    (the lags are resampled for it); a *lattice* aspect squeezes it along the
+    original's axes before the turn (the same samples serve, with a
+    rectangular comb).
+    """
+    radius, d, aspects, lattice_aspects, keep = grid
     lo, hi = SCALE_RANGE
     r_lo = lo * tile * (1 - ASPECT_RANGE)
     r_hi = min(radius, acf.cc - 6)
@@ -269,62 +278,96 @@ def _coarse(acf: _Acf, tile: int, grid) -> list[tuple[float, np.ndarray]]:
     phi = dphi * np.arange(n_phi)
     rr = np.exp(rho)[:, None]
     cc = acf.cc
-    log_n, arg_n = _comb(r_hi / (lo * tile * (1 - ASPECT_RANGE)))
-    sh_rho = np.rint(log_n / d).astype(int)
-    sh_phi = np.rint(arg_n / dphi).astype(int)
-    # Scale index k: log s = rho[k] - log(tile), so lattice point n sits at row k + sh_rho.
+    max_norm = r_hi / (lo * tile * (1 - ASPECT_RANGE))
+    # Scale index k: log s = rho[k] - log(tile), so lattice point n sits at row k + log|n| / d.
     k_lo = int(np.ceil((np.log(lo * tile) - rho[0]) / d))
     k_hi = min(n_rho - 1, int(np.floor((np.log(hi * tile) - rho[0]) / d)))
     if k_hi < k_lo:
         return []
+    ks = np.arange(k_lo, k_hi + 1)
+    sp, cp = np.sin(phi)[None, :], np.cos(phi)[None, :]
     best = []
-    for a in aspects:
-        # Sample at lag (row, col) = (r sin phi, a r cos phi); both quarter-turn copies summed.
-        sp, cp = np.sin(phi)[None, :], np.cos(phi)[None, :]
+
+    def sample(a):
+        # Lags (row, col) = (r sin phi, a r cos phi) and their quarter turns:
+        # scores, and the variance of each score (its summed squared weights;
+        # it varies slowly with the angle, so every DEN_STEP-th angle is enough).
         coords1 = np.stack([cc + rr * sp, cc + a * rr * cp])
         coords2 = np.stack([cc + rr * cp, cc - a * rr * sp])
-        g = (ndimage.map_coordinates(acf.coarse, coords1.reshape(2, -1), order=1)
-             + ndimage.map_coordinates(acf.coarse, coords2.reshape(2, -1), order=1))
-        g = g.reshape(n_rho, n_phi)
-        # The variance of each score (sum of squared weights) on the same grid,
-        # so that hypotheses with few or short-overlap points are not favoured.
-        # It varies slowly with the angle: every DEN_STEP-th angle is enough.
+        g1 = ndimage.map_coordinates(acf.coarse, coords1.reshape(2, -1), order=1).reshape(n_rho, n_phi)
+        g2 = ndimage.map_coordinates(acf.coarse, coords2.reshape(2, -1), order=1).reshape(n_rho, n_phi)
         c1, c2 = coords1[:, :, ::DEN_STEP], coords2[:, :, ::DEN_STEP]
-        g2 = acf.overlap(c1[0] - cc, c1[1] - cc) + acf.overlap(c2[0] - cc, c2[1] - cc)
-        n_sub = g2.shape[1]
-        num = np.zeros((k_hi - k_lo + 1, n_phi))
-        den = np.zeros((k_hi - k_lo + 1, n_sub))
-        ks = np.arange(k_lo, k_hi + 1)
-        for sr, sp_ in zip(sh_rho, sh_phi):
-            rows = ks + sr
+        return g1, g2, acf.overlap(c1[0] - cc, c1[1] - cc), acf.overlap(c2[0] - cc, c2[1] - cc)
+
+    def peaks(score, a, lattice_aspect):
+        # Hypotheses with almost no lags inside the window say nothing; keep
+        # the local maxima of the score surface (the angle is circular).
+        mx = ndimage.maximum_filter(score, size=(7, 7), mode=("nearest", "wrap"))
+        where = np.argwhere((score == mx) & (score > 0))
+        vals = score[where[:, 0], where[:, 1]]
+        for i in np.argsort(vals)[::-1][:keep]:
+            ki, pj = where[i]
+            period = np.exp(rho[ki + k_lo])
+            best.append((float(vals[i]), _basis(period, phi[pj], a, lattice_aspect)))
+
+    def comb_sum(g, v, log_n, arg_n, period):
+        """Sum of shifted rows and columns of ``g`` (scores) and ``v`` (variances) over a comb."""
+        num = np.zeros((ks.size, g.shape[1]))
+        den = np.zeros((ks.size, v.shape[1]))
+        for lr, ar in zip(log_n, arg_n):
+            rows = ks + int(np.rint(lr / d))
             ok = rows < n_rho
             if not ok.any():
                 continue
-            num[ok] += np.roll(g[rows[ok]], -sp_, axis=1)
-            den[ok] += np.roll(g2[rows[ok]], -round(sp_ / DEN_STEP), axis=1)
-        # Hypotheses with almost no lags inside the window say nothing.
-        den = np.repeat(den, DEN_STEP, axis=1)[:, :n_phi]
-        score = np.where(den >= MIN_SUPPORT, num / np.sqrt(np.maximum(den, 1e-12)), 0.0)
-        # Local maxima of the score surface (angle is circular).
-        mx = ndimage.maximum_filter(score, size=(7, 7), mode=("nearest", "wrap"))
-        peaks = np.argwhere((score == mx) & (score > 0))
-        vals = score[peaks[:, 0], peaks[:, 1]]
-        order = np.argsort(vals)[::-1][:keep]
-        for (ki, pj), v in zip(peaks[order], vals[order]):
-            s = np.exp(rho[ki + k_lo]) / tile
-            theta = phi[pj]
-            best.append((float(v), _basis(s * tile, theta, a)))
+            shift = int(np.rint(ar / dphi))
+            num[ok] += np.roll(g[rows[ok]], -shift, axis=1)
+            den[ok] += np.roll(v[rows[ok]], -round(shift / DEN_STEP), axis=1)
+        den = np.repeat(den, DEN_STEP, axis=1)[:, :period]
+        score = np.where(den[:, :n_phi] >= MIN_SUPPORT,
+                         num[:, :n_phi] / np.sqrt(np.maximum(den[:, :n_phi], 1e-12)), 0.0)
+        return score
+
+    log_sq, arg_sq = _comb(max_norm)
+    for a in aspects:
+        g1, g2, v1, v2 = sample(a)
+        # Square comb: both quarter-turn copies of a lag are the same lattice point's.
+        peaks(comb_sum(g1 + g2, v1 + v2, log_sq, arg_sq, n_phi), a, 1.0)
+    if lattice_aspects:
+        g1, g2, v1, v2 = sample(1.0)
+        # Directions 0..pi (the lag map is symmetric): a rectangle has no quarter-turn symmetry.
+        g_half, v_half = np.concatenate([g1, g2], axis=1), np.concatenate([v1, v2], axis=1)
+        for b in lattice_aspects:
+            log_n, arg_n = _comb_rect(max_norm, b)
+            peaks(comb_sum(g_half, v_half, log_n, arg_n, 2 * n_phi), 1.0, b)
     best.sort(key=lambda t: -t[0])
     return best[:keep]
 
 
-def _basis(period: float, theta: float, aspect: float) -> np.ndarray:
-    """Basis (columns, (row, col)) of a square lattice turned by theta, columns scaled by aspect."""
+def _comb_rect(max_norm: float, aspect: float) -> tuple[np.ndarray, np.ndarray]:
+    """Points of a rectangular lattice (columns scaled by ``aspect``), one of each +-pair.
+
+    Returns log|n'| and arg n' in [0, pi) for n' = (n_row, aspect n_col).
+    """
+    m = int(np.ceil(max_norm / min(1.0, aspect)))
+    i, j = np.meshgrid(np.arange(-m, m + 1), np.arange(-m, m + 1), indexing="ij")
+    y, x = i.ravel().astype(float), aspect * j.ravel()
+    nrm = np.hypot(y, x)
+    ang = np.arctan2(y, x)
+    keep = (nrm > 0) & (nrm <= max_norm) & (ang >= 0) & (ang < np.pi - 1e-9)
+    return np.log(nrm[keep]), ang[keep]
+
+
+def _basis(period: float, theta: float, aspect: float = 1.0, lattice_aspect: float = 1.0) -> np.ndarray:
+    """Basis of a square lattice: squeezed along its own columns, turned by theta, squeezed along the picture's.
+
+    Columns, in (row, col) pixels: the images of the original's +row step and
+    +col step.
+    """
     c, s = np.cos(theta), np.sin(theta)
-    # Column 0 is the image of the original +col step, column 1 of the +row step.
-    u = np.array([s, aspect * c]) * period
-    v = np.array([c, -aspect * s]) * period
-    return np.stack([v, u], axis=1)
+    squeeze = np.diag([1.0, aspect])
+    col_step = squeeze @ np.array([s, c]) * period * lattice_aspect
+    row_step = squeeze @ np.array([c, -s]) * period
+    return np.stack([row_step, col_step], axis=1)
 
 
 # ---------------------------------------------------------------- refinement and scoring
