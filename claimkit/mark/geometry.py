@@ -177,25 +177,13 @@ def lag_map(x: np.ndarray, *, window: int = ACF_WINDOW, lag_max: int = LAG_MAX,
     flat[0, 0] = 0.0
     # Light smoothing of the lags (so that bilinear sampling between pixels
     # loses little of a one-pixel-wide peak) is free in the frequency domain.
-    fy = np.fft.fftfreq(fh).astype(np.float32)
-    fx = np.fft.rfftfreq(fw).astype(np.float32)
-    g = np.float32(-2.0 * (np.pi * FINE_BLUR) ** 2)
-    flat *= np.exp(g * fy * fy)[:, None]
-    flat *= np.exp(g * fx * fx)[None, :]
+    flat *= _blur_transfer(fh, fw)
     acf = sfft.irfft2(flat, s=(fh, fw), workers=workers)
     # Keep lags -lag..lag in both directions, lag zero at the centre.
     rows = np.concatenate([acf[fh - lag:], acf[:lag + 1]], axis=0)
     a = np.concatenate([rows[:, fw - lag:], rows[:, :lag + 1]], axis=1).astype(np.float32, copy=False)
-    # The raw autocorrelation at lag L sums over the overlap of the window with
-    # its shifted self: signal grows with the overlap, noise with its square root.
-    d = np.arange(-lag, lag + 1, dtype=np.float32)
-    ov_r = np.clip(1.0 - np.abs(d) / sh, 0.0, None)
-    ov_c = np.clip(1.0 - np.abs(d) / sw, 0.0, None)
-    overlap = np.outer(ov_r, ov_c)
-    valid = overlap >= MIN_OVERLAP
-    weight = (np.sqrt(overlap) * valid).astype(np.float32)
-    z = a / np.sqrt(np.maximum(overlap, 1e-6))
-    z[~valid] = 0.0
+    weight, inv_noise, valid = _lag_weights(lag, sh, sw)
+    z = a * inv_noise
     z = _ring_normalise(z, lag, valid)
     zw = z * weight
     cl = min(coarse_lag, lag - 5)
@@ -203,6 +191,39 @@ def lag_map(x: np.ndarray, *, window: int = ACF_WINDOW, lag_max: int = LAG_MAX,
     region = zw[lag - cl - 4:lag + cl + 5, lag - cl - 4:lag + cl + 5]
     coarse = ndimage.gaussian_filter(region, extra)
     return _Acf(z=z, weight=weight, zw=zw, coarse=coarse, c=lag, cc=cl + 4, window=(sh, sw))
+
+
+@lru_cache(maxsize=2)
+def _blur_transfer(fh: int, fw: int) -> np.ndarray:
+    """Transfer function of a Gaussian of ``FINE_BLUR`` pixels on an ``fh x fw`` real-FFT grid."""
+    g = -2.0 * (np.pi * FINE_BLUR) ** 2
+    fy = np.fft.fftfreq(fh)
+    fx = np.fft.rfftfreq(fw)
+    return np.outer(np.exp(g * fy * fy), np.exp(g * fx * fx)).astype(np.float32)
+
+
+@lru_cache(maxsize=2)
+def _lag_weights(lag: int, sh: int, sw: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Weight, inverse noise level and usable mask of each lag, for an ``sh x sw`` window.
+
+    The raw autocorrelation at lag L sums over the overlap of the window with
+    its shifted self: the mark's contribution grows with the overlap, the
+    noise with its square root. Dividing by the square root puts every lag in
+    the same noise units; the expected signal there is then proportional to
+    the square root of the overlap, the weight that makes sums of lags
+    matched filters.
+    """
+    d = np.arange(-lag, lag + 1, dtype=np.float32)
+    ov_r = np.clip(1.0 - np.abs(d) / sh, 0.0, None)
+    ov_c = np.clip(1.0 - np.abs(d) / sw, 0.0, None)
+    overlap = np.outer(ov_r, ov_c)
+    valid = overlap >= MIN_OVERLAP
+    root = np.sqrt(overlap)
+    weight = np.where(valid, root, 0.0).astype(np.float32)
+    inv_noise = np.where(valid, 1.0 / np.maximum(root, 1e-3), 0.0).astype(np.float32)
+    for arr in (weight, inv_noise, valid):
+        arr.setflags(write=False)
+    return weight, inv_noise, valid
 
 
 @lru_cache(maxsize=4)
