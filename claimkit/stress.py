@@ -325,11 +325,19 @@ def run_battery(marked_pixels: np.ndarray, seed: bytes, payload_check, *, quick:
 
 
 def summary(rows: list[dict]) -> dict:
-    """Counts for a one-line verdict."""
-    detected = [r for r in rows if r["detected"] and r["same_payload"] is not False]
-    return {"attacks": len(rows), "detected": len(detected),
+    """Counts for a one-line verdict.
+
+    ``detected`` counts copies found with the payload read from the
+    unattacked picture (or any valid payload when there is no reference);
+    ``other_payload`` those found with a different one; ``missed`` names the
+    copies not found at all.
+    """
+    same = [r for r in rows if r["detected"] and r["same_payload"] is not False]
+    other = [r for r in rows if r["detected"] and r["same_payload"] is False]
+    return {"attacks": len(rows), "detected": len(same),
+            "other_payload": [r["attack"] for r in other],
             "geometry_ok": sum(1 for r in rows if r["geometry_ok"]),
-            "missed": [r["attack"] for r in rows if r not in detected]}
+            "missed": [r["attack"] for r in rows if not r["detected"]]}
 
 
 # ---------------------------------------------------------------- picture of the results

@@ -162,3 +162,11 @@ def test_cli_stress_bad_input(profile_home, tmp_path, capsys):
     Image.fromarray(data.coffee()).save(tmp_path / "c.png")
     assert main(["stress", str(tmp_path / "c.png"), "--plot", str(tmp_path / "p.jpg")]) == 2
     assert ".png" in capsys.readouterr().err
+
+
+def test_summary_separates_other_payloads_from_misses():
+    rows = [{"attack": "none", "detected": True, "same_payload": True, "geometry_ok": True},
+            {"attack": "a", "detected": True, "same_payload": False, "geometry_ok": True},
+            {"attack": "b", "detected": False, "same_payload": None, "geometry_ok": False}]
+    s = stress.summary(rows)
+    assert s == {"attacks": 3, "detected": 1, "other_payload": ["a"], "geometry_ok": 2, "missed": ["b"]}

@@ -69,8 +69,12 @@ def cmd_stress(args) -> int:
                                     threshold=args.threshold))
     if not args.json:
         s = summary(rows)
-        print(f"found in {s['detected']} of {s['attacks']} copies, geometry right in "
-              f"{s['geometry_ok']}" + (f"; not found: {', '.join(s['missed'])}" if s["missed"] else ""))
+        line = f"found in {s['detected']} of {s['attacks']} copies, geometry right in {s['geometry_ok']}"
+        if s["other_payload"]:
+            line += f"; found with a different payload: {', '.join(s['other_payload'])}"
+        if s["missed"]:
+            line += f"; not found: {', '.join(s['missed'])}"
+        print(line)
         if plot is not None:
             print(f"plot written to {plot}")
         print("claimkit gives technical evidence, not legal advice.")
