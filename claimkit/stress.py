@@ -395,12 +395,13 @@ def plot_png(rows: list[dict], *, title: str = "", threshold: float = detect.DEF
         d.line([x, y1 + 2, x, y1 + 6], fill=_FAINT)
         d.text((x - 6, y1 + 8), f"{v:g}" + ("+" if v == PLOT_CAP else ""), fill=_FAINT, font=small)
     d.text((x_thr + 4, y1 + 24), f"threshold {threshold:g}", fill=_INK, font=small)
-    legend = [(_OK, "found, geometry right"), (_WARN, "found, geometry off"), (_MISS, "not found")]
+    legend = [(_OK, "found, geometry right"), (_WARN, "found, geometry off or other payload"),
+              (_MISS, "not found")]
     x = 12
     for colour, text in legend:
         d.rectangle([x, y1 + 46, x + 10, y1 + 56], fill=colour)
         d.text((x + 14, y1 + 44), text, fill=_INK, font=small)
-        x += 170
+        x += 170 if colour != _WARN else 230
     buf = io.BytesIO()
     im.save(buf, "PNG")
     return buf.getvalue()
