@@ -30,6 +30,7 @@ MIN_EXAMINE_SIDE = 64
 def mark_parameters(strength: float) -> dict:
     """The parameters recorded with every work (enough to re-derive the mark from the seed)."""
     return {
+        "format": pattern.MARK_FORMAT,
         "method": "phase-dispersion: random-phase carrier convolved with a spot template, tiled",
         "software": f"claimkit {__version__}",
         "tile_px": pattern.TILE,

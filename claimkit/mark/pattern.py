@@ -26,6 +26,10 @@ import numpy as np
 
 from claimkit.mark import ecc
 
+# The mark's format. Anything that changes what is embedded (tile, spots, code,
+# key expansion) must change this name and keep the old format readable: a
+# copy marked years ago must still be examined the way it was marked.
+MARK_FORMAT = "claimkit-mark/1"
 TILE = 128            # period of the tiled mark, in pixels of the original
 PAYLOAD_BITS = 64     # owner tag (16) + work serial (24) + payload tag (24)
 PILOT_SPOTS = 64      # spots with key-fixed signs, for detection and alignment
