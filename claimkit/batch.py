@@ -47,7 +47,15 @@ from pathlib import Path
 import numpy as np
 
 from claimkit.errors import ClaimkitError, InputError
-from claimkit.runner import Outcome, Progress, StopGuard, make_engine, remote_path_hint, run_ordered
+from claimkit.runner import (
+    Outcome,
+    Progress,
+    StopGuard,
+    make_engine,
+    remote_path_hint,
+    run_ordered,
+    tune_memory,
+)
 
 __all__ = [
     "IMAGE_SUFFIXES",
@@ -184,6 +192,7 @@ def mark_task(src: str, staged: str, seed: bytes, bits: list[int], strength: flo
     from claimkit.mark import embed, quality
     from claimkit.mark.fingerprint import perceptual_fingerprint
 
+    tune_memory()
     src_p, staged_p = Path(src), Path(staged)
     try:
         pic = read_picture(src_p, max_pixels=max_pixels)

@@ -37,7 +37,15 @@ from pathlib import Path
 
 from claimkit.batch import IMAGE_SUFFIXES, find_images
 from claimkit.errors import ClaimkitError, InputError
-from claimkit.runner import Outcome, Progress, StopGuard, make_engine, remote_path_hint, run_ordered
+from claimkit.runner import (
+    Outcome,
+    Progress,
+    StopGuard,
+    make_engine,
+    remote_path_hint,
+    run_ordered,
+    tune_memory,
+)
 
 __all__ = ["CSV_COLUMNS", "PayloadChecker", "ScanSummary", "scan_folders", "scan_task"]
 
@@ -89,6 +97,7 @@ def scan_task(path: str, seed: bytes, checker, threshold: float,
     from claimkit import workflow
     from claimkit.imageio import read_picture
 
+    tune_memory()
     p = Path(path)
     try:
         pic = read_picture(p, max_pixels=max_pixels)
