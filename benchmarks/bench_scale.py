@@ -1,6 +1,6 @@
 """Throughput at a photographer's scale (issue 6), printed as ratios measured in this one run.
 
-    python benchmarks/bench_scale.py [--count12 N] [--scan-count N] [--quick]
+    python benchmarks/bench_scale.py [--count12 N] [--scan-count N] [--quick] [--only SECTION]
 
 What it measures (nothing is asserted; targets are printed beside the numbers):
 
@@ -492,6 +492,8 @@ def main() -> int:
                     help="12-MP files in the batch-mark test (issue 6 names 200; default 16)")
     ap.add_argument("--scan-count", type=int, default=48, help="web-size files to scan")
     ap.add_argument("--quick", action="store_true", help="small counts, sizes up to 12 MP")
+    ap.add_argument("--only", choices=("scan", "mark", "growth", "memory"), action="append",
+                    help="run only these sections (repeatable)")
     ap.add_argument("--growth-child", nargs=2, metavar=("FILE", "HOME"), help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.growth_child:
@@ -505,14 +507,21 @@ def main() -> int:
           f"Python {sys.version.split()[0]}")
     with tempfile.TemporaryDirectory(prefix="claimkit-bench-") as tmp:
         work = Path(tmp)
+        only = set(args.only or ("scan", "mark", "growth", "memory"))
         with fresh_profile(work / "home") as profile:
-            bench_scan(profile, work, args.scan_count)
-            bench_mark(profile, work, args.count12)
-        bench_growth(work / "home", work, sizes)
-        big = work / "mark24"
-        write_jpegs(big, 4, sizes[-1], start=6000, quality=92)
-        bench_memory(work, [(f"{args.count12} files of 12 MP", work / "mark12"),
-                            (f"4 files of {sizes[-1][0] * sizes[-1][1] / 1e6:.0f} MP", big)])
+            if "scan" in only:
+                bench_scan(profile, work, args.scan_count)
+            if "mark" in only:
+                bench_mark(profile, work, args.count12)
+        if "growth" in only:
+            bench_growth(work / "home", work, sizes)
+        if "memory" in only:
+            if not (work / "mark12").is_dir():
+                write_jpegs(work / "mark12", args.count12, (4000, 3000), start=3000, quality=92)
+            big = work / "mark24"
+            write_jpegs(big, 4, sizes[-1], start=6000, quality=92)
+            bench_memory(work, [(f"{args.count12} files of 12 MP", work / "mark12"),
+                                (f"4 files of {sizes[-1][0] * sizes[-1][1] / 1e6:.0f} MP", big)])
     print(f"\n[{load()}] Numbers are from this run on this machine; nothing is asserted. "
           "Other work on the machine (see the load averages) lowers the wall-clock rates "
           "and the speed-ups; CPU times per file are not affected.")
