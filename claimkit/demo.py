@@ -189,7 +189,8 @@ def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None =
     t0 = time.perf_counter()
     if folder is None:
         folder = Path(f"claimkit-demo-{datetime.now(timezone.utc):%Y%m%d-%H%M%S}")
-    folder = Path(folder)
+    # Absolute, because the local timestamp authority runs openssl in its own folder.
+    folder = Path(folder).absolute()
     if folder.exists() and (not folder.is_dir() or any(folder.iterdir())):
         raise InputError("already exists and is not empty; give a new folder", path=folder)
     folder.mkdir(parents=True, exist_ok=True)

@@ -5,6 +5,7 @@ from __future__ import annotations
 import copy
 import json
 import shutil
+from pathlib import Path
 import subprocess
 
 import pytest
@@ -27,7 +28,8 @@ def test_demo_runs_end_to_end(tmp_path, monkeypatch):
     sc = copy.deepcopy(SCENARIO)
     sc["work"]["upscale"] = 1.5        # the real demo uses 3; the steps are the same
     lines: list[str] = []
-    out = run_demo(tmp_path / "demo", echo=lines.append, scenario=sc, decoys=8,
+    monkeypatch.chdir(tmp_path)   # a relative folder, as in the README's first command
+    out = run_demo(Path("demo"), echo=lines.append, scenario=sc, decoys=8,
                    robustness=False)   # the battery itself is covered by the case tests
     assert out["verified"], out["failed"]
     assert out["detected"] == ["E01", "E02"]
