@@ -49,6 +49,11 @@ def _day(iso: str) -> str:
 
 
 def _chance(log10p: float) -> str:
+    # Past 1e-12 the plain-language text stops at "one in a million million":
+    # smaller numbers say nothing more to a reader and rest ever harder on the
+    # model; the exact bound (log10) is given under "Results for each exhibit".
+    if log10p < -12:
+        return "below one in a million million (10^12)"
     if log10p <= -3:
         n = math.floor(-log10p)
         return f"below 1 in 10^{n} (a 1 followed by {n} zeros)"
