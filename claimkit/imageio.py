@@ -27,7 +27,6 @@ from __future__ import annotations
 
 import io
 import os
-import secrets
 import threading
 import warnings
 from dataclasses import dataclass, field
@@ -38,6 +37,7 @@ from PIL import Image, UnidentifiedImageError
 from PIL.PngImagePlugin import PngInfo
 
 from claimkit.errors import InputError
+from claimkit.evidence.storage import atomic_write
 
 __all__ = [
     "DEFAULT_MAX_PIXELS",
@@ -675,58 +675,13 @@ def _encode_tiff16(pixels: np.ndarray, alpha: np.ndarray | None, like: Picture) 
 
 
 def _atomic_write(path: Path, payload: bytes, *, force: bool) -> None:
-    """Write under a temporary name in the same folder, fsync, then rename."""
-    tmp = path.parent / f".{path.name}.{secrets.token_hex(6)}.partial"
+    """Temp file in the same folder, fsync, rename; without ``force`` never replace a file."""
     try:
-        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o666)
-    except PermissionError:
-        raise InputError(
-            f"cannot write in {path.parent}: permission denied", path=path
-        ) from None
-    except OSError as exc:
-        raise InputError(f"cannot write: {exc.strerror or exc}", path=path) from None
-    try:
-        with os.fdopen(fd, "wb") as f:
-            f.write(payload)
-            f.flush()
-            os.fsync(f.fileno())
-        if force:
-            os.replace(tmp, path)
-        else:
-            # A hard link fails if the name appeared meanwhile, so a file that
-            # another process created after our check is never replaced.
-            try:
-                os.link(tmp, path)
-            except FileExistsError:
-                raise InputError("already exists; use --force to replace it", path=path) from None
-            except OSError:
-                if path.exists():
-                    raise InputError(
-                        "already exists; use --force to replace it", path=path
-                    ) from None
-                os.replace(tmp, path)  # file system without hard links
-    except OSError as exc:
-        raise InputError(f"cannot write: {exc.strerror or exc}", path=path) from None
-    finally:
-        try:
-            tmp.unlink()
-        except FileNotFoundError:
-            pass
-    _fsync_dir(path.parent)
-
-
-def _fsync_dir(folder: Path) -> None:
-    """Make the rename itself durable (POSIX); a no-op where unsupported."""
-    try:
-        fd = os.open(folder, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
+        atomic_write(path, payload, replace=force)
+    except InputError as exc:
+        if "already exists" in exc.message:
+            raise InputError("already exists; use --force to replace it", path=path) from None
+        raise
 
 
 # ---------------------------------------------------------------- pixel helpers

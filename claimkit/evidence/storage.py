@@ -64,23 +64,29 @@ def fsync_dir(path: str | os.PathLike) -> None:
         os.close(fd)
 
 
-def atomic_write(path: str | os.PathLike, data: bytes, *, mode: int | None = None) -> None:
+def atomic_write(path: str | os.PathLike, data: bytes, *, mode: int | None = None,
+                 replace: bool = True) -> None:
     """Write ``data`` to ``path`` all at once: temp file in the same folder, fsync, rename.
 
     Parameters
     ----------
     path : path-like
-        The destination; replaced if it exists.
+        The destination.
     data : bytes
         The whole content.
     mode : int, optional
         Permission bits (e.g. ``0o600`` for key files). Default: ``0o666``
         less the process umask, as for any new file.
+    replace : bool
+        Replace an existing file (default). When false, the finished file is
+        put in place with a hard link, which fails if the name exists, so a
+        file that another process created meanwhile is never replaced.
 
     Raises
     ------
     InputError
-        When the folder is missing or not writable, naming the file.
+        When the folder is missing or not writable, or (``replace=False``)
+        the file exists, naming the file.
     """
     path = Path(path)
     folder = path.parent if str(path.parent) else Path(".")
@@ -100,7 +106,10 @@ def atomic_write(path: str | os.PathLike, data: bytes, *, mode: int | None = Non
             fh.flush()
             os.fsync(fh.fileno())
         os.chmod(tmp, mode)
-        os.replace(tmp, path)
+        if replace:
+            os.replace(tmp, path)
+        else:
+            _link_new(tmp, path)
     except BaseException as exc:
         try:
             os.unlink(tmp)
@@ -112,9 +121,19 @@ def atomic_write(path: str | os.PathLike, data: bytes, *, mode: int | None = Non
     fsync_dir(folder)
 
 
+def _link_new(tmp: str, path: Path) -> None:
+    try:
+        os.link(tmp, path)
+    except FileExistsError:
+        raise InputError("already exists (will not overwrite)", path=path) from None
+    except OSError:
+        if path.exists():
+            raise InputError("already exists (will not overwrite)", path=path) from None
+        os.replace(tmp, path)   # a file system without hard links
+        return
+    os.unlink(tmp)
+
+
 def write_new_file(path: str | os.PathLike, data: bytes, *, mode: int | None = None) -> None:
-    """Like :func:`atomic_write`, but refuse to replace an existing file."""
-    path = Path(path)
-    if path.exists():
-        raise InputError("already exists (will not overwrite)", path=path)
-    atomic_write(path, data, mode=mode)
+    """Like :func:`atomic_write`, but never replace an existing file (race-free)."""
+    atomic_write(path, data, mode=mode, replace=False)
