@@ -187,36 +187,16 @@ def mark_task(src: str, staged: str, seed: bytes, bits: list[int], strength: flo
     """
     # Imported here so that a worker process pays for the engine only once it works.
     from claimkit import workflow
-    from claimkit.evidence.storage import sha256_file
-    from claimkit.imageio import add_luma_delta, read_picture, to_luma, write_picture
-    from claimkit.mark import embed, quality
-    from claimkit.mark.fingerprint import perceptual_fingerprint
 
     tune_memory()
     src_p, staged_p = Path(src), Path(staged)
     try:
-        pic = read_picture(src_p, max_pixels=max_pixels)
-        workflow._check_size(pic, workflow.MIN_MARK_SIDE, "marking")
-        sha_orig = sha256_file(src_p)
-        # The same steps and measures as workflow.mark_file (a test holds the two
-        # to the same bytes), minus the registry, which stays in the parent.
-        luma = to_luma(pic.pixels)
-        delta = embed.mark_delta(luma, seed, np.asarray(bits, dtype=np.uint8), strength=strength)
-        marked = add_luma_delta(pic.pixels, delta)
-        del delta
-        peak = 65535.0 if pic.pixels.dtype == np.uint16 else 255.0
-        measures = {"psnr_db": round(quality.psnr(pic.pixels, marked, peak=peak), 3)}
-        ssim_value, sampled = quality.ssim(pic.pixels, marked, grey=to_luma)
-        measures["ssim"] = round(ssim_value, 5)
-        measures["ssim_sampled"] = sampled
-        fingerprint = perceptual_fingerprint(luma)
-        del luma
-        write_picture(staged_p, marked, like=pic, quality=jpeg_quality, force=True)
-        del marked
-        sha_marked = sha256_file(staged_p)
-        if staged_p.suffix.lower() in (".jpg", ".jpeg", ".webp"):
-            written = read_picture(staged_p, max_pixels=max_pixels).pixels
-            measures["psnr_db_file"] = round(quality.psnr(pic.pixels, written, peak=peak), 3)
+        # The same pixel work as workflow.mark_file, minus the registry, which
+        # stays in the parent.
+        pic, sha_orig = workflow.load_original(src_p, max_pixels=max_pixels)
+        facts = workflow.mark_picture(pic, staged_p, seed, np.asarray(bits, dtype=np.uint8),
+                                      strength=strength, jpeg_quality=jpeg_quality,
+                                      force=True, max_pixels=max_pixels)
     except ClaimkitError as exc:
         staged_p.unlink(missing_ok=True)
         kind = "disk-full" if _disk_full(exc) else "input"
@@ -228,12 +208,7 @@ def mark_task(src: str, staged: str, seed: bytes, bits: list[int], strength: flo
         staged_p.unlink(missing_ok=True)
         kind = "disk-full" if _disk_full(exc) else "input"
         return {"error": f"{exc.filename or src}: {exc.strerror or exc}", "kind": kind}
-    return {
-        "sha256_original": sha_orig, "sha256_marked": sha_marked,
-        "fingerprint": fingerprint, "capture": pic.capture, "quality": measures,
-        "width": int(pic.pixels.shape[1]), "height": int(pic.pixels.shape[0]),
-        "bit_depth": pic.bit_depth,
-    }
+    return {"sha256_original": sha_orig, **facts}
 
 
 # --------------------------------------------------------------------------- the parent

@@ -54,6 +54,50 @@ def _check_size(pic: Picture, minimum: int, what: str) -> None:
                          path=pic.path)
 
 
+def load_original(src: str | os.PathLike, *, max_pixels: int | None = None) -> tuple[Picture, str]:
+    """Read a photo to be marked, check it can hold the mark, and hash the file."""
+    pic = read_picture(src, max_pixels=max_pixels)
+    _check_size(pic, MIN_MARK_SIDE, "marking")
+    return pic, sha256_file(src)
+
+
+def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, strength: float = 1.0,
+                 jpeg_quality: int = 95, force: bool = False,
+                 max_pixels: int | None = None) -> dict:
+    """Embed ``bits`` under ``seed``, write ``out`` atomically and measure what marking did.
+
+    The pixel work shared by :func:`mark_file` and batch workers: no profile,
+    no registry. Returns the marked file's SHA-256, the perceptual
+    fingerprint, the quality measures and the picture's facts.
+    """
+    luma = to_luma(pic.pixels)
+    delta = embed.mark_delta(luma, seed, np.asarray(bits, dtype=np.uint8), strength=strength)
+    marked = add_luma_delta(pic.pixels, delta)
+    del delta
+    peak = 65535.0 if pic.pixels.dtype == np.uint16 else 255.0
+    measures = {"psnr_db": round(quality.psnr(pic.pixels, marked, peak=peak), 3)}
+    ssim_value, sampled = quality.ssim(pic.pixels, marked, grey=to_luma)
+    measures["ssim"] = round(ssim_value, 5)
+    measures["ssim_sampled"] = sampled
+    fingerprint = perceptual_fingerprint(luma)
+    del luma
+    write_picture(out, marked, like=pic, quality=jpeg_quality, force=force)
+    del marked
+    try:
+        sha_marked = sha256_file(out)
+        if out.suffix.lower() in (".jpg", ".jpeg", ".webp"):
+            written = read_picture(out, max_pixels=max_pixels).pixels
+            measures["psnr_db_file"] = round(quality.psnr(pic.pixels, written, peak=peak), 3)
+    except BaseException:
+        out.unlink(missing_ok=True)
+        raise
+    return {
+        "sha256_marked": sha_marked, "fingerprint": fingerprint, "quality": measures,
+        "capture": pic.capture, "width": int(pic.pixels.shape[1]),
+        "height": int(pic.pixels.shape[0]), "bit_depth": pic.bit_depth,
+    }
+
+
 def mark_file(profile, src: str | os.PathLike, out: str | os.PathLike, *, force: bool = False,
               strength: float = 1.0, jpeg_quality: int = 95, max_pixels: int | None = None) -> dict:
     """Mark one photo, write the marked copy to ``out`` and register the work.
@@ -75,41 +119,26 @@ def mark_file(profile, src: str | os.PathLike, out: str | os.PathLike, *, force:
         raise InputError("the output would overwrite the original; choose another name", path=out)
     if not 0 < strength <= 4:
         raise InputError(f"strength {strength} is outside 0..4")
-    pic = read_picture(src, max_pixels=max_pixels)
-    _check_size(pic, MIN_MARK_SIDE, "marking")
-    sha_orig = sha256_file(src)
+    pic, sha_orig = load_original(src, max_pixels=max_pixels)
     serial = profile.allocate_serials(1)[0]
     bits = payload.pack(profile.owner_tag, serial, profile.payload_tag(serial))
-    luma = to_luma(pic.pixels)
-    delta = embed.mark_delta(luma, profile.detection_seed, bits, strength=strength)
-    marked = add_luma_delta(pic.pixels, delta)
-    peak = 65535.0 if pic.pixels.dtype == np.uint16 else 255.0
-    measures = {
-        "psnr_db": round(quality.psnr(pic.pixels, marked, peak=peak), 3),
-    }
-    ssim_value, sampled = quality.ssim(pic.pixels, marked, grey=to_luma)
-    measures["ssim"] = round(ssim_value, 5)
-    measures["ssim_sampled"] = sampled
-    write_picture(out, marked, like=pic, quality=jpeg_quality, force=force)
+    facts = mark_picture(pic, out, profile.detection_seed, bits, strength=strength,
+                         jpeg_quality=jpeg_quality, force=force, max_pixels=max_pixels)
     try:
-        sha_marked = sha256_file(out)
-        if out.suffix.lower() in (".jpg", ".jpeg", ".webp"):
-            written = read_picture(out, max_pixels=max_pixels).pixels
-            measures["psnr_db_file"] = round(quality.psnr(pic.pixels, written, peak=peak), 3)
         record = profile.register_work(
-            serial, sha256_original=sha_orig, sha256_marked=sha_marked,
-            original_name=src.name, marked_name=out.name,
-            fingerprint=perceptual_fingerprint(luma), mark_params=mark_parameters(strength),
-            capture=pic.capture, quality=measures)
+            serial, sha256_original=sha_orig, sha256_marked=facts["sha256_marked"],
+            original_name=src.name, marked_name=out.name, fingerprint=facts["fingerprint"],
+            mark_params=mark_parameters(strength), capture=facts["capture"],
+            quality=facts["quality"])
     except BaseException:
         out.unlink(missing_ok=True)
         raise
     return {
         "work_id": record.work_id, "serial": serial,
         "original": str(src), "output": str(out),
-        "sha256_original": sha_orig, "sha256_marked": sha_marked,
-        "width": int(pic.pixels.shape[1]), "height": int(pic.pixels.shape[0]),
-        "bit_depth": pic.bit_depth, **measures,
+        "sha256_original": sha_orig, "sha256_marked": facts["sha256_marked"],
+        "width": facts["width"], "height": facts["height"],
+        "bit_depth": facts["bit_depth"], **facts["quality"],
     }
 
 

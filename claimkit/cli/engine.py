@@ -80,7 +80,11 @@ def cmd_examine(args) -> int:
 def register(sub, common) -> None:
     p = sub.add_parser("mark", parents=[common], help="mark photos invisibly and register them",
                        description="Embed the owner's invisible mark and register each work "
-                                   "(signed record in the profile). Originals are never changed.")
+                                   "(signed record in the profile). Originals are never changed.",
+                       epilog="Exit codes: 0 all marked (or already registered); 1 some files failed "
+                              "or the disk filled (the rest are done and registered; run again to "
+                              "finish); 2 bad input (every input bad, or no images found); "
+                              "130 interrupted (what was done is kept).")
     p.add_argument("inputs", nargs="+", metavar="IN", help="photo(s) or folder(s)")
     p.add_argument("--out", required=True, metavar="OUT",
                    help="marked file (one input) or folder (several inputs or a folder)")
