@@ -47,6 +47,7 @@ from pathlib import Path
 import numpy as np
 
 from claimkit.errors import ClaimkitError, InputError
+from claimkit.evidence.storage import fsync_dir
 from claimkit.runner import (
     Outcome,
     Progress,
@@ -442,20 +443,7 @@ def _place(staged: Path, out: Path, *, force: bool) -> None:
             os.replace(staged, out)    # a file system without hard links
         else:
             staged.unlink()
-    _fsync_dir(out.parent)
-
-
-def _fsync_dir(folder: Path) -> None:
-    try:
-        fd = os.open(folder, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
+    fsync_dir(out.parent)
 
 
 def _human_line(row: dict) -> str:
