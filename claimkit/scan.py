@@ -101,7 +101,8 @@ def scan_task(path: str, seed: bytes, checker, threshold: float,
     p = Path(path)
     try:
         pic = read_picture(p, max_pixels=max_pixels)
-        finding = workflow.examine_picture(pic, seed, payload_check=checker, threshold=threshold)
+        finding = workflow.examine_picture(pic, seed, owner_tag=checker.owner_tag,
+                                           payload_check=checker, threshold=threshold)
         rep = workflow.report_for(p, pic, finding, None)
     except ClaimkitError as exc:
         return {"file": path, "error": exc.line()}

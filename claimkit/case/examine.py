@@ -186,7 +186,7 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
     path = checked_exhibit_path(case, ex)
     pic = read_picture(path)
     luma = to_luma(pic.pixels)
-    finding = workflow.examine_picture(pic, profile.detection_seed,
+    finding = workflow.examine_picture(pic, profile.detection_seed, owner_tag=profile.owner_tag,
                                        payload_check=workflow.owner_payload_check(profile),
                                        threshold=threshold, decoys=decoys, workers=workers)
     rep = workflow.report_for(path, pic, finding, profile)

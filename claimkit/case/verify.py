@@ -379,7 +379,7 @@ def _rerun(root: Path, ex: dict, finding: dict, keys: dict, rep: VerifyReport) -
     from claimkit.case.align import align
     from claimkit.case.examine import decoy_summary
     from claimkit.imageio import read_picture, to_luma
-    from claimkit.mark import detect
+    from claimkit.mark import detect, payload
     from claimkit.workflow import examine_picture
 
     i = ex["exhibit_id"]
@@ -395,8 +395,9 @@ def _rerun(root: Path, ex: dict, finding: dict, keys: dict, rep: VerifyReport) -
 
     pic = read_picture(root / ex["file"])
     params = finding["examined"]
-    f = examine_picture(pic, seed, payload_check=check, threshold=params["threshold"],
-                        decoys=params["decoys"])
+    owner_tag = payload.unpack(wanted[0])["owner_tag"]   # the same for all of one owner's works
+    f = examine_picture(pic, seed, owner_tag=owner_tag, payload_check=check,
+                        threshold=params["threshold"], decoys=params["decoys"])
     stored = finding["result"]
     got = f.to_json()
     got["geometry_text"] = detect.describe_in_words(f.geometry)
