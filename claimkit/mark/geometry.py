@@ -73,7 +73,6 @@ LAG_MAX = 512              # largest lag used (the zero padding is this wide)
 SCALE_RANGE = (0.45, 2.8)  # copy/original scale the search covers (0.5x..2x, and a 400 px photo posted 1080 wide)
 ASPECT_RANGE = 0.1         # aspect changes along the picture's axes: up to +-10 %
 LATTICE_CANDIDATES = 2     # fixed number of lattice hypotheses (counted in the statistics)
-MAX_CANON_PIXELS = 6_000_000
 
 MIN_OVERLAP = 0.05         # lags where the window overlaps itself less than this are not used
 FLATTEN_WINDOW = 15        # frequencies averaged to estimate the picture's own power
@@ -613,37 +612,3 @@ def _related(a: np.ndarray, b: np.ndarray, tol: float = 0.03) -> bool:
         if np.allclose(m, np.rint(m), atol=tol) and abs(np.linalg.det(np.rint(m))) >= 1:
             return True
     return False
-
-
-def to_canonical(x: np.ndarray, transform: np.ndarray, *,
-                 max_pixels: int = MAX_CANON_PIXELS) -> tuple[np.ndarray, np.ndarray]:
-    """Resample the copy onto the original's pixel grid (up to a lattice symmetry and a shift).
-
-    ``transform`` maps original (row, col) offsets to copy offsets. The output
-    covers the copy (or its central part when that would exceed
-    ``max_pixels``); pixels outside the copy are 0.
-
-    Returns
-    -------
-    canon : ndarray
-        The resampled copy.
-    offset : ndarray, (2,)
-        Copy position of canonical pixel (0, 0): copy = transform @ canon + offset.
-    """
-    h, w = x.shape
-    inv = np.linalg.inv(transform)
-    corners = np.array([[0, 0], [0, w - 1], [h - 1, 0], [h - 1, w - 1]], dtype=float).T
-    uc = inv @ corners
-    lo, hi = uc.min(axis=1), uc.max(axis=1)
-    size = hi - lo + 1
-    area = float(size[0] * size[1])
-    if area > max_pixels:
-        shrink = np.sqrt(max_pixels / area)
-        centre = (lo + hi) / 2
-        size = size * shrink
-        lo = centre - size / 2
-    shape = (int(size[0]), int(size[1]))
-    offset = transform @ lo
-    canon = ndimage.affine_transform(x, transform, offset=offset, output_shape=shape,
-                                     order=1, mode="constant", cval=0.0, prefilter=False)
-    return canon, offset
