@@ -25,8 +25,6 @@ found; 130 when interrupted (the lines and report cover the files done).
 from __future__ import annotations
 
 import csv
-import hashlib
-import hmac
 import io
 import os
 import sys
@@ -47,48 +45,13 @@ from claimkit.runner import (
     tune_memory,
 )
 
-__all__ = ["CSV_COLUMNS", "PayloadChecker", "ScanSummary", "scan_folders", "scan_task"]
+__all__ = ["CSV_COLUMNS", "ScanSummary", "scan_folders", "scan_task"]
 
 EXIT_OK, EXIT_SOME_UNREADABLE, EXIT_NOTHING_READ, EXIT_INTERRUPTED = 0, 1, 2, 130
 
 CSV_COLUMNS = ("file", "status", "detected", "work_id", "registered",
                "false_alarm_probability", "message_psnr_db", "rotation_deg", "scale",
                "flipped", "shift_x_px", "shift_y_px", "width", "height", "sha256", "error")
-
-
-@dataclass(frozen=True)
-class PayloadChecker:
-    """Picklable form of :func:`claimkit.workflow.owner_payload_check`.
-
-    Valid payloads carry the owner's tag, a serial above 0 and the keyed tag
-    ``HMAC-SHA256(tag_key, owner_tag || serial)[:3]``, the derivation of
-    :func:`claimkit.evidence.profile.derive_payload_tag`; a test checks the
-    two agree for the profile's own serials.
-    """
-
-    owner_tag: int
-    tag_key: bytes = field(repr=False)
-
-    def __call__(self, bits) -> bool:
-        from claimkit.mark import payload
-
-        p = payload.unpack(bits)
-        if p["owner_tag"] != self.owner_tag or not 0 < p["serial"] < 2 ** 24:
-            return False
-        msg = self.owner_tag.to_bytes(2, "big") + p["serial"].to_bytes(3, "big")
-        want = int.from_bytes(hmac.new(self.tag_key, msg, hashlib.sha256).digest()[:3], "big")
-        return hmac.compare_digest(want.to_bytes(3, "big"), p["tag"].to_bytes(3, "big"))
-
-    @classmethod
-    def of(cls, profile) -> PayloadChecker:
-        """The checker of an open profile (needs its secrets)."""
-        maker = getattr(profile, "payload_checker", None)
-        if callable(maker):          # the evidence layer's own accessor, when it has one
-            return maker()
-        key = getattr(profile, "_tag_key", None)
-        if key is None:
-            raise InputError("scanning needs the profile opened with its passphrase")
-        return cls(profile.owner_tag, key)
 
 
 def scan_task(path: str, seed: bytes, checker, threshold: float,
@@ -257,6 +220,7 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
     int
         Exit status (module notes).
     """
+    from claimkit import workflow
     from claimkit.mark import detect
 
     threshold = detect.DEFAULT_THRESHOLD if threshold is None else float(threshold)
@@ -269,7 +233,7 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
         if not Path(p.path or "").exists():
             raise p                      # a folder that is not there is a usage error
     seed = profile.detection_seed
-    checker = PayloadChecker.of(profile)
+    checker = workflow.owner_payload_check(profile)
     err = sys.stderr
 
     def notice(msg: str) -> None:

@@ -8,15 +8,17 @@ profile for keys and registration, and leaves all numerics to
 
 from __future__ import annotations
 
+import hmac
 import os
 from collections.abc import Callable
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
 from claimkit import __version__
 from claimkit.errors import InputError
-from claimkit.evidence.profile import work_id_for
+from claimkit.evidence.profile import derive_payload_tag, work_id_for
 from claimkit.evidence.storage import sha256_file
 from claimkit.imageio import Picture, add_luma_delta, read_picture, to_luma, write_picture
 from claimkit.mark import detect, embed, pattern, payload, quality
@@ -142,13 +144,28 @@ def mark_file(profile, src: str | os.PathLike, out: str | os.PathLike, *, force:
     }
 
 
-def owner_payload_check(profile) -> Callable[[np.ndarray], bool]:
-    """A payload is valid when it carries this owner's tag and the right keyed check."""
-    def check(bits: np.ndarray) -> bool:
+@dataclass(frozen=True)
+class PayloadChecker:
+    """Says whether decoded bits are a valid payload of one owner (picklable, for workers).
+
+    Valid: the owner's tag, a serial above 0, and the keyed payload tag of
+    that serial (:func:`claimkit.evidence.profile.derive_payload_tag`).
+    """
+
+    owner_tag: int
+    tag_key: bytes = field(repr=False)
+
+    def __call__(self, bits) -> bool:
         p = payload.unpack(bits)
-        return p["owner_tag"] == profile.owner_tag and p["serial"] > 0 and \
-            p["tag"] == profile.payload_tag(p["serial"])
-    return check
+        if p["owner_tag"] != self.owner_tag or p["serial"] <= 0:
+            return False
+        want = derive_payload_tag(self.tag_key, self.owner_tag, p["serial"])
+        return hmac.compare_digest(want.to_bytes(3, "big"), p["tag"].to_bytes(3, "big"))
+
+
+def owner_payload_check(profile) -> PayloadChecker:
+    """The payload check of an open profile (needs its secrets)."""
+    return PayloadChecker(profile.owner_tag, profile.payload_tag_key())
 
 
 def expected_payload_check(bits: np.ndarray) -> Callable[[np.ndarray], bool]:

@@ -387,6 +387,14 @@ class Profile:
         _check_serial(serial)
         return derive_payload_tag(self._tag_key, self.owner_tag, serial)
 
+    def payload_tag_key(self) -> bytes:
+        """The key of payload tags, for examination workers in other processes.
+
+        Secret: it is never written to disk, disclosed or logged.
+        """
+        self._need_secrets()
+        return self._tag_key
+
     def sign(self, data: bytes) -> bytes:
         """Ed25519 signature of ``data`` with the owner's key."""
         self._need_secrets()
