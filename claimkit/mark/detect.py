@@ -31,6 +31,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from functools import lru_cache
 
 import numpy as np
 from scipy import ndimage
@@ -194,12 +195,14 @@ def _variant_maps(tile: int) -> list[tuple[np.ndarray, np.ndarray]]:
     return maps
 
 
+@lru_cache(maxsize=4)
 def _ramps(tile: int) -> np.ndarray:
+    """Phase ramps of the sub-pixel shifts in ``PHASES`` (read-only, cached)."""
     f = np.fft.fftfreq(tile) * tile
-    out = []
-    for dy, dx in PHASES:
-        out.append(np.exp(2j * np.pi * (dy * f[:, None] + dx * f[None, :]) / tile))
-    return np.stack(out)
+    out = np.stack([np.exp(2j * np.pi * (dy * f[:, None] + dx * f[None, :]) / tile)
+                    for dy, dx in PHASES])
+    out.setflags(write=False)
+    return out
 
 
 def _delta_ft(pos: np.ndarray, sign: np.ndarray, tile: int) -> np.ndarray:
@@ -304,11 +307,17 @@ def _surfaces(prep: _Prepared, pattern: KeyPattern, ramps: np.ndarray):
     return np.stack(out)
 
 
+def _recovered(prep, pattern, ramps, g, d, ph) -> np.ndarray:
+    """The recovered-message map of one placement (before the cyclic shift is undone)."""
+    weight = pattern.spot_ft * pattern.band
+    rec_ft = prep.spectra[g][d] * weight * np.conj(pattern.carrier_phase) * ramps[ph]
+    return np.real(np.fft.ifft2(rec_ft))
+
+
 def _decode_at(prep, pattern, ramps, g, d, ph, shift, payload_check, known_bits):
     n = pattern.tile
     weight = pattern.spot_ft * pattern.band
-    rec_ft = prep.spectra[g][d] * weight * np.conj(pattern.carrier_phase) * ramps[ph]
-    rec = np.real(np.fft.ifft2(rec_ft))
+    rec = _recovered(prep, pattern, ramps, g, d, ph)
     pos = (pattern.code_pos + shift) % n
     soft = rec[pos[:, 0], pos[:, 1]]
     bits = ecc.decode(soft, PAYLOAD_BITS, known=known_bits)
@@ -320,7 +329,7 @@ def _decode_at(prep, pattern, ramps, g, d, ph, shift, payload_check, known_bits)
         sigma = np.sqrt(np.sum(np.abs(prep.spectra[g][d] * weight * q_ft) ** 2)) / n ** 2
         p = (allpos + shift) % n
         z_full = float(np.sum(allsign * rec[p[:, 0], p[:, 1]]) / sigma)
-    return bits, valid, z_full
+    return bits, valid, z_full, rec
 
 
 def _fit_psnr(rec: np.ndarray, ref: np.ndarray) -> tuple[float, np.ndarray]:
@@ -332,7 +341,7 @@ def _fit_psnr(rec: np.ndarray, ref: np.ndarray) -> tuple[float, np.ndarray]:
     return 10.0 * np.log10(1.0 / max(mse, 1e-12)), fit
 
 
-def _message(prep, pattern, ramps, g, d, ph, shift, bits):
+def _message(pattern, rec, shift, bits):
     """Recovered messages (spot estimate and raw correlation map) against the reference.
 
     The raw map is the inverse transform of the weighted, carrier-correlated
@@ -341,9 +350,7 @@ def _message(prep, pattern, ramps, g, d, ph, shift, bits):
     rendered as a spot. Both are compared with the reference (pilot spots plus
     the spots of the decoded payload re-encoded) after a gain/offset fit.
     """
-    weight = pattern.spot_ft * pattern.band
-    rec_ft = prep.spectra[g][d] * weight * np.conj(pattern.carrier_phase) * ramps[ph]
-    raw = np.roll(np.real(np.fft.ifft2(rec_ft)), (-shift[0], -shift[1]), axis=(0, 1))
+    raw = np.roll(rec, (-shift[0], -shift[1]), axis=(0, 1))
     codeword = ecc.encode(bits)
     ref = message_template(pattern, codeword)
     pos, _ = spot_signs(pattern, codeword)
@@ -401,14 +408,14 @@ def examine_luma(luma: np.ndarray, seed: bytes, *,
     for idx in order:
         g, d, ph, r, c = np.unravel_index(idx, surf.shape)
         shift = np.array([r, c])
-        bits, valid, z_full = _decode_at(prep, pattern, ramps, g, d, ph, shift, payload_check,
-                                         known_bits)
+        bits, valid, z_full, rec = _decode_at(prep, pattern, ramps, g, d, ph, shift,
+                                              payload_check, known_bits)
         lp = stats.log10_false_alarm(float(flat[idx]), z_full, hypotheses(n), payload_space)
         if best is None or lp < best[0]:
-            best = (lp, (g, d, ph, shift), bits, valid, z_full, float(flat[idx]))
-    lp, (g, d, ph, shift), bits, valid, z_full, z_pilot = best
+            best = (lp, (g, d, ph, shift), bits, valid, z_full, float(flat[idx]), rec)
+    lp, (g, d, ph, shift), bits, valid, z_full, z_pilot, rec_map = best
     detected = lp <= np.log10(threshold)
-    psnr, psnr_raw, psnr_zero, rec, rec_raw, ref = _message(prep, pattern, ramps, g, d, ph, shift, bits)
+    psnr, psnr_raw, psnr_zero, rec, rec_raw, ref = _message(pattern, rec_map, shift, bits)
     geom = describe_geometry(prep, g, d, PHASES[ph], shift, n) if detected else {}
     decoy_scores = decoy_control(prep, decoys, decoy_seed) if decoys else []
     return Finding(
