@@ -15,10 +15,6 @@ def _open_profile(args):
     return Profile.open(home_dir(args), passphrase())
 
 
-def _pixel_limit(parser_value):
-    return None if parser_value is None else int(parser_value)
-
-
 def cmd_mark(args) -> int:
     from claimkit import workflow
 
@@ -67,10 +63,10 @@ def cmd_examine(args) -> int:
         raise InputError(f"--threshold {threshold} must lie between 0 and 1")
     with _open_profile(args) as profile:
         for f in args.files:
-            rep, _ = workflow.examine_file(profile, f, threshold=threshold,
-                                           decoys=args.decoys, max_pixels=args.max_pixels)
+            rep, finding = workflow.examine_file(profile, f, threshold=threshold,
+                                                 decoys=args.decoys, max_pixels=args.max_pixels)
             if args.decoys:
-                rep["decoy_scores"] = [round(v, 3) for v in _.decoy_scores]
+                rep["decoy_scores"] = [round(v, 3) for v in finding.decoy_scores]
             print_json(rep) if args.json else print(_verdict_line(rep))
     if not args.json:
         print("claimkit gives technical evidence, not legal advice.")
