@@ -44,6 +44,7 @@ __all__ = [
     "MIN_SIDE",
     "Picture",
     "read_picture",
+    "read_file_bytes",
     "write_picture",
     "to_luma",
     "add_luma_delta",
@@ -178,7 +179,8 @@ def resolve_max_pixels(max_pixels: int | None = None) -> int:
 # ---------------------------------------------------------------- reading
 
 
-def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None) -> Picture:
+def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
+                 data: bytes | None = None) -> Picture:
     """Decode a photo into an upright array plus the metadata to carry over.
 
     Parameters
@@ -189,6 +191,10 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None) -> P
         Refuse images with more than this many pixels (width × height),
         checked from the header before any pixel is decoded. Default:
         ``$CLAIMKIT_MAX_PIXELS`` or :data:`DEFAULT_MAX_PIXELS`.
+    data : bytes, optional
+        The file's contents, already read with :func:`read_file_bytes`, so
+        that a caller can hash exactly the bytes that are decoded; ``path``
+        then only names the file.
 
     Returns
     -------
@@ -203,7 +209,10 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None) -> P
     """
     path = Path(path)
     limit = resolve_max_pixels(max_pixels)
-    data = _read_bytes(path)
+    if data is None:
+        data = _read_bytes(path)
+    elif not data:
+        raise InputError("empty file (0 bytes); truncated image data", path=path)
     try:
         with _PIL_LIMIT_LOCK, warnings.catch_warnings():
             warnings.simplefilter("ignore", Image.DecompressionBombWarning)
@@ -285,6 +294,11 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None) -> P
         capture=capture,
         notes=notes,
     )
+
+
+def read_file_bytes(path: str | os.PathLike) -> bytes:
+    """The whole file, read once; read errors become one-line :class:`InputError`."""
+    return _read_bytes(Path(path))
 
 
 def _read_bytes(path: Path) -> bytes:
@@ -712,6 +726,15 @@ def to_luma(pixels: np.ndarray) -> np.ndarray:
         ``float32 (H, W)``; 16-bit values are divided by 257, colour is
         weighted 0.299 R + 0.587 G + 0.114 B.
 
+    Notes
+    -----
+    Colour is converted in bands of rows that stay in the processor cache,
+    each sample as ``((w_R R + w_G G) + w_B B)`` in float32. That is the
+    same arithmetic, in the same order, as the one-pass
+    ``np.einsum("ijk,k->ij", ..., dtype=float32)`` earlier versions used,
+    so the luma (and every mark derived from it) is bit-for-bit unchanged;
+    ``tests/test_markspeed.py`` checks this over all 2**24 8-bit colours.
+
     References
     ----------
     .. [1] ITU-R Recommendation BT.601-7, "Studio encoding parameters of
@@ -723,9 +746,7 @@ def to_luma(pixels: np.ndarray) -> np.ndarray:
     if pixels.ndim == 2:
         luma = pixels.astype(np.float32)
     elif pixels.ndim == 3 and pixels.shape[2] == 3:
-        # einsum reads the interleaved channels in one pass (no per-channel copies)
-        luma = np.einsum("ijk,k->ij", pixels, np.asarray(_BT601, dtype=np.float32),
-                         dtype=np.float32)
+        luma = _rgb_luma(pixels)
     else:
         raise ValueError(f"expected (H, W) or (H, W, 3) pixels, got shape {pixels.shape}")
     if scale != 1.0:
@@ -733,7 +754,38 @@ def to_luma(pixels: np.ndarray) -> np.ndarray:
     return luma
 
 
-def add_luma_delta(pixels: np.ndarray, delta: np.ndarray) -> np.ndarray:
+# Rows per band for the colour helpers below: 16 rows of a 6000-pixel-wide
+# photo are ~1 MB of float32 samples, which stays in a core's cache.
+_BAND_SAMPLES = 288_000
+
+
+def _band_rows(width: int, channels: int = 3) -> int:
+    return max(1, _BAND_SAMPLES // max(1, width * channels))
+
+
+def _rgb_luma(pixels: np.ndarray) -> np.ndarray:
+    """BT.601 luma of ``(H, W, 3)`` integer pixels in float32, band by band."""
+    h, w = pixels.shape[:2]
+    weights = np.asarray(_BT601, dtype=np.float32)
+    luma = np.empty((h, w), dtype=np.float32)
+    rows = _band_rows(w)
+    band = np.empty((min(rows, h), w, 3), dtype=np.float32)
+    term = np.empty((min(rows, h), w), dtype=np.float32)
+    for r0 in range(0, h, rows):
+        src = pixels[r0:r0 + rows]
+        n = src.shape[0]
+        f, t, out = band[:n], term[:n], luma[r0:r0 + n]
+        f[...] = src  # one contiguous conversion; the channels are then strided views
+        np.multiply(f[..., 0], weights[0], out=out)
+        np.multiply(f[..., 1], weights[1], out=t)
+        out += t
+        np.multiply(f[..., 2], weights[2], out=t)
+        out += t
+    return luma
+
+
+def add_luma_delta(pixels: np.ndarray, delta: np.ndarray, *,
+                   out: np.ndarray | None = None) -> np.ndarray:
     """Add a luma change to every channel, keeping dtype.
 
     Parameters
@@ -742,6 +794,9 @@ def add_luma_delta(pixels: np.ndarray, delta: np.ndarray) -> np.ndarray:
         ``(H, W)`` or ``(H, W, 3)``, ``uint8`` or ``uint16``.
     delta : ndarray
         ``(H, W)`` change in 0..255 units (scaled by 257 for 16-bit).
+    out : ndarray, optional
+        Where to write the result (same shape and dtype as ``pixels``), so a
+        caller working band by band can fill one output array.
 
     Returns
     -------
@@ -755,22 +810,35 @@ def add_luma_delta(pixels: np.ndarray, delta: np.ndarray) -> np.ndarray:
     changes luma by exactly that amount and leaves the colour-difference
     signals unchanged, so hue and saturation are kept. Where a channel is
     clipped at 0 or full scale the change there is smaller than asked.
+
+    Each sample is ``clip(rint(float32(p) + float32(d)))``, computed in bands
+    of rows that stay in cache (so peak memory is one band of floats, not one
+    plane per channel).
     """
     pixels = np.asarray(pixels)
     scale = _scale_of(pixels.dtype)
     delta = np.asarray(delta, dtype=np.float32)
     if delta.shape != pixels.shape[:2]:
         raise ValueError(f"delta shape {delta.shape} does not match pixels {pixels.shape[:2]}")
+    if out is None:
+        out = np.empty_like(pixels)
+    elif out.shape != pixels.shape or out.dtype != pixels.dtype:
+        raise ValueError(f"out must be {pixels.dtype} {pixels.shape}, got {out.dtype} {out.shape}")
     top = np.float32(np.iinfo(pixels.dtype).max)
-    step = delta * np.float32(scale) if scale != 1.0 else delta
-    out = np.empty_like(pixels)
-    planes = [slice(None)] if pixels.ndim == 2 else range(pixels.shape[2])
-    for c in planes:
-        idx = (Ellipsis,) if pixels.ndim == 2 else (Ellipsis, c)
-        # one channel at a time keeps peak memory to one float plane
-        plane = pixels[idx].astype(np.float32)
-        plane += step
-        np.rint(plane, out=plane)
-        np.clip(plane, 0, top, out=plane)
-        out[idx] = plane.astype(pixels.dtype)
+    h, w = pixels.shape[:2]
+    colour = pixels.ndim == 3
+    rows = _band_rows(w, pixels.shape[2] if colour else 1)
+    buf = np.empty((min(rows, h),) + pixels.shape[1:], dtype=np.float32)
+    step = np.empty((min(rows, h), w), dtype=np.float32) if scale != 1.0 else None
+    for r0 in range(0, h, rows):
+        n = min(rows, h - r0)
+        f = buf[:n]
+        f[...] = pixels[r0:r0 + n]
+        d = delta[r0:r0 + n]
+        if step is not None:
+            d = np.multiply(d, np.float32(scale), out=step[:n])
+        f += d[..., None] if colour else d
+        np.rint(f, out=f)
+        np.clip(f, 0, top, out=f)
+        out[r0:r0 + n] = f  # exact: whole numbers within the dtype's range
     return out
