@@ -24,6 +24,8 @@ References
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 from scipy import ndimage
 
@@ -54,24 +56,48 @@ def perceptual_mask(luma: np.ndarray, *, local_ssim: float = DEFAULT_LOCAL_SSIM,
     -------
     ndarray, (H, W) float32
     """
+    amp, step = mask_samples(luma, local_ssim=local_ssim, psnr_db=psnr_db)
+    if step > 1:
+        amp = np.repeat(np.repeat(amp, step, axis=0), step, axis=1)
+    h, w = np.shape(luma)
+    return amp[:h, :w]
+
+
+def mask_step(shape: tuple[int, int]) -> int:
+    """Sampling step of the mask: 2 above 4 megapixels (the mask is smooth), else 1."""
+    return 2 if shape[0] * shape[1] > 4_000_000 else 1
+
+
+def mask_samples(luma: np.ndarray, *, local_ssim: float = DEFAULT_LOCAL_SSIM,
+                 psnr_db: float = DEFAULT_PSNR_DB) -> tuple[np.ndarray, int]:
+    """The mask at its own resolution: amplitude at every ``step``-th row and column.
+
+    Returns ``(amp, step)``; pixel ``(i, j)`` of the picture gets
+    ``amp[i // step, j // step]``. :func:`perceptual_mask` is this, upsampled.
+    """
     x = np.asarray(luma, dtype=np.float32)
     # Work at half resolution for large pictures: the mask is smooth anyway.
-    step = 2 if x.size > 4_000_000 else 1
+    step = mask_step(x.shape)
     xs = x[::step, ::step]
-    m = ndimage.uniform_filter(xs, MASK_WINDOW // step or 1)
-    m2 = ndimage.uniform_filter(xs * xs, MASK_WINDOW // step or 1)
-    var = np.maximum(m2 - m * m, 0.0)
-    amp2 = (1.0 / local_ssim - 1.0) * (2.0 * var + SSIM_C2)
+    size = MASK_WINDOW // step or 1
+    m = ndimage.uniform_filter(xs, size)
+    m2 = ndimage.uniform_filter(xs * xs, size)
+    # amp2 = (1/q - 1) (2 var + C2), var = max(m2 - m^2, 0), computed in place
+    # (the same float32 operations as the out-of-place form, so the same bits).
+    np.multiply(m, m, out=m)
+    np.subtract(m2, m, out=m2)
+    del m
+    amp2 = np.maximum(m2, 0.0, out=m2)
+    amp2 *= 2.0
+    amp2 += SSIM_C2
+    amp2 *= 1.0 / local_ssim - 1.0
     budget = 255.0 ** 2 / 10 ** (psnr_db / 10.0)
     if float(amp2.mean()) > budget:
         if MASK_MODE == "scale":
             amp2 *= budget / float(amp2.mean())
         else:
-            amp2 = np.minimum(amp2, _water_level(amp2, budget))
-    amp = np.sqrt(amp2, dtype=np.float32)
-    if step > 1:
-        amp = np.repeat(np.repeat(amp, step, axis=0), step, axis=1)[: x.shape[0], : x.shape[1]]
-    return amp
+            np.minimum(amp2, _water_level(amp2, budget), out=amp2)
+    return np.sqrt(amp2, out=amp2), step
 
 
 def _water_level(amp2: np.ndarray, budget: float) -> float:
@@ -95,6 +121,94 @@ def tiled(tile: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
     return np.tile(tile, reps)[: shape[0], : shape[1]]
 
 
+@dataclass(frozen=True)
+class MarkPlan:
+    """Everything needed to produce the mark's change, row band by row band.
+
+    ``delta[i, j] = amp[i // step, j // step] * tile[i % T, j % T]``: the mask
+    at its own resolution times the tiled period. Each of the ``step**2``
+    sub-grids of a band (rows ``i = q mod step``, columns ``j = c mod
+    step``) is one multiplication of whole mask rows by whole rows of the
+    period repeated across the width, so neither the full-size mask nor the
+    tiled pattern is ever built. A caller can add the change to a large photo
+    band by band (see :func:`claimkit.workflow.mark_picture`);
+    :func:`mark_delta` is the whole picture at once.
+
+    Attributes
+    ----------
+    shape : (H, W)
+        The picture's size.
+    step : int
+        Sampling step of the mask (:func:`mask_step`).
+    amp : ndarray, (ceil(H/step), ceil(W/step)) float32
+        The mask at its own resolution (:func:`mask_samples`).
+    tile : ndarray, (T, T) float32
+        One period of the mark, strength included.
+    tile_rows : ndarray, (T, ceil(W/T)*T) float32
+        The period repeated across the picture's width.
+    """
+
+    shape: tuple[int, int]
+    step: int
+    amp: np.ndarray
+    tile: np.ndarray
+    tile_rows: np.ndarray
+
+    def rows(self, r0: int, r1: int, *, out: np.ndarray | None = None) -> np.ndarray:
+        """Rows ``r0:r1`` of the change, ``(r1 - r0, W)`` float32."""
+        h, w = self.shape
+        if not 0 <= r0 <= r1 <= h:
+            raise ValueError(f"rows {r0}:{r1} outside 0:{h}")
+        if out is None:
+            out = np.empty((r1 - r0, w), dtype=np.float32)
+        period = self.tile.shape[0]
+        c0 = r0
+        while c0 < r1:  # pieces that stay within one period of rows
+            c1 = min(r1, (c0 // period + 1) * period)
+            self._fill(c0, c1, out[c0 - r0:c1 - r0])
+            c0 = c1
+        return out
+
+    def _fill(self, c0: int, c1: int, dst: np.ndarray) -> None:
+        # Rows c0..c1 lie within one period. Sub-grid (q, c) holds the rows
+        # i = q (mod step) and columns j = c (mod step); there the mask row
+        # is i // step and the mask column j // step, one per element.
+        s, period = self.step, self.tile.shape[0]
+        t0 = c0 % period
+        for q in range(s):
+            first = c0 + (-(c0 - q) % s)  # first row i >= c0 with i = q (mod s)
+            if first >= c1:
+                continue
+            n = len(range(first, c1, s))
+            amp = self.amp[first // s:first // s + n]
+            for c in range(s):
+                sub = dst[first - c0::s, c::s]
+                np.multiply(amp[:, :sub.shape[1]],
+                            self.tile_rows[t0 + first - c0:t0 + c1 - c0:s, c::s][:, :sub.shape[1]],
+                            out=sub)
+
+
+def mark_plan(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
+              strength: float = 1.0, local_ssim: float = DEFAULT_LOCAL_SSIM,
+              psnr_db: float = DEFAULT_PSNR_DB) -> MarkPlan:
+    """The mask and the period for ``payload_bits`` under ``seed`` (see :class:`MarkPlan`).
+
+    Parameters are those of :func:`mark_delta`.
+    """
+    pattern: KeyPattern = key_pattern(seed)
+    codeword = ecc.encode(payload_bits)
+    e0 = np.asarray(mark_tile(pattern, codeword), dtype=np.float32)
+    if strength != 1.0:
+        e0 = e0 * np.float32(strength)
+    amp, step = mask_samples(luma, local_ssim=local_ssim, psnr_db=psnr_db)
+    h, w = np.shape(luma)
+    t0, t1 = e0.shape
+    if t0 != t1 or t0 % step:
+        raise ValueError(f"period {e0.shape} must be square and a multiple of the mask step {step}")
+    return MarkPlan(shape=(h, w), step=step, amp=amp, tile=e0,
+                    tile_rows=np.tile(e0, (1, -(-w // t0))))
+
+
 def mark_delta(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
                strength: float = 1.0, local_ssim: float = DEFAULT_LOCAL_SSIM,
                psnr_db: float = DEFAULT_PSNR_DB) -> np.ndarray:
@@ -113,25 +227,6 @@ def mark_delta(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
     -------
     ndarray, (H, W) float32, in luma units (0..255 scale)
     """
-    pattern: KeyPattern = key_pattern(seed)
-    codeword = ecc.encode(payload_bits)
-    e0 = mark_tile(pattern, codeword)
-    amp = perceptual_mask(luma, local_ssim=local_ssim, psnr_db=psnr_db)
-    if strength != 1.0:
-        e0 = e0 * np.float32(strength)
-    return apply_tiled(amp, e0)
-
-
-def apply_tiled(amp: np.ndarray, tile: np.ndarray) -> np.ndarray:
-    """``amp * tiled(tile)`` computed in place on ``amp`` without building the tiled array."""
-    n0, n1 = tile.shape
-    h, w = amp.shape
-    bh, bw = h - h % n0, w - w % n1
-    if bh and bw:
-        blocks = amp[:bh, :bw].reshape(bh // n0, n0, bw // n1, n1)
-        blocks *= tile[None, :, None, :]
-    if bh < h:
-        amp[bh:, :] *= tiled(tile, (h, w))[bh:, :]
-    if bw < w:
-        amp[:bh, bw:] *= tiled(tile, (bh, w))[:, bw:]
-    return amp
+    plan = mark_plan(luma, seed, payload_bits, strength=strength, local_ssim=local_ssim,
+                     psnr_db=psnr_db)
+    return plan.rows(0, plan.shape[0])
