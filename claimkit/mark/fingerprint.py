@@ -95,7 +95,13 @@ def _area_thumbnail(luma: np.ndarray, n: int = THUMB) -> np.ndarray:
         h, w = luma.shape
     rows = _edges(h, n)
     cols = _edges(w, n)
-    sums = np.add.reduceat(luma, rows[:-1], axis=0, dtype=np.float64)
+    # One band of cells at a time: reduceat over one band gives bit for bit
+    # the sums that one reduceat over the whole picture gives (each cell is
+    # summed on its own either way), but its float64 working copy stays in
+    # cache, which makes it several times faster on a large photo.
+    sums = np.empty((n, w), dtype=np.float64)
+    for i in range(n):
+        sums[i] = np.add.reduceat(luma[rows[i]:rows[i + 1]], [0], axis=0, dtype=np.float64)[0]
     sums = np.add.reduceat(sums, cols[:-1], axis=1, dtype=np.float64)
     return sums / np.outer(np.diff(rows), np.diff(cols))
 
@@ -172,9 +178,12 @@ def perceptual_fingerprint(luma: np.ndarray) -> str:
     luma = np.asarray(luma)
     if luma.ndim != 2 or luma.size == 0:
         raise ValueError(f"luma must be a non-empty 2-D array, got shape {luma.shape}")
-    if not np.isfinite(luma).all():
+    with np.errstate(invalid="ignore"):  # inf - inf in a cell: refused just below
+        thumb = _area_thumbnail(luma)
+    # A NaN or infinity anywhere makes its cell's mean non-finite, so the
+    # whole picture needs scanning only when the thumbnail is not finite.
+    if not np.isfinite(thumb).all() and not np.isfinite(luma).all():
         raise ValueError("luma contains NaN or infinite values")
-    thumb = _area_thumbnail(luma)
     thumb -= thumb.mean()
     coeffs = dctn(thumb * _WINDOW, type=2, norm="ortho")[_ROWS, _COLS]
     bits = _thermometer(_levels(coeffs))
