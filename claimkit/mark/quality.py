@@ -26,19 +26,53 @@ PATCH = 512
 def psnr(a: np.ndarray, b: np.ndarray, *, peak: float) -> float:
     """Peak signal-to-noise ratio in dB (inf for identical inputs).
 
-    Integer images are differenced in chunks of rows with exact integer
-    arithmetic, so a 24-megapixel photo needs no float64 copies.
+    Integer images are differenced with exact arithmetic (see
+    :func:`squared_error_sum`), so a 24-megapixel photo needs no float64
+    copies.
     """
     a, b = np.asarray(a), np.asarray(b)
     if a.dtype.kind == "u" and b.dtype == a.dtype:
-        total = 0
-        for r in range(0, a.shape[0], 256):
-            d = (a[r:r + 256].astype(np.int64) - b[r:r + 256]).ravel()
-            total += int(d @ d)
-        mse = total / a.size
-    else:
-        mse = float(np.mean((a.astype(np.float64) - b.astype(np.float64)) ** 2))
+        return psnr_from_sse(squared_error_sum(a, b), a.size, peak=peak)
+    mse = float(np.mean((a.astype(np.float64) - b.astype(np.float64)) ** 2))
     return float("inf") if mse == 0 else 10.0 * np.log10(peak * peak / mse)
+
+
+def psnr_from_sse(sse: int, count: int, *, peak: float) -> float:
+    """PSNR in dB from an exact sum of squared errors over ``count`` samples."""
+    mse = sse / count
+    return float("inf") if mse == 0 else 10.0 * np.log10(peak * peak / mse)
+
+
+# Rows per piece below: ~256k samples, so the float copies stay in cache.
+_PIECE_SAMPLES = 262_144
+
+
+def squared_error_sum(a: np.ndarray, b: np.ndarray) -> int:
+    """Exact sum of ``(a - b)**2`` over two unsigned-integer arrays of one shape.
+
+    8-bit differences are squared in float32 (exact: at most 255**2 < 2**24)
+    and summed in float64 (exact: every partial sum is a whole number below
+    2**53 for up to 138 billion samples); wider integers are summed in
+    int64. Pieces of rows are used so that no full-size temporary is made.
+    """
+    a, b = np.asarray(a), np.asarray(b)
+    if a.shape != b.shape or a.dtype != b.dtype or a.dtype.kind != "u":
+        raise ValueError(f"need two unsigned arrays of one shape, got {a.dtype} {a.shape} "
+                         f"and {b.dtype} {b.shape}")
+    if a.ndim == 0 or a.size == 0:
+        return int(np.sum((a.astype(np.int64) - b) ** 2))
+    rows = max(1, _PIECE_SAMPLES // max(1, a[0].size))
+    total = 0
+    small = a.dtype.itemsize == 1
+    for r in range(0, a.shape[0], rows):
+        if small:
+            d = np.subtract(a[r:r + rows], b[r:r + rows], dtype=np.float32)
+            np.multiply(d, d, out=d)
+            total += int(np.add.reduce(d, axis=None, dtype=np.float64))
+        else:
+            d = a[r:r + rows].astype(np.int64) - b[r:r + rows]
+            total += int(np.add.reduce(d * d, axis=None))
+    return total
 
 
 def _ssim_map_mean(x: np.ndarray, y: np.ndarray, data_range: float) -> float:
