@@ -8,9 +8,11 @@ profile for keys and registration, and leaves all numerics to
 
 from __future__ import annotations
 
+import hashlib
 import hmac
 import os
 from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -20,7 +22,14 @@ from claimkit import __version__
 from claimkit.errors import InputError
 from claimkit.evidence.profile import derive_payload_tag, work_id_for
 from claimkit.evidence.storage import sha256_file
-from claimkit.imageio import Picture, add_luma_delta, read_picture, to_luma, write_picture
+from claimkit.imageio import (
+    Picture,
+    add_luma_delta,
+    read_file_bytes,
+    read_picture,
+    to_luma,
+    write_picture,
+)
 from claimkit.mark import detect, embed, pattern, payload, quality
 from claimkit.mark.detect import Finding
 from claimkit.mark.fingerprint import perceptual_fingerprint
@@ -57,10 +66,20 @@ def _check_size(pic: Picture, minimum: int, what: str) -> None:
 
 
 def load_original(src: str | os.PathLike, *, max_pixels: int | None = None) -> tuple[Picture, str]:
-    """Read a photo to be marked, check it can hold the mark, and hash the file."""
-    pic = read_picture(src, max_pixels=max_pixels)
+    """Read a photo to be marked, check it can hold the mark, and hash the file.
+
+    The file is read once: the SHA-256 returned is of exactly the bytes that
+    were decoded, even if the file changes on disk meanwhile.
+    """
+    data = read_file_bytes(src)
+    pic = read_picture(src, max_pixels=max_pixels, data=data)
     _check_size(pic, MIN_MARK_SIDE, "marking")
-    return pic, sha256_file(src)
+    return pic, hashlib.sha256(data).hexdigest()
+
+
+# Rows marked at a time: a multiple of the mask step and a divisor of the
+# period, small enough that the band's floats stay in the processor cache.
+_MARK_BAND_ROWS = 64
 
 
 def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, strength: float = 1.0,
@@ -71,33 +90,81 @@ def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, stre
     The pixel work shared by :func:`mark_file` and batch workers: no profile,
     no registry. Returns the marked file's SHA-256, the perceptual
     fingerprint, the quality measures and the picture's facts.
+
+    Notes
+    -----
+    The change is made band by band of rows (mask times tiled period, added
+    to every channel, squared error summed for the PSNR) so no full-size
+    float copy of the photo is made. While SSIM is measured, a second thread
+    encodes and writes ``out``, reads it back, hashes it and decodes it for
+    the PSNR of the file as written: Pillow's codecs and file I/O release
+    the interpreter lock, so the two overlap on a second core. The results
+    are those of doing the same steps one after another.
     """
-    luma = to_luma(pic.pixels)
-    delta = embed.mark_delta(luma, seed, np.asarray(bits, dtype=np.uint8), strength=strength)
-    marked = add_luma_delta(pic.pixels, delta)
-    del delta
-    peak = 65535.0 if pic.pixels.dtype == np.uint16 else 255.0
-    measures = {"psnr_db": round(quality.psnr(pic.pixels, marked, peak=peak), 3)}
-    ssim_value, sampled = quality.ssim(pic.pixels, marked, grey=to_luma)
+    pixels = pic.pixels
+    luma = to_luma(pixels)
+    fingerprint = perceptual_fingerprint(luma)
+    plan = embed.mark_plan(luma, seed, np.asarray(bits, dtype=np.uint8), strength=strength)
+    del luma
+    marked = np.empty_like(pixels)
+    h = pixels.shape[0]
+    band = np.empty((min(_MARK_BAND_ROWS, h), pixels.shape[1]), dtype=np.float32)
+    sse = 0
+    for r0 in range(0, h, _MARK_BAND_ROWS):
+        r1 = min(h, r0 + _MARK_BAND_ROWS)
+        delta = plan.rows(r0, r1, out=band[:r1 - r0])
+        add_luma_delta(pixels[r0:r1], delta, out=marked[r0:r1])
+        sse += quality.squared_error_sum(pixels[r0:r1], marked[r0:r1])
+    del plan, band
+    peak = 65535.0 if pixels.dtype == np.uint16 else 255.0
+    measures = {"psnr_db": round(quality.psnr_from_sse(sse, pixels.size, peak=peak), 3)}
+    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="claimkit-write") as pool:
+        job = pool.submit(_write_marked, out, marked, pic, jpeg_quality=jpeg_quality,
+                          force=force, max_pixels=max_pixels, peak=peak)
+        try:
+            ssim_value, sampled = quality.ssim(pixels, marked, grey=to_luma)
+        except BaseException:
+            _discard_written(job, out)
+            raise
+        sha_marked, psnr_file = job.result()
+    del marked
     measures["ssim"] = round(ssim_value, 5)
     measures["ssim_sampled"] = sampled
-    fingerprint = perceptual_fingerprint(luma)
-    del luma
+    if psnr_file is not None:
+        measures["psnr_db_file"] = round(psnr_file, 3)
+    return {
+        "sha256_marked": sha_marked, "fingerprint": fingerprint, "quality": measures,
+        "capture": pic.capture, "width": int(pixels.shape[1]),
+        "height": int(pixels.shape[0]), "bit_depth": pic.bit_depth,
+    }
+
+
+def _write_marked(out: Path, marked: np.ndarray, pic: Picture, *, jpeg_quality: int, force: bool,
+                  max_pixels: int | None, peak: float) -> tuple[str, float | None]:
+    """Write ``out`` and read it back once: its SHA-256 and, if lossy, the PSNR as written.
+
+    If anything fails after the file was written, the file is removed again.
+    """
     write_picture(out, marked, like=pic, quality=jpeg_quality, force=force)
-    del marked
     try:
-        sha_marked = sha256_file(out)
+        data = read_file_bytes(out)
+        psnr_file = None
         if out.suffix.lower() in (".jpg", ".jpeg", ".webp"):
-            written = read_picture(out, max_pixels=max_pixels).pixels
-            measures["psnr_db_file"] = round(quality.psnr(pic.pixels, written, peak=peak), 3)
+            written = read_picture(out, max_pixels=max_pixels, data=data).pixels
+            psnr_file = quality.psnr(pic.pixels, written, peak=peak)
+        return hashlib.sha256(data).hexdigest(), psnr_file
     except BaseException:
         out.unlink(missing_ok=True)
         raise
-    return {
-        "sha256_marked": sha_marked, "fingerprint": fingerprint, "quality": measures,
-        "capture": pic.capture, "width": int(pic.pixels.shape[1]),
-        "height": int(pic.pixels.shape[0]), "bit_depth": pic.bit_depth,
-    }
+
+
+def _discard_written(job, out: Path) -> None:
+    """After a failure elsewhere: wait for the writer and remove what it wrote."""
+    try:
+        job.result()
+    except BaseException:  # noqa: BLE001 - nothing was written, or the writer removed it
+        return
+    out.unlink(missing_ok=True)
 
 
 def mark_file(profile, src: str | os.PathLike, out: str | os.PathLike, *, force: bool = False,
