@@ -1,0 +1,214 @@
+"""The fast marking path gives the same pixels and numbers as the plain formulas.
+
+``mark_picture`` works band by band (luma, mask times tiled period, change added
+to R, G, B, squared error summed) and writes the file on a second thread while
+SSIM is measured. Each piece is checked here against the straightforward
+whole-array formula it replaces, bit for bit where the arithmetic is the same,
+and the recorded measures against outside references named beside each check
+(scikit-image's metrics, hashlib's SHA-256).
+"""
+
+from __future__ import annotations
+
+import hashlib
+from itertools import pairwise
+
+import numpy as np
+import pytest
+from PIL import Image
+from scipy import ndimage
+from skimage import data, metrics
+from skimage.transform import resize
+
+from claimkit import workflow
+from claimkit.errors import InputError
+from claimkit.imageio import add_luma_delta, read_picture, to_luma
+from claimkit.mark import embed, fingerprint, quality
+from claimkit.mark.pattern import TILE
+from tests.engine_helpers import SEED, payload
+
+RNG = np.random.default_rng(11)
+
+
+def big_photo(h: int, w: int) -> np.ndarray:
+    """Coffee enlarged to ``h x w`` with fine grain, so the mask has texture to follow."""
+    up = resize(data.coffee(), (h, w), order=1, preserve_range=True, anti_aliasing=False)
+    grain = np.random.default_rng(5).normal(0, 2.0, up.shape)
+    return np.clip(up + grain, 0, 255).astype(np.uint8)
+
+
+# ------------------------------------------------------------------ luma
+
+
+def test_luma_is_the_one_pass_einsum_bit_for_bit_on_every_8bit_colour():
+    # All 2**24 colours once: the banded form must repeat the float32
+    # arithmetic of the former np.einsum exactly, or every mask would move.
+    cube = np.stack(np.meshgrid(np.arange(256), np.arange(256), np.arange(256), indexing="ij"),
+                    axis=-1).astype(np.uint8).reshape(4096, 4096, 3)
+    weights = np.array([0.299, 0.587, 0.114], dtype=np.float32)
+    ref = np.einsum("ijk,k->ij", cube, weights, dtype=np.float32)
+    assert np.array_equal(to_luma(cube), ref)
+    c16 = RNG.integers(0, 65536, (301, 777, 3), dtype=np.uint16)
+    ref16 = np.einsum("ijk,k->ij", c16, weights, dtype=np.float32) / np.float32(257)
+    assert np.array_equal(to_luma(c16), ref16)
+
+
+@pytest.mark.parametrize("dtype", [np.uint8, np.uint16])
+def test_add_luma_delta_is_the_per_sample_formula(dtype):
+    top = np.iinfo(dtype).max
+    px = RNG.integers(0, top + 1, (203, 1301, 3), dtype=dtype)
+    delta = (RNG.normal(0, 4, px.shape[:2])).astype(np.float32)
+    delta[::7, ::3] = 0.5   # ties: rint rounds half to even
+    delta[::5, ::11] = -2.5
+    scale = np.float32(257 if dtype == np.uint16 else 1)
+    ref = np.clip(np.rint(px.astype(np.float32) + (delta * scale)[..., None]), 0, top).astype(dtype)
+    assert np.array_equal(add_luma_delta(px, delta), ref)
+    out = np.zeros_like(px)
+    assert add_luma_delta(px, delta, out=out) is out and np.array_equal(out, ref)
+    grey = px[..., 0]
+    assert np.array_equal(add_luma_delta(grey, delta), ref[..., 0])
+
+
+# ------------------------------------------------------------------ mask and change
+
+
+def mask_by_formula(luma: np.ndarray) -> np.ndarray:
+    """The documented mask, out of place at full size (the form before banding)."""
+    step = 2 if luma.size > 4_000_000 else 1
+    xs = luma[::step, ::step]
+    size = embed.MASK_WINDOW // step or 1
+    m = ndimage.uniform_filter(xs, size)
+    var = np.maximum(ndimage.uniform_filter(xs * xs, size) - m * m, 0.0)
+    amp2 = (1.0 / embed.DEFAULT_LOCAL_SSIM - 1.0) * (2.0 * var + embed.SSIM_C2)
+    budget = 255.0 ** 2 / 10 ** (embed.DEFAULT_PSNR_DB / 10.0)
+    if float(amp2.mean()) > budget:
+        amp2 = np.minimum(amp2, embed._water_level(amp2, budget))
+    amp = np.sqrt(amp2, dtype=np.float32)
+    amp = np.repeat(np.repeat(amp, step, axis=0), step, axis=1)
+    return amp[: luma.shape[0], : luma.shape[1]]
+
+
+@pytest.mark.parametrize("shape", [(300, 451), (2003, 2001)])  # mask step 1 and step 2, odd sizes
+def test_banded_change_is_mask_times_tiled_period(shape):
+    luma = to_luma(big_photo(*shape))
+    bits = payload(3)
+    plan = embed.mark_plan(luma, SEED, bits, strength=1.3)
+    assert plan.step == (2 if luma.size > 4_000_000 else 1)
+    ref = mask_by_formula(luma) * embed.tiled(plan.tile, luma.shape)
+    whole = embed.mark_delta(luma, SEED, bits, strength=1.3)
+    assert np.array_equal(whole, ref)
+    # bands of any height and start (odd, across period boundaries) join up exactly
+    cuts = np.unique(np.r_[0, RNG.integers(1, shape[0], 12), TILE - 1, TILE + 1, shape[0]])
+    bands = [plan.rows(int(a), int(b)) for a, b in pairwise(cuts)]
+    assert np.array_equal(np.concatenate(bands), ref)
+    assert np.array_equal(embed.perceptual_mask(luma), mask_by_formula(luma))
+
+
+# ------------------------------------------------------------------ fingerprint, PSNR, SSIM
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_thumbnail_is_the_whole_picture_reduceat(dtype):
+    # mixed magnitudes make the summation order visible in float64
+    x = (RNG.choice([1e16, 1.0, -1e16, 3.0, 1e-3], size=(1001, 777))
+         * RNG.random((1001, 777))).astype(dtype)
+    rows = fingerprint._edges(x.shape[0], fingerprint.THUMB)
+    cols = fingerprint._edges(x.shape[1], fingerprint.THUMB)
+    sums = np.add.reduceat(x, rows[:-1], axis=0, dtype=np.float64)
+    sums = np.add.reduceat(sums, cols[:-1], axis=1, dtype=np.float64)
+    ref = sums / np.outer(np.diff(rows), np.diff(cols))
+    assert np.array_equal(fingerprint._area_thumbnail(x), ref)
+
+
+@pytest.mark.parametrize("dtype", [np.uint8, np.uint16])
+def test_squared_error_sum_is_exact_and_psnr_matches_scikit_image(dtype):
+    top = int(np.iinfo(dtype).max)
+    a = RNG.integers(0, top + 1, (517, 389, 3), dtype=dtype)
+    b = RNG.integers(0, top + 1, a.shape, dtype=dtype)
+    exact = sum(int(v) ** 2 for v in (a.astype(np.int64) - b).ravel())  # Python integers
+    assert quality.squared_error_sum(a, b) == exact
+    # skimage.metrics.peak_signal_noise_ratio
+    ref = metrics.peak_signal_noise_ratio(a, b, data_range=top)
+    assert quality.psnr(a, b, peak=top) == pytest.approx(ref, rel=1e-12)
+    assert quality.psnr_from_sse(exact, a.size, peak=top) == quality.psnr(a, b, peak=top)
+
+
+def test_sampled_ssim_agrees_with_scikit_image_on_its_sample():
+    a = big_photo(2100, 3000)            # 6.3 MP: above SAMPLE_ABOVE, so patches are used
+    b = np.clip(a + RNG.normal(0, 2.0, a.shape), 0, 255).astype(np.uint8)
+    ours, sampled = quality.ssim(a, b, grey=to_luma)
+    assert sampled
+    # the documented sample: 24 patches from default_rng(0), row then column
+    rng = np.random.default_rng(0)
+    ref = []
+    for _ in range(24):
+        r = int(rng.integers(0, a.shape[0] - quality.PATCH))
+        c = int(rng.integers(0, a.shape[1] - quality.PATCH))
+        win = (slice(r, r + quality.PATCH), slice(c, c + quality.PATCH))
+        # skimage.metrics.structural_similarity with the Wang et al. settings
+        ref.append(metrics.structural_similarity(
+            to_luma(a[win]).astype(np.float64), to_luma(b[win]).astype(np.float64),
+            data_range=255, gaussian_weights=True, sigma=1.5, use_sample_covariance=False))
+    assert ours == pytest.approx(float(np.mean(ref)), abs=1e-5)
+
+
+# ------------------------------------------------------------------ the file-level path
+
+
+def test_mark_picture_records_what_the_files_hold(tmp_path):
+    rgb = big_photo(2101, 2003)          # 4.2 MP: the half-resolution mask
+    src = tmp_path / "harwick-bay.png"
+    Image.fromarray(rgb).save(src)
+    pic, sha = workflow.load_original(src)
+    assert sha == hashlib.sha256(src.read_bytes()).hexdigest()   # hashlib SHA-256
+    bits = payload(4)
+
+    png = tmp_path / "marked.png"
+    facts = workflow.mark_picture(pic, png, SEED, bits)
+    marked = np.asarray(Image.open(png))
+    # the plain whole-array construction gives the same pixels
+    assert np.array_equal(marked, add_luma_delta(rgb, embed.mark_delta(to_luma(rgb), SEED, bits)))
+    assert facts["sha256_marked"] == hashlib.sha256(png.read_bytes()).hexdigest()
+    psnr = metrics.peak_signal_noise_ratio(rgb, marked, data_range=255)
+    assert facts["quality"]["psnr_db"] == round(psnr, 3) and psnr >= 42.0
+    ssim = metrics.structural_similarity(to_luma(rgb), to_luma(marked), data_range=255,
+                                         gaussian_weights=True, sigma=1.5,
+                                         use_sample_covariance=False)
+    assert facts["quality"]["ssim"] == pytest.approx(ssim, abs=1e-5) and ssim >= 0.985
+    assert "psnr_db_file" not in facts["quality"]
+    assert facts["fingerprint"] == fingerprint.perceptual_fingerprint(to_luma(rgb))
+
+    jpg = tmp_path / "marked.jpg"
+    facts_j = workflow.mark_picture(pic, jpg, SEED, bits)
+    written = read_picture(jpg).pixels
+    assert facts_j["sha256_marked"] == hashlib.sha256(jpg.read_bytes()).hexdigest()
+    assert facts_j["quality"]["psnr_db_file"] == round(
+        metrics.peak_signal_noise_ratio(rgb, written, data_range=255), 3)
+    assert facts_j["quality"]["psnr_db"] == facts["quality"]["psnr_db"]
+
+
+def test_a_failure_while_measuring_leaves_no_marked_file(tmp_path, monkeypatch):
+    src = tmp_path / "tidewater-copy.png"
+    Image.fromarray(data.chelsea()).save(src)
+    pic, _ = workflow.load_original(src)
+    out = tmp_path / "marked.jpg"
+
+    def broken(*args, **kwargs):
+        raise RuntimeError("measurement failed")
+
+    monkeypatch.setattr(workflow.quality, "ssim", broken)
+    with pytest.raises(RuntimeError, match="measurement failed"):
+        workflow.mark_picture(pic, out, SEED, payload())
+    assert not out.exists()
+    assert not list(tmp_path.glob(".marked.jpg.*"))  # no temporary left either
+
+
+def test_an_existing_output_is_left_alone(tmp_path):
+    src = tmp_path / "original.png"
+    Image.fromarray(data.chelsea()).save(src)
+    pic, _ = workflow.load_original(src)
+    out = tmp_path / "taken.jpg"
+    out.write_bytes(b"someone else's file")
+    with pytest.raises(InputError, match="already exists"):
+        workflow.mark_picture(pic, out, SEED, payload())
+    assert out.read_bytes() == b"someone else's file"
