@@ -14,6 +14,7 @@ import os
 from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
+from itertools import repeat
 from pathlib import Path
 
 import numpy as np
@@ -80,6 +81,8 @@ def load_original(src: str | os.PathLike, *, max_pixels: int | None = None) -> t
 # Rows marked at a time: a multiple of the mask step and a divisor of the
 # period, small enough that the band's floats stay in the processor cache.
 _MARK_BAND_ROWS = 64
+# Threads for the band work (NumPy releases the interpreter lock on whole arrays).
+_BAND_WORKERS = 2
 
 
 def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, strength: float = 1.0,
@@ -93,29 +96,30 @@ def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, stre
 
     Notes
     -----
-    The change is made band by band of rows (mask times tiled period, added
-    to every channel, squared error summed for the PSNR) so no full-size
-    float copy of the photo is made. While SSIM is measured, a second thread
-    encodes and writes ``out``, reads it back, hashes it and decodes it for
-    the PSNR of the file as written: Pillow's codecs and file I/O release
-    the interpreter lock, so the two overlap on a second core. The results
-    are those of doing the same steps one after another.
+    Luma and the change are made band by band of rows (mask times tiled
+    period, added to every channel, squared error summed for the PSNR), so
+    no full-size float copy of the photo is made, and two threads share the
+    bands (NumPy releases the interpreter lock on whole-array operations);
+    the fingerprint is taken while the mask is computed. While SSIM is
+    measured, another thread encodes and writes ``out``, reads it back,
+    hashes it and decodes it for the PSNR of the file as written (Pillow's
+    codecs and file I/O release the lock too). Every band is computed by
+    the same operations as in one pass, so the pixels and numbers are those
+    of doing the steps one after another.
     """
     pixels = pic.pixels
-    luma = to_luma(pixels)
-    fingerprint = perceptual_fingerprint(luma)
-    plan = embed.mark_plan(luma, seed, np.asarray(bits, dtype=np.uint8), strength=strength)
-    del luma
+    starts = range(0, pixels.shape[0], _MARK_BAND_ROWS)
+    ends = [min(pixels.shape[0], r0 + _MARK_BAND_ROWS) for r0 in starts]
+    luma = np.empty(pixels.shape[:2], dtype=np.float32)
     marked = np.empty_like(pixels)
-    h = pixels.shape[0]
-    band = np.empty((min(_MARK_BAND_ROWS, h), pixels.shape[1]), dtype=np.float32)
-    sse = 0
-    for r0 in range(0, h, _MARK_BAND_ROWS):
-        r1 = min(h, r0 + _MARK_BAND_ROWS)
-        delta = plan.rows(r0, r1, out=band[:r1 - r0])
-        add_luma_delta(pixels[r0:r1], delta, out=marked[r0:r1])
-        sse += quality.squared_error_sum(pixels[r0:r1], marked[r0:r1])
-    del plan, band
+    with ThreadPoolExecutor(max_workers=_BAND_WORKERS, thread_name_prefix="claimkit-band") as pool:
+        list(pool.map(_luma_band, repeat(pixels), repeat(luma), starts, ends))
+        fingerprint_job = pool.submit(perceptual_fingerprint, luma)  # beside the mask
+        plan = embed.mark_plan(luma, seed, np.asarray(bits, dtype=np.uint8), strength=strength)
+        fingerprint = fingerprint_job.result()
+        del luma
+        sse = sum(pool.map(_mark_band, repeat(plan), repeat(pixels), repeat(marked), starts, ends))
+    del plan
     peak = 65535.0 if pixels.dtype == np.uint16 else 255.0
     measures = {"psnr_db": round(quality.psnr_from_sse(sse, pixels.size, peak=peak), 3)}
     with ThreadPoolExecutor(max_workers=1, thread_name_prefix="claimkit-write") as pool:
@@ -137,6 +141,17 @@ def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, stre
         "capture": pic.capture, "width": int(pixels.shape[1]),
         "height": int(pixels.shape[0]), "bit_depth": pic.bit_depth,
     }
+
+
+def _luma_band(pixels: np.ndarray, luma: np.ndarray, r0: int, r1: int) -> None:
+    luma[r0:r1] = to_luma(pixels[r0:r1])
+
+
+def _mark_band(plan: embed.MarkPlan, pixels: np.ndarray, marked: np.ndarray, r0: int,
+               r1: int) -> int:
+    """Mark rows ``r0:r1`` into ``marked``; their exact sum of squared changes."""
+    add_luma_delta(pixels[r0:r1], plan.rows(r0, r1), out=marked[r0:r1])
+    return quality.squared_error_sum(pixels[r0:r1], marked[r0:r1])
 
 
 def _write_marked(out: Path, marked: np.ndarray, pic: Picture, *, jpeg_quality: int, force: bool,
