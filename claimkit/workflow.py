@@ -100,12 +100,12 @@ def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, stre
     period, added to every channel, squared error summed for the PSNR), so
     no full-size float copy of the photo is made, and two threads share the
     bands (NumPy releases the interpreter lock on whole-array operations);
-    the fingerprint is taken while the mask is computed. While SSIM is
-    measured, another thread encodes and writes ``out``, reads it back,
-    hashes it and decodes it for the PSNR of the file as written (Pillow's
-    codecs and file I/O release the lock too). Every band is computed by
-    the same operations as in one pass, so the pixels and numbers are those
-    of doing the steps one after another.
+    the fingerprint and the mask's two local filters also run side by side.
+    While SSIM is measured, another thread encodes and writes ``out``, reads
+    it back, hashes it and decodes it for the PSNR of the file as written
+    (Pillow's codecs and file I/O release the lock too). Every piece is
+    computed by the same operations as in one pass, so the pixels and
+    numbers are those of doing the steps one after another.
     """
     pixels = pic.pixels
     starts = range(0, pixels.shape[0], _MARK_BAND_ROWS)
@@ -114,8 +114,9 @@ def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, stre
     marked = np.empty_like(pixels)
     with ThreadPoolExecutor(max_workers=_BAND_WORKERS, thread_name_prefix="claimkit-band") as pool:
         list(pool.map(_luma_band, repeat(pixels), repeat(luma), starts, ends))
-        fingerprint_job = pool.submit(perceptual_fingerprint, luma)  # beside the mask
-        plan = embed.mark_plan(luma, seed, np.asarray(bits, dtype=np.uint8), strength=strength)
+        fingerprint_job = pool.submit(perceptual_fingerprint, luma)
+        plan = embed.mark_plan(luma, seed, np.asarray(bits, dtype=np.uint8), strength=strength,
+                               executor=pool)
         fingerprint = fingerprint_job.result()
         del luma
         sse = sum(pool.map(_mark_band, repeat(plan), repeat(pixels), repeat(marked), starts, ends))

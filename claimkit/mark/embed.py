@@ -24,6 +24,7 @@ References
 
 from __future__ import annotations
 
+from concurrent.futures import Executor
 from dataclasses import dataclass
 
 import numpy as np
@@ -69,19 +70,28 @@ def mask_step(shape: tuple[int, int]) -> int:
 
 
 def mask_samples(luma: np.ndarray, *, local_ssim: float = DEFAULT_LOCAL_SSIM,
-                 psnr_db: float = DEFAULT_PSNR_DB) -> tuple[np.ndarray, int]:
+                 psnr_db: float = DEFAULT_PSNR_DB,
+                 executor: Executor | None = None) -> tuple[np.ndarray, int]:
     """The mask at its own resolution: amplitude at every ``step``-th row and column.
 
     Returns ``(amp, step)``; pixel ``(i, j)`` of the picture gets
     ``amp[i // step, j // step]``. :func:`perceptual_mask` is this, upsampled.
+    With an ``executor`` the local mean is filtered on one of its threads
+    while this one filters the local mean square (scipy's filters release
+    the interpreter lock); the result is the same.
     """
     x = np.asarray(luma, dtype=np.float32)
     # Work at half resolution for large pictures: the mask is smooth anyway.
     step = mask_step(x.shape)
     xs = x[::step, ::step]
     size = MASK_WINDOW // step or 1
-    m = ndimage.uniform_filter(xs, size)
-    m2 = ndimage.uniform_filter(xs * xs, size)
+    if executor is not None:
+        mean_job = executor.submit(ndimage.uniform_filter, xs, size)
+        m2 = ndimage.uniform_filter(xs * xs, size)
+        m = mean_job.result()
+    else:
+        m = ndimage.uniform_filter(xs, size)
+        m2 = ndimage.uniform_filter(xs * xs, size)
     # amp2 = (1/q - 1) (2 var + C2), var = max(m2 - m^2, 0), computed in place
     # (the same float32 operations as the out-of-place form, so the same bits).
     np.multiply(m, m, out=m)
@@ -190,17 +200,18 @@ class MarkPlan:
 
 def mark_plan(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
               strength: float = 1.0, local_ssim: float = DEFAULT_LOCAL_SSIM,
-              psnr_db: float = DEFAULT_PSNR_DB) -> MarkPlan:
+              psnr_db: float = DEFAULT_PSNR_DB, executor: Executor | None = None) -> MarkPlan:
     """The mask and the period for ``payload_bits`` under ``seed`` (see :class:`MarkPlan`).
 
-    Parameters are those of :func:`mark_delta`.
+    Parameters are those of :func:`mark_delta`; ``executor`` (optional) lends
+    a thread to :func:`mask_samples`.
     """
     pattern: KeyPattern = key_pattern(seed)
     codeword = ecc.encode(payload_bits)
     e0 = np.asarray(mark_tile(pattern, codeword), dtype=np.float32)
     if strength != 1.0:
         e0 = e0 * np.float32(strength)
-    amp, step = mask_samples(luma, local_ssim=local_ssim, psnr_db=psnr_db)
+    amp, step = mask_samples(luma, local_ssim=local_ssim, psnr_db=psnr_db, executor=executor)
     h, w = np.shape(luma)
     t0, t1 = e0.shape
     if t0 != t1 or t0 % step:
