@@ -12,7 +12,7 @@ load, and ``mark`` overlaps writing the file with measuring SSIM on a
 second thread, so its CPU time can exceed its wall time.
 
 ``--breakdown`` also times the steps of one ``mark`` run one after another
-(the writer thread replaced by a direct call) and prints each step's share.
+(thread pools replaced by direct calls) and prints each step's share.
 """
 
 from __future__ import annotations
@@ -55,7 +55,7 @@ print(json.dumps({"seconds": best, "cpu_seconds": best_cpu,
 """
 
 # One mark, step by step: each function mark_file calls is wrapped with a timer
-# and the writer thread is replaced by a direct call, so the steps add up.
+# and the thread pools are replaced by direct calls, so the steps add up.
 BREAKDOWN = r"""
 import json, os, sys, time
 from concurrent.futures import Future
@@ -76,6 +76,8 @@ class Direct:
         except BaseException as exc:
             f.set_exception(exc)
         return f
+    def map(self, fn, *iterables):
+        return [fn(*args) for args in zip(*iterables)]
 
 workflow.ThreadPoolExecutor = Direct
 spent = {}
