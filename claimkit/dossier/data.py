@@ -158,6 +158,8 @@ def _constants(module) -> dict:
     out = {}
     for name in sorted(vars(module)):
         v = getattr(module, name)
+        if isinstance(v, tuple) and not all(isinstance(x, (int, float, str)) for x in v):
+            continue   # e.g. the readable mark formats, listed on their own
         if name.isupper() and not name.startswith("_") and isinstance(v, (int, float, str, tuple)) \
                 and not isinstance(v, bool):
             out[f"{module.__name__.rsplit('.', 1)[-1]}.{name}"] = canonicalize(v)
@@ -170,6 +172,7 @@ def _engine_parameters() -> dict:
     return {
         "tile_px": pattern.TILE, "payload_bits": pattern.PAYLOAD_BITS,
         "pilot_spots": pattern.PILOT_SPOTS, "code_spots": pattern.CODE_SPOTS,
+        "formats_read": [f"{f.name}: {f.pilots} pilot spots, {f.code!r}" for f in pattern.READABLE],
         "prefilter_px": getattr(detect, "PREFILTER", None),
         "geometries_tried": detect.GEOMETRIES, "quarter_turns_and_mirrors": detect.DIHEDRAL,
         "subpixel_phases": len(detect.PHASES), "hypotheses": detect.hypotheses(),

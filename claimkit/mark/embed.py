@@ -27,7 +27,6 @@ from __future__ import annotations
 import numpy as np
 from scipy import ndimage
 
-from claimkit.mark import ecc
 from claimkit.mark.pattern import KeyPattern, key_pattern, mark_tile
 
 SSIM_C2 = (0.03 * 255.0) ** 2       # the SSIM stabiliser for 8-bit data (Wang et al. 2004)
@@ -114,7 +113,7 @@ def mark_delta(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
     ndarray, (H, W) float32, in luma units (0..255 scale)
     """
     pattern: KeyPattern = key_pattern(seed)
-    codeword = ecc.encode(payload_bits)
+    codeword = pattern.codeword(payload_bits)
     e0 = mark_tile(pattern, codeword)
     amp = perceptual_mask(luma, local_ssim=local_ssim, psnr_db=psnr_db)
     if strength != 1.0:
