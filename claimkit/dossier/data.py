@@ -172,7 +172,7 @@ def _engine_parameters() -> dict:
     return {
         "tile_px": pattern.TILE, "payload_bits": pattern.PAYLOAD_BITS,
         "pilot_spots": pattern.PILOT_SPOTS, "code_spots": pattern.CODE_SPOTS,
-        "formats_read": [f"{f.name}: {f.pilots} pilot spots, {f.code!r}" for f in pattern.READABLE],
+        "formats_read": "; ".join(f.describe() for f in pattern.READABLE),
         "prefilter_px": getattr(detect, "PREFILTER", None),
         "geometries_tried": detect.GEOMETRIES, "quarter_turns_and_mirrors": detect.DIHEDRAL,
         "subpixel_phases": len(detect.PHASES), "hypotheses": detect.hypotheses(),

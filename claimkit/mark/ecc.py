@@ -65,8 +65,12 @@ class ConvCode:
         self._signs = 2.0 * self.out - 1.0   # +1 for a coded 1
 
     def __repr__(self) -> str:
-        gens = ", ".join(f"{g:o}" for g in self.generators)
-        return f"ConvCode(rate 1/{self.rate_inv}, constraint {self.constraint}, generators {gens} octal)"
+        return f"ConvCode({self.describe()})"
+
+    def describe(self) -> str:
+        """'convolutional, rate 1/2, constraint 9, generators 561/753 (octal)'."""
+        gens = "/".join(f"{g:o}" for g in self.generators)
+        return f"convolutional, rate 1/{self.rate_inv}, constraint {self.constraint}, generators {gens} (octal)"
 
     def coded_length(self, n_bits: int) -> int:
         """Number of coded symbols for ``n_bits`` payload bits (tail included)."""

@@ -50,6 +50,9 @@ class MarkFormat:
     def code_spots(self) -> int:
         return self.code.coded_length(PAYLOAD_BITS)
 
+    def describe(self) -> str:
+        return f"{self.name}: {self.pilots} pilot and {self.code_spots} code spots, {self.code.describe()}"
+
 
 # Format 2 carries the same 64 bits on 192 spots instead of 280. The recovered
 # message's error grows with the number of spots twice over (more spots, and
