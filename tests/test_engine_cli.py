@@ -12,9 +12,9 @@ import numpy as np
 import pytest
 from PIL import Image
 from skimage import data
-from claimkit.mark.pattern import MARK_FORMAT
 
 from claimkit.cli import main
+from claimkit.mark.pattern import MARK_FORMAT
 
 CK = [sys.executable, "-m", "claimkit"]
 
