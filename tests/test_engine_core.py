@@ -13,7 +13,6 @@ from claimkit.mark import detect, ecc, payload, quality, stats
 from claimkit.mark.pattern import TILE, key_pattern, mark_tile
 from tests.engine_helpers import SEED
 
-
 CODES = {"rate_half": (ecc.RATE_HALF, 144), "rate_third": (ecc.RATE_THIRD, 216)}
 
 
