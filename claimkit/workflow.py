@@ -50,7 +50,7 @@ def mark_parameters(strength: float) -> dict:
         "pilot_spots": pattern.PILOT_SPOTS,
         "code_spots": pattern.CODE_SPOTS,
         "spot_sigma_px": pattern.SPOT_SIGMA,
-        "code": "convolutional, rate 1/3, constraint 9, generators 557/663/711 (octal)",
+        "code": pattern.CURRENT.code.describe(),
         "mask": "SSIM-derived local amplitude",
         "local_ssim_target": embed.DEFAULT_LOCAL_SSIM,
         "psnr_cap_db": embed.DEFAULT_PSNR_DB,

@@ -14,6 +14,7 @@ from PIL import Image
 from skimage import data
 
 from claimkit.cli import main
+from claimkit.mark.pattern import MARK_FORMAT
 
 CK = [sys.executable, "-m", "claimkit"]
 
@@ -125,3 +126,13 @@ def test_sixteen_bit_grey_round_trip(profile_home, tmp_path, capsys):
     capsys.readouterr()
     assert main(["examine", "--json", str(out)]) == 0
     assert json.loads(capsys.readouterr().out)["detected"]
+
+
+def test_verdict_names_an_older_mark_format():
+    from claimkit.cli.engine import _verdict_line
+    rep = {"file": "copy.jpg", "detected": True, "work_id": "W-0001-000001", "registered": True,
+           "false_alarm_text": "below 1e-12", "geometry_text": "no rotation, scaling or mirroring",
+           "message_psnr_db": 25.0, "mark_format": "claimkit-mark/1"}
+    assert "older format claimkit-mark/1" in _verdict_line(rep)
+    rep["mark_format"] = MARK_FORMAT
+    assert "older format" not in _verdict_line(rep)

@@ -13,27 +13,63 @@ from claimkit.mark import detect, ecc, payload, quality, stats
 from claimkit.mark.pattern import TILE, key_pattern, mark_tile
 from tests.engine_helpers import SEED
 
+CODES = {"rate_half": (ecc.RATE_HALF, 144), "rate_third": (ecc.RATE_THIRD, 216)}
 
-def test_convolutional_code_round_trip_and_correction():
+
+@pytest.mark.parametrize("name", CODES)
+def test_convolutional_code_round_trip_and_correction(name):
+    code_, length = CODES[name]
     rng = np.random.default_rng(0)
     for _ in range(20):
         bits = rng.integers(0, 2, 64)
-        code = ecc.encode(bits)
-        assert code.size == 216
-        assert np.array_equal(ecc.decode(2.0 * code - 1.0, 64), bits)
-        # Per-symbol SNR 2 (about 10 % raw symbol errors): the code must fix them all.
+        code = code_.encode(bits)
+        assert code.size == length == code_.coded_length(64)
+        assert np.array_equal(code_.decode(2.0 * code - 1.0, 64), bits)
+        # Per-symbol SNR 2 (about 2 % raw symbol errors): the code must fix them all.
         noisy = 2.0 * (2.0 * code - 1.0) + rng.normal(0, 1, code.size)
         assert (np.sign(noisy) != 2 * code - 1).sum() > 0
-        assert np.array_equal(ecc.decode(noisy, 64), bits)
+        assert np.array_equal(code_.decode(noisy, 64), bits)
 
 
-def test_encoder_matches_generator_polynomials_by_hand():
+@pytest.mark.parametrize("name, generators", [("rate_half", (0o561, 0o753)),
+                                              ("rate_third", (0o557, 0o663, 0o711))])
+def test_encoder_matches_generator_polynomials_by_hand(name, generators):
     # A single 1 followed by zeros: the output is the impulse response, i.e. the
-    # generator polynomials 557, 663, 711 (octal) read bit by bit from the MSB.
-    out = ecc.encode(np.array([1] + [0] * 8)).reshape(-1, 3)[:9]
-    for j, g in enumerate((0o557, 0o663, 0o711)):
+    # generator polynomials (octal) read bit by bit from the MSB.
+    code = CODES[name][0]
+    k = len(generators)
+    out = code.encode(np.array([1] + [0] * 8)).reshape(-1, k)[:9]
+    for j, g in enumerate(generators):
         taps = [(g >> (8 - t)) & 1 for t in range(9)]
         assert out[:, j].tolist() == taps
+
+
+def test_free_distances_match_the_published_table():
+    # K. J. Larsen, IEEE Trans. Inf. Theory 19(3), 1973, tables I and II: constraint 9,
+    # rate 1/2 (561, 753) has free distance 12; rate 1/3 (557, 663, 711) has 18.
+    assert ecc.RATE_HALF.free_distance() == 12
+    assert ecc.RATE_THIRD.free_distance() == 18
+
+
+def test_known_bits_keep_the_decoder_to_them():
+    rng = np.random.default_rng(5)
+    bits = rng.integers(0, 2, 64)
+    known = np.full(64, -1)
+    known[:16] = 1 - bits[:16]        # the examiner "knows" the wrong owner tag
+    out = ecc.RATE_HALF.decode(2.0 * ecc.RATE_HALF.encode(bits) - 1.0, 64, known=known)
+    # Known bits are obeyed even when wrong; past the code's memory (8 bits) the
+    # clean symbols win again.
+    assert np.array_equal(out[:16], known[:16]) and np.array_equal(out[24:], bits[24:])
+
+
+def test_current_format_pilots_are_a_prefix_of_the_older_format():
+    from claimkit.mark.pattern import FORMAT_1, FORMAT_2
+    new, old = key_pattern(SEED, fmt=FORMAT_2), key_pattern(SEED, fmt=FORMAT_1)
+    assert new.pilot_pos.shape == (48, 2) and old.pilot_pos.shape == (64, 2)
+    assert np.array_equal(new.pilot_pos, old.pilot_pos[:48])
+    assert np.array_equal(new.pilot_sign, old.pilot_sign[:48])
+    assert np.array_equal(new.carrier_phase, old.carrier_phase)
+    assert new.code_pos.shape == (144, 2) and old.code_pos.shape == (216, 2)
 
 
 def test_carrier_has_flat_magnitude_and_delta_autocorrelation():
@@ -46,7 +82,7 @@ def test_carrier_has_flat_magnitude_and_delta_autocorrelation():
     acf = np.real(np.fft.ifft2(np.abs(np.fft.fft2(carrier)) ** 2))
     off = np.abs(acf.ravel()[1:]).max()
     assert off < 0.01 * acf[0, 0]
-    tile = mark_tile(pat, np.zeros(216, dtype=int))
+    tile = mark_tile(pat, np.zeros(144, dtype=int))
     assert tile.shape == (TILE, TILE) and abs(float(tile.mean())) < 1e-5
 
 

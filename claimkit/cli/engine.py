@@ -7,6 +7,7 @@ from pathlib import Path
 from claimkit.cli.common import home_dir, passphrase, print_json
 from claimkit.errors import InputError
 from claimkit.mark import detect
+from claimkit.mark.pattern import MARK_FORMAT
 
 
 def _open_profile(args):
@@ -50,6 +51,8 @@ def _verdict_line(rep: dict) -> str:
                 f"(best score {rep['score_pilot']:.1f}; false-alarm bound {rep['false_alarm_text']})")
     who = rep["work_id"] or "an unreadable payload"
     reg = "" if rep.get("registered") else " (not in this registry)"
+    if rep.get("mark_format") not in (None, MARK_FORMAT):
+        reg += f" (marked in the older format {rep['mark_format']})"
     return (f"{rep['file']}: MARK FOUND, work {who}{reg}; chance of this without the mark "
             f"{rep['false_alarm_text']}; {rep['geometry_text']}; "
             f"message PSNR {rep['message_psnr_db']:.1f} dB")

@@ -52,6 +52,8 @@ REFERENCES_CITED = [
     "J. Amer. Statist. Assoc. 58(301), 13-30, 1963. doi:10.1080/01621459.1963.10500830"),
     ("A. J. Viterbi, \"Error bounds for convolutional codes and an asymptotically optimum "
     "decoding algorithm\", IEEE Trans. Inf. Theory 13(2), 260-269, 1967. doi:10.1109/TIT.1967.1054010"),
+    ("K. J. Larsen, \"Short convolutional codes with maximal free distance for rates 1/2, 1/3, "
+    "and 1/4\", IEEE Trans. Inf. Theory 19(3), 371-372, 1973. doi:10.1109/TIT.1973.1055014"),
     ("Z. Wang, A. C. Bovik, H. R. Sheikh, E. P. Simoncelli, \"Image quality assessment: from "
     "error visibility to structural similarity\", IEEE Trans. Image Process. 13(4), 600-612, "
     "2004. doi:10.1109/TIP.2003.819861"),
@@ -158,6 +160,8 @@ def _constants(module) -> dict:
     out = {}
     for name in sorted(vars(module)):
         v = getattr(module, name)
+        if isinstance(v, tuple) and not all(isinstance(x, (int, float, str)) for x in v):
+            continue   # e.g. the readable mark formats, listed on their own
         if name.isupper() and not name.startswith("_") and isinstance(v, (int, float, str, tuple)) \
                 and not isinstance(v, bool):
             out[f"{module.__name__.rsplit('.', 1)[-1]}.{name}"] = canonicalize(v)
@@ -170,6 +174,7 @@ def _engine_parameters() -> dict:
     return {
         "tile_px": pattern.TILE, "payload_bits": pattern.PAYLOAD_BITS,
         "pilot_spots": pattern.PILOT_SPOTS, "code_spots": pattern.CODE_SPOTS,
+        "formats_read": "; ".join(f.describe() for f in pattern.READABLE),
         "prefilter_px": getattr(detect, "PREFILTER", None),
         "geometries_tried": detect.GEOMETRIES, "quarter_turns_and_mirrors": detect.DIHEDRAL,
         "subpixel_phases": len(detect.PHASES), "hypotheses": detect.hypotheses(),

@@ -36,9 +36,10 @@ from functools import lru_cache
 import numpy as np
 from scipy import ndimage
 
-from claimkit.mark import ecc, geometry, stats
+from claimkit.mark import geometry, stats
 from claimkit.mark.pattern import (
     PAYLOAD_BITS,
+    READABLE,
     TILE,
     KeyPattern,
     key_pattern,
@@ -63,6 +64,11 @@ def hypotheses(tile: int = TILE) -> int:
     return GEOMETRIES * DIHEDRAL * len(PHASES) * tile * tile
 
 
+def payloads_counted(payload_space: int) -> int:
+    """Payloads the decoder could accept: every valid payload in every readable format."""
+    return payload_space * len(READABLE)
+
+
 @dataclass
 class Finding:
     """The result of examining one copy under one key (pure data, JSON-ready via ``to_json``)."""
@@ -72,9 +78,10 @@ class Finding:
     z_pilot: float
     z_full: float | None
     hypotheses: int
-    payload_space: int
+    payload_space: int                   # payloads counted in the bound (all readable formats)
     payload_bits: list[int] | None
     payload_valid: bool
+    mark_format: str | None              # format whose code decoded a valid payload
     message_psnr_db: float | None        # spot estimate vs reference (see _message)
     message_psnr_raw_db: float | None    # raw correlation map vs reference
     message_psnr_flat_db: float          # an all-flat guess, for scale
@@ -100,6 +107,7 @@ class Finding:
             "hypotheses": self.hypotheses,
             "payload_space": self.payload_space,
             "payload_valid": self.payload_valid,
+            "mark_format": self.mark_format,
             "message_psnr_db": _r2(self.message_psnr_db),
             "message_psnr_raw_db": _r2(self.message_psnr_raw_db),
             "message_psnr_flat_db": _r2(self.message_psnr_flat_db),
@@ -314,22 +322,29 @@ def _recovered(prep, pattern, ramps, g, d, ph) -> np.ndarray:
     return np.real(np.fft.ifft2(rec_ft))
 
 
-def _decode_at(prep, pattern, ramps, g, d, ph, shift, payload_check, known_bits):
-    n = pattern.tile
-    weight = pattern.spot_ft * pattern.band
-    rec = _recovered(prep, pattern, ramps, g, d, ph)
-    pos = (pattern.code_pos + shift) % n
-    soft = rec[pos[:, 0], pos[:, 1]]
-    bits = ecc.decode(soft, PAYLOAD_BITS, known=known_bits)
-    valid = bool(payload_check(bits)) if payload_check is not None else False
-    z_full = None
-    if valid:
-        allpos, allsign = spot_signs(pattern, ecc.encode(bits))
+def _decode_at(prep, patterns, ramps, g, d, ph, shift, payload_check, known_bits):
+    """Decode one placement with each readable format's code in turn; the first valid payload wins.
+
+    All formats share the carrier and the spot shape, so the recovered map is
+    the same for each; only the code spots' positions and the code differ.
+    """
+    n = patterns[0].tile
+    weight = patterns[0].spot_ft * patterns[0].band
+    rec = _recovered(prep, patterns[0], ramps, g, d, ph)
+    first = None
+    for pattern in patterns:
+        pos = (pattern.code_pos + shift) % n
+        bits = pattern.fmt.code.decode(rec[pos[:, 0], pos[:, 1]], PAYLOAD_BITS, known=known_bits)
+        if payload_check is None or not payload_check(bits):
+            first = first or (pattern, bits)
+            continue
+        allpos, allsign = spot_signs(pattern, pattern.codeword(bits))
         q_ft = _delta_ft(allpos, allsign, n)
         sigma = np.sqrt(np.sum(np.abs(prep.spectra[g][d] * weight * q_ft) ** 2)) / n ** 2
         p = (allpos + shift) % n
         z_full = float(np.sum(allsign * rec[p[:, 0], p[:, 1]]) / sigma)
-    return bits, valid, z_full, rec
+        return pattern, bits, True, z_full, rec
+    return first[0], first[1], False, None, rec
 
 
 def _fit_psnr(rec: np.ndarray, ref: np.ndarray) -> tuple[float, np.ndarray]:
@@ -351,7 +366,7 @@ def _message(pattern, rec, shift, bits):
     the spots of the decoded payload re-encoded) after a gain/offset fit.
     """
     raw = np.roll(rec, (-shift[0], -shift[1]), axis=(0, 1))
-    codeword = ecc.encode(bits)
+    codeword = pattern.codeword(bits)
     ref = message_template(pattern, codeword)
     pos, _ = spot_signs(pattern, codeword)
     n = pattern.tile
@@ -397,32 +412,36 @@ def examine_luma(luma: np.ndarray, seed: bytes, *,
     Finding
     """
     prep = prepared or prepare(luma, workers=workers)
-    pattern = key_pattern(seed)
-    n = pattern.tile
+    patterns = [key_pattern(seed, fmt=f) for f in READABLE]
+    n = patterns[0].tile
     ramps = _ramps(n)
-    surf = _surfaces(prep, pattern, ramps)
+    # The current format's pilots are a prefix of every older format's, so one
+    # pilot search serves all of them.
+    surf = _surfaces(prep, patterns[0], ramps)
     flat = surf.reshape(-1)
     top = np.argpartition(flat, -DECODE_TRIES)[-DECODE_TRIES:]
     order = top[np.argsort(flat[top])[::-1]]
+    counted = payloads_counted(payload_space)
     best = None
     for idx in order:
         g, d, ph, r, c = np.unravel_index(idx, surf.shape)
         shift = np.array([r, c])
-        bits, valid, z_full, rec = _decode_at(prep, pattern, ramps, g, d, ph, shift,
-                                              payload_check, known_bits)
-        lp = stats.log10_false_alarm(float(flat[idx]), z_full, hypotheses(n), payload_space)
+        pattern, bits, valid, z_full, rec = _decode_at(prep, patterns, ramps, g, d, ph, shift,
+                                                       payload_check, known_bits)
+        lp = stats.log10_false_alarm(float(flat[idx]), z_full, hypotheses(n), counted)
         if best is None or lp < best[0]:
-            best = (lp, (g, d, ph, shift), bits, valid, z_full, float(flat[idx]), rec)
-    lp, (g, d, ph, shift), bits, valid, z_full, z_pilot, rec_map = best
+            best = (lp, (g, d, ph, shift), pattern, bits, valid, z_full, float(flat[idx]), rec)
+    lp, (g, d, ph, shift), pattern, bits, valid, z_full, z_pilot, rec_map = best
     detected = lp <= np.log10(threshold)
     psnr, psnr_raw, psnr_zero, rec, rec_raw, ref = _message(pattern, rec_map, shift, bits)
     geom = describe_geometry(prep, g, d, PHASES[ph], shift, n) if detected else {}
     decoy_scores = decoy_control(prep, decoys, decoy_seed) if decoys else []
     return Finding(
         detected=bool(detected), log10_false_alarm=lp, z_pilot=z_pilot, z_full=z_full,
-        hypotheses=hypotheses(n), payload_space=payload_space,
+        hypotheses=hypotheses(n), payload_space=counted,
         payload_bits=[int(b) for b in bits] if detected else None,
         payload_valid=valid and bool(detected),
+        mark_format=pattern.fmt.name if valid and detected else None,
         message_psnr_db=float(psnr) if detected else None,
         message_psnr_raw_db=float(psnr_raw) if detected else None,
         message_psnr_flat_db=float(psnr_zero),

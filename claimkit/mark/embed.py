@@ -30,7 +30,6 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage
 
-from claimkit.mark import ecc
 from claimkit.mark.pattern import KeyPattern, key_pattern, mark_tile
 
 SSIM_C2 = (0.03 * 255.0) ** 2       # the SSIM stabiliser for 8-bit data (Wang et al. 2004)
@@ -207,7 +206,7 @@ def mark_plan(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
     a thread to :func:`mask_samples`.
     """
     pattern: KeyPattern = key_pattern(seed)
-    codeword = ecc.encode(payload_bits)
+    codeword = pattern.codeword(payload_bits)
     e0 = np.asarray(mark_tile(pattern, codeword), dtype=np.float32)
     if strength != 1.0:
         e0 = e0 * np.float32(strength)
