@@ -102,6 +102,7 @@ def test_banded_change_is_mask_times_tiled_period(shape):
     bands = [plan.rows(int(a), int(b)) for a, b in pairwise(cuts)]
     assert np.array_equal(np.concatenate(bands), ref)
     assert np.array_equal(embed.perceptual_mask(luma), mask_by_formula(luma))
+    assert np.array_equal(embed.apply_tiled(embed.perceptual_mask(luma), plan.tile), ref)
 
 
 # ------------------------------------------------------------------ fingerprint, PSNR, SSIM

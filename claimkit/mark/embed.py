@@ -130,6 +130,25 @@ def tiled(tile: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
     return np.tile(tile, reps)[: shape[0], : shape[1]]
 
 
+def apply_tiled(amp: np.ndarray, tile: np.ndarray) -> np.ndarray:
+    """``amp * tiled(tile)`` computed in place on ``amp`` without building the tiled array.
+
+    For a full-size mask (e.g. from :func:`perceptual_mask`); marking itself
+    uses :class:`MarkPlan`, which gives the same products band by band.
+    """
+    n0, n1 = tile.shape
+    h, w = amp.shape
+    bh, bw = h - h % n0, w - w % n1
+    if bh and bw:
+        blocks = amp[:bh, :bw].reshape(bh // n0, n0, bw // n1, n1)
+        blocks *= tile[None, :, None, :]
+    if bh < h:
+        amp[bh:, :] *= tiled(tile, (h, w))[bh:, :]
+    if bw < w:
+        amp[:bh, bw:] *= tiled(tile, (bh, w))[:, bw:]
+    return amp
+
+
 @dataclass(frozen=True)
 class MarkPlan:
     """Everything needed to produce the mark's change, row band by row band.
