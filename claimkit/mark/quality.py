@@ -50,10 +50,10 @@ _PIECE_SAMPLES = 262_144
 def squared_error_sum(a: np.ndarray, b: np.ndarray) -> int:
     """Exact sum of ``(a - b)**2`` over two unsigned-integer arrays of one shape.
 
-    8-bit differences are squared in float32 (exact: at most 255**2 < 2**24)
-    and summed in float64 (exact: every partial sum is a whole number below
-    2**53 for up to 138 billion samples); wider integers are summed in
-    int64. Pieces of rows are used so that no full-size temporary is made.
+    Differences are taken in a signed type wide enough to hold them (int16
+    for 8-bit, else int64) and multiplied and summed in int64 by ``einsum``,
+    a piece of rows at a time so that no full-size temporary is made; every
+    partial sum is far below 2**63 for photos.
     """
     a, b = np.asarray(a), np.asarray(b)
     if a.shape != b.shape or a.dtype != b.dtype or a.dtype.kind != "u":
@@ -62,16 +62,11 @@ def squared_error_sum(a: np.ndarray, b: np.ndarray) -> int:
     if a.ndim == 0 or a.size == 0:
         return int(np.sum((a.astype(np.int64) - b) ** 2))
     rows = max(1, _PIECE_SAMPLES // max(1, a[0].size))
+    diff_type = np.int16 if a.dtype.itemsize == 1 else np.int64
     total = 0
-    small = a.dtype.itemsize == 1
     for r in range(0, a.shape[0], rows):
-        if small:
-            d = np.subtract(a[r:r + rows], b[r:r + rows], dtype=np.float32)
-            np.multiply(d, d, out=d)
-            total += int(np.add.reduce(d, axis=None, dtype=np.float64))
-        else:
-            d = a[r:r + rows].astype(np.int64) - b[r:r + rows]
-            total += int(np.add.reduce(d * d, axis=None))
+        d = np.subtract(a[r:r + rows], b[r:r + rows], dtype=diff_type).ravel()
+        total += int(np.einsum("i,i->", d, d, dtype=np.int64))
     return total
 
 
