@@ -167,6 +167,9 @@ def _write_marked(out: Path, marked: np.ndarray, pic: Picture, *, jpeg_quality: 
         psnr_file = None
         if out.suffix.lower() in (".jpg", ".jpeg", ".webp"):
             written = read_picture(out, max_pixels=max_pixels, data=data).pixels
+            if written.dtype != pic.pixels.dtype:
+                # A 16-bit photo written as an 8-bit JPEG: compare on the original's scale.
+                written = written.astype(np.float64) * (peak / 255.0)
             psnr_file = quality.psnr(pic.pixels, written, peak=peak)
         return hashlib.sha256(data).hexdigest(), psnr_file
     except BaseException:

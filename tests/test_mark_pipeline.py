@@ -188,6 +188,21 @@ def test_mark_picture_records_what_the_files_hold(tmp_path):
     assert facts_j["quality"]["psnr_db"] == facts["quality"]["psnr_db"]
 
 
+def test_a_16bit_photo_written_as_jpeg_is_measured_on_its_own_scale(tmp_path):
+    rgb16 = (big_photo(300, 400).astype(np.uint16) * 257)
+    src = tmp_path / "harwick-sixteen.png"
+    Image.fromarray(rgb16[..., 0]).save(src)   # Pillow writes a 16-bit grey PNG ("I;16")
+    pic, _ = workflow.load_original(src)
+    assert pic.pixels.dtype == np.uint16
+    jpg = tmp_path / "marked.jpg"
+    facts = workflow.mark_picture(pic, jpg, SEED, payload(5))
+    written = read_picture(jpg).pixels.astype(np.float64) * 257.0
+    expect = metrics.peak_signal_noise_ratio(pic.pixels.astype(np.float64), written,
+                                             data_range=65535)
+    assert facts["quality"]["psnr_db_file"] == round(expect, 3)
+    assert facts["quality"]["psnr_db_file"] > 38.0      # not the 6 dB of comparing 16 with 8 bits
+
+
 def test_a_failure_while_measuring_leaves_no_marked_file(tmp_path, monkeypatch):
     src = tmp_path / "tidewater-copy.png"
     Image.fromarray(data.chelsea()).save(src)
