@@ -60,7 +60,7 @@ def load_original(src: str | os.PathLike, *, max_pixels: int | None = None) -> t
     """Read a photo to be marked, check it can hold the mark, and hash the file."""
     pic = read_picture(src, max_pixels=max_pixels)
     _check_size(pic, MIN_MARK_SIDE, "marking")
-    return pic, sha256_file(src)
+    return pic, pic.sha256
 
 
 def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, strength: float = 1.0,
@@ -214,7 +214,7 @@ def examine_file(profile, path: str | os.PathLike, *, threshold: float = detect.
     Returns the JSON report (the ``examine --json`` contract) and the full finding.
     """
     path = Path(path)
-    pic = read_picture(path, max_pixels=max_pixels)
+    pic = read_picture(path, max_pixels=max_pixels, luma_only=True)
     finding = examine_picture(pic, profile.detection_seed, owner_tag=profile.owner_tag,
                               payload_check=owner_payload_check(profile),
                               threshold=threshold, decoys=decoys, workers=workers)
@@ -222,8 +222,11 @@ def examine_file(profile, path: str | os.PathLike, *, threshold: float = detect.
 
 
 def report_for(path: Path, pic: Picture, finding: Finding, profile=None) -> dict:
-    """The per-file JSON object of ``examine --json``."""
-    rep = {"file": str(path), "sha256": sha256_file(path),
+    """The per-file JSON object of ``examine --json``.
+
+    The hash is that of the bytes ``pic`` was decoded from (read once), when known.
+    """
+    rep = {"file": str(path), "sha256": pic.sha256 or sha256_file(path),
            "width": int(pic.pixels.shape[1]), "height": int(pic.pixels.shape[0])}
     rep.update(finding.to_json())
     rep["work_id"] = None
