@@ -166,7 +166,10 @@ def lag_map(x: np.ndarray, *, window: int = ACF_WINDOW, lag_max: int = LAG_MAX,
     win = win - np.float32(win.mean())
     lag = min(lag_max, max(sh, sw))
     fh, fw = _fast(sh + lag), _fast(sw + lag)
-    spec = sfft.rfft2(win, s=(fh, fw), workers=workers)
+    # The zero rows of the padding need no transform along the columns' axis:
+    # rows first (sh of them), then the columns at full length.
+    spec = sfft.rfft(win, n=fw, axis=1, workers=workers)
+    spec = sfft.fft(spec, n=fh, axis=0, overwrite_x=True, workers=workers)
     power = spec.real * spec.real
     power += spec.imag * spec.imag
     del spec
@@ -177,9 +180,13 @@ def lag_map(x: np.ndarray, *, window: int = ACF_WINDOW, lag_max: int = LAG_MAX,
     # Light smoothing of the lags (so that bilinear sampling between pixels
     # loses little of a one-pixel-wide peak) is free in the frequency domain.
     flat *= _blur_transfer(fh, fw)
-    acf = sfft.irfft2(flat, s=(fh, fw), workers=workers)
-    # Keep lags -lag..lag in both directions, lag zero at the centre.
+    # Inverse transform, keeping lags -lag..lag in both directions, lag zero
+    # at the centre: the rows not kept are dropped between the two passes,
+    # so the second pass does two thirds of the work of a full irfft2.
+    acf = sfft.ifft(flat, axis=0, workers=workers)
     rows = np.concatenate([acf[fh - lag:], acf[:lag + 1]], axis=0)
+    del acf
+    rows = sfft.irfft(rows, n=fw, axis=1, overwrite_x=True, workers=workers)
     a = np.concatenate([rows[:, fw - lag:], rows[:, :lag + 1]], axis=1).astype(np.float32, copy=False)
     weight, inv_noise, valid = _lag_weights(lag, sh, sw)
     z = a * inv_noise
