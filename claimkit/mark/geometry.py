@@ -328,13 +328,9 @@ def _coarse(acf: _Acf, tile: int, grid) -> list[tuple[float, np.ndarray]]:
     def peaks(score, a, lattice_aspect):
         # Hypotheses with almost no lags inside the window say nothing; keep
         # the local maxima of the score surface (the angle is circular).
-        mx = ndimage.maximum_filter(score, size=(7, 7), mode=("nearest", "wrap"))
-        where = np.argwhere((score == mx) & (score > 0))
-        vals = score[where[:, 0], where[:, 1]]
-        for i in np.argsort(vals)[::-1][:keep]:
-            ki, pj = where[i]
+        for ki, pj, val in _top_maxima(score, keep):
             period = np.exp(rho[ki + k_lo])
-            best.append((float(vals[i]), _basis(period, phi[pj], a, lattice_aspect)))
+            best.append((val, _basis(period, phi[pj], a, lattice_aspect)))
 
     def comb_sum(g, v, log_n, arg_n, period):
         """Sum of shifted rows and columns of ``g`` (scores) and ``v`` (variances) over a comb.
@@ -374,6 +370,38 @@ def _coarse(acf: _Acf, tile: int, grid) -> list[tuple[float, np.ndarray]]:
             peaks(comb_sum(g_half, v_half, log_n, arg_n, 2 * n_phi), 1.0, b)
     best.sort(key=lambda t: -t[0])
     return best[:keep]
+
+
+def _top_maxima(score: np.ndarray, keep: int, size: int = 7) -> list[tuple[int, int, float]]:
+    """The ``keep`` highest positive local maxima of ``score``, best first: (row, col, value).
+
+    A local maximum is at least every value of the ``size x size`` block
+    around it, rows clamped at the edges and columns circular: what comparing
+    with ``ndimage.maximum_filter(mode=("nearest", "wrap"))`` finds, but only
+    the highest values are looked at (the filter over the whole surface cost
+    more than the comb sums).
+    """
+    w = score.shape[1]
+    flat = score.ravel()
+    r = size // 2
+    count = min(flat.size, 32 * keep)
+    while True:
+        cand = np.argpartition(flat, flat.size - count)[flat.size - count:]
+        cand = cand[np.argsort(flat[cand])[::-1]]
+        out = []
+        for idx in cand:
+            val = float(flat[idx])
+            if val <= 0:
+                return out
+            i, j = divmod(int(idx), w)
+            block = score[max(0, i - r):i + r + 1, np.arange(j - r, j + r + 1) % w]
+            if val >= block.max():
+                out.append((i, j, val))
+                if len(out) == keep:
+                    return out
+        if count == flat.size:
+            return out
+        count = min(flat.size, 8 * count)
 
 
 def _polar_coords(cc: int, lo_rho: float, d: float, n_rho: int, n_phi: int, a: float,
@@ -456,12 +484,21 @@ def _points(basis: np.ndarray, r_min: float, r_max: float) -> np.ndarray:
     """Integer vectors n (one of each +-pair) with r_min <= |basis n| <= r_max."""
     inv = np.linalg.inv(basis)
     m = int(np.ceil(r_max * np.max(np.abs(inv)) * 2)) + 1
+    n = _half_plane(m)
+    p = basis @ n
+    r = np.sqrt(p[0] * p[0] + p[1] * p[1])
+    return n[:, (r >= r_min) & (r <= r_max)]
+
+
+@lru_cache(maxsize=64)
+def _half_plane(m: int) -> np.ndarray:
+    """Integer vectors (as floats) with |n_row| <= m, 0 <= n_col <= m, one of each +-pair (read-only)."""
     i, j = np.meshgrid(np.arange(-m, m + 1), np.arange(0, m + 1), indexing="ij")
     n = np.stack([i.ravel(), j.ravel()])
     half = (n[1] > 0) | ((n[1] == 0) & (n[0] > 0))
-    n = n[:, half]
-    r = np.linalg.norm(basis @ n, axis=0)
-    return n[:, (r >= r_min) & (r <= r_max)].astype(float)
+    n = n[:, half].astype(float)
+    n.setflags(write=False)
+    return n
 
 
 def lattice_score(acf: _Acf, basis: np.ndarray, r_min: float, r_max: float) -> tuple[float, int]:
