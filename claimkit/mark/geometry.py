@@ -650,7 +650,11 @@ def find_lattices(x: np.ndarray, tile: int, *, workers: int = 1,
         # Where the lattice is faint the wide search can land on noise: refine
         # both starting points and keep the one whose lattice scores better.
         best = None
-        for start in (basis, _widen(acf, basis, r_min)):
+        widened = _widen(acf, basis, r_min)
+        # When the wide search leaves the basis where it was (most starts on a
+        # plainly marked copy), the second refinement would repeat the first.
+        starts = (basis,) if np.array_equal(widened, basis) else (basis, widened)
+        for start in starts:
             refined, inliers = _refine(acf, start, r_min)
             refined = _reduce(refined)
             if _plausible(refined, tile):
