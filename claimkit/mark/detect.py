@@ -49,6 +49,7 @@ from claimkit.mark.pattern import (
 
 PREFILTER = 9                 # local-mean window of the whitening prefilter, pixels
 NORM_WINDOW = 9               # window of the local standard-deviation normalisation
+WHITEN_ROWS = 256             # rows whitened at a time (a strip's working set stays in cache)
 PHASES = ((0.0, 0.0), (0.0, 0.5), (0.5, 0.0), (0.5, 0.5))   # sub-pixel phases tried
 GEOMETRIES = 1 + geometry.LATTICE_CANDIDATES                  # unwarped + lattice fits
 DIHEDRAL = 8
@@ -123,12 +124,26 @@ def whiten(luma: np.ndarray) -> np.ndarray:
     than a mask-matched weighting on JPEG, blur, crop and noise attacks.
     """
     x = np.asarray(luma, dtype=np.float32)
-    x = x - ndimage.uniform_filter(x, PREFILTER, mode="reflect")
-    var = ndimage.uniform_filter(x * x, NORM_WINDOW, mode="reflect")
-    var += 1e-3
-    np.sqrt(var, out=var)
-    x /= var
-    return x
+    h = x.shape[0]
+    out = np.empty(x.shape, dtype=np.float32)
+    # In strips of rows that stay in cache (the column pass of a filter over a
+    # whole 4-megapixel picture is memory-bound): 69 -> 48 ms at 4 MP. Each
+    # strip reads the rows both filters reach beyond it, so every output pixel
+    # sees the same neighbours as with one filter over the whole picture (the
+    # edges of the picture are still reflected); bit-identical on the
+    # pictures checked.
+    halo = PREFILTER // 2 + NORM_WINDOW // 2
+    for r0 in range(0, h, WHITEN_ROWS):
+        a0, a1 = max(0, r0 - halo), min(h, r0 + WHITEN_ROWS + halo)
+        blk = x[a0:a1]
+        y = blk - ndimage.uniform_filter(blk, PREFILTER, mode="reflect")
+        var = ndimage.uniform_filter(y * y, NORM_WINDOW, mode="reflect")
+        var += 1e-3
+        np.sqrt(var, out=var)
+        y /= var
+        rows = min(WHITEN_ROWS, h - r0)
+        out[r0:r0 + rows] = y[r0 - a0:r0 - a0 + rows]
+    return out
 
 
 def fold(x: np.ndarray, tile: int = TILE) -> np.ndarray:
