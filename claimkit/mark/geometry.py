@@ -432,11 +432,14 @@ def _polar_sampler(shape: tuple[int, int], cc: int, lo_rho: float, d: float, n_r
     y, x = _polar_coords(cc, lo_rho, d, n_rho, n_phi, a).reshape(2, -1)
     y0, x0 = np.floor(y), np.floor(x)
     fy, fx = y - y0, x - x0
-    i = y0.astype(np.int64) * shape[1] + x0.astype(np.int64)
-    cols = np.stack([i, i + 1, i + shape[1], i + shape[1] + 1], axis=1)
-    vals = np.stack([(1 - fy) * (1 - fx), (1 - fy) * fx, fy * (1 - fx), fy * fx], axis=1)
-    return sparse.csr_matrix((vals.astype(np.float32).ravel(), cols.astype(np.int32).ravel(),
-                              np.arange(0, 4 * y.size + 1, 4)), shape=(y.size, shape[0] * shape[1]))
+    i = (y0 * shape[1] + x0).astype(np.int32)
+    cols = np.empty((y.size, 4), dtype=np.int32)
+    vals = np.empty((y.size, 4), dtype=np.float32)
+    for k, (dy, dx) in enumerate(((0, 0), (0, 1), (1, 0), (1, 1))):
+        cols[:, k] = i + (dy * shape[1] + dx)
+        vals[:, k] = (fy if dy else 1 - fy) * (fx if dx else 1 - fx)
+    return sparse.csr_matrix((vals.ravel(), cols.ravel(), np.arange(0, 4 * y.size + 1, 4)),
+                             shape=(y.size, shape[0] * shape[1]))
 
 
 @lru_cache(maxsize=32)
