@@ -173,7 +173,7 @@ def lag_map(x: np.ndarray, *, window: int = ACF_WINDOW, lag_max: int = LAG_MAX,
     power = spec.real * spec.real
     power += spec.imag * spec.imag
     del spec
-    local = ndimage.uniform_filter(power, FLATTEN_WINDOW, mode="wrap")
+    local = _box_wrap(power, FLATTEN_WINDOW)
     local += np.float32(1e-20 + 1e-9 * float(local.mean()))
     flat = np.minimum(power / local, np.float32(FLATTEN_CLIP))
     flat[0, 0] = 0.0
@@ -197,6 +197,25 @@ def lag_map(x: np.ndarray, *, window: int = ACF_WINDOW, lag_max: int = LAG_MAX,
     region = zw[lag - cl - 4:lag + cl + 5, lag - cl - 4:lag + cl + 5]
     coarse = ndimage.gaussian_filter(region, extra)
     return _Acf(z=z, weight=weight, zw=zw, coarse=coarse, c=lag, cc=cl + 4, window=(sh, sw))
+
+
+def _box_wrap(a: np.ndarray, size: int, rows: int = 256) -> np.ndarray:
+    """``ndimage.uniform_filter(a, size, mode="wrap")``, in strips of rows that stay in cache.
+
+    The rows are wrapped by hand and each strip reads the ``size // 2`` rows
+    beyond it, so every value averages the same neighbours (to float32
+    rounding: the running sums start at other rows); 10 -> 7 ms on the
+    1536 x 769 power spectrum of a 1-megapixel window.
+    """
+    h, r = a.shape[0], size // 2
+    if h <= rows:
+        return ndimage.uniform_filter(a, size, mode="wrap")
+    padded = np.concatenate([a[h - r:], a, a[:r]])
+    out = np.empty_like(a)
+    for r0 in range(0, h, rows):
+        n = min(rows, h - r0)
+        out[r0:r0 + n] = ndimage.uniform_filter(padded[r0:r0 + n + 2 * r], size, mode="wrap")[r:r + n]
+    return out
 
 
 @lru_cache(maxsize=2)
