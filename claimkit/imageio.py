@@ -24,8 +24,8 @@ What is supported
 * An examination reads only luma: ``read_picture(path, luma_only=True)``
   has libjpeg decode a colour JPEG straight to its Y channel (measured at a
   half to two thirds of the colour decoding time, and no colour-to-luma
-  conversion afterwards). Every picture
-  read carries the SHA-256 of the very bytes decoded, so a file is read once.
+  conversion afterwards). Every picture read carries the SHA-256 of the very
+  bytes decoded, so a file is read once.
 """
 
 from __future__ import annotations
