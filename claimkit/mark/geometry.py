@@ -338,9 +338,16 @@ def _coarse(acf: _Acf, tile: int, grid) -> list[tuple[float, np.ndarray]]:
         # scores (n_rho, 2, n_phi), and the variance of each score (its summed
         # squared weights; it varies slowly with the angle, so every
         # DEN_STEP-th angle is enough). The sampling is a fixed linear map of
-        # the lag map for a given grid, so it is built once per process.
-        m = _polar_sampler(acf.coarse.shape, cc, lo_rho, d, n_rho, n_phi, a)
-        g = (m @ acf.coarse.ravel()).reshape(n_rho, 2, n_phi)
+        # the lag map for a given grid, so it is built once per process: the
+        # grid is the same for every window at least COARSE_LAG + 5 px wide.
+        # Smaller windows each have their own grid, where building the map
+        # would cost more than sampling directly.
+        if cc == COARSE_LAG + 4:
+            m = _polar_sampler(acf.coarse.shape, cc, lo_rho, d, n_rho, n_phi, a)
+            g = (m @ acf.coarse.ravel()).reshape(n_rho, 2, n_phi)
+        else:
+            coords = _polar_coords(cc, lo_rho, d, n_rho, n_phi, a).reshape(2, -1)
+            g = ndimage.map_coordinates(acf.coarse, coords, order=1).reshape(n_rho, 2, n_phi)
         v = _polar_support(acf.window, cc, lo_rho, d, n_rho, n_phi, a)
         return g, v
 
