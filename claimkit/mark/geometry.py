@@ -181,11 +181,20 @@ def lag_map(x: np.ndarray, *, window: int = ACF_WINDOW, lag_max: int = LAG_MAX,
     # loses little of a one-pixel-wide peak) is free in the frequency domain.
     flat *= _blur_transfer(fh, fw)
     # Inverse transform, keeping lags -lag..lag in both directions, lag zero
-    # at the centre: the rows not kept are dropped between the two passes,
-    # so the second pass does two thirds of the work of a full irfft2.
-    acf = sfft.ifft(flat, axis=0, workers=workers)
-    rows = np.concatenate([acf[fh - lag:], acf[:lag + 1]], axis=0)
-    del acf
+    # at the centre. ``flat`` is real, so along the columns its inverse
+    # transform is Hermitian: ihfft gives rows 0..fh/2 for half the work of a
+    # complex transform, and rows -lag..-1 are the conjugates of rows lag..1
+    # (lag <= sh keeps lag <= fh / 2, since fh >= sh + lag).
+    # The rows not kept are dropped before the second pass (two thirds of
+    # the work of a full irfft2).
+    if lag <= sh:        # then lag <= fh / 2, and the kept rows are all in the half
+        half = sfft.ihfft(flat, axis=0, workers=workers)[:lag + 1]
+        rows = np.concatenate([np.conj(half[lag:0:-1]), half], axis=0)
+        del half
+    else:                # a window lower than the lags kept (those lags are not used)
+        acf = sfft.ifft(flat, axis=0, workers=workers)
+        rows = np.concatenate([acf[fh - lag:], acf[:lag + 1]], axis=0)
+        del acf
     rows = sfft.irfft(rows, n=fw, axis=1, overwrite_x=True, workers=workers)
     a = np.concatenate([rows[:, fw - lag:], rows[:, :lag + 1]], axis=1).astype(np.float32, copy=False)
     weight, inv_noise, valid = _lag_weights(lag, sh, sw)
