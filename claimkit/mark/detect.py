@@ -231,6 +231,26 @@ def _variant_maps(tile: int) -> list[tuple[np.ndarray, np.ndarray]]:
 
 
 @lru_cache(maxsize=4)
+def _variant_spectra(tile: int) -> tuple[np.ndarray, np.ndarray]:
+    """How each variant's spectrum follows from the fold's: ``S_v[k] = phase_v[k] S[D k mod T]``.
+
+    With ``v(F)[u] = F[(D u + c) mod T]`` (:func:`_variant_maps`), the
+    transform is ``exp(2 pi i (D k).c / T) S[D k]``. Returns the flat indices
+    ``D k mod T`` and the phases, both (8, T, T), read-only.
+    """
+    k = np.stack(np.meshgrid(np.arange(tile), np.arange(tile), indexing="ij")).reshape(2, -1)
+    idx, phase = [], []
+    for d, c in _variant_maps(tile):
+        dk = np.rint(d @ k).astype(np.int64)
+        idx.append(((dk[0] % tile) * tile + dk[1] % tile).reshape(tile, tile))
+        phase.append(np.exp(2j * np.pi * (c @ dk) / tile).reshape(tile, tile))
+    out = np.stack(idx), np.stack(phase).astype(np.complex64)
+    for arr in out:
+        arr.setflags(write=False)
+    return out
+
+
+@lru_cache(maxsize=4)
 def _ramps(tile: int) -> np.ndarray:
     """Phase ramps of the sub-pixel shifts in ``PHASES`` (read-only, cached)."""
     f = np.fft.fftfreq(tile) * tile
@@ -310,9 +330,15 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1) -> _Prepare
         # Single precision from here on: the folds sum thousands of pixels, and
         # float32 keeps ~7 digits of scores read to 4 (half the memory traffic of
         # complex128 in every transform and product of the search).
-        f = _variants(np.asarray(f, dtype=np.float32))
-        s = sfft.fft2(f, workers=workers)
-        spectra.append(s * spectral_weight(s))
+        s = sfft.fft2(np.asarray(f, dtype=np.float32), workers=workers)
+        # The eight variants' spectra are the fold's, permuted and turned in
+        # phase (_variant_spectra), and so are their weights: |S| is all the
+        # weight reads, and the 5 x 5 average and the quantile do not change
+        # under those permutations. One transform and one weight instead of
+        # eight: the same spectra to float32 rounding.
+        s *= spectral_weight(s[None])[0]
+        idx, phase = _variant_spectra(tile)
+        spectra.append(s.ravel()[idx] * phase)
         transforms.append(transform)
         lattices.append(lattice)
 
