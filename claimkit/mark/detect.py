@@ -369,7 +369,8 @@ def _surfaces(prep: _Prepared, pattern: KeyPattern, ramps: np.ndarray):
         # Exact standard deviation over the key (stats module): one per variant,
         # sum |S|^2 |weight pilot|^2, accumulated in double precision.
         s2 = s.real * s.real + s.imag * s.imag
-        sigma = np.sqrt(s2.reshape(len(s2), -1) @ key_power) / n ** 2
+        # (einsum's own loop, not a BLAS call that could start threads in a worker)
+        sigma = np.sqrt(np.einsum("vk,k->v", s2.reshape(len(s2), -1), key_power)) / n ** 2
         prod = (s * kern)[:, None, :, :] * ramps[None]
         # complex64 transforms: 3x faster than numpy's complex128 ones here.
         out[g] = sfft.ifft2(prod, overwrite_x=True).real
