@@ -128,12 +128,6 @@ class _Acf:
     cc: int              # index of lag zero in coarse
     window: tuple[int, int]   # height and width of the window
 
-    def overlap(self, dy: np.ndarray, dx: np.ndarray) -> np.ndarray:
-        """Squared weight (overlap fraction) at lags (dy, dx); zero where too small to use."""
-        sh, sw = self.window
-        ov = np.clip(1.0 - np.abs(dy) / sh, 0.0, None) * np.clip(1.0 - np.abs(dx) / sw, 0.0, None)
-        return np.where(ov >= MIN_OVERLAP, ov, 0.0)
-
 
 def _fast(n: int) -> int:
     return sfft.next_fast_len(n, real=True)
@@ -187,7 +181,7 @@ def lag_map(x: np.ndarray, *, window: int = ACF_WINDOW, lag_max: int = LAG_MAX,
     # (lag <= sh keeps lag <= fh / 2, since fh >= sh + lag).
     # The rows not kept are dropped before the second pass (two thirds of
     # the work of a full irfft2).
-    if lag <= sh:        # then lag <= fh / 2, and the kept rows are all in the half
+    if lag <= sh:
         half = sfft.ihfft(flat, axis=0, workers=workers)[:lag + 1]
         rows = np.concatenate([np.conj(half[lag:0:-1]), half], axis=0)
         del half
@@ -461,8 +455,9 @@ def _polar_sampler(shape: tuple[int, int], cc: int, lo_rho: float, d: float, n_r
     """Bilinear interpolation at the grid's lags, as a sparse matrix (four weights a row).
 
     The same numbers as ``ndimage.map_coordinates(order=1)`` at these points
-    (all lie inside the map), in a fifth of the time once built; a scan meets
-    the same few grids on every picture.
+    (all lie inside the map) to float32 rounding of the weights, in about a
+    fifth of the time once built; a scan meets the same few grids on every
+    picture.
     """
     from scipy import sparse
 
@@ -483,12 +478,17 @@ def _polar_sampler(shape: tuple[int, int], cc: int, lo_rho: float, d: float, n_r
 def _polar_support(window: tuple[int, int], cc: int, lo_rho: float, d: float, n_rho: int,
                    n_phi: int, a: float) -> np.ndarray:
     """Squared weights (overlap) of the grid's lags, every ``DEN_STEP``-th angle, (n_rho, 2, k)."""
-    sh, sw = window
     dy, dx = _polar_coords(cc, lo_rho, d, n_rho, n_phi, a, DEN_STEP) - cc
-    ov = np.clip(1.0 - np.abs(dy) / sh, 0.0, None) * np.clip(1.0 - np.abs(dx) / sw, 0.0, None)
-    out = np.where(ov >= MIN_OVERLAP, ov, 0.0)
+    out = _overlap(window, dy, dx)
     out.setflags(write=False)
     return out
+
+
+def _overlap(window: tuple[int, int], dy: np.ndarray, dx: np.ndarray) -> np.ndarray:
+    """Squared weight (overlap fraction of the window with itself) at lags (dy, dx); zero where too small to use."""
+    sh, sw = window
+    ov = np.clip(1.0 - np.abs(dy) / sh, 0.0, None) * np.clip(1.0 - np.abs(dx) / sw, 0.0, None)
+    return np.where(ov >= MIN_OVERLAP, ov, 0.0)
 
 
 def _comb_rect(max_norm: float, aspect: float) -> tuple[np.ndarray, np.ndarray]:
