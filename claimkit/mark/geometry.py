@@ -584,8 +584,10 @@ def _widen(acf: _Acf, basis: np.ndarray, r_min: float) -> np.ndarray:
 
 def _refine(acf: _Acf, basis: np.ndarray, r_min: float) -> tuple[np.ndarray, int]:
     """Weighted least-squares fit of the basis to sub-pixel peaks near the predicted lattice points."""
-    z = acf.z
-    size = z.shape[0]
+    size = acf.z.shape[0]
+    z = acf.z.ravel()              # flat indices: one gather per look-up (the map is square)
+    offs = np.arange(-2, 3)
+    block = (offs[:, None] * size + offs[None, :]).ravel()   # 5x5 neighbourhood, row by row
     inliers = 0
     shortest = float(np.min(np.linalg.norm(basis, axis=0)))
     for radius in REFINE_RADII:
@@ -599,17 +601,14 @@ def _refine(acf: _Acf, basis: np.ndarray, r_min: float) -> tuple[np.ndarray, int
             ok = np.all((ip >= 3) & (ip < size - 3), axis=0)
             n, p, ip = n[:, ok], p[:, ok], ip[:, ok]
             # Best integer position in a 5x5 neighbourhood of each prediction.
-            offs = np.arange(-2, 3)
-            rr = ip[0][:, None, None] + offs[None, :, None]
-            cc = ip[1][:, None, None] + offs[None, None, :]
-            patch = z[rr, cc].reshape(ip.shape[1], -1)
-            k = np.argmax(patch, axis=1)
+            k = np.argmax(z[(ip[0] * size + ip[1])[:, None] + block], axis=1)
             pr = ip[0] + offs[k // 5]
             pc = ip[1] + offs[k % 5]
-            peak = z[pr, pc]
+            at = pr * size + pc
+            peak = z[at]
             # Parabolic sub-pixel offsets along each axis.
-            dr = _parabola(z[pr - 1, pc], peak, z[pr + 1, pc])
-            dc = _parabola(z[pr, pc - 1], peak, z[pr, pc + 1])
+            dr = _parabola(z[at - size], peak, z[at + size])
+            dc = _parabola(z[at - 1], peak, z[at + 1])
             obs = np.stack([pr + dr, pc + dc]).astype(float)
             # Only peaks that stand out carry weight; stronger peaks count more.
             wgt = np.clip(peak - 2.5, 0.0, None) ** 2
