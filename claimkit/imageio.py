@@ -21,11 +21,8 @@ What is supported
 * EXIF, ICC profile and XMP are carried over where the output format holds
   them. The EXIF Orientation tag is applied to the pixels on reading and set
   to 1 in the carried EXIF, so a reader never rotates twice.
-* An examination reads only luma: ``read_picture(path, luma_only=True)``
-  has libjpeg decode a colour JPEG straight to its Y channel (measured at a
-  half to two thirds of the colour decoding time, and no colour-to-luma
-  conversion afterwards). Every picture read carries the SHA-256 of the very
-  bytes decoded, so a file is read once.
+* Every picture read carries the SHA-256 of the very bytes decoded, so a
+  file is hashed without being read a second time.
 """
 
 from __future__ import annotations
@@ -188,8 +185,7 @@ def resolve_max_pixels(max_pixels: int | None = None) -> int:
 # ---------------------------------------------------------------- reading
 
 
-def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
-                 luma_only: bool = False) -> Picture:
+def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None) -> Picture:
     """Decode a photo into an upright array plus the metadata to carry over.
 
     Parameters
@@ -200,14 +196,6 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
         Refuse images with more than this many pixels (width × height),
         checked from the header before any pixel is decoded. Default:
         ``$CLAIMKIT_MAX_PIXELS`` or :data:`DEFAULT_MAX_PIXELS`.
-    luma_only : bool
-        For examination, which reads nothing but luma: a colour JPEG is
-        decoded straight to its Y channel (libjpeg skips the chroma inverse
-        DCT, upsampling and colour conversion), returned as grey ``uint8``
-        pixels. Y is the BT.601 luma that :func:`to_luma` computes from the
-        decoded colours, to within rounding (and exact where a decoded colour
-        would be clipped to 0..255). Other files are read as usual. Never for
-        a picture that is to be written again.
 
     Returns
     -------
@@ -255,10 +243,6 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
             notes.append(f"{frames} frames; the first frame was used")
         fmt = im.format or "unknown"
         rawmode = _rawmode(im)  # the tile list is gone once the pixels are loaded
-        if luma_only and fmt == "JPEG" and im.mode == "RGB":
-            # Pillow's draft mode asks libjpeg for grey output: the Y channel
-            # of a YCbCr JPEG (BT.601 luma from RGB-coded ones), full size.
-            im.draft("L", None)
         # Pillow holds 16-bit colour only at 8 bits; tifffile reads it whole.
         full = _read_tiff16(data) if fmt == "TIFF" and _is_16bit_multichannel_tiff(im) else None
         icc_ok = True

@@ -63,7 +63,7 @@ def scan_task(path: str, seed: bytes, checker, threshold: float,
     tune_memory()
     p = Path(path)
     try:
-        pic = read_picture(p, max_pixels=max_pixels, luma_only=True)
+        pic = read_picture(p, max_pixels=max_pixels)
         finding = workflow.examine_picture(pic, seed, owner_tag=checker.owner_tag,
                                            payload_check=checker, threshold=threshold)
         rep = workflow.report_for(p, pic, finding, None)

@@ -214,7 +214,7 @@ def examine_file(profile, path: str | os.PathLike, *, threshold: float = detect.
     Returns the JSON report (the ``examine --json`` contract) and the full finding.
     """
     path = Path(path)
-    pic = read_picture(path, max_pixels=max_pixels, luma_only=True)
+    pic = read_picture(path, max_pixels=max_pixels)
     finding = examine_picture(pic, profile.detection_seed, owner_tag=profile.owner_tag,
                               payload_check=owner_payload_check(profile),
                               threshold=threshold, decoys=decoys, workers=workers)

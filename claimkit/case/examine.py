@@ -184,7 +184,7 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
 
     robustness_wanted = robustness
     path = checked_exhibit_path(case, ex)
-    pic = read_picture(path, luma_only=True)     # examined as every examination is: luma only
+    pic = read_picture(path)
     luma = to_luma(pic.pixels)
     finding = workflow.examine_picture(pic, profile.detection_seed, owner_tag=profile.owner_tag,
                                        payload_check=workflow.owner_payload_check(profile),

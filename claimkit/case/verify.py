@@ -393,7 +393,7 @@ def _rerun(root: Path, ex: dict, finding: dict, keys: dict, rep: VerifyReport) -
         g = np.asarray(got, dtype=np.uint8)
         return any(np.array_equal(g, w) for w in wanted)
 
-    pic = read_picture(root / ex["file"], luma_only=True)   # as the examination read it
+    pic = read_picture(root / ex["file"])
     params = finding["examined"]
     owner_tag = payload.unpack(wanted[0])["owner_tag"]   # the same for all of one owner's works
     f = examine_picture(pic, seed, owner_tag=owner_tag, payload_check=check,
