@@ -169,7 +169,9 @@ def lag_map(x: np.ndarray, *, window: int = ACF_WINDOW, lag_max: int = LAG_MAX,
     del spec
     local = _box_wrap(power, FLATTEN_WINDOW)
     local += np.float32(1e-20 + 1e-9 * float(local.mean()))
-    flat = np.minimum(power / local, np.float32(FLATTEN_CLIP))
+    flat = np.divide(power, local, out=local)          # in place: fresh arrays cost page faults
+    np.minimum(flat, np.float32(FLATTEN_CLIP), out=flat)
+    del power
     flat[0, 0] = 0.0
     # Light smoothing of the lags (so that bilinear sampling between pixels
     # loses little of a one-pixel-wide peak) is free in the frequency domain.
@@ -192,8 +194,8 @@ def lag_map(x: np.ndarray, *, window: int = ACF_WINDOW, lag_max: int = LAG_MAX,
     rows = sfft.irfft(rows, n=fw, axis=1, overwrite_x=True, workers=workers)
     a = np.concatenate([rows[:, fw - lag:], rows[:, :lag + 1]], axis=1).astype(np.float32, copy=False)
     weight, inv_noise, valid = _lag_weights(lag, sh, sw)
-    z = a * inv_noise
-    z = _ring_normalise(z, lag, valid)
+    a *= inv_noise
+    z = _ring_normalise(a, lag, valid)
     zw = z * weight
     cl = min(coarse_lag, lag - 5)
     extra = float(np.sqrt(COARSE_BLUR ** 2 - FINE_BLUR ** 2))
@@ -264,7 +266,7 @@ def _rings(c: int, width: float = 4.0, step: int = 3) -> tuple[np.ndarray, np.nd
 
 
 def _ring_normalise(z: np.ndarray, c: int, valid: np.ndarray) -> np.ndarray:
-    """Divide each ring of lags by its own robust spread (picture structure left at short lags).
+    """Divide each ring of lags by its own robust spread (in place; picture structure left at short lags).
 
     Only lags with enough overlap (``valid``) count. The spread is estimated
     on every third lag in each direction: it varies slowly with the radius,
@@ -285,7 +287,8 @@ def _ring_normalise(z: np.ndarray, c: int, valid: np.ndarray) -> np.ndarray:
     s2 = np.bincount(sub, np.where(keep, v2, 0.0), minlength=size) / np.maximum(n2, 1)
     # Rings with too few valid lags to estimate a spread are left out.
     inv = np.where((s2 > 0) & (n2 >= 8), 1.0 / np.sqrt(np.maximum(s2, 1e-30)), 0.0).astype(np.float32)
-    return z * np.take(inv, ring)      # take: the same gather, 40 % faster than indexing
+    z *= np.take(inv, ring)      # take: the same gather, 40 % faster than indexing
+    return z
 
 
 # ---------------------------------------------------------------- coarse search
