@@ -177,7 +177,9 @@ def fold_resampled(x: np.ndarray, transform: np.ndarray, tile: int = TILE) -> np
     cols = np.arange(w, dtype=np.float32)
     acc = np.zeros(fine * fine)
     cnt = np.zeros(fine * fine)
-    step = max(1, 1_000_000 // max(w, 1))
+    # Rows in chunks of about 128k pixels: the chunk's temporaries stay in
+    # cache (13.8 -> 10.5 ms at 1.6 MP against 1M-pixel chunks).
+    step = max(1, 131_072 // max(w, 1))
     # The wrap onto the torus is a bit mask when the side is a power of two
     # (two's complement makes it right for negative bins too); the bin
     # indices are built in place in int32 and converted once to the intp that
