@@ -233,7 +233,8 @@ def read_for_examination(path: str | os.PathLike, *, max_pixels: int | None = No
 
     Large photos are examined on a central window (``detect.MAX_EXAMINE_PIXELS``);
     copying the rest of a 24-megapixel picture out of the decoder would cost
-    about half as much as decoding it. The same pixels as ``read_picture``.
+    about half as much as decoding it. The window holds the pixels ``read_picture``
+    gives there.
     """
     return read_picture(path, max_pixels=max_pixels, region=detect.central_window)
 
