@@ -244,7 +244,7 @@ def load() -> str:
 
 
 def bench_scan(profile, work: Path, count: int) -> None:
-    from claimkit import batch, scan
+    from claimkit import batch, scan, workflow
 
     print(f"\n1. scan of {count} web-size JPEGs (1.2-1.9 MP, half marked and recompressed), "
           "best of 2 runs"
@@ -261,7 +261,7 @@ def bench_scan(profile, work: Path, count: int) -> None:
     files = sorted(web.glob("*.jpg"))
     mp = np.mean([Image.open(f).size[0] * Image.open(f).size[1] for f in files]) / 1e6
     t_decode = min(pillow_decode(files) for _ in range(2))
-    seed, checker = profile.detection_seed, scan.PayloadChecker.of(profile)
+    seed, checker = profile.detection_seed, workflow.owner_payload_check(profile)
     t_one = cpu_one = rate2 = 0.0
     for _ in range(2):        # alternate and keep the best of each (see bench_mark)
         cpu = time.process_time()
@@ -419,12 +419,12 @@ def growth_child(src: str, home: str) -> None:
     """In a fresh process: mark one file, examine the marked copy, report times and peak memory."""
     import json
 
-    from claimkit import batch, scan
+    from claimkit import batch, scan, workflow
     from claimkit.evidence.profile import Profile
     from claimkit.mark import payload
 
     with Profile.open(Path(home), b"bench") as prof:
-        seed, checker = prof.detection_seed, scan.PayloadChecker.of(prof)
+        seed, checker = prof.detection_seed, workflow.owner_payload_check(prof)
         bits = [int(b) for b in payload.pack(prof.owner_tag, 1, prof.payload_tag(1))]
     p = Path(src)
     # Warm up on a small picture: imports and key tables are not what is measured.

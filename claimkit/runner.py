@@ -482,7 +482,10 @@ def run_ordered(engine: _Engine, fn: Callable, items: Iterable[tuple[Any, tuple]
                 i, item, fut = pending.popleft()
                 on_result(_outcome(i, item, fut))
             if pending and not (pending[0][2] is None or pending[0][2].done()):
-                engine.wait_any([p[2] for p in pending if p[2] is not None], 0.25)
+                # Wait for a task still running: a later one that has already
+                # finished would end every wait at once, and the loop would
+                # spin on a core the workers need until the head is done.
+                engine.wait_any([p[2] for p in pending if p[2] is not None and not p[2].done()], 0.25)
             if tick:
                 tick()
     except KeyboardInterrupt:

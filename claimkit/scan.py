@@ -58,12 +58,11 @@ def scan_task(path: str, seed: bytes, checker, threshold: float,
               max_pixels: int | None) -> dict:
     """Examine one file (runs in a worker; no registry). Returns the report or ``{"error": ...}``."""
     from claimkit import workflow
-    from claimkit.imageio import read_picture
 
     tune_memory()
     p = Path(path)
     try:
-        pic = read_picture(p, max_pixels=max_pixels)
+        pic = workflow.read_for_examination(p, max_pixels=max_pixels)
         finding = workflow.examine_picture(pic, seed, owner_tag=checker.owner_tag,
                                            payload_check=checker, threshold=threshold)
         rep = workflow.report_for(p, pic, finding, None)

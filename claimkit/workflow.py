@@ -60,7 +60,7 @@ def mark_parameters(strength: float) -> dict:
 
 
 def _check_size(pic: Picture, minimum: int, what: str) -> None:
-    h, w = pic.pixels.shape[:2]
+    h, w = pic.height, pic.width
     if min(h, w) < minimum:
         raise InputError(f"image is {w}x{h} pixels; {what} needs at least {minimum} pixels on each side",
                          path=pic.path)
@@ -72,10 +72,9 @@ def load_original(src: str | os.PathLike, *, max_pixels: int | None = None) -> t
     The file is read once: the SHA-256 returned is of exactly the bytes that
     were decoded, even if the file changes on disk meanwhile.
     """
-    data = read_file_bytes(src)
-    pic = read_picture(src, max_pixels=max_pixels, data=data)
+    pic = read_picture(src, max_pixels=max_pixels)
     _check_size(pic, MIN_MARK_SIDE, "marking")
-    return pic, hashlib.sha256(data).hexdigest()
+    return pic, pic.sha256
 
 
 # Rows marked at a time: a multiple of the mask step and a divisor of the
@@ -278,10 +277,17 @@ def examine_picture(pic: Picture, seed: bytes, *, owner_tag: int | None = None, 
     """
     _check_size(pic, MIN_EXAMINE_SIDE, "examination")
     # Convert only the window the detector will read (large photos are examined
-    # on a central window; see detect.MAX_EXAMINE_PIXELS).
-    r0, c0, h, w = detect.central_window(pic.pixels.shape[:2])
+    # on a central window; see detect.MAX_EXAMINE_PIXELS). A picture read with
+    # read_for_examination holds that window only.
+    r0, c0, h, w = detect.central_window((pic.height, pic.width))
+    if pic.region is not None:
+        if pic.region != (r0, c0, h, w):
+            raise ValueError(f"picture holds {pic.region}, not the examined window {(r0, c0, h, w)}")
+        window = pic.pixels
+    else:
+        window = pic.pixels[r0:r0 + h, c0:c0 + w]
     finding = detect.examine_luma(
-        to_luma(pic.pixels[r0:r0 + h, c0:c0 + w]), seed, payload_check=payload_check,
+        to_luma(window), seed, payload_check=payload_check,
         payload_space=payload.PAYLOAD_SPACE,
         known_bits=None if owner_tag is None else known_owner_bits(owner_tag),
         threshold=threshold, decoys=decoys, workers=workers)
@@ -300,17 +306,31 @@ def examine_file(profile, path: str | os.PathLike, *, threshold: float = detect.
     Returns the JSON report (the ``examine --json`` contract) and the full finding.
     """
     path = Path(path)
-    pic = read_picture(path, max_pixels=max_pixels)
+    pic = read_for_examination(path, max_pixels=max_pixels)
     finding = examine_picture(pic, profile.detection_seed, owner_tag=profile.owner_tag,
                               payload_check=owner_payload_check(profile),
                               threshold=threshold, decoys=decoys, workers=workers)
     return report_for(path, pic, finding, profile), finding
 
 
+def read_for_examination(path: str | os.PathLike, *, max_pixels: int | None = None) -> Picture:
+    """Read a copy for :func:`examine_picture`: only the window the detector reads is converted.
+
+    Large photos are examined on a central window (``detect.MAX_EXAMINE_PIXELS``);
+    copying the rest of a 24-megapixel picture out of the decoder would cost
+    about half as much as decoding it. The window holds the pixels ``read_picture``
+    gives there.
+    """
+    return read_picture(path, max_pixels=max_pixels, region=detect.central_window)
+
+
 def report_for(path: Path, pic: Picture, finding: Finding, profile=None) -> dict:
-    """The per-file JSON object of ``examine --json``."""
-    rep = {"file": str(path), "sha256": sha256_file(path),
-           "width": int(pic.pixels.shape[1]), "height": int(pic.pixels.shape[0])}
+    """The per-file JSON object of ``examine --json``.
+
+    The hash is that of the bytes ``pic`` was decoded from (read once), when known.
+    """
+    rep = {"file": str(path), "sha256": pic.sha256 or sha256_file(path),
+           "width": pic.width, "height": pic.height}
     rep.update(finding.to_json())
     rep["work_id"] = None
     rep["registered"] = False

@@ -149,3 +149,24 @@ def test_grid_offset_and_mirror_reported_exactly(marked, oy, ox, mirror):
     g = examine(np.ascontiguousarray(copy)).geometry
     assert g["flipped"] is mirror and g["rotation_deg"] == 0.0 and g["scale"] == 1.0
     assert g["shift_px"][0] % 128 == x0 and g["shift_px"][1] % 128 == y0
+
+
+def test_large_photo_read_through_its_examined_window_gives_the_same_finding(tmp_path):
+    # A photo over detect.MAX_EXAMINE_PIXELS, stored turned (EXIF orientation 6):
+    # reading only the examined window must give the finding of the whole read.
+    from PIL import Image
+
+    from claimkit import workflow
+    from claimkit.imageio import read_picture
+
+    base = np.asarray(Image.fromarray(data.coffee()).resize((2400, 1800), Image.BICUBIC))
+    upright = mark(base)
+    exif = Image.Exif()
+    exif[0x0112] = 6          # EXIF 2.32 tag 0x0112: stored turned a quarter counter-clockwise
+    path = tmp_path / "large.jpg"
+    Image.fromarray(np.ascontiguousarray(np.rot90(upright, 1))).save(path, quality=85, exif=exif.tobytes())
+    whole, part = read_picture(path), workflow.read_for_examination(path)
+    assert part.region == detect.central_window(upright.shape[:2]) != (0, 0, *upright.shape[:2])
+    a, b = workflow.examine_picture(whole, SEED), workflow.examine_picture(part, SEED)
+    assert a.detected and a.to_json() == b.to_json()
+    assert workflow.report_for(path, whole, a) == workflow.report_for(path, part, b)

@@ -13,6 +13,7 @@ import math
 import numpy as np
 import pytest
 from PIL import Image
+from scipy import ndimage
 from skimage import data
 from skimage import transform as sktf
 
@@ -231,3 +232,42 @@ def test_pillow_rotate_convention():
     assert r[0, 0] == 255
     # ... and true_transform(+90) maps the original's +col step to the copy's -row step.
     assert np.allclose(true_transform(90) @ np.array([0.0, 1.0]), [-1.0, 0.0])
+
+
+# ---------------------------------------------------------------- fast paths against scipy.ndimage
+
+def test_polar_sampler_is_bilinear_interpolation_as_scipy_does_it():
+    # The cached sparse map must give scipy.ndimage.map_coordinates(order=1)
+    # at the grid's lags (reference: scipy.ndimage).
+    rng = np.random.default_rng(5)
+    cc = geometry.COARSE_LAG + 4
+    lag_map = rng.normal(0, 1, (2 * cc + 1, 2 * cc + 1)).astype(np.float32)
+    lo, d, n_rho, n_phi = float(np.log(50.0)), 0.008, 180, 196
+    for a in (1.0, 0.93):
+        coords = geometry._polar_coords(cc, lo, d, n_rho, n_phi, a).reshape(2, -1)
+        want = ndimage.map_coordinates(lag_map, coords, order=1)
+        got = geometry._polar_sampler(lag_map.shape, cc, lo, d, n_rho, n_phi, a) @ lag_map.ravel()
+        np.testing.assert_allclose(got, want, atol=1e-5)
+
+
+def test_top_maxima_are_the_peaks_a_maximum_filter_finds():
+    # Reference: scipy.ndimage.maximum_filter with rows clamped and columns circular.
+    rng = np.random.default_rng(6)
+    for shape, keep in (((60, 80), 6), ((40, 50), 4), ((9, 12), 3)):
+        score = ndimage.gaussian_filter(rng.normal(0, 1, shape), 1.5, mode=("nearest", "wrap"))
+        mx = ndimage.maximum_filter(score, size=(7, 7), mode=("nearest", "wrap"))
+        where = np.argwhere((score == mx) & (score > 0))
+        vals = score[where[:, 0], where[:, 1]]
+        want = [tuple(where[i]) for i in np.argsort(vals)[::-1][:keep]]
+        got = [(i, j) for i, j, _ in geometry._top_maxima(score, keep)]
+        assert got == want
+
+
+def test_whitening_in_strips_equals_whole_picture_filters():
+    # Reference: scipy.ndimage.uniform_filter over the whole picture.
+    rng = np.random.default_rng(7)
+    luma = (128 + 40 * ndimage.gaussian_filter(rng.normal(0, 1, (3 * detect.WHITEN_ROWS + 37, 300)), 2)
+            ).astype(np.float32)
+    x = luma - ndimage.uniform_filter(luma, detect.PREFILTER, mode="reflect")
+    var = ndimage.uniform_filter(x * x, detect.NORM_WINDOW, mode="reflect") + np.float32(1e-3)
+    np.testing.assert_allclose(detect.whiten(luma), x / np.sqrt(var), rtol=1e-5, atol=1e-6)

@@ -379,6 +379,37 @@ def test_orientation_6_and_8_follow_the_exif_definition(tmp_path, orientation):
     np.testing.assert_array_equal(read_picture(out).pixels, pic.pixels)
 
 
+@pytest.mark.parametrize("orientation", [1, 2, 3, 4, 5, 6, 7, 8])
+@pytest.mark.parametrize("suffix", [".png", ".jpg"])
+def test_region_read_is_the_part_of_the_upright_picture(tmp_path, orientation, suffix):
+    # The part asked for is cut from the picture Pillow's own exif_transpose gives.
+    stored = coffee(60, 90)
+    path = tmp_path / f"r{orientation}{suffix}"
+    rgba = np.dstack([stored, np.tile(np.arange(90, dtype=np.uint8), (60, 1))])
+    if suffix == ".png":
+        Image.fromarray(rgba, "RGBA").save(path, exif=camera_exif(orientation).tobytes())
+    else:
+        Image.fromarray(stored).save(path, quality=90, exif=camera_exif(orientation).tobytes())
+    with Image.open(path) as im:
+        upright = np.asarray(ImageOps.exif_transpose(im))
+    part = (7, 11, 23, 31)
+    pic = read_picture(path, region=lambda size: part)
+    np.testing.assert_array_equal(pic.pixels, upright[7:30, 11:42, :3])
+    if suffix == ".png":
+        np.testing.assert_array_equal(pic.alpha, upright[7:30, 11:42, 3])
+    assert pic.region == part and (pic.height, pic.width) == upright.shape[:2]
+    assert pic.sha256 == read_picture(path).sha256
+
+
+def test_region_read_of_16bit_colour_tiff(tmp_path):
+    rgb16 = (RNG.integers(0, 65536, (40, 50, 3))).astype(np.uint16)
+    path = tmp_path / "c16.tif"
+    tifffile.imwrite(path, rgb16, photometric="rgb")
+    pic = read_picture(path, region=lambda size: (5, 6, 20, 30))
+    np.testing.assert_array_equal(pic.pixels, rgb16[5:25, 6:36])
+    assert (pic.height, pic.width) == (40, 50) and pic.bit_depth == 16
+
+
 def test_orientation_applies_to_jpeg_and_alpha(tmp_path):
     rgba = np.dstack([coffee(60, 90), np.tile(np.arange(90, dtype=np.uint8), (60, 1))])
     path = tmp_path / "a.png"
@@ -584,6 +615,13 @@ def test_to_luma_matches_pillow_bt601():
     # and the weights themselves, computed here in float64
     exact = rgb.astype(np.float64) @ np.array([0.299, 0.587, 0.114])
     assert np.abs(luma - exact).max() < 1e-3
+
+
+def test_picture_carries_the_hash_of_the_bytes_it_was_decoded_from(tmp_path):
+    path = tmp_path / "c.jpg"
+    Image.fromarray(coffee()).save(path, quality=85)
+    # FIPS 180-4 SHA-256 through hashlib, of the file as it is on disk
+    assert read_picture(path).sha256 == sha256(path)
 
 
 def test_to_luma_16bit_is_on_the_8bit_scale():
