@@ -18,7 +18,9 @@ the README quotes this table.
 from __future__ import annotations
 
 import argparse
+import sys
 import time
+from pathlib import Path
 
 import numpy as np
 from PIL import Image
@@ -29,20 +31,15 @@ from claimkit.imageio import add_luma_delta, to_luma
 from claimkit.mark import embed, stats
 from claimkit.mark.pattern import MARK_FORMAT
 
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+from tests.engine_helpers import sky  # the tests' smooth sky, the same picture
+
 SEED = bytes(range(32))
 BITS = np.random.default_rng(1000).integers(0, 2, 64).astype(np.uint8)
 # Extracted-message PSNRs reported for the phase-dispersion method, by the battery row
 # closest to the attack they name (strengths unknown).
 PUBLISHED = {"blur 1": 25.02, "contrast 0.6": 26.19, "jpeg 50": 24.62, "crop 25 %": 27.33,
              "noise 8": 23.46, "rotate 17": 11.39}
-
-
-def sky(h: int = 480, w: int = 640) -> np.ndarray:
-    """A smooth blue sky with faint sensor noise: the hardest case for invisibility."""
-    rng = np.random.default_rng(7)
-    y = np.linspace(0, 1, h)[:, None]
-    base = np.stack([90 + 60 * y, 140 + 50 * y, 220 + 20 * y], axis=-1) * np.ones((1, w, 1))
-    return np.clip(base + rng.normal(0, 1.2, base.shape), 0, 255).astype(np.uint8)
 
 
 def pictures() -> dict[str, np.ndarray]:
