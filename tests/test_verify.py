@@ -172,6 +172,7 @@ def test_edited_finding_is_caught_even_when_the_owner_re_signs(built_case, tmp_p
     f = json.loads(p.read_bytes())
     f["result"]["score_pilot"] = round(f["result"]["score_pilot"] + 3.0, 4)
     f["result"]["log10_false_alarm_probability"] -= 10
+    f["examined"]["software"] = "claimkit 0.0.9"     # and claims an older version made it
     p.write_bytes(canonical_json(f) + b"\n")
     _resign(work, built_case.home)
     rep = verify_bundle(work, robustness=False)
@@ -180,6 +181,8 @@ def test_edited_finding_is_caught_even_when_the_owner_re_signs(built_case, tmp_p
     assert "custody of exhibits" in names          # not the finding that was logged
     assert "dossier data" in names                 # the dossier no longer matches its findings
     assert "score_pilot: stored" in _failed(rep)
+    # A re-run that differs says which versions made and re-ran the numbers.
+    assert "examined with claimkit 0.0.9 and re-run with claimkit " in _failed(rep)
 
 
 def test_exit_code_and_error_line(built_case, tmp_path, capsys):

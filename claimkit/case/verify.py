@@ -39,6 +39,7 @@ from pathlib import Path, PurePosixPath
 
 import numpy as np
 
+from claimkit import __version__
 from claimkit.errors import CheckFailed, InputError
 
 __all__ = ["MAX_BUNDLE_BYTES", "VerifyReport", "safe_extract", "verify_bundle"]
@@ -431,6 +432,10 @@ def _rerun(root: Path, ex: dict, finding: dict, keys: dict, rep: VerifyReport) -
         if "difference" in stored_arrays and not np.array_equal(stored_arrays["difference"],
                                                                again.difference):
             diffs.append("arrays.difference: the difference map differs from the re-run")
+    made_with, this = params.get("software"), f"claimkit {__version__}"
+    if diffs and made_with and made_with != this:
+        diffs.insert(0, f"examined with {made_with} and re-run with {this} (install {made_with} "
+                        "to reproduce its numbers to the digit)")
     rep.add(f"{i} re-run", not diffs, "; ".join(diffs[:8]) if diffs else
             f"{'detected' if f.detected else 'not detected'}, log10 P_fa "
             f"{round(f.log10_false_alarm, 4)}, {len(f.decoy_scores)} decoys and every stored "
