@@ -287,7 +287,7 @@ def _worker_init() -> None:
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     # Each worker is one core's worth of work: keep numeric libraries from
     # starting thread pools of their own that fight over the same cores.
-    for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "CLAIMKIT_THREADS"):
         os.environ.setdefault(var, "1")
 
 

@@ -12,7 +12,7 @@ import hashlib
 import hmac
 import os
 from collections.abc import Callable
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import Executor, Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from itertools import repeat
 from pathlib import Path
@@ -80,8 +80,39 @@ def load_original(src: str | os.PathLike, *, max_pixels: int | None = None) -> t
 # Rows marked at a time: a multiple of the mask step and a divisor of the
 # period, small enough that the band's floats stay in the processor cache.
 _MARK_BAND_ROWS = 64
-# Threads for the band work (NumPy releases the interpreter lock on whole arrays).
-_BAND_WORKERS = 2
+# Threads for the band work (NumPy releases the interpreter lock on whole arrays):
+# two where this process may use two cores. Pool workers are each one core's worth
+# of work, so the pool starts them with CLAIMKIT_THREADS=1 (claimkit.runner).
+THREADS_ENV = "CLAIMKIT_THREADS"
+
+
+def band_threads() -> int:
+    """Threads one picture's marking may use: ``$CLAIMKIT_THREADS``, else up to 2 cores."""
+    raw = os.environ.get(THREADS_ENV, "")
+    if raw.isdigit() and int(raw) > 0:
+        return int(raw)
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except AttributeError:  # pragma: no cover - not Linux
+        cores = os.cpu_count() or 1
+    return max(1, min(2, cores))
+
+
+class _InPlace(Executor):
+    """An executor that runs each task at once in the calling thread (one core's worth of work)."""
+
+    def submit(self, fn, /, *args, **kwargs) -> Future:
+        fut: Future = Future()
+        try:
+            fut.set_result(fn(*args, **kwargs))
+        except BaseException as exc:  # noqa: BLE001 - handed to whoever asks for the result
+            fut.set_exception(exc)
+        return fut
+
+
+def _helpers(threads: int, name: str) -> Executor:
+    """Threads beside the caller's when there are cores for them, else work done in place."""
+    return ThreadPoolExecutor(max_workers=threads, thread_name_prefix=name) if threads else _InPlace()
 
 
 def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, strength: float = 1.0,
@@ -104,14 +135,17 @@ def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, stre
     it back, hashes it and decodes it for the PSNR of the file as written
     (Pillow's codecs and file I/O release the lock too). Every piece is
     computed by the same operations as in one pass, so the pixels and
-    numbers are those of doing the steps one after another.
+    numbers are those of doing the steps one after another. With one core
+    (:func:`band_threads` is 1, as in each worker of a batch pool) the same
+    steps run one after another in the calling thread.
     """
     pixels = pic.pixels
     starts = range(0, pixels.shape[0], _MARK_BAND_ROWS)
     ends = [min(pixels.shape[0], r0 + _MARK_BAND_ROWS) for r0 in starts]
     luma = np.empty(pixels.shape[:2], dtype=np.float32)
     marked = np.empty_like(pixels)
-    with ThreadPoolExecutor(max_workers=_BAND_WORKERS, thread_name_prefix="claimkit-band") as pool:
+    threads = band_threads()
+    with _helpers(threads if threads > 1 else 0, "claimkit-band") as pool:
         list(pool.map(_luma_band, repeat(pixels), repeat(luma), starts, ends))
         fingerprint_job = pool.submit(perceptual_fingerprint, luma)
         plan = embed.mark_plan(luma, seed, np.asarray(bits, dtype=np.uint8), strength=strength,
@@ -122,7 +156,7 @@ def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, stre
     del plan
     peak = 65535.0 if pixels.dtype == np.uint16 else 255.0
     measures = {"psnr_db": round(quality.psnr_from_sse(sse, pixels.size, peak=peak), 3)}
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="claimkit-write") as pool:
+    with _helpers(1 if threads > 1 else 0, "claimkit-write") as pool:
         job = pool.submit(_write_marked, out, marked, pic, jpeg_quality=jpeg_quality,
                           force=force, max_pixels=max_pixels, peak=peak)
         try:

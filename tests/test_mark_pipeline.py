@@ -228,3 +228,29 @@ def test_an_existing_output_is_left_alone(tmp_path):
     with pytest.raises(InputError, match="already exists"):
         workflow.mark_picture(pic, out, SEED, payload())
     assert out.read_bytes() == b"someone else's file"
+
+
+def test_one_core_marks_the_same_pixels_in_place(tmp_path, monkeypatch):
+    """CLAIMKIT_THREADS=1 (what each batch worker gets) runs every step in the caller's thread."""
+    import threading
+
+    rgb = big_photo(700, 900)
+    src = tmp_path / "harwick-one-core.png"
+    Image.fromarray(rgb).save(src)
+    pic, _ = workflow.load_original(src)
+    two = workflow.mark_picture(pic, tmp_path / "two.png", SEED, payload(6))
+    monkeypatch.setenv("CLAIMKIT_THREADS", "1")
+    assert workflow.band_threads() == 1
+    started = threading.active_count()
+    seen = []
+    real = workflow._luma_band
+
+    def spy(*a):
+        seen.append(threading.active_count())
+        return real(*a)
+
+    monkeypatch.setattr(workflow, "_luma_band", spy)
+    one = workflow.mark_picture(pic, tmp_path / "one.png", SEED, payload(6))
+    assert seen and max(seen) == started          # no helper thread was started
+    assert one == two
+    assert (tmp_path / "one.png").read_bytes() == (tmp_path / "two.png").read_bytes()
