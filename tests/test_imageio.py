@@ -662,3 +662,15 @@ def test_add_luma_delta_clips_and_handles_grey():
     g16 = np.array([[65535, 1000]], np.uint16)
     np.testing.assert_array_equal(add_luma_delta(g16, np.array([[1.0, 1.0]], np.float32)),
                                   [[65535, 1257]])
+
+
+@pytest.mark.parametrize("size", [(1, 1), (37, 5), (641, 480)])
+def test_whole_image_rgb_unpacking_equals_pillows_own(size):
+    """The one-call unpacker gives exactly the bytes Pillow's np.asarray path gives."""
+    from claimkit.imageio import _rgb_array
+    rgb = np.random.default_rng(size[0]).integers(0, 256, (size[1], size[0], 3), dtype=np.uint8)
+    im = Image.fromarray(rgb)
+    got = _rgb_array(im)
+    assert got.dtype == np.uint8 and got.shape == rgb.shape
+    np.testing.assert_array_equal(got, np.asarray(im))
+    np.testing.assert_array_equal(got, rgb)
