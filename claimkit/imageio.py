@@ -48,7 +48,6 @@ __all__ = [
     "MIN_SIDE",
     "Picture",
     "read_picture",
-    "read_file_bytes",
     "write_picture",
     "to_luma",
     "add_luma_delta",
@@ -195,7 +194,6 @@ def resolve_max_pixels(max_pixels: int | None = None) -> int:
 
 
 def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
-                 data: bytes | None = None,
                  region: Callable[[tuple[int, int]], tuple[int, int, int, int]] | None = None,
                  ) -> Picture:
     """Decode a photo into an upright array plus the metadata to carry over.
@@ -208,10 +206,6 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
         Refuse images with more than this many pixels (width × height),
         checked from the header before any pixel is decoded. Default:
         ``$CLAIMKIT_MAX_PIXELS`` or :data:`DEFAULT_MAX_PIXELS`.
-    data : bytes, optional
-        The file's contents, already read with :func:`read_file_bytes`, so
-        that a caller can hash exactly the bytes that are decoded; ``path``
-        then only names the file.
     region : callable, optional
         Given the upright picture's ``(height, width)``, the ``(row, col,
         height, width)`` of the only part wanted (an examination of a large
@@ -233,10 +227,7 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
     """
     path = Path(path)
     limit = resolve_max_pixels(max_pixels)
-    if data is None:
-        data = _read_bytes(path)
-    elif not data:
-        raise InputError("empty file (0 bytes); truncated image data", path=path)
+    data = _read_bytes(path)
     digest = hashlib.sha256(data).hexdigest()
     try:
         with _PIL_LIMIT_LOCK, warnings.catch_warnings():
@@ -336,11 +327,6 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
         region=None if region is None else tuple(int(v) for v in box),
         full_size=full_size,
     )
-
-
-def read_file_bytes(path: str | os.PathLike) -> bytes:
-    """The whole file, read once; read errors become one-line :class:`InputError`."""
-    return _read_bytes(Path(path))
 
 
 def _stored_box(orientation: int, stored: tuple[int, int],

@@ -8,7 +8,6 @@ profile for keys and registration, and leaves all numerics to
 
 from __future__ import annotations
 
-import hashlib
 import hmac
 import os
 from collections.abc import Callable
@@ -26,7 +25,6 @@ from claimkit.evidence.storage import sha256_file
 from claimkit.imageio import (
     Picture,
     add_luma_delta,
-    read_file_bytes,
     read_picture,
     to_luma,
     write_picture,
@@ -196,15 +194,15 @@ def _write_marked(out: Path, marked: np.ndarray, pic: Picture, *, jpeg_quality: 
     """
     write_picture(out, marked, like=pic, quality=jpeg_quality, force=force)
     try:
-        data = read_file_bytes(out)
-        psnr_file = None
-        if out.suffix.lower() in (".jpg", ".jpeg", ".webp"):
-            written = read_picture(out, max_pixels=max_pixels, data=data).pixels
-            if written.dtype != pic.pixels.dtype:
-                # A 16-bit photo written as an 8-bit JPEG: compare on the original's scale.
-                written = written.astype(np.float64) * (peak / 255.0)
-            psnr_file = quality.psnr(pic.pixels, written, peak=peak)
-        return hashlib.sha256(data).hexdigest(), psnr_file
+        if out.suffix.lower() not in (".jpg", ".jpeg", ".webp"):
+            return sha256_file(out), None
+        # One read: the picture carries the hash of the very bytes it was decoded from.
+        back = read_picture(out, max_pixels=max_pixels)
+        written = back.pixels
+        if written.dtype != pic.pixels.dtype:
+            # A 16-bit photo written as an 8-bit JPEG: compare on the original's scale.
+            written = written.astype(np.float64) * (peak / 255.0)
+        return back.sha256, quality.psnr(pic.pixels, written, peak=peak)
     except BaseException:
         out.unlink(missing_ok=True)
         raise
