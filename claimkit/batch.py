@@ -178,7 +178,7 @@ def _disk_full(exc: BaseException | None) -> bool:
     return False
 
 
-def mark_task(src: str, staged: str, seed: bytes, bits: list[int], strength: float,
+def mark_task(src: str, staged: str, seed, bits: list[int], strength: float,
               jpeg_quality: int, max_pixels: int | None) -> dict:
     """Mark one photo and write it to ``staged`` (runs in a worker; no profile, no registry).
 
@@ -257,7 +257,6 @@ class _MarkBatch:
         self.json_lines = json_lines
         self.progress = progress
         self.guard = guard
-        self.seed = profile.detection_seed
         self.params = workflow.mark_parameters(strength)
         self.summary = BatchSummary()
         self.handed_back = 0
@@ -330,7 +329,10 @@ class _MarkBatch:
         bits = payload.pack(self.profile.owner_tag, job.serial,
                             self.profile.payload_tag(job.serial))
         self.in_flight.add(staged)
-        return (str(src), str(staged), self.seed, [int(b) for b in bits], strength,
+        from claimkit import workflow
+
+        keys = workflow.embed_keys(self.profile, job.serial)
+        return (str(src), str(staged), keys, [int(b) for b in bits], strength,
                 self.jpeg_quality, self.max_pixels)
 
     # ---------------------------------------------------------------- results

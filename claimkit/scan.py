@@ -54,7 +54,7 @@ CSV_COLUMNS = ("file", "status", "detected", "work_id", "registered",
                "flipped", "shift_x_px", "shift_y_px", "width", "height", "sha256", "error")
 
 
-def scan_task(path: str, seed: bytes, checker, threshold: float,
+def scan_task(path: str, seed, checker, threshold: float,
               max_pixels: int | None) -> dict:
     """Examine one file (runs in a worker; no registry). Returns the report or ``{"error": ...}``."""
     from claimkit import workflow
@@ -231,7 +231,7 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
     for p in problems:
         if not Path(p.path or "").exists():
             raise p                      # a folder that is not there is a usage error
-    seed = profile.detection_seed
+    seed = workflow.mark_keys(profile)
     checker = workflow.owner_payload_check(profile)
     err = sys.stderr
 

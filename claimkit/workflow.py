@@ -29,8 +29,9 @@ from claimkit.imageio import (
     to_luma,
     write_picture,
 )
-from claimkit.mark import detect, embed, pattern, payload, quality
+from claimkit.mark import detect, embed, formats, pattern, payload, quality
 from claimkit.mark.detect import Finding
+from claimkit.mark.format3 import EmbedKeys, MarkKeys
 from claimkit.mark.fingerprint import perceptual_fingerprint
 
 MIN_MARK_SIDE = pattern.TILE      # one full period of the mark on each side
@@ -38,23 +39,37 @@ MIN_EXAMINE_SIDE = 64
 
 
 def mark_parameters(strength: float) -> dict:
-    """The parameters recorded with every work (enough to re-derive the mark from the seed)."""
+    """The parameters recorded with every work (enough to re-derive the mark from the keys).
+
+    The format's public parameter record (:mod:`claimkit.mark.formats`) plus
+    the embedding settings of this work.
+    """
     return {
-        "format": pattern.MARK_FORMAT,
-        "method": "phase-dispersion: random-phase carrier convolved with a spot template, tiled",
+        **formats.CURRENT.as_record(),
         "software": f"claimkit {__version__}",
-        "tile_px": pattern.TILE,
-        "payload_bits": pattern.PAYLOAD_BITS,
-        "pilot_spots": pattern.PILOT_SPOTS,
-        "code_spots": pattern.CODE_SPOTS,
-        "spot_sigma_px": pattern.SPOT_SIGMA,
-        "code": pattern.CURRENT.code.describe(),
         "mask": "SSIM-derived local amplitude",
         "local_ssim_target": embed.DEFAULT_LOCAL_SSIM,
         "psnr_cap_db": embed.DEFAULT_PSNR_DB,
         "strength": strength,
         "channel": "luma (same change on R, G and B)",
     }
+
+
+def mark_keys(profile) -> MarkKeys:
+    """Every detection key of an open profile: formats 1-2 (owner-level seed) and format 3 (all families)."""
+    k = profile.format3_keys()
+    return MarkKeys(legacy=profile.detection_seed, sync=k["sync"], families=k["families"])
+
+
+def disclosure_mark_keys(keys: dict, legacy: bytes | None = None) -> MarkKeys:
+    """Detection keys from what a disclosure holds (evidence layer's ``format3_keys(serial=...)``)."""
+    return MarkKeys(legacy=legacy, sync=keys.get("sync"), families=dict(keys.get("families", {})))
+
+
+def embed_keys(profile, serial: int) -> EmbedKeys:
+    """What marking one work in format 3 needs: the sync seed and the work's own family seed."""
+    k = profile.format3_disclosure_keys(serial)
+    return EmbedKeys(sync=k["sync"], family=k["family"], family_seed=k["families"][k["family"]])
 
 
 def _check_size(pic: Picture, minimum: int, what: str) -> None:
@@ -113,7 +128,8 @@ def _helpers(threads: int, name: str) -> Executor:
     return ThreadPoolExecutor(max_workers=threads, thread_name_prefix=name) if threads else _InPlace()
 
 
-def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, strength: float = 1.0,
+def mark_picture(pic: Picture, out: Path, seed: bytes | EmbedKeys, bits: np.ndarray, *,
+                 strength: float = 1.0,
                  jpeg_quality: int = 95, force: bool = False,
                  max_pixels: int | None = None) -> dict:
     """Embed ``bits`` under ``seed``, write ``out`` atomically and measure what marking did.
@@ -241,7 +257,7 @@ def mark_file(profile, src: str | os.PathLike, out: str | os.PathLike, *, force:
     pic, sha_orig = load_original(src, max_pixels=max_pixels)
     serial = profile.allocate_serials(1)[0]
     bits = payload.pack(profile.owner_tag, serial, profile.payload_tag(serial))
-    facts = mark_picture(pic, out, profile.detection_seed, bits, strength=strength,
+    facts = mark_picture(pic, out, embed_keys(profile, serial), bits, strength=strength,
                          jpeg_quality=jpeg_quality, force=force, max_pixels=max_pixels)
     try:
         record = profile.register_work(
@@ -298,7 +314,7 @@ def known_owner_bits(owner_tag: int) -> np.ndarray:
     return known
 
 
-def examine_picture(pic: Picture, seed: bytes, *, owner_tag: int | None = None, payload_check=None,
+def examine_picture(pic: Picture, seed: bytes | MarkKeys, *, owner_tag: int | None = None, payload_check=None,
                     threshold: float = detect.DEFAULT_THRESHOLD, decoys: int = 0,
                     workers: int = 1) -> Finding:
     """Examine a decoded picture for the mark of ``seed`` (no registry lookup).
@@ -322,7 +338,7 @@ def examine_picture(pic: Picture, seed: bytes, *, owner_tag: int | None = None, 
         to_luma(window), seed, payload_check=payload_check,
         payload_space=payload.PAYLOAD_SPACE,
         known_bits=None if owner_tag is None else known_owner_bits(owner_tag),
-        threshold=threshold, decoys=decoys, workers=workers)
+        threshold=threshold, decoys=decoys, workers=workers, offset=(r0, c0))
     if finding.geometry:
         g = finding.geometry
         g["shift_px"] = [round(g["shift_px"][0] + c0, 2), round(g["shift_px"][1] + r0, 2)]
@@ -339,7 +355,7 @@ def examine_file(profile, path: str | os.PathLike, *, threshold: float = detect.
     """
     path = Path(path)
     pic = read_for_examination(path, max_pixels=max_pixels)
-    finding = examine_picture(pic, profile.detection_seed, owner_tag=profile.owner_tag,
+    finding = examine_picture(pic, mark_keys(profile), owner_tag=profile.owner_tag,
                               payload_check=owner_payload_check(profile),
                               threshold=threshold, decoys=decoys, workers=workers)
     return report_for(path, pic, finding, profile), finding
@@ -376,4 +392,12 @@ def report_for(path: Path, pic: Picture, finding: Finding, profile=None) -> dict
         else:
             rep["work_id"] = work_id_for(p["owner_tag"], p["serial"])
     rep["geometry_text"] = detect.describe_in_words(finding.geometry)
+    if finding.removal_suspected:
+        rep["removal_text"] = REMOVAL_TEXT
     return rep
+
+
+#: What ``removal_suspected`` means, in words (examine, scan and the dossier use it).
+REMOVAL_TEXT = ("The owner's synchronisation pattern is clearly present, but no keyed claim was "
+                "found: the mark may have been stripped by an estimation attack, or the pattern "
+                "copied onto this picture. This is a trace to investigate, not a claim.")

@@ -14,7 +14,7 @@ from PIL import Image
 from skimage import data
 
 from claimkit.cli import main
-from claimkit.mark.pattern import MARK_FORMAT
+from claimkit.mark.formats import CURRENT as CURRENT_FORMAT
 
 CK = [sys.executable, "-m", "claimkit"]
 
@@ -134,5 +134,5 @@ def test_verdict_names_an_older_mark_format():
            "false_alarm_text": "below 1e-12", "geometry_text": "no rotation, scaling or mirroring",
            "message_psnr_db": 25.0, "mark_format": "claimkit-mark/1"}
     assert "older format claimkit-mark/1" in _verdict_line(rep)
-    rep["mark_format"] = MARK_FORMAT
+    rep["mark_format"] = CURRENT_FORMAT.name
     assert "older format" not in _verdict_line(rep)

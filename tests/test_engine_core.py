@@ -113,11 +113,18 @@ def test_tail_bound_is_above_the_gaussian_tail(z):
 
 def test_false_alarm_arithmetic_by_hand():
     h, space = detect.hypotheses(), payload.PAYLOAD_SPACE
-    lp = stats.log10_false_alarm(9.0, None, h, space)
+    lp = stats.log10_false_alarm(z_pilot=9.0, z_full=None, hypotheses=h, payload_space=space)
     assert lp == pytest.approx(math.log10(2 * h * math.exp(-81 / 2)))
-    lp2 = stats.log10_false_alarm(5.0, 30.0, h, space)
+    lp2 = stats.log10_false_alarm(z_pilot=5.0, z_full=30.0, hypotheses=h, payload_space=space)
     assert lp2 == pytest.approx(math.log10(2 * h * space) - 900 / 2 / math.log(10))
-    assert stats.log10_false_alarm(0.5, None, h, space) == 0.0
+    assert stats.log10_false_alarm(z_pilot=0.5, z_full=None, hypotheses=h, payload_space=space) == 0.0
+    # Format 1-2 search: 3 geometries x 8 variants x 4 phases x 128^2 shifts.
+    assert h == 3 * 8 * 4 * 128 * 128 == stats.legacy_hypotheses(geometries=3, dihedral=8, phases=4,
+                                                                  tile=128)
+    # Format 3's claim: (3 sync placements + the file's own grid) x 16 families x 4^2 offsets.
+    assert detect.format3_hypotheses() == 4 * 16 * 16
+    # The best of two tests pays a factor two.
+    assert stats.log10_best_of(bounds=[-20.0, -5.0]) == pytest.approx(math.log10(2) - 20.0)
     assert stats.as_probability(-5000.0) > 0.0
     assert stats.describe(-40.0) == "below 1e-12"
 

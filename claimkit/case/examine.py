@@ -151,12 +151,12 @@ def _robustness(profile, work_id: str, ref_path: Path) -> dict | None:
     except ImportError:
         return {"status": "not run", "reason": "the robustness battery is not part of this build"}
     from claimkit.mark import payload
-    from claimkit.workflow import expected_payload_check
+    from claimkit.workflow import expected_payload_check, mark_keys
 
     work = profile.work(work_id)
     bits = payload.pack(profile.owner_tag, work.serial, profile.payload_tag(work.serial))
     pic = read_picture(ref_path)
-    rows = run_battery(pic.pixels, profile.detection_seed, expected_payload_check(bits), quick=True)
+    rows = run_battery(pic.pixels, mark_keys(profile), expected_payload_check(bits), quick=True)
     return {"status": "run", "on": "registered marked file", "rows": _jsonable(rows)}
 
 
@@ -186,7 +186,7 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
     path = checked_exhibit_path(case, ex)
     pic = read_picture(path)
     luma = to_luma(pic.pixels)
-    finding = workflow.examine_picture(pic, profile.detection_seed, owner_tag=profile.owner_tag,
+    finding = workflow.examine_picture(pic, workflow.mark_keys(profile), owner_tag=profile.owner_tag,
                                        payload_check=workflow.owner_payload_check(profile),
                                        threshold=threshold, decoys=decoys, workers=workers)
     rep = workflow.report_for(path, pic, finding, profile)

@@ -7,7 +7,7 @@ from pathlib import Path
 from claimkit.cli.common import home_dir, passphrase, print_json
 from claimkit.errors import InputError
 from claimkit.mark import detect
-from claimkit.mark.pattern import MARK_FORMAT
+from claimkit.mark.formats import CURRENT as CURRENT_FORMAT
 
 
 def _open_profile(args):
@@ -47,11 +47,14 @@ def cmd_mark(args) -> int:
 
 def _verdict_line(rep: dict) -> str:
     if not rep["detected"]:
-        return (f"{rep['file']}: no mark of this owner found "
+        line = (f"{rep['file']}: no mark of this owner found "
                 f"(best score {rep['score_pilot']:.1f}; false-alarm bound {rep['false_alarm_text']})")
+        if rep.get("removal_suspected"):
+            line += f". REMOVAL SUSPECTED: {rep.get('removal_text', '')}"
+        return line
     who = rep["work_id"] or "an unreadable payload"
     reg = "" if rep.get("registered") else " (not in this registry)"
-    if rep.get("mark_format") not in (None, MARK_FORMAT):
+    if rep.get("mark_format") not in (None, CURRENT_FORMAT.name):
         reg += f" (marked in the older format {rep['mark_format']})"
     return (f"{rep['file']}: MARK FOUND, work {who}{reg}; chance of this without the mark "
             f"{rep['false_alarm_text']}; {rep['geometry_text']}; "

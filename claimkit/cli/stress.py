@@ -50,7 +50,7 @@ def cmd_stress(args) -> int:
         raise InputError(f"image is {w}x{h} pixels; the battery needs at least "
                          f"{workflow.MIN_MARK_SIDE} pixels on each side", path=marked)
     with Profile.open(home_dir(args), passphrase()) as profile:
-        seed = profile.detection_seed
+        seed = workflow.mark_keys(profile)
         check = workflow.owner_payload_check(profile)
     if not args.json:
         print(f"{'attack':<28} {'size':>11} {'found':<5} {'same':<5} {'P_fa':>9} {'PSNR':>6}  "

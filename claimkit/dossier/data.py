@@ -169,15 +169,17 @@ def _constants(module) -> dict:
 
 
 def _engine_parameters() -> dict:
-    from claimkit.mark import geometry
+    from claimkit.mark import formats, geometry
 
     return {
         "tile_px": pattern.TILE, "payload_bits": pattern.PAYLOAD_BITS,
-        "pilot_spots": pattern.PILOT_SPOTS, "code_spots": pattern.CODE_SPOTS,
-        "formats_read": "; ".join(f.describe() for f in pattern.READABLE),
+        "pilot_spots": formats.CURRENT.pilot_spots, "code_spots": formats.CURRENT.code_spots,
+        "formats_read": "; ".join(f.describe() for f in formats.READABLE),
+        "format_records": [f.as_record() for f in formats.READABLE],
         "prefilter_px": getattr(detect, "PREFILTER", None),
         "geometries_tried": detect.GEOMETRIES, "quarter_turns_and_mirrors": detect.DIHEDRAL,
         "subpixel_phases": len(detect.PHASES), "hypotheses": detect.hypotheses(),
+        "format3_hypotheses": detect.format3_hypotheses(),
         "bound": "P_fa <= 2 x H x exp(-z^2/2) (sub-Gaussian tail, union over hypotheses)",
         "settings": {**_constants(pattern), **_constants(detect), **_constants(geometry),
                      **_constants(stats)},

@@ -47,7 +47,11 @@ __all__ = [
     "WorkRecord",
     "commitment_of",
     "derive_detection_seed",
+    "derive_format3_family_seed",
+    "derive_format3_sync_seed",
     "derive_payload_tag",
+    "format3_family_of",
+    "format3_keys",
 ]
 
 OWNER_FILE = "owner.json"
@@ -62,6 +66,11 @@ RECORD_TYPE = "claimkit/work-record/v1"
 COMMITMENT_SCHEME = "sha256-canonical-json/v1"
 DETECTION_INFO = b"claimkit/detection/v1"
 PAYLOAD_TAG_INFO = b"claimkit/payload-tag/v1"
+# Mark format 3's key hierarchy (DEVELOPERS.md "Keys"): all from the marking secret by HKDF-SHA256.
+FORMAT3_SYNC_INFO = b"claimkit/mark3/sync/v1"
+FORMAT3_FAMILY_INFO = b"claimkit/mark3/family/v1/"            # + family index, 2 bytes big-endian
+FORMAT3_ASSIGNMENT_INFO = b"claimkit/mark3/family-assignment/v1"
+FORMAT3_FAMILIES = 16     # must equal claimkit.mark.format3.FAMILIES (checked by the tests)
 _HEX64 = re.compile(r"[0-9a-f]{64}\Z")
 _WORK_ID = re.compile(r"W-([0-9A-F]{4})-(\d{6,8})\Z")
 
@@ -123,6 +132,52 @@ def derive_detection_seed(marking_secret: bytes) -> bytes:
     """HKDF-SHA256(marking_secret, salt=None, info="claimkit/detection/v1"), 32 bytes (RFC 5869)."""
     return HKDF(algorithm=hashes.SHA256(), length=32, salt=None,
                 info=DETECTION_INFO).derive(marking_secret)
+
+
+def _hkdf(marking_secret: bytes, info: bytes) -> bytes:
+    return HKDF(algorithm=hashes.SHA256(), length=32, salt=None, info=info).derive(marking_secret)
+
+
+def derive_format3_sync_seed(marking_secret: bytes) -> bytes:
+    """HKDF-SHA256(marking_secret, info="claimkit/mark3/sync/v1"): the owner's synchronisation seed."""
+    return _hkdf(marking_secret, FORMAT3_SYNC_INFO)
+
+
+def derive_format3_family_seed(marking_secret: bytes, family: int) -> bytes:
+    """HKDF-SHA256(marking_secret, info="claimkit/mark3/family/v1/" || family as 2 bytes)."""
+    if not 0 <= family < FORMAT3_FAMILIES:
+        raise ValueError(f"family {family} outside 0..{FORMAT3_FAMILIES - 1}")
+    return _hkdf(marking_secret, FORMAT3_FAMILY_INFO + family.to_bytes(2, "big"))
+
+
+def format3_family_of(marking_secret: bytes, serial: int) -> int:
+    """The keyed family of a serial: HMAC-SHA256(assignment key, serial as 3 bytes), first 4 bytes mod F.
+
+    The assignment key is HKDF(marking_secret, "claimkit/mark3/family-assignment/v1"); without
+    it nobody can tell which works share a family (F divides 2^32, so every family is equally likely).
+    """
+    _check_serial(serial)
+    key = _hkdf(marking_secret, FORMAT3_ASSIGNMENT_INFO)
+    digest = hmac.new(key, serial.to_bytes(3, "big"), hashlib.sha256).digest()
+    return int.from_bytes(digest[:4], "big") % FORMAT3_FAMILIES
+
+
+def format3_keys(marking_secret: bytes, *, serial: int | None = None) -> dict:
+    """Format 3 keys as bytes: the sync seed and family seeds.
+
+    With ``serial``, only what that work's disclosure needs: the sync seed,
+    the work's family and that family's seed (its holder can detect the
+    owner's works of that family, none in other families). Without, every
+    family (the owner's examination). Returns ``{"sync": bytes, "families":
+    {index: seed}}`` (and ``"family"`` with ``serial``).
+    """
+    sync = derive_format3_sync_seed(marking_secret)
+    if serial is None:
+        return {"sync": sync, "families": {f: derive_format3_family_seed(marking_secret, f)
+                                           for f in range(FORMAT3_FAMILIES)}}
+    family = format3_family_of(marking_secret, serial)
+    return {"sync": sync, "family": family,
+            "families": {family: derive_format3_family_seed(marking_secret, family)}}
 
 
 def _payload_tag_key(marking_secret: bytes) -> bytes:
@@ -380,6 +435,14 @@ class Profile:
     def detection_seed(self) -> bytes:
         """32 bytes from which the engine derives carrier, pilot and positions."""
         return derive_detection_seed(self._need_secrets().marking_secret)
+
+    def format3_keys(self) -> dict:
+        """Every format-3 detection key of the owner (see :func:`format3_keys`)."""
+        return format3_keys(self._need_secrets().marking_secret)
+
+    def format3_disclosure_keys(self, serial: int) -> dict:
+        """What a disclosure of one format-3 work needs: sync seed, family, family seed (no other family)."""
+        return format3_keys(self._need_secrets().marking_secret, serial=serial)
 
     def payload_tag(self, serial: int) -> int:
         """24-bit keyed tag of a serial: a payload cannot be forged without the marking secret."""

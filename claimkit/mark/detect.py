@@ -37,7 +37,7 @@ import numpy as np
 from scipy import fft as sfft
 from scipy import ndimage
 
-from claimkit.mark import geometry, stats
+from claimkit.mark import format3, geometry, stats
 from claimkit.mark.pattern import (
     PAYLOAD_BITS,
     READABLE,
@@ -93,6 +93,10 @@ class Finding:
     recovered_raw: np.ndarray = field(repr=False)  # raw correlation map, aligned
     reference: np.ndarray = field(repr=False)    # reference message template
     decoy_scores: list[float] = field(default_factory=list)
+    removal_suspected: bool = False       # format 3's sync present, no claim (see examine_luma)
+    z_sync: float | None = None           # best synchronisation score (no claim rests on it)
+    mark_family: int | None = None        # format 3 family of the claimed work
+    counting: dict = field(default_factory=dict)   # the factors of the bound, test by test
 
     @property
     def false_alarm_probability(self) -> float:
@@ -114,6 +118,10 @@ class Finding:
             "message_psnr_raw_db": _r2(self.message_psnr_raw_db),
             "message_psnr_flat_db": _r2(self.message_psnr_flat_db),
             "geometry": self.geometry,
+            "removal_suspected": self.removal_suspected,
+            "score_sync": None if self.z_sync is None else round(self.z_sync, 4),
+            "mark_family": self.mark_family,
+            "false_alarm_counting": self.counting,
         }
 
 
@@ -167,7 +175,8 @@ def fold(x: np.ndarray, tile: int = TILE) -> np.ndarray:
     return out
 
 
-def fold_resampled(x: np.ndarray, transform: np.ndarray, tile: int = TILE) -> np.ndarray:
+def fold_resampled(x: np.ndarray, transform: np.ndarray, tile: int = TILE, *,
+                   macro: int = 1) -> np.ndarray | tuple[np.ndarray, np.ndarray]:
     """Fold a geometrically distorted copy straight onto the original's period grid.
 
     Each copy pixel ``y`` belongs at original position ``u = transform^-1 y``.
@@ -178,16 +187,22 @@ def fold_resampled(x: np.ndarray, transform: np.ndarray, tile: int = TILE) -> np
     near it (normalised convolution). This is the fold of the resampled
     picture without building the resampled picture; cost is two histograms
     of the copy's pixels whatever the scale.
+
+    With ``macro > 1`` the pixels are binned on the ``macro * tile`` torus
+    (format 3's macro-cell) and both folds are returned, ``(tile fold,
+    macro fold)``: the tile fold's sums and counts are the macro fold's,
+    summed block by block, so it is the fold ``macro=1`` gives (to the order
+    of the float sums).
     """
     h, w = x.shape
     inv = np.linalg.inv(transform).astype(np.float32) * 2   # half-pixel bins
-    fine = 2 * tile
+    fine = 2 * tile * macro
     cols = np.arange(w, dtype=np.float32)
     acc = np.zeros(fine * fine)
     cnt = np.zeros(fine * fine)
     # Rows in chunks of about 128k pixels: the chunk's temporaries stay in
     # cache (13.8 -> 10.5 ms at 1.6 MP against 1M-pixel chunks).
-    step = max(1, 131_072 // max(w, 1))
+    step = max(1, max(131_072, fine * fine // 4) // max(w, 1))
     # The wrap onto the torus is a bit mask when the side is a power of two
     # (two's complement makes it right for negative bins too); the bin
     # indices are built in place in int32 and converted once to the intp that
@@ -213,12 +228,18 @@ def fold_resampled(x: np.ndarray, transform: np.ndarray, tile: int = TILE) -> np
         cnt += np.bincount(idx, minlength=fine * fine)
 
     def tent(a):
-        a = a.reshape(fine, fine)
         a = 0.5 * a + 0.25 * (np.roll(a, 1, 0) + np.roll(a, -1, 0))
         a = 0.5 * a + 0.25 * (np.roll(a, 1, 1) + np.roll(a, -1, 1))
         return a[::2, ::2]
 
-    return tent(acc) / np.maximum(tent(cnt), 1e-9)
+    acc, cnt = acc.reshape(fine, fine), cnt.reshape(fine, fine)
+    if macro == 1:
+        return tent(acc) / np.maximum(tent(cnt), 1e-9)
+    small = 2 * tile
+    acc_t = acc.reshape(macro, small, macro, small).sum(axis=(0, 2))
+    cnt_t = cnt.reshape(macro, small, macro, small).sum(axis=(0, 2))
+    return (tent(acc_t) / np.maximum(tent(cnt_t), 1e-9),
+            tent(acc) / np.maximum(tent(cnt), 1e-9))
 
 
 def _variants(f: np.ndarray) -> np.ndarray:
@@ -314,6 +335,7 @@ class _Prepared:
     transforms: list[np.ndarray | None]   # original -> copy (row, col); None = unwarped
     lattices: list[geometry.Lattice | None]
     window: tuple[int, int, int, int]   # row, col, height, width of the examined window
+    macro_folds: list[np.ndarray] = field(default_factory=list)   # per geometry: format 3's macro-period fold
 
 
 def central_window(shape: tuple[int, int], max_pixels: int = MAX_EXAMINE_PIXELS):
@@ -326,8 +348,14 @@ def central_window(shape: tuple[int, int], max_pixels: int = MAX_EXAMINE_PIXELS)
     return (h - wh) // 2, (w - ww) // 2, wh, ww
 
 
-def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1) -> _Prepared:
-    """Whiten, estimate the lattice, resample and fold: everything that needs no key."""
+def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1,
+            macro: int = format3.MACRO) -> _Prepared:
+    """Whiten, estimate the lattice, resample and fold: everything that needs no key.
+
+    Each geometry is folded at format 3's macro-period (``macro * tile``);
+    the tile fold that formats 1 and 2 and the synchronisation search read
+    is its sum block by block.
+    """
     if min(luma.shape) < MIN_SIDE:
         raise ValueError(f"image side below {MIN_SIDE} pixels")
     # A 4-megapixel window holds far more than enough of a tiled mark; beyond
@@ -335,9 +363,9 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1) -> _Prepare
     win = central_window(luma.shape)
     r0, c0, wh, ww = win
     x = whiten(luma[r0:r0 + wh, c0:c0 + ww])
-    spectra, transforms, lattices = [], [], []
+    spectra, transforms, lattices, macro_folds = [], [], [], []
 
-    def add(f, transform, lattice):
+    def add(f, transform, lattice, mf):
         # Single precision from here on: the folds sum thousands of pixels, and
         # float32 keeps ~7 digits of scores read to 4 (half the memory traffic of
         # complex128 in every transform and product of the search).
@@ -352,8 +380,10 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1) -> _Prepare
         spectra.append(s.ravel()[idx] * phase)
         transforms.append(transform)
         lattices.append(lattice)
+        macro_folds.append(np.asarray(mf, dtype=np.float32))
 
-    add(fold(x, tile), None, None)
+    mf = fold(x, tile * macro)
+    add(mf.reshape(macro, tile, macro, tile).sum(axis=(0, 2)), None, None, mf)
     half = np.array([wh, ww], dtype=float) / 2
     for lat in geometry.find_lattices(x, tile, workers=workers):
         t = lat.transform(tile)
@@ -363,8 +393,13 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1) -> _Prepare
         drift = np.abs(t - np.eye(2)) @ half
         if drift.max() < 0.2:
             continue
-        add(fold_resampled(x, t, tile), t, lat)
-    return _Prepared(spectra, transforms, lattices, win)
+        if macro == 1:
+            f = fold_resampled(x, t, tile)
+            add(f, t, lat, f)
+        else:
+            tf, mf = fold_resampled(x, t, tile, macro=macro)
+            add(tf, t, lat, mf)
+    return _Prepared(spectra, transforms, lattices, win, macro_folds)
 
 
 def _surfaces(prep: _Prepared, pattern: KeyPattern, ramps: np.ndarray):
@@ -441,32 +476,142 @@ def _message(pattern, rec, shift, bits):
     """
     raw = np.roll(rec, (-shift[0], -shift[1]), axis=(0, 1))
     codeword = pattern.codeword(bits)
-    ref = message_template(pattern, codeword)
     pos, _ = spot_signs(pattern, codeword)
-    n = pattern.tile
+    return _message_fit(raw, pos, message_template(pattern, codeword), pattern.spot_ft)
+
+
+def _message_fit(raw: np.ndarray, pos: np.ndarray, ref: np.ndarray, spot_ft: np.ndarray):
+    n = raw.shape[0]
     d_meas = np.zeros((n, n))
     d_meas[pos[:, 0], pos[:, 1]] = raw[pos[:, 0], pos[:, 1]]
-    spots = np.real(np.fft.ifft2(np.fft.fft2(d_meas) * pattern.spot_ft))
+    spots = np.real(np.fft.ifft2(np.fft.fft2(d_meas) * spot_ft))
     psnr_spots, fit_spots = _fit_psnr(spots, ref)
     psnr_raw, fit_raw = _fit_psnr(raw, ref)
     zero = 10.0 * np.log10(1.0 / float(np.var(ref)))   # what an all-flat guess scores
     return psnr_spots, psnr_raw, zero, fit_spots, fit_raw, ref
 
 
-def examine_luma(luma: np.ndarray, seed: bytes, *,
+@dataclass
+class _Outcome:
+    """The best reading of one test (formats 1-2, or format 3) before the tests are combined."""
+
+    lp: float
+    z_pilot: float
+    z_full: float | None
+    bits: np.ndarray
+    valid: bool
+    fmt: str
+    placement: tuple            # (g, d, ph, shift)
+    surface: np.ndarray
+    message: tuple              # what _message / _message_fit return
+    hypotheses: int
+    payloads: int
+    family: int | None = None
+
+
+def _top(surf: np.ndarray, count: int):
+    flat = surf.reshape(-1)
+    top = np.argpartition(flat, -count)[-count:]
+    for idx in top[np.argsort(flat[top])[::-1]]:
+        g, d, ph, r, c = np.unravel_index(idx, surf.shape)
+        yield float(flat[idx]), (int(g), int(d), int(ph), np.array([r, c]))
+
+
+def _read_legacy(prep, seed, ramps, payload_check, known_bits, payload_space) -> _Outcome:
+    """Formats 1 and 2: pilot search over every placement, decode the best few."""
+    patterns = [key_pattern(seed, fmt=f) for f in READABLE]
+    n = patterns[0].tile
+    # The current format's pilots are a prefix of every older format's, so one
+    # pilot search serves all of them.
+    surf = _surfaces(prep, patterns[0], ramps)
+    counted = payloads_counted(payload_space)
+    h = hypotheses(n)
+    best = None
+    for z_pilot, (g, d, ph, shift) in _top(surf, DECODE_TRIES):
+        pattern, bits, valid, z_full, rec = _decode_at(prep, patterns, ramps, g, d, ph, shift,
+                                                       payload_check, known_bits)
+        lp = stats.log10_false_alarm(z_pilot=z_pilot, z_full=z_full, hypotheses=h,
+                                     payload_space=counted)
+        if best is None or lp < best[0]:
+            best = (lp, (g, d, ph, shift), pattern, bits, valid, z_full, z_pilot, rec)
+    lp, (g, d, ph, shift), pattern, bits, valid, z_full, z_pilot, rec = best
+    return _Outcome(lp=lp, z_pilot=z_pilot, z_full=z_full, bits=bits, valid=valid,
+                    fmt=pattern.fmt.name, placement=(g, d, ph, shift),
+                    surface=surf[g, d, ph], message=_message(pattern, rec, shift, bits),
+                    hypotheses=h, payloads=counted)
+
+
+def sync_hypotheses(tile: int = TILE) -> int:
+    """Placements of the synchronisation search (the pilot search of formats 1 and 2)."""
+    return hypotheses(tile)
+
+
+def format3_hypotheses() -> int:
+    """Hypotheses of format 3's claim test (see :func:`claimkit.mark.stats.format3_hypotheses`)."""
+    return stats.format3_hypotheses(placements=DECODE_TRIES + 1, families=format3.FAMILIES,
+                                    macro=format3.MACRO)
+
+
+def _read_format3(prep, keys: format3.MarkKeys, ramps, payload_check, known_bits,
+                  payload_space, origin) -> tuple[_Outcome | None, float]:
+    """Format 3: align with the sync pattern, then score every family at every macro offset.
+
+    Returns the claim's outcome (None without family seeds) and the best
+    synchronisation score.
+    """
+    sp = format3.sync_pattern(keys.sync)
+    n = sp.tile
+    surf = _surfaces(prep, sp, ramps)
+    weight = sp.spot_ft * sp.band
+    h = format3_hypotheses()
+    best = None
+    z_sync = float(surf.max())
+    if not keys.families:
+        return None, z_sync
+    placements = [p for _, p in _top(surf, DECODE_TRIES)]
+    # The file's own grid (unwarped, as is, origin where the picture's is):
+    # tried too, so that stripping the synchronisation component (an
+    # adversary can estimate it) does not take the claim with it.
+    own = (0, 0, 0, np.asarray(origin, dtype=int) % n)
+    if not any(q[:3] == own[:3] and np.array_equal(q[3], own[3]) for q in placements):
+        placements.append(own)
+    for g, d, ph, shift in placements:
+        spec = format3.aligned_tiles(prep.macro_folds[g], d, shift, ramps[ph], n)
+        spec *= spectral_weight(spec.sum(axis=0)[None])[0].astype(np.float32)
+        scores = format3.score_families(spec, keys.families)
+        fam, z = max(((f, v) for f, v in scores.items()), key=lambda fv: float(fv[1].max()))
+        k = int(np.argmax(z))
+        offset = format3.OFFSETS[k]
+        bits, valid, z_full, rec = format3.decode_family(
+            spec, weight, keys.families[fam], offset, payload_check=payload_check,
+            known_bits=known_bits)
+        lp = stats.log10_false_alarm(z_pilot=float(z[k]), z_full=z_full, hypotheses=h,
+                                     payload_space=payload_space)
+        if best is None or lp < best.lp:
+            pos, _, ref = format3.reference_message(keys.families[fam], bits, n)
+            best = _Outcome(lp=lp, z_pilot=float(z[k]), z_full=z_full, bits=bits, valid=valid,
+                            fmt=format3.NAME, placement=(g, d, ph, shift), surface=surf[g, d, ph],
+                            message=_message_fit(rec, pos, ref, sp.spot_ft), hypotheses=h,
+                            payloads=payload_space, family=fam)
+    return best, z_sync
+
+
+def examine_luma(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
                  payload_check: Callable[[np.ndarray], bool] | None = None,
                  payload_space: int = DEFAULT_PAYLOAD_SPACE,
                  known_bits: np.ndarray | None = None,
                  threshold: float = DEFAULT_THRESHOLD, decoys: int = 0,
                  decoy_seed: int = 0, workers: int = 1,
-                 prepared: _Prepared | None = None) -> Finding:
+                 prepared: _Prepared | None = None,
+                 offset: tuple[int, int] = (0, 0)) -> Finding:
     """Examine one copy's luma for the mark of ``seed``.
 
     Parameters
     ----------
     luma : ndarray, (H, W), 0..255 scale
-    seed : bytes
-        32-byte detection seed.
+    seed : bytes or MarkKeys
+        32-byte detection seed of formats 1 and 2, or the keys of every
+        format (:class:`claimkit.mark.format3.MarkKeys`).
     payload_check : callable, optional
         Says whether decoded payload bits name a real work (e.g. the owner's
         payload tag matches). Only a valid payload earns the full-template score.
@@ -480,49 +625,74 @@ def examine_luma(luma: np.ndarray, seed: bytes, *,
         ``detected`` means the false-alarm bound is at most this.
     decoys : int
         Number of random decoy keys to examine as a control (scores only).
+    offset : (int, int)
+        Row and column of ``luma[0, 0]`` in the file (when ``luma`` is a
+        window of it): format 3 also tries the file's own grid.
 
     Returns
     -------
     Finding
+
+    Notes
+    -----
+    Formats 1 and 2 (the legacy seed) and format 3 (sync and family seeds)
+    are separate tests; the finding reports the better one and its bound
+    counts both (:func:`claimkit.mark.stats.log10_best_of`). Format 3's
+    synchronisation found on its own is no claim: it sets
+    ``removal_suspected``.
     """
+    keys = seed if isinstance(seed, format3.MarkKeys) else format3.MarkKeys(legacy=seed)
     prep = prepared or prepare(luma, workers=workers)
-    patterns = [key_pattern(seed, fmt=f) for f in READABLE]
-    n = patterns[0].tile
+    n = TILE
     ramps = _ramps(n)
-    # The current format's pilots are a prefix of every older format's, so one
-    # pilot search serves all of them.
-    surf = _surfaces(prep, patterns[0], ramps)
-    flat = surf.reshape(-1)
-    top = np.argpartition(flat, -DECODE_TRIES)[-DECODE_TRIES:]
-    order = top[np.argsort(flat[top])[::-1]]
-    counted = payloads_counted(payload_space)
-    best = None
-    for idx in order:
-        g, d, ph, r, c = np.unravel_index(idx, surf.shape)
-        shift = np.array([r, c])
-        pattern, bits, valid, z_full, rec = _decode_at(prep, patterns, ramps, g, d, ph, shift,
-                                                       payload_check, known_bits)
-        lp = stats.log10_false_alarm(float(flat[idx]), z_full, hypotheses(n), counted)
-        if best is None or lp < best[0]:
-            best = (lp, (g, d, ph, shift), pattern, bits, valid, z_full, float(flat[idx]), rec)
-    lp, (g, d, ph, shift), pattern, bits, valid, z_full, z_pilot, rec_map = best
+    outcomes: list[_Outcome] = []
+    z_sync = None
+    if keys.legacy is not None:
+        outcomes.append(_read_legacy(prep, keys.legacy, ramps, payload_check, known_bits,
+                                     payload_space))
+    if keys.sync is not None:
+        # Where the picture's pixel (0, 0) falls in the examined window's frame.
+        origin = (-(offset[0] + prep.window[0]), -(offset[1] + prep.window[1]))
+        claim, z_sync = _read_format3(prep, keys, ramps, payload_check, known_bits, payload_space,
+                                      origin)
+        if claim is not None:
+            outcomes.append(claim)
+    if not outcomes:
+        raise ValueError("no detection key given")
+    best = min(outcomes, key=lambda o: o.lp)
+    lp = stats.log10_best_of(bounds=[o.lp for o in outcomes])
     detected = lp <= np.log10(threshold)
-    psnr, psnr_raw, psnr_zero, rec, rec_raw, ref = _message(pattern, rec_map, shift, bits)
+    sync_lp = None if z_sync is None else stats.log10_false_alarm(
+        z_pilot=z_sync, z_full=None, hypotheses=sync_hypotheses(n), payload_space=1)
+    removal = bool(sync_lp is not None and sync_lp <= np.log10(threshold) and not detected)
+    g, d, ph, shift = best.placement
+    psnr, psnr_raw, psnr_zero, rec, rec_raw, ref = best.message
     geom = describe_geometry(prep, g, d, PHASES[ph], shift, n) if detected else {}
     decoy_scores = decoy_control(prep, decoys, decoy_seed) if decoys else []
+    counting = {
+        "tests": len(outcomes),
+        "formats_1_2": None if keys.legacy is None else {
+            "hypotheses": hypotheses(n), "geometries": GEOMETRIES, "dihedral": DIHEDRAL,
+            "phases": len(PHASES), "shifts": n * n, "payloads": payloads_counted(payload_space)},
+        "format_3": None if keys.sync is None or not keys.families else {
+            "hypotheses": format3_hypotheses(), "placements": DECODE_TRIES + 1,
+            "families": format3.FAMILIES, "macro_offsets": format3.MACRO ** 2,
+            "payloads": payload_space},
+    }
     return Finding(
-        detected=bool(detected), log10_false_alarm=lp, z_pilot=z_pilot, z_full=z_full,
-        hypotheses=hypotheses(n), payload_space=counted,
-        payload_bits=[int(b) for b in bits] if detected else None,
-        payload_valid=valid and bool(detected),
-        mark_format=pattern.fmt.name if valid and detected else None,
+        detected=bool(detected), log10_false_alarm=lp, z_pilot=best.z_pilot, z_full=best.z_full,
+        hypotheses=best.hypotheses, payload_space=best.payloads,
+        payload_bits=[int(b) for b in best.bits] if detected else None,
+        payload_valid=best.valid and bool(detected),
+        mark_format=best.fmt if best.valid and detected else None,
         message_psnr_db=float(psnr) if detected else None,
         message_psnr_raw_db=float(psnr_raw) if detected else None,
         message_psnr_flat_db=float(psnr_zero),
-        geometry=geom, surface=surf[g, d, ph].astype(np.float32),
+        geometry=geom, surface=best.surface.astype(np.float32),
         recovered=rec.astype(np.float32), recovered_raw=rec_raw.astype(np.float32),
         reference=ref.astype(np.float32),
-        decoy_scores=decoy_scores,
+        decoy_scores=decoy_scores, removal_suspected=removal,
+        z_sync=z_sync, mark_family=best.family if detected else None, counting=counting,
     )
 
 

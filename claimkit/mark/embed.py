@@ -30,6 +30,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage
 
+from claimkit.mark.format3 import EmbedKeys, macro_tile
 from claimkit.mark.pattern import KeyPattern, key_pattern, mark_tile
 
 SSIM_C2 = (0.03 * 255.0) ** 2       # the SSIM stabiliser for 8-bit data (Wang et al. 2004)
@@ -216,7 +217,19 @@ class MarkPlan:
                             out=sub)
 
 
-def mark_plan(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
+def period(keys: bytes | EmbedKeys, payload_bits: np.ndarray) -> np.ndarray:
+    """One period of the mark at unit RMS, float32.
+
+    ``keys`` is a format-3 :class:`~claimkit.mark.format3.EmbedKeys` (the
+    ``MACRO * TILE`` macro-cell) or, for format 2, the 32-byte seed (one tile).
+    """
+    if isinstance(keys, EmbedKeys):
+        return macro_tile(keys, payload_bits)
+    pattern: KeyPattern = key_pattern(keys)
+    return np.asarray(mark_tile(pattern, pattern.codeword(payload_bits)), dtype=np.float32)
+
+
+def mark_plan(luma: np.ndarray, seed: bytes | EmbedKeys, payload_bits: np.ndarray, *,
               strength: float = 1.0, local_ssim: float = DEFAULT_LOCAL_SSIM,
               psnr_db: float = DEFAULT_PSNR_DB, executor: Executor | None = None) -> MarkPlan:
     """The mask and the period for ``payload_bits`` under ``seed`` (see :class:`MarkPlan`).
@@ -224,9 +237,7 @@ def mark_plan(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
     Parameters are those of :func:`mark_delta`; ``executor`` (optional) lends
     a thread to :func:`mask_samples`.
     """
-    pattern: KeyPattern = key_pattern(seed)
-    codeword = pattern.codeword(payload_bits)
-    e0 = np.asarray(mark_tile(pattern, codeword), dtype=np.float32)
+    e0 = period(seed, payload_bits)
     if strength != 1.0:
         e0 = e0 * np.float32(strength)
     amp, step = mask_samples(luma, local_ssim=local_ssim, psnr_db=psnr_db, executor=executor)
@@ -238,7 +249,7 @@ def mark_plan(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
                     tile_rows=np.tile(e0, (1, -(-w // t0))))
 
 
-def mark_delta(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
+def mark_delta(luma: np.ndarray, seed: bytes | EmbedKeys, payload_bits: np.ndarray, *,
                strength: float = 1.0, local_ssim: float = DEFAULT_LOCAL_SSIM,
                psnr_db: float = DEFAULT_PSNR_DB) -> np.ndarray:
     """The change to add to the luma to carry ``payload_bits`` under ``seed``.
