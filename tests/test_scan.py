@@ -158,7 +158,7 @@ def test_claimed_copies_go_into_a_case(profile, finds, tmp_path, capsys):
     assert len(exhibits) == 2
     claimed = {sha256_file(r["file"]) for r in rows if r.get("detected")}
     assert {e.sha256 for e in exhibits} == claimed
-    assert sorted(r["exhibit_id"] for r in rows if r.get("detected")) == ["E01", "E02"]
+    assert sorted(r["exhibit_id"] for r in rows if r.get("detected")) == ["exhibit-1", "exhibit-2"]
     # Scanning again does not take the same file in twice.
     scan.scan_folders(profile, [finds["web"]], workers=1, case_dir=case_dir)
     assert "already exhibit" in capsys.readouterr().err
