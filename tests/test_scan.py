@@ -198,7 +198,7 @@ def test_report_is_not_left_half_written(profile, finds, tmp_path, monkeypatch, 
     monkeypatch.setattr(scan, "scan_task", boom)
     with pytest.raises(RuntimeError), monkeypatch.context() as m:
         m.setattr(scan, "_human_line", boom)
-        scan.scan_folders(profile, [finds["web"]], workers=1, report=report)
+        scan.scan_folders(profile, [finds["web"]], workers=1, report=report, force=True)
     assert report.read_text() == "an older report\n"
     assert not list(tmp_path.glob(".scan.csv.*"))
 
