@@ -78,6 +78,21 @@ def jpeg(pixels: np.ndarray, quality: int) -> np.ndarray:
     return _array(Image.open(buf))
 
 
+def recompress(pixels: np.ndarray, fmt: str, quality: int) -> np.ndarray:
+    """Re-encode with Pillow's WebP or AVIF codec (what image hosts serve)."""
+    buf = io.BytesIO()
+    _image(pixels).save(buf, fmt, quality=int(quality))
+    buf.seek(0)
+    return _array(Image.open(buf).convert("RGB"))
+
+
+def avif_available() -> bool:
+    """Whether this Pillow was built with AVIF (Pillow 11.3+ with libavif)."""
+    from PIL import features
+
+    return bool(features.check("avif"))
+
+
 def resize(pixels: np.ndarray, sx: float, sy: float | None = None) -> np.ndarray:
     """Pillow Lanczos resize by ``sx`` horizontally and ``sy`` vertically (default ``sx``)."""
     sy = sx if sy is None else sy
@@ -208,7 +223,12 @@ def battery(*, quick: bool = False) -> list[Attack]:
             Attack("noise 8", "noise", {"sigma": 8}, lambda p: add_noise(p, 8)),
             Attack("contrast 0.6", "tone", {"factor": 0.6}, lambda p: contrast(p, 0.6)),
             Attack("gamma 1.5", "tone", {"gamma": 1.5}, lambda p: gamma(p, 1.5)),
+            Attack("webp 75", "recompress", {"format": "WEBP", "quality": 75},
+                   lambda p: recompress(p, "WEBP", 75)),
         ]
+        if avif_available():
+            a.append(Attack("avif 60", "recompress", {"format": "AVIF", "quality": 60},
+                            lambda p: recompress(p, "AVIF", 60)))
     a.append(Attack("social 1080 4:5 jpeg 80", "pipeline", {"width": 1080, "crop": "4:5", "quality": 80},
                     social, scale=None))
     a.append(Attack("shrink 0.6 rotate 2 jpeg 70", "pipeline",

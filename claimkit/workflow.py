@@ -32,8 +32,8 @@ from claimkit.imageio import (
 )
 from claimkit.mark import detect, embed, formats, pattern, payload, quality
 from claimkit.mark.detect import Finding
-from claimkit.mark.format3 import EmbedKeys, MarkKeys
 from claimkit.mark.fingerprint import perceptual_fingerprint
+from claimkit.mark.format3 import EmbedKeys, MarkKeys
 
 MIN_MARK_SIDE = pattern.TILE      # one full period of the mark on each side
 MIN_EXAMINE_SIDE = 64

@@ -46,7 +46,7 @@ from claimkit.errors import CheckFailed, InputError
 from claimkit.evidence import merkle, signing, timestamp
 from claimkit.evidence.canonical import canonical_json
 from claimkit.evidence.custodylog import utc_now
-from claimkit.evidence.profile import COMMITMENT_SCHEME, commitment_of
+from claimkit.evidence.profile import COMMITMENT_SCHEME, commitment_of, format3_keys_digest
 from claimkit.evidence.stamping import inclusion_proof
 from claimkit.evidence.storage import atomic_write, fsync_dir, sha256_hex
 
@@ -135,15 +135,25 @@ def write_disclosure(profile, work_id: str, out: Path) -> Path:
         files[f"timestamps/{token_id}.tsa.pem"] = proof["tsa_cert_pem"]
         stamps.append({**proof["proof"], "token_file": f"timestamps/{token_id}.tst",
                        "tsa_cert_file": f"timestamps/{token_id}.tsa.pem"})
+    detection = {
+        "seed_hex": seed.hex(),
+        "derivation": "HKDF-SHA256(marking secret, salt=none, info='claimkit/detection/v1')",
+    }
+    if "format3_keys_sha256" in opening:
+        # Only this work's family: its holder can detect none of the owner's other families.
+        k = profile.format3_disclosure_keys(work.serial)
+        detection["format3"] = {
+            "sync_hex": k["sync"].hex(), "family": k["family"],
+            "family_seed_hex": k["families"][k["family"]].hex(),
+            "derivation": "HKDF-SHA256(marking secret, salt=none, info='claimkit/mark3/sync/v1' "
+                          "and 'claimkit/mark3/family/v1/' || family as 2 bytes)",
+        }
     doc = {
         "type": DISCLOSURE_TYPE,
         "work_id": work_id,
         "created": {"time": utc_now(), "time_source": "system clock"},
         "owner": work.record["owner"],
-        "detection": {
-            "seed_hex": seed.hex(),
-            "derivation": "HKDF-SHA256(marking secret, salt=none, info='claimkit/detection/v1')",
-        },
+        "detection": detection,
         "payload": {"owner_tag": profile.owner_tag, "serial": work.serial,
                     "payload_tag": profile.payload_tag(work.serial)},
         "commitment": {"scheme": COMMITMENT_SCHEME,
@@ -190,6 +200,7 @@ class DisclosureCheck:
     folder: Path
     work_id: str | None = None
     detection_seed: bytes | None = None
+    format3: dict | None = None     # {"sync": bytes, "family": int, "families": {family: seed}}
     owner_tag: int | None = None
     serial: int | None = None
     payload_tag: int | None = None
@@ -258,6 +269,17 @@ def check_disclosure(folder: Path) -> DisclosureCheck:
         res.problems.append("the commitment opening does not match the record's key commitment")
     if opening.get("detection_seed_sha256") != sha256_hex(seed):
         res.problems.append("the detection seed is not the one committed to")
+    if "format3_keys_sha256" in opening:
+        try:
+            f3 = doc["detection"]["format3"]
+            fam = int(f3["family"])
+            res.format3 = {"sync": bytes.fromhex(f3["sync_hex"]), "family": fam,
+                           "families": {fam: bytes.fromhex(f3["family_seed_hex"])}}
+        except (KeyError, ValueError, TypeError):
+            res.problems.append("the work is in mark format 3 but the disclosure lacks its keys")
+        else:
+            if format3_keys_digest(res.format3) != opening["format3_keys_sha256"]:
+                res.problems.append("the format-3 keys are not the ones committed to")
     if opening.get("payload_tag") != res.payload_tag:
         res.problems.append("the payload tag is not the one committed to")
     for st in doc.get("timestamps", []):

@@ -52,6 +52,7 @@ __all__ = [
     "derive_payload_tag",
     "format3_family_of",
     "format3_keys",
+    "format3_keys_digest",
 ]
 
 OWNER_FILE = "owner.json"
@@ -71,6 +72,7 @@ FORMAT3_SYNC_INFO = b"claimkit/mark3/sync/v1"
 FORMAT3_FAMILY_INFO = b"claimkit/mark3/family/v1/"            # + family index, 2 bytes big-endian
 FORMAT3_ASSIGNMENT_INFO = b"claimkit/mark3/family-assignment/v1"
 FORMAT3_FAMILIES = 16     # must equal claimkit.mark.format3.FAMILIES (checked by the tests)
+FORMAT3_NAME = "claimkit-mark/3"
 _HEX64 = re.compile(r"[0-9a-f]{64}\Z")
 _WORK_ID = re.compile(r"W-([0-9A-F]{4})-(\d{6,8})\Z")
 
@@ -178,6 +180,12 @@ def format3_keys(marking_secret: bytes, *, serial: int | None = None) -> dict:
     family = format3_family_of(marking_secret, serial)
     return {"sync": sync, "family": family,
             "families": {family: derive_format3_family_seed(marking_secret, family)}}
+
+
+def format3_keys_digest(keys: dict) -> str:
+    """SHA-256 (hex) of sync seed || family (2 bytes) || family seed: what a work record commits to."""
+    family = keys["family"]
+    return sha256_hex(keys["sync"] + family.to_bytes(2, "big") + keys["families"][family])
 
 
 def _payload_tag_key(marking_secret: bytes) -> bytes:
@@ -518,6 +526,9 @@ class Profile:
             "payload_tag": self.payload_tag(serial),
             "nonce": nonce,
         }
+        if (mark_params or {}).get("format") == FORMAT3_NAME:
+            opening["format3_keys_sha256"] = format3_keys_digest(
+                format3_keys(secrets.marking_secret, serial=serial))
         record = {
             "type": RECORD_TYPE,
             "work_id": work_id,
@@ -668,12 +679,17 @@ class Profile:
         if row is None:
             raise InputError(f"no work {work_id} in this profile")
         serial, nonce = row
-        return {
+        opening = {
             "work_id": work_id,
             "detection_seed_sha256": sha256_hex(derive_detection_seed(secrets.marking_secret)),
             "payload_tag": self.payload_tag(serial),
             "nonce": nonce,
         }
+        work = self.work(work_id)
+        if work is not None and work.record.get("mark_params", {}).get("format") == FORMAT3_NAME:
+            opening["format3_keys_sha256"] = format3_keys_digest(
+                format3_keys(secrets.marking_secret, serial=serial))
+        return opening
 
     # ----------------------------------------------------------------- custody log
     @property

@@ -270,3 +270,27 @@ def mark_delta(luma: np.ndarray, seed: bytes | EmbedKeys, payload_bits: np.ndarr
     plan = mark_plan(luma, seed, payload_bits, strength=strength, local_ssim=local_ssim,
                      psnr_db=psnr_db)
     return plan.rows(0, plan.shape[0])
+
+
+def embed_component(luma: np.ndarray, keys: bytes | EmbedKeys, payload_bits: np.ndarray, *,
+                    strength: float = 1.0, psnr_db: float = DEFAULT_PSNR_DB) -> np.ndarray:
+    """The change one level of the picture carries, for any luma array (a per-level entry point).
+
+    Parameters
+    ----------
+    luma : ndarray, (H, W), 0..255 scale
+        The level's luma (the picture itself, or a reduced copy of it).
+    keys : EmbedKeys or bytes
+        Format-3 keys of the work, or a format-2 seed.
+    payload_bits : ndarray of 0/1, length 64
+    strength : float
+        Multiplies the masked amplitude.
+    psnr_db : float
+        The level's share of the energy budget, as a PSNR cap (:func:`perceptual_mask`).
+
+    Returns
+    -------
+    ndarray, (H, W) float32
+        The change in luma units. A multi-level mark splits ``psnr_db`` between its levels.
+    """
+    return mark_delta(luma, keys, payload_bits, strength=strength, psnr_db=psnr_db)

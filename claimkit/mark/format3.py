@@ -54,6 +54,7 @@ from scipy import fft as sfft
 
 from claimkit.mark import ecc
 from claimkit.mark.pattern import (
+    MIN_SPACING,
     PAYLOAD_BITS,
     SPOT_SIGMA,
     TILE,
@@ -61,7 +62,6 @@ from claimkit.mark.pattern import (
     MarkFormat,
     _band,
     _carrier_phase,
-    _positions,
     _stream,
     _upper_half,
     spot_spectrum,
@@ -71,12 +71,12 @@ NAME = "claimkit-mark/3"
 MACRO = 4                 # tiles per side of the macro-cell (16 independent carriers per family)
 FAMILIES = 16             # keyed families of works, each with its own carriers and spots
 SYNC_SPOTS = 192          # signed spots of the synchronisation message (all fixed by the sync seed)
-CLAIM_PILOTS = 64         # pilot spots of a family's message (fixed by the family seed)
-SYNC_SHARE = 0.35         # share of the mark's energy in the synchronisation component
+CLAIM_PILOTS = 96          # pilot spots of a family's message (fixed by the family seed)
+SYNC_SHARE = 0.45         # share of the mark's energy in the synchronisation component
 CODE = ecc.RATE_HALF      # the payload's code (as format 2)
 
 # Streams of a family seed: 2 and 3 spot positions and pilot signs, 4 the macro
-# origin, CARRIER_STREAM + c the carrier of tile class c.
+# origin, CARRIER_STREAM the carriers of all tile classes.
 CARRIER_STREAM = 16
 
 SYNC_FORMAT = MarkFormat("claimkit-mark/3 sync", pilots=SYNC_SPOTS, code=CODE)
@@ -122,38 +122,81 @@ def sync_pattern(seed: bytes, tile: int = TILE) -> KeyPattern:
     """The synchronisation pattern: carrier and ``SYNC_SPOTS`` fixed-sign spots, as a pilot-only pattern."""
     if len(seed) != 32:
         raise ValueError("sync seed must be 32 bytes")
-    pos = _positions(_stream(seed, 2), tile, SYNC_SPOTS)
+    pos = _spread_positions(_stream(seed, 2), tile, SYNC_SPOTS)
     sign = np.where(_stream(seed, 3).integers(0, 2, SYNC_SPOTS) == 1, 1, -1).astype(np.int8)
     return KeyPattern(carrier_phase=_carrier_phase(_stream(seed, 1), tile), band=_band(tile),
                       pilot_pos=pos, pilot_sign=sign, code_pos=np.zeros((0, 2), dtype=np.int64),
                       spot_ft=spot_spectrum(tile, SPOT_SIGMA), fmt=SYNC_FORMAT)
 
 
+FREQ_RADIUS = 0.3   # claim carriers use frequencies up to this radius (cycles/pixel)
+
+
+@lru_cache(maxsize=4)
+def claim_frequencies(tile: int = TILE) -> tuple[np.ndarray, np.ndarray]:
+    """Flat indices of the claim's frequencies (one of each Hermitian pair) and of their partners.
+
+    The spots (Gaussian, sigma 1 px) put 97 % of the message's energy within
+    ``FREQ_RADIUS`` = 0.3 cycles/pixel; the claim's carriers live there only,
+    which makes a family's key expansion and score seven times cheaper.
+    """
+    f = np.fft.fftfreq(tile)
+    radius = np.hypot(f[:, None], f[None, :])
+    keep = _upper_half(tile) & _band(tile) & (radius <= FREQ_RADIUS)
+    idx = np.flatnonzero(keep)
+    r, c = np.divmod(idx, tile)
+    partner = ((-r) % tile) * tile + (-c) % tile
+    for arr in (idx, partner):
+        arr.setflags(write=False)
+    return idx, partner
+
+
 @dataclass(frozen=True)
 class FamilyPattern:
     """The key-derived arrays of one family."""
 
-    carriers: np.ndarray     # (MACRO**2, T, T) complex64 unit phasors, class c = u * MACRO + v
+    phases: np.ndarray       # (MACRO**2, nf) complex64 unit phasors at claim_frequencies(), class c = u * MACRO + v
     pilot_pos: np.ndarray    # (CLAIM_PILOTS, 2)
     pilot_sign: np.ndarray   # (CLAIM_PILOTS,) +-1
     code_pos: np.ndarray     # (code spots, 2)
     origin: tuple[int, int]  # macro-cell place of the picture's first tile
+    tile: int = TILE
 
-    @property
-    def tile(self) -> int:
-        return self.carriers.shape[1]
+    def carriers(self) -> np.ndarray:
+        """Full Hermitian spectra (MACRO**2, T, T) complex128 of every class's carrier."""
+        idx, partner = claim_frequencies(self.tile)
+        out = np.zeros((len(self.phases), self.tile * self.tile), dtype=np.complex128)
+        out[:, idx] = self.phases
+        out[:, partner] = np.conj(self.phases)
+        return out.reshape(-1, self.tile, self.tile)
 
 
-def _carriers(seed: bytes, tile: int, count: int) -> np.ndarray:
-    """``count`` independent Hermitian random-phase carriers (0 at DC and the Nyquist lines)."""
-    idx = (-np.arange(tile)) % tile
-    upper, band = _upper_half(tile), _band(tile)
-    out = np.empty((count, tile, tile), dtype=np.complex64)
-    for c in range(count):
-        theta = _stream(seed, CARRIER_STREAM + c).uniform(-np.pi, np.pi, size=(tile, tile))
-        theta = np.where(upper, theta, -theta[np.ix_(idx, idx)])
-        out[c] = np.where(band, np.exp(1j * theta), 0.0)
+def _phases(seed: bytes, count: int, nf: int) -> np.ndarray:
+    """``count`` x ``nf`` independent uniform phases as unit phasors (one Philox stream, class by class)."""
+    theta = _stream(seed, CARRIER_STREAM).uniform(-np.pi, np.pi, size=(count, nf)).astype(np.float32)
+    out = np.empty((count, nf), dtype=np.complex64)
+    out.real = np.cos(theta)
+    out.imag = np.sin(theta)
     return out
+
+
+def _spread_positions(rng: np.random.Generator, n: int, count: int) -> np.ndarray:
+    """Spot centres at least ``MIN_SPACING`` apart on the torus (candidates drawn in batches)."""
+    r = MIN_SPACING - 1
+    taken = np.zeros((n + 2 * r, n + 2 * r), dtype=bool)   # padded: wrapped neighbours are slices
+    out: list[tuple[int, int]] = []
+    while len(out) < count:
+        for y, x in rng.integers(0, n, size=(2 * count, 2)).tolist():
+            if taken[y:y + 2 * r + 1, x:x + 2 * r + 1].any():
+                continue
+            out.append((y, x))
+            for yy in {y, y + n, y - n}:
+                for xx in {x, x + n, x - n}:
+                    if -r <= yy < n + r and -r <= xx < n + r:
+                        taken[yy + r, xx + r] = True
+            if len(out) == count:
+                break
+    return np.asarray(out, dtype=np.int64)
 
 
 @lru_cache(maxsize=2 * FAMILIES + 2)
@@ -162,14 +205,15 @@ def family_pattern(seed: bytes, tile: int = TILE) -> FamilyPattern:
     if len(seed) != 32:
         raise ValueError("family seed must be 32 bytes")
     n_code = CODE.coded_length(PAYLOAD_BITS)
-    pos = _positions(_stream(seed, 2), tile, CLAIM_PILOTS + n_code)
+    pos = _spread_positions(_stream(seed, 2), tile, CLAIM_PILOTS + n_code)
     sign = np.where(_stream(seed, 3).integers(0, 2, CLAIM_PILOTS) == 1, 1, -1).astype(np.int8)
     origin = _stream(seed, 4).integers(0, MACRO, 2)
-    carriers = _carriers(seed, tile, MACRO * MACRO)
-    for arr in (carriers, pos, sign):
+    phases = _phases(seed, MACRO * MACRO, len(claim_frequencies(tile)[0]))
+    for arr in (phases, pos, sign):
         arr.setflags(write=False)
-    return FamilyPattern(carriers=carriers, pilot_pos=pos[:CLAIM_PILOTS], pilot_sign=sign,
-                         code_pos=pos[CLAIM_PILOTS:], origin=(int(origin[0]), int(origin[1])))
+    return FamilyPattern(phases=phases, pilot_pos=pos[:CLAIM_PILOTS], pilot_sign=sign,
+                         code_pos=pos[CLAIM_PILOTS:], origin=(int(origin[0]), int(origin[1])),
+                         tile=tile)
 
 
 def _spots(pos: np.ndarray, sign: np.ndarray, tile: int) -> np.ndarray:
@@ -200,11 +244,12 @@ def macro_tile(keys: EmbedKeys, payload_bits: np.ndarray, tile: int = TILE) -> n
     msg_ft = np.fft.fft2(_spots(np.concatenate([fam.pilot_pos, fam.code_pos]),
                                 np.concatenate([fam.pilot_sign.astype(np.float64), code]), tile)) * spot_ft
     a_s, a_c = np.sqrt(SYNC_SHARE), np.sqrt(1.0 - SYNC_SHARE)
+    carriers = fam.carriers()
     out = np.empty((MACRO * tile, MACRO * tile), dtype=np.float64)
     for i in range(MACRO):
         for j in range(MACRO):
             c = ((i + fam.origin[0]) % MACRO) * MACRO + (j + fam.origin[1]) % MACRO
-            claim = _unit(np.real(np.fft.ifft2(msg_ft * fam.carriers[c])))
+            claim = _unit(np.real(np.fft.ifft2(msg_ft * carriers[c])))
             out[i * tile:(i + 1) * tile, j * tile:(j + 1) * tile] = a_s * sync + a_c * claim
     return _unit(out).astype(np.float32)
 
@@ -256,16 +301,17 @@ _TABLES = np.stack([_class_table(o) for o in OFFSETS])      # (K^2 offsets, K^2 
 def _pilot_kernels(seed: bytes, tile: int = TILE) -> tuple[np.ndarray, np.ndarray]:
     """The family's pilot kernels ``Q_c = C_c w P`` transformed over the class torus, and ``|w P|^2``.
 
-    ``w`` is the spot spectrum on the carrier's band and ``P`` the transform
-    of the family's pilot spots. Returns ``conj(FFT_classes(Q))`` as
-    (K^2, T^2) complex64 and ``|w P|^2`` (T^2,); cached per family seed (2 MB).
+    ``w`` is the spot spectrum and ``P`` the transform of the family's pilot
+    spots, both at :func:`claim_frequencies`. Returns ``conj(DFT_classes(Q))``
+    as (K^2, nf) complex64 and ``|w P|^2`` (nf,); cached per family seed.
     """
     fam = family_pattern(seed, tile)
-    sp = spot_spectrum(tile, SPOT_SIGMA) * _band(tile)
-    p_ft = np.fft.fft2(_spots(fam.pilot_pos, fam.pilot_sign, tile)) * sp
-    q = (fam.carriers * p_ft[None]).reshape(MACRO, MACRO, tile * tile)
+    idx, _ = claim_frequencies(tile)
+    wp = (np.fft.fft2(_spots(fam.pilot_pos, fam.pilot_sign, tile))
+          * spot_spectrum(tile, SPOT_SIGMA)).ravel()[idx]
+    q = (fam.phases * wp.astype(np.complex64)).reshape(MACRO, MACRO, -1)
     qt = np.conj(_class_dft(q)).reshape(MACRO * MACRO, -1)
-    power = (np.abs(p_ft) ** 2).ravel()
+    power = np.abs(wp) ** 2
     qt.setflags(write=False)
     power.setflags(write=False)
     return qt, power
@@ -274,34 +320,36 @@ def _pilot_kernels(seed: bytes, tile: int = TILE) -> tuple[np.ndarray, np.ndarra
 def score_families(spec: np.ndarray, families: Mapping[int, bytes]) -> dict[int, np.ndarray]:
     """Pilot scores (z) of every family at every macro offset: dict family -> (K^2,) array, ``OFFSETS`` order.
 
-    ``spec`` are the aligned tile spectra times the spectral weight. The score
-    of offset ``(a, b)`` sums, over the tiles ``t = (u, v)``, the correlation
-    of each tile with the carrier of its class ``c(t) = (u + a, v + b)`` times
-    the family's pilot spots::
+    ``spec`` are the aligned tile spectra (K^2, T, T) times the spectral
+    weight. The score of offset ``(a, b)`` sums, over the tiles ``t = (u,
+    v)``, the correlation of each tile with the carrier of its class
+    ``c(t) = (u + a, v + b)`` times the family's pilot spots::
 
-        z(a, b) = sum_t Re sum_k Y_t[k] conj(Q_c(t)[k]) / (T^2 sigma).
+        z(a, b) = sum_t Re sum_k Y_t[k] conj(Q_c(t)[k]) / (T^2 sigma)
 
+    over all frequencies ``k``, which is twice the real part of the sum over
+    one member of each Hermitian pair (the tiles and the pattern are real).
     Its exact standard deviation over the key (carrier phases independent per
     class and frequency pair, see :mod:`claimkit.mark.stats`) is
-    ``sigma = sqrt(sum_t sum_k |Y_t[k]|^2 |w P[k]|^2) / T^2``, the same for
-    every offset. The sum over tiles is a cyclic correlation on the
-    ``MACRO x MACRO`` torus of classes, so it is computed through transforms
-    over that torus: one product per (class frequency, frequency) and family,
-    instead of one per (tile, class, frequency).
+    ``sigma = sqrt(sum_t sum_k |Y_t[k]|^2 |w P[k]|^2) / T^2`` for every
+    offset. The sum over tiles is a cyclic correlation on the ``MACRO x
+    MACRO`` torus of classes, so it is computed through transforms over that
+    torus: one product per (class frequency, frequency) and family.
     """
     n = spec.shape[-1]
-    flat = spec.reshape(MACRO, MACRO, -1)
-    power = (flat.real ** 2 + flat.imag ** 2).sum(axis=(0, 1)).astype(np.float64)
-    yt = _class_dft(flat).reshape(MACRO * MACRO, -1)
+    idx, _ = claim_frequencies(n)
+    y = spec.reshape(MACRO, MACRO, -1)[:, :, idx]
+    power = (y.real ** 2 + y.imag ** 2).sum(axis=(0, 1)).astype(np.float64)
+    yt = _class_dft(y).reshape(MACRO * MACRO, -1)
     out = {}
-    for idx, seed in families.items():
+    for fam, seed in families.items():
         qt, kpower = _pilot_kernels(seed, n)
         # (einsum's own loops, not BLAS calls that start threads: on a loaded
         # two-core machine a threaded 16k-long dot product took 20 ms.)
-        sigma = np.sqrt(float(np.einsum("k,k->", power, kpower))) / n ** 2
+        sigma = np.sqrt(2.0 * float(np.einsum("k,k->", power, kpower))) / n ** 2
         v = np.einsum("mk,mk->m", yt, qt).reshape(MACRO, MACRO)
         c = np.fft.fft2(v) / (MACRO * MACRO)
-        out[idx] = c.real.ravel() / (n ** 2 * sigma)
+        out[fam] = 2.0 * c.real.ravel() / (n ** 2 * sigma)
     return out
 
 
@@ -326,45 +374,50 @@ def _class_dft(a: np.ndarray) -> np.ndarray:
 
 
 def score_families_direct(spec: np.ndarray, families: Mapping[int, bytes]) -> dict[int, np.ndarray]:
-    """:func:`score_families` by the plain formula, tile by tile and offset by offset (for the tests)."""
+    """:func:`score_families` by the plain formula over full spectra, tile by tile, offset by offset (tests)."""
     n = spec.shape[-1]
     out = {}
-    sp = spot_spectrum(n, SPOT_SIGMA) * _band(n)
+    sp = spot_spectrum(n, SPOT_SIGMA)
     power = (np.abs(spec) ** 2).sum(axis=0)
-    for idx, seed in families.items():
+    for fam_idx, seed in families.items():
         fam = family_pattern(seed, n)
+        carriers = fam.carriers()
         p_ft = np.fft.fft2(_spots(fam.pilot_pos, fam.pilot_sign, n)) * sp
-        sigma = np.sqrt(float(np.sum(power * np.abs(p_ft) ** 2))) / n ** 2
+        on = np.abs(carriers[0]) > 0
+        sigma = np.sqrt(float(np.sum((power * np.abs(p_ft) ** 2)[on]))) / n ** 2
         z = []
         for offset in OFFSETS:
             table = _class_table(offset)
-            total = sum(np.sum(spec[t] * np.conj(fam.carriers[table[t]] * p_ft)).real
+            total = sum(np.sum(spec[t] * np.conj(carriers[table[t]] * p_ft)).real
                         for t in range(MACRO * MACRO))
             z.append(total / n ** 2 / sigma)
-        out[idx] = np.asarray(z)
+        out[fam_idx] = np.asarray(z)
     return out
 
 
-def decode_family(spec: np.ndarray, weight: np.ndarray, seed: bytes, offset: tuple[int, int], *,
+def decode_family(spec: np.ndarray, seed: bytes, offset: tuple[int, int], *,
                   payload_check: Callable[[np.ndarray], bool] | None,
                   known_bits: np.ndarray | None) -> tuple[np.ndarray, bool, float | None, np.ndarray]:
     """Recovered message of one family at one offset, decoded; full-template score if the payload checks."""
     n = spec.shape[-1]
     fam = family_pattern(seed, n)
+    idx, partner = claim_frequencies(n)
     table = _class_table(offset)
-    rec_ft = (spec * np.conj(fam.carriers[table])).sum(axis=0) * weight
-    rec = np.real(np.fft.ifft2(rec_ft))
+    sp = spot_spectrum(n, SPOT_SIGMA).ravel()[idx]
+    y = spec.reshape(MACRO * MACRO, -1)[:, idx]
+    half = (y * np.conj(fam.phases[table])).sum(axis=0) * sp
+    full = np.zeros(n * n, dtype=np.complex128)
+    full[idx] = half
+    full[partner] = np.conj(half)
+    rec = np.real(np.fft.ifft2(full.reshape(n, n)))
     soft = rec[fam.code_pos[:, 0], fam.code_pos[:, 1]]
     bits = CODE.decode(soft, PAYLOAD_BITS, known=known_bits)
     if payload_check is None or not payload_check(bits):
         return bits, False, None, rec
-    code = 2.0 * CODE.encode(bits).astype(np.float64) - 1.0
-    pos = np.concatenate([fam.pilot_pos, fam.code_pos])
-    sign = np.concatenate([fam.pilot_sign.astype(np.float64), code])
-    q_ft = np.fft.fft2(_spots(pos, sign, n)) * weight
-    flat = spec.reshape(spec.shape[0], -1)
-    power = (flat.real ** 2 + flat.imag ** 2).sum(axis=0)
-    sigma = np.sqrt(float(np.dot(power, (np.abs(q_ft) ** 2).ravel()))) / n ** 2
+    pos, sign, _ = reference_message(seed, bits, n)
+    q = (np.fft.fft2(_spots(pos, sign, n)).ravel()[idx]) * sp
+    power = (y.real ** 2 + y.imag ** 2).sum(axis=0)
+    sigma = np.sqrt(2.0 * float(np.sum(power * np.abs(q) ** 2))) / n ** 2
     z_full = float(np.sum(sign * rec[pos[:, 0], pos[:, 1]]) / sigma)
     return bits, True, z_full, rec
 

@@ -131,7 +131,10 @@ def check_disclosures(root: Path, fp: str, rep: VerifyReport) -> dict:
                 f"{len(chk.timestamps)} timestamp token(s) verified")
         if not probs:
             bits = payload.pack(chk.owner_tag, chk.serial, chk.payload_tag)
-            out[chk.work_id] = (chk.detection_seed, bits, chk)
+            from claimkit.workflow import disclosure_mark_keys
+
+            out[chk.work_id] = (disclosure_mark_keys(chk.format3 or {}, legacy=chk.detection_seed),
+                                bits, chk)
     return out
 
 

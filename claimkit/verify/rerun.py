@@ -23,6 +23,19 @@ from claimkit.workflow import examine_picture, expected_payload_check
 __all__ = ["rerun_examination", "rerun_robustness"]
 
 
+def _merged_keys(all_keys: list):
+    """One key set from several disclosures of one owner: the legacy seed, the sync seed, every family disclosed."""
+    from claimkit.mark.format3 import MarkKeys
+
+    first = all_keys[0]
+    if not isinstance(first, MarkKeys):
+        return first
+    families: dict = {}
+    for k in all_keys:
+        families.update(k.families)
+    return MarkKeys(legacy=first.legacy, sync=first.sync, families=families)
+
+
 def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
                       rep: VerifyReport) -> None:
     """Re-run one exhibit's examination and compare every stored number and array."""
@@ -30,7 +43,7 @@ def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
     if not keys:
         rep.add(f"{i} re-run", False, "no verified disclosure, so no key to re-run with")
         return
-    seed = next(iter(keys.values()))[0]
+    seed = _merged_keys([k for k, _, _ in keys.values()])
     wanted = [bits for _, bits, _ in keys.values()]
 
     def check(got) -> bool:
