@@ -42,7 +42,7 @@ LISTING = """<!doctype html>
 <img src="/img/mug.jpg" srcset="/img/mug-small.jpg 240w, /img/mug.jpg 400w" alt="mug">
 <picture><source srcset="/img/poster-wide.jpg 1x" media="(min-width: 800px)">
 <img src="/go/cat" alt="cushion"></picture>
-<img src="/img/missing.jpg" alt="gone">
+<img src="/img/missing.jpg" alt="gone"><img src="/img/icon.png" alt="">
 <div class="hero"></div>
 <img src="data:image/gif;base64,R0lGODlhAQABAAAAACw=" alt="">
 </body></html>
@@ -182,9 +182,10 @@ def _build(root: Path) -> Site:
     Image.open(studio / "poster-marked.png").convert("RGB").save(
         files / "img" / "poster-wide.jpg", quality=88)
     Image.fromarray(data.chelsea()[:240, :320]).save(files / "img" / "cat.jpg", quality=85)
-    yy, xx = np.mgrid[0:40, 0:320]
-    banner = np.stack([xx * 255 // 320, yy * 6, 255 - xx * 255 // 320], -1).astype(np.uint8)
+    yy, xx = np.mgrid[0:80, 0:320]
+    banner = np.stack([xx * 255 // 320, yy * 3, 255 - xx * 255 // 320], -1).astype(np.uint8)
     Image.fromarray(banner).save(files / "img" / "banner.png")
+    Image.fromarray(banner[:16, :16]).save(files / "img" / "icon.png")
     (files / "shop" / "listing.html").write_text(LISTING.format())
     (files / "shop" / "notes.txt").write_text("Tidewater Home Goods stock list\n")
     (files / "shop" / "html-image.html").write_text(

@@ -36,13 +36,13 @@ from urllib.parse import unquote, urlsplit
 
 from claimkit import __version__
 from claimkit.capture import fetch as _fetch
+from claimkit.capture.evidence import CAPTURES
 from claimkit.capture.pagescan import find_images
 from claimkit.capture.warc import WarcWriter, looks_like_image
 from claimkit.errors import InputError
 
 __all__ = ["CAPTURES", "CaptureResult", "capture_pages", "exchange_facts", "tls_summary"]
 
-CAPTURES = "captures"
 CAPTURE_TYPE = "claimkit/capture/v1"
 CLOCK = "system clock of the capturing machine (WARC-Date)"
 _SAFE = re.compile(r"[^A-Za-z0-9._-]+")
@@ -114,9 +114,9 @@ def _is_image(ex: _fetch.Exchange) -> bool:
 
 
 def _decode_html(ex: _fetch.Exchange) -> str:
-    m = re.search(r"charset=([\w.:-]+)", ex.header("Content-Type") or "", re.I)
+    m = re.search(r"charset=([\w.:-]+)", ex.header("Content-Type") or "", re.IGNORECASE)
     if m is None:
-        m = re.search(rb"<meta[^>]+charset=[\"']?([\w.:-]+)", ex.body[:2048], re.I)
+        m = re.search(rb"<meta[^>]+charset=[\"']?([\w.:-]+)", ex.body[:2048], re.IGNORECASE)
     charset = m.group(1) if m else "utf-8"
     charset = charset.decode("ascii", "replace") if isinstance(charset, bytes) else charset
     try:
@@ -125,16 +125,21 @@ def _decode_html(ex: _fetch.Exchange) -> str:
         return ex.body.decode("utf-8", "replace")
 
 
-def _readable_image(data: bytes) -> str | None:
-    """None when Pillow can open the bytes, else why not."""
+def _unusable(data: bytes) -> str | None:
+    """None when the bytes are a picture claimkit can examine, else why not."""
     from PIL import Image, UnidentifiedImageError
+
+    from claimkit.workflow import MIN_EXAMINE_SIDE
 
     try:
         with Image.open(io.BytesIO(data)) as im:
-            im.size  # noqa: B018 - the header is parsed by open; size is read from it
-        return None
+            w, h = im.size
     except (UnidentifiedImageError, OSError, ValueError) as exc:
-        return str(exc) or type(exc).__name__
+        return f"not an image claimkit can read: {str(exc) or type(exc).__name__}"
+    if min(w, h) < MIN_EXAMINE_SIDE:
+        # Icons, spacers and thumbnails this small cannot carry a readable mark.
+        return f"{w} x {h} pixels, below the {MIN_EXAMINE_SIDE} pixels an examination needs"
+    return None
 
 
 def _file_name(url: str, index: int, media: str) -> str:
@@ -232,10 +237,10 @@ class _Session:
             raise InputError(f"the image URL answers with an HTML page (Content-Type "
                              f"{final.media_type or 'missing'}), not an image; referenced by "
                              f"{page} as {', '.join(how)}", path=url)
-        why = _readable_image(final.body)
+        why = _unusable(final.body)
         if why is not None:
-            self.note(f"{url}: not an image claimkit can examine (Content-Type "
-                      f"{final.media_type or 'missing'}: {why}); kept in the WARC only")
+            self.note(f"{url}: not taken in ({why}; Content-Type "
+                      f"{final.media_type or 'missing'}); kept in the WARC only")
             return
         rid, date = self.written[id(final)]
         self.images[url] = _Found(url, page, page_final, how, chain, rid, date)

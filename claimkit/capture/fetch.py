@@ -310,7 +310,7 @@ def fetch(url: str, opts: FetchOptions | None = None) -> Exchange:
     except _TooLarge:
         raise InputError(f"the response is larger than the limit of {opts.max_bytes} bytes "
                          "(raise it with --max-bytes)", path=url) from None
-    except (TimeoutError, socket.timeout):
+    except TimeoutError:
         raise InputError(f"no complete answer within the time limit ({opts.timeout:g} s per "
                          "read)", path=url) from None
     except (http.client.HTTPException, ValueError) as exc:

@@ -26,8 +26,8 @@ __all__ = ["ImageRef", "find_images", "parse_srcset"]
 _META_IMAGES = {"og:image", "og:image:url", "og:image:secure_url", "twitter:image",
                 "twitter:image:src"}
 _LAZY = ("data-src", "data-original", "data-lazy-src")
-_BACKGROUND = re.compile(r"background(?:-image)?\s*:([^;}]*)", re.I)
-_CSS_URL = re.compile(r"""url\(\s*(?:"([^"]*)"|'([^']*)'|([^)\s]*))\s*\)""", re.I)
+_BACKGROUND = re.compile(r"background(?:-image)?\s*:([^;}]*)", re.IGNORECASE)
+_CSS_URL = re.compile(r"""url\(\s*(?:"([^"]*)"|'([^']*)'|([^)\s]*))\s*\)""", re.IGNORECASE)
 
 
 @dataclass

@@ -178,7 +178,7 @@ def take_snapshot(url: str, *, timeout: float = 60.0, width: int = WIDTH) -> Sna
         pipe.wait_event("Page.loadEventFired", session)
         metrics = pipe.call("Page.getLayoutMetrics", session=session)
         size = metrics.get("cssContentSize") or metrics.get("contentSize") or {}
-        page_h = int(round(size.get("height", 900)))
+        page_h = round(size.get("height", 900))
         height = max(1, min(page_h, MAX_HEIGHT))
         pipe.call("Emulation.setDeviceMetricsOverride",
                   {"width": width, "height": height, "deviceScaleFactor": 1,

@@ -34,6 +34,7 @@ import io
 import os
 import platform
 import ssl
+import zlib
 from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
@@ -112,7 +113,7 @@ class WarcWriter:
     def __init__(self, path: Path, *, operator: str | None, description: str):
         writer_cls, _, _ = _warcio()
         self.path = Path(path)
-        self.fh = open(self.path, "xb")
+        self.fh = open(self.path, "xb")  # noqa: SIM115 - open until close(); "x": never replace
         self.writer = writer_cls(self.fh, gzip=self.path.name.endswith(".gz"),
                                  warc_version="1.1")
         info = {
@@ -227,7 +228,6 @@ class WarcImage:
     ip: str | None
     status: int
     media_type: str
-    offset: int
     payload: bytes
 
 
@@ -236,12 +236,13 @@ def _damaged(path: Path, exc: BaseException) -> InputError:
                       f"{str(exc).strip() or 'no detail'})", path=path)
 
 
-def _records(path: Path) -> Iterator[tuple[int, object]]:
-    """(offset, record) of every record, every digest checked; InputError on damage."""
+def _records(path: Path) -> Iterator[object]:
+    """Every record, every digest checked; InputError on damage."""
     from warcio.exceptions import ArchiveLoadFailed
+    from warcio.statusandheaders import StatusAndHeadersParserException
 
     try:
-        fh = open(path, "rb")
+        fh = open(path, "rb")  # noqa: SIM115 - closed by the with below, kept open across yields
     except OSError as exc:
         raise InputError(f"cannot read ({exc.strerror or exc})", path=path) from None
     with fh:
@@ -254,17 +255,17 @@ def _records(path: Path) -> Iterator[tuple[int, object]]:
                 if rec.format != "warc":
                     raise InputError("not a WARC file (an ARC file or unknown format)",
                                      path=path)
-                offset = it.get_record_offset()
                 # The iterator reads each record to its end before the next one,
                 # and so checks its block and payload digests.
-                yield offset, rec
+                yield rec
                 count += 1
         except InputError:
             raise
-        except (ArchiveLoadFailed, EOFError, OSError, ValueError, IndexError, KeyError,
-                UnicodeDecodeError) as exc:
-            raise _damaged(path, exc) from None
-        except Exception as exc:  # zlib.error and warcio's other parse faults
+        except (ArchiveLoadFailed, StatusAndHeadersParserException, EOFError, OSError,
+                ValueError, IndexError, KeyError, TypeError, AttributeError, AssertionError,
+                zlib.error) as exc:
+            # warcio reports damage in many ways (a bad gzip member, a short read, a
+            # header line it cannot parse, an assertion on lengths): all mean "damaged".
             raise _damaged(path, exc) from None
         if count == 0:
             raise InputError("no WARC record in the file", path=path)
@@ -279,7 +280,7 @@ def image_responses(path: str | os.PathLike) -> Iterator[WarcImage]:
     content coding (warcio's ``content_stream``).
     """
     path = Path(path)
-    for offset, rec in _records(path):
+    for rec in _records(path):
         if rec.rec_type != "response" or rec.http_headers is None:
             continue
         try:
@@ -297,13 +298,13 @@ def image_responses(path: str | os.PathLike) -> Iterator[WarcImage]:
                         target_uri=h.get_header("WARC-Target-URI") or "",
                         date=h.get_header("WARC-Date") or "",
                         ip=h.get_header("WARC-IP-Address"), status=status,
-                        media_type=media, offset=offset, payload=data)
+                        media_type=media, payload=data)
 
 
 def record_payload(path: str | os.PathLike, record_id: str) -> tuple[dict, bytes]:
     """The WARC headers and content of the record with ``record_id`` (digests checked)."""
     path = Path(path)
-    for _offset, rec in _records(path):
+    for rec in _records(path):
         if rec.rec_headers.get_header("WARC-Record-ID") == record_id:
             data = rec.content_stream().read()
             return dict(rec.rec_headers.headers), data

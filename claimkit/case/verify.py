@@ -15,10 +15,12 @@ not. Checks, in order:
 5. the custody log copy: every signature and the hash chain, and that every
    exhibit's intake and examination are logged with the right hashes;
 6. each exhibit against its intake record; each finding against its exhibit;
-7. each examination re-run from the disclosed detection key, and every stored
+7. each exhibit taken from the web against the payload of its WARC record,
+   each WARC file against its recorded SHA-256 and its RFC 3161 token;
+8. each examination re-run from the disclosed detection key, and every stored
    number compared (the decoy control and the alignment included); the
    robustness battery re-run on the registered marked file, row by row;
-8. the dossier data rebuilt from the bundle and compared byte for byte with
+9. the dossier data rebuilt from the bundle and compared byte for byte with
    ``report/dossier.json``; the figures redrawn and compared pixel for pixel;
    the HTML re-rendered and compared; the PDF's PAdES signature checked, and
    its signed content compared with the PDF re-rendered from the data.
@@ -644,6 +646,9 @@ def verify_bundle(path: str | os.PathLike, *, rerun: bool = True,
                 _rerun(root, ex, f, keys, rep)
             except (InputError, OSError, KeyError, ValueError) as exc:
                 rep.add(f"{i} re-run", False, f"cannot be re-run ({exc})")
+        from claimkit.capture.evidence import check_collection
+        for name, ok, detail in check_collection(root, exhibits):
+            rep.add(name, ok, detail)
         if rerun and robustness:
             try:
                 _rerun_robustness(root, findings, keys, rep)

@@ -49,7 +49,8 @@ MANIFEST_TYPE = "claimkit/bundle-manifest/v1"
 PDF = "report/dossier.pdf"
 HTML = "report/dossier.html"
 DATA = "report/dossier.json"
-BUNDLE_PARTS = ("case.json", "exhibits", "references", "findings", "report", HANDOVER)
+BUNDLE_PARTS = ("case.json", "exhibits", "references", "findings", "captures", "report",
+                HANDOVER)
 
 
 def draw_figures(root: Path, data: dict) -> dict[str, bytes]:
