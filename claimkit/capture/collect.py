@@ -38,10 +38,10 @@ from claimkit import __version__
 from claimkit.capture import fetch as _fetch
 from claimkit.capture.evidence import CAPTURES
 from claimkit.capture.pagescan import find_images
-from claimkit.capture.warc import WarcWriter, looks_like_image
+from claimkit.capture.warc import WarcWriter, exchange_facts, looks_like_image
 from claimkit.errors import InputError
 
-__all__ = ["CAPTURES", "CaptureResult", "capture_pages", "exchange_facts", "tls_summary"]
+__all__ = ["CaptureResult", "capture_pages", "tls_summary"]
 
 CAPTURE_TYPE = "claimkit/capture/v1"
 CLOCK = "system clock of the capturing machine (WARC-Date)"
@@ -93,13 +93,6 @@ def tls_summary(tls) -> dict | None:
         except ValueError as exc:
             out["certificate_error"] = f"the server certificate does not parse ({exc})"
     return out
-
-
-def exchange_facts(status: int, header, ip: str | None) -> dict:
-    """The server's statements that date the content, and where it was fetched from."""
-    return {"http_status": status, "server_date": header("Date"),
-            "last_modified": header("Last-Modified"), "etag": header("ETag"),
-            "content_type": header("Content-Type"), "ip": ip}
 
 
 def _is_html(ex: _fetch.Exchange) -> bool:

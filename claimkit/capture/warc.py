@@ -47,6 +47,7 @@ __all__ = [
     "WarcImage",
     "WarcWriter",
     "b32_sha256",
+    "exchange_facts",
     "image_responses",
     "is_warc",
     "record_payload",
@@ -55,6 +56,13 @@ __all__ = [
 WARC_SUFFIXES = (".warc", ".warc.gz")
 _IMAGE_MAGIC = (b"\xff\xd8\xff", b"\x89PNG\r\n\x1a\n", b"GIF87a", b"GIF89a", b"II*\x00",
                 b"MM\x00*", b"BM")
+
+
+def exchange_facts(status: int, header, ip: str | None) -> dict:
+    """The server's statements that date the content, and where it was fetched from."""
+    return {"http_status": status, "server_date": header("Date"),
+            "last_modified": header("Last-Modified"), "etag": header("ETag"),
+            "content_type": header("Content-Type"), "ip": ip}
 
 
 def b32_sha256(data: bytes) -> str:
@@ -229,6 +237,7 @@ class WarcImage:
     status: int
     media_type: str
     payload: bytes
+    facts: dict
 
 
 def _damaged(path: Path, exc: BaseException) -> InputError:
@@ -236,11 +245,26 @@ def _damaged(path: Path, exc: BaseException) -> InputError:
                       f"{str(exc).strip() or 'no detail'})", path=path)
 
 
-def _records(path: Path) -> Iterator[object]:
-    """Every record, every digest checked; InputError on damage."""
+def _damage_types() -> tuple[type[BaseException], ...]:
+    """What warcio raises on damage: a bad gzip member, a short read, a header line it cannot
+    parse, a failed digest, an assertion on lengths. All mean "damaged" here."""
     from warcio.exceptions import ArchiveLoadFailed
     from warcio.statusandheaders import StatusAndHeadersParserException
 
+    return (ArchiveLoadFailed, StatusAndHeadersParserException, EOFError, OSError, ValueError,
+            IndexError, KeyError, TypeError, AttributeError, AssertionError, zlib.error)
+
+
+def _content(rec, path: Path) -> bytes:
+    """A record's content (de-chunked, decompressed), its digests checked as it is read."""
+    try:
+        return rec.content_stream().read()
+    except _damage_types() as exc:
+        raise _damaged(path, exc) from None
+
+
+def _records(path: Path) -> Iterator[object]:
+    """Every record, every digest checked; InputError on damage."""
     try:
         fh = open(path, "rb")  # noqa: SIM115 - closed by the with below, kept open across yields
     except OSError as exc:
@@ -255,17 +279,20 @@ def _records(path: Path) -> Iterator[object]:
                 if rec.format != "warc":
                     raise InputError("not a WARC file (an ARC file or unknown format)",
                                      path=path)
-                # The iterator reads each record to its end before the next one,
-                # and so checks its block and payload digests.
+                # Digests are checked as the record's bytes are read (here, or by the
+                # caller); a record cut short is not, so its length is checked too.
                 yield rec
+                while rec.raw_stream.read(1 << 16):
+                    pass
+                if getattr(rec.raw_stream, "limit", 0) > 0:
+                    raise InputError(
+                        f"damaged or truncated WARC file (record "
+                        f"{rec.rec_headers.get_header('WARC-Record-ID')} ends "
+                        f"{rec.raw_stream.limit} bytes short of its Content-Length)", path=path)
                 count += 1
         except InputError:
             raise
-        except (ArchiveLoadFailed, StatusAndHeadersParserException, EOFError, OSError,
-                ValueError, IndexError, KeyError, TypeError, AttributeError, AssertionError,
-                zlib.error) as exc:
-            # warcio reports damage in many ways (a bad gzip member, a short read, a
-            # header line it cannot parse, an assertion on lengths): all mean "damaged".
+        except _damage_types() as exc:
             raise _damaged(path, exc) from None
         if count == 0:
             raise InputError("no WARC record in the file", path=path)
@@ -287,7 +314,7 @@ def image_responses(path: str | os.PathLike) -> Iterator[WarcImage]:
             status = int(rec.http_headers.get_statuscode() or 0)
         except ValueError:
             status = 0
-        data = rec.content_stream().read()
+        data = _content(rec, path)
         if not 200 <= status < 300:
             continue
         media = (rec.http_headers.get_header("Content-Type") or "").split(";")[0].strip().lower()
@@ -298,7 +325,9 @@ def image_responses(path: str | os.PathLike) -> Iterator[WarcImage]:
                         target_uri=h.get_header("WARC-Target-URI") or "",
                         date=h.get_header("WARC-Date") or "",
                         ip=h.get_header("WARC-IP-Address"), status=status,
-                        media_type=media, payload=data)
+                        media_type=media, payload=data,
+                        facts=exchange_facts(status, rec.http_headers.get_header,
+                                             h.get_header("WARC-IP-Address")))
 
 
 def record_payload(path: str | os.PathLike, record_id: str) -> tuple[dict, bytes]:
@@ -306,6 +335,5 @@ def record_payload(path: str | os.PathLike, record_id: str) -> tuple[dict, bytes
     path = Path(path)
     for rec in _records(path):
         if rec.rec_headers.get_header("WARC-Record-ID") == record_id:
-            data = rec.content_stream().read()
-            return dict(rec.rec_headers.headers), data
+            return dict(rec.rec_headers.headers), _content(rec, path)
     raise InputError(f"no record {record_id} in the WARC file", path=path)
