@@ -36,9 +36,9 @@ from urllib.parse import unquote, urlsplit
 
 from claimkit import __version__
 from claimkit.capture import fetch as _fetch
-from claimkit.capture.evidence import CAPTURES
 from claimkit.capture.pagescan import find_images
 from claimkit.capture.warc import WarcWriter, exchange_facts, looks_like_image
+from claimkit.case.layout import CAPTURES
 from claimkit.errors import InputError
 
 __all__ = ["CaptureResult", "capture_pages", "tls_summary"]

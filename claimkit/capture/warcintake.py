@@ -23,8 +23,8 @@ from dataclasses import dataclass
 from pathlib import Path
 from urllib.parse import unquote, urlsplit
 
-from claimkit.capture.evidence import CAPTURES
 from claimkit.capture.warc import image_responses
+from claimkit.case.layout import CAPTURES
 from claimkit.errors import CheckFailed
 
 __all__ = ["WarcOrigin", "take_in", "unpack_images"]
