@@ -3,8 +3,8 @@
 Scenario (invented): Tidewater Home Goods lists a mug and a rocket poster
 using Ilse Marrow's marked photos (scikit-image's ``coffee`` and ``rocket``,
 marked once here), next to an unmarked cat photo (``chelsea``) reached
-through a redirect, a generated banner in a CSS background, and a missing
-picture (HTTP 404). The same files are served over plain HTTP (standard
+through a redirect, generated backgrounds in the page's CSS and in a linked
+stylesheet, a tiny icon, and a missing picture (HTTP 404). The same files are served over plain HTTP (standard
 library ``http.server`` in a thread) and over HTTPS with a throwaway CA and
 server certificate made by the ``openssl`` command. Nothing leaves the
 loopback address.
@@ -37,6 +37,7 @@ LISTING = """<!doctype html>
 <html><head><meta charset="utf-8"><title>Tidewater Home Goods: kitchen</title>
 <meta property="og:image" content="/img/mug.jpg">
 <style>.hero {{ background-image: url("/img/banner.png"); height: 40px }}</style>
+<link rel="stylesheet" href="/css/shop.css">
 </head><body>
 <h1>Morning mug</h1>
 <img src="/img/mug.jpg" srcset="/img/mug-small.jpg 240w, /img/mug.jpg 400w" alt="mug">
@@ -187,6 +188,10 @@ def _build(root: Path) -> Site:
     Image.fromarray(banner).save(files / "img" / "banner.png")
     Image.fromarray(banner[:16, :16]).save(files / "img" / "icon.png")
     (files / "shop" / "listing.html").write_text(LISTING.format())
+    (files / "css").mkdir()
+    (files / "css" / "shop.css").write_text(
+        "body { margin: 0 }\n.tile { background: #fff url('../img/tile.png') repeat; }\n")
+    Image.fromarray(np.ascontiguousarray(banner[:, :96])).save(files / "img" / "tile.png")
     (files / "shop" / "notes.txt").write_text("Tidewater Home Goods stock list\n")
     (files / "shop" / "html-image.html").write_text(
         '<html><body><img src="/img/mug.jpg"><img src="/img/fake.jpg"></body></html>')
@@ -205,7 +210,7 @@ def _build(root: Path) -> Site:
     secure, https_url = _serve(handler, ctx)
     return Site(root, home, http_url, https_url, ca, files, work_ids,
                 marked={"/img/mug.jpg", "/img/mug-small.jpg", "/img/poster-wide.jpg"},
-                unmarked={"/img/cat.jpg", "/img/banner.png"}, servers=[plain, secure],
+                unmarked={"/img/cat.jpg", "/img/banner.png", "/img/tile.png"}, servers=[plain, secure],
                 hits=hits)
 
 

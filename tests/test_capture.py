@@ -73,11 +73,13 @@ def test_capture_writes_a_warc_that_warcio_reads_back_with_every_digest(
     assert b"software: claimkit" in recs[0][1]
     responses = {h["WARC-Target-URI"]: (h, body, http) for h, body, http in recs
                  if h["WARC-Type"] == "response"}
-    # Every exchange is there: the page, five images, the redirect, its target, the 404.
+    # Every exchange is there: the page, its stylesheet, six images, the redirect, its
+    # target, the 404.
     paths = {"/shop/listing.html", "/img/mug.jpg", "/img/mug-small.jpg", "/img/poster-wide.jpg",
-             "/img/banner.png", "/go/cat", "/img/cat.jpg", "/img/missing.jpg", "/img/icon.png"}
+             "/img/banner.png", "/go/cat", "/img/cat.jpg", "/img/missing.jpg", "/img/icon.png",
+             "/css/shop.css", "/img/tile.png"}
     assert set(responses) == {site.url(p) for p in paths}
-    for path in paths - {"/go/cat", "/img/missing.jpg"}:
+    for path in paths - {"/go/cat", "/img/missing.jpg"}:     # the files served, byte for byte
         h, body, http = responses[site.url(path)]
         assert body == (site.files / path.lstrip("/")).read_bytes()     # the served file
         assert h["WARC-IP-Address"] == "127.0.0.1"
@@ -95,9 +97,9 @@ def test_capture_writes_a_warc_that_warcio_reads_back_with_every_digest(
     assert any("image-reference: " + site.url("/img/mug-small.jpg") + " (img srcset)" in m
                for m in meta)
 
-    # Exhibits: the four pictures and the cat behind the redirect, each with its URLs; the
+    # Exhibits: the five pictures and the cat behind the redirect, each with its URLs; the
     # 16 x 16 icon is too small to carry a mark and stays in the WARC only.
-    assert len(out["exhibits"]) == 5
+    assert len(out["exhibits"]) == 6
     assert any("icon.png: not taken in (16 x 16 pixels" in n for n in out["notes"])
     recs_by_url = {}
     for eid in out["exhibits"]:
@@ -120,6 +122,8 @@ def test_capture_writes_a_warc_that_warcio_reads_back_with_every_digest(
     assert mug["etag"] and mug["last_modified"] and mug["server_date"]
     assert recs_by_url[site.url("/img/banner.png")]["acquisition"]["referenced_as"] == \
         ["style block background"]
+    assert recs_by_url[site.url("/img/tile.png")]["acquisition"]["referenced_as"] == \
+        [f"stylesheet {site.url('/css/shop.css')} background"]
     # The custody log: the capture, then each intake.
     entries = [json.loads(x) for x in (site.home / "custody.jsonl").read_bytes().splitlines()]
     cap = [e for e in entries if e["action"] == "web pages captured"][-1]
@@ -216,7 +220,7 @@ def test_chunked_page_is_kept_as_sent_and_read_back_whole(site, shop_owner, tmp_
     assert page[2].get_header("Transfer-Encoding") == "chunked"
     from capture_site import LISTING
     assert page[1] == LISTING.encode()            # warcio de-chunks what we kept raw
-    assert len(out["exhibits"]) == 5
+    assert len(out["exhibits"]) == 6
 
 
 def _closed_port() -> int:
@@ -293,3 +297,14 @@ def test_srcset_parsing_follows_the_html_standard():
     assert parse_srcset(" img,1.jpg 100w , c.jpg") == ["img,1.jpg", "c.jpg"]
     assert parse_srcset("x.png 300w (foo, bar), y.png") == ["x.png", "y.png"]
     assert parse_srcset("") == []
+
+
+def test_request_targets_are_ascii_as_a_browser_sends_them():
+    """Spaces and non-ASCII percent-encoded as UTF-8 (RFC 3986 section 2.1), existing escapes
+    kept, tabs and line breaks dropped (WHATWG URL)."""
+    from claimkit.capture.fetch import check_url
+
+    assert check_url("http://127.0.0.1:8080/kitchen/mug copy ü.jpg?size=large 2")[3] == \
+        "/kitchen/mug%20copy%20%C3%BC.jpg?size=large%202"
+    assert check_url("https://127.0.0.1/a%20b/c\n.png")[3] == "/a%20b/c.png"
+    assert check_url("https://127.0.0.1")[1:] == ("127.0.0.1", 443, "/")

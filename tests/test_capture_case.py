@@ -59,7 +59,7 @@ def test_examine_claims_the_marked_copies_by_url(site, reported):
         if row["detected"]:
             claimed.add(path)
             assert row["work_id"] in site.work_ids.values()
-    assert claimed == site.marked                     # the cat and the banner are not claimed
+    assert claimed == site.marked            # the cat and the backgrounds are not claimed
 
 
 def test_dossier_lists_the_collection_facts(site, reported):
@@ -79,7 +79,7 @@ def test_dossier_lists_the_collection_facts(site, reported):
     assert "ETag" in flat and "Last-Modified" in flat
     data = json.loads((case / "report" / "dossier.json").read_bytes())
     rows = data["collection"]["exhibits"]
-    assert len(rows) == 5 and all(r["http_status"] == 200 for r in rows)
+    assert len(rows) == 6 and all(r["http_status"] == 200 for r in rows)
     assert {r["url"] for r in rows} >= {site.url(p, tls=True) for p in site.marked}
 
 
@@ -88,7 +88,7 @@ def test_verify_checks_each_exhibit_against_its_warc_record_and_the_token(report
     checks = [json.loads(x) for x in capsys.readouterr().out.splitlines()[:-1]]
     names = {c["check"]: c for c in checks}
     payload = [c for n, c in names.items() if n.endswith("WARC payload")]
-    assert len(payload) == 5 and all(c["ok"] for c in payload)
+    assert len(payload) == 6 and all(c["ok"] for c in payload)
     stamp = [c for n, c in names.items() if n.endswith("timestamp") and n.startswith("capture")]
     assert len(stamp) == 1 and stamp[0]["ok"] and "not pinned" in stamp[0]["detail"]
 

@@ -81,6 +81,7 @@ def tls_summary(tls) -> dict | None:
 
     out = {"protocol": tls.protocol, "cipher": tls.cipher, "server_name": tls.server_name,
            "chain_verified": tls.verified, "verify_error": tls.verify_error,
+           "trust_store": tls.trust_store,
            "chain_sha256": [hashlib.sha256(d).hexdigest() for d in tls.chain_der]}
     if tls.chain_der:
         try:
@@ -205,9 +206,11 @@ class _Session:
         if not _is_html(final):
             raise InputError(f"not an HTML page or an image (Content-Type "
                              f"{final.media_type or 'missing'})", path=url)
-        refs, skipped = find_images(_decode_html(final), final.url)
+        sheets: list[str] = []
+        refs, skipped = find_images(_decode_html(final), final.url, sheets)
         for n in skipped:
             self.note(f"{url}: {n}")
+        refs += self._stylesheet_images(url, sheets, {r.url for r in refs})
         fields = [("page", final.url)]
         fields += [("image-reference", f"{r.url} ({'; '.join(r.how)})") for r in refs]
         self.warc.page_notes(final.url, final.started, fields, concurrent=rid)
@@ -218,6 +221,26 @@ class _Session:
             self._take_image(ref.url, url, final.url, ref.how, self.get(ref.url))
         if snapshot:
             self._snapshot(page, final.url, rid)
+
+    def _stylesheet_images(self, page: str, sheets: list[str], known: set[str]) -> list:
+        """Background images named in the page's linked stylesheets (fetched and kept too)."""
+        from claimkit.capture.pagescan import MAX_STYLESHEETS, css_images
+
+        if len(sheets) > MAX_STYLESHEETS:
+            self.note(f"{page}: {len(sheets)} stylesheets; the first {MAX_STYLESHEETS} are "
+                      "read for background images")
+        out = []
+        for sheet in sheets[:MAX_STYLESHEETS]:
+            final = self.get(sheet)[-1]
+            if not 200 <= final.status < 300:
+                self.note(f"{sheet}: stylesheet answered HTTP {final.status}; kept in the WARC")
+                continue
+            css = final.body.decode("utf-8", "replace")
+            for ref in css_images(css, final.url):
+                if ref.url not in known:
+                    known.add(ref.url)
+                    out.append(ref)
+        return out
 
     def _take_image(self, url: str, page: str, page_final: str, how: list[str],
                     chain: list[_fetch.Exchange]) -> None:

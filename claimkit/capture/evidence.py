@@ -51,7 +51,7 @@ def collection_data(root: str | Path, exhibits: list[dict]) -> dict:
             "content_type": a.get("content_type"), "ip": a.get("ip"),
             "tls": None if tls is None else {k: tls.get(k) for k in (
                 "protocol", "subject", "issuer", "not_before", "not_after",
-                "chain_verified", "verify_error")},
+                "chain_verified", "verify_error", "trust_store")},
             "warc": a.get("warc"), "warc_sha256": a.get("warc_sha256"),
             "warc_record_id": a.get("warc_record_id"),
             "capture_id": a.get("capture_id"), "timestamp": a.get("timestamp"),

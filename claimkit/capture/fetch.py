@@ -25,12 +25,14 @@ import gzip
 import hashlib
 import http.client
 import io
+import re
 import socket
 import ssl
 import time
 import zlib
 from dataclasses import dataclass, field
-from urllib.parse import urljoin, urlsplit
+from pathlib import Path
+from urllib.parse import quote, urljoin, urlsplit
 
 from claimkit import __version__
 from claimkit.errors import InputError
@@ -75,6 +77,7 @@ class TlsFacts:
     verified: bool
     verify_error: str | None
     server_name: str
+    trust_store: str
 
 
 @dataclass
@@ -173,8 +176,13 @@ def check_url(url: str) -> tuple[str, str, int, str]:
     target = parts.path or "/"
     if parts.query:
         target += "?" + parts.query
-    if any(c in target for c in " \r\n\t"):
-        raise InputError("the URL holds spaces or line breaks; percent-encode them", path=url)
+    # As a browser does (WHATWG URL): tabs and line breaks dropped, spaces and non-ASCII
+    # percent-encoded (UTF-8), escapes already present kept; the request line stays ASCII.
+    target = quote(re.sub(r"[\t\r\n]", "", target), safe="/%?=&;:@!$'()*+,~-._[]")
+    try:
+        host.encode("idna")
+    except UnicodeError:
+        raise InputError(f"host name {host!r} is not valid", path=url) from None
     return scheme, host, port, target
 
 
@@ -240,9 +248,12 @@ def _tls(sock_factory, host: str, opts: FetchOptions, url: str):
             raise InputError(f"TLS handshake with {host} timed out", path=url) from None
         raise InputError(f"TLS handshake with {host} failed ({exc})", path=url) from None
     cipher = ssock.cipher()
+    store = (f"the CA file {Path(opts.ca_file).name} (SHA-256 "
+             f"{hashlib.sha256(Path(opts.ca_file).read_bytes()).hexdigest()[:16]}...)"
+             if opts.ca_file else f"the system's trust store ({ssl.OPENSSL_VERSION})")
     facts = TlsFacts(protocol=ssock.version() or "unknown", cipher=cipher[0] if cipher else "",
                      chain_der=_chain(ssock), verified=verified, verify_error=why,
-                     server_name=host)
+                     server_name=host, trust_store=store)
     return ssock, ip, facts
 
 
@@ -278,7 +289,8 @@ def fetch(url: str, opts: FetchOptions | None = None) -> Exchange:
 
     opts = opts or FetchOptions()
     scheme, host, port, target = check_url(url)
-    hostport = host if port == (443 if scheme == "https" else 80) else f"{host}:{port}"
+    host_ascii = host.encode("idna").decode("ascii") if not host.isascii() else host
+    hostport = host_ascii if port == (443 if scheme == "https" else 80) else f"{host_ascii}:{port}"
     if ":" in host and not hostport.startswith("["):
         hostport = f"[{host}]" if port in (80, 443) else f"[{host}]:{port}"
     request = (f"GET {target} HTTP/1.1\r\nHost: {hostport}\r\n"

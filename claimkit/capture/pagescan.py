@@ -21,7 +21,10 @@ from dataclasses import dataclass, field
 from html.parser import HTMLParser
 from urllib.parse import urljoin, urlsplit
 
-__all__ = ["ImageRef", "find_images", "parse_srcset"]
+__all__ = ["MAX_STYLESHEETS", "ImageRef", "css_images", "find_images", "parse_srcset"]
+
+#: Linked stylesheets read for background images, per page (a bound on what one page costs).
+MAX_STYLESHEETS = 10
 
 _META_IMAGES = {"og:image", "og:image:url", "og:image:secure_url", "twitter:image",
                 "twitter:image:src"}
@@ -87,6 +90,7 @@ class _Collector(HTMLParser):
         self.found: list[tuple[str, str]] = []
         self.picture = 0
         self.in_style = False
+        self.sheets: list[str] = []
 
     def _add(self, raw: str | None, how: str) -> None:
         if raw and raw.strip():
@@ -116,6 +120,9 @@ class _Collector(HTMLParser):
                 self._add(a.get("content"), f"meta {key}")
         elif tag == "link" and "image_src" in a.get("rel", "").lower().split():
             self._add(a.get("href"), "link image_src")
+        elif tag == "link" and "stylesheet" in a.get("rel", "").lower().split() \
+                and a.get("href", "").strip():
+            self.sheets.append(urljoin(self.base, a["href"].strip()).split("#", 1)[0])
         elif tag == "input" and a.get("type", "").lower() == "image":
             self._add(a.get("src"), "input image")
         elif tag == "style":
@@ -139,8 +146,24 @@ class _Collector(HTMLParser):
                 self._add(u, "style block background")
 
 
-def find_images(html: str, page_url: str) -> tuple[list[ImageRef], list[str]]:
+def css_images(css: str, sheet_url: str) -> list[ImageRef]:
+    """Background images of a stylesheet, resolved against the stylesheet's own URL."""
+    refs: dict[str, ImageRef] = {}
+    for raw in _css_urls(css):
+        if raw.lower().startswith(("data:", "blob:")):
+            continue
+        url = urljoin(sheet_url, raw).split("#", 1)[0]
+        if urlsplit(url).scheme.lower() in ("http", "https"):
+            refs.setdefault(url, ImageRef(url, [f"stylesheet {sheet_url} background"]))
+    return list(refs.values())
+
+
+def find_images(html: str, page_url: str,
+                sheets: list[str] | None = None) -> tuple[list[ImageRef], list[str]]:
     """Image references of a page, in document order, each URL once.
+
+    ``sheets`` (optional) receives the URLs of the linked stylesheets, whose
+    background images :func:`css_images` reads.
 
     Returns
     -------
@@ -151,6 +174,9 @@ def find_images(html: str, page_url: str) -> tuple[list[ImageRef], list[str]]:
     c = _Collector(page_url)
     c.feed(html)
     c.close()
+    if sheets is not None:
+        sheets.extend(u for u in dict.fromkeys(c.sheets)
+                      if urlsplit(u).scheme.lower() in ("http", "https"))
     refs: dict[str, ImageRef] = {}
     notes: list[str] = []
     for raw, how in c.found:

@@ -169,8 +169,9 @@ class WarcWriter:
             t = ex.tls
             fields += [("tls-protocol", t.protocol), ("tls-cipher", t.cipher),
                        ("tls-server-name", t.server_name),
-                       ("tls-chain-verified", "yes" if t.verified else
-                        f"no ({t.verify_error})")]
+                       ("tls-chain-verified",
+                        (f"{'yes' if t.verified else f'no ({t.verify_error})'}, "
+                        f"against {t.trust_store}"))]
             fields += [("tls-certificate", base64.b64encode(der).decode("ascii"))
                        for der in t.chain_der]
         fields += [("note", n) for n in notes or []]
