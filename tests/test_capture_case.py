@@ -127,7 +127,7 @@ def test_a_swapped_warc_payload_is_caught(reported, tmp_path, capsys):
 def test_an_exhibit_that_is_not_its_warc_payload_is_caught(reported, tmp_path, capsys):
     """The intake record pointed at another record of the same WARC."""
     def change(folder: Path):
-        recs = sorted((folder / "exhibits").glob("E*.json"))
+        recs = sorted((folder / "exhibits").glob("*.json"))
         a, b = (json.loads(p.read_bytes()) for p in recs[:2])
         a["acquisition"]["warc_record_id"] = b["acquisition"]["warc_record_id"]
         recs[0].chmod(0o644)

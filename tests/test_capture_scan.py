@@ -90,7 +90,7 @@ def test_scan_case_takes_warc_images_in_with_their_record(site, shop_owner, wget
     code, _, err = _run(capsys, "scan", wget_warc, "--case", case, "--json", "--workers", "1")
     assert code == 0, err
     expected = _marked_in(wget_warc, site)
-    recs = [json.loads(p.read_bytes()) for p in sorted((case / "exhibits").glob("E*.json"))]
+    recs = [json.loads(p.read_bytes()) for p in sorted((case / "exhibits").glob("*.json"))]
     assert {r["acquisition"]["url"] for r in recs} == set(expected)
     copies = list((case / "captures").glob("warc-*"))
     assert len(copies) == 1 and copies[0].read_bytes() == wget_warc.read_bytes()

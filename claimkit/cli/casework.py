@@ -51,7 +51,6 @@ def cmd_case_add(args) -> int:
     return 0
 
 
-<<<<<<< HEAD
 def cmd_case_capture(args) -> int:
     from claimkit.capture.collect import capture_pages
     from claimkit.capture.fetch import FetchOptions
@@ -76,7 +75,9 @@ def cmd_case_capture(args) -> int:
     for i in res.exhibit_ids:
         ex = case.exhibit(i)
         print(f"{i}: {ex.record['acquisition']['url']} taken in, SHA-256 {ex.sha256}")
-=======
+    return 0
+
+
 def cmd_case_withdraw(args) -> int:
     from claimkit.case.store import open_case, withdraw_exhibit
 
@@ -90,7 +91,6 @@ def cmd_case_withdraw(args) -> int:
     else:
         print(f"{rec['exhibit_id']} withdrawn from the claims ({rec['reason']}); it stays in "
               "the case and the custody log; run claimkit report again")
->>>>>>> main
     return 0
 
 
@@ -224,7 +224,6 @@ def register(sub, common) -> None:
     p.add_argument("--json", action="store_true")
     p.set_defaults(func=cmd_case_add)
 
-<<<<<<< HEAD
     p = csub.add_parser(
         "capture", parents=[common], help="capture web pages and their images as a WARC file",
         description="Fetch each page and every image it shows, keep every exchange in a "
@@ -245,7 +244,7 @@ def register(sub, common) -> None:
     p.add_argument("--no-snapshot", action="store_true", help="no Chromium page snapshot")
     p.add_argument("--json", action="store_true")
     p.set_defaults(func=cmd_case_capture)
-=======
+
     p = csub.add_parser("withdraw", parents=[common],
                         help="take an exhibit out of the claims (kept in the record)",
                         description="Withdraw an exhibit: it stays in the case, the withdrawal "
@@ -257,7 +256,6 @@ def register(sub, common) -> None:
     p.add_argument("--by", metavar="NAME", help="who withdraws it (default: the profile owner)")
     p.add_argument("--json", action="store_true", help="one JSON object")
     p.set_defaults(func=cmd_case_withdraw)
->>>>>>> main
 
     p = csub.add_parser("examine", parents=[common], help="examine every exhibit")
     p.add_argument("dir", metavar="DIR")
