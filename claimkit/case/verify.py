@@ -48,24 +48,40 @@ MAX_BUNDLE_BYTES = 4 << 30      # unpacked size limit (a guard against zip bombs
 MAX_FILES = 100_000
 
 
+#: Outcomes of a check. ``unpinned``: it held, but rests on an anchor the bundle brought
+#: (the user pinned none); ``skipped``: left out on request; ``not done``: could not be
+#: done (no key disclosure), which fails the verification.
+PASSED, FAILED, UNPINNED, SKIPPED, NOT_DONE = "ok", "failed", "unpinned", "skipped", "not done"
+
+
 @dataclass
 class VerifyReport:
-    """Every check and its outcome."""
+    """Every check and its outcome; ``out_of_band`` lists what the user must compare
+    through another channel before trusting an ``unpinned`` check."""
 
     bundle: str
     checks: list[dict] = field(default_factory=list)
+    out_of_band: list[str] = field(default_factory=list)
 
-    def add(self, name: str, ok: bool, detail: str = "") -> bool:
-        self.checks.append({"check": name, "ok": bool(ok), "detail": detail})
+    def add(self, name: str, ok: bool, detail: str = "", *, status: str | None = None) -> bool:
+        status = status or (PASSED if ok else FAILED)
+        # "ok" is true or false only for a check that was decided on the user's terms;
+        # an unpinned, skipped or undone check is never reported as ok.
+        self.checks.append({"check": name, "ok": bool(ok) if status in (PASSED, FAILED)
+                            else None, "status": status, "detail": detail})
         return ok
 
     @property
     def ok(self) -> bool:
-        return bool(self.checks) and all(c["ok"] for c in self.checks)
+        return bool(self.checks) and not self.failures
 
     @property
     def failures(self) -> list[dict]:
-        return [c for c in self.checks if not c["ok"]]
+        return [c for c in self.checks if c["status"] in (FAILED, NOT_DONE)]
+
+    @property
+    def unpinned(self) -> list[dict]:
+        return [c for c in self.checks if c["status"] == UNPINNED]
 
 
 # ---------------------------------------------------------------- unpacking
@@ -296,51 +312,110 @@ def _check_manifest(root: Path, files: list[str], rep: VerifyReport):
             bad.append(f"{rel}: listed but missing")
         elif sha256_file(p) != f["sha256"]:
             bad.append(f"{rel}: SHA-256 differs from the manifest (file altered)")
-    extra = sorted(set(files) - set(listed) - {MANIFEST, MANIFEST_SIG})
+    # A case folder still holds the masters its bundle withholds: named in the manifest by
+    # hash, they are left alone when the bytes are the ones named.
+    withheld = {w.get("path"): w.get("sha256") for w in manifest.get("withheld", [])
+                if isinstance(w, dict)}
+    extra = sorted(rel for rel in set(files) - set(listed) - {MANIFEST, MANIFEST_SIG}
+                   if not (rel in withheld and sha256_file(root / rel) == withheld[rel]))
     bad += [f"{rel}: in the bundle but not in the manifest" for rel in extra]
     rep.add("file hashes", not bad,
             "; ".join(bad) if bad else f"{len(listed)} files, every SHA-256 matches")
     return manifest, pub
 
 
-def _check_disclosures(root: Path, fp: str, rep: VerifyReport) -> dict:
-    """Check each disclosure; returns work_id -> (seed, payload bits, check)."""
-    from claimkit.dossier.data import DISCLOSURES
-    from claimkit.evidence.disclose import check_disclosure
+def _keys_of(chk) -> tuple:
     from claimkit.mark import payload
 
-    out = {}
+    bits = payload.pack(chk.owner_tag, chk.serial, chk.payload_tag)
+    return (chk.detection_seed, bits, chk)
+
+
+def _check_disclosures(root: Path, fp: str, rep: VerifyReport, *, tsa_roots=None,
+                       disclosure: Path | None = None) -> dict:
+    """Check each work's evidence in the bundle, and the key disclosures wherever they came
+    from; returns work_id -> (seed, payload bits, check) for the works whose keys verified."""
+    from claimkit.dossier.data import DISCLOSURES
+    from claimkit.evidence.disclose import check_disclosure
+
+    out: dict = {}
+    records: dict[str, bytes] = {}
+    tsas: set[str] = set()
     folder = root / DISCLOSURES
-    if not folder.is_dir():
-        rep.add("key disclosures", False, "no key disclosure in the bundle; nothing can be re-run")
-        return out
-    for d in sorted(folder.iterdir()):
+    for d in sorted(folder.iterdir()) if folder.is_dir() else []:
         try:
-            chk = check_disclosure(d)
+            chk = check_disclosure(d, tsa_roots=tsa_roots)
+        except InputError as exc:
+            rep.add(f"work {d.name}", False, exc.message)
+            continue
+        probs = list(chk.problems)
+        if chk.public_key_sha256 != fp:
+            probs.append("its public key is not the bundle's (key replaced)")
+        rep.add(f"work {d.name}", not probs, "; ".join(probs) if probs else
+                f"record signature{', key commitment' if chk.keys_included else ''} and "
+                f"{len(chk.timestamps)} timestamp token(s) verified"
+                + ("" if tsa_roots is not None else " (against the TSA certificate in the "
+                   "bundle)"))
+        tsas.update(t.get("tsa") or "?" for t in chk.timestamps)
+        records[chk.work_id or d.name] = (d / "work-record.json").read_bytes()
+        if not probs and chk.keys_included:
+            out[chk.work_id] = _keys_of(chk)
+    if tsas and tsa_roots is None:
+        rep.add("timestamp authority", True, "the tokens verify against the TSA certificate "
+                f"the bundle brings ({', '.join(sorted(tsas))}); no --tsa-roots pinned",
+                status=UNPINNED)
+        rep.out_of_band.append("the timestamp authority: give its root certificate, obtained "
+                               "from the authority itself, with --tsa-roots FILE")
+    elif tsas:
+        rep.add("timestamp authority", True, "every token chains to a pinned root "
+                f"({', '.join(sorted(tsas))})")
+    if disclosure is not None:
+        _check_delivered(Path(disclosure), fp, records, tsa_roots, out, rep)
+    return out
+
+
+def _check_delivered(path: Path, fp: str, records: dict, tsa_roots, out: dict,
+                     rep: VerifyReport) -> None:
+    """A disclosure delivered apart from the bundle: one folder, or a folder of them."""
+    from claimkit.evidence.disclose import check_disclosure
+
+    if not path.is_dir():
+        raise InputError("not a disclosure folder", path=path)
+    folders = [path] if (path / "disclosure.json").is_file() else \
+        sorted(d for d in path.iterdir() if d.is_dir() and (d / "disclosure.json").is_file())
+    if not folders:
+        raise InputError("holds no disclosure.json", path=path)
+    for d in folders:
+        try:
+            chk = check_disclosure(d, tsa_roots=tsa_roots)
         except InputError as exc:
             rep.add(f"disclosure {d.name}", False, exc.message)
             continue
         probs = list(chk.problems)
         if chk.public_key_sha256 != fp:
-            probs.append("its public key is not the bundle's (key replaced)")
-        rep.add(f"disclosure {d.name}", not probs,
-                "; ".join(probs) if probs else
-                f"record and disclosure signatures, key commitment and "
-                f"{len(chk.timestamps)} timestamp token(s) verified")
+            probs.append("signed by another key than the bundle's")
+        if not chk.keys_included:
+            probs.append("holds no key material")
+        if chk.work_id not in records:
+            probs.append(f"its work {chk.work_id} is not in the bundle")
+        elif (d / "work-record.json").read_bytes() != records[chk.work_id]:
+            probs.append("its work record differs from the bundle's")
+        rep.add(f"disclosure {d.name}", not probs, "; ".join(probs) if probs else
+                f"delivered separately; key material for {chk.work_id} ({chk.mark_format}) "
+                "matches the record's key commitment")
         if not probs:
-            bits = payload.pack(chk.owner_tag, chk.serial, chk.payload_tag)
-            out[chk.work_id] = (chk.detection_seed, bits, chk)
-    return out
+            out[chk.work_id] = _keys_of(chk)
 
 
 def _check_custody(root: Path, pub, exhibits: list[dict], findings: dict, rep: VerifyReport):
     from claimkit.dossier.data import CUSTODY_COPY
-    from claimkit.evidence.custodylog import verify_log
+    from claimkit.evidence.excerpt import verify_excerpt
     from claimkit.evidence.storage import sha256_file
 
-    log = verify_log(root / CUSTODY_COPY, pub)
+    log = verify_excerpt(root / CUSTODY_COPY, pub)
     rep.add("custody log", log.ok, "; ".join(str(p) for p in log.problems) if log.problems
-            else f"{log.lines} entries, signatures and hash chain intact")
+            else f"excerpt of {log.lines} entries: {len(log.entries)} of this case and its "
+                 "works in full and signed, the others by hash; the chain recomputes")
     intake = {}
     examined = {}
     case_id = None
@@ -424,8 +499,13 @@ def _rerun(root: Path, ex: dict, finding: dict, keys: dict, rep: VerifyReport) -
                 diffs.append(f"arrays.{name}: differs from the re-run")
         stored_arrays = {k: arr[k] for k in arr.files}
     al = finding.get("alignment")
-    if al and al.get("aligned"):
-        ref = root / finding["reference"]["file"]
+    ref = root / (finding.get("reference") or {}).get("file", "")
+    if al and al.get("aligned") and not ref.is_file() and \
+            finding["reference"].get("kind") != "marked":
+        rep.add(f"{i} alignment", True, "not re-run: the file it aligns to is the unmarked "
+                "master, withheld from the bundle (report --include-original adds it)",
+                status=SKIPPED)
+    elif al and al.get("aligned"):
         rpic = read_picture(ref)
         again = align(to_luma(rpic.pixels), to_luma(pic.pixels), f.geometry or None)
         diffs += _close(al, again.numbers, "alignment")
@@ -555,8 +635,25 @@ def _check_dossier(root: Path, pub, rep: VerifyReport, *, full: bool = True) -> 
                          "(edited, or rendered with another version of reportlab)")
 
 
+def _check_signer(fp: str, expect_keys: tuple[str, ...], rep: VerifyReport) -> None:
+    """Policy: the signer is trusted only as far as the user pinned its key."""
+    if not expect_keys:
+        rep.add("signer key", True, f"the bundle is signed by the key with SHA-256 {fp}; "
+                "no --expect-key pinned, so only the bundle vouches for it", status=UNPINNED)
+        rep.out_of_band.append(f"the owner's key fingerprint SHA-256 {fp}: compare it with the "
+                               "one the owner gives you through another channel (phone, "
+                               "letter, their own web site), then pass it with --expect-key")
+        return
+    want = {k.strip().lower().removeprefix("sha256:") for k in expect_keys}
+    rep.add("signer key", fp in want, f"SHA-256 {fp}, as pinned" if fp in want else
+            f"the bundle is signed by the key with SHA-256 {fp}, not by the expected "
+            f"{', '.join(sorted(want))}")
+
+
 def verify_bundle(path: str | os.PathLike, *, rerun: bool = True,
-                  robustness: bool = True) -> VerifyReport:
+                  robustness: bool = True, expect_keys: tuple[str, ...] = (),
+                  tsa_roots: list | None = None,
+                  disclosure: str | os.PathLike | None = None) -> VerifyReport:
     """Verify a bundle zip or an unpacked bundle/case folder; never raises for a failed check.
 
     Parameters
@@ -566,11 +663,21 @@ def verify_bundle(path: str | os.PathLike, *, rerun: bool = True,
     rerun : bool
         Re-run each examination and redraw the dossier (the slow part). Without
         it only hashes, signatures, tokens and the custody chain are checked,
-        and the report says so with a failed "re-run" check, so that a quick
-        check can never pass for a full one.
+        and the report says so with a "skipped" re-run check.
     robustness : bool
         Also re-run the robustness battery (with ``rerun``); skipping it is
-        reported as a failed check too.
+        reported as a failed check.
+    expect_keys : tuple of str
+        The owner key fingerprints (SHA-256 of the raw Ed25519 key, hex) the user
+        pins. Without any, the signer is reported ``unpinned``.
+    tsa_roots : list of Certificate, optional
+        The timestamp authorities the user trusts; without them the timestamp
+        authority is reported ``unpinned``.
+    disclosure : path, optional
+        A key disclosure delivered apart from the bundle (a disclosure folder or
+        a folder of them). Without key material from here or from the bundle
+        the re-run cannot be done, and that fails the verification unless
+        ``rerun`` is off.
     """
     from claimkit.dossier.data import case_files
     from claimkit.evidence import signing
@@ -601,6 +708,7 @@ def verify_bundle(path: str | os.PathLike, *, rerun: bool = True,
         if pub is None:
             return rep
         fp = signing.fingerprint(signing.raw_public(pub))
+        _check_signer(fp, expect_keys, rep)
         try:
             case, exhibits, findings = case_files(root)
         except (InputError, KeyError, ValueError) as exc:
@@ -615,7 +723,15 @@ def verify_bundle(path: str | os.PathLike, *, rerun: bool = True,
         rep.add("case key", owner_fp == fp, "case.json names the bundle's key" if owner_fp == fp
                 else "case.json names another key than the bundle's (key replaced)")
         listed = {f["path"] for f in (manifest or {}).get("files", [])}
-        keys = _check_disclosures(root, fp, rep)
+        keys = _check_disclosures(root, fp, rep, tsa_roots=tsa_roots, disclosure=disclosure)
+        if rerun and not keys:
+            rep.add("re-run", False, "not done: no key disclosure (the bundle holds no key "
+                    "material; give the one the owner delivered with --disclosure DIR, or "
+                    "ask for --no-rerun to check integrity only)", status=NOT_DONE)
+            rerun = robustness = False
+            keyless = True
+        else:
+            keyless = False
         _check_custody(root, pub, exhibits, findings, rep)
         from claimkit.evidence.storage import sha256_file
         for ex in exhibits:
@@ -651,10 +767,11 @@ def verify_bundle(path: str | os.PathLike, *, rerun: bool = True,
                 rep.add("robustness", False, f"cannot be re-run ({exc})")
         elif rerun:
             rep.add("robustness re-run", False, "skipped on request")
-        _check_dossier(root, pub, rep, full=rerun)
-        if not rerun:
-            rep.add("re-run", False, "skipped on request: the examinations, figures and PDF "
-                                     "were not re-derived")
+        # Figures, HTML and PDF need no key: they are redrawn whenever a re-run was asked for.
+        _check_dossier(root, pub, rep, full=rerun or keyless)
+        if not rerun and not keyless:
+            rep.add("re-run", True, "skipped on request (--no-rerun): the examinations, "
+                    "figures and PDF were not re-derived", status=SKIPPED)
         return rep
     finally:
         if tmp is not None:

@@ -18,8 +18,8 @@ from claimkit import __version__
 from claimkit.errors import InputError
 from claimkit.evidence import signing
 from claimkit.evidence.canonical import canonical_json, canonicalize
-from claimkit.evidence.custodylog import verify_log
 from claimkit.evidence.disclose import check_disclosure
+from claimkit.evidence.excerpt import verify_excerpt
 from claimkit.mark import detect, pattern, stats
 
 __all__ = [
@@ -28,6 +28,7 @@ __all__ = [
     "HANDOVER",
     "PUBLIC_KEY",
     "REFERENCES_CITED",
+    "SOFTWARE",
     "build_data",
     "case_files",
 ]
@@ -35,7 +36,8 @@ __all__ = [
 DOSSIER_TYPE = "claimkit/dossier/v1"
 _EXHIBIT_ID = re.compile(r"E\d{2,6}")
 HANDOVER = "handover"
-CUSTODY_COPY = f"{HANDOVER}/custody.jsonl"
+CUSTODY_COPY = f"{HANDOVER}/custody-excerpt.json"
+SOFTWARE = f"{HANDOVER}/software.json"
 PUBLIC_KEY = f"{HANDOVER}/public-key.pem"
 DISCLOSURES = f"{HANDOVER}/disclosures"
 
@@ -116,6 +118,7 @@ def _works(root: Path) -> list[dict]:
             "work_id": chk.work_id or d.name,
             "folder": d.relative_to(root).as_posix(),
             "checks_passed": chk.ok,
+            "key_material": {"disclosed": chk.keys_included, "scope": chk.scope},
             "problems": list(chk.problems),
             "serial": chk.serial,
             "original": record.get("original", {}),
@@ -133,13 +136,13 @@ def _works(root: Path) -> list[dict]:
 
 
 def _custody(root: Path, case_id: str, work_ids: set[str]) -> dict:
-    """The custody-log copy: its check, and the entries that concern this case and its works."""
+    """The custody excerpt: its check, and the entries that concern this case and its works."""
     log = root / CUSTODY_COPY
     try:
         pub = signing.load_public_pem((root / PUBLIC_KEY).read_bytes())
     except (OSError, ValueError):
         return {"checked": False, "problems": ["public key missing or unreadable"], "entries": []}
-    rep = verify_log(log, pub)
+    rep = verify_excerpt(log, pub)
     rows = []
     for e in rep.entries:
         d = e.get("details", {})
@@ -153,6 +156,14 @@ def _custody(root: Path, case_id: str, work_ids: set[str]) -> dict:
     return {"checked": True, "lines": rep.lines, "ok": rep.ok,
             "problems": [str(p) for p in rep.problems], "entries": rows,
             "head_seq": rep.head_seq, "head_sha256": rep.head_hash}
+
+
+def _software(root: Path) -> dict | None:
+    """The versions ``report`` recorded (``handover/software.json``), or None in an old bundle."""
+    try:
+        return json.loads((root / SOFTWARE).read_bytes())
+    except (OSError, ValueError):
+        return None
 
 
 def _constants(module) -> dict:
@@ -255,6 +266,7 @@ def build_data(root: str | Path) -> dict:
                    "mark": works[0]["mark_params"] if works else {},
                    "references": REFERENCES_CITED},
         "custody": _custody(root, case["case_id"], work_ids),
+        "software_made_with": _software(root),
         "figures": {r["exhibit_id"]: _figure_names(r) for r in results},
     }
     canonical_json(data)   # refuse anything that could not be stored
