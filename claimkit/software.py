@@ -7,7 +7,7 @@ exhibits), scikit-image (resampling, SSIM), reportlab (the PDF) and the
 operating system. ``claimkit report`` records them in the bundle
 (``handover/software.json``); ``verify`` records its own, shows both, and
 where they differ compares figures and the PDF by their data within the
-tolerances documented in :mod:`claimkit.case.verify` rather than byte for byte.
+tolerances documented in :mod:`claimkit.verify.dossier` rather than byte for byte.
 """
 
 from __future__ import annotations

@@ -135,7 +135,7 @@ def test_custody_excerpt_holds_this_case_and_hashes_the_rest(two_cases, built_ca
 
 
 def test_default_bundle_verifies_without_rerun(two_cases):
-    from claimkit.case.verify import verify_bundle
+    from claimkit.verify import verify_bundle
 
     rep = verify_bundle(two_cases["bundle"], rerun=False)
     assert rep.ok, [c for c in rep.failures]

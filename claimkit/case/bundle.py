@@ -16,6 +16,7 @@ import tempfile
 import zipfile
 from pathlib import Path
 
+from claimkit.case.layout import MANIFEST, MANIFEST_SIG, bundle_files
 from claimkit.case.store import Case
 from claimkit.errors import CheckFailed, InputError
 from claimkit.evidence.storage import fsync_dir, sha256_file
@@ -33,8 +34,6 @@ def export_bundle(case: Case, out: str | os.PathLike, profile=None, *, force: bo
     report was built with it. ``disclose=True`` asks for it, and refuses a
     bundle built without (so that the choice is never made silently here).
     """
-    from claimkit.dossier.build import MANIFEST, MANIFEST_SIG, bundle_files
-
     out = Path(out)
     root = case.root
     if out.exists() and not force:

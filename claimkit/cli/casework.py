@@ -135,9 +135,9 @@ def cmd_report(args) -> int:
 
 
 def cmd_verify(args) -> int:
-    from claimkit.case.verify import verify_bundle
     from claimkit.errors import InputError
     from claimkit.evidence.timestamp import load_certificates
+    from claimkit.verify import verify_bundle
 
     roots = None
     if args.tsa_roots:
@@ -148,7 +148,7 @@ def cmd_verify(args) -> int:
         roots = load_certificates(data, path=args.tsa_roots)
     rep = verify_bundle(args.bundle, rerun=not args.no_rerun, expect_keys=tuple(args.expect_key),
                         tsa_roots=roots, disclosure=args.disclosure)
-    verdict = "failed" if not rep.ok else "passed, unpinned" if rep.unpinned else "passed"
+    verdict = rep.verdict
     if args.json:
         for c in rep.checks:
             print_json(c)

@@ -22,11 +22,15 @@ import shutil
 from pathlib import Path
 
 import numpy as np
+from skimage.transform import rescale
 
 from claimkit import __version__
+from claimkit.case import layout
+from claimkit.case.layout import DATA, HANDOVER, HTML, MANIFEST, MANIFEST_SIG, PDF, PUBLIC_KEY
 from claimkit.case.store import Case, checked_exhibit_path
 from claimkit.dossier import figures
-from claimkit.dossier.data import CUSTODY_COPY, HANDOVER, PUBLIC_KEY, SOFTWARE, build_data
+from claimkit.dossier.data import build_data
+from claimkit.dossier.pdfsign import sign_pdf
 from claimkit.dossier.render import render_html, render_pdf
 from claimkit.errors import CheckFailed, InputError
 from claimkit.evidence.canonical import canonical_json
@@ -35,24 +39,12 @@ from claimkit.evidence.storage import atomic_write, sha256_file, sha256_hex
 from claimkit.imageio import read_picture, to_luma
 
 __all__ = [
-    "DATA",
-    "HTML",
-    "MANIFEST",
-    "MANIFEST_SIG",
-    "PDF",
     "build_report",
-    "bundle_files",
     "draw_figures",
     "write_manifest",
 ]
 
-MANIFEST = "manifest.json"
-MANIFEST_SIG = "manifest.sig"
 MANIFEST_TYPE = "claimkit/bundle-manifest/v1"
-PDF = "report/dossier.pdf"
-HTML = "report/dossier.html"
-DATA = "report/dossier.json"
-BUNDLE_PARTS = ("case.json", "exhibits", "references", "findings", "report", HANDOVER)
 
 
 def draw_figures(root: Path, data: dict) -> dict[str, bytes]:
@@ -66,7 +58,7 @@ def draw_figures(root: Path, data: dict) -> dict[str, bytes]:
         out[names["thumbnail"]] = figures.png_bytes(figures.thumbnail(pic.pixels))
         if not r["examined"]:
             continue
-        finding = json.loads((root / "findings" / f"{r['exhibit_id']}.json").read_bytes())
+        finding = json.loads((root / layout.finding_file(r["exhibit_id"])).read_bytes())
         with np.load(root / finding["arrays"]["file"]) as arr:
             a = {k: arr[k] for k in arr.files}
         out[names["message"]] = figures.png_bytes(figures.message_figure(a["recovered"],
@@ -76,7 +68,6 @@ def draw_figures(root: Path, data: dict) -> dict[str, bytes]:
                                                                       r["score_pilot"]))
         # A withheld master cannot be drawn from in a bundle; the figure stays as signed.
         if "aligned" in names and (root / r["reference"]["file"]).is_file():
-            from skimage.transform import rescale
             al = r["alignment"]
             ref = to_luma(read_picture(root / r["reference"]["file"]).pixels).astype(np.float64)
             s = al["work_scale"]
@@ -87,60 +78,25 @@ def draw_figures(root: Path, data: dict) -> dict[str, bytes]:
     return out
 
 
-def _references_used(root: Path) -> dict[str, str]:
-    """Reference files the findings align to, by relative path -> kind ("marked", "original")."""
-    out = {}
-    for p in sorted((root / "findings").glob("*.json")):
-        try:
-            ref = json.loads(p.read_bytes()).get("reference") or {}
-        except (OSError, ValueError, AttributeError):
-            continue
-        if isinstance(ref.get("file"), str):
-            out[ref["file"]] = ref.get("kind", "original")
-    return out
-
-
-def bundle_files(root: Path, *, include_original: bool = False) -> list[str]:
-    """Relative paths of every file that goes into the bundle (sorted; no links, no hidden).
-
-    Of ``references/`` only the files a finding aligns to go in, and an unmarked
-    master only with ``include_original``: the published marked file is what the
-    other side may see; the master is the owner's to give or keep.
-    """
-    used = _references_used(root)
-    out = []
-    for part in BUNDLE_PARTS:
-        p = root / part
-        if p.is_file() and not p.is_symlink():
-            out.append(part)
-        elif p.is_dir():
-            for q in sorted(p.rglob("*")):
-                rel = q.relative_to(root)
-                if any(x.startswith(".") for x in rel.parts):
-                    continue
-                if q.is_symlink():
-                    raise InputError("the case holds a symbolic link; bundles never do", path=q)
-                if not q.is_file():
-                    continue
-                if part == "references" and (rel.as_posix() not in used or (
-                        used[rel.as_posix()] != "marked" and not include_original)):
-                    continue
-                out.append(rel.as_posix())
-    return sorted(out)
-
-
 def withheld_references(root: Path, listed: list[str]) -> list[dict]:
-    """The references a finding names that the bundle leaves out (by hash, with why)."""
-    return [{"path": rel, "sha256": sha256_file(root / rel),
-             "why": "the unmarked master; claimkit report --include-original adds it"}
-            for rel, kind in sorted(_references_used(root).items())
-            if rel not in listed and (root / rel).is_file() and kind != "marked"]
+    """Files of the case's ``references/`` that the bundle leaves out, by hash, with why."""
+    used = layout.references_used(root)
+    folder = root / layout.REFERENCES
+    out = []
+    for p in sorted(folder.iterdir()) if folder.is_dir() else []:
+        rel = f"{layout.REFERENCES}/{p.name}"
+        if rel in listed or not p.is_file() or p.is_symlink() or p.name.startswith("."):
+            continue
+        why = ("an unmarked master a finding aligns to; claimkit report --include-original "
+               "adds it" if rel in used else "no finding aligns to it")
+        out.append({"path": rel, "sha256": sha256_file(p), "why": why})
+    return out
 
 
 def write_manifest(root: Path, profile, case_id: str, *, key_material: str = "withheld",
                    include_original: bool = False) -> dict:
     """``manifest.json`` (every bundle file with SHA-256 and size) and its signature."""
-    names = bundle_files(root, include_original=include_original)
+    names = layout.bundle_files(root, include_original=include_original)
     files = [{"path": rel, "sha256": sha256_file(root / rel), "size": (root / rel).stat().st_size}
              for rel in names]
     doc = {"type": MANIFEST_TYPE, "case_id": case_id, "created": {"time": utc_now(),
@@ -202,15 +158,20 @@ def _handover(case: Case, profile, *, disclose: bool) -> None:
     work_ids = matched_works(case)
     tmp = root / f".{HANDOVER}.part"
     shutil.rmtree(tmp, ignore_errors=True)
-    (tmp / "disclosures").mkdir(parents=True)
-    atomic_write(tmp / "public-key.pem", profile.public_key_pem())
+    # Built under a hidden name beside handover/, then swapped in: the layout's paths
+    # below handover/ are taken relative to it.
+    def part(rel: str) -> Path:
+        return tmp / Path(rel).relative_to(HANDOVER)
+
+    part(layout.DISCLOSURES).mkdir(parents=True)
+    atomic_write(part(PUBLIC_KEY), profile.public_key_pem())
     for wid in work_ids:
-        profile.disclose(wid, tmp / "disclosures" / wid, keys=disclose)
-    atomic_write(tmp / SOFTWARE.split("/", 1)[1], canonical_json(versions()) + b"\n")
+        profile.disclose(wid, part(layout.DISCLOSURES) / wid, keys=disclose)
+    atomic_write(part(layout.SOFTWARE), canonical_json(versions()) + b"\n")
     # The excerpt is taken last, so it holds the disclosures just logged.
     excerpt = build_excerpt(profile.log_path.read_bytes(), case_id=case.case_id,
                             work_ids=work_ids, request_ids=_stamp_requests(profile, work_ids))
-    atomic_write(tmp / CUSTODY_COPY.split("/", 1)[1], excerpt)
+    atomic_write(part(layout.CUSTODY_COPY), excerpt)
     old = root / HANDOVER
     if old.exists():
         shutil.rmtree(old)
@@ -242,16 +203,14 @@ def build_report(case: Case, profile, *, out_pdf: Path | None = None,
     _check_examined(case)
     root = case.root
     _handover(case, profile, disclose=disclose)
-    report = root / "report"
-    shutil.rmtree(report, ignore_errors=True)
-    (report / "figures").mkdir(parents=True)
+    shutil.rmtree(root / layout.REPORT, ignore_errors=True)
+    (root / layout.FIGURES).mkdir(parents=True)
     data = build_data(root)
     for rel, png in draw_figures(root, data).items():
         atomic_write(root / rel, png)
     data_bytes = canonical_json(data)
     atomic_write(root / DATA, data_bytes + b"\n")
     pdf = render_pdf(data, root, root / PDF)
-    from claimkit.dossier.pdfsign import sign_pdf
     signed = sign_pdf(pdf, profile, reason=f"Evidence dossier {data['case']['case_id']}")
     atomic_write(root / PDF, signed)
     html = render_html(data, root).encode("utf-8")

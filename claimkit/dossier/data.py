@@ -15,31 +15,26 @@ import re
 from pathlib import Path
 
 from claimkit import __version__
+from claimkit.case import layout
+from claimkit.case.layout import CUSTODY_COPY, CUSTODY_COPY_V1, DISCLOSURES, PUBLIC_KEY, SOFTWARE
 from claimkit.errors import InputError
 from claimkit.evidence import signing
 from claimkit.evidence.canonical import canonical_json, canonicalize
+from claimkit.evidence.custodylog import verify_log
 from claimkit.evidence.disclose import check_disclosure
 from claimkit.evidence.excerpt import verify_excerpt
-from claimkit.mark import detect, pattern, stats
+from claimkit.evidence.storage import sha256_file
+from claimkit.mark import detect, geometry, pattern, stats
 
 __all__ = [
-    "CUSTODY_COPY",
     "DOSSIER_TYPE",
-    "HANDOVER",
-    "PUBLIC_KEY",
     "REFERENCES_CITED",
-    "SOFTWARE",
     "build_data",
     "case_files",
 ]
 
 DOSSIER_TYPE = "claimkit/dossier/v1"
 _EXHIBIT_ID = re.compile(r"E\d{2,6}")
-HANDOVER = "handover"
-CUSTODY_COPY = f"{HANDOVER}/custody-excerpt.json"
-SOFTWARE = f"{HANDOVER}/software.json"
-PUBLIC_KEY = f"{HANDOVER}/public-key.pem"
-DISCLOSURES = f"{HANDOVER}/disclosures"
 
 #: The published methods the analysis rests on (the method section lists them).
 REFERENCES_CITED = [
@@ -80,9 +75,9 @@ def _read_json(root: Path, rel: str) -> dict:
 
 def case_files(root: Path) -> tuple[dict, list[dict], dict[str, dict]]:
     """``case.json``, the intake records in order, and findings by exhibit ID."""
-    case = _read_json(root, "case.json")
+    case = _read_json(root, layout.CASE_FILE)
     exhibits = []
-    for p in sorted((root / "exhibits").glob("E[0-9]*.json")):
+    for p in sorted((root / layout.EXHIBITS).glob("E[0-9]*.json")):
         exhibits.append(json.loads(p.read_bytes()))
     def order(r: dict):
         i = r.get("exhibit_id")
@@ -95,7 +90,7 @@ def case_files(root: Path) -> tuple[dict, list[dict], dict[str, dict]]:
         i = ex.get("exhibit_id")
         if not (isinstance(i, str) and _EXHIBIT_ID.fullmatch(i)):
             continue     # never used to build a path; verify names it
-        p = root / "findings" / f"{i}.json"
+        p = root / layout.finding_file(i)
         if p.is_file():
             findings[ex["exhibit_id"]] = json.loads(p.read_bytes())
     return case, exhibits, findings
@@ -136,13 +131,16 @@ def _works(root: Path) -> list[dict]:
 
 
 def _custody(root: Path, case_id: str, work_ids: set[str]) -> dict:
-    """The custody excerpt: its check, and the entries that concern this case and its works."""
+    """The custody-log copy: its check, and the entries that concern this case and its works."""
     log = root / CUSTODY_COPY
     try:
         pub = signing.load_public_pem((root / PUBLIC_KEY).read_bytes())
     except (OSError, ValueError):
         return {"checked": False, "problems": ["public key missing or unreadable"], "entries": []}
-    rep = verify_excerpt(log, pub)
+    # A bundle of claimkit 0.2 carries the whole log; later ones an excerpt.
+    old = root / CUSTODY_COPY_V1
+    rep = verify_log(old, pub) if old.is_file() and not log.is_file() else \
+        verify_excerpt(log, pub)
     rows = []
     for e in rep.entries:
         d = e.get("details", {})
@@ -180,8 +178,6 @@ def _constants(module) -> dict:
 
 
 def _engine_parameters() -> dict:
-    from claimkit.mark import geometry
-
     return {
         "tile_px": pattern.TILE, "payload_bits": pattern.PAYLOAD_BITS,
         "pilot_spots": pattern.PILOT_SPOTS, "code_spots": pattern.CODE_SPOTS,
@@ -226,8 +222,6 @@ def build_data(root: str | Path) -> dict:
     dict
         JSON-ready; its canonical JSON is stored as ``report/dossier.json``.
     """
-    from claimkit.evidence.storage import sha256_file
-
     root = Path(root)
     case, exhibits, findings = case_files(root)
     works = _works(root)
@@ -235,7 +229,7 @@ def build_data(root: str | Path) -> dict:
     for ex in exhibits:
         res = _result(ex, findings.get(ex["exhibit_id"]))
         if res["examined"]:
-            res["finding_sha256"] = sha256_file(root / "findings" / f"{ex['exhibit_id']}.json")
+            res["finding_sha256"] = sha256_file(root / layout.finding_file(ex["exhibit_id"]))
         results.append(res)
     work_ids = {w["work_id"] for w in works}
     try:
@@ -275,11 +269,9 @@ def build_data(root: str | Path) -> dict:
 
 def _figure_names(r: dict) -> dict:
     e = r["exhibit_id"]
-    out = {"thumbnail": f"report/figures/{e}-thumbnail.png"}
+    kinds = ["thumbnail"]
     if r.get("examined"):
-        out.update(message=f"report/figures/{e}-message.png",
-                   surface=f"report/figures/{e}-surface.png",
-                   decoys=f"report/figures/{e}-decoys.png")
+        kinds += ["message", "surface", "decoys"]
         if (r.get("alignment") or {}).get("aligned"):
-            out["aligned"] = f"report/figures/{e}-aligned.png"
-    return out
+            kinds.append("aligned")
+    return {k: layout.figure_file(e, k) for k in kinds}
