@@ -14,6 +14,7 @@ import shutil
 import zipfile
 from pathlib import Path
 
+import numpy as np
 import pytest
 from PIL import Image
 from test_case_fixtures import PASS, built_case  # noqa: F401 - the shared fixture
@@ -237,3 +238,72 @@ def test_excerpt_damage_is_named(logged, tmp_path, damage):
         items[hashed], items[hashed + 1] = items[hashed + 1], items[hashed]
     rep = _check(doc, pub, tmp_path)
     assert not rep.ok and rep.problems, damage
+
+
+# ---------------------------------------------------------------- software named
+
+def test_bundle_names_its_software(two_cases):
+    from importlib import metadata
+
+    from PIL import features
+
+    sw = json.loads(two_cases["files"]["handover/software.json"])
+    # Checked against the package metadata and Pillow's own feature report, not claimkit's.
+    for dist in ("numpy", "scipy", "pillow", "scikit-image", "reportlab"):
+        assert sw[dist] == metadata.version(dist), dist
+    assert sw["libjpeg"] == features.version("jpg") and sw["libjpeg"]
+    import platform
+    assert sw["python"] == platform.python_version() and sw["os"].startswith(platform.system())
+    assert "claimkit" in sw
+
+
+def test_other_versions_compare_figures_and_pdf_by_data(two_cases, monkeypatch):
+    from claimkit import software
+    from claimkit.verify import verify_bundle
+
+    real = software.versions()
+    monkeypatch.setattr(software, "versions", lambda: {**real, "reportlab": "0.0-elsewhere"})
+    rep = verify_bundle(two_cases["bundle"], robustness=False)
+    by = {c["check"]: c for c in rep.checks}
+    assert "reportlab: made with" in by["software"]["detail"] and \
+        "0.0-elsewhere" in by["software"]["detail"]
+    assert by["figures"]["status"] == "ok" and "tolerances" in by["figures"]["detail"]
+    assert by["PDF content"]["status"] == "ok", by["PDF content"]
+    # No disclosure was given: the examinations themselves are named as not re-run.
+    assert by["re-run"]["status"] == "not done"
+
+
+def test_figure_tolerance():
+    from claimkit.verify.dossier import figures_agree
+
+    a = np.full((8, 8, 3), 100, np.uint8)
+    b = a.copy()
+    b[0, 0, 0] = 102
+    assert not figures_agree(a, b, exact=True) and figures_agree(a, b, exact=False)
+    b[0, 0, 0] = 103
+    assert not figures_agree(a, b, exact=False)            # beyond 2 levels
+    assert not figures_agree(a, a + 1, exact=False)        # every pixel off: mean beyond 0.5
+
+
+def _pdf(text: str) -> bytes:
+    import io
+
+    from reportlab.pdfgen import canvas
+    buf = io.BytesIO()
+    c = canvas.Canvas(buf, invariant=1)
+    c.drawString(72, 720, text)
+    c.save()
+    return buf.getvalue()
+
+
+def test_pdf_text_tolerance():
+    """Compared through poppler's pdftotext: one unit of the last digit passes, more fails."""
+    from claimkit.verify.dossier import pdf_texts_agree
+
+    if shutil.which("pdftotext") is None:
+        pytest.skip("poppler-utils not installed")
+    base = _pdf("Exhibit 1: SSIM 0.9871 after alignment, log10 P -23.41")
+    assert pdf_texts_agree(base, _pdf("Exhibit 1: SSIM 0.9872 after alignment, log10 P -23.41"))[0]
+    ok, why = pdf_texts_agree(base, _pdf("Exhibit 1: SSIM 0.9875 after alignment, log10 P -23.41"))
+    assert not ok and "0.9875" in why
+    assert not pdf_texts_agree(base, _pdf("Exhibit 2: SSIM 0.9871 after alignment, log10 P -23.41"))[0]

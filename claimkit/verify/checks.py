@@ -212,7 +212,7 @@ def check_custody(root: Path, pub, exhibits: list[dict], findings: dict,
                 f"excerpt of {log.lines} entries: {len(log.entries)} of this case and its works "
                 "in full and signed, the others by hash; the chain recomputes")
     intake = {}
-    examined = {}
+    examined: dict[str, set] = {}     # every finding logged for an exhibit (re-examinations)
     case_id = None
     try:
         case_id = json.loads((root / layout.CASE_FILE).read_bytes()).get("case_id")
@@ -225,7 +225,7 @@ def check_custody(root: Path, pub, exhibits: list[dict], findings: dict,
         if e["action"] == "disputed file taken in":
             intake[d.get("exhibit_id")] = e["items"]
         elif e["action"] == "exhibit examined":
-            examined[d.get("exhibit_id")] = e["items"]
+            examined.setdefault(d.get("exhibit_id"), set()).add(e["items"].get("finding"))
     probs = []
     for ex in exhibits:
         i = ex["exhibit_id"]
@@ -236,7 +236,7 @@ def check_custody(root: Path, pub, exhibits: list[dict], findings: dict,
             probs.append(f"{i}: the intake record differs from the one logged")
         if i in findings:
             fpath = root / layout.finding_file(i)
-            if examined.get(i, {}).get("finding") != sha256_file(fpath):
+            if sha256_file(fpath) not in examined.get(i, set()):
                 probs.append(f"{i}: the stored finding is not the one logged at examination")
     present = {ex["exhibit_id"] for ex in exhibits}
     for i in sorted(set(intake) - present):

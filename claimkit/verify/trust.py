@@ -28,6 +28,9 @@ def check_tsa(tsa_names: set[str], policy: Policy, rep: VerifyReport) -> None:
     """Whether the tokens' authorities were pinned (each token is checked in :mod:`.checks`,
     against the pinned roots when there are some)."""
     if not tsa_names:
+        if policy.tsa_roots is not None:
+            rep.add("timestamp authority", False, "--tsa-roots was given, but no work in the "
+                    "bundle carries a timestamp token to check against it")
         return
     names = ", ".join(sorted(tsa_names))
     if policy.tsa_roots is None:
