@@ -3,10 +3,11 @@
 A disclosure folder holds:
 
 ``disclosure.json`` / ``disclosure.sig``
-    The detection seed, the work's serial and payload tag, the opening of the
-    record's key commitment, the timestamp inclusion proofs, the list of what
-    is withheld, and the usual cautions; canonical JSON signed with the owner's
-    Ed25519 key.
+    The work's serial, the record's key commitment, the timestamp inclusion
+    proofs, the list of what is withheld, the usual cautions and, only when
+    key material is disclosed, ``keys`` (seeds by name, their scope), the
+    payload tag and the commitment's opening; canonical JSON signed with the
+    owner's Ed25519 key.
 ``work-record.json`` / ``work-record.sig``
     The signed work record, byte for byte as signed.
 ``public-key.pem``
