@@ -11,7 +11,6 @@ then it re-runs each examination and compares the findings.
 from __future__ import annotations
 
 import json
-import re
 from pathlib import Path
 
 from claimkit import __version__
@@ -34,7 +33,6 @@ __all__ = [
 ]
 
 DOSSIER_TYPE = "claimkit/dossier/v1"
-_EXHIBIT_ID = re.compile(r"E\d{2,6}")
 
 #: The published methods the analysis rests on (the method section lists them).
 REFERENCES_CITED = [
@@ -77,19 +75,23 @@ def case_files(root: Path) -> tuple[dict, list[dict], dict[str, dict]]:
     """``case.json``, the intake records in order, and findings by exhibit ID."""
     case = _read_json(root, layout.CASE_FILE)
     exhibits = []
-    for p in sorted((root / layout.EXHIBITS).glob("E[0-9]*.json")):
-        exhibits.append(json.loads(p.read_bytes()))
+    for glob in layout.INTAKE_GLOBS:
+        for p in sorted((root / layout.EXHIBITS).glob(glob)):
+            exhibits.append(json.loads(p.read_bytes()))
+
     def order(r: dict):
-        i = r.get("exhibit_id")
-        ok = isinstance(i, str) and _EXHIBIT_ID.fullmatch(i)
-        return (0, int(i[1:]), "") if ok else (1, 0, str(i))
+        n = layout.exhibit_number(r.get("exhibit_id"))
+        return (0, n, "") if n is not None else (1, 0, str(r.get("exhibit_id")))
 
     exhibits.sort(key=order)
     findings = {}
     for ex in exhibits:
         i = ex.get("exhibit_id")
-        if not (isinstance(i, str) and _EXHIBIT_ID.fullmatch(i)):
+        if layout.exhibit_number(i) is None:
             continue     # never used to build a path; verify names it
+        w = root / layout.withdrawal_record(i)
+        if w.is_file():
+            ex["withdrawn"] = json.loads(w.read_bytes())
         p = root / layout.finding_file(i)
         if p.is_file():
             findings[ex["exhibit_id"]] = json.loads(p.read_bytes())
@@ -228,6 +230,8 @@ def build_data(root: str | Path) -> dict:
     results = []
     for ex in exhibits:
         res = _result(ex, findings.get(ex["exhibit_id"]))
+        if ex.get("withdrawn"):
+            res["withdrawn"] = {k: ex["withdrawn"].get(k) for k in ("time", "by", "reason")}
         if res["examined"]:
             res["finding_sha256"] = sha256_file(root / layout.finding_file(ex["exhibit_id"]))
         results.append(res)
@@ -238,7 +242,7 @@ def build_data(root: str | Path) -> dict:
     except (OSError, ValueError):
         fp = None
     owner = case.get("owner", {})
-    detected = [r for r in results if r.get("detected")]
+    detected = [r for r in results if r.get("detected") and not r.get("withdrawn")]
     data = {
         "type": DOSSIER_TYPE,
         "software": f"claimkit {__version__}",
@@ -249,6 +253,7 @@ def build_data(root: str | Path) -> dict:
         "exhibits": [{k: ex.get(k) for k in ("exhibit_id", "original_name", "file", "sha256",
                                               "size", "media_type", "width", "height",
                                               "source", "found", "taken_in", "note")}
+                     | ({"withdrawn": ex["withdrawn"]} if ex.get("withdrawn") else {})
                      for ex in exhibits],
         "results": results,
         "summary": {"exhibits": len(exhibits),
