@@ -52,7 +52,6 @@ __all__ = [
     "derive_payload_tag",
     "format3_family_of",
     "format3_keys",
-    "format3_keys_digest",
 ]
 
 OWNER_FILE = "owner.json"
@@ -182,10 +181,15 @@ def format3_keys(marking_secret: bytes, *, serial: int | None = None) -> dict:
             "families": {family: derive_format3_family_seed(marking_secret, family)}}
 
 
-def format3_keys_digest(keys: dict) -> str:
-    """SHA-256 (hex) of sync seed || family (2 bytes) || family seed: what a work record commits to."""
-    family = keys["family"]
-    return sha256_hex(keys["sync"] + family.to_bytes(2, "big") + keys["families"][family])
+def _format3_commitments(marking_secret: bytes, serial: int) -> dict:
+    """What a format-3 work's key commitment adds: the SHA-256 of each seed its disclosure holds.
+
+    Named as the disclosure names them (``sync``, ``family-F``), as ``NAME_seed_sha256``.
+    """
+    k = format3_keys(marking_secret, serial=serial)
+    fam = k["family"]
+    return {"sync_seed_sha256": sha256_hex(k["sync"]),
+            f"family-{fam}_seed_sha256": sha256_hex(k["families"][fam])}
 
 
 def _payload_tag_key(marking_secret: bytes) -> bytes:
@@ -527,8 +531,7 @@ class Profile:
             "nonce": nonce,
         }
         if (mark_params or {}).get("format") == FORMAT3_NAME:
-            opening["format3_keys_sha256"] = format3_keys_digest(
-                format3_keys(secrets.marking_secret, serial=serial))
+            opening.update(_format3_commitments(secrets.marking_secret, serial))
         record = {
             "type": RECORD_TYPE,
             "work_id": work_id,
@@ -687,8 +690,7 @@ class Profile:
         }
         work = self.work(work_id)
         if work is not None and work.record.get("mark_params", {}).get("format") == FORMAT3_NAME:
-            opening["format3_keys_sha256"] = format3_keys_digest(
-                format3_keys(secrets.marking_secret, serial=serial))
+            opening.update(_format3_commitments(secrets.marking_secret, serial))
         return opening
 
     # ----------------------------------------------------------------- custody log
@@ -850,10 +852,11 @@ class Profile:
         from claimkit.evidence.checks import audit_profile
         return audit_profile(self)
 
-    def disclose(self, work_id: str, out: Path) -> Path:
-        """Write the key disclosure for one work (see :mod:`claimkit.evidence.disclose`)."""
+    def disclose(self, work_id: str, out: Path, *, keys: bool = True) -> Path:
+        """Write the disclosure for one work, with key material or without
+        (see :mod:`claimkit.evidence.disclose`)."""
         from claimkit.evidence.disclose import write_disclosure
-        return write_disclosure(self, work_id, out)
+        return write_disclosure(self, work_id, out, keys=keys)
 
     # ----------------------------------------------------------------- internals
     def _meta(self, key: str) -> str:
