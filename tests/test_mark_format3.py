@@ -281,3 +281,33 @@ def test_null_calibration_over_many_keys():
     pvals = np.asarray(pvals)
     for p in (0.1, 0.25, 0.5):
         assert np.mean(pvals <= p) <= p + 1e-9, p
+
+
+def test_a_format3_disclosure_holds_one_family_committed_to_and_reads_its_work(profile, tmp_path):
+    """mark writes format 3; the disclosure's seeds match the record's commitment (SHA-256 per
+    seed, FIPS 180-4 via hashlib) and read the work, and hold no other family."""
+    from PIL import Image
+
+    from claimkit import workflow
+    from claimkit.evidence.disclose import check_disclosure, write_disclosure
+    from claimkit.imageio import read_picture
+
+    src = tmp_path / "cup.png"
+    Image.fromarray(photos()["coffee"]).save(src)
+    rep = workflow.mark_file(profile, src, tmp_path / "cup-m.png")
+    work = profile.work(rep["work_id"])
+    assert work.record["mark_params"]["format"] == format3.NAME
+    assert work.record["mark_params"]["families"] == format3.FAMILIES
+    write_disclosure(profile, rep["work_id"], tmp_path / "disc")
+    chk = check_disclosure(tmp_path / "disc")
+    assert chk.ok, chk.problems
+    fam = profile.format3_disclosure_keys(rep["serial"])["family"]
+    assert set(chk.seeds) == {"detection", "sync", f"family-{fam}"}
+    opening = profile.commitment_opening(rep["work_id"])
+    assert opening[f"family-{fam}_seed_sha256"] == hashlib.sha256(chk.seeds[f"family-{fam}"]).hexdigest()
+    from claimkit.verify.checks import _keys_of
+
+    keys, bits, _ = _keys_of(chk)
+    f = workflow.examine_picture(read_picture(tmp_path / "cup-m.png"), keys,
+                                 payload_check=workflow.expected_payload_check(bits))
+    assert f.detected and f.payload_valid and f.mark_format == format3.NAME and f.mark_family == fam
