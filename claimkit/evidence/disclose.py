@@ -129,7 +129,8 @@ def _format3(profile, work) -> DisclosedKeys:
         scope=(f"this disclosure finds the claim of the owner's format-3 works of family {fam} "
                f"(one of {FORMAT3_FAMILIES}, assigned by a keyed hash of the serial: about one "
                "work in sixteen, not known in advance), the synchronisation pattern of every "
-               "format-3 work, and every format-1/2 work of the owner (owner-level detection seed)"),
+               "format-3 work; and this disclosure finds every format-1/2 work of the owner "
+               "(the detection seed goes with it, and is owner-level in those formats)"),
         finds_all_owner_works=False)
 
 
