@@ -52,6 +52,7 @@ __all__ = [
     "derive_payload_tag",
     "format3_family_of",
     "format3_keys",
+    "format3_keys_digest",
 ]
 
 OWNER_FILE = "owner.json"
@@ -181,15 +182,15 @@ def format3_keys(marking_secret: bytes, *, serial: int | None = None) -> dict:
             "families": {family: derive_format3_family_seed(marking_secret, family)}}
 
 
-def _format3_commitments(marking_secret: bytes, serial: int) -> dict:
-    """What a format-3 work's key commitment adds: the SHA-256 of each seed its disclosure holds.
+def format3_keys_digest(keys: dict) -> str:
+    """SHA-256 (hex) of sync seed || family (2 bytes) || family seed: what a format-3 record commits to."""
+    family = keys["family"]
+    return sha256_hex(keys["sync"] + family.to_bytes(2, "big") + keys["families"][family])
 
-    Named as the disclosure names them (``sync``, ``family-F``), as ``NAME_seed_sha256``.
-    """
-    k = format3_keys(marking_secret, serial=serial)
-    fam = k["family"]
-    return {"sync_seed_sha256": sha256_hex(k["sync"]),
-            f"family-{fam}_seed_sha256": sha256_hex(k["families"][fam])}
+
+def _format3_commitments(marking_secret: bytes, serial: int) -> dict:
+    """What a format-3 work's key commitment adds: ``format3_keys_sha256`` (:func:`format3_keys_digest`)."""
+    return {"format3_keys_sha256": format3_keys_digest(format3_keys(marking_secret, serial=serial))}
 
 
 def _payload_tag_key(marking_secret: bytes) -> bytes:

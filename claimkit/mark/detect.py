@@ -57,6 +57,7 @@ DIHEDRAL = 8
 DEFAULT_THRESHOLD = 1e-9
 DEFAULT_PAYLOAD_SPACE = 2 ** 24   # valid payloads per owner: one per work serial
 DECODE_TRIES = 3
+TESTS = 2                 # formats 1-2 (one pilot search) and format 3: both counted, keys held or not
 MIN_SIDE = 32
 MAX_EXAMINE_PIXELS = 4_000_000   # larger copies are examined on a central window this big
 
@@ -659,7 +660,9 @@ def examine_luma(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
     if not outcomes:
         raise ValueError("no detection key given")
     best = min(outcomes, key=lambda o: o.lp)
-    lp = stats.log10_best_of(bounds=[o.lp for o in outcomes])
+    # The bound counts both tests whichever keys are held (a disclosure holder may
+    # hold one format's keys only), so that every holder computes the same bound.
+    lp = stats.log10_best_of(bounds=[o.lp for o in outcomes] + [0.0] * (TESTS - len(outcomes)))
     detected = lp <= np.log10(threshold)
     if not detected and len(outcomes) > 1:
         # Nothing claimed: report the test that every holder of a disclosure
@@ -675,11 +678,11 @@ def examine_luma(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
     geom = describe_geometry(prep, g, d, PHASES[ph], shift, n) if detected else {}
     decoy_scores = decoy_control(prep, decoys, decoy_seed) if decoys else []
     counting = {
-        "tests": len(outcomes),
-        "formats_1_2": None if keys.legacy is None else {
+        "tests": TESTS,
+        "formats_1_2": {
             "hypotheses": hypotheses(n), "geometries": GEOMETRIES, "dihedral": DIHEDRAL,
             "phases": len(PHASES), "shifts": n * n, "payloads": payloads_counted(payload_space)},
-        "format_3": None if keys.sync is None or not keys.families else {
+        "format_3": {
             "hypotheses": format3_hypotheses(), "placements": DECODE_TRIES + 1,
             "families": format3.FAMILIES, "macro_offsets": format3.MACRO ** 2,
             "payloads": payload_space},

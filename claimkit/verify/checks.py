@@ -129,10 +129,7 @@ def _keys_of(chk) -> tuple:
     from claimkit.workflow import disclosure_mark_keys
 
     bits = payload.pack(chk.owner_tag, chk.serial, chk.payload_tag)
-    families = {int(name.split("-", 1)[1]): seed for name, seed in chk.seeds.items()
-                if name.startswith("family-")}
-    keys = disclosure_mark_keys({"sync": chk.seeds.get("sync"), "families": families},
-                                legacy=chk.detection_seed)
+    keys = disclosure_mark_keys(getattr(chk, "format3", None) or {}, legacy=chk.detection_seed)
     return (keys, bits, chk)
 
 
