@@ -185,18 +185,19 @@ def test_disclose_says_what_it_reveals_and_logs_it(two_cases, built_case, tmp_pa
         assert main(["report", str(c1), "--disclose", "--home", str(home)]) == 0
         err = capsys.readouterr().err
         assert "--disclose puts key material in the bundle" in err
-        assert "this disclosure finds every format-1/2 work of the owner" in err
+        # The case's work is marked in format 3 (what mark writes): one family's keys only.
+        assert "this disclosure finds the owner's format-3 works of family" in err
         out = tmp_path / "with-keys.zip"
         assert main(["case", "export", str(c1), "--out", str(out), "--disclose",
                      "--home", str(home)]) == 0
     last = [json.loads(x) for x in (home / "custody.jsonl").read_bytes().splitlines()]
     disclosed = [e for e in last if e["action"] == "key material disclosed"
                  and e["details"]["work_id"] == built_case.work_id]
-    assert disclosed and "every format-1/2 work" in disclosed[-1]["details"]["scope"]
+    assert disclosed and "no format-1/2 work" in disclosed[-1]["details"]["scope"]
     assert disclosed[-1]["details"]["folder"] == built_case.work_id    # a name, not a path
     with zipfile.ZipFile(out) as zf:
         doc = json.loads(zf.read(f"handover/disclosures/{built_case.work_id}/disclosure.json"))
-        assert doc["keys"]["seeds"]["detection"] == two_cases["seed"].hex()
+        assert set(doc["keys"]["seeds"]) == {"sync", "family"}      # no owner-level detection seed
         assert json.loads(zf.read("manifest.json"))["key_material"] == "disclosed"
 
 
