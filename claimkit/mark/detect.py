@@ -93,6 +93,7 @@ class Finding:
     recovered_raw: np.ndarray = field(repr=False)  # raw correlation map, aligned
     reference: np.ndarray = field(repr=False)    # reference message template
     decoy_scores: list[float] = field(default_factory=list)
+    scales_searched: int = 1             # scales the copy was examined at (mark.scales), all in ``hypotheses``
 
     @property
     def false_alarm_probability(self) -> float:
@@ -107,6 +108,7 @@ class Finding:
             "score_pilot": round(self.z_pilot, 4),
             "score_full": None if self.z_full is None else round(self.z_full, 4),
             "hypotheses": self.hypotheses,
+            "scales_searched": self.scales_searched,
             "payload_space": self.payload_space,
             "payload_valid": self.payload_valid,
             "mark_format": self.mark_format,
