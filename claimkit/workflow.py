@@ -335,9 +335,7 @@ def examine_picture(pic: Picture, seed: bytes, *, owner_tag: int | None = None, 
     elif (r0, c0, h, w) == (0, 0, *shape):
         window, overview = to_luma(pic.pixels), None
     else:
-        whole = to_luma(pic.pixels)
-        window, overview = whole[r0:r0 + h, c0:c0 + w], scales.decimate(whole, step)
-        del whole
+        window, overview = to_luma(pic.pixels[r0:r0 + h, c0:c0 + w]), _overview(pic.pixels, step)
     finding = scales.examine(
         window, seed, overview=overview, step=step, shape=shape, payload_check=payload_check,
         payload_space=payload.PAYLOAD_SPACE,
@@ -348,6 +346,20 @@ def examine_picture(pic: Picture, seed: bytes, *, owner_tag: int | None = None, 
         g["shift_px"] = [round(g["shift_px"][0] + c0, 2), round(g["shift_px"][1] + r0, 2)]
         g["examined_window"] = [c0, r0, w, h]
     return finding
+
+
+def _overview(pixels: np.ndarray, step: int) -> np.ndarray:
+    """The whole picture's luma box-reduced by ``step``, as ``read_for_examination`` makes it.
+
+    Pillow's ``reduce`` on 8-bit pixels (the reader's own overview, so a
+    picture read whole gives the finding of one read through its window);
+    other pixels are averaged in blocks of their luma.
+    """
+    if pixels.dtype == np.uint8 and pixels.ndim in (2, 3):
+        from PIL import Image
+
+        return to_luma(np.asarray(Image.fromarray(pixels).reduce(step)) if step > 1 else pixels)
+    return scales.decimate(to_luma(pixels), step)
 
 
 def examine_file(profile, path: str | os.PathLike, *, threshold: float = detect.DEFAULT_THRESHOLD,

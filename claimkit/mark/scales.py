@@ -23,7 +23,7 @@ both in the false-alarm bound.
 Both components share one energy budget. The fine mask is the one of
 :func:`claimkit.mark.embed.mask_samples` scaled by ``sqrt(1 - share)``; the
 coarse mask is computed on the level by the same SSIM rule, scaled by
-``sqrt(share)``, and on smooth areas lowered further (``COARSE_FLAT``): the
+``sqrt(share)``, and on smooth areas lowered further (:func:`flat_weight`): the
 coarse change varies over about ten pixels of a large master, where the eye
 is more sensitive than to the one-pixel spots of the fine mark. The PSNR cap
 applies to the sum.
@@ -58,7 +58,12 @@ from claimkit.mark import detect, embed, pattern, stats
 
 COARSE_SIDE = 384        # short side of the coarse level, level pixels (three periods of TILE)
 COARSE_SHARE = 0.5       # fraction of the mean squared change given to the coarse component
-COARSE_FLAT = 0.15       # weight of the SSIM constant in the coarse mask (smooth areas get less)
+# Weight of the SSIM constant in the coarse mask, i.e. how strong the coarse
+# change may be on smooth areas, by the level's factor: the coarse spots span
+# 1 / factor pixels of the picture, and the larger they are, the more visible
+# (Barten 1999). At 0.1 (a 24 MP master) 0.15 left no mottling on a plain sky
+# when looked at (0.5 did); at 0.5 (spots of two pixels) the fine mask's rule.
+COARSE_FLAT = ((0.1, 0.15), (1.0, 1.0))
 SSIM_C1 = (0.01 * 255.0) ** 2   # SSIM's luminance constant for 8-bit data (Wang et al. 2004)
 COARSE_LABEL = b"claimkit/mark/coarse-level/v1"   # derivation label of the coarse seed
 COARSE_GUARD = 11         # level pixels over which the coarse mask takes the weakest variance
@@ -138,7 +143,7 @@ def resample_matrix(n_out: int, n_in: int, span: float | None = None) -> sparse.
     scale = (n_in if span is None else span) / n_out
     support = 2.0 * max(1.0, scale)
     centre = (np.arange(n_out) + 0.5) * scale - 0.5
-    taps = int(math.ceil(2 * support)) + 1
+    taps = math.ceil(2 * support) + 1
     first = np.floor(centre - support).astype(np.int64) + 1
     idx = first[:, None] + np.arange(taps)[None, :]
     wts = _keys((idx - centre[:, None]) / max(1.0, scale))
@@ -269,7 +274,7 @@ def coarse_plan(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
     small = resample(luma, level.shape)
     if fine_allowance is None:
         fine_allowance = embed.mask_samples(luma, local_ssim=local_ssim, psnr_db=psnr_db)
-    amp, step = fine_allowance
+    amp, _step = fine_allowance   # resampled whole: the step does not matter
     # The picture's own SSIM allowance, averaged over each level pixel's footprint.
     native2 = np.maximum(resample(amp * amp, level.shape), 0.0)   # cubic kernels overshoot
     amp_c = coarse_mask(small, native2, level.factor, share=share, local_ssim=local_ssim,
@@ -283,6 +288,12 @@ def coarse_plan(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
                       rows_matrix=resample_matrix(shape[0], level.shape[0]).astype(np.float32))
 
 
+def flat_weight(factor: float) -> float:
+    """Weight of SSIM's constant in the coarse mask for a level ``factor`` (``COARSE_FLAT``)."""
+    (f0, w0), (f1, w1) = COARSE_FLAT
+    return float(np.interp(factor, (f0, f1), (w0, w1)))
+
+
 def coarse_mask(small: np.ndarray, native2: np.ndarray, factor: float, *, share: float = COARSE_SHARE,
                 local_ssim: float = embed.DEFAULT_LOCAL_SSIM,
                 psnr_db: float = embed.DEFAULT_PSNR_DB) -> np.ndarray:
@@ -292,7 +303,7 @@ def coarse_mask(small: np.ndarray, native2: np.ndarray, factor: float, *, share:
 
     * at the level (what a downscaled copy shows, where the fine component
       is gone): the SSIM rule of :func:`claimkit.mark.embed.perceptual_mask`
-      with the constant ``C2`` weighted by ``COARSE_FLAT`` (smooth areas
+      with the constant ``C2`` weighted by :func:`flat_weight` (smooth areas
       fainter: there the coarse change would show as a soft mottling);
     * at the picture's size, structure, ``share`` of the fine allowance:
       ``native2`` (the fine allowance squared, averaged per level pixel) over
@@ -316,7 +327,7 @@ def coarse_mask(small: np.ndarray, native2: np.ndarray, factor: float, *, share:
     # spread of one spot after interpolation.
     var = ndimage.minimum_filter(var, size=COARSE_GUARD)
     k = 1.0 / local_ssim - 1.0
-    level2 = k * (2.0 * var + COARSE_FLAT * embed.SSIM_C2)
+    level2 = k * (2.0 * var + flat_weight(factor) * embed.SSIM_C2)
     structure2 = native2 / max(window_fraction(factor), 1e-3)
     luminance2 = k * (2.0 * m * m + SSIM_C1)
     amp2 = np.minimum(level2, share * np.minimum(structure2, luminance2))
@@ -409,10 +420,32 @@ def coarse_views(overview: np.ndarray, shape: tuple[int, int], step: int) -> dic
     return out
 
 
+def prepare(luma: np.ndarray, *, overview: np.ndarray | None = None, step: int = 1,
+            shape: tuple[int, int] | None = None, workers: int = 1) -> dict:
+    """Everything an examination at every scale needs that does not depend on the key.
+
+    Returns ``{scale: detect._Prepared}`` for the scales whose view is large
+    enough to examine; pass it to :func:`examine` to examine under many keys
+    (a null calibration, decoys) without repeating the folds.
+    """
+    shape = tuple(np.shape(luma)) if shape is None else (int(shape[0]), int(shape[1]))
+    if min(np.shape(luma)) < detect.MIN_SIDE:
+        raise ValueError(f"image side below {detect.MIN_SIDE} pixels")
+    if overview is None:
+        step = overview_step(shape)
+        overview = decimate(luma, step)
+    views = {"native": luma, **coarse_views(overview, shape, step)}
+    out = {name: detect.prepare(x, workers=workers) for name, x in views.items()
+           if min(x.shape) >= detect.MIN_SIDE}
+    out["_shape"] = shape
+    out["_view_shapes"] = {name: x.shape for name, x in views.items()}
+    return out
+
+
 def examine(luma: np.ndarray, seed: bytes, *, overview: np.ndarray | None = None, step: int = 1,
             shape: tuple[int, int] | None = None,
             threshold: float = detect.DEFAULT_THRESHOLD, workers: int = 1,
-            **kwargs) -> detect.Finding:
+            prepared: dict | None = None, **kwargs) -> detect.Finding:
     """Examine a copy at its own resolution and at each coarse view; the strongest finding wins.
 
     Parameters
@@ -429,6 +462,8 @@ def examine(luma: np.ndarray, seed: bytes, *, overview: np.ndarray | None = None
         The whole copy's size (default: ``luma``'s).
     threshold : float
         ``detected`` means the bound, counting every scale, is at most this.
+    prepared : dict, optional
+        From :func:`prepare` for this copy (then ``luma`` is not read again).
     **kwargs
         Passed to :func:`claimkit.mark.detect.examine_luma`.
 
@@ -439,29 +474,26 @@ def examine(luma: np.ndarray, seed: bytes, *, overview: np.ndarray | None = None
         ``scales_searched`` says how many scales; a finding made at a coarse
         view has ``geometry["level"]`` (see :func:`describe_level`).
     """
-    shape = tuple(np.shape(luma)) if shape is None else (int(shape[0]), int(shape[1]))
-    if min(np.shape(luma)) < detect.MIN_SIDE:
-        raise ValueError(f"image side below {detect.MIN_SIDE} pixels")
-    if overview is None:
-        step = overview_step(shape)
-        overview = decimate(luma, step)
-    views = {"native": luma, **coarse_views(overview, shape, step)}
+    if prepared is None:
+        prepared = prepare(luma, overview=overview, step=step, shape=shape, workers=workers)
+    shape = prepared["_shape"]
     n = len(SCALES)
     best = None
-    seeds = {"native": seed}
     for name in SCALES:
-        x = views[name]
-        if min(x.shape) < detect.MIN_SIDE:
+        prep = prepared.get(name)
+        if prep is None:     # a view too small to examine (still counted in n)
             continue
-        key = seeds.get(name) or coarse_seed(seed)
+        # The coarse views look for the coarse component, under its own seed.
+        key = seed if name == "native" else coarse_seed(seed)
         # Each scale is tested at threshold / n: the union bound over the n scales.
-        f = detect.examine_luma(x, key, threshold=threshold / n, workers=workers, **kwargs)
+        f = detect.examine_luma(luma, key, threshold=threshold / n, workers=workers,
+                                prepared=prep, **kwargs)
         if best is None or f.log10_false_alarm < best[1].log10_false_alarm:
             best = (name, f)
     name, f = best
     geom = dict(f.geometry)
     if geom and name != "native":
-        geom = _view_geometry(geom, shape, views[name].shape, name)
+        geom = _view_geometry(geom, shape, prepared["_view_shapes"][name], name)
     return replace(f, log10_false_alarm=min(0.0, f.log10_false_alarm + math.log10(n)),
                    hypotheses=f.hypotheses * n, scales_searched=n, geometry=geom)
 
