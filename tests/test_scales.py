@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import io
 import math
+from itertools import pairwise
 
 import numpy as np
 import pytest
@@ -21,7 +22,7 @@ from skimage.transform import rescale, resize
 from claimkit.imageio import to_luma
 from claimkit.mark import detect, embed, scales, stats
 from claimkit.mark.pattern import key_pattern
-from tests.engine_helpers import OTHER_SEED, SEED, landscape, lanczos, mark_scales, payload, sky
+from tests.engine_helpers import OTHER_SEED, SEED, lanczos, landscape, mark_scales, payload, sky
 
 BITS = payload()
 
@@ -113,7 +114,7 @@ def test_bands_join_up_to_the_plain_formula():
     assert plan.coarse is not None
     whole = plan.rows(0, luma.shape[0])
     cuts = [0, 1, 63, 64, 65, 200, 511, 777, luma.shape[0]]
-    bands = np.concatenate([plan.rows(a, b) for a, b in zip(cuts[:-1], cuts[1:])])
+    bands = np.concatenate([plan.rows(a, b) for a, b in pairwise(cuts)])
     assert np.array_equal(bands, whole)
     fine = embed.mark_delta(luma, SEED, BITS, strength=math.sqrt(1 - scales.COARSE_SHARE))
     coarse = scales.resample(plan.coarse.level_delta, luma.shape)
