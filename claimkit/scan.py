@@ -34,6 +34,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from claimkit.batch import IMAGE_SUFFIXES, find_images
+from claimkit.case.store import add_exhibit, open_case
 from claimkit.errors import ClaimkitError, InputError
 from claimkit.runner import (
     Outcome,
@@ -98,28 +99,17 @@ class ScanSummary:
 
 
 class _CaseAdder:
-    """Puts claimed copies into a case through the case layer (skipped if it is missing)."""
+    """Puts claimed copies into a case through the case layer."""
 
     def __init__(self, case_dir: Path, profile, notice):
-        self.case = None
         self.profile = profile
         self.notice = notice
-        self.add = None
-        try:
-            from claimkit.case.store import add_exhibit, open_case
-        except ImportError:
-            notice("claimkit: note: this build has no case layer; claimed copies are listed "
-                   f"but not added to {case_dir}")
-            return
         self.case = open_case(case_dir)       # a missing case is bad input: raise before scanning
-        self.add = add_exhibit
 
     def __call__(self, path: Path, rep: dict) -> str | None:
         """Take ``path`` in; returns the exhibit id, or None (with a note) when it was not."""
-        if self.add is None:
-            return None
         try:
-            ex = self.add(self.case, path, source=f"file found by claimkit scan: {path}",
+            ex = add_exhibit(self.case, path, source=f"file found by claimkit scan: {path}",
                           note=f"claimed as {rep.get('work_id')} by claimkit scan",
                           profile=self.profile)
         except ClaimkitError as exc:
@@ -148,10 +138,12 @@ def _csv_row(rep: dict) -> dict:
 class _CsvReport:
     """The ``--report`` file: written under a temporary name, renamed when the scan ends."""
 
-    def __init__(self, path: Path):
+    def __init__(self, path: Path, *, force: bool = False):
         self.path = path
         if path.exists() and path.is_dir():
             raise InputError("is a folder; --report names a CSV file", path=path)
+        if path.exists() and not force:
+            raise InputError("already exists; use --force to replace it", path=path)
         if not path.parent.is_dir():
             raise InputError(f"folder {path.parent} does not exist", path=path)
         fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".partial")
@@ -190,7 +182,8 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
                  report: Path | None = None, case_dir: Path | None = None,
                  engine: str = "local", scheduler: str | None = None,
                  workers: int | None = None, progress: bool | None = None,
-                 threshold: float | None = None, max_pixels: int | None = None) -> int:
+                 threshold: float | None = None, max_pixels: int | None = None,
+                 force: bool = False) -> int:
     """Examine every image under ``folders`` with the owner's key.
 
     Parameters
@@ -241,7 +234,7 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
 
     bar = Progress(len(files), enabled=progress, label="scanning ")
     adder = _CaseAdder(Path(case_dir), profile, notice) if case_dir is not None else None
-    csv_out = _CsvReport(Path(report)) if report is not None else None
+    csv_out = _CsvReport(Path(report), force=force) if report is not None else None
     s = ScanSummary(passed_over=len(passed_over))
     for p in problems:
         s.unreadable.append(p.line())

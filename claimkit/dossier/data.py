@@ -11,33 +11,27 @@ then it re-runs each examination and compares the findings.
 from __future__ import annotations
 
 import json
-import re
 from pathlib import Path
 
 from claimkit import __version__
+from claimkit.case import layout
+from claimkit.case.layout import CUSTODY_COPY, DISCLOSURES, PUBLIC_KEY
 from claimkit.errors import InputError
 from claimkit.evidence import signing
 from claimkit.evidence.canonical import canonical_json, canonicalize
 from claimkit.evidence.custodylog import verify_log
 from claimkit.evidence.disclose import check_disclosure
-from claimkit.mark import detect, pattern, stats
+from claimkit.evidence.storage import sha256_file
+from claimkit.mark import detect, geometry, pattern, stats
 
 __all__ = [
-    "CUSTODY_COPY",
     "DOSSIER_TYPE",
-    "HANDOVER",
-    "PUBLIC_KEY",
     "REFERENCES_CITED",
     "build_data",
     "case_files",
 ]
 
 DOSSIER_TYPE = "claimkit/dossier/v1"
-_EXHIBIT_ID = re.compile(r"E\d{2,6}")
-HANDOVER = "handover"
-CUSTODY_COPY = f"{HANDOVER}/custody.jsonl"
-PUBLIC_KEY = f"{HANDOVER}/public-key.pem"
-DISCLOSURES = f"{HANDOVER}/disclosures"
 
 #: The published methods the analysis rests on (the method section lists them).
 REFERENCES_CITED = [
@@ -78,22 +72,26 @@ def _read_json(root: Path, rel: str) -> dict:
 
 def case_files(root: Path) -> tuple[dict, list[dict], dict[str, dict]]:
     """``case.json``, the intake records in order, and findings by exhibit ID."""
-    case = _read_json(root, "case.json")
+    case = _read_json(root, layout.CASE_FILE)
     exhibits = []
-    for p in sorted((root / "exhibits").glob("E[0-9]*.json")):
-        exhibits.append(json.loads(p.read_bytes()))
+    for glob in layout.INTAKE_GLOBS:
+        for p in sorted((root / layout.EXHIBITS).glob(glob)):
+            exhibits.append(json.loads(p.read_bytes()))
+
     def order(r: dict):
-        i = r.get("exhibit_id")
-        ok = isinstance(i, str) and _EXHIBIT_ID.fullmatch(i)
-        return (0, int(i[1:]), "") if ok else (1, 0, str(i))
+        n = layout.exhibit_number(r.get("exhibit_id"))
+        return (0, n, "") if n is not None else (1, 0, str(r.get("exhibit_id")))
 
     exhibits.sort(key=order)
     findings = {}
     for ex in exhibits:
         i = ex.get("exhibit_id")
-        if not (isinstance(i, str) and _EXHIBIT_ID.fullmatch(i)):
+        if layout.exhibit_number(i) is None:
             continue     # never used to build a path; verify names it
-        p = root / "findings" / f"{i}.json"
+        w = root / layout.withdrawal_record(i)
+        if w.is_file():
+            ex["withdrawn"] = json.loads(w.read_bytes())
+        p = root / layout.finding_file(i)
         if p.is_file():
             findings[ex["exhibit_id"]] = json.loads(p.read_bytes())
     return case, exhibits, findings
@@ -169,8 +167,6 @@ def _constants(module) -> dict:
 
 
 def _engine_parameters() -> dict:
-    from claimkit.mark import geometry
-
     return {
         "tile_px": pattern.TILE, "payload_bits": pattern.PAYLOAD_BITS,
         "pilot_spots": pattern.PILOT_SPOTS, "code_spots": pattern.CODE_SPOTS,
@@ -215,16 +211,16 @@ def build_data(root: str | Path) -> dict:
     dict
         JSON-ready; its canonical JSON is stored as ``report/dossier.json``.
     """
-    from claimkit.evidence.storage import sha256_file
-
     root = Path(root)
     case, exhibits, findings = case_files(root)
     works = _works(root)
     results = []
     for ex in exhibits:
         res = _result(ex, findings.get(ex["exhibit_id"]))
+        if ex.get("withdrawn"):
+            res["withdrawn"] = {k: ex["withdrawn"].get(k) for k in ("time", "by", "reason")}
         if res["examined"]:
-            res["finding_sha256"] = sha256_file(root / "findings" / f"{ex['exhibit_id']}.json")
+            res["finding_sha256"] = sha256_file(root / layout.finding_file(ex["exhibit_id"]))
         results.append(res)
     work_ids = {w["work_id"] for w in works}
     try:
@@ -233,7 +229,7 @@ def build_data(root: str | Path) -> dict:
     except (OSError, ValueError):
         fp = None
     owner = case.get("owner", {})
-    detected = [r for r in results if r.get("detected")]
+    detected = [r for r in results if r.get("detected") and not r.get("withdrawn")]
     data = {
         "type": DOSSIER_TYPE,
         "software": f"claimkit {__version__}",
@@ -244,6 +240,7 @@ def build_data(root: str | Path) -> dict:
         "exhibits": [{k: ex.get(k) for k in ("exhibit_id", "original_name", "file", "sha256",
                                               "size", "media_type", "width", "height",
                                               "source", "found", "taken_in", "note")}
+                     | ({"withdrawn": ex["withdrawn"]} if ex.get("withdrawn") else {})
                      for ex in exhibits],
         "results": results,
         "summary": {"exhibits": len(exhibits),
@@ -263,11 +260,9 @@ def build_data(root: str | Path) -> dict:
 
 def _figure_names(r: dict) -> dict:
     e = r["exhibit_id"]
-    out = {"thumbnail": f"report/figures/{e}-thumbnail.png"}
+    kinds = ["thumbnail"]
     if r.get("examined"):
-        out.update(message=f"report/figures/{e}-message.png",
-                   surface=f"report/figures/{e}-surface.png",
-                   decoys=f"report/figures/{e}-decoys.png")
+        kinds += ["message", "surface", "decoys"]
         if (r.get("alignment") or {}).get("aligned"):
-            out["aligned"] = f"report/figures/{e}-aligned.png"
-    return out
+            kinds.append("aligned")
+    return {k: layout.figure_file(e, k) for k in kinds}

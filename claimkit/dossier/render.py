@@ -18,6 +18,9 @@ from pathlib import Path
 
 import jinja2
 
+from claimkit.case import layout
+from claimkit.errors import InputError
+
 __all__ = [
     "parse_markup",
     "render_html",
@@ -36,8 +39,6 @@ def template_dir() -> Path:
     for cand in (here.parent / "templates", here / "templates"):
         if (cand / "dossier.md.j2").is_file():
             return cand
-    from claimkit.errors import InputError
-
     raise InputError("claimkit's templates/ folder is missing from this installation; "
                      "reinstall claimkit from its source tree", path=here)
 
@@ -89,7 +90,8 @@ def _env() -> jinja2.Environment:
     env = jinja2.Environment(loader=jinja2.FileSystemLoader(str(template_dir())),
                              autoescape=False, undefined=jinja2.StrictUndefined,
                              keep_trailing_newline=True, trim_blocks=False)
-    env.filters.update(day=_day, chance=_chance, cropdesc=_cropdesc, alignwords=_alignwords)
+    env.filters.update(day=_day, chance=_chance, cropdesc=_cropdesc, alignwords=_alignwords,
+                       label=layout.exhibit_label)
     return env
 
 
