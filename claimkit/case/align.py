@@ -34,6 +34,8 @@ from skimage.metrics import structural_similarity
 from skimage.registration import phase_cross_correlation
 from skimage.transform import rescale
 
+from claimkit.mark import scales
+
 WORK_SIDE = 1024       # longer side of the working resolution, pixels
 EDGE = 4               # pixels trimmed from the shared area's border before measuring
 
@@ -122,6 +124,9 @@ def align(reference_luma: np.ndarray, copy_luma: np.ndarray, geometry: dict | No
     copy = np.asarray(copy_luma, dtype=np.float64)
     s = _work_scale(ref_full.shape)
     ref = rescale(ref_full, s, anti_aliasing=True, preserve_range=True) if s < 1 else ref_full
+    if geometry and geometry.get("level"):
+        # Found at a coarse view: the matrix is against the original's coarse level.
+        geometry = scales.relative_to_original(geometry, ref_full.shape[:2])
     if geometry and geometry.get("matrix"):
         m = np.asarray(geometry["matrix"], dtype=float)
         # A lattice looks the same turned by 180 degrees; try both readings.

@@ -15,18 +15,32 @@ downscale of the whole picture, to whatever web size, carries the coarse
 component at the same place relative to its own size: reduced to the level
 again, the copy shows the coarse period at ``TILE`` pixels, at the original
 grid origin, whatever the copy's size was. The detector therefore examines
-a copy twice: at its own resolution (the fine component, the lattice search
-covering scales 0.45 to 2.8) and reduced (or enlarged) to the level (the
-coarse component, with the same search for crops and turns), and counts
-both in the false-alarm bound.
+a copy at three scales (``SCALES``): at its own resolution (the fine
+component, the lattice search covering scales 0.45 to 2.8), and reduced (or
+enlarged) so that its short side, or its long side, is ``COARSE_SIDE`` (the
+coarse component; the long side serves a copy cropped across the original's
+long side, such as a 4:5 portrait of a landscape; the same lattice search
+covers other crops and turns). The bound counts all three: ``hypotheses`` is
+three times a single examination's, and ``scales_searched`` says so.
 
-Both components share one energy budget. The fine mask is the one of
-:func:`claimkit.mark.embed.mask_samples` scaled by ``sqrt(1 - share)``; the
-coarse mask is computed on the level by the same SSIM rule, scaled by
-``sqrt(share)``, and on smooth areas lowered further (:func:`flat_weight`): the
-coarse change varies over about ten pixels of a large master, where the eye
-is more sensitive than to the one-pixel spots of the fine mark. The PSNR cap
-applies to the sum.
+Both components share one energy budget at the picture's size. The fine
+component is the mark of :mod:`claimkit.mark.embed` at ``sqrt(1 - share)`` of
+its strength; the coarse component gets ``share`` of the mean squared change
+(a water level per component, so the PSNR cap holds for the sum) and
+``share`` of each window's SSIM allowance, counting only the part of the coarse
+change that varies within a window (:func:`window_fraction`) and SSIM's
+luminance term, which a slowly varying change moves in dark areas. At the level
+itself, where a downscaled copy shows it and the fine component is gone, it may
+use the SSIM rule's full allowance, except on smooth areas
+(:func:`flat_weight`): the coarse change of a large master varies over ten
+pixels or more, where the eye is more sensitive than to the one-pixel spots of
+the fine mark, and near edges the weakest variance around is used, so that no
+pale halo follows a horizon into the sky.
+
+The coarse component has its own seed (:func:`coarse_seed`): its carrier and
+spot positions differ from the fine component's, so that neither can be
+mistaken for the other at some scale, and an estimate of one tells nothing
+about the other.
 
 References
 ----------
@@ -36,10 +50,7 @@ References
 .. [2] P. J. Burt, E. H. Adelson, "The Laplacian pyramid as a compact image
    code", IEEE Trans. Commun. 31(4), 532-540, 1983.
    doi:10.1109/TCOM.1983.1095851
-.. [3] C. W. Honsinger, S. J. Daly, "Method for detecting rotation and
-   magnification in images", US patent 5,835,639, 1998 (marks tied to
-   the picture's own size).
-.. [4] P. G. J. Barten, *Contrast Sensitivity of the Human Eye and Its
+.. [3] P. G. J. Barten, *Contrast Sensitivity of the Human Eye and Its
    Effects on Image Quality*, SPIE Press, 1999 (the eye is most sensitive
    at a few cycles per degree, far less at the finest detail).
 """
