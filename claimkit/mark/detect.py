@@ -328,8 +328,14 @@ def central_window(shape: tuple[int, int], max_pixels: int = MAX_EXAMINE_PIXELS)
     return (h - wh) // 2, (w - ww) // 2, wh, ww
 
 
-def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1) -> _Prepared:
-    """Whiten, estimate the lattice, resample and fold: everything that needs no key."""
+def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1,
+            lattices: bool = True) -> _Prepared:
+    """Whiten, estimate the lattice, resample and fold: everything that needs no key.
+
+    ``lattices=False`` keeps the unwarped fold only (a view whose geometry is
+    known in advance, :mod:`claimkit.mark.scales`); the count of hypotheses is
+    unchanged, so that is conservative.
+    """
     if min(luma.shape) < MIN_SIDE:
         raise ValueError(f"image side below {MIN_SIDE} pixels")
     # A 4-megapixel window holds far more than enough of a tiled mark; beyond
@@ -357,7 +363,7 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1) -> _Prepare
 
     add(fold(x, tile), None, None)
     half = np.array([wh, ww], dtype=float) / 2
-    for lat in geometry.find_lattices(x, tile, workers=workers):
+    for lat in geometry.find_lattices(x, tile, workers=workers) if lattices else ():
         t = lat.transform(tile)
         # A lattice that is the identity to within a fifth of a pixel across the
         # window adds nothing to the unwarped fold: skip the costly resampling.

@@ -417,46 +417,56 @@ def decimate(x: np.ndarray, step: int) -> np.ndarray:
     return x.reshape(x.shape[0] // step, step, x.shape[1] // step, step).mean(axis=(1, 3))
 
 
-def coarse_views(overview: np.ndarray, shape: tuple[int, int], step: int) -> dict[str, np.ndarray]:
-    """The copy reduced to each coarse view, from an ``overview`` decimated by ``step``.
+class PreparedScales:
+    """The key-independent part of an examination at every scale, each view made when first asked for.
 
-    ``shape`` is the whole copy's size; the overview's pixel ``j`` covers
-    copy pixels ``j step .. j step + step - 1``, so a view's pixel centres are
-    placed on the copy's exactly, whatever the decimation.
+    ``get(scale)`` is the :func:`claimkit.mark.detect.prepare` result of that
+    scale's view, or None for a view too small to examine. The coarse views
+    come from one overview of the copy (decimated once), and only the native
+    view gets the lattice search: a coarse view puts the coarse period of a
+    whole or cross-cropped downscale on the level's grid exactly, and the
+    search would cost about as much as the native examination again. (Each
+    view is still counted with every hypothesis of a full examination.)
     """
-    out = {}
-    for view in SCALES[1:]:
-        vs = view_shape(shape, view)
-        out[view] = resample(overview, vs, span=(shape[0] / step, shape[1] / step))
-    return out
+
+    def __init__(self, luma: np.ndarray, *, overview: np.ndarray | None = None, step: int = 1,
+                 shape: tuple[int, int] | None = None, workers: int = 1) -> None:
+        if min(np.shape(luma)) < detect.MIN_SIDE:
+            raise ValueError(f"image side below {detect.MIN_SIDE} pixels")
+        self.shape = tuple(np.shape(luma)) if shape is None else (int(shape[0]), int(shape[1]))
+        self.luma, self.overview, self.step, self.workers = luma, overview, step, workers
+        self.view_shapes = {"native": tuple(np.shape(luma))}
+        self.view_shapes.update({v: view_shape(self.shape, v) for v in SCALES[1:]})
+        self._done: dict = {}
+
+    def get(self, name: str):
+        if name not in self._done:
+            if name == "native":
+                x = self.luma
+            else:
+                if self.overview is None:
+                    self.step = overview_step(self.shape)
+                    self.overview = decimate(self.luma, self.step)
+                x = resample(self.overview, self.view_shapes[name],
+                             span=(self.shape[0] / self.step, self.shape[1] / self.step))
+            self._done[name] = None if min(x.shape) < detect.MIN_SIDE else \
+                detect.prepare(x, workers=self.workers, lattices=name == "native")
+        return self._done[name]
 
 
 def prepare(luma: np.ndarray, *, overview: np.ndarray | None = None, step: int = 1,
-            shape: tuple[int, int] | None = None, workers: int = 1) -> dict:
-    """Everything an examination at every scale needs that does not depend on the key.
-
-    Returns ``{scale: detect._Prepared}`` for the scales whose view is large
-    enough to examine; pass it to :func:`examine` to examine under many keys
-    (a null calibration, decoys) without repeating the folds.
-    """
-    shape = tuple(np.shape(luma)) if shape is None else (int(shape[0]), int(shape[1]))
-    if min(np.shape(luma)) < detect.MIN_SIDE:
-        raise ValueError(f"image side below {detect.MIN_SIDE} pixels")
-    if overview is None:
-        step = overview_step(shape)
-        overview = decimate(luma, step)
-    views = {"native": luma, **coarse_views(overview, shape, step)}
-    out = {name: detect.prepare(x, workers=workers) for name, x in views.items()
-           if min(x.shape) >= detect.MIN_SIDE}
-    out["_shape"] = shape
-    out["_view_shapes"] = {name: x.shape for name, x in views.items()}
-    return out
+            shape: tuple[int, int] | None = None, workers: int = 1) -> PreparedScales:
+    """Every scale's view prepared at once (for examining one copy under many keys)."""
+    prep = PreparedScales(luma, overview=overview, step=step, shape=shape, workers=workers)
+    for name in SCALES:
+        prep.get(name)
+    return prep
 
 
 def examine(luma: np.ndarray, seed: bytes, *, overview: np.ndarray | None = None, step: int = 1,
             shape: tuple[int, int] | None = None,
             threshold: float = detect.DEFAULT_THRESHOLD, workers: int = 1,
-            prepared: dict | None = None, **kwargs) -> detect.Finding:
+            prepared: PreparedScales | None = None, **kwargs) -> detect.Finding:
     """Examine a copy at its own resolution and at each coarse view; the strongest finding wins.
 
     Parameters
@@ -473,7 +483,7 @@ def examine(luma: np.ndarray, seed: bytes, *, overview: np.ndarray | None = None
         The whole copy's size (default: ``luma``'s).
     threshold : float
         ``detected`` means the bound, counting every scale, is at most this.
-    prepared : dict, optional
+    prepared : PreparedScales, optional
         From :func:`prepare` for this copy (then ``luma`` is not read again).
     **kwargs
         Passed to :func:`claimkit.mark.detect.examine_luma`.
@@ -483,11 +493,11 @@ def examine(luma: np.ndarray, seed: bytes, *, overview: np.ndarray | None = None
     Finding
         ``hypotheses`` counts the placements of every scale searched,
         ``scales_searched`` says how many scales; a finding made at a coarse
-        view has ``geometry["level"]`` (see :func:`describe_level`).
+        view has ``geometry["level"]`` (see :func:`relative_to_original`).
     """
     if prepared is None:
-        prepared = prepare(luma, overview=overview, step=step, shape=shape, workers=workers)
-    shape = prepared["_shape"]
+        prepared = PreparedScales(luma, overview=overview, step=step, shape=shape, workers=workers)
+    shape = prepared.shape
     n = len(SCALES)
     best = None
     for name in SCALES:
@@ -501,10 +511,14 @@ def examine(luma: np.ndarray, seed: bytes, *, overview: np.ndarray | None = None
                                 prepared=prep, **kwargs)
         if best is None or f.log10_false_alarm < best[1].log10_false_alarm:
             best = (name, f)
+        if f.detected:
+            # A claim at one scale is a claim: the other scales need not be looked at,
+            # and the bound still counts them (the count is fixed in advance).
+            break
     name, f = best
     geom = dict(f.geometry)
     if geom and name != "native":
-        geom = _view_geometry(geom, shape, prepared["_view_shapes"][name], name)
+        geom = _view_geometry(geom, shape, prepared.view_shapes[name], name)
     return replace(f, log10_false_alarm=min(0.0, f.log10_false_alarm + math.log10(n)),
                    hypotheses=f.hypotheses * n, scales_searched=n, geometry=geom)
 
