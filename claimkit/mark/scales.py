@@ -57,6 +57,7 @@ References
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import hmac
 import math
@@ -127,6 +128,34 @@ def coarse_seed(seed: bytes) -> bytes:
     if len(seed) != 32:
         raise ValueError("detection seed must be 32 bytes")
     return hmac.new(seed, COARSE_LABEL, hashlib.sha256).digest()
+
+
+def coarse_keys(keys):
+    """The coarse component's keys: every seed of ``keys`` through :func:`coarse_seed`.
+
+    ``keys`` is a 32-byte seed, or a record of seeds (a format's marking or
+    detection keys: a dataclass whose fields are seeds, mappings of seeds, or
+    other values kept as they are, such as a family number).
+    """
+    if isinstance(keys, (bytes, bytearray)):
+        return coarse_seed(bytes(keys))
+    if keys is None:
+        return None
+    if isinstance(keys, dict):
+        return {k: coarse_keys(v) for k, v in keys.items()}
+    if dataclasses.is_dataclass(keys) and not isinstance(keys, type):
+        return dataclasses.replace(keys, **{
+            f.name: coarse_keys(getattr(keys, f.name)) for f in dataclasses.fields(keys)
+            if f.init and isinstance(getattr(keys, f.name), (bytes, bytearray, dict))})
+    return keys
+
+
+def _period(keys, payload_bits: np.ndarray) -> np.ndarray:
+    """One period of the mark for ``keys`` at unit RMS (float32): a tile, or a format's larger cell."""
+    if isinstance(keys, (bytes, bytearray)):
+        pat = pattern.key_pattern(bytes(keys))
+        return pattern.mark_tile(pat, pat.codeword(np.asarray(payload_bits, dtype=np.uint8)))
+    return embed.period(keys, np.asarray(payload_bits, dtype=np.uint8))
 
 
 # ---------------------------------------------------------------- resampling
@@ -290,8 +319,7 @@ def coarse_plan(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
     native2 = np.maximum(resample(amp * amp, level.shape), 0.0)   # cubic kernels overshoot
     amp_c = coarse_mask(small, native2, level.factor, share=share, local_ssim=local_ssim,
                         psnr_db=psnr_db)
-    pat = pattern.key_pattern(coarse_seed(seed))
-    tile = pattern.mark_tile(pat, pat.codeword(np.asarray(payload_bits, dtype=np.uint8)))
+    tile = _period(coarse_keys(seed), payload_bits)
     delta = embed.apply_tiled(amp_c, tile * np.float32(strength))
     cols = resample_matrix(shape[1], level.shape[1]).astype(np.float32)
     wide = np.ascontiguousarray((cols @ delta.T).T, dtype=np.float32)
@@ -466,7 +494,8 @@ def prepare(luma: np.ndarray, *, overview: np.ndarray | None = None, step: int =
 def examine(luma: np.ndarray, seed: bytes, *, overview: np.ndarray | None = None, step: int = 1,
             shape: tuple[int, int] | None = None,
             threshold: float = detect.DEFAULT_THRESHOLD, workers: int = 1,
-            prepared: PreparedScales | None = None, **kwargs) -> detect.Finding:
+            prepared: PreparedScales | None = None, offset: tuple[int, int] | None = None,
+            **kwargs) -> detect.Finding:
     """Examine a copy at its own resolution and at each coarse view; the strongest finding wins.
 
     Parameters
@@ -485,6 +514,9 @@ def examine(luma: np.ndarray, seed: bytes, *, overview: np.ndarray | None = None
         ``detected`` means the bound, counting every scale, is at most this.
     prepared : PreparedScales, optional
         From :func:`prepare` for this copy (then ``luma`` is not read again).
+    offset : (row, col), optional
+        Where ``luma`` (a window) sits in the copy, for a format whose cells are
+        larger than its tile; given to the native examination only.
     **kwargs
         Passed to :func:`claimkit.mark.detect.examine_luma`.
 
@@ -504,11 +536,13 @@ def examine(luma: np.ndarray, seed: bytes, *, overview: np.ndarray | None = None
         prep = prepared.get(name)
         if prep is None:     # a view too small to examine (still counted in n)
             continue
-        # The coarse views look for the coarse component, under its own seed.
-        key = seed if name == "native" else coarse_seed(seed)
+        # The coarse views look for the coarse component, under its own keys; a view
+        # is the whole copy, so a window's offset applies at native resolution only.
+        extra = {} if offset is None or name != "native" else {"offset": offset}
+        key = seed if name == "native" else coarse_keys(seed)
         # Each scale is tested at threshold / n: the union bound over the n scales.
         f = detect.examine_luma(luma, key, threshold=threshold / n, workers=workers,
-                                prepared=prep, **kwargs)
+                                prepared=prep, **extra, **kwargs)
         if best is None or f.log10_false_alarm < best[1].log10_false_alarm:
             best = (name, f)
         if f.detected:
