@@ -36,7 +36,8 @@ def cmd_mark(args) -> int:
             return mark_many(profile, inputs, out, force=args.force, jpeg_quality=args.quality,
                              strength=args.strength, workers=args.workers, engine=args.engine,
                              scheduler=args.scheduler, json_lines=args.json,
-                             progress=not args.json, max_pixels=args.max_pixels,
+                             progress=not (args.json or getattr(args, "quiet", False)),
+                             max_pixels=args.max_pixels,
                              rights=rights)
         if out.is_dir():
             raise InputError("is a folder; with one input, --out names the marked file", path=out)

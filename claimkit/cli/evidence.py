@@ -257,6 +257,9 @@ def _sub_common() -> argparse.ArgumentParser:
                    help="owner profile folder (default: $CLAIMKIT_HOME or ~/.claimkit)")
     p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
                    help="show a full traceback on errors")
+    from claimkit.cli import add_output_options
+
+    add_output_options(p)
     return p
 
 
