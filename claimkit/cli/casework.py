@@ -235,19 +235,20 @@ def register(sub, common) -> None:
                     "WARC/1.1 file (with addresses, TLS certificates and headers), draw a "
                     "full-page snapshot where Chromium is installed, timestamp the WARC when "
                     "a TSA is given, and take every image in as an exhibit.")
-    p.add_argument("dir", metavar="CASE")
-    p.add_argument("urls", nargs="+", metavar="URL")
+    p.add_argument("dir", metavar="CASE", help="the case folder")
+    p.add_argument("urls", nargs="+", metavar="URL", help="the pages (or images) to capture")
     p.add_argument("--tsa-url", metavar="URL", help="RFC 3161 timestamp authority for the WARC")
     p.add_argument("--tsa-cert", metavar="PEM", help="certificate(s) to trust for that TSA")
     p.add_argument("--timeout", type=float, default=30.0, metavar="S",
                    help="seconds to wait for a connection or a read (default 30)")
     p.add_argument("--max-bytes", type=int, default=50 << 20, metavar="N",
                    help="largest response taken (default 50 MiB)")
-    p.add_argument("--max-redirects", type=int, default=10, metavar="N")
+    p.add_argument("--max-redirects", type=int, default=10, metavar="N",
+                   help="redirects followed at most (default 10)")
     p.add_argument("--ca-file", metavar="PEM",
                    help="trust these CA certificates for HTTPS instead of the system's")
     p.add_argument("--no-snapshot", action="store_true", help="no Chromium page snapshot")
-    p.add_argument("--json", action="store_true")
+    p.add_argument("--json", action="store_true", help="one JSON object")
     p.set_defaults(func=cmd_case_capture)
 
     p = csub.add_parser("withdraw", parents=[common],
