@@ -112,7 +112,8 @@ def test_every_command_speaks_the_vocabulary(tmp_path, monkeypatch, capsys, loca
                      "--json"])
     run("case examine", ["case", "examine", str(case), "--decoys", "2", "--no-robustness",
                          "--json"])
-    run("report", ["report", str(case), "--json", "--out", str(tmp_path / "d.pdf")])
+    run("report", ["report", str(case), "--json", "--disclose", "--out",
+                   str(tmp_path / "d.pdf")])
     run("case export", ["case", "export", str(case), "--out", str(tmp_path / "b.zip"), "--json"])
     run("verify", ["verify", str(tmp_path / "b.zip"), "--json"])
     run("scan", ["scan", str(tmp_path / "found"), "--json", "--workers", "1"], code=1)
