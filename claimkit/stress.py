@@ -306,7 +306,7 @@ def _too_small(attack: Attack, copy: np.ndarray, truth: dict) -> dict:
     return {
         "attack": attack.name, "family": attack.family, "params": attack.params,
         "width": int(copy.shape[1]), "height": int(copy.shape[0]), "true_geometry": truth,
-        "detected": False, "payload_valid": False, "same_payload": None,
+        "detected": False, "payload_valid": False, "same_payload": False,
         "false_alarm_probability": 1.0, "log10_false_alarm_probability": 0.0,
         "message_psnr_db": None, "scale_examined": None, "estimated_geometry": None,
         "rotation_error_deg": None, "scale_error": None, "geometry_ok": False, "seconds": 0.0,
