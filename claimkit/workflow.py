@@ -20,7 +20,7 @@ import numpy as np
 
 from claimkit import __version__
 from claimkit.errors import InputError
-from claimkit.evidence.profile import derive_payload_tag, work_id_for
+from claimkit.evidence.keys import derive_payload_tag, work_id_for
 from claimkit.evidence.storage import sha256_file
 from claimkit.imageio import (
     Picture,
@@ -266,7 +266,7 @@ class PayloadChecker:
     """Says whether decoded bits are a valid payload of one owner (picklable, for workers).
 
     Valid: the owner's tag, a serial above 0, and the keyed payload tag of
-    that serial (:func:`claimkit.evidence.profile.derive_payload_tag`).
+    that serial (:func:`claimkit.evidence.keys.derive_payload_tag`).
     """
 
     owner_tag: int

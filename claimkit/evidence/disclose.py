@@ -46,7 +46,7 @@ from claimkit.errors import CheckFailed, InputError
 from claimkit.evidence import merkle, signing, timestamp
 from claimkit.evidence.canonical import canonical_json
 from claimkit.evidence.custodylog import utc_now
-from claimkit.evidence.profile import COMMITMENT_SCHEME, commitment_of
+from claimkit.evidence.keys import COMMITMENT_SCHEME, commitment_of
 from claimkit.evidence.stamping import inclusion_proof
 from claimkit.evidence.storage import atomic_write, fsync_dir, sha256_hex
 
@@ -127,8 +127,7 @@ def write_disclosure(profile, work_id: str, out: Path) -> Path:
         "work-record.json": work.canonical,
         "work-record.sig": work.signature,
     }
-    token_ids = [r[0] for r in profile.db.execute(
-        "SELECT token_id FROM work_stamps WHERE work_id = ?", (work_id,))]
+    token_ids = profile.registry.token_ids_of(work_id, by_time=False)
     for token_id in token_ids:
         proof = inclusion_proof(profile, work_id, token_id)
         files[f"timestamps/{token_id}.tst"] = proof["token"]
