@@ -25,29 +25,29 @@ If the marked copy of a registered original is missing altogether, the next
 run makes it again with the same serial (marking is deterministic) and
 accepts it only if its SHA-256 is the registered one.
 
-Exit status
------------
-0 every input marked or already done; 1 some inputs failed (each listed at
-the end) or the run stopped early for lack of disk space; 2 nothing could be
-marked because every input was bad input (or no image was found); 130 the
-run was interrupted (Ctrl-C) — run the same command again to finish.
+Results
+-------
+:func:`mark_many` hands each file's result row to the caller as it comes
+(``on_row``) and returns a :class:`BatchSummary`; the command line
+(:mod:`claimkit.cli.scale`) prints them and chooses the exit status.
 """
 
 from __future__ import annotations
 
 import errno
-import json
 import os
 import sqlite3
-import sys
 import time
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
+from claimkit import workflow
 from claimkit.errors import ClaimkitError, InputError
-from claimkit.evidence.storage import fsync_dir
+from claimkit.evidence.storage import fsync_dir, sha256_file
+from claimkit.mark import payload
 from claimkit.runner import (
     Outcome,
     Progress,
@@ -72,8 +72,6 @@ MARK_SUFFIXES = (".jpg", ".jpeg", ".png", ".tif", ".tiff", ".webp")
 #: Extensions examined by ``scan`` (what Pillow reads that photos come as).
 IMAGE_SUFFIXES = MARK_SUFFIXES + (".gif", ".bmp")
 STAGED_TAG = ".claimkit-staged"
-
-EXIT_OK, EXIT_SOME_FAILED, EXIT_BAD_INPUT, EXIT_INTERRUPTED = 0, 1, 2, 130
 
 
 # --------------------------------------------------------------------------- finding files
@@ -186,9 +184,6 @@ def mark_task(src: str, staged: str, seed: bytes, bits: list[int], strength: flo
     (hashes, fingerprint, quality measures, capture facts); on failure
     ``{"error": line, "kind": "input" | "disk-full" | "internal"}``.
     """
-    # Imported here so that a worker process pays for the engine only once it works.
-    from claimkit import workflow
-
     tune_memory()
     src_p, staged_p = Path(src), Path(staged)
     try:
@@ -236,6 +231,7 @@ class BatchSummary:
     not_started: int = 0
     stopped: str | None = None
     seconds: float = 0.0
+    total: int = 0          # inputs: files to mark plus inputs refused before marking
 
     def as_dict(self) -> dict:
         return {"marked": self.marked, "already_done": self.skipped, "restored": self.restored,
@@ -245,16 +241,14 @@ class BatchSummary:
 
 class _MarkBatch:
     def __init__(self, profile, *, force: bool, jpeg_quality: int, strength: float,
-                 max_pixels: int | None, json_lines: bool, progress: Progress,
-                 guard: StopGuard):
-        from claimkit import workflow
-
+                 max_pixels: int | None, on_row: Callable[[dict], None] | None,
+                 progress: Progress, guard: StopGuard):
         self.profile = profile
         self.force = force
         self.jpeg_quality = jpeg_quality
         self.strength = strength
         self.max_pixels = max_pixels
-        self.json_lines = json_lines
+        self.on_row = on_row
         self.progress = progress
         self.guard = guard
         self.seed = profile.detection_seed
@@ -282,9 +276,6 @@ class _MarkBatch:
             yield job, args
 
     def _prepare(self, job: _Job):
-        from claimkit.evidence.storage import sha256_file
-        from claimkit.mark import payload
-
         src, out = job.src, job.out
         if out.exists() and os.path.samefile(src, out):
             raise InputError("the output would overwrite the original; choose another --out",
@@ -407,18 +398,14 @@ class _MarkBatch:
         self.handed_back += 1
         row = {"original": str(job.src), "output": str(job.out), "sha256_original": job.sha256,
                **result}
-        if self.json_lines:
-            from claimkit.cli.common import print_json
+        if self.on_row is not None:
             self.progress.clear()
-            print_json(row)
+            self.on_row(row)
             self.progress.draw(force=True)
-        else:
-            self.progress.write(_human_line(row))
         self.progress.advance()
 
 
 def _hash_or_none(path: Path) -> str | None:
-    from claimkit.evidence.storage import sha256_file
     if not path.is_file():
         return None
     try:
@@ -446,22 +433,11 @@ def _place(staged: Path, out: Path, *, force: bool) -> None:
     fsync_dir(out.parent)
 
 
-def _human_line(row: dict) -> str:
-    status = row["status"]
-    if status == "marked":
-        return (f"marked    {row['original']} -> {row['output']}  {row['work_id']}  "
-                f"PSNR {row.get('psnr_db', float('nan')):.1f} dB  SSIM {row.get('ssim', 0):.4f}")
-    if status == "skipped":
-        return f"done      {row['original']}: {row['reason']} ({row['work_id']})"
-    if status == "restored":
-        return f"restored  {row['output']}: {row['reason']} ({row['work_id']})"
-    return f"failed    {row['error']}"
-
-
 def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
               jpeg_quality: int = 95, strength: float = 1.0, workers: int | None = None,
-              engine: str = "local", scheduler: str | None = None, json_lines: bool = False,
-              progress: bool | None = None, max_pixels: int | None = None) -> int:
+              engine: str = "local", scheduler: str | None = None,
+              on_row: Callable[[dict], None] | None = None, progress: bool | None = None,
+              max_pixels: int | None = None) -> BatchSummary:
     """Mark every photo in ``inputs`` (files and folders) into the folder ``out``.
 
     Parameters
@@ -482,15 +458,17 @@ def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
     engine : {"local", "dask"}
     scheduler : str, optional
         Dask scheduler address; without it ``dask`` starts a local cluster.
-    json_lines : bool
-        One JSON object per file on stdout instead of a readable line.
+    on_row : callable, optional
+        Called with each file's result row (``original``, ``output``,
+        ``status``: marked, skipped, restored or failed, and the facts), in
+        input order, as soon as it is known.
     progress : bool, optional
         Draw a progress bar on stderr (default: when stderr is a terminal).
 
     Returns
     -------
-    int
-        The exit status (see the module notes).
+    BatchSummary
+        The counts, the failures (each one line) and why the run stopped, if it did.
     """
     out = Path(out)
     if not 0 < strength <= 4:
@@ -515,7 +493,7 @@ def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
     bar = Progress(len(pairs), enabled=progress, label="marking ")
     with StopGuard() as guard:
         batch = _MarkBatch(profile, force=force, jpeg_quality=jpeg_quality, strength=strength,
-                           max_pixels=max_pixels, json_lines=json_lines, progress=bar,
+                           max_pixels=max_pixels, on_row=on_row, progress=bar,
                            guard=guard)
         for p in problems:
             batch.summary.failures.append(p.line())
@@ -536,42 +514,5 @@ def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
         # A worker stopped mid-write may leave the writer's temporary file too.
         for tmp in staged.parent.glob(f".{staged.name}.*.partial"):
             tmp.unlink(missing_ok=True)
-    return _finish_report(batch.summary, total=len(pairs) + len(problems),
-                          json_lines=json_lines)
-
-
-def _finish_report(s: BatchSummary, *, total: int, json_lines: bool) -> int:
-    err = sys.stderr
-    done = s.marked + s.skipped + s.restored
-    rate = (s.marked + s.restored) / s.seconds if s.seconds > 0 else 0.0
-    line = (f"claimkit: {s.marked} marked, {s.skipped} already done, {s.restored} restored, "
-            f"{len(s.failures)} failed")
-    if s.not_started:
-        line += f", {s.not_started} not started"
-    line += f" ({total} inputs, {s.seconds:.1f} s, {rate:.2f} files/s)"
-    if json_lines:    # stdout stays one object per file; the summary goes to stderr
-        print(json.dumps({"summary": True, "inputs": total, **s.as_dict()}, sort_keys=True),
-              file=err, flush=True)
-    else:
-        print(line, flush=True)
-    if s.failures:
-        print(f"claimkit: {len(s.failures)} file(s) failed:", file=err)
-        for f in s.failures:
-            print(f"claimkit: error: {f}", file=err)
-    if s.stopped == "interrupted":
-        print("claimkit: interrupted; everything listed above as marked is registered and "
-              "in place; run the same command again to finish the rest", file=err, flush=True)
-        return EXIT_INTERRUPTED
-    if s.stopped:
-        print(f"claimkit: stopped early: {s.stopped}; what was marked is registered and in "
-              "place; free space and run the same command again to finish the rest",
-              file=err, flush=True)
-        return EXIT_SOME_FAILED
-    if total == 0:
-        print("claimkit: error: no image files found in the inputs", file=err)
-        return EXIT_BAD_INPUT
-    if s.failures:
-        if done == 0 and all(k == "input" for k in s.failure_kinds):
-            return EXIT_BAD_INPUT
-        return EXIT_SOME_FAILED
-    return EXIT_OK
+    batch.summary.total = len(pairs) + len(problems)
+    return batch.summary

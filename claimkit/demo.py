@@ -23,8 +23,16 @@ from datetime import datetime, timezone
 from pathlib import Path
 
 import numpy as np
+from PIL import Image
 
+from claimkit.case.bundle import export_bundle
+from claimkit.case.examine import examine_case
+from claimkit.case.store import add_exhibit, new_case
+from claimkit.dossier.build import build_report
 from claimkit.errors import InputError
+from claimkit.evidence.profile import Profile
+from claimkit.verify import verify_bundle
+from claimkit.workflow import mark_file
 
 __all__ = ["SCENARIO", "load_scenario", "make_test_tsa", "run_demo"]
 
@@ -174,15 +182,7 @@ def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None =
     robustness : bool
         Run the robustness battery on the published file (the dossier's table).
     """
-    from PIL import Image
 
-    from claimkit.case.bundle import export_bundle
-    from claimkit.case.examine import examine_case
-    from claimkit.case.store import add_exhibit, new_case
-    from claimkit.dossier.build import build_report
-    from claimkit.evidence.profile import Profile
-    from claimkit.verify import verify_bundle
-    from claimkit.workflow import mark_file
 
     say = echo or (lambda s: None)
     sc = scenario or load_scenario()

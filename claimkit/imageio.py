@@ -37,6 +37,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+import tifffile
 from PIL import Image, UnidentifiedImageError
 from PIL.PngImagePlugin import PngInfo
 
@@ -462,10 +463,6 @@ def _is_16bit_multichannel_tiff(im: Image.Image) -> bool:
 def _read_tiff16(data: bytes) -> tuple[np.ndarray, np.ndarray | None] | None:
     """Full-precision 16-bit colour TIFF through tifffile; None if it cannot."""
     try:
-        import tifffile
-    except ImportError:  # pragma: no cover - tifffile ships with scikit-image
-        return None
-    try:
         with tifffile.TiffFile(io.BytesIO(data)) as tif:
             page = tif.pages[0]
             arr = page.asarray()
@@ -734,8 +731,6 @@ def _encode_tiff16(pixels: np.ndarray, alpha: np.ndarray | None, like: Picture) 
     sub-IFD (e.g. DateTimeOriginal) is not written: tifffile has no way to
     add one.
     """
-    import tifffile
-
     data = pixels
     extrasamples = None
     if alpha is not None:

@@ -5,6 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from claimkit.cli.common import home_dir, passphrase, print_json
+from claimkit.cli.scale import mark_many
 from claimkit.errors import InputError
 from claimkit.mark import detect
 from claimkit.mark.pattern import MARK_FORMAT
@@ -24,10 +25,6 @@ def cmd_mark(args) -> int:
     batch = len(inputs) > 1 or any(p.is_dir() for p in inputs)
     with _open_profile(args) as profile:
         if batch:
-            try:
-                from claimkit.batch import mark_many
-            except ModuleNotFoundError:
-                raise InputError("batch marking is not available in this build; give one file") from None
             return mark_many(profile, inputs, out, force=args.force, jpeg_quality=args.quality,
                              strength=args.strength, workers=args.workers, engine=args.engine,
                              scheduler=args.scheduler, json_lines=args.json,
