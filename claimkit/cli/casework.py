@@ -11,6 +11,9 @@ CAUTION = ("Technical evidence, not legal advice. Consult counsel; the rules on 
            "registration and takedown notices differ between jurisdictions.")
 
 
+# Each command imports the library modules it runs when it runs, so that `claimkit --help`
+# starts in about 0.2 s rather than the 3 s that importing the whole library takes.
+
 def _profile(args):
     from claimkit.evidence.profile import Profile
 

@@ -12,6 +12,9 @@ from claimkit.errors import CheckFailed, InputError
 CAUTION = "Technical evidence, not legal advice; rely on counsel and the local law."
 
 
+# Each command imports the library modules it runs when it runs, so that `claimkit --help`
+# starts in about 0.2 s rather than the 3 s that importing the whole library takes.
+
 def _open(args, *, secrets: bool):
     from claimkit.evidence.profile import Profile
 
