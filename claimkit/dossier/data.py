@@ -19,11 +19,11 @@ from claimkit.case import layout
 from claimkit.case.layout import CUSTODY_COPY, DISCLOSURES, PUBLIC_KEY
 from claimkit.errors import InputError
 from claimkit.evidence import signing
-from claimkit.evidence.canonical import canonical_json, canonicalize
+from claimkit.evidence.canonical import canonical_json
 from claimkit.evidence.custodylog import verify_log
 from claimkit.evidence.disclose import check_disclosure
 from claimkit.evidence.storage import sha256_file
-from claimkit.mark import detect, geometry, pattern, stats
+from claimkit.mark import detect, formats, pattern
 
 __all__ = [
     "DOSSIER_TYPE",
@@ -32,7 +32,9 @@ __all__ = [
     "case_files",
 ]
 
-DOSSIER_TYPE = "claimkit/dossier/v1"
+#: v2: the method's parameters come from explicit per-format records
+#: (``method.engine.formats``, ``method.engine.examination``), not ``settings``.
+DOSSIER_TYPE = "claimkit/dossier/v2"
 _EXHIBIT_ID = re.compile(r"E\d{2,6}")
 
 #: The published methods the analysis rests on (the method section lists them).
@@ -151,30 +153,21 @@ def _custody(root: Path, case_id: str, work_ids: set[str]) -> dict:
             "head_seq": rep.head_seq, "head_sha256": rep.head_hash}
 
 
-def _constants(module) -> dict:
-    """Every upper-case scalar setting of an engine module (the parameters, all of them)."""
-    out = {}
-    for name in sorted(vars(module)):
-        v = getattr(module, name)
-        if isinstance(v, tuple) and not all(isinstance(x, (int, float, str)) for x in v):
-            continue   # e.g. the readable mark formats, listed on their own
-        if name.isupper() and not name.startswith("_") and isinstance(v, (int, float, str, tuple)) \
-                and not isinstance(v, bool):
-            out[f"{module.__name__.rsplit('.', 1)[-1]}.{name}"] = canonicalize(v)
-    return out
-
-
 def _engine_parameters() -> dict:
+    """The method's numbers, from the explicit records of :mod:`claimkit.mark.formats`."""
+    current = formats.format_record(pattern.MARK_FORMAT)
+    exam = formats.EXAMINATION
     return {
-        "tile_px": pattern.TILE, "payload_bits": pattern.PAYLOAD_BITS,
-        "pilot_spots": pattern.PILOT_SPOTS, "code_spots": pattern.CODE_SPOTS,
+        "tile_px": current.tile_px, "payload_bits": current.payload_bits,
+        "pilot_spots": current.pilot_spots, "code_spots": current.code_spots,
         "formats_read": "; ".join(f.describe() for f in pattern.READABLE),
-        "prefilter_px": getattr(detect, "PREFILTER", None),
-        "geometries_tried": detect.GEOMETRIES, "quarter_turns_and_mirrors": detect.DIHEDRAL,
-        "subpixel_phases": len(detect.PHASES), "hypotheses": detect.hypotheses(),
+        "prefilter_px": exam.prefilter_px,
+        "geometries_tried": exam.geometries_tried,
+        "quarter_turns_and_mirrors": exam.quarter_turns_and_mirrors,
+        "subpixel_phases": exam.subpixel_phases, "hypotheses": detect.hypotheses(),
         "bound": "P_fa <= 2 x H x exp(-z^2/2) (sub-Gaussian tail, union over hypotheses)",
-        "settings": {**_constants(pattern), **_constants(detect), **_constants(geometry),
-                     **_constants(stats)},
+        "formats": [formats.format_record(f.name).as_dict() for f in pattern.READABLE],
+        "examination": exam.as_dict(),
     }
 
 

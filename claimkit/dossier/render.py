@@ -162,8 +162,11 @@ def tables(data: dict, name: str, arg: str | None) -> tuple[list[str], list[list
         return ["Exhibit", "Found at", "Found (stated)", "Taken in by, at", "SHA-256"], rows
     if name == "parameters":
         eng = data["method"]["engine"]
-        rows = [[k, str(v)] for k, v in sorted(eng.items()) if k != "settings"]
-        rows += [[k, str(v)] for k, v in sorted(eng.get("settings", {}).items())]
+        rows = [[k, str(v)] for k, v in sorted(eng.items())
+                if k not in ("formats", "examination")]
+        rows += [[f"examination: {k}", str(v)] for k, v in sorted(eng["examination"].items())]
+        for f in eng["formats"]:
+            rows += [[f"{f['name']}: {k}", str(v)] for k, v in sorted(f.items()) if k != "name"]
         rows += [[f"mark: {k}", str(v)] for k, v in sorted(data["method"]["mark"].items())]
         return ["Parameter", "Value"], rows
     if name == "custody":
