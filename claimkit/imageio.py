@@ -48,11 +48,11 @@ __all__ = [
     "DEFAULT_MAX_PIXELS",
     "MIN_SIDE",
     "Picture",
-    "read_picture",
-    "write_picture",
-    "to_luma",
     "add_luma_delta",
+    "read_picture",
     "resolve_max_pixels",
+    "to_luma",
+    "write_picture",
 ]
 
 #: Default limit on width × height, a guard against decompression bombs

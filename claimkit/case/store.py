@@ -19,7 +19,6 @@ after checking its SHA-256 against the intake record
 
 from __future__ import annotations
 
-import json
 import os
 import re
 import shutil
@@ -30,11 +29,11 @@ from pathlib import Path
 
 from claimkit import __version__
 from claimkit.case import layout
+from claimkit.case.documents import CaseDoc, ExhibitDoc, FindingDoc
 from claimkit.case.layout import CASE_FILE
 from claimkit.errors import CheckFailed, InputError
-from claimkit.evidence.canonical import canonical_json
 from claimkit.evidence.custodylog import utc_now
-from claimkit.evidence.storage import atomic_write, fsync_dir, sha256_file, sha256_hex
+from claimkit.evidence.storage import fsync_dir, sha256_file, sha256_hex
 
 __all__ = [
     "CASE_FILE",
@@ -46,8 +45,8 @@ __all__ = [
     "open_case",
 ]
 
-CASE_TYPE = "claimkit/case/v1"
-EXHIBIT_TYPE = "claimkit/exhibit/v1"
+CASE_TYPE = CaseDoc.type_name()
+EXHIBIT_TYPE = ExhibitDoc.type_name()
 _SAFE = re.compile(r"[^A-Za-z0-9._-]+")
 
 
@@ -89,10 +88,7 @@ class Case:
         out = []
         if folder.is_dir():
             for p in sorted(folder.glob("E[0-9][0-9]*.json")):
-                try:
-                    rec = json.loads(p.read_bytes())
-                except ValueError:
-                    raise InputError("intake record is not JSON", path=p) from None
+                rec = ExhibitDoc.read(p).to_json()
                 out.append(Exhibit(rec["exhibit_id"], rec))
         out.sort(key=lambda e: int(e.exhibit_id[1:]))
         return out
@@ -113,7 +109,7 @@ class Case:
         p = self.finding_path(exhibit_id)
         if not p.is_file():
             return None
-        return json.loads(p.read_bytes())
+        return FindingDoc.read(p).to_json()
 
     @property
     def report_dir(self) -> Path:
@@ -141,21 +137,17 @@ def new_case(folder: str | os.PathLike, title: str, profile=None) -> Case:
     for sub in (layout.EXHIBITS, layout.FINDINGS, layout.REFERENCES):
         (root / sub).mkdir(exist_ok=True)
     now = utc_now()
-    info = {
-        "type": CASE_TYPE, "title": title,
-        "case_id": f"C-{now[:10].replace('-', '')}-{os.urandom(3).hex().upper()}",
-        "opened": {"time": now, "time_source": "system clock"},
-        "software": f"claimkit {__version__}",
-    }
+    doc = CaseDoc(
+        title=title, case_id=f"C-{now[:10].replace('-', '')}-{os.urandom(3).hex().upper()}",
+        opened={"time": now, "time_source": "system clock"},
+        software=f"claimkit {__version__}",
+        owner=None if profile is None else {"name": profile.owner,
+                                            "public_key_sha256": profile.public_key_fingerprint})
+    data = doc.write(root / CASE_FILE)
     if profile is not None:
-        info["owner"] = {"name": profile.owner,
-                         "public_key_sha256": profile.public_key_fingerprint}
-    data = canonical_json(info)
-    atomic_write(root / CASE_FILE, data + b"\n")
-    if profile is not None:
-        profile.log_action("case opened", items={"case": sha256_hex(data + b"\n")},
-                           details={"case_id": info["case_id"], "title": title})
-    return Case(root, info)
+        profile.log_action("case opened", items={"case": sha256_hex(data)},
+                           details={"case_id": doc.case_id, "title": title})
+    return Case(root, doc.to_json())
 
 
 def open_case(folder: str | os.PathLike) -> Case:
@@ -165,13 +157,7 @@ def open_case(folder: str | os.PathLike) -> Case:
     if not p.is_file():
         raise InputError("not a case folder (no case.json); make one with claimkit case new",
                          path=root)
-    try:
-        info = json.loads(p.read_bytes())
-    except ValueError:
-        raise InputError("case.json is not JSON", path=p) from None
-    if info.get("type") != CASE_TYPE:
-        raise InputError("case.json is not a claimkit case", path=p)
-    return Case(root, info)
+    return Case(root, CaseDoc.read(p).to_json())
 
 
 def _sniff(path: Path) -> tuple[str, int | None, int | None, str | None]:
@@ -256,22 +242,18 @@ def add_exhibit(case: Case, src: str | os.PathLike, *, source: str, found: str |
         raise
     fsync_dir(folder)
     who = (by or "").strip() or (profile.owner if profile is not None else "unknown")
-    record = {
-        "type": EXHIBIT_TYPE, "exhibit_id": exhibit_id, "case_id": case.case_id,
-        "file": stored, "original_name": src.name,
-        "sha256": copied, "size": dest.stat().st_size, "media_type": media,
-        "width": width, "height": height,
-        "source": source.strip(),
-        "found": ({"when": found.strip(), "time_source": f"stated by {who}"}
-                  if found else None),
-        "taken_in": {"time": utc_now(), "time_source": "system clock", "by": who},
-        "note": (note or "").strip() or None,
-    }
-    data = canonical_json(record)
-    atomic_write(case.root / layout.intake_record(exhibit_id), data + b"\n")
+    doc = ExhibitDoc(
+        exhibit_id=exhibit_id, case_id=case.case_id, file=stored, original_name=src.name,
+        sha256=copied, size=dest.stat().st_size, media_type=media, width=width, height=height,
+        source=source.strip(),
+        found=({"when": found.strip(), "time_source": f"stated by {who}"} if found else None),
+        taken_in={"time": utc_now(), "time_source": "system clock", "by": who},
+        note=(note or "").strip() or None)
+    data = doc.write(case.root / layout.intake_record(exhibit_id))
+    record = doc.to_json()
     if profile is not None:
         profile.log_action("disputed file taken in",
-                           items={"exhibit": copied, "intake_record": sha256_hex(data + b"\n")},
+                           items={"exhibit": copied, "intake_record": sha256_hex(data)},
                            details={"case_id": case.case_id, "exhibit_id": exhibit_id,
                                     "source": record["source"], "by": who,
                                     "original_name": src.name},

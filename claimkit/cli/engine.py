@@ -10,7 +10,6 @@ from claimkit.errors import InputError
 from claimkit.mark import detect
 from claimkit.mark.pattern import MARK_FORMAT
 
-
 # Each command imports the library modules it runs when it runs, so that `claimkit --help`
 # starts in about 0.2 s rather than the 3 s that importing the whole library takes.
 

@@ -8,7 +8,6 @@ from claimkit.cli.common import home_dir, passphrase, print_json
 from claimkit.errors import InputError
 from claimkit.mark import detect
 
-
 # Each command imports the library modules it runs when it runs, so that `claimkit --help`
 # starts in about 0.2 s rather than the 3 s that importing the whole library takes.
 

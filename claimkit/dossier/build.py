@@ -23,6 +23,7 @@ from skimage.transform import rescale
 
 from claimkit import __version__
 from claimkit.case import layout
+from claimkit.case.documents import DossierDataDoc, ManifestDoc
 from claimkit.case.layout import DATA, HANDOVER, HTML, MANIFEST, MANIFEST_SIG, PDF, PUBLIC_KEY
 from claimkit.case.store import Case, checked_exhibit_path
 from claimkit.dossier import figures
@@ -41,7 +42,7 @@ __all__ = [
     "write_manifest",
 ]
 
-MANIFEST_TYPE = "claimkit/bundle-manifest/v1"
+MANIFEST_TYPE = ManifestDoc.type_name()
 
 
 def draw_figures(root: Path, data: dict) -> dict[str, bytes]:
@@ -84,8 +85,7 @@ def write_manifest(root: Path, profile, case_id: str) -> dict:
            "signature": {"algorithm": "Ed25519 (RFC 8032) over the exact bytes of manifest.json",
                          "file": MANIFEST_SIG, "public_key": PUBLIC_KEY},
            "files": files}
-    data = canonical_json(doc)
-    atomic_write(root / MANIFEST, data)
+    data = ManifestDoc.from_json(doc).write(root / MANIFEST)
     atomic_write(root / MANIFEST_SIG, profile.sign(data))
     return doc
 
@@ -156,7 +156,7 @@ def build_report(case: Case, profile, *, out_pdf: Path | None = None) -> dict:
     for rel, png in draw_figures(root, data).items():
         atomic_write(root / rel, png)
     data_bytes = canonical_json(data)
-    atomic_write(root / DATA, data_bytes + b"\n")
+    DossierDataDoc.from_json(data).write(root / DATA)
     pdf = render_pdf(data, root, root / PDF)
     signed = sign_pdf(pdf, profile, reason=f"Evidence dossier {data['case']['case_id']}")
     atomic_write(root / PDF, signed)

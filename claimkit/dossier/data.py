@@ -16,8 +16,8 @@ from pathlib import Path
 
 from claimkit import __version__
 from claimkit.case import layout
+from claimkit.case.documents import CaseDoc, DossierDataDoc, ExhibitDoc, FindingDoc
 from claimkit.case.layout import CUSTODY_COPY, DISCLOSURES, PUBLIC_KEY
-from claimkit.errors import InputError
 from claimkit.evidence import signing
 from claimkit.evidence.canonical import canonical_json
 from claimkit.evidence.custodylog import verify_log
@@ -34,7 +34,7 @@ __all__ = [
 
 #: v2: the method's parameters come from explicit per-format records
 #: (``method.engine.formats``, ``method.engine.examination``), not ``settings``.
-DOSSIER_TYPE = "claimkit/dossier/v2"
+DOSSIER_TYPE = DossierDataDoc.type_name()
 _EXHIBIT_ID = re.compile(r"E\d{2,6}")
 
 #: The published methods the analysis rests on (the method section lists them).
@@ -64,22 +64,12 @@ REFERENCES_CITED = [
 ]
 
 
-def _read_json(root: Path, rel: str) -> dict:
-    p = root / rel
-    try:
-        return json.loads(p.read_bytes())
-    except FileNotFoundError:
-        raise InputError("missing", path=p) from None
-    except ValueError:
-        raise InputError("not JSON", path=p) from None
-
-
 def case_files(root: Path) -> tuple[dict, list[dict], dict[str, dict]]:
-    """``case.json``, the intake records in order, and findings by exhibit ID."""
-    case = _read_json(root, layout.CASE_FILE)
-    exhibits = []
-    for p in sorted((root / layout.EXHIBITS).glob("E[0-9]*.json")):
-        exhibits.append(json.loads(p.read_bytes()))
+    """``case.json``, the intake records in order, and findings by exhibit ID (JSON values,
+    each read and checked by its document type)."""
+    case = CaseDoc.read(root / layout.CASE_FILE).to_json()
+    exhibits = [ExhibitDoc.read(p).to_json()
+                for p in sorted((root / layout.EXHIBITS).glob("E[0-9]*.json"))]
     def order(r: dict):
         i = r.get("exhibit_id")
         ok = isinstance(i, str) and _EXHIBIT_ID.fullmatch(i)
@@ -93,7 +83,7 @@ def case_files(root: Path) -> tuple[dict, list[dict], dict[str, dict]]:
             continue     # never used to build a path; verify names it
         p = root / layout.finding_file(i)
         if p.is_file():
-            findings[ex["exhibit_id"]] = json.loads(p.read_bytes())
+            findings[ex["exhibit_id"]] = FindingDoc.read(p).to_json()
     return case, exhibits, findings
 
 
