@@ -46,7 +46,7 @@ import numpy as np
 
 from claimkit import workflow
 from claimkit.errors import ClaimkitError, InputError
-from claimkit.evidence.storage import fsync_dir, sha256_file
+from claimkit.evidence.storage import sha256_file
 from claimkit.mark import payload
 from claimkit.runner import (
     Outcome,
@@ -57,6 +57,7 @@ from claimkit.runner import (
     run_ordered,
     tune_memory,
 )
+from claimkit.workflow import place_staged, staged_path
 
 __all__ = [
     "IMAGE_SUFFIXES",
@@ -71,7 +72,6 @@ __all__ = [
 MARK_SUFFIXES = (".jpg", ".jpeg", ".png", ".tif", ".tiff", ".webp")
 #: Extensions examined by ``scan`` (what Pillow reads that photos come as).
 IMAGE_SUFFIXES = MARK_SUFFIXES + (".gif", ".bmp")
-STAGED_TAG = ".claimkit-staged"
 
 
 # --------------------------------------------------------------------------- finding files
@@ -152,11 +152,6 @@ def plan_outputs(files: list[tuple[Path, Path, Path]], out: Path
         seen[key] = src
         pairs.append((src, dst))
     return pairs, problems
-
-
-def staged_path(out: Path) -> Path:
-    """Hidden name beside ``out`` where a marked copy waits until it is registered."""
-    return out.with_name(f".{out.stem}{STAGED_TAG}{out.suffix}")
 
 
 # --------------------------------------------------------------------------- the worker
@@ -297,7 +292,7 @@ class _MarkBatch:
             if _hash_or_none(staged) == want:
                 # A run stopped between registering and renaming: finish the rename.
                 with self.guard.critical():
-                    _place(staged, out, force=self.force)
+                    place_staged(staged, out, force=self.force)
                 job.early = {"status": "restored", "work_id": work.work_id,
                              "reason": "registered copy moved into place", "sha256_marked": want}
                 return None
@@ -360,7 +355,7 @@ class _MarkBatch:
                     "this file on its own (claimkit mark FILE --out OUT) to register it as "
                     "a new work")}
             with self.guard.critical():
-                _place(staged, job.out, force=self.force)
+                place_staged(staged, job.out, force=self.force)
             return {"status": "restored", "work_id": job.restore_of.work_id,
                     "reason": "registered copy re-made", "sha256_marked": want}
         try:
@@ -371,7 +366,7 @@ class _MarkBatch:
                     marked_name=job.out.name, fingerprint=value["fingerprint"],
                     mark_params=self.params, capture=value["capture"],
                     quality=value["quality"])
-                _place(staged, job.out, force=self.force)
+                place_staged(staged, job.out, force=self.force)
         except (ClaimkitError, sqlite3.Error, OSError) as exc:
             staged.unlink(missing_ok=True)
             line = exc.line() if isinstance(exc, ClaimkitError) else f"{job.out}: {exc}"
@@ -412,25 +407,6 @@ def _hash_or_none(path: Path) -> str | None:
         return sha256_file(path)
     except ClaimkitError:
         return None
-
-
-def _place(staged: Path, out: Path, *, force: bool) -> None:
-    """Move a staged copy to its final name; without ``force`` never replace a file."""
-    if force:
-        os.replace(staged, out)
-    else:
-        try:
-            os.link(staged, out)       # fails if the name appeared meanwhile
-        except FileExistsError:
-            raise InputError("already exists (appeared during the run); the marked copy "
-                             f"was kept as {staged.name}", path=out) from None
-        except OSError:
-            if out.exists():
-                raise
-            os.replace(staged, out)    # a file system without hard links
-        else:
-            staged.unlink()
-    fsync_dir(out.parent)
 
 
 def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,

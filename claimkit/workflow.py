@@ -21,7 +21,7 @@ import numpy as np
 from claimkit import __version__
 from claimkit.errors import InputError
 from claimkit.evidence.keys import derive_payload_tag, work_id_for
-from claimkit.evidence.storage import sha256_file
+from claimkit.evidence.storage import fsync_dir, sha256_file
 from claimkit.imageio import (
     Picture,
     add_luma_delta,
@@ -217,13 +217,44 @@ def _discard_written(job, out: Path) -> None:
     out.unlink(missing_ok=True)
 
 
+STAGED_TAG = ".claimkit-staged"
+
+
+def staged_path(out: Path) -> Path:
+    """Hidden name beside ``out`` where a marked copy waits until it is registered."""
+    return out.with_name(f".{out.stem}{STAGED_TAG}{out.suffix}")
+
+
+def place_staged(staged: Path, out: Path, *, force: bool) -> None:
+    """Move a registered staged copy to its final name; without ``force`` never replace a file."""
+    if force:
+        os.replace(staged, out)
+    else:
+        try:
+            os.link(staged, out)       # fails if the name appeared meanwhile
+        except FileExistsError:
+            raise InputError("already exists (appeared during the run); the marked copy "
+                             f"was kept as {staged.name}", path=out) from None
+        except OSError:
+            if out.exists():
+                raise
+            os.replace(staged, out)    # a file system without hard links
+        else:
+            staged.unlink()
+    fsync_dir(out.parent)
+
+
 def mark_file(profile, src: str | os.PathLike, out: str | os.PathLike, *, force: bool = False,
               strength: float = 1.0, jpeg_quality: int = 95, max_pixels: int | None = None) -> dict:
     """Mark one photo, write the marked copy to ``out`` and register the work.
 
-    The original is only read. ``out`` is written atomically; if registration
-    fails afterwards the marked file is removed again, so no unregistered
-    marked file is left behind.
+    The original is only read. The one marking protocol, the same as a batch's
+    (:mod:`claimkit.batch`): the marked copy is written under a hidden staged
+    name beside ``out`` (:func:`staged_path`), the work is registered, and only
+    then is the copy renamed to ``out`` (:func:`place_staged`). So a file under
+    its final name is always registered, whenever the process is killed; a
+    staged file left behind is either unregistered (registration failed: it is
+    removed) or registered and waiting for its rename (the error names it).
 
     Returns
     -------
@@ -241,8 +272,9 @@ def mark_file(profile, src: str | os.PathLike, out: str | os.PathLike, *, force:
     pic, sha_orig = load_original(src, max_pixels=max_pixels)
     serial = profile.allocate_serials(1)[0]
     bits = payload.pack(profile.owner_tag, serial, profile.payload_tag(serial))
-    facts = mark_picture(pic, out, profile.detection_seed, bits, strength=strength,
-                         jpeg_quality=jpeg_quality, force=force, max_pixels=max_pixels)
+    staged = staged_path(out)
+    facts = mark_picture(pic, staged, profile.detection_seed, bits, strength=strength,
+                         jpeg_quality=jpeg_quality, force=True, max_pixels=max_pixels)
     try:
         record = profile.register_work(
             serial, sha256_original=sha_orig, sha256_marked=facts["sha256_marked"],
@@ -250,8 +282,9 @@ def mark_file(profile, src: str | os.PathLike, out: str | os.PathLike, *, force:
             mark_params=mark_parameters(strength), capture=facts["capture"],
             quality=facts["quality"])
     except BaseException:
-        out.unlink(missing_ok=True)
+        staged.unlink(missing_ok=True)
         raise
+    place_staged(staged, out, force=force)
     return {
         "work_id": record.work_id, "serial": serial,
         "original": str(src), "output": str(out),
