@@ -17,7 +17,7 @@ from claimkit import __version__
 from claimkit.errors import ClaimkitError
 
 # Modules that provide ``register(subparsers, common)``.
-AREAS = ("engine", "evidence", "casework", "scale", "stress")
+AREAS = ("engine", "evidence", "casework", "scale", "stress", "rights")
 
 
 def build_parser() -> argparse.ArgumentParser:
