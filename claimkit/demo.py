@@ -222,7 +222,7 @@ def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None =
         say(f"4. the shop's copies: {', '.join(p.name for p in copies)}")
         case_dir = folder / "case-tidewater"
         case = new_case(case_dir, sc["case_title"], profile)
-        for c, p in zip(sc["copies"], copies):
+        for c, p in zip(sc["copies"], copies, strict=True):
             add_exhibit(case, p, source=c["source"], found=c.get("found"), by=c.get("by"),
                         note=c.get("note"), profile=profile)
         say(f"5. case {case.case_id}: {len(copies)} exhibits taken in (copied, hashed, logged)")

@@ -251,7 +251,7 @@ class DossierDataDoc(Document):
     """``report/dossier.json``: every number and fact the dossier shows.
 
     v2: the method's parameters are explicit per-format records
-    (``method.engine.formats``, ``method.engine.examination``); v1 reflected
+    (``method.engine.format_records``, ``method.engine.examination``); v1 reflected
     the engine's module constants into ``method.engine.settings``.
     """
 

@@ -85,8 +85,9 @@ def cmd_case_examine(args) -> int:
         print(line)
 
     with _profile(args) as p:
-        examine_case(case, p, decoys=DEFAULT_DECOYS if args.decoys is None else args.decoys, search=search, progress=progress,
-                     workers=args.workers, robustness=not args.no_robustness)
+        examine_case(case, p, decoys=DEFAULT_DECOYS if args.decoys is None else args.decoys,
+                     search=search, progress=progress, workers=args.workers,
+                     robustness=not args.no_robustness)
     return 0
 
 

@@ -23,7 +23,7 @@ from claimkit.evidence.canonical import canonical_json
 from claimkit.evidence.custodylog import verify_log
 from claimkit.evidence.disclose import check_disclosure
 from claimkit.evidence.storage import sha256_file
-from claimkit.mark import detect, formats, pattern
+from claimkit.mark import detect, formats
 
 __all__ = [
     "DOSSIER_TYPE",
@@ -33,7 +33,7 @@ __all__ = [
 ]
 
 #: v2: the method's parameters come from explicit per-format records
-#: (``method.engine.formats``, ``method.engine.examination``), not ``settings``.
+#: (``method.engine.format_records``, ``method.engine.examination``), not ``settings``.
 DOSSIER_TYPE = DossierDataDoc.type_name()
 _EXHIBIT_ID = re.compile(r"E\d{2,6}")
 
@@ -143,21 +143,31 @@ def _custody(root: Path, case_id: str, work_ids: set[str]) -> dict:
             "head_seq": rep.head_seq, "head_sha256": rep.head_hash}
 
 
-def _engine_parameters() -> dict:
-    """The method's numbers, from the explicit records of :mod:`claimkit.mark.formats`."""
-    current = formats.format_record(pattern.MARK_FORMAT)
-    exam = formats.EXAMINATION
+def _examination() -> dict:
+    """How every copy is examined, named one by one (not gathered from module constants, so
+    that renaming a setting or adding a speed knob cannot change what a dossier states)."""
     return {
-        "tile_px": current.tile_px, "payload_bits": current.payload_bits,
-        "pilot_spots": current.pilot_spots, "code_spots": current.code_spots,
-        "formats_read": "; ".join(f.describe() for f in pattern.READABLE),
-        "prefilter_px": exam.prefilter_px,
-        "geometries_tried": exam.geometries_tried,
-        "quarter_turns_and_mirrors": exam.quarter_turns_and_mirrors,
-        "subpixel_phases": exam.subpixel_phases, "hypotheses": detect.hypotheses(),
+        "prefilter_px": detect.PREFILTER, "norm_window_px": detect.NORM_WINDOW,
+        "geometries_tried": detect.GEOMETRIES, "quarter_turns_and_mirrors": detect.DIHEDRAL,
+        "subpixel_phases": len(detect.PHASES), "decode_tries": detect.DECODE_TRIES,
+        "payload_space": detect.DEFAULT_PAYLOAD_SPACE,
+        "default_threshold": detect.DEFAULT_THRESHOLD,
+        "max_examine_pixels": detect.MAX_EXAMINE_PIXELS,
+    }
+
+
+def _engine_parameters() -> dict:
+    """The method's numbers: the record of each mark format read, and of the examination."""
+    return {
+        "tile_px": formats.CURRENT.tile_px, "payload_bits": formats.CURRENT.payload_bits,
+        "pilot_spots": formats.CURRENT.pilot_spots, "code_spots": formats.CURRENT.code_spots,
+        "formats_read": "; ".join(f.describe() for f in formats.READABLE),
+        "format_records": [f.as_record() for f in formats.READABLE],
+        "prefilter_px": detect.PREFILTER,
+        "geometries_tried": detect.GEOMETRIES, "quarter_turns_and_mirrors": detect.DIHEDRAL,
+        "subpixel_phases": len(detect.PHASES), "hypotheses": detect.hypotheses(),
         "bound": "P_fa <= 2 x H x exp(-z^2/2) (sub-Gaussian tail, union over hypotheses)",
-        "formats": [formats.format_record(f.name).as_dict() for f in pattern.READABLE],
-        "examination": exam.as_dict(),
+        "examination": _examination(),
     }
 
 

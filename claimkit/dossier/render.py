@@ -163,10 +163,11 @@ def tables(data: dict, name: str, arg: str | None) -> tuple[list[str], list[list
     if name == "parameters":
         eng = data["method"]["engine"]
         rows = [[k, str(v)] for k, v in sorted(eng.items())
-                if k not in ("formats", "examination")]
+                if k not in ("format_records", "examination")]
         rows += [[f"examination: {k}", str(v)] for k, v in sorted(eng["examination"].items())]
-        for f in eng["formats"]:
-            rows += [[f"{f['name']}: {k}", str(v)] for k, v in sorted(f.items()) if k != "name"]
+        for f in eng["format_records"]:
+            rows += [[f"{f['format']}: {k}", str(v)] for k, v in sorted(f.items())
+                     if k != "format"]
         rows += [[f"mark: {k}", str(v)] for k, v in sorted(data["method"]["mark"].items())]
         return ["Parameter", "Value"], rows
     if name == "custody":

@@ -168,14 +168,14 @@ def verify_log(path: Path, public_key: signing.Ed25519PublicKey, *,
         entry, why = _parse_line(raw, public_key)
         this_hash = entry_hash(raw)
         if entry is None:
-            report.problems.append(LogProblem(number, why))
+            report.problems.append(LogProblem(number, why or "the line cannot be read"))
             report.head_seq, report.head_hash = expected_seq, this_hash
             expected_seq, prev = expected_seq + 1, this_hash
             continue
         seq = entry["seq"]
         if why:
             # An altered entry's own seq cannot be trusted: assume it stood in its place.
-            report.problems.append(LogProblem(number, why))
+            report.problems.append(LogProblem(number, why or "the line cannot be read"))
             report.head_seq, report.head_hash = expected_seq, this_hash
             expected_seq, prev = expected_seq + 1, this_hash
             continue

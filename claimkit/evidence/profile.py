@@ -264,6 +264,7 @@ class Profile:
     def sign(self, data: bytes) -> bytes:
         """Ed25519 signature of ``data`` with the owner's key."""
         self._need_secrets()
+        assert self._signer is not None     # set whenever the secrets are
         return signing.sign(self._signer, data)
 
     def verify_signature(self, data: bytes, signature: bytes) -> bool:
@@ -292,13 +293,10 @@ class Profile:
         if not serials:
             return False
         lo, hi = min(serials), max(serials)
-        with _transaction(self._db):
-            if int(self._meta("next_serial")) != hi + 1:
+        with self.registry.transaction() as reg:
+            if int(reg.meta("next_serial")) != hi + 1 or reg.any_serial_between(lo, hi):
                 return False
-            if self._db.execute("SELECT 1 FROM works WHERE serial BETWEEN ? AND ?",
-                                (lo, hi)).fetchone():
-                return False
-            self._db.execute("UPDATE meta SET value = ? WHERE key = 'next_serial'", (str(lo),))
+            reg.set_meta("next_serial", str(lo))
         return True
 
     # ----------------------------------------------------------------- works

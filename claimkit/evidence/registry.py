@@ -113,7 +113,7 @@ class Registry:
             db.executescript(_SCHEMA)
         except sqlite3.DatabaseError as exc:
             raise ProfileError(f"registry unreadable: {exc}", path=path) from None
-        self.db: _Connection = db  # type: ignore[assignment]
+        self.db: _Connection = db
 
     def close(self) -> None:
         self.db.close()
@@ -165,6 +165,11 @@ class Registry:
             "INSERT INTO works VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
             (work_id, serial, sha256_original, sha256_marked, fingerprint, canonical,
              signature, nonce, registered_at))
+
+    def any_serial_between(self, lo: int, hi: int) -> bool:
+        """Whether a work is registered with a serial in ``lo..hi``."""
+        return self.db.execute("SELECT 1 FROM works WHERE serial BETWEEN ? AND ?",
+                               (lo, hi)).fetchone() is not None
 
     def work(self, work_id: str) -> WorkRow | None:
         return _work_row(self.db.execute(

@@ -125,6 +125,8 @@ def find_request(profile, *, tsq: bytes | None = None, root: bytes | None = None
         if row is None:
             raise InputError("this request was not made by this profile", path=path)
     else:
+        if root is None:
+            raise ValueError("give the request bytes or the Merkle root")
         rows = profile.registry.requests_by_root(root.hex())
         row = next((r for r in rows if nonce is not None and int(r[1]) == nonce),
                    rows[0] if rows else None)

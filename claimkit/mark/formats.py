@@ -1,136 +1,100 @@
-"""The parameters of each mark format and of the examination, as explicit records.
+"""The public parameter record of each mark format: what an expert needs to rebuild and re-check it.
 
-The dossier states these numbers as evidence, so they are written here once,
-by name, rather than gathered from whatever upper-case constants the engine's
-modules happen to hold: renaming or adding a speed setting in the engine
-must not change what a dossier says. ``tests/test_formats.py`` checks every
-value below against the engine that embeds and detects, so a record cannot
-drift from the code it describes.
-
-A new mark format adds a record to :data:`FORMATS` (and changes nothing that
-is here: old copies must stay readable and their dossiers reproducible).
+Every number here is public (the method is published); only the seeds are
+secret. The dossier and each work record carry :meth:`FormatRecord.as_record`
+instead of reading module constants, so that a record states exactly what
+was embedded and what the detector searches.
 """
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass
+from dataclasses import dataclass
 
-__all__ = ["EXAMINATION", "FORMATS", "ExaminationRecord", "FormatRecord", "format_record"]
+from claimkit.mark import pattern
 
 
 @dataclass(frozen=True)
 class FormatRecord:
-    """What one mark format embeds.
+    """Public parameters of one mark format.
 
     Attributes
     ----------
     name : str
-        The format's name, as work records and findings state it.
+        The format's name (``claimkit-mark/N``).
+    method : str
+        One line on what is embedded.
     tile_px : int
-        Period of the tiled mark, pixels of the original.
+        Period of the periodic component, pixels.
     payload_bits : int
-        Bits carried: owner tag (16), work serial (24), payload tag (24).
-    pilot_spots : int
-        Spots with key-fixed signs that the search correlates with.
-    code_spots : int
-        Spots that carry the coded payload.
-    code : str
-        The error-correcting code, in words.
+        Bits carried (owner tag 16, serial 24, payload tag 24).
+    pilot_spots, code_spots : int
+        Spots of the message that the claim rests on.
     spot_sigma_px : float
-        Width of each Gaussian message spot.
-    min_spacing_px : int
-        Least cyclic distance between spot centres.
+        Gaussian width of a spot.
+    code : str
+        The convolutional code of the payload.
+    keys : str
+        Which seeds the format uses (all derived from the owner's marking secret).
+    families : int
+        Keyed families of works (1: every work shares one pattern).
+    macro_cell_tiles : int
+        Tiles per side of the macro-cell over which the claim's carriers change (1: none).
+    sync_spots : int
+        Spots of the synchronisation component (0: none).
+    sync_energy_share : float
+        Share of the mark's energy in the synchronisation component.
+    scales : int
+        Scales at which the mark is embedded and searched (1: native only).
     """
 
     name: str
+    method: str
     tile_px: int
     payload_bits: int
     pilot_spots: int
     code_spots: int
-    code: str
     spot_sigma_px: float
-    min_spacing_px: int
+    code: str
+    keys: str
+    families: int = 1
+    macro_cell_tiles: int = 1
+    sync_spots: int = 0
+    sync_energy_share: float = 0.0
+    scales: int = 1
 
-    def as_dict(self) -> dict:
-        """The record as JSON values (the dossier's ``method.engine.formats`` entries)."""
-        return asdict(self)
+    def as_record(self) -> dict:
+        """The record as JSON-ready data (``format`` is the name)."""
+        out = {"format": self.name}
+        out.update({k: v for k, v in self.__dict__.items() if k != "name"})
+        return out
+
+    def describe(self) -> str:
+        extra = ""
+        if self.families > 1:
+            extra = (f"; {self.families} keyed families, a carrier per tile of a "
+                     f"{self.macro_cell_tiles} x {self.macro_cell_tiles} macro-cell, "
+                     f"synchronisation {self.sync_spots} spots at {self.sync_energy_share:.0%} of the energy")
+        return (f"{self.name}: {self.pilot_spots} pilot and {self.code_spots} code spots, "
+                f"{self.code}, {self.tile_px}-px tile{extra}")
 
 
-@dataclass(frozen=True)
-class ExaminationRecord:
-    """How every copy is examined, whatever its format.
-
-    Attributes
-    ----------
-    prefilter_px : int
-        Local-mean window removed before correlation.
-    norm_window_px : int
-        Window of the local standard-deviation normalisation.
-    geometries_tried : int
-        Geometric hypotheses: the unwarped picture plus the lattice fits.
-    quarter_turns_and_mirrors : int
-        Dihedral variants tried under each geometry.
-    subpixel_phases : int
-        Half-pixel phases tried under each variant.
-    decode_tries : int
-        Best placements whose payload is decoded.
-    payload_space : int
-        Valid payloads per owner and format (one per work serial).
-    default_threshold : float
-        False-alarm bound at or below which a copy counts as marked.
-    max_examine_pixels : int
-        Larger copies are examined on a central window of this many pixels.
-    """
-
-    prefilter_px: int
-    norm_window_px: int
-    geometries_tried: int
-    quarter_turns_and_mirrors: int
-    subpixel_phases: int
-    decode_tries: int
-    payload_space: int
-    default_threshold: float
-    max_examine_pixels: int
-
-    def as_dict(self) -> dict:
-        """The record as JSON values (the dossier's ``method.engine.examination``)."""
-        return asdict(self)
-
+_PHASE = "phase-dispersion: random-phase carrier convolved with a spot template"
 
 FORMAT_1 = FormatRecord(
-    name="claimkit-mark/1", tile_px=128, payload_bits=64, pilot_spots=64, code_spots=216,
-    code="convolutional, rate 1/3, constraint 9, generators 557/663/711 (octal)",
-    spot_sigma_px=1.0, min_spacing_px=4)
-
+    name=pattern.FORMAT_1.name, method=_PHASE + ", tiled", tile_px=pattern.TILE,
+    payload_bits=pattern.PAYLOAD_BITS, pilot_spots=pattern.FORMAT_1.pilots,
+    code_spots=pattern.FORMAT_1.code_spots, spot_sigma_px=pattern.SPOT_SIGMA,
+    code=pattern.FORMAT_1.code.describe(), keys="owner-level detection seed")
 FORMAT_2 = FormatRecord(
-    name="claimkit-mark/2", tile_px=128, payload_bits=64, pilot_spots=48, code_spots=144,
-    code="convolutional, rate 1/2, constraint 9, generators 561/753 (octal)",
-    spot_sigma_px=1.0, min_spacing_px=4)
-
-#: Every format claimkit has written, by name.
-FORMATS = {f.name: f for f in (FORMAT_1, FORMAT_2)}
-
-EXAMINATION = ExaminationRecord(
-    prefilter_px=9, norm_window_px=9, geometries_tried=3, quarter_turns_and_mirrors=8,
-    subpixel_phases=4, decode_tries=3, payload_space=2 ** 24, default_threshold=1e-9,
-    max_examine_pixels=4_000_000)
+    name=pattern.FORMAT_2.name, method=_PHASE + ", tiled", tile_px=pattern.TILE,
+    payload_bits=pattern.PAYLOAD_BITS, pilot_spots=pattern.FORMAT_2.pilots,
+    code_spots=pattern.FORMAT_2.code_spots, spot_sigma_px=pattern.SPOT_SIGMA,
+    code=pattern.FORMAT_2.code.describe(), keys="owner-level detection seed")
+CURRENT = FORMAT_2
+#: Every format the detector reads, the current first.
+READABLE = (FORMAT_2, FORMAT_1)
 
 
-def format_record(name: str) -> FormatRecord:
-    """The record of a format by name.
-
-    Parameters
-    ----------
-    name : str
-        E.g. ``"claimkit-mark/2"``.
-
-    Returns
-    -------
-    FormatRecord
-
-    Raises
-    ------
-    KeyError
-        For a format this claimkit does not know.
-    """
-    return FORMATS[name]
+def by_name(name: str) -> FormatRecord | None:
+    """The record of a format by its name (None for an unknown one)."""
+    return next((f for f in READABLE if f.name == name), None)
