@@ -45,7 +45,7 @@ from pathlib import Path
 import numpy as np
 
 from claimkit import workflow
-from claimkit.errors import ClaimkitError, InputError
+from claimkit.errors import ClaimkitError, DiskFull, InputError
 from claimkit.evidence.keys import work_id_for
 from claimkit.evidence.rights import load_rights
 from claimkit.evidence.storage import sha256_file
@@ -163,11 +163,13 @@ def _disk_full(exc: BaseException | None) -> bool:
     """Whether an error (or one it was raised from) is a full disk or quota."""
     seen = 0
     while exc is not None and seen < 8:
+        if isinstance(exc, DiskFull):
+            return True
         if isinstance(exc, OSError) and exc.errno in (errno.ENOSPC, errno.EDQUOT):
             return True
-        if isinstance(exc, sqlite3.OperationalError) and "full" in str(exc):
-            return True
-        if "No space left on device" in str(exc):
+        # SQLITE_FULL (13): "database or disk is full" (sqlite.org/rescode.html#full).
+        if isinstance(exc, sqlite3.OperationalError) and \
+                getattr(exc, "sqlite_errorcode", None) == 13:
             return True
         exc = exc.__cause__ or exc.__context__
         seen += 1

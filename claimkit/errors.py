@@ -32,6 +32,14 @@ class ProfileError(InputError):
     """No profile, a damaged profile, or a wrong passphrase (exit 2)."""
 
 
+class AlreadyExists(InputError):
+    """The output exists and claimkit was not asked to replace it (exit 2)."""
+
+
+class DiskFull(InputError):
+    """A write failed for want of space or quota (exit 2): free space and run again."""
+
+
 class CheckFailed(ClaimkitError):
     """A verification found something wrong (exit 1)."""
 

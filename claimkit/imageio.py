@@ -48,7 +48,7 @@ import tifffile
 from PIL import Image, UnidentifiedImageError
 from PIL.PngImagePlugin import PngInfo
 
-from claimkit.errors import InputError
+from claimkit.errors import AlreadyExists, InputError
 from claimkit.evidence.storage import atomic_write
 
 __all__ = [
@@ -897,10 +897,8 @@ def _atomic_write(path: Path, payload: bytes, *, force: bool) -> None:
     """Temp file in the same folder, fsync, rename; without ``force`` never replace a file."""
     try:
         atomic_write(path, payload, replace=force)
-    except InputError as exc:
-        if "already exists" in exc.message:
-            raise InputError("already exists; use --force to replace it", path=path) from None
-        raise
+    except AlreadyExists:
+        raise AlreadyExists("already exists; use --force to replace it", path=path) from None
 
 
 # ---------------------------------------------------------------- pixel helpers

@@ -306,7 +306,10 @@ def test_full_registry_disk_registers_nothing_half_way(profile, shoot, tmp_path,
     def register(*a, **k):
         calls.append(a)
         if len(calls) == 2:
-            raise sqlite3.OperationalError("database or disk is full")
+            # What SQLite raises (Python 3.11+ carries the result code, SQLITE_FULL = 13).
+            exc = sqlite3.OperationalError("database or disk is full")
+            exc.sqlite_errorcode = sqlite3.SQLITE_FULL
+            raise exc
         return real(*a, **k)
 
     monkeypatch.setattr(profile, "register_work", register)

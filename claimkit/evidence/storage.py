@@ -8,12 +8,13 @@ old file or the new one, never half of one.
 
 from __future__ import annotations
 
+import errno
 import hashlib
 import os
 import tempfile
 from pathlib import Path
 
-from claimkit.errors import InputError
+from claimkit.errors import AlreadyExists, DiskFull, InputError
 
 __all__ = ["atomic_write", "fsync_dir", "sha256_file", "sha256_hex", "write_new_file"]
 
@@ -99,7 +100,7 @@ def atomic_write(path: str | os.PathLike, data: bytes, *, mode: int | None = Non
     except FileNotFoundError:
         raise InputError("folder does not exist", path=folder) from None
     except OSError as exc:
-        raise InputError(f"cannot write: {exc.strerror or exc}", path=path) from None
+        raise _write_error(exc, path) from None
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
@@ -116,19 +117,25 @@ def atomic_write(path: str | os.PathLike, data: bytes, *, mode: int | None = Non
         except OSError:
             pass
         if isinstance(exc, OSError):
-            raise InputError(f"cannot write: {exc.strerror or exc}", path=path) from None
+            raise _write_error(exc, path) from None
         raise
     fsync_dir(folder)
+
+
+def _write_error(exc: OSError, path: Path) -> InputError:
+    """The typed error for a failed write (a full disk is told apart by its errno)."""
+    cls = DiskFull if exc.errno in (errno.ENOSPC, errno.EDQUOT) else InputError
+    return cls(f"cannot write: {exc.strerror or exc}", path=path)
 
 
 def _link_new(tmp: str, path: Path) -> None:
     try:
         os.link(tmp, path)
     except FileExistsError:
-        raise InputError("already exists (will not overwrite)", path=path) from None
+        raise AlreadyExists("already exists (will not overwrite)", path=path) from None
     except OSError:
         if path.exists():
-            raise InputError("already exists (will not overwrite)", path=path) from None
+            raise AlreadyExists("already exists (will not overwrite)", path=path) from None
         os.replace(tmp, path)   # a file system without hard links
         return
     os.unlink(tmp)
