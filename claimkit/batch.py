@@ -467,10 +467,8 @@ def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
         The counts, the failures (each one line) and why the run stopped, if it did.
     """
     out = Path(out)
-    if not 0 < strength <= 4:
-        raise InputError(f"strength {strength} is outside 0..4")
-    if not 1 <= int(jpeg_quality) <= 100:
-        raise InputError(f"JPEG quality {jpeg_quality} is outside 1..100")
+    workflow.check_strength(strength)
+    workflow.check_jpeg_quality(jpeg_quality)
     for p in inputs:
         if Path(p).is_dir() and out.exists() and os.path.samefile(p, out):
             raise InputError("the output folder is an input folder; choose another --out",

@@ -201,9 +201,8 @@ def scan_folders(profile, folders: list[Path], *,
     -------
     ScanSummary
     """
-    threshold = detect.DEFAULT_THRESHOLD if threshold is None else float(threshold)
-    if not 0 < threshold < 1:
-        raise InputError(f"--threshold {threshold} must lie between 0 and 1")
+    threshold = workflow.check_threshold(detect.DEFAULT_THRESHOLD if threshold is None
+                                         else float(threshold))
     passed_over: list[Path] = []
     files, problems = find_images([Path(f) for f in folders], IMAGE_SUFFIXES,
                                   passed_over=passed_over)

@@ -18,7 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
-from claimkit import __version__
+from claimkit import __version__, words
 from claimkit.errors import InputError
 from claimkit.evidence.keys import derive_payload_tag, work_id_for
 from claimkit.evidence.rights import load_rights
@@ -39,6 +39,37 @@ from claimkit.mark.fingerprint import perceptual_fingerprint
 
 MIN_MARK_SIDE = pattern.TILE      # one full period of the mark on each side
 MIN_EXAMINE_SIDE = 64
+
+
+# ---------------------------------------------------------------- input checks
+# The one place where the numbers a user gives are checked, for every command and the API.
+
+def check_strength(strength: float) -> float:
+    """The marking strength, refused (InputError) outside 0..4."""
+    if not 0 < strength <= 4:
+        raise InputError(f"strength {strength} is outside 0..4")
+    return float(strength)
+
+
+def check_jpeg_quality(quality: int) -> int:
+    """The JPEG quality of a marked copy, refused outside 1..100."""
+    if not 1 <= int(quality) <= 100:
+        raise InputError(f"JPEG quality {quality} is outside 1..100")
+    return int(quality)
+
+
+def check_threshold(threshold: float) -> float:
+    """The false-alarm bound that counts as a detection, refused outside (0, 1)."""
+    if not 0 < threshold < 1:
+        raise InputError(f"--threshold {threshold} must lie between 0 and 1")
+    return float(threshold)
+
+
+def check_decoys(decoys: int) -> int:
+    """The number of decoy keys of a control, refused outside 0..10000."""
+    if not 0 <= decoys <= 10000:
+        raise InputError(f"decoys {decoys} is outside 0..10000")
+    return int(decoys)
 
 
 def mark_parameters(strength: float) -> dict:
@@ -326,8 +357,8 @@ def mark_file(profile, src: str | os.PathLike, out: str | os.PathLike, *, force:
         ``sha256_marked``, ``metadata_dropped`` and more (see the README).
     """
     src, out = Path(src), Path(out)
-    if not 0 < strength <= 4:
-        raise InputError(f"strength {strength} is outside 0..4")
+    check_strength(strength)
+    check_jpeg_quality(jpeg_quality)
     pic, sha_orig = load_original(src, max_pixels=max_pixels)
     prepare_output(out, src, force=force)
     if rights is None:
@@ -477,5 +508,11 @@ def report_for(path: Path, pic: Picture, finding: Finding, profile=None) -> dict
             rep["registered"] = True
         else:
             rep["work_id"] = work_id_for(p["owner_tag"], p["serial"])
-    rep["geometry_text"] = detect.describe_in_words(finding.geometry)
+    rep.update(finding_words(finding))
     return rep
+
+
+def finding_words(finding: Finding) -> dict:
+    """The finding's bound and geometry in words (:mod:`claimkit.words`), beside its numbers."""
+    return {"false_alarm_text": words.probability(finding.log10_false_alarm),
+            "geometry_text": words.geometry(finding.geometry)}

@@ -240,8 +240,7 @@ def examine_case(case: Case, profile, *, decoys: int = DEFAULT_DECOYS,
     exhibits = case.exhibits()
     if not exhibits:
         raise InputError("the case has no exhibits yet (claimkit case add)", path=case.root)
-    if not 0 <= decoys <= 10000:
-        raise InputError(f"decoys {decoys} is outside 0..10000")
+    workflow.check_decoys(decoys)
     cache: dict = {}
     out = []
     for ex in exhibits:

@@ -77,9 +77,7 @@ def _verdict_line(rep: dict) -> str:
 def cmd_examine(args) -> int:
     from claimkit import workflow
 
-    threshold = args.threshold
-    if not 0 < threshold < 1:
-        raise InputError(f"--threshold {threshold} must lie between 0 and 1")
+    threshold = workflow.check_threshold(args.threshold)
     with _open_profile(args) as profile:
         for f in args.files:
             rep, finding = workflow.examine_file(profile, f, threshold=threshold,

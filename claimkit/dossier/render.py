@@ -18,6 +18,7 @@ from pathlib import Path
 
 import jinja2
 
+from claimkit import words
 from claimkit.errors import InputError
 
 __all__ = [
@@ -183,8 +184,7 @@ def tables(data: dict, name: str, arg: str | None) -> tuple[list[str], list[list
         rows = []
         for row in rows_in:
             lp = row.get("log10_false_alarm_probability")
-            bound = "" if lp is None else (f"below 1e{math.floor(lp)}" if lp < -3
-                                           else f"{10 ** lp:.2g}")
+            bound = "" if lp is None else words.probability(lp)
             rows.append([str(row.get("attack", "")), _cell(row.get("detected")),
                          _cell(row.get("same_payload")) or "n/a", bound,
                          _cell(row.get("message_psnr_db")) or "n/a",

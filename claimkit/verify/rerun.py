@@ -14,11 +14,11 @@ from claimkit import __version__
 from claimkit.case.align import align
 from claimkit.case.examine import decoy_summary, jsonable
 from claimkit.imageio import read_picture, to_luma
-from claimkit.mark import detect, payload
+from claimkit.mark import payload
 from claimkit.stress import run_battery
 from claimkit.verify.compare import differences
 from claimkit.verify.report import VerifyReport
-from claimkit.workflow import examine_picture, expected_payload_check
+from claimkit.workflow import examine_picture, expected_payload_check, finding_words
 
 __all__ = ["rerun_examination", "rerun_robustness"]
 
@@ -43,8 +43,7 @@ def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
     f = examine_picture(pic, seed, owner_tag=owner_tag, payload_check=check,
                         threshold=params["threshold"], decoys=params["decoys"])
     stored = finding["result"]
-    got = f.to_json()
-    got["geometry_text"] = detect.describe_in_words(f.geometry)
+    got = {**f.to_json(), **finding_words(f)}
     diffs = []
     for k, v in got.items():
         diffs += differences(stored.get(k), v, k)
