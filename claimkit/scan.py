@@ -138,10 +138,12 @@ def _csv_row(rep: dict) -> dict:
 class _CsvReport:
     """The ``--report`` file: written under a temporary name, renamed when the scan ends."""
 
-    def __init__(self, path: Path):
+    def __init__(self, path: Path, *, force: bool = False):
         self.path = path
         if path.exists() and path.is_dir():
             raise InputError("is a folder; --report names a CSV file", path=path)
+        if path.exists() and not force:
+            raise InputError("already exists; use --force to replace it", path=path)
         if not path.parent.is_dir():
             raise InputError(f"folder {path.parent} does not exist", path=path)
         fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".partial")
@@ -170,8 +172,8 @@ def scan_folders(profile, folders: list[Path], *,
                  report: Path | None = None, case_dir: Path | None = None,
                  engine: str = "local", scheduler: str | None = None,
                  workers: int | None = None, progress: bool | None = None,
-                 threshold: float | None = None,
-                 max_pixels: int | None = None) -> ScanSummary:
+                 threshold: float | None = None, max_pixels: int | None = None,
+                 force: bool = False) -> ScanSummary:
     """Examine every image under ``folders`` with the owner's key.
 
     Parameters
@@ -220,7 +222,7 @@ def scan_folders(profile, folders: list[Path], *,
 
     bar = Progress(len(files), enabled=progress, label="scanning ")
     adder = _CaseAdder(Path(case_dir), profile, notice) if case_dir is not None else None
-    csv_out = _CsvReport(Path(report)) if report is not None else None
+    csv_out = _CsvReport(Path(report), force=force) if report is not None else None
     s = ScanSummary(passed_over=len(passed_over))
     for p in problems:
         s.unreadable.append(p.line())

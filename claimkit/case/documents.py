@@ -41,6 +41,7 @@ __all__ = [
     "FindingDoc",
     "ManifestDoc",
     "SchemaError",
+    "WithdrawalDoc",
 ]
 
 _TYPE = re.compile(r"claimkit/([a-z-]+)/v(\d+)\Z")
@@ -151,10 +152,13 @@ class Document(Mapping):
         """The bytes :meth:`write` stores: canonical JSON (and a newline, see ``NEWLINE``)."""
         return canonical_json(self.to_json()) + (b"\n" if self.NEWLINE else b"")
 
-    def write(self, path: str | Path) -> bytes:
-        """The one writer: store atomically; returns the bytes written."""
+    def write(self, path: str | Path, *, replace: bool = True) -> bytes:
+        """The one writer: store atomically; returns the bytes written.
+
+        With ``replace=False`` an existing file is never replaced (AlreadyExists).
+        """
         data = self.encode()
-        atomic_write(Path(path), data)
+        atomic_write(Path(path), data, replace=replace)
         return data
 
     # ----------------------------------------------------------------- the JSON view
@@ -199,6 +203,20 @@ class ExhibitDoc(Document):
     found: dict | None
     taken_in: dict
     note: str | None
+
+
+@dataclass
+class WithdrawalDoc(Document):
+    """``exhibits/withdrawn/ID.json``: an exhibit taken out of the claims, who, when and why."""
+
+    KIND: ClassVar[str] = "withdrawal"
+    exhibit_id: str
+    case_id: str
+    exhibit_sha256: str
+    reason: str
+    by: str
+    time: str
+    time_source: str
 
 
 @dataclass

@@ -244,6 +244,8 @@ def examine_case(case: Case, profile, *, decoys: int = DEFAULT_DECOYS,
     cache: dict = {}
     out = []
     for ex in exhibits:
+        if ex.withdrawal is not None:
+            continue     # withdrawn from the claims: kept in the record, not examined again
         doc = examine_exhibit(case, ex, profile, decoys=decoys, search=search,
                               threshold=threshold, robustness_cache=cache, workers=workers,
                               robustness=robustness)

@@ -5,7 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from claimkit.cli.common import home_dir, passphrase, print_json
-from claimkit.errors import CheckFailed
+from claimkit.errors import CheckFailed, InputError
 
 CAUTION = ("Technical evidence, not legal advice. Consult counsel; the rules on evidence, "
            "registration and takedown notices differ between jurisdictions.")
@@ -51,6 +51,22 @@ def cmd_case_add(args) -> int:
         else:
             print(f"{ex.exhibit_id}: {r['original_name']} taken in, {r['width']}x{r['height']}, "
                   f"{r['size']} bytes, SHA-256 {r['sha256']}")
+    return 0
+
+
+def cmd_case_withdraw(args) -> int:
+    from claimkit.case.store import open_case, withdraw_exhibit
+
+    case = open_case(args.dir)
+    with _profile(args) as p:
+        rec = withdraw_exhibit(case, args.exhibit, reason=args.reason, by=args.by, profile=p)
+    if args.json:
+        print_json({"case": str(case.root), "exhibit_id": rec["exhibit_id"],
+                    "status": "withdrawn", "reason": rec["reason"], "by": rec["by"],
+                    "time": rec["time"]})
+    else:
+        print(f"{rec['exhibit_id']} withdrawn from the claims ({rec['reason']}); it stays in "
+              "the case and the custody log; run claimkit report again")
     return 0
 
 
@@ -111,6 +127,14 @@ def cmd_report(args) -> int:
     from claimkit.dossier.build import build_report
 
     case = open_case(args.dir)
+    if args.out:
+        out = Path(args.out)
+        if out.is_dir():
+            raise InputError("is a folder; --out names the PDF file", path=out)
+        if out.exists() and not args.force:
+            raise InputError("already exists; use --force to replace it", path=out)
+        if not (out.parent if str(out.parent) else Path(".")).is_dir():
+            raise InputError(f"folder {out.parent} does not exist", path=out)
     with _profile(args) as p:
         rep = build_report(case, p, out_pdf=Path(args.out) if args.out else None)
     if args.json:
@@ -177,6 +201,18 @@ def register(sub, common) -> None:
     p.add_argument("--json", action="store_true")
     p.set_defaults(func=cmd_case_add)
 
+    p = csub.add_parser("withdraw", parents=[common],
+                        help="take an exhibit out of the claims (kept in the record)",
+                        description="Withdraw an exhibit: it stays in the case, the withdrawal "
+                                    "is custody-logged, examinations pass it over and the "
+                                    "dossier shows it as withdrawn.")
+    p.add_argument("dir", metavar="CASE", help="the case folder")
+    p.add_argument("exhibit", metavar="EXHIBIT", help="the exhibit: exhibit-3, 3 or E03")
+    p.add_argument("--reason", required=True, metavar="TEXT", help="why it is withdrawn")
+    p.add_argument("--by", metavar="NAME", help="who withdraws it (default: the profile owner)")
+    p.add_argument("--json", action="store_true", help="one JSON object")
+    p.set_defaults(func=cmd_case_withdraw)
+
     p = csub.add_parser("examine", parents=[common], help="examine every exhibit")
     p.add_argument("dir", metavar="DIR")
     p.add_argument("--originals", nargs="*", metavar="FOLDER",
@@ -201,6 +237,7 @@ def register(sub, common) -> None:
                                    "the key disclosures and the signed manifest.")
     p.add_argument("dir", metavar="DIR")
     p.add_argument("--out", metavar="FILE.pdf", help="also write the PDF here")
+    p.add_argument("--force", action="store_true", help="replace an existing --out file")
     p.add_argument("--json", action="store_true")
     p.set_defaults(func=cmd_report)
 

@@ -173,7 +173,7 @@ def cmd_scan(args) -> int:
             case_dir=Path(args.case) if args.case else None,
             engine=args.engine, scheduler=args.scheduler, workers=args.workers,
             progress=None if not args.no_progress else False,
-            threshold=args.threshold, max_pixels=args.max_pixels)
+            threshold=args.threshold, max_pixels=args.max_pixels, force=args.force)
 
 
 def register(sub, common) -> None:
@@ -188,6 +188,7 @@ def register(sub, common) -> None:
     p.add_argument("--json", action="store_true",
                    help="one JSON object per file on stdout; the summary as JSON on stderr")
     p.add_argument("--report", metavar="FILE.csv", help="also write a CSV, one row per file")
+    p.add_argument("--force", action="store_true", help="replace an existing --report file")
     p.add_argument("--case", metavar="DIR", help="take every claimed copy into this case")
     p.add_argument("--threshold", type=float, default=DEFAULT_THRESHOLD,
                    help="largest false-alarm bound that counts as a claim (default 1e-9)")

@@ -11,12 +11,11 @@ then it re-runs each examination and compares the findings.
 from __future__ import annotations
 
 import json
-import re
 from pathlib import Path
 
 from claimkit import __version__
 from claimkit.case import layout
-from claimkit.case.documents import CaseDoc, DossierDataDoc, ExhibitDoc, FindingDoc
+from claimkit.case.documents import CaseDoc, DossierDataDoc, ExhibitDoc, FindingDoc, WithdrawalDoc
 from claimkit.case.layout import CUSTODY_COPY, DISCLOSURES, PUBLIC_KEY
 from claimkit.evidence import signing
 from claimkit.evidence.canonical import canonical_json
@@ -35,7 +34,6 @@ __all__ = [
 #: v2: the method's parameters come from explicit per-format records
 #: (``method.engine.format_records``, ``method.engine.examination``), not ``settings``.
 DOSSIER_TYPE = DossierDataDoc.type_name()
-_EXHIBIT_ID = re.compile(r"E\d{2,6}")
 
 #: The published methods the analysis rests on (the method section lists them).
 REFERENCES_CITED = [
@@ -68,19 +66,21 @@ def case_files(root: Path) -> tuple[dict, list[dict], dict[str, dict]]:
     """``case.json``, the intake records in order, and findings by exhibit ID (JSON values,
     each read and checked by its document type)."""
     case = CaseDoc.read(root / layout.CASE_FILE).to_json()
-    exhibits = [ExhibitDoc.read(p).to_json()
-                for p in sorted((root / layout.EXHIBITS).glob("E[0-9]*.json"))]
+    exhibits = [ExhibitDoc.read(p).to_json() for glob in layout.INTAKE_GLOBS
+                for p in sorted((root / layout.EXHIBITS).glob(glob))]
     def order(r: dict):
-        i = r.get("exhibit_id")
-        ok = isinstance(i, str) and _EXHIBIT_ID.fullmatch(i)
-        return (0, int(i[1:]), "") if ok else (1, 0, str(i))
+        n = layout.exhibit_number(r.get("exhibit_id"))
+        return (0, n, "") if n is not None else (1, 0, str(r.get("exhibit_id")))
 
     exhibits.sort(key=order)
     findings = {}
     for ex in exhibits:
         i = ex.get("exhibit_id")
-        if not (isinstance(i, str) and _EXHIBIT_ID.fullmatch(i)):
+        if layout.exhibit_number(i) is None:
             continue     # never used to build a path; verify names it
+        w = root / layout.withdrawal_record(i)
+        if w.is_file():
+            ex["withdrawn"] = WithdrawalDoc.read(w).to_json()
         p = root / layout.finding_file(i)
         if p.is_file():
             findings[ex["exhibit_id"]] = FindingDoc.read(p).to_json()
@@ -208,6 +208,8 @@ def build_data(root: str | Path) -> dict:
     results = []
     for ex in exhibits:
         res = _result(ex, findings.get(ex["exhibit_id"]))
+        if ex.get("withdrawn"):
+            res["withdrawn"] = {k: ex["withdrawn"].get(k) for k in ("time", "by", "reason")}
         if res["examined"]:
             res["finding_sha256"] = sha256_file(root / layout.finding_file(ex["exhibit_id"]))
         results.append(res)
@@ -218,7 +220,7 @@ def build_data(root: str | Path) -> dict:
     except (OSError, ValueError):
         fp = None
     owner = case.get("owner", {})
-    detected = [r for r in results if r.get("detected")]
+    detected = [r for r in results if r.get("detected") and not r.get("withdrawn")]
     data = {
         "type": DOSSIER_TYPE,
         "software": f"claimkit {__version__}",
@@ -229,6 +231,7 @@ def build_data(root: str | Path) -> dict:
         "exhibits": [{k: ex.get(k) for k in ("exhibit_id", "original_name", "file", "sha256",
                                               "size", "media_type", "width", "height",
                                               "source", "found", "taken_in", "note")}
+                     | ({"withdrawn": ex["withdrawn"]} if ex.get("withdrawn") else {})
                      for ex in exhibits],
         "results": results,
         "summary": {"exhibits": len(exhibits),

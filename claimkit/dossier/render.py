@@ -19,6 +19,7 @@ from pathlib import Path
 import jinja2
 
 from claimkit import words
+from claimkit.case import layout
 from claimkit.errors import InputError
 
 __all__ = [
@@ -90,7 +91,8 @@ def _env() -> jinja2.Environment:
     env = jinja2.Environment(loader=jinja2.FileSystemLoader(str(template_dir())),
                              autoescape=False, undefined=jinja2.StrictUndefined,
                              keep_trailing_newline=True, trim_blocks=False)
-    env.filters.update(day=_day, chance=_chance, cropdesc=_cropdesc, alignwords=_alignwords)
+    env.filters.update(day=_day, chance=_chance, cropdesc=_cropdesc, alignwords=_alignwords,
+                       label=layout.exhibit_label)
     return env
 
 
