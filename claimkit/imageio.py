@@ -936,7 +936,7 @@ def to_luma(pixels: np.ndarray) -> np.ndarray:
     same arithmetic, in the same order, as the one-pass
     ``np.einsum("ijk,k->ij", ..., dtype=float32)`` earlier versions used,
     so the luma (and every mark derived from it) is bit-for-bit unchanged;
-    ``tests/test_markspeed.py`` checks this over all 2**24 8-bit colours.
+    ``tests/test_mark_pipeline.py`` checks this over all 2**24 8-bit colours.
 
     References
     ----------
