@@ -122,10 +122,6 @@ class Case:
             return None
         return FindingDoc.read(p).to_json()
 
-    @property
-    def report_dir(self) -> Path:
-        return self.root / layout.REPORT
-
 
 def new_case(folder: str | os.PathLike, title: str, profile=None) -> Case:
     """Open a new case in ``folder`` (created; must be missing or empty).

@@ -152,10 +152,6 @@ def _inline(text: str, *, sup: str) -> str:
 
 # ---------------------------------------------------------------- tables
 
-def _short(h: str | None, n: int = 16) -> str:
-    return "" if not h else (h if len(h) <= n else h[:n] + "...")
-
-
 def tables(data: dict, name: str, arg: str | None) -> tuple[list[str], list[list[str]]]:
     """Header and rows of a named table (plain text cells)."""
     if name == "exhibits":

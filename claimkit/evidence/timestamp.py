@@ -41,7 +41,7 @@ import urllib.request
 from dataclasses import dataclass
 from datetime import datetime
 
-from asn1crypto import algos, cms, core, tsp
+from asn1crypto import cms, core, tsp
 from asn1crypto import x509 as asn1_x509
 from cryptography import x509
 from cryptography.exceptions import InvalidSignature, UnsupportedAlgorithm
@@ -387,7 +387,3 @@ def check_response(tsr: bytes, *, digest: bytes, nonce: int | None,
     except _DAMAGE as exc:
         raise CheckFailed(f"the token is damaged ({type(exc).__name__}: {exc})",
                           path=path) from None
-
-
-def algorithm_name(alg: algos.DigestAlgorithm) -> str:  # pragma: no cover - helper for callers
-    return alg["algorithm"].native
