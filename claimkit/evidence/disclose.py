@@ -48,7 +48,7 @@ from claimkit.evidence.canonical import canonical_json
 from claimkit.evidence.custodylog import utc_now
 from claimkit.evidence.keys import COMMITMENT_SCHEME, commitment_of
 from claimkit.evidence.stamping import inclusion_proof
-from claimkit.evidence.storage import atomic_write, fsync_dir, sha256_hex
+from claimkit.evidence.storage import atomic_write, fsync_dir, outside, sha256_hex
 
 __all__ = ["WITHHELD", "DisclosureCheck", "check_disclosure", "write_disclosure"]
 
@@ -203,11 +203,9 @@ class DisclosureCheck:
 
 def _inside(folder: Path, name: str) -> Path:
     """A file named by the disclosure, refused unless it lies inside the folder (no links out)."""
-    path = (folder / name)
-    base = folder.resolve()
-    if path.is_symlink() or not path.resolve().is_relative_to(base):
+    if not isinstance(name, str) or outside(folder, name) is not None:
         raise ValueError(f"{name} points outside the disclosure folder")
-    return path
+    return folder / name
 
 
 def check_disclosure(folder: Path) -> DisclosureCheck:

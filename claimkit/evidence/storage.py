@@ -12,7 +12,7 @@ import errno
 import hashlib
 import os
 import tempfile
-from pathlib import Path
+from pathlib import Path, PurePosixPath
 
 from claimkit.errors import AlreadyExists, DiskFull, InputError
 
@@ -139,6 +139,40 @@ def _link_new(tmp: str, path: Path) -> None:
         os.replace(tmp, path)   # a file system without hard links
         return
     os.unlink(tmp)
+
+
+def unsafe_name(name: str) -> str | None:
+    """Why a relative name read from a bundle is unsafe, or None when it is fine.
+
+    Refuses what could leave the folder or mean different files on different
+    systems: absolute paths (POSIX or drive letters), ``..``, backslashes, NUL.
+    """
+    if not name or "\\" in name or "\x00" in name:
+        return "has a backslash or an empty or NUL name"
+    p = PurePosixPath(name)
+    if p.is_absolute() or name.startswith("/") or (len(name) > 1 and name[1] == ":"):
+        return "is an absolute path"
+    if any(part == ".." for part in p.parts):
+        return "climbs out of its folder (..)"
+    return None
+
+
+def outside(root: Path, rel: str) -> str | None:
+    """Why ``root / rel`` is not safely inside ``root``, or None when it is.
+
+    The one path-safety rule: ``rel`` must be a plain relative name
+    (:func:`unsafe_name`), must not be a symbolic link, and must resolve
+    inside ``root`` (a linked folder on the way is caught by the resolution).
+    """
+    why = unsafe_name(rel)
+    if why:
+        return why
+    p = Path(root) / rel
+    if p.is_symlink():
+        return "is a symbolic link"
+    if not p.resolve().is_relative_to(Path(root).resolve()):
+        return "leads out of its folder"
+    return None
 
 
 def write_new_file(path: str | os.PathLike, data: bytes, *, mode: int | None = None) -> None:
