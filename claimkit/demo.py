@@ -24,6 +24,8 @@ from pathlib import Path
 
 import numpy as np
 from PIL import Image
+from skimage import data
+from skimage.transform import rescale
 
 from claimkit.case.bundle import export_bundle
 from claimkit.case.examine import examine_case
@@ -133,9 +135,6 @@ def make_test_tsa(folder: Path, name: str) -> Callable[[bytes], bytes]:
 
 
 def _picture(name: str, upscale: float) -> np.ndarray:
-    from skimage import data
-    from skimage.transform import rescale
-
     if name not in ALLOWED_PICTURES:
         raise InputError(f"picture {name!r} is not one the demo may use ({', '.join(ALLOWED_PICTURES)})")
     img = getattr(data, name)()
@@ -148,7 +147,6 @@ def _picture(name: str, upscale: float) -> np.ndarray:
 
 def make_copy(published: Path, out: Path, edits: dict) -> None:
     """What the shop did: resize, turn, crop, recompress (Pillow's own resampling and JPEG)."""
-    from PIL import Image
 
     with Image.open(published) as im:
         im = im.convert("RGB")

@@ -27,6 +27,8 @@ import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
+from PIL import Image, UnidentifiedImageError
+
 from claimkit import __version__
 from claimkit.case import layout
 from claimkit.case.documents import CaseDoc, ExhibitDoc, FindingDoc, WithdrawalDoc
@@ -169,8 +171,6 @@ def open_case(folder: str | os.PathLike) -> Case:
 
 def _sniff(path: Path) -> tuple[str, int | None, int | None, str | None]:
     """Media type, width, height and a reason it is not an image (or None)."""
-    from PIL import Image, UnidentifiedImageError
-
     try:
         with Image.open(path) as im:
             return (Image.MIME.get(im.format, f"image/{(im.format or 'unknown').lower()}"),
