@@ -9,6 +9,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
+from claimkit.errors import Outcome
 from claimkit.evidence import custodylog
 from claimkit.evidence.stamping import StampStatus, stamps_of
 from claimkit.evidence.storage import sha256_hex
@@ -17,12 +18,11 @@ __all__ = ["AuditReport", "WorkStatus", "audit_profile", "check_work"]
 
 
 @dataclass
-class WorkStatus:
-    """The standing of one work record."""
+class WorkStatus(Outcome):
+    """The standing of one work record (its own problems; its stamps have theirs)."""
 
     work_id: str
     signature_ok: bool
-    problems: list[str] = field(default_factory=list)
     stamps: list[StampStatus] = field(default_factory=list)
 
     @property
@@ -53,14 +53,14 @@ def check_work(profile, work) -> WorkStatus:
 
 
 @dataclass
-class AuditReport:
-    """The custody log check plus the registry cross-checks."""
+class AuditReport(Outcome):
+    """The custody log check plus the registry cross-checks (``problems``: the registry's,
+    each naming its item; the log's are in ``log``)."""
 
     log: custodylog.LogReport
     works: int = 0
     tokens: int = 0
     pending_entries: int = 0
-    problems: list[str] = field(default_factory=list)  # registry problems, each naming its item
 
     @property
     def ok(self) -> bool:

@@ -42,7 +42,7 @@ import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from claimkit.errors import CheckFailed, InputError
+from claimkit.errors import CheckFailed, InputError, Outcome
 from claimkit.evidence import merkle, signing, timestamp
 from claimkit.evidence.canonical import canonical_json
 from claimkit.evidence.custodylog import utc_now
@@ -183,7 +183,7 @@ def write_disclosure(profile, work_id: str, out: Path) -> Path:
 
 
 @dataclass
-class DisclosureCheck:
+class DisclosureCheck(Outcome):
     """Result of :func:`check_disclosure`; ``problems`` empty means every check held."""
 
     folder: Path
@@ -194,11 +194,6 @@ class DisclosureCheck:
     payload_tag: int | None = None
     public_key_sha256: str | None = None
     timestamps: list[dict] = field(default_factory=list)
-    problems: list[str] = field(default_factory=list)
-
-    @property
-    def ok(self) -> bool:
-        return not self.problems
 
 
 def _inside(folder: Path, name: str) -> Path:

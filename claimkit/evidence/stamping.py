@@ -14,11 +14,11 @@ from __future__ import annotations
 import hashlib
 import json
 import os
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 from cryptography.hazmat.primitives.serialization import Encoding
 
-from claimkit.errors import CheckFailed, InputError
+from claimkit.errors import CheckFailed, InputError, Outcome
 from claimkit.evidence import merkle, timestamp
 from claimkit.evidence.custodylog import utc_now
 from claimkit.evidence.storage import sha256_hex
@@ -54,7 +54,7 @@ class StampResult:
 
 
 @dataclass
-class StampStatus:
+class StampStatus(Outcome):
     """One token's standing for one work, re-checked from what is stored."""
 
     token_id: str
@@ -63,8 +63,6 @@ class StampStatus:
     root: str
     leaf_index: int
     tree_size: int
-    ok: bool
-    problems: list[str] = field(default_factory=list)
 
     def as_dict(self) -> dict:
         return {"token_id": self.token_id, "gen_time": self.gen_time, "tsa": self.tsa_name,
@@ -215,7 +213,7 @@ def check_stamp(profile, work, token_id: str) -> StampStatus:
     row = profile.registry.stamp_of(work.work_id, token_id)
     token, token_sha, cert_pem, gen_time, tsa_name, root_hex, nonce, idx, size, proof, _ = row
     token = bytes(token)
-    status = StampStatus(token_id, gen_time, tsa_name, root_hex, idx, size, ok=True)
+    status = StampStatus(token_id, gen_time, tsa_name, root_hex, idx, size)
     if sha256_hex(token) != token_sha:
         status.problems.append("token bytes altered since they were attached")
     try:
@@ -235,7 +233,6 @@ def check_stamp(profile, work, token_id: str) -> StampStatus:
     if not included:
         status.problems.append("the record is not in the stamped Merkle tree "
                                "(record or inclusion proof altered)")
-    status.ok = not status.problems
     return status
 
 
