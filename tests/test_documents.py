@@ -89,3 +89,19 @@ def test_missing_and_damaged_files_are_bad_input(tmp_path):
     (tmp_path / "case.json").write_text("{not json")
     with pytest.raises(InputError, match="not JSON"):
         CaseDoc.read(tmp_path / "case.json")
+
+
+def test_withdrawal_round_trips_and_is_never_replaced(tmp_path):
+    from claimkit.case.documents import WithdrawalDoc
+    from claimkit.errors import AlreadyExists
+
+    doc = WithdrawalDoc(exhibit_id="exhibit-2", case_id="C-20261202-ABC123",
+                        exhibit_sha256="ab" * 32, reason="the shop holds a licence after all",
+                        by="Ilse Marrow", time="2026-12-02T10:00:00Z",
+                        time_source="system clock")
+    data = doc.write(tmp_path / "w.json", replace=False)
+    assert json.loads(data)["type"] == "claimkit/withdrawal/v1"
+    assert WithdrawalDoc.read(tmp_path / "w.json") == doc
+    assert WithdrawalDoc.from_json(doc.to_json()).to_json() == doc.to_json()
+    with pytest.raises(AlreadyExists):
+        doc.write(tmp_path / "w.json", replace=False)
