@@ -3,7 +3,10 @@
 A rights desk gets folders of candidate images (saved from shops, social
 media, search results). :func:`scan_folders` examines every image under them
 with the owner's key, in parallel, and says for each which work it is, how
-sure, and what was done to it; a summary closes the run.
+sure, and what was done to it; a summary closes the run. Web archives (WARC
+files, plain or gzip, given or found in the folders) are read as folders
+are: every image response in them is examined, and its line names the
+record's target URL and capture date (:mod:`claimkit.capture.warcintake`).
 
 Why the cost per file does not depend on the size of the registry: the mark
 carries its own work serial in the payload, checked by a keyed payload tag,
@@ -35,6 +38,8 @@ from pathlib import Path
 
 from claimkit import workflow
 from claimkit.batch import IMAGE_SUFFIXES, find_images
+from claimkit.capture.warc import is_warc
+from claimkit.capture.warcintake import take_in, unpack_images
 from claimkit.case.store import add_exhibit, open_case
 from claimkit.errors import ClaimkitError, InputError
 from claimkit.mark import detect
@@ -52,7 +57,8 @@ __all__ = ["CSV_COLUMNS", "ScanSummary", "scan_folders", "scan_task"]
 
 CSV_COLUMNS = ("file", "status", "detected", "work_id", "registered",
                "false_alarm_probability", "message_psnr_db", "rotation_deg", "scale",
-               "flipped", "shift_x_px", "shift_y_px", "width", "height", "sha256", "error")
+               "flipped", "shift_x_px", "shift_y_px", "width", "height", "sha256", "error",
+               "url", "capture_date", "warc_record_id")
 
 
 def scan_task(path: str, seed: bytes, checker, threshold: float,
@@ -101,17 +107,22 @@ class ScanSummary:
 class _CaseAdder:
     """Puts claimed copies into a case through the case layer."""
 
-    def __init__(self, case_dir: Path, profile, notice):
+    def __init__(self, case_dir: Path, profile, notice, origins: dict | None = None):
+        self.origins = origins or {}
         self.profile = profile
         self.notice = notice
         self.case = open_case(case_dir)       # a missing case is bad input: raise before scanning
 
     def __call__(self, path: Path, rep: dict) -> str | None:
         """Take ``path`` in; returns the exhibit id, or None (with a note) when it was not."""
+        note = f"claimed as {rep.get('work_id')} by claimkit scan"
         try:
-            ex = add_exhibit(self.case, path, source=f"file found by claimkit scan: {path}",
-                          note=f"claimed as {rep.get('work_id')} by claimkit scan",
-                          profile=self.profile)
+            origin = self.origins.get(path)
+            if origin is not None:
+                ex = take_in(self.case, path, origin, self.profile, note=note)
+            else:
+                ex = add_exhibit(self.case, path, source=f"file found by claimkit scan: {path}",
+                                 note=note, profile=self.profile)
         except ClaimkitError as exc:
             self.notice(f"claimkit: note: not added to the case: {exc.line()}")
             return None
@@ -132,6 +143,8 @@ def _csv_row(rep: dict) -> dict:
         "flipped": geom.get("flipped"), "shift_x_px": shift[0], "shift_y_px": shift[1],
         "width": rep.get("width"), "height": rep.get("height"), "sha256": rep.get("sha256"),
         "error": rep.get("error"),
+        "url": rep.get("url"), "capture_date": rep.get("capture_date"),
+        "warc_record_id": rep.get("warc_record_id"),
     }
 
 
@@ -206,11 +219,29 @@ def scan_folders(profile, folders: list[Path], *,
     threshold = workflow.check_threshold(detect.DEFAULT_THRESHOLD if threshold is None
                                          else float(threshold))
     passed_over: list[Path] = []
-    files, problems = find_images([Path(f) for f in folders], IMAGE_SUFFIXES,
+    inputs = [Path(f) for f in folders]
+    warcs = [f for f in inputs if is_warc(f) and f.is_file()]
+    files, problems = find_images([f for f in inputs if f not in warcs], IMAGE_SUFFIXES,
                                   passed_over=passed_over)
     for p in problems:
         if not Path(p.path or "").exists():
             raise p                      # a folder that is not there is a usage error
+    # WARC files (given, or found in the folders) are read as folders of images are.
+    warcs += [f for f in passed_over if is_warc(f)]
+    passed_over = [f for f in passed_over if not is_warc(f)]
+    unpacked = tempfile.TemporaryDirectory(prefix="claimkit-warc-") if warcs else None
+    origins = {}
+    small: list[str] = []
+    if unpacked is not None:
+        try:
+            origins = unpack_images(warcs, Path(unpacked.name), small)
+        except BaseException:
+            unpacked.cleanup()
+            raise
+        files += [(f, None, None) for f in origins]
+        if small and on_notice is not None:
+            on_notice(f"claimkit: note: {len(small)} image(s) in the WARC file(s) are smaller "
+                      "than an examination needs (icons, spacers) and were not examined")
     seed = profile.detection_seed
     checker = workflow.owner_payload_check(profile)
 
@@ -221,7 +252,8 @@ def scan_folders(profile, folders: list[Path], *,
         bar.draw(force=True)
 
     bar = Progress(len(files), enabled=progress, label="scanning ")
-    adder = _CaseAdder(Path(case_dir), profile, notice) if case_dir is not None else None
+    adder = (_CaseAdder(Path(case_dir), profile, notice, origins)
+             if case_dir is not None else None)
     csv_out = _CsvReport(Path(report), force=force) if report is not None else None
     s = ScanSummary(passed_over=len(passed_over))
     for p in problems:
@@ -234,6 +266,13 @@ def scan_folders(profile, folders: list[Path], *,
         handed += 1
         path = o.item
         rep = o.value if o.error is None else {"file": str(path), "error": f"{path}: {o.error}"}
+        origin = origins.get(path)
+        if origin is not None:
+            # The line names the record's URL and capture date, not the unpacked copy.
+            rep.update(file=str(origin.warc), url=origin.url, capture_date=origin.date,
+                       warc_record_id=origin.record_id)
+            if "error" in rep:
+                rep["error"] = rep["error"].replace(str(path), origin.label())
         if "error" in rep:
             rep["error"] = remote_path_hint(eng, path, rep["error"])
             rep.update(status="unreadable", detected=None, work_id=None)
@@ -279,6 +318,8 @@ def scan_folders(profile, folders: list[Path], *,
         raise
     finally:
         bar.close()
+        if unpacked is not None:
+            unpacked.cleanup()
     s.seconds = time.monotonic() - start
     s.not_started = len(files) - handed
     if csv_out is not None:

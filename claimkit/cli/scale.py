@@ -105,15 +105,22 @@ def mark_many(profile, inputs: list[Path], out: Path, *, json_lines: bool = Fals
 
 # --------------------------------------------------------------------------- scan
 
+def _where(rep: dict) -> str:
+    """Where a scanned picture was found: its file, or its URL and capture in a WARC."""
+    if rep.get("url"):
+        return f"{rep['url']} (captured {rep.get('capture_date')}, in {rep['file']})"
+    return str(rep["file"])
+
+
 def _scan_line(rep: dict) -> str:
     if "error" in rep:
         return f"unreadable  {rep['error']}"
     if not rep.get("detected"):
-        return f"-           {rep['file']}"
+        return f"-           {_where(rep)}"
     who = rep.get("work_id") or "payload unreadable"
     reg = "" if rep.get("registered") else " (not in this registry)"
     geom = rep.get("geometry_text") or ""
-    return (f"CLAIMED     {rep['file']}: {who}{reg}; false-alarm bound "
+    return (f"CLAIMED     {_where(rep)}: {who}{reg}; false-alarm bound "
             f"{rep.get('false_alarm_text', rep.get('false_alarm_probability'))}; {geom}")
 
 
@@ -184,7 +191,9 @@ def register(sub, common) -> None:
                     "per file, a summary at the end. Exit 0 when every file was read, 1 when "
                     "some could not be read, 2 when none could. Technical evidence, not legal "
                     "advice.")
-    p.add_argument("folders", nargs="+", metavar="DIR", help="folders (recursive) or files")
+    p.add_argument("folders", nargs="+", metavar="DIR",
+                   help="folders (recursive), image files, or WARC files (.warc, .warc.gz): "
+                        "every image response in a WARC is examined")
     p.add_argument("--json", action="store_true",
                    help="one JSON object per file on stdout; the summary as JSON on stderr")
     p.add_argument("--report", metavar="FILE.csv", help="also write a CSV, one row per file")
