@@ -48,7 +48,7 @@ from claimkit import workflow
 from claimkit.errors import ClaimkitError, DiskFull, InputError
 from claimkit.evidence.keys import work_id_for
 from claimkit.evidence.rights import load_rights
-from claimkit.evidence.storage import sha256_file
+from claimkit.evidence.storage import sha256_file, unfinished_writes
 from claimkit.filemeta import INSTALL_HINT, exiftool_available
 from claimkit.mark import payload
 from claimkit.runner import (
@@ -509,7 +509,7 @@ def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
     for staged in batch.in_flight:
         staged.unlink(missing_ok=True)
         # A worker stopped mid-write may leave the writer's temporary file too.
-        for tmp in staged.parent.glob(f".{staged.name}.*.partial"):
+        for tmp in unfinished_writes(staged):
             tmp.unlink(missing_ok=True)
     batch.summary.total = len(pairs) + len(problems)
     return batch.summary

@@ -65,6 +65,15 @@ def fsync_dir(path: str | os.PathLike) -> None:
         os.close(fd)
 
 
+_PART = ".part"
+
+
+def unfinished_writes(path: str | os.PathLike) -> list[Path]:
+    """Temporary files :func:`atomic_write` left beside ``path`` when a process was killed."""
+    path = Path(path)
+    return sorted(path.parent.glob(f".{path.name}.*{_PART}"))
+
+
 def atomic_write(path: str | os.PathLike, data: bytes, *, mode: int | None = None,
                  replace: bool = True) -> None:
     """Write ``data`` to ``path`` all at once: temp file in the same folder, fsync, rename.
@@ -96,7 +105,7 @@ def atomic_write(path: str | os.PathLike, data: bytes, *, mode: int | None = Non
         os.umask(umask)
         mode = 0o666 & ~umask
     try:
-        fd, tmp = tempfile.mkstemp(dir=folder, prefix=f".{path.name}.", suffix=".part")
+        fd, tmp = tempfile.mkstemp(dir=folder, prefix=f".{path.name}.", suffix=_PART)
     except FileNotFoundError:
         raise InputError("folder does not exist", path=folder) from None
     except OSError as exc:
