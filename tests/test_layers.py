@@ -194,3 +194,11 @@ def test_the_check_sees_a_wrong_way_import(tmp_path):
     got = _imports(p, "claimkit.mark.probe")
     assert got == [("claimkit.cli", 2, True)]
     assert _place("claimkit.cli", _layers())[0] < _place("claimkit.mark.detect", _layers())[0]
+
+
+def test_every_package_is_installed():
+    # setuptools installs only the packages pyproject.toml lists: a new one must be added there.
+    listed = set(tomllib.loads((ROOT / "pyproject.toml").read_text())["tool"]["setuptools"]
+                 ["packages"])
+    found = {".".join(p.parent.relative_to(ROOT).parts) for p in PACKAGE.rglob("__init__.py")}
+    assert found <= listed, f"packages missing from pyproject.toml: {sorted(found - listed)}"
