@@ -23,6 +23,14 @@ from claimkit.workflow import examine_picture, expected_payload_check, finding_w
 __all__ = ["rerun_examination", "rerun_robustness"]
 
 
+def _name_versions(diffs: list[str], made_with: str | None) -> None:
+    """Put first, when numbers differ, which claimkit made them and which re-ran them."""
+    this = f"claimkit {__version__}"
+    if diffs and made_with and made_with != this:
+        diffs.insert(0, f"examined with {made_with} and re-run with {this} (install {made_with} "
+                        "to reproduce its numbers to the digit)")
+
+
 def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
                       rep: VerifyReport) -> None:
     """Re-run one exhibit's examination and compare every stored number and array."""
@@ -74,10 +82,7 @@ def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
         if "difference" in stored_arrays and not np.array_equal(stored_arrays["difference"],
                                                                again.difference):
             diffs.append("arrays.difference: the difference map differs from the re-run")
-    made_with, this = params.get("software"), f"claimkit {__version__}"
-    if diffs and made_with and made_with != this:
-        diffs.insert(0, f"examined with {made_with} and re-run with {this} (install {made_with} "
-                        "to reproduce its numbers to the digit)")
+    _name_versions(diffs, params.get("software"))
     rep.add(f"{i} re-run", not diffs, "; ".join(diffs[:8]) if diffs else
             f"{'detected' if f.detected else 'not detected'}, log10 P_fa "
             f"{round(f.log10_false_alarm, 4)}, {len(f.decoy_scores)} decoys and every stored "
@@ -104,5 +109,6 @@ def rerun_robustness(root: Path, findings: dict, keys: dict, rep: VerifyReport) 
         strip = [{k: v for k, v in r.items() if k != "seconds"} for r in stored]
         fresh = [{k: v for k, v in r.items() if k != "seconds"} for r in again]
         diffs = differences(strip, fresh, "rows")
+        _name_versions(diffs, (f.get("examined") or {}).get("software"))
         rep.add(f"robustness {wid}", not diffs, "; ".join(diffs[:6]) if diffs else
                 f"{len(fresh)} edits of the registered file re-run, every row reproduced")
