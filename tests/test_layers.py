@@ -202,3 +202,15 @@ def test_every_package_is_installed():
                  ["packages"])
     found = {".".join(p.parent.relative_to(ROOT).parts) for p in PACKAGE.rglob("__init__.py")}
     assert found <= listed, f"packages missing from pyproject.toml: {sorted(found - listed)}"
+
+
+def test_the_registry_owns_every_sql_statement():
+    bad = []
+    for module, path in MODULES.items():
+        if module == "claimkit.evidence.registry":
+            continue
+        for node in ast.walk(ast.parse(path.read_text())):
+            if isinstance(node, ast.Attribute) and node.attr in ("execute", "executemany",
+                                                                 "executescript"):
+                bad.append(f"{module}:{node.lineno}")
+    assert not bad, f"SQL outside claimkit/evidence/registry.py: {bad}"

@@ -515,9 +515,10 @@ class Profile:
         """Verify the custody log and cross-check every record and token against it."""
         return audit_profile(self)
 
-    def disclose(self, work_id: str, out: Path) -> Path:
-        """Write the key disclosure for one work (see :mod:`claimkit.evidence.disclose`)."""
-        return write_disclosure(self, work_id, out)
+    def disclose(self, work_id: str, out: Path, *, keys: bool = True) -> Path:
+        """Write the disclosure for one work, with key material or without
+        (see :mod:`claimkit.evidence.disclose`)."""
+        return write_disclosure(self, work_id, out, keys=keys)
 
     @property
     def db(self):

@@ -277,6 +277,13 @@ class Registry:
             "WHERE root = ? ORDER BY (state = 'pending') DESC, created DESC",
             (root_hex,)).fetchall()
 
+    def requests_holding(self, work_ids: list[str]) -> set[str]:
+        """Stamp requests whose Merkle trees hold one of these works."""
+        wanted = set(work_ids)
+        return {request_id for request_id, listed in
+                self.db.execute("SELECT request_id, work_ids FROM stamp_requests")
+                if set(json.loads(listed)) & wanted}
+
     def latest_pending_tsq(self) -> bytes | None:
         row = self.db.execute("SELECT tsq FROM stamp_requests WHERE state = 'pending' "
                               "ORDER BY created DESC LIMIT 1").fetchone()
