@@ -187,6 +187,12 @@ Checking this disclosure with OpenSSL (no claimkit needed)
 """
 
 
+#: What a claimkit 0.2 disclosure (``claimkit/disclosure/v1``, always with the detection seed)
+#: finds, in the words of :attr:`DisclosureCheck.scope`.
+V1_SCOPE = ("a claimkit 0.2 disclosure: its detection seed finds every format-1/2 work of the "
+            "owner")
+
+
 def write_disclosure(profile, work_id: str, out: Path, *, keys: bool = True) -> Path:
     """Write the disclosure for ``work_id`` to the new folder ``out`` (all or nothing).
 
@@ -343,6 +349,12 @@ def check_disclosure(folder: Path, *, tsa_roots: list | None = None) -> Disclosu
         res.serial = doc["payload"]["serial"]
         commitment = doc["commitment"]["value"]
         keys = doc.get("keys")
+        if keys is None and doc.get("type") == "claimkit/disclosure/v1" and "detection" in doc:
+            # claimkit 0.2 put the owner's detection seed in every disclosure, in the bundle
+            # (CHANGELOG.md); it is read as the key material it was.
+            keys = {"seeds": {"detection": doc["detection"]["seed_hex"]},
+                    "format": (record.get("mark_params") or {}).get("format", "claimkit-mark/1"),
+                    "scope": V1_SCOPE}
         if keys is not None:
             res.seeds = {k: bytes.fromhex(v) for k, v in keys["seeds"].items()}
             res.mark_format, res.scope = keys["format"], keys["scope"]
