@@ -32,7 +32,7 @@ from pathlib import Path
 import numpy as np
 from PIL import Image
 
-from claimkit import __version__
+from claimkit import __version__, software
 from claimkit.case.layout import DATA, HTML, PDF, SOFTWARE
 from claimkit.dossier.build import draw_figures
 from claimkit.dossier.data import DOSSIER_TYPE, build_data
@@ -40,8 +40,6 @@ from claimkit.dossier.pdfsign import check_pdf_signature
 from claimkit.dossier.render import render_html, render_pdf
 from claimkit.errors import CheckFailed, InputError
 from claimkit.evidence.canonical import canonical_json, canonicalize
-from claimkit.software import differences as version_differences
-from claimkit.software import versions
 from claimkit.verify.compare import differences
 from claimkit.verify.report import VerifyReport
 
@@ -56,14 +54,14 @@ _DRAWING = ("python", "numpy", "scipy", "pillow", "libjpeg", "scikit-image", "re
 
 def check_software(root: Path, rep: VerifyReport) -> bool:
     """Report the versions on both sides; True when a drawing component differs."""
-    here = versions()
+    here = software.versions()
     try:
         made = json.loads((root / SOFTWARE).read_bytes())
     except (OSError, ValueError):
         rep.add("software", True, f"the bundle does not name its software (made before "
                 f"claimkit 0.3); re-run with claimkit {here['claimkit']}")
         return False
-    diffs = version_differences(made, here)
+    diffs = software.differences(made, here)
     drawing = [d for d in diffs if d.split(":")[0] in _DRAWING]
     mine = ", ".join(f"{k} {here[k]}" for k in sorted(here) if k != "type")
     rep.add("software", True, ("same versions as the bundle's: " + mine) if not diffs else
