@@ -46,8 +46,8 @@ import os
 import shutil
 import signal
 import subprocess
-import tempfile
 import sys
+import tempfile
 import threading
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
