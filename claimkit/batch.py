@@ -411,7 +411,7 @@ class _MarkBatch:
             if result.get("kind") == "disk-full":
                 self.guard.request("the disk is full")
         self.handed_back += 1
-        row = {"original": str(job.src), "output": str(job.out), "sha256_original": job.sha256,
+        row = {"file": str(job.src), "output": str(job.out), "sha256_original": job.sha256,
                **result}
         if self.on_row is not None:
             self.progress.clear()

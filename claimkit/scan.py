@@ -293,7 +293,7 @@ def scan_folders(profile, folders: list[Path], *,
                         rep["exhibit_id"] = ex
                         s.added_to_case += 1
         if "status" not in rep:
-            rep["status"] = "claimed" if rep.get("detected") else "not found"
+            rep["status"] = "claimed" if rep.get("detected") else "not-found"
         if csv_out is not None:
             csv_out.add(rep)
         if on_row is not None:

@@ -39,6 +39,13 @@ def add_scale_options(p) -> None:
                         "dask; without it a cluster is started on this machine)")
 
 
+def _json_row(row: dict) -> None:
+    """One JSON line; an error is an object in every command's JSON (examine's too)."""
+    if isinstance(row.get("error"), str):
+        row = {**row, "error": {"message": row["error"], "exit_code": 2}}
+    print_json(row)
+
+
 def _notice(msg: str) -> None:
     print(msg, file=sys.stderr, flush=True)
 
@@ -48,10 +55,10 @@ def _notice(msg: str) -> None:
 def _mark_line(row: dict) -> str:
     status = row["status"]
     if status == "marked":
-        return (f"marked    {row['original']} -> {row['output']}  {row['work_id']}  "
+        return (f"marked    {row['file']} -> {row['output']}  {row['work_id']}  "
                 f"PSNR {row.get('psnr_db', float('nan')):.1f} dB  SSIM {row.get('ssim', 0):.4f}")
     if status == "skipped":
-        return f"done      {row['original']}: {row['reason']} ({row['work_id']})"
+        return f"done      {row['file']}: {row['reason']} ({row['work_id']})"
     if status == "restored":
         return f"restored  {row['output']}: {row['reason']} ({row['work_id']})"
     return f"failed    {row['error']}"
@@ -64,7 +71,7 @@ def mark_many(profile, inputs: list[Path], out: Path, *, json_lines: bool = Fals
     from claimkit.batch import mark_many as run
 
     s = run(profile, inputs, out, progress=progress,
-            on_row=print_json if json_lines else (lambda row: print(_mark_line(row),
+            on_row=_json_row if json_lines else (lambda row: print(_mark_line(row),
                                                                     flush=True)),
             **kw)
     err = sys.stderr
@@ -131,7 +138,7 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False, **kw
     from claimkit.scan import scan_folders as run
 
     s = run(profile, folders, on_notice=_notice,
-            on_row=print_json if json_lines else (lambda rep: print(_scan_line(rep),
+            on_row=_json_row if json_lines else (lambda rep: print(_scan_line(rep),
                                                                     flush=True)),
             **kw)
     err = sys.stderr
@@ -179,7 +186,7 @@ def cmd_scan(args) -> int:
             report=Path(args.report) if args.report else None,
             case_dir=Path(args.case) if args.case else None,
             engine=args.engine, scheduler=args.scheduler, workers=args.workers,
-            progress=None if not args.no_progress else False,
+            progress=False if (args.no_progress or getattr(args, "quiet", False)) else None,
             threshold=args.threshold, max_pixels=args.max_pixels, force=args.force)
 
 
