@@ -45,6 +45,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from claimkit.errors import CheckFailed, InputError, Outcome
+from claimkit.evidence import keys as keys_module
 from claimkit.evidence import merkle, signing, timestamp
 from claimkit.evidence.canonical import canonical_json
 from claimkit.evidence.custodylog import utc_now
@@ -148,11 +149,9 @@ def _seed_hashes(opening: dict, keys: dict, seeds: dict[str, bytes]) -> list[str
 
 def _family_digest(opening: dict, keys: dict, seeds: dict[str, bytes]) -> list[str]:
     """Format 3: the opening commits to SHA-256(sync || family as 2 bytes || family seed)."""
-    from claimkit.evidence.profile import format3_keys_digest
-
     try:
         family = int(keys["derivation"]["family_index"])
-        digest = format3_keys_digest({"sync": seeds["sync"], "family": family,
+        digest = keys_module.format3_keys_digest({"sync": seeds["sync"], "family": family,
                                       "families": {family: seeds["family"]}})
     except (KeyError, ValueError, TypeError):
         return ["the format-3 key material is incomplete"]
