@@ -26,7 +26,7 @@ from skimage import data
 from claimkit.case.bundle import export_bundle
 from claimkit.case.examine import examine_case
 from claimkit.case.store import add_exhibit, new_case
-from claimkit.case.verify import verify_bundle
+from claimkit.verify import verify_bundle
 from claimkit.demo import make_copy
 from claimkit.dossier.build import build_report
 from claimkit.evidence.profile import Profile

@@ -179,7 +179,7 @@ def _disk_full(exc: BaseException | None) -> bool:
 
 
 def mark_task(src: str, staged: str, seed: bytes, bits: list[int], strength: float,
-              jpeg_quality: int, max_pixels: int | None) -> dict:
+              jpeg_quality: int, max_pixels: int | None, metadata=None) -> dict:
     """Mark one photo and write it to ``staged`` (runs in a worker; no profile, no registry).
 
     Returns a dictionary: on success the facts the parent registers
@@ -197,7 +197,7 @@ def mark_task(src: str, staged: str, seed: bytes, bits: list[int], strength: flo
         pic, sha_orig = workflow.load_original(src_p, max_pixels=max_pixels)
         facts = workflow.mark_picture(pic, staged_p, seed, np.asarray(bits, dtype=np.uint8),
                                       strength=strength, jpeg_quality=jpeg_quality,
-                                      force=True, max_pixels=max_pixels)
+                                      force=True, max_pixels=max_pixels, metadata=metadata)
     except ClaimkitError as exc:
         staged_p.unlink(missing_ok=True)
         kind = "disk-full" if _disk_full(exc) else "input"
@@ -246,9 +246,11 @@ class BatchSummary:
 class _MarkBatch:
     def __init__(self, profile, *, force: bool, jpeg_quality: int, strength: float,
                  max_pixels: int | None, json_lines: bool, progress: Progress,
-                 guard: StopGuard):
+                 guard: StopGuard, rights=None):
         from claimkit import workflow
+        from claimkit.evidence.rights import load_rights
 
+        self.rights = rights if rights is not None else load_rights(profile.home, profile.owner)
         self.profile = profile
         self.force = force
         self.jpeg_quality = jpeg_quality
@@ -294,6 +296,7 @@ class _MarkBatch:
         staged = staged_path(out)
         if work is not None:
             rec = work.record
+            marked_name = rec.get("marked", {}).get("name")
             if rec.get("marked", {}).get("sha256") == job.sha256:
                 job.early = {"status": "skipped", "work_id": work.work_id,
                              "reason": "is itself a marked copy"}
@@ -309,6 +312,13 @@ class _MarkBatch:
                     _place(staged, out, force=self.force)
                 job.early = {"status": "restored", "work_id": work.work_id,
                              "reason": "registered copy moved into place", "sha256_marked": want}
+                return None
+            if marked_name and marked_name != out.name:
+                # Marked earlier to another name or format (say a single-file mark to
+                # .jpg): that copy is the registered one; another would be a new work.
+                job.early = {"status": "skipped", "work_id": work.work_id,
+                             "reason": f"already marked and registered; its marked copy is "
+                                       f"{marked_name}", "sha256_marked": want}
                 return None
             if out.exists() and not self.force:
                 raise InputError(f"already exists and is not the registered marked copy of "
@@ -330,8 +340,14 @@ class _MarkBatch:
         bits = payload.pack(self.profile.owner_tag, job.serial,
                             self.profile.payload_tag(job.serial))
         self.in_flight.add(staged)
+        from claimkit.workflow import FileMetadata, registry_name
+        from claimkit.evidence.profile import work_id_for
+
+        metadata = FileMetadata(rights=self.rights,
+                                work_id=work_id_for(self.profile.owner_tag, job.serial),
+                                registry=registry_name(self.profile))
         return (str(src), str(staged), self.seed, [int(b) for b in bits], strength,
-                self.jpeg_quality, self.max_pixels)
+                self.jpeg_quality, self.max_pixels, metadata)
 
     # ---------------------------------------------------------------- results
     def handle(self, outcome: Outcome) -> None:
@@ -388,7 +404,10 @@ class _MarkBatch:
                     "kind": "disk-full" if _disk_full(exc) else "input"}
         return {"status": "marked", "work_id": record.work_id, "serial": job.serial,
                 "sha256_marked": value["sha256_marked"], "width": value["width"],
-                "height": value["height"], "bit_depth": value["bit_depth"], **value["quality"]}
+                "height": value["height"], "bit_depth": value["bit_depth"], **value["quality"],
+                "metadata_dropped": value.get("metadata_dropped", []),
+                "rights_written": value.get("rights_written", []),
+                "rights_kept": value.get("rights_kept", []), "notes": value.get("notes", [])}
 
     def _report(self, job: _Job, result: dict) -> None:
         s = self.summary
@@ -461,7 +480,7 @@ def _human_line(row: dict) -> str:
 def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
               jpeg_quality: int = 95, strength: float = 1.0, workers: int | None = None,
               engine: str = "local", scheduler: str | None = None, json_lines: bool = False,
-              progress: bool | None = None, max_pixels: int | None = None) -> int:
+              progress: bool | None = None, max_pixels: int | None = None, rights=None) -> int:
     """Mark every photo in ``inputs`` (files and folders) into the folder ``out``.
 
     Parameters
@@ -504,6 +523,11 @@ def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
     if out.exists() and not out.is_dir():
         raise InputError("is a file; with several inputs or a folder, --out must be a folder",
                          path=out)
+    from claimkit.filemeta import INSTALL_HINT, exiftool_available
+
+    if not exiftool_available():
+        raise InputError("exiftool is needed to keep the photos' metadata and write the rights "
+                         "fields, and was not found", hint=INSTALL_HINT)
     files, problems = find_images([Path(p) for p in inputs], MARK_SUFFIXES, exclude=out)
     pairs, clashes = plan_outputs(files, out)
     problems += clashes
@@ -516,7 +540,7 @@ def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
     with StopGuard() as guard:
         batch = _MarkBatch(profile, force=force, jpeg_quality=jpeg_quality, strength=strength,
                            max_pixels=max_pixels, json_lines=json_lines, progress=bar,
-                           guard=guard)
+                           guard=guard, rights=rights)
         for p in problems:
             batch.summary.failures.append(p.line())
             batch.summary.failure_kinds.append("input")

@@ -179,9 +179,9 @@ def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None =
     from claimkit.case.bundle import export_bundle
     from claimkit.case.examine import examine_case
     from claimkit.case.store import add_exhibit, new_case
-    from claimkit.case.verify import verify_bundle
     from claimkit.dossier.build import build_report
     from claimkit.evidence.profile import Profile
+    from claimkit.verify import verify_bundle
     from claimkit.workflow import mark_file
 
     say = echo or (lambda s: None)

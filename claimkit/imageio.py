@@ -9,18 +9,23 @@ only for 16-bit colour TIFF, which Pillow cannot hold in memory.
 What is supported
 -----------------
 * Read: anything Pillow opens. 8-bit grey and colour; 16-bit grey PNG/TIFF;
-  16-bit colour TIFF at full precision (through ``tifffile``). 16-bit colour
-  PNG is read at 8 bits per channel (Pillow's limit) and a note says so.
-  CMYK, YCbCr, palette and 1-bit images are converted to RGB or grey; an
-  alpha channel is kept apart; of an animated or multi-page file the first
-  frame is used and a note says so.
+  16-bit colour TIFF at full precision (through ``tifffile``) and 16-bit
+  colour PNG at full precision (through ``imagecodecs``, the codec library
+  of tifffile's author, because Pillow holds 16-bit colour only at 8 bits).
+  CMYK is converted to RGB through the embedded ICC profile with Pillow's
+  LittleCMS binding (``ImageCms``, perceptual intent, to sRGB, whose profile
+  the output then carries); CMYK without a profile is converted by Pillow's
+  plain formula and a note says so. YCbCr, palette and 1-bit images are
+  converted to RGB or grey; an alpha channel is kept apart; of an animated
+  or multi-page file the first frame is used and a note says so.
 * Write, by the extension of the output path: JPEG, PNG, TIFF, WebP. 16-bit
-  pixels go to PNG (grey only) and TIFF at 16 bits; JPEG and WebP cannot hold
-  16 bits, so they get the pixels rounded to 8 bits. 16-bit colour PNG is
-  refused (Pillow cannot write it); use ``.tif``.
-* EXIF, ICC profile and XMP are carried over where the output format holds
-  them. The EXIF Orientation tag is applied to the pixels on reading and set
-  to 1 in the carried EXIF, so a reader never rotates twice.
+  pixels go to PNG and TIFF at 16 bits; JPEG and WebP cannot hold 16 bits,
+  so they get the pixels rounded to 8 bits.
+* EXIF, ICC profile, XMP and the resolution are carried over where the
+  output format holds them; :mod:`claimkit.filemeta` then copies the rest
+  with exiftool (``write_picture(finish=...)``). The EXIF Orientation tag is
+  applied to the pixels on reading and set to 1 in the carried EXIF, so a
+  reader never rotates twice.
 * Every picture read carries the SHA-256 of the very bytes decoded, so a
   file is hashed without being read a second time.
 """
@@ -30,11 +35,13 @@ from __future__ import annotations
 import hashlib
 import io
 import os
+import tempfile
 import threading
 import warnings
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TypeVar
 
 import numpy as np
 from PIL import Image, UnidentifiedImageError
@@ -93,7 +100,8 @@ _DESCRIPTIVE_IFD0 = {
 # ICC: ICC.1 annex B).
 _TIFF_XMP = 700
 _TIFF_ICC = 34675
-_TIFF_ASCII_TAGS = (0x010E, _MAKE, _MODEL, 0x0131, 0x0132, 0x013B, 0x8298)
+# (Software, 0x0131, is tifffile's own tag; exiftool copies the original's.)
+_TIFF_ASCII_TAGS = (0x010E, _MAKE, _MODEL, 0x0132, 0x013B, 0x8298)
 
 _FORMAT_BY_SUFFIX = {
     ".jpg": "JPEG",
@@ -111,6 +119,8 @@ _MAGIC = (b"\xff\xd8\xff", b"\x89PNG\r\n\x1a\n", b"II*\x00", b"MM\x00*", b"GIF8"
 # apply our own (configurable) limit instead, so the setting is lifted for
 # the duration of the open, under a lock so that threads do not race on it.
 _PIL_LIMIT_LOCK = threading.Lock()
+
+T = TypeVar("T")
 
 
 @dataclass
@@ -148,6 +158,9 @@ class Picture:
         ``pixels`` and ``alpha`` hold, when only a part was asked for
         (``read_picture(region=...)``); None when they hold the whole picture.
         ``height`` and ``width`` are always the whole picture's.
+    dpi : tuple of float or None
+        Resolution in pixels per inch as Pillow reads it (JFIF, PNG pHYs,
+        TIFF or EXIF), None where the file states none.
     """
 
     path: Path
@@ -162,6 +175,7 @@ class Picture:
     notes: list[str] = field(default_factory=list)
     sha256: str = ""
     region: tuple[int, int, int, int] | None = None
+    dpi: tuple[float, float] | None = None
     full_size: tuple[int, int] | None = field(default=None, repr=False)   # (height, width) with a region
 
     @property
@@ -261,8 +275,13 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
         fmt = im.format or "unknown"
         rawmode = _rawmode(im)  # the tile list is gone once the pixels are loaded
         # Pillow holds 16-bit colour only at 8 bits; tifffile reads it whole.
-        full = _read_tiff16(data) if fmt == "TIFF" and _is_16bit_multichannel_tiff(im) else None
-        icc_ok = True
+        full = None
+        if fmt == "TIFF" and _is_16bit_multichannel_tiff(im):
+            full = _read_tiff16(data)
+        elif fmt == "PNG" and im.mode in ("RGB", "RGBA") and ";16" in rawmode:
+            full = _read_png16(data)
+        icc_ok: bool | str = True
+        converted_icc = None
         if full is not None:
             (pixels, alpha), bit_depth = full, 16
         else:
@@ -280,6 +299,8 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
                     pixels, alpha, bit_depth, icc_ok = _pixels_from_pillow(
                         part, rawmode, notes, path
                     )
+                    if icc_ok == "converted":
+                        icc_ok, converted_icc = True, _srgb_profile()
             except InputError:
                 raise
             except (OSError, SyntaxError, ValueError, EOFError) as exc:
@@ -291,6 +312,9 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
         orientation = int(exif_obj.get(_ORIENTATION, 1) or 1)
         exif_bytes, capture = _exif_for_copy(exif_obj, source_is_tiff=(fmt == "TIFF"))
         icc = im.info.get("icc_profile") if icc_ok else None
+        if full is None and converted_icc is not None:
+            icc = converted_icc
+        dpi = _dpi_of(im)
         if not icc_ok and im.info.get("icc_profile"):
             notes.append("the embedded ICC profile was for another colour space and was dropped")
         xmp = im.info.get("xmp")
@@ -325,6 +349,7 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
         notes=notes,
         sha256=digest,
         region=None if region is None else tuple(int(v) for v in box),
+        dpi=dpi,
         full_size=full_size,
     )
 
@@ -371,8 +396,12 @@ def _read_bytes(path: Path) -> bytes:
 
 def _pixels_from_pillow(
     im: Image.Image, rawmode: str, notes: list[str], path: Path
-) -> tuple[np.ndarray, np.ndarray | None, int, bool]:
-    """Pixels, alpha, bit depth, and whether the embedded ICC still applies."""
+) -> tuple[np.ndarray, np.ndarray | None, int, bool | str]:
+    """Pixels, alpha, bit depth, and whether the embedded ICC still applies.
+
+    ``"converted"`` in place of the last: the pixels were converted to sRGB
+    through the embedded profile, whose place an sRGB profile takes.
+    """
     mode = im.mode
     if rawmode and ";16" in rawmode and not mode.startswith("I;16"):
         notes.append(f"{rawmode} data read at 8 bits per channel (Pillow's limit)")
@@ -404,11 +433,60 @@ def _pixels_from_pillow(
             return arr[..., :3], arr[..., 3], 8, True
         return arr, None, 8, True
     if mode == "CMYK":
-        notes.append("CMYK converted to RGB without colour management")
+        icc = im.info.get("icc_profile")
+        if icc:
+            from PIL import ImageCms
+
+            try:
+                src = ImageCms.ImageCmsProfile(io.BytesIO(icc))
+                rgb = ImageCms.profileToProfile(
+                    im, src, ImageCms.createProfile("sRGB"),
+                    renderingIntent=ImageCms.Intent.PERCEPTUAL, outputMode="RGB")
+            except (ImageCms.PyCMSError, OSError, ValueError) as exc:
+                raise InputError(f"CMYK picture whose embedded ICC profile cannot be used ({exc}); "
+                                 "convert it to RGB first", path=path) from None
+            notes.append("CMYK converted to sRGB through the embedded ICC profile "
+                         "(LittleCMS, perceptual intent); the output carries an sRGB profile")
+            return np.asarray(rgb), None, 8, "converted"
+        notes.append("CMYK without an embedded ICC profile: converted to RGB by Pillow's "
+                     "plain formula, without colour management")
         return np.asarray(im.convert("RGB")), None, 8, False
     if mode == "YCbCr":
         return np.asarray(im.convert("RGB")), None, 8, True
     raise InputError(f"pixel mode {mode} is not supported", path=path)
+
+
+def _srgb_profile() -> bytes:
+    """The sRGB profile LittleCMS builds (the target of a CMYK conversion)."""
+    from PIL import ImageCms
+
+    return ImageCms.ImageCmsProfile(ImageCms.createProfile("sRGB")).tobytes()
+
+
+def _dpi_of(im: Image.Image) -> tuple[float, float] | None:
+    dpi = im.info.get("dpi")
+    try:
+        x, y = (float(v) for v in dpi)
+    except (TypeError, ValueError):
+        return None
+    return (x, y) if x > 1 and y > 1 else None
+
+
+def _read_png16(data: bytes) -> tuple[np.ndarray, np.ndarray | None] | None:
+    """Full-precision 16-bit colour PNG through imagecodecs; None if it cannot."""
+    try:
+        import imagecodecs
+    except ImportError:  # pragma: no cover - a dependency; Pillow's 8 bits then
+        return None
+    try:
+        arr = imagecodecs.png_decode(data)
+    except Exception:  # noqa: BLE001 - any codec gap falls back to Pillow's 8 bits
+        return None
+    if arr.dtype != np.uint16 or arr.ndim != 3 or arr.shape[-1] not in (3, 4):
+        return None
+    if arr.shape[-1] == 4:
+        return arr[..., :3], arr[..., 3]
+    return arr, None
 
 
 def _rgb_array(im: Image.Image) -> np.ndarray:
@@ -558,7 +636,8 @@ def write_picture(
     like: Picture,
     quality: int = 95,
     force: bool = False,
-) -> None:
+    finish: Callable[[Path, Staged], T] | None = None,
+) -> T | None:
     """Encode ``pixels`` to ``path`` atomically, with ``like``'s metadata.
 
     Parameters
@@ -577,6 +656,11 @@ def write_picture(
     force : bool, default False
         Replace an existing file. The original (``like.path``) is never
         replaced, even with ``force``.
+    finish : callable, optional
+        Called as ``finish(staged_path, staged)`` on the encoded file in a
+        private temporary folder before it is put in place (exiftool's
+        metadata copy, :func:`claimkit.filemeta.carry_metadata`); the file as
+        it leaves ``finish`` is what is written. Its result is returned.
 
     Raises
     ------
@@ -592,34 +676,76 @@ def write_picture(
     either no file or the complete one, never a partial file.
     """
     path = Path(path)
-    fmt = _FORMAT_BY_SUFFIX.get(path.suffix.lower())
-    if fmt is None:
-        known = ", ".join(sorted(_FORMAT_BY_SUFFIX))
-        raise InputError(
-            f"unknown output extension {path.suffix or '(none)'!r}; use one of {known}",
-            path=path,
-        )
+    fmt = check_output_path(path, like=like, force=force)
     pixels = np.asarray(pixels)
     if pixels.dtype not in (np.uint8, np.uint16) or pixels.ndim not in (2, 3):
         raise ValueError(f"pixels must be uint8/uint16 (H,W) or (H,W,3), got {pixels.dtype} "
                          f"{pixels.shape}")
     if pixels.ndim == 3 and pixels.shape[2] != 3:
         raise ValueError(f"colour pixels must have 3 channels, got {pixels.shape[2]}")
-    if _same_file(path, like.path):
+    alpha = like.alpha
+    if alpha is not None and alpha.shape != pixels.shape[:2]:
+        alpha = None  # pixels were resized or cropped; the old alpha no longer fits
+    staged = Staged(format=fmt)
+    try:
+        payload = _encode(path, fmt, pixels, alpha, like, quality, staged)
+    except OSError as exc:  # an encoder failure (e.g. a WebP side over 16383 px)
+        raise InputError(f"cannot encode as {fmt}: {exc}", path=path) from None
+    result = None
+    if finish is not None:
+        with tempfile.TemporaryDirectory(prefix="claimkit-stage-") as tmp:
+            file = Path(tmp) / f"staged{path.suffix.lower()}"
+            file.write_bytes(payload)
+            result = finish(file, staged)
+            payload = file.read_bytes()
+    _atomic_write(path, payload, force=force)
+    return result
+
+
+@dataclass
+class Staged:
+    """What the encoder put into a staged file, for the metadata step that follows.
+
+    ``icc_embedded``: the encoder embedded the ICC profile; ``icc_fits``: the
+    source's profile describes the output's colour space (so a copy of it is
+    right); ``reasons``: why a block of the source cannot be in this output.
+    """
+
+    format: str
+    icc_embedded: bool = False
+    icc_fits: bool = False
+    reasons: dict = field(default_factory=dict)
+
+
+def output_format(path: Path) -> str:
+    """Pillow's format name for an output path's extension; refuses an unknown one."""
+    fmt = _FORMAT_BY_SUFFIX.get(Path(path).suffix.lower())
+    if fmt is None:
+        known = ", ".join(sorted(_FORMAT_BY_SUFFIX))
+        raise InputError(
+            f"unknown output extension {Path(path).suffix or '(none)'!r}; use one of {known}",
+            path=path,
+        )
+    return fmt
+
+
+def check_output_path(path: Path, *, like: Picture | None = None, force: bool = False) -> str:
+    """The output format of ``path``; refuses what cannot be written there (exit 2).
+
+    Checked before any pixel work, so that a bad output costs nothing (no
+    serial, no marking): a known extension, not the original, no existing
+    file without ``force``, a folder that exists.
+    """
+    fmt = output_format(path)
+    if like is not None and _same_file(path, like.path):
         raise InputError("is the original; refusing to write over it", path=path)
+    if path.is_dir():
+        raise InputError("is a folder, not a file name", path=path)
     if path.exists() and not force:
         raise InputError("already exists; use --force to replace it", path=path)
     if not path.parent.is_dir():
         raise InputError(f"folder {path.parent} does not exist", path=path)
-
-    alpha = like.alpha
-    if alpha is not None and alpha.shape != pixels.shape[:2]:
-        alpha = None  # pixels were resized or cropped; the old alpha no longer fits
-    try:
-        payload = _encode(path, fmt, pixels, alpha, like, quality)
-    except OSError as exc:  # an encoder failure (e.g. a WebP side over 16383 px)
-        raise InputError(f"cannot encode as {fmt}: {exc}", path=path) from None
-    _atomic_write(path, payload, force=force)
+    return fmt
 
 
 def _same_file(a: Path, b: Path) -> bool:
@@ -644,29 +770,29 @@ def _encode(
     alpha: np.ndarray | None,
     like: Picture,
     quality: int,
+    staged: Staged | None = None,
 ) -> bytes:
     """The complete file contents, built in memory before anything touches disk."""
+    staged = staged if staged is not None else Staged(format=fmt)
     sixteen = pixels.dtype == np.uint16
     colour = pixels.ndim == 3
+    grey_out = not colour and fmt != "WEBP"
+    staged.icc_fits = bool(like.icc_profile) and _icc_fits(like.icc_profile, grey=grey_out)
     if sixteen and fmt == "TIFF" and (colour or alpha is not None):
+        staged.icc_embedded = staged.icc_fits
         return _encode_tiff16(pixels, alpha, like)
-    if sixteen and fmt == "PNG" and colour:
-        raise InputError(
-            "16-bit colour PNG cannot be written (Pillow's limit); use .tif to keep 16 bits "
-            "or convert to 8 bits",
-            path=path,
-        )
+    if sixteen and fmt == "PNG" and (colour or alpha is not None):
+        # Pillow cannot write 16-bit colour (or grey+alpha) PNG; imagecodecs can. Its
+        # encoder takes no metadata: the ICC profile, EXIF, XMP and resolution follow
+        # in the metadata step (exiftool).
+        import imagecodecs
+
+        data = pixels if alpha is None else np.dstack([pixels, alpha.astype(np.uint16)])
+        return bytes(imagecodecs.png_encode(np.ascontiguousarray(data), level=6))
     if sixteen and (fmt in ("JPEG", "WEBP")):
         pixels = _to8(pixels)  # these formats hold 8 bits per channel only
         sixteen = False
     if alpha is not None:
-        if sixteen:
-            # Pillow has no 16-bit grey+alpha mode; keep the 16-bit grey and
-            # say so rather than reduce it silently.
-            raise InputError(
-                "16-bit grey with transparency cannot be written as PNG; use .tif",
-                path=path,
-            )
         alpha = _to8(alpha)
 
     if sixteen:
@@ -684,6 +810,9 @@ def _encode(
     kw: dict = {}
     if like.icc_profile and _icc_fits(like.icc_profile, grey=im.mode in ("L", "LA", "I;16")):
         kw["icc_profile"] = like.icc_profile
+        staged.icc_embedded = True
+    if like.dpi and fmt in ("JPEG", "PNG", "TIFF"):
+        kw["dpi"] = like.dpi
     if like.exif:
         kw["exif"] = like.exif
     if fmt == "JPEG":
@@ -762,6 +891,8 @@ def _encode_tiff16(pixels: np.ndarray, alpha: np.ndarray | None, like: Picture) 
         extrasamples=extrasamples,
         compression="zlib",
         extratags=extratags,
+        resolution=like.dpi,
+        resolutionunit="INCH" if like.dpi else None,
         metadata=None,
     )
     return buf.getvalue()

@@ -34,6 +34,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from claimkit.batch import IMAGE_SUFFIXES, find_images
+from claimkit.case.store import add_exhibit, open_case
 from claimkit.errors import ClaimkitError, InputError
 from claimkit.runner import (
     Outcome,
@@ -98,28 +99,17 @@ class ScanSummary:
 
 
 class _CaseAdder:
-    """Puts claimed copies into a case through the case layer (skipped if it is missing)."""
+    """Puts claimed copies into a case through the case layer."""
 
     def __init__(self, case_dir: Path, profile, notice):
-        self.case = None
         self.profile = profile
         self.notice = notice
-        self.add = None
-        try:
-            from claimkit.case.store import add_exhibit, open_case
-        except ImportError:
-            notice("claimkit: note: this build has no case layer; claimed copies are listed "
-                   f"but not added to {case_dir}")
-            return
         self.case = open_case(case_dir)       # a missing case is bad input: raise before scanning
-        self.add = add_exhibit
 
     def __call__(self, path: Path, rep: dict) -> str | None:
         """Take ``path`` in; returns the exhibit id, or None (with a note) when it was not."""
-        if self.add is None:
-            return None
         try:
-            ex = self.add(self.case, path, source=f"file found by claimkit scan: {path}",
+            ex = add_exhibit(self.case, path, source=f"file found by claimkit scan: {path}",
                           note=f"claimed as {rep.get('work_id')} by claimkit scan",
                           profile=self.profile)
         except ClaimkitError as exc:

@@ -22,6 +22,7 @@ from claimkit import __version__
 from claimkit.errors import InputError
 from claimkit.evidence.profile import derive_payload_tag, work_id_for
 from claimkit.evidence.storage import sha256_file
+from claimkit.filemeta import Carried, Rights, carry_metadata
 from claimkit.imageio import (
     Picture,
     add_luma_delta,
@@ -113,9 +114,28 @@ def _helpers(threads: int, name: str) -> Executor:
     return ThreadPoolExecutor(max_workers=threads, thread_name_prefix=name) if threads else _InPlace()
 
 
+@dataclass(frozen=True)
+class FileMetadata:
+    """What the marked file says besides its pixels (picklable, for batch workers).
+
+    The original's metadata is copied by exiftool; ``rights`` are written
+    (IPTC Photo Metadata Standard properties), and ``work_id`` as the Image
+    Registry Entry with ``registry`` as its organisation id.
+    """
+
+    rights: Rights | None
+    work_id: str | None
+    registry: str | None
+
+
+def registry_name(profile) -> str:
+    """The Image Registry organisation id of an owner: their public key's SHA-256."""
+    return f"claimkit owner key SHA-256 {profile.public_key_fingerprint}"
+
+
 def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, strength: float = 1.0,
                  jpeg_quality: int = 95, force: bool = False,
-                 max_pixels: int | None = None) -> dict:
+                 max_pixels: int | None = None, metadata: FileMetadata | None = None) -> dict:
     """Embed ``bits`` under ``seed``, write ``out`` atomically and measure what marking did.
 
     The pixel work shared by :func:`mark_file` and batch workers: no profile,
@@ -156,13 +176,13 @@ def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, stre
     measures = {"psnr_db": round(quality.psnr_from_sse(sse, pixels.size, peak=peak), 3)}
     with _helpers(1 if threads > 1 else 0, "claimkit-write") as pool:
         job = pool.submit(_write_marked, out, marked, pic, jpeg_quality=jpeg_quality,
-                          force=force, max_pixels=max_pixels, peak=peak)
+                          force=force, max_pixels=max_pixels, peak=peak, metadata=metadata)
         try:
             ssim_value, sampled = quality.ssim(pixels, marked, grey=to_luma)
         except BaseException:
             _discard_written(job, out)
             raise
-        sha_marked, psnr_file = job.result()
+        sha_marked, psnr_file, carried = job.result()
     del marked
     measures["ssim"] = round(ssim_value, 5)
     measures["ssim_sampled"] = sampled
@@ -172,6 +192,10 @@ def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, stre
         "sha256_marked": sha_marked, "fingerprint": fingerprint, "quality": measures,
         "capture": pic.capture, "width": int(pixels.shape[1]),
         "height": int(pixels.shape[0]), "bit_depth": pic.bit_depth,
+        "metadata_dropped": [] if carried is None else carried.dropped,
+        "rights_written": [] if carried is None else carried.rights_written,
+        "rights_kept": [] if carried is None else carried.rights_kept,
+        "notes": list(pic.notes),
     }
 
 
@@ -187,22 +211,34 @@ def _mark_band(plan: embed.MarkPlan, pixels: np.ndarray, marked: np.ndarray, r0:
 
 
 def _write_marked(out: Path, marked: np.ndarray, pic: Picture, *, jpeg_quality: int, force: bool,
-                  max_pixels: int | None, peak: float) -> tuple[str, float | None]:
-    """Write ``out`` and read it back once: its SHA-256 and, if lossy, the PSNR as written.
+                  max_pixels: int | None, peak: float, metadata: FileMetadata | None = None,
+                  ) -> tuple[str, float | None, Carried | None]:
+    """Write ``out`` and read it back once: its SHA-256, the PSNR as written if lossy, and
+    what the metadata step did.
 
-    If anything fails after the file was written, the file is removed again.
+    The metadata step (exiftool) runs on the staged file before it is put in
+    place, so the hash is that of the final bytes. If anything fails after
+    the file was written, the file is removed again.
     """
-    write_picture(out, marked, like=pic, quality=jpeg_quality, force=force)
+    finish = None
+    if metadata is not None:
+        def finish(staged_file, staged):
+            return carry_metadata(staged_file, pic.path, rights=metadata.rights,
+                                  work_id=metadata.work_id, registry=metadata.registry,
+                                  copy_icc=staged.icc_fits and not staged.icc_embedded,
+                                  reasons=staged.reasons)
+    carried = write_picture(out, marked, like=pic, quality=jpeg_quality, force=force,
+                            finish=finish)
     try:
         if out.suffix.lower() not in (".jpg", ".jpeg", ".webp"):
-            return sha256_file(out), None
+            return sha256_file(out), None, carried
         # One read: the picture carries the hash of the very bytes it was decoded from.
         back = read_picture(out, max_pixels=max_pixels)
         written = back.pixels
         if written.dtype != pic.pixels.dtype:
             # A 16-bit photo written as an 8-bit JPEG: compare on the original's scale.
             written = written.astype(np.float64) * (peak / 255.0)
-        return back.sha256, quality.psnr(pic.pixels, written, peak=peak)
+        return back.sha256, quality.psnr(pic.pixels, written, peak=peak), carried
     except BaseException:
         out.unlink(missing_ok=True)
         raise
@@ -217,47 +253,84 @@ def _discard_written(job, out: Path) -> None:
     out.unlink(missing_ok=True)
 
 
+def prepare_output(out: Path, src: Path, *, force: bool) -> None:
+    """Check an output path before any work, creating its folder as folder mode does.
+
+    Everything the user can fix is found here (exit 2), before a serial is
+    handed out or a pixel is changed.
+    """
+    from claimkit.filemeta import INSTALL_HINT, exiftool_available
+    from claimkit.imageio import check_output_path, output_format
+
+    if out.resolve() == src.resolve():
+        raise InputError("the output would overwrite the original; choose another name", path=out)
+    output_format(out)
+    if not exiftool_available():
+        raise InputError("exiftool is needed to keep the photo's metadata and write the rights "
+                         "fields, and was not found", hint=INSTALL_HINT)
+    if not out.parent.is_dir():
+        try:
+            out.parent.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise InputError(f"cannot create the folder {out.parent}: "
+                             f"{exc.strerror or exc}", path=out) from None
+    check_output_path(out, force=force)
+
+
 def mark_file(profile, src: str | os.PathLike, out: str | os.PathLike, *, force: bool = False,
-              strength: float = 1.0, jpeg_quality: int = 95, max_pixels: int | None = None) -> dict:
+              strength: float = 1.0, jpeg_quality: int = 95, max_pixels: int | None = None,
+              rights: Rights | None = None) -> dict:
     """Mark one photo, write the marked copy to ``out`` and register the work.
 
-    The original is only read. ``out`` is written atomically; if registration
-    fails afterwards the marked file is removed again, so no unregistered
-    marked file is left behind.
+    The original is only read. ``out``'s folder is created if missing. The
+    marked file is staged, its metadata carried over and the rights fields
+    written (exiftool), then it is put in place atomically and registered
+    with the hash of those final bytes; if anything fails the marked file is
+    removed again and the serial given back, so a failed mark leaves no
+    unregistered marked file and uses up no serial.
 
     Returns
     -------
     dict
         ``work_id``, ``psnr_db``, ``ssim``, ``sha256_original``,
-        ``sha256_marked`` and more (see the README).
+        ``sha256_marked``, ``metadata_dropped`` and more (see the README).
     """
     src, out = Path(src), Path(out)
-    if out.exists() and not force:
-        raise InputError("already exists; use --force to replace it", path=out)
-    if out.resolve() == src.resolve():
-        raise InputError("the output would overwrite the original; choose another name", path=out)
     if not 0 < strength <= 4:
         raise InputError(f"strength {strength} is outside 0..4")
     pic, sha_orig = load_original(src, max_pixels=max_pixels)
+    prepare_output(out, src, force=force)
+    if rights is None:
+        from claimkit.evidence.rights import load_rights
+
+        rights = load_rights(profile.home, profile.owner)
     serial = profile.allocate_serials(1)[0]
     bits = payload.pack(profile.owner_tag, serial, profile.payload_tag(serial))
-    facts = mark_picture(pic, out, profile.detection_seed, bits, strength=strength,
-                         jpeg_quality=jpeg_quality, force=force, max_pixels=max_pixels)
+    meta = FileMetadata(rights=rights, work_id=work_id_for(profile.owner_tag, serial),
+                        registry=registry_name(profile))
     try:
+        facts = mark_picture(pic, out, profile.detection_seed, bits, strength=strength,
+                             jpeg_quality=jpeg_quality, force=force, max_pixels=max_pixels,
+                             metadata=meta)
         record = profile.register_work(
             serial, sha256_original=sha_orig, sha256_marked=facts["sha256_marked"],
             original_name=src.name, marked_name=out.name, fingerprint=facts["fingerprint"],
             mark_params=mark_parameters(strength), capture=facts["capture"],
             quality=facts["quality"])
     except BaseException:
-        out.unlink(missing_ok=True)
+        if "facts" in locals():
+            out.unlink(missing_ok=True)
+        profile.release_serials([serial])
         raise
     return {
         "work_id": record.work_id, "serial": serial,
-        "original": str(src), "output": str(out),
+        "file": str(src), "output": str(out),
         "sha256_original": sha_orig, "sha256_marked": facts["sha256_marked"],
         "width": facts["width"], "height": facts["height"],
         "bit_depth": facts["bit_depth"], **facts["quality"],
+        "metadata_dropped": facts["metadata_dropped"],
+        "rights_written": facts["rights_written"], "rights_kept": facts["rights_kept"],
+        "notes": facts["notes"],
     }
 
 

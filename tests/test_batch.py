@@ -173,8 +173,13 @@ def test_a_batch_worker_marks_exactly_as_mark_file(profile, shoot, tmp_path):
     serial = single["serial"]
     bits = payload.pack(profile.owner_tag, serial, profile.payload_tag(serial))
     staged = tmp_path / ".staged.jpg"
+    from claimkit.evidence.rights import load_rights
+
+    meta = workflow.FileMetadata(rights=load_rights(profile.home, profile.owner),
+                                 work_id=single["work_id"],
+                                 registry=workflow.registry_name(profile))
     got = batch.mark_task(str(src), str(staged), profile.detection_seed,
-                          [int(b) for b in bits], 1.0, 95, None)
+                          [int(b) for b in bits], 1.0, 95, None, meta)
     assert got["sha256_marked"] == single["sha256_marked"] == sha256_file(staged)
     record = profile.work(single["work_id"]).record
     assert got["quality"] == record["quality"]

@@ -12,7 +12,7 @@ from pathlib import Path
 import pytest
 from test_case_fixtures import PASS, built_case  # noqa: F401 - the shared fixture
 
-from claimkit.case.verify import safe_extract, verify_bundle
+from claimkit.verify import safe_extract, verify_bundle
 from claimkit.cli import main
 from claimkit.errors import CheckFailed
 from claimkit.evidence.canonical import canonical_json

@@ -16,6 +16,7 @@ import tempfile
 import zipfile
 from pathlib import Path
 
+from claimkit.case.layout import MANIFEST, MANIFEST_SIG, bundle_files
 from claimkit.case.store import Case
 from claimkit.errors import CheckFailed, InputError
 from claimkit.evidence.storage import fsync_dir, sha256_file
@@ -27,8 +28,6 @@ _DATE = (2020, 1, 1, 0, 0, 0)
 
 def export_bundle(case: Case, out: str | os.PathLike, profile=None, *, force: bool = False) -> dict:
     """Write the bundle zip of ``case`` to ``out``; returns its SHA-256 and file count."""
-    from claimkit.dossier.build import MANIFEST, MANIFEST_SIG, bundle_files
-
     out = Path(out)
     root = case.root
     if out.exists() and not force:

@@ -17,11 +17,13 @@ from __future__ import annotations
 import os
 import shutil
 import stat
+from dataclasses import asdict, is_dataclass
 from pathlib import Path
 
 import numpy as np
 
-from claimkit import __version__
+from claimkit import __version__, workflow
+from claimkit.case import layout
 from claimkit.case.align import align
 from claimkit.case.store import Case, Exhibit, checked_exhibit_path
 from claimkit.errors import CheckFailed, InputError
@@ -29,7 +31,9 @@ from claimkit.evidence.canonical import canonical_json
 from claimkit.evidence.custodylog import utc_now
 from claimkit.evidence.storage import atomic_write, sha256_file, sha256_hex
 from claimkit.imageio import read_picture, to_luma
-from claimkit.mark import detect
+from claimkit.mark import detect, payload
+from claimkit.mark.fingerprint import MATCH_DISTANCE, perceptual_fingerprint
+from claimkit.stress import run_battery
 
 __all__ = [
     "DECOY_SEED",
@@ -39,12 +43,12 @@ __all__ = [
     "examine_case",
     "examine_exhibit",
     "find_reference",
+    "jsonable",
 ]
 
 FINDING_TYPE = "claimkit/finding/v1"
 DEFAULT_DECOYS = 64     # random keys in the decoy control; each costs about one pilot search
 DECOY_SEED = 0          # fixed, so that anyone re-running the control gets the same keys
-FINGERPRINT_FRACTION = 0.2   # fingerprint bits that may differ for a match (of all bits)
 
 
 def decoy_summary(scores: list[float], observed: float) -> dict:
@@ -71,26 +75,12 @@ def decoy_summary(scores: list[float], observed: float) -> dict:
     }
 
 
-def _fingerprint(luma: np.ndarray) -> str | None:
-    try:
-        from claimkit.mark.fingerprint import perceptual_fingerprint
-    except ImportError:
-        return None
-    return perceptual_fingerprint(luma)
-
-
 def _match_work(profile, rep: dict, luma: np.ndarray) -> dict | None:
     """The registered work this copy derives from: by the payload, else by the fingerprint."""
     if rep.get("registered") and rep.get("work_id"):
         return {"work_id": rep["work_id"], "by": "payload"}
-    fp = _fingerprint(luma)
-    if fp is None:
-        return None
-    try:
-        from claimkit.mark.fingerprint import MATCH_DISTANCE as limit
-    except ImportError:
-        limit = int(len(fp) * 4 * FINGERPRINT_FRACTION)
-    hits = profile.works_by_fingerprint(fp, limit)
+    fp = perceptual_fingerprint(luma)
+    hits = profile.works_by_fingerprint(fp, MATCH_DISTANCE)
     if not hits:
         return None
     work, dist = hits[0]
@@ -109,7 +99,7 @@ def find_reference(case: Case, work_record: dict, search: list[Path]) -> tuple[P
     wanted = {work_record.get("marked", {}).get("sha256"): "marked",
               work_record.get("original", {}).get("sha256"): "original"}
     wanted.pop(None, None)
-    refs = case.root / "references"
+    refs = case.root / layout.REFERENCES
     found: dict[str, Path] = {}
     if refs.is_dir():
         for p in sorted(refs.iterdir()):
@@ -126,7 +116,7 @@ def find_reference(case: Case, work_record: dict, search: list[Path]) -> tuple[P
                 digest = sha256_file(p)
                 if digest in wanted and wanted[digest] not in found:
                     refs.mkdir(exist_ok=True)
-                    dest = refs / f"{digest}{p.suffix.lower()}"
+                    dest = case.root / layout.reference_file(digest, p.suffix)
                     if not dest.exists():
                         tmp = refs / f".{dest.name}.part"
                         shutil.copyfile(p, tmp)
@@ -144,30 +134,24 @@ def find_reference(case: Case, work_record: dict, search: list[Path]) -> tuple[P
     return None
 
 
-def _robustness(profile, work_id: str, ref_path: Path) -> dict | None:
-    """The stress battery on the registered marked file, if the battery is available."""
-    try:
-        from claimkit.stress import run_battery
-    except ImportError:
-        return {"status": "not run", "reason": "the robustness battery is not part of this build"}
-    from claimkit.mark import payload
-    from claimkit.workflow import expected_payload_check
-
+def _robustness(profile, work_id: str, ref_path: Path) -> dict:
+    """The stress battery on the registered marked file."""
     work = profile.work(work_id)
     bits = payload.pack(profile.owner_tag, work.serial, profile.payload_tag(work.serial))
     pic = read_picture(ref_path)
-    rows = run_battery(pic.pixels, profile.detection_seed, expected_payload_check(bits), quick=True)
-    return {"status": "run", "on": "registered marked file", "rows": _jsonable(rows)}
+    rows = run_battery(pic.pixels, profile.detection_seed,
+                       workflow.expected_payload_check(bits), quick=True)
+    return {"status": "run", "on": "registered marked file", "rows": jsonable(rows)}
 
 
-def _jsonable(obj):
+def jsonable(obj):
+    """``obj`` with dataclasses, tuples and NumPy scalars made plain JSON values (NaN -> None)."""
     if isinstance(obj, dict):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
+        return {str(k): jsonable(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):
-        return [_jsonable(v) for v in obj]
-    if hasattr(obj, "__dataclass_fields__"):
-        from dataclasses import asdict
-        return _jsonable(asdict(obj))
+        return [jsonable(v) for v in obj]
+    if is_dataclass(obj) and not isinstance(obj, type):
+        return jsonable(asdict(obj))
     if isinstance(obj, np.generic):
         return obj.item()
     if isinstance(obj, float) and not np.isfinite(obj):
@@ -180,8 +164,6 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
                     robustness_cache: dict | None = None, workers: int = 1,
                     robustness: bool = True) -> dict:
     """Examine one exhibit; write ``findings/EXX.json`` and ``.npz``; return the finding."""
-    from claimkit import workflow
-
     robustness_wanted = robustness
     path = checked_exhibit_path(case, ex)
     pic = read_picture(path)
@@ -233,7 +215,7 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
         "examined": {"time": utc_now(), "time_source": "system clock",
                      "software": f"claimkit {__version__}", "threshold": threshold,
                      "decoys": decoys, "decoy_seed": DECOY_SEED},
-        "result": _jsonable(rep),
+        "result": jsonable(rep),
         "decoy_scores": [round(float(v), 4) for v in finding.decoy_scores],
         "decoy_summary": decoy_summary(finding.decoy_scores, finding.z_pilot),
         "match": match,

@@ -29,6 +29,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from claimkit import __version__
+from claimkit.case import layout
+from claimkit.case.layout import CASE_FILE
 from claimkit.errors import CheckFailed, InputError
 from claimkit.evidence.canonical import canonical_json
 from claimkit.evidence.custodylog import utc_now
@@ -44,7 +46,6 @@ __all__ = [
     "open_case",
 ]
 
-CASE_FILE = "case.json"
 CASE_TYPE = "claimkit/case/v1"
 EXHIBIT_TYPE = "claimkit/exhibit/v1"
 _SAFE = re.compile(r"[^A-Za-z0-9._-]+")
@@ -84,7 +85,7 @@ class Case:
 
     def exhibits(self) -> list[Exhibit]:
         """Every exhibit, in intake order (E01, E02, ...)."""
-        folder = self.root / "exhibits"
+        folder = self.root / layout.EXHIBITS
         out = []
         if folder.is_dir():
             for p in sorted(folder.glob("E[0-9][0-9]*.json")):
@@ -103,10 +104,10 @@ class Case:
         raise InputError(f"no exhibit {exhibit_id} in this case", path=self.root)
 
     def finding_path(self, exhibit_id: str) -> Path:
-        return self.root / "findings" / f"{exhibit_id}.json"
+        return self.root / layout.finding_file(exhibit_id)
 
     def arrays_path(self, exhibit_id: str) -> Path:
-        return self.root / "findings" / f"{exhibit_id}.npz"
+        return self.root / layout.arrays_file(exhibit_id)
 
     def finding(self, exhibit_id: str) -> dict | None:
         p = self.finding_path(exhibit_id)
@@ -116,7 +117,7 @@ class Case:
 
     @property
     def report_dir(self) -> Path:
-        return self.root / "report"
+        return self.root / layout.REPORT
 
 
 def new_case(folder: str | os.PathLike, title: str, profile=None) -> Case:
@@ -137,7 +138,7 @@ def new_case(folder: str | os.PathLike, title: str, profile=None) -> Case:
     if root.exists() and (not root.is_dir() or any(root.iterdir())):
         raise InputError("already exists and is not an empty folder", path=root)
     root.mkdir(parents=True, exist_ok=True)
-    for sub in ("exhibits", "findings", "references"):
+    for sub in (layout.EXHIBITS, layout.FINDINGS, layout.REFERENCES):
         (root / sub).mkdir(exist_ok=True)
     now = utc_now()
     info = {
@@ -230,10 +231,10 @@ def add_exhibit(case: Case, src: str | os.PathLike, *, source: str, found: str |
         raise InputError(f"not an image claimkit can read ({why})", path=src)
     number = 1 + max([int(e.exhibit_id[1:]) for e in case.exhibits()] or [0])
     exhibit_id = f"E{number:02d}"
-    folder = case.root / "exhibits"
+    folder = case.root / layout.EXHIBITS
     folder.mkdir(exist_ok=True)
-    stored_name = f"{exhibit_id}-{_SAFE.sub('_', src.name)[-80:] or 'file'}"
-    dest = folder / stored_name
+    stored = layout.exhibit_file(exhibit_id, _SAFE.sub('_', src.name)[-80:] or 'file')
+    dest = case.root / stored
     fd, tmp = tempfile.mkstemp(dir=folder, prefix=f".{exhibit_id}.", suffix=".part")
     try:
         with os.fdopen(fd, "wb") as out, open(src, "rb") as inp:
@@ -257,7 +258,7 @@ def add_exhibit(case: Case, src: str | os.PathLike, *, source: str, found: str |
     who = (by or "").strip() or (profile.owner if profile is not None else "unknown")
     record = {
         "type": EXHIBIT_TYPE, "exhibit_id": exhibit_id, "case_id": case.case_id,
-        "file": f"exhibits/{stored_name}", "original_name": src.name,
+        "file": stored, "original_name": src.name,
         "sha256": copied, "size": dest.stat().st_size, "media_type": media,
         "width": width, "height": height,
         "source": source.strip(),
@@ -267,7 +268,7 @@ def add_exhibit(case: Case, src: str | os.PathLike, *, source: str, found: str |
         "note": (note or "").strip() or None,
     }
     data = canonical_json(record)
-    atomic_write(folder / f"{exhibit_id}.json", data + b"\n")
+    atomic_write(case.root / layout.intake_record(exhibit_id), data + b"\n")
     if profile is not None:
         profile.log_action("disputed file taken in",
                            items={"exhibit": copied, "intake_record": sha256_hex(data + b"\n")},
@@ -287,7 +288,7 @@ def checked_exhibit_path(case: Case, ex: Exhibit) -> Path:
         When the stored copy is missing or its bytes changed since intake.
     """
     rel = ex.file
-    if rel.startswith("/") or ".." in Path(rel).parts:
+    if layout.unsafe_name(rel):
         raise CheckFailed(f"{ex.exhibit_id}: intake record names an unsafe path {rel!r}",
                           path=case.root)
     p = case.root / rel

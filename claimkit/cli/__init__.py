@@ -18,7 +18,7 @@ from claimkit.errors import ClaimkitError
 
 # Modules that provide ``register(subparsers, common)``; a missing module is
 # skipped so that the tool still runs while an area is being built.
-AREAS = ("engine", "evidence", "casework", "scale", "stress")
+AREAS = ("engine", "evidence", "casework", "scale", "stress", "rights")
 
 
 def build_parser() -> argparse.ArgumentParser:

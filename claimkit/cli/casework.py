@@ -120,7 +120,7 @@ def cmd_report(args) -> int:
 
 
 def cmd_verify(args) -> int:
-    from claimkit.case.verify import verify_bundle
+    from claimkit.verify import verify_bundle
 
     rep = verify_bundle(args.bundle)
     if args.json:

@@ -5,6 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from claimkit.cli.common import home_dir, passphrase, print_json
+from claimkit.cli.rights import add_rights_options
 from claimkit.errors import InputError
 from claimkit.mark import detect
 from claimkit.mark.pattern import MARK_FORMAT
@@ -19,10 +20,14 @@ def _open_profile(args):
 def cmd_mark(args) -> int:
     from claimkit import workflow
 
+    from claimkit.cli.rights import rights_from_args
+    from claimkit.evidence.rights import load_rights
+
     inputs = [Path(p) for p in args.inputs]
     out = Path(args.out)
     batch = len(inputs) > 1 or any(p.is_dir() for p in inputs)
     with _open_profile(args) as profile:
+        rights = rights_from_args(args, load_rights(profile.home, profile.owner))
         if batch:
             try:
                 from claimkit.batch import mark_many
@@ -31,18 +36,31 @@ def cmd_mark(args) -> int:
             return mark_many(profile, inputs, out, force=args.force, jpeg_quality=args.quality,
                              strength=args.strength, workers=args.workers, engine=args.engine,
                              scheduler=args.scheduler, json_lines=args.json,
-                             progress=not args.json, max_pixels=args.max_pixels)
+                             progress=not args.json, max_pixels=args.max_pixels,
+                             rights=rights)
         if out.is_dir():
             raise InputError("is a folder; with one input, --out names the marked file", path=out)
         rep = workflow.mark_file(profile, inputs[0], out, force=args.force, strength=args.strength,
-                                 jpeg_quality=args.quality, max_pixels=args.max_pixels)
+                                 jpeg_quality=args.quality, max_pixels=args.max_pixels,
+                                 rights=rights)
     if args.json:
         print_json(rep)
     else:
         extra = f", {rep['psnr_db_file']:.1f} dB as saved" if "psnr_db_file" in rep else ""
         print(f"{rep['output']}: marked as {rep['work_id']} "
               f"(PSNR {rep['psnr_db']:.1f} dB{extra}, SSIM {rep['ssim']:.4f})")
+        _metadata_lines(rep)
     return 0
+
+
+def _metadata_lines(rep: dict) -> None:
+    """In words: what metadata the output could not keep, and what was noted on reading."""
+    from claimkit.filemeta import describe_dropped
+
+    if rep.get("metadata_dropped"):
+        print(f"{rep['output']}: metadata not kept: {describe_dropped(rep['metadata_dropped'])}")
+    for note in rep.get("notes") or []:
+        print(f"{rep['output']}: note: {note}")
 
 
 def _verdict_line(rep: dict) -> str:
@@ -95,8 +113,10 @@ def register(sub, common) -> None:
     p.add_argument("--max-pixels", type=int, default=None, metavar="N",
                    help="refuse images with more pixels (decompression-bomb guard)")
     p.add_argument("--workers", type=int, default=None, help="parallel workers for batches")
-    p.add_argument("--engine", choices=("local", "dask"), default="local")
+    p.add_argument("--engine", choices=("local", "dask"), default="local",
+                   help="local processes (default) or a Dask cluster")
     p.add_argument("--scheduler", metavar="ADDR", help="Dask scheduler address (--engine dask)")
+    add_rights_options(p, for_mark=True)
     p.set_defaults(func=cmd_mark)
 
     e = sub.add_parser("examine", parents=[common], help="look for the owner's mark in copies",

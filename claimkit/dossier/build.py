@@ -19,11 +19,15 @@ import shutil
 from pathlib import Path
 
 import numpy as np
+from skimage.transform import rescale
 
 from claimkit import __version__
+from claimkit.case import layout
+from claimkit.case.layout import DATA, HANDOVER, HTML, MANIFEST, MANIFEST_SIG, PDF, PUBLIC_KEY
 from claimkit.case.store import Case, checked_exhibit_path
 from claimkit.dossier import figures
-from claimkit.dossier.data import HANDOVER, PUBLIC_KEY, build_data
+from claimkit.dossier.data import build_data
+from claimkit.dossier.pdfsign import sign_pdf
 from claimkit.dossier.render import render_html, render_pdf
 from claimkit.errors import CheckFailed, InputError
 from claimkit.evidence.canonical import canonical_json
@@ -32,24 +36,12 @@ from claimkit.evidence.storage import atomic_write, sha256_file, sha256_hex
 from claimkit.imageio import read_picture, to_luma
 
 __all__ = [
-    "DATA",
-    "HTML",
-    "MANIFEST",
-    "MANIFEST_SIG",
-    "PDF",
     "build_report",
-    "bundle_files",
     "draw_figures",
     "write_manifest",
 ]
 
-MANIFEST = "manifest.json"
-MANIFEST_SIG = "manifest.sig"
 MANIFEST_TYPE = "claimkit/bundle-manifest/v1"
-PDF = "report/dossier.pdf"
-HTML = "report/dossier.html"
-DATA = "report/dossier.json"
-BUNDLE_PARTS = ("case.json", "exhibits", "references", "findings", "report", HANDOVER)
 
 
 def draw_figures(root: Path, data: dict) -> dict[str, bytes]:
@@ -63,7 +55,7 @@ def draw_figures(root: Path, data: dict) -> dict[str, bytes]:
         out[names["thumbnail"]] = figures.png_bytes(figures.thumbnail(pic.pixels))
         if not r["examined"]:
             continue
-        finding = json.loads((root / "findings" / f"{r['exhibit_id']}.json").read_bytes())
+        finding = json.loads((root / layout.finding_file(r["exhibit_id"])).read_bytes())
         with np.load(root / finding["arrays"]["file"]) as arr:
             a = {k: arr[k] for k in arr.files}
         out[names["message"]] = figures.png_bytes(figures.message_figure(a["recovered"],
@@ -72,7 +64,6 @@ def draw_figures(root: Path, data: dict) -> dict[str, bytes]:
         out[names["decoys"]] = figures.png_bytes(figures.decoy_figure(finding["decoy_scores"],
                                                                       r["score_pilot"]))
         if "aligned" in names:
-            from skimage.transform import rescale
             al = r["alignment"]
             ref = to_luma(read_picture(root / r["reference"]["file"]).pixels).astype(np.float64)
             s = al["work_scale"]
@@ -83,29 +74,10 @@ def draw_figures(root: Path, data: dict) -> dict[str, bytes]:
     return out
 
 
-def bundle_files(root: Path) -> list[str]:
-    """Relative paths of every file that goes into the bundle (sorted; no links, no hidden)."""
-    out = []
-    for part in BUNDLE_PARTS:
-        p = root / part
-        if p.is_file() and not p.is_symlink():
-            out.append(part)
-        elif p.is_dir():
-            for q in sorted(p.rglob("*")):
-                rel = q.relative_to(root)
-                if any(x.startswith(".") for x in rel.parts):
-                    continue
-                if q.is_symlink():
-                    raise InputError("the case holds a symbolic link; bundles never do", path=q)
-                if q.is_file():
-                    out.append(rel.as_posix())
-    return sorted(out)
-
-
 def write_manifest(root: Path, profile, case_id: str) -> dict:
     """``manifest.json`` (every bundle file with SHA-256 and size) and its signature."""
     files = [{"path": rel, "sha256": sha256_file(root / rel), "size": (root / rel).stat().st_size}
-             for rel in bundle_files(root)]
+             for rel in layout.bundle_files(root)]
     doc = {"type": MANIFEST_TYPE, "case_id": case_id, "created": {"time": utc_now(),
            "time_source": "system clock"}, "software": f"claimkit {__version__}",
            "signer": {"name": profile.owner, "public_key_sha256": profile.public_key_fingerprint},
@@ -146,14 +118,19 @@ def _handover(case: Case, profile) -> None:
             work_ids.append(m["work_id"])
     tmp = root / f".{HANDOVER}.part"
     shutil.rmtree(tmp, ignore_errors=True)
-    (tmp / "disclosures").mkdir(parents=True)
-    atomic_write(tmp / "public-key.pem", profile.public_key_pem())
+    # Built under a hidden name beside handover/, then swapped in: the layout's paths
+    # below handover/ are taken relative to it.
+    def part(rel: str) -> Path:
+        return tmp / Path(rel).relative_to(HANDOVER)
+
+    part(layout.DISCLOSURES).mkdir(parents=True)
+    atomic_write(part(PUBLIC_KEY), profile.public_key_pem())
     for wid in work_ids:
-        profile.disclose(wid, tmp / "disclosures" / wid)
+        profile.disclose(wid, part(layout.DISCLOSURES) / wid)
     # The log copy is taken last, so it holds the disclosures just logged.
     log = profile.log_path.read_bytes()
     log = log[: log.rfind(b"\n") + 1]
-    atomic_write(tmp / "custody.jsonl", log)
+    atomic_write(part(layout.CUSTODY_COPY), log)
     old = root / HANDOVER
     if old.exists():
         shutil.rmtree(old)
@@ -173,16 +150,14 @@ def build_report(case: Case, profile, *, out_pdf: Path | None = None) -> dict:
     _check_examined(case)
     root = case.root
     _handover(case, profile)
-    report = root / "report"
-    shutil.rmtree(report, ignore_errors=True)
-    (report / "figures").mkdir(parents=True)
+    shutil.rmtree(root / layout.REPORT, ignore_errors=True)
+    (root / layout.FIGURES).mkdir(parents=True)
     data = build_data(root)
     for rel, png in draw_figures(root, data).items():
         atomic_write(root / rel, png)
     data_bytes = canonical_json(data)
     atomic_write(root / DATA, data_bytes + b"\n")
     pdf = render_pdf(data, root, root / PDF)
-    from claimkit.dossier.pdfsign import sign_pdf
     signed = sign_pdf(pdf, profile, reason=f"Evidence dossier {data['case']['case_id']}")
     atomic_write(root / PDF, signed)
     html = render_html(data, root).encode("utf-8")

@@ -15,18 +15,18 @@ import re
 from pathlib import Path
 
 from claimkit import __version__
+from claimkit.case import layout
+from claimkit.case.layout import CUSTODY_COPY, DISCLOSURES, PUBLIC_KEY
 from claimkit.errors import InputError
 from claimkit.evidence import signing
 from claimkit.evidence.canonical import canonical_json, canonicalize
 from claimkit.evidence.custodylog import verify_log
 from claimkit.evidence.disclose import check_disclosure
-from claimkit.mark import detect, pattern, stats
+from claimkit.evidence.storage import sha256_file
+from claimkit.mark import detect, geometry, pattern, stats
 
 __all__ = [
-    "CUSTODY_COPY",
     "DOSSIER_TYPE",
-    "HANDOVER",
-    "PUBLIC_KEY",
     "REFERENCES_CITED",
     "build_data",
     "case_files",
@@ -34,10 +34,6 @@ __all__ = [
 
 DOSSIER_TYPE = "claimkit/dossier/v1"
 _EXHIBIT_ID = re.compile(r"E\d{2,6}")
-HANDOVER = "handover"
-CUSTODY_COPY = f"{HANDOVER}/custody.jsonl"
-PUBLIC_KEY = f"{HANDOVER}/public-key.pem"
-DISCLOSURES = f"{HANDOVER}/disclosures"
 
 #: The published methods the analysis rests on (the method section lists them).
 REFERENCES_CITED = [
@@ -78,9 +74,9 @@ def _read_json(root: Path, rel: str) -> dict:
 
 def case_files(root: Path) -> tuple[dict, list[dict], dict[str, dict]]:
     """``case.json``, the intake records in order, and findings by exhibit ID."""
-    case = _read_json(root, "case.json")
+    case = _read_json(root, layout.CASE_FILE)
     exhibits = []
-    for p in sorted((root / "exhibits").glob("E[0-9]*.json")):
+    for p in sorted((root / layout.EXHIBITS).glob("E[0-9]*.json")):
         exhibits.append(json.loads(p.read_bytes()))
     def order(r: dict):
         i = r.get("exhibit_id")
@@ -93,7 +89,7 @@ def case_files(root: Path) -> tuple[dict, list[dict], dict[str, dict]]:
         i = ex.get("exhibit_id")
         if not (isinstance(i, str) and _EXHIBIT_ID.fullmatch(i)):
             continue     # never used to build a path; verify names it
-        p = root / "findings" / f"{i}.json"
+        p = root / layout.finding_file(i)
         if p.is_file():
             findings[ex["exhibit_id"]] = json.loads(p.read_bytes())
     return case, exhibits, findings
@@ -169,8 +165,6 @@ def _constants(module) -> dict:
 
 
 def _engine_parameters() -> dict:
-    from claimkit.mark import geometry
-
     return {
         "tile_px": pattern.TILE, "payload_bits": pattern.PAYLOAD_BITS,
         "pilot_spots": pattern.PILOT_SPOTS, "code_spots": pattern.CODE_SPOTS,
@@ -215,8 +209,6 @@ def build_data(root: str | Path) -> dict:
     dict
         JSON-ready; its canonical JSON is stored as ``report/dossier.json``.
     """
-    from claimkit.evidence.storage import sha256_file
-
     root = Path(root)
     case, exhibits, findings = case_files(root)
     works = _works(root)
@@ -224,7 +216,7 @@ def build_data(root: str | Path) -> dict:
     for ex in exhibits:
         res = _result(ex, findings.get(ex["exhibit_id"]))
         if res["examined"]:
-            res["finding_sha256"] = sha256_file(root / "findings" / f"{ex['exhibit_id']}.json")
+            res["finding_sha256"] = sha256_file(root / layout.finding_file(ex["exhibit_id"]))
         results.append(res)
     work_ids = {w["work_id"] for w in works}
     try:
@@ -263,11 +255,9 @@ def build_data(root: str | Path) -> dict:
 
 def _figure_names(r: dict) -> dict:
     e = r["exhibit_id"]
-    out = {"thumbnail": f"report/figures/{e}-thumbnail.png"}
+    kinds = ["thumbnail"]
     if r.get("examined"):
-        out.update(message=f"report/figures/{e}-message.png",
-                   surface=f"report/figures/{e}-surface.png",
-                   decoys=f"report/figures/{e}-decoys.png")
+        kinds += ["message", "surface", "decoys"]
         if (r.get("alignment") or {}).get("aligned"):
-            out["aligned"] = f"report/figures/{e}-aligned.png"
-    return out
+            kinds.append("aligned")
+    return {k: layout.figure_file(e, k) for k in kinds}

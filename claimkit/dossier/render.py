@@ -18,6 +18,8 @@ from pathlib import Path
 
 import jinja2
 
+from claimkit.errors import InputError
+
 __all__ = [
     "parse_markup",
     "render_html",
@@ -36,8 +38,6 @@ def template_dir() -> Path:
     for cand in (here.parent / "templates", here / "templates"):
         if (cand / "dossier.md.j2").is_file():
             return cand
-    from claimkit.errors import InputError
-
     raise InputError("claimkit's templates/ folder is missing from this installation; "
                      "reinstall claimkit from its source tree", path=here)
 

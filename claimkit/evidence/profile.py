@@ -417,6 +417,25 @@ class Profile:
                              (str(start + n),))
         return list(range(start, start + n))
 
+    def release_serials(self, serials: list[int]) -> bool:
+        """Give back serials of a mark that failed, if they are still the last handed out.
+
+        Only the tail of the sequence is given back, and only while none of it
+        is registered, so a serial that another process took meanwhile (or that
+        names a registered work) is never handed out twice. True if given back.
+        """
+        if not serials:
+            return False
+        lo, hi = min(serials), max(serials)
+        with _transaction(self._db):
+            if int(self._meta("next_serial")) != hi + 1:
+                return False
+            if self._db.execute("SELECT 1 FROM works WHERE serial BETWEEN ? AND ?",
+                                (lo, hi)).fetchone():
+                return False
+            self._db.execute("UPDATE meta SET value = ? WHERE key = 'next_serial'", (str(lo),))
+        return True
+
     # ----------------------------------------------------------------- works
     def _build_record(self, serial: int, *, sha256_original: str, sha256_marked: str,
                       original_name: str, marked_name: str, fingerprint: str,

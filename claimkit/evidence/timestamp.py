@@ -15,10 +15,11 @@ accepted only when every one of these holds, and each failure says which:
 7. the signer certificate is the one the ESS signing-certificate attribute
    (RFC 2634 / RFC 5035) names;
 8. the signer certificate is for time stamping (extended key usage
-   ``timeStamping``, critical: RFC 3161 section 2.3) and valid at the token's
-   time;
-9. the signer certificate is, or chains by verified signatures to, a
-   certificate the user said to trust.
+   ``timeStamping`` only, critical: RFC 3161 section 2.3; key usage as OpenSSL
+   requires) and valid at the token's time;
+9. the signer certificate is, or has a valid RFC 5280 path (basic constraints,
+   path length, key usage of every issuer) to, a certificate the user said to
+   trust: :mod:`.certpath`.
 
 Revocation (CRL/OCSP) is not checked: it needs the network, and a token made
 before a revocation stays valid. Say so where it matters.
@@ -46,9 +47,9 @@ from cryptography import x509
 from cryptography.exceptions import InvalidSignature, UnsupportedAlgorithm
 from cryptography.hazmat.primitives import hashes
 from cryptography.hazmat.primitives.asymmetric import ec, ed25519, padding, rsa
-from cryptography.x509.oid import ExtendedKeyUsageOID
 
 from claimkit.errors import CheckFailed, InputError
+from claimkit.evidence import certpath
 
 __all__ = [
     "TokenInfo",
@@ -197,53 +198,6 @@ def _verify_signature(public_key, signature: bytes, data: bytes,
         raise _Refused("the TSA's signature does not verify (token forged or altered)") from None
 
 
-def _issued_by(cert: x509.Certificate, issuer: x509.Certificate) -> bool:
-    if cert.issuer != issuer.subject:
-        return False
-    try:
-        cert.verify_directly_issued_by(issuer)
-    except (InvalidSignature, ValueError, TypeError, UnsupportedAlgorithm):
-        return False
-    return True
-
-
-def _is_ca(cert: x509.Certificate) -> bool:
-    try:
-        return bool(cert.extensions.get_extension_for_class(x509.BasicConstraints).value.ca)
-    except x509.ExtensionNotFound:
-        return False
-
-
-def _chain_to_trusted(signer: x509.Certificate, pool: list[x509.Certificate],
-                      trusted: list[x509.Certificate], when: datetime) -> list[x509.Certificate]:
-    """The path from the signer to a trusted certificate, or _Refused."""
-    trusted_der = {t.public_bytes(_DER) for t in trusted}
-    path = [signer]
-    cur = signer
-    for _ in range(8):
-        if cur.public_bytes(_DER) in trusted_der:
-            break
-        seen = {c.public_bytes(_DER) for c in path}
-        issuer = next((c for c in trusted + pool
-                       if c.public_bytes(_DER) not in seen and _issued_by(cur, c)), None)
-        if issuer is None:
-            names = "; ".join(t.subject.rfc4514_string() for t in trusted)
-            raise _Refused(f"the TSA certificate ({signer.subject.rfc4514_string()}) does not "
-                           f"chain to a trusted certificate ({names}): untrusted TSA")
-        if not _is_ca(issuer):
-            raise _Refused(f"{issuer.subject.rfc4514_string()} issued the TSA certificate "
-                           "but is not a CA certificate")
-        path.append(issuer)
-        cur = issuer
-    else:
-        raise _Refused("certificate chain too long")
-    for c in path:
-        if not c.not_valid_before_utc <= when <= c.not_valid_after_utc:
-            raise _Refused(f"certificate {c.subject.rfc4514_string()} was not valid at the "
-                           f"token's time {when:%Y-%m-%dT%H:%M:%SZ}")
-    return path
-
-
 from cryptography.hazmat.primitives.serialization import Encoding as _Enc
 
 _DER = _Enc.DER
@@ -373,18 +327,13 @@ def _check(token_der: bytes, digest: bytes, nonce: int | None,
         raise _Refused("the ESS signing-certificate attribute names another certificate "
                        "(signer certificate substituted)")
 
-    # 8: a time-stamping certificate
-    try:
-        eku = signer.extensions.get_extension_for_class(x509.ExtendedKeyUsage)
-    except x509.ExtensionNotFound:
-        eku = None
-    if eku is None or ExtendedKeyUsageOID.TIME_STAMPING not in eku.value or not eku.critical:
-        raise _Refused("the signer certificate is not a time-stamping certificate "
-                       "(critical extended key usage timeStamping missing)")
-
-    # 9: trust
+    # 8-9: a time-stamping certificate on a path to a trusted one (certpath: RFC 5280
+    # path validation by pyhanko-certvalidator, and OpenSSL's time-stamping purpose)
     pool = [x509.load_der_x509_certificate(c.dump()) for c in certs]
-    _chain_to_trusted(signer, pool, trusted, gen_time)
+    try:
+        certpath.tsa_path(signer, pool, trusted, gen_time)
+    except certpath.PathRefused as exc:
+        raise _Refused(str(exc)) from None
 
     tsa = tst["tsa"]
     return TokenInfo(

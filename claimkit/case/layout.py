@@ -1,0 +1,166 @@
+"""Where every file of a case folder and of its hand-over bundle lives: each path defined once.
+
+A bundle is a case folder after ``claimkit report``, packed; so one layout
+serves the case (which writes exhibits, findings and references), the dossier
+(which writes ``handover/``, ``report/`` and the manifest) and ``verify``
+(which reads them all). Every name is relative to the folder's root and uses
+``/``, so a bundle can be checked anywhere::
+
+    case.json                     title, case ID, owner (canonical JSON)
+    exhibits/E01-NAME.EXT         the disputed file, byte for byte, read-only
+    exhibits/E01.json             its intake record
+    references/SHA256.EXT         the registered file a copy is aligned to (by hash)
+    findings/E01.json, E01.npz    the examination: numbers, arrays
+    handover/public-key.pem       the owner's public key
+    handover/disclosures/WORK/    a key disclosure per matched work
+    handover/custody.jsonl        a copy of the custody log
+    report/dossier.json|pdf|html  the dossier and the data it renders
+    report/figures/E01-KIND.png   its figures
+    manifest.json, manifest.sig   every file above with its SHA-256, signed
+
+The path-safety rules for names read from a bundle live here too
+(:func:`unsafe_name`, :func:`inside`), so that every reader applies the same ones.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path, PurePosixPath
+
+from claimkit.errors import InputError
+
+__all__ = [
+    "BUNDLE_PARTS",
+    "CASE_FILE",
+    "CUSTODY_COPY",
+    "DATA",
+    "DISCLOSURES",
+    "EXHIBITS",
+    "FIGURES",
+    "FINDINGS",
+    "HANDOVER",
+    "HTML",
+    "MANIFEST",
+    "MANIFEST_SIG",
+    "PDF",
+    "PUBLIC_KEY",
+    "REFERENCES",
+    "REPORT",
+    "arrays_file",
+    "bundle_files",
+    "exhibit_file",
+    "figure_file",
+    "finding_file",
+    "inside",
+    "intake_record",
+    "reference_file",
+    "unsafe_name",
+]
+
+CASE_FILE = "case.json"
+EXHIBITS = "exhibits"
+REFERENCES = "references"
+FINDINGS = "findings"
+REPORT = "report"
+FIGURES = f"{REPORT}/figures"
+DATA = f"{REPORT}/dossier.json"
+PDF = f"{REPORT}/dossier.pdf"
+HTML = f"{REPORT}/dossier.html"
+HANDOVER = "handover"
+PUBLIC_KEY = f"{HANDOVER}/public-key.pem"
+CUSTODY_COPY = f"{HANDOVER}/custody.jsonl"
+DISCLOSURES = f"{HANDOVER}/disclosures"
+MANIFEST = "manifest.json"
+MANIFEST_SIG = "manifest.sig"
+
+#: What a bundle holds besides the manifest and its signature: these files and folders.
+BUNDLE_PARTS = (CASE_FILE, EXHIBITS, REFERENCES, FINDINGS, REPORT, HANDOVER)
+
+
+def intake_record(exhibit_id: str) -> str:
+    """The intake record of an exhibit."""
+    return f"{EXHIBITS}/{exhibit_id}.json"
+
+
+def exhibit_file(exhibit_id: str, name: str) -> str:
+    """The stored copy of an exhibit (``name`` already made safe by the caller)."""
+    return f"{EXHIBITS}/{exhibit_id}-{name}"
+
+
+def finding_file(exhibit_id: str) -> str:
+    """The finding of an exhibit (numbers, canonical JSON)."""
+    return f"{FINDINGS}/{exhibit_id}.json"
+
+
+def arrays_file(exhibit_id: str) -> str:
+    """The arrays of a finding (``.npz``)."""
+    return f"{FINDINGS}/{exhibit_id}.npz"
+
+
+def reference_file(sha256: str, suffix: str) -> str:
+    """A registered file kept by its hash, with its (lower-case) suffix."""
+    return f"{REFERENCES}/{sha256}{suffix.lower()}"
+
+
+def figure_file(exhibit_id: str, kind: str) -> str:
+    """A figure of the dossier (``kind``: thumbnail, message, surface, decoys, aligned)."""
+    return f"{FIGURES}/{exhibit_id}-{kind}.png"
+
+
+def unsafe_name(name: str) -> str | None:
+    """Why a relative name read from a bundle is unsafe, or None when it is fine.
+
+    Refuses what could leave the folder or mean different files on different
+    systems: absolute paths (POSIX or drive letters), ``..``, backslashes, NUL.
+    """
+    if not name or "\\" in name or "\x00" in name:
+        return "has a backslash or an empty or NUL name"
+    p = PurePosixPath(name)
+    if p.is_absolute() or name.startswith("/") or (len(name) > 1 and name[1] == ":"):
+        return "is an absolute path"
+    if any(part == ".." for part in p.parts):
+        return "climbs out of the bundle (..)"
+    return None
+
+
+def inside(root: Path, rel: object, folder: str) -> str | None:
+    """Why ``rel`` (named inside a bundle file) is not a safe path under ``root/folder``, or None."""
+    if not isinstance(rel, str):
+        return f"{rel!r} is not a path"
+    why = unsafe_name(rel)
+    if why:
+        return f"{rel!r} {why}"
+    if not rel.startswith(folder + "/"):
+        return f"{rel!r} is outside {folder}/"
+    p = root / rel
+    if p.is_symlink():
+        return f"{rel!r} is a symbolic link"
+    try:
+        p.resolve().relative_to(root.resolve())
+    except ValueError:
+        return f"{rel!r} leads out of the bundle"
+    return None
+
+
+def bundle_files(root: Path) -> list[str]:
+    """Relative paths of every file that goes into the bundle (sorted; no links, no hidden).
+
+    Raises
+    ------
+    InputError
+        When the folder holds a symbolic link: bundles never do.
+    """
+    out = []
+    for part in BUNDLE_PARTS:
+        p = root / part
+        if p.is_file() and not p.is_symlink():
+            out.append(part)
+        elif p.is_dir():
+            for q in sorted(p.rglob("*")):
+                rel = q.relative_to(root)
+                if any(x.startswith(".") for x in rel.parts):
+                    continue
+                if q.is_symlink():
+                    raise InputError("the case holds a symbolic link; bundles never do", path=q)
+                if q.is_file():
+                    out.append(rel.as_posix())
+    return sorted(out)

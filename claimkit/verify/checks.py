@@ -1,0 +1,204 @@
+"""How each item of a bundle is checked: paths, manifest, disclosures, custody, exhibits.
+
+Each function adds its outcome to a :class:`~claimkit.verify.report.VerifyReport`
+and never raises for a failed check; a failure names what failed.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+from pathlib import Path
+
+from claimkit.case import layout
+from claimkit.case.layout import CUSTODY_COPY, DISCLOSURES, MANIFEST, MANIFEST_SIG, PUBLIC_KEY
+from claimkit.errors import InputError
+from claimkit.evidence import signing
+from claimkit.evidence.custodylog import verify_log
+from claimkit.evidence.disclose import check_disclosure
+from claimkit.evidence.storage import sha256_file
+from claimkit.mark import payload
+from claimkit.verify.report import VerifyReport
+
+__all__ = [
+    "check_custody",
+    "check_disclosures",
+    "check_exhibit",
+    "check_manifest",
+    "path_audit",
+]
+
+
+def path_audit(root: Path, exhibits: list[dict], findings: dict) -> list[str]:
+    """Every path that a JSON file of the bundle names, checked before anything is read."""
+    bad = []
+    for ex in exhibits:
+        i = ex.get("exhibit_id")
+        if not isinstance(i, str) or not re.fullmatch(r"E\d{2,6}", i):
+            bad.append(f"intake record names the exhibit {i!r}")
+            continue
+        why = layout.inside(root, ex.get("file"), layout.EXHIBITS)
+        if why:
+            bad.append(f"{i}: intake record path {why}")
+        f = findings.get(i)
+        if f is None:
+            continue
+        why = layout.inside(root, (f.get("arrays") or {}).get("file"), layout.FINDINGS)
+        if why:
+            bad.append(f"{i}: finding arrays path {why}")
+        if f.get("reference"):
+            why = layout.inside(root, f["reference"].get("file"), layout.REFERENCES)
+            if why:
+                bad.append(f"{i}: finding reference path {why}")
+    folder = root / DISCLOSURES
+    if folder.is_dir():
+        for d in sorted(folder.iterdir()):
+            try:
+                doc = json.loads((d / "disclosure.json").read_bytes())
+                stamps = doc.get("timestamps", [])
+            except (OSError, ValueError, AttributeError):
+                continue
+            for st in stamps if isinstance(stamps, list) else []:
+                for key in ("token_file", "tsa_cert_file"):
+                    rel = st.get(key) if isinstance(st, dict) else None
+                    why = layout.inside(d, rel, "timestamps") if rel is not None else None
+                    if why:
+                        bad.append(f"{d.name}: disclosure {key} {why}")
+    return bad
+
+
+def check_manifest(root: Path, files: list[str], rep: VerifyReport):
+    """The manifest's signature, signer and every listed hash; returns (manifest, public key)."""
+    try:
+        body = (root / MANIFEST).read_bytes()
+        sig = (root / MANIFEST_SIG).read_bytes()
+        pub = signing.load_public_pem((root / PUBLIC_KEY).read_bytes())
+    except FileNotFoundError as exc:
+        rep.add("manifest", False, f"{Path(exc.filename).name} missing from the bundle")
+        return None, None
+    except ValueError:
+        rep.add("manifest", False, f"{PUBLIC_KEY} is not an Ed25519 public key")
+        return None, None
+    signed = signing.verify(pub, body, sig)
+    rep.add("manifest signature", signed,
+            "manifest.json is signed by the key in the bundle" if signed
+            else "manifest.json: the Ed25519 signature does not verify (manifest altered or "
+                 "signed by another key)")
+    try:
+        manifest = json.loads(body)
+        listed = {f["path"]: f for f in manifest["files"]}
+    except (ValueError, KeyError, TypeError):
+        rep.add("manifest", False, "manifest.json is not a claimkit manifest")
+        return None, pub
+    fp = signing.fingerprint(signing.raw_public(pub))
+    rep.add("manifest signer", manifest.get("signer", {}).get("public_key_sha256") == fp,
+            f"signer key SHA-256 {fp}")
+    bad = []
+    for rel, f in sorted(listed.items()):
+        if layout.unsafe_name(rel):
+            bad.append(f"{rel}: unsafe path in the manifest")
+            continue
+        p = root / rel
+        if not p.is_file():
+            bad.append(f"{rel}: listed but missing")
+        elif sha256_file(p) != f["sha256"]:
+            bad.append(f"{rel}: SHA-256 differs from the manifest (file altered)")
+    extra = sorted(set(files) - set(listed) - {MANIFEST, MANIFEST_SIG})
+    bad += [f"{rel}: in the bundle but not in the manifest" for rel in extra]
+    rep.add("file hashes", not bad,
+            "; ".join(bad) if bad else f"{len(listed)} files, every SHA-256 matches")
+    return manifest, pub
+
+
+def check_disclosures(root: Path, fp: str, rep: VerifyReport) -> dict:
+    """Check each disclosure; returns work_id -> (seed, payload bits, check)."""
+    out = {}
+    folder = root / DISCLOSURES
+    if not folder.is_dir():
+        rep.add("key disclosures", False, "no key disclosure in the bundle; nothing can be re-run")
+        return out
+    for d in sorted(folder.iterdir()):
+        try:
+            chk = check_disclosure(d)
+        except InputError as exc:
+            rep.add(f"disclosure {d.name}", False, exc.message)
+            continue
+        probs = list(chk.problems)
+        if chk.public_key_sha256 != fp:
+            probs.append("its public key is not the bundle's (key replaced)")
+        rep.add(f"disclosure {d.name}", not probs,
+                "; ".join(probs) if probs else
+                f"record and disclosure signatures, key commitment and "
+                f"{len(chk.timestamps)} timestamp token(s) verified")
+        if not probs:
+            bits = payload.pack(chk.owner_tag, chk.serial, chk.payload_tag)
+            out[chk.work_id] = (chk.detection_seed, bits, chk)
+    return out
+
+
+def check_custody(root: Path, pub, exhibits: list[dict], findings: dict,
+                  rep: VerifyReport) -> None:
+    """The custody-log copy, and that every intake and examination is logged with its hashes."""
+    log = verify_log(root / CUSTODY_COPY, pub)
+    rep.add("custody log", log.ok, "; ".join(str(p) for p in log.problems) if log.problems
+            else f"{log.lines} entries, signatures and hash chain intact")
+    intake = {}
+    examined = {}
+    case_id = None
+    try:
+        case_id = json.loads((root / layout.CASE_FILE).read_bytes()).get("case_id")
+    except (OSError, ValueError):
+        pass
+    for e in log.entries:
+        d = e.get("details", {})
+        if d.get("case_id") != case_id:
+            continue
+        if e["action"] == "disputed file taken in":
+            intake[d.get("exhibit_id")] = e["items"]
+        elif e["action"] == "exhibit examined":
+            examined[d.get("exhibit_id")] = e["items"]
+    probs = []
+    for ex in exhibits:
+        i = ex["exhibit_id"]
+        rec = root / layout.intake_record(i)
+        if intake.get(i, {}).get("exhibit") != ex["sha256"]:
+            probs.append(f"{i}: no custody entry takes in these bytes")
+        elif rec.is_file() and intake[i].get("intake_record") != sha256_file(rec):
+            probs.append(f"{i}: the intake record differs from the one logged")
+        if i in findings:
+            fpath = root / layout.finding_file(i)
+            if examined.get(i, {}).get("finding") != sha256_file(fpath):
+                probs.append(f"{i}: the stored finding is not the one logged at examination")
+    present = {ex["exhibit_id"] for ex in exhibits}
+    for i in sorted(set(intake) - present):
+        probs.append(f"{i}: taken in according to the custody log, but not in the bundle "
+                     "(exhibit removed)")
+    rep.add("custody of exhibits", not probs,
+            "; ".join(probs) if probs else "every intake and examination is logged with its hashes")
+
+
+def check_exhibit(root: Path, ex: dict, finding: dict | None, listed: set[str],
+                  rep: VerifyReport) -> bool:
+    """The exhibit's bytes against its intake record, and the finding against the exhibit.
+
+    Returns True when the finding may be re-run.
+    """
+    i = ex["exhibit_id"]
+    rel = ex.get("file", "")
+    p = root / rel
+    if layout.unsafe_name(rel) or not p.is_file():
+        rep.add(f"{i} exhibit", False, f"{rel}: missing (exhibit removed)")
+        return False
+    if rel not in listed:
+        rep.add(f"{i} exhibit", False, f"{rel}: not in the manifest")
+    got = sha256_file(p)
+    rep.add(f"{i} exhibit", got == ex["sha256"],
+            f"{rel}: SHA-256 as at intake" if got == ex["sha256"] else
+            f"{rel}: SHA-256 {got[:16]}... differs from the intake record")
+    if finding is None:
+        rep.add(f"{i} finding", False, "not examined (no finding in the bundle)")
+        return False
+    if finding.get("exhibit_sha256") != ex["sha256"]:
+        rep.add(f"{i} finding", False, "the finding is for other bytes than the exhibit")
+        return False
+    return True

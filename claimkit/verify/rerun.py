@@ -1,0 +1,109 @@
+"""Re-running each examination, its decoy control, alignment and robustness rows from the key.
+
+The detection seed comes from a verified key disclosure; every stored number
+is compared with the re-run (:func:`claimkit.verify.compare.differences`).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from claimkit import __version__
+from claimkit.case.align import align
+from claimkit.case.examine import decoy_summary, jsonable
+from claimkit.imageio import read_picture, to_luma
+from claimkit.mark import detect, payload
+from claimkit.stress import run_battery
+from claimkit.verify.compare import differences
+from claimkit.verify.report import VerifyReport
+from claimkit.workflow import examine_picture, expected_payload_check
+
+__all__ = ["rerun_examination", "rerun_robustness"]
+
+
+def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
+                      rep: VerifyReport) -> None:
+    """Re-run one exhibit's examination and compare every stored number and array."""
+    i = ex["exhibit_id"]
+    if not keys:
+        rep.add(f"{i} re-run", False, "no verified disclosure, so no key to re-run with")
+        return
+    seed = next(iter(keys.values()))[0]
+    wanted = [bits for _, bits, _ in keys.values()]
+
+    def check(got) -> bool:
+        g = np.asarray(got, dtype=np.uint8)
+        return any(np.array_equal(g, w) for w in wanted)
+
+    pic = read_picture(root / ex["file"])
+    params = finding["examined"]
+    owner_tag = payload.unpack(wanted[0])["owner_tag"]   # the same for all of one owner's works
+    f = examine_picture(pic, seed, owner_tag=owner_tag, payload_check=check,
+                        threshold=params["threshold"], decoys=params["decoys"])
+    stored = finding["result"]
+    got = f.to_json()
+    got["geometry_text"] = detect.describe_in_words(f.geometry)
+    diffs = []
+    for k, v in got.items():
+        diffs += differences(stored.get(k), v, k)
+    want_work = stored.get("work_id") if stored.get("detected") else None
+    if stored.get("detected"):
+        match = [w for w, (_, bits, _) in keys.items()
+                 if f.payload_bits is not None and np.array_equal(np.asarray(f.payload_bits,
+                                                                             np.uint8), bits)]
+        if want_work and match != [want_work]:
+            diffs.append(f"work_id: stored {want_work}, the re-run payload names {match or 'none'}")
+    diffs += differences(finding["decoy_scores"], [round(float(v), 4) for v in f.decoy_scores],
+                         "decoy_scores")
+    diffs += differences(finding["decoy_summary"], decoy_summary(f.decoy_scores, f.z_pilot),
+                         "decoy_summary")
+    with np.load(root / finding["arrays"]["file"]) as arr:
+        for name in ("surface", "recovered", "reference"):
+            a = arr[name]
+            b = getattr(f, name)
+            if a.shape != b.shape or not np.allclose(a, b, rtol=1e-4, atol=1e-4):
+                diffs.append(f"arrays.{name}: differs from the re-run")
+        stored_arrays = {k: arr[k] for k in arr.files}
+    al = finding.get("alignment")
+    if al and al.get("aligned"):
+        ref = root / finding["reference"]["file"]
+        rpic = read_picture(ref)
+        again = align(to_luma(rpic.pixels), to_luma(pic.pixels), f.geometry or None)
+        diffs += differences(al, again.numbers, "alignment")
+        if "difference" in stored_arrays and not np.array_equal(stored_arrays["difference"],
+                                                               again.difference):
+            diffs.append("arrays.difference: the difference map differs from the re-run")
+    made_with, this = params.get("software"), f"claimkit {__version__}"
+    if diffs and made_with and made_with != this:
+        diffs.insert(0, f"examined with {made_with} and re-run with {this} (install {made_with} "
+                        "to reproduce its numbers to the digit)")
+    rep.add(f"{i} re-run", not diffs, "; ".join(diffs[:8]) if diffs else
+            f"{'detected' if f.detected else 'not detected'}, log10 P_fa "
+            f"{round(f.log10_false_alarm, 4)}, {len(f.decoy_scores)} decoys and every stored "
+            "number reproduced")
+
+
+def rerun_robustness(root: Path, findings: dict, keys: dict, rep: VerifyReport) -> None:
+    """Re-run the robustness battery once per work and compare its table."""
+    done = set()
+    for _i, f in sorted(findings.items()):
+        rob = f.get("robustness") or {}
+        wid = (f.get("match") or {}).get("work_id")
+        if rob.get("status") != "run" or wid in done:
+            continue
+        done.add(wid)
+        if wid not in keys:
+            rep.add(f"robustness {wid}", False, "no verified disclosure of this work")
+            continue
+        seed, bits, _ = keys[wid]
+        pic = read_picture(root / f["reference"]["file"])
+        rows = run_battery(pic.pixels, seed, expected_payload_check(bits), quick=True)
+        again = jsonable(rows)
+        stored = rob.get("rows") or []
+        strip = [{k: v for k, v in r.items() if k != "seconds"} for r in stored]
+        fresh = [{k: v for k, v in r.items() if k != "seconds"} for r in again]
+        diffs = differences(strip, fresh, "rows")
+        rep.add(f"robustness {wid}", not diffs, "; ".join(diffs[:6]) if diffs else
+                f"{len(fresh)} edits of the registered file re-run, every row reproduced")
