@@ -32,8 +32,8 @@ def _sha(path) -> str:
 def test_exhibits_are_byte_for_byte_read_only_and_logged(built_case):
     case = open_case(built_case.case)
     exhibits = case.exhibits()
-    assert [e.exhibit_id for e in exhibits] == ["E01", "E02", "E03"]
-    for ex, src in zip(exhibits, built_case.copies + [built_case.unmarked]):
+    assert [e.exhibit_id for e in exhibits] == ["E01", "E02", "E03", "E04"]
+    for ex, src in zip(exhibits, built_case.copies + [built_case.unmarked, built_case.forged]):
         stored = built_case.case / ex.file
         assert stored.read_bytes() == src.read_bytes()
         assert ex.sha256 == _sha(src) == _sha(stored)
@@ -193,11 +193,14 @@ def test_examine_json_lines(built_case, monkeypatch, capsys, tmp_path):
                  "--no-robustness", "--json"])
     assert code == 0
     rows = [json.loads(x) for x in capsys.readouterr().out.splitlines()]
-    assert [r["exhibit_id"] for r in rows] == ["E01", "E02", "E03"]
-    assert [r["detected"] for r in rows] == [True, True, False]
+    assert [r["exhibit_id"] for r in rows] == ["E01", "E02", "E03", "E04"]
+    assert [r["detected"] for r in rows] == [True, True, False, True]
+    assert [r["content_mismatch"] for r in rows] == [False, False, False, True]
     for r in rows:
         assert set(r) >= {"file", "detected", "false_alarm_probability", "work_id",
-                          "message_psnr_db", "geometry"}
+                          "message_psnr_db", "geometry", "content", "content_mismatch",
+                          "evaluation"}
+        assert set(r["evaluation"]["log10_lr"]) == {"mark", "content", "combined"}
 
 
 def test_unmarked_copy_of_the_original_is_matched_by_appearance_only(built_case, tmp_path):

@@ -26,13 +26,14 @@ def test_clopper_pearson_bounds_match_scipy_beta_quantiles(k, n):
 def test_tail_ratio_against_scipy():
     hp = [5, 9, 12, 30, 40, 55, 80, 120, 300, 1000]
     hd = [0, 1, 1, 2, 2, 3, 3, 4, 5, 6] * 10
-    # observed 40 >= threshold 10: P(S >= 40 | Hp) = 6/10, lower-bounded; P(S >= 40 | Hd) = 0/100,
+    # observed 40 >= threshold 10: P(S >= 10 | Hp) = 8/10, lower-bounded; P(S >= 10 | Hd) = 0/100,
     # upper-bounded (scipy.stats.beta.ppf gives both Clopper-Pearson limits).
-    want = math.log10(stats.beta.ppf(0.05, 6, 5)) - math.log10(stats.beta.ppf(0.95, 1, 100))
-    assert lr.log10_lr_tail(40, hp, hd, threshold=10) == pytest.approx(want, rel=1e-9)
+    want = math.log10(stats.beta.ppf(0.05, 8, 3)) - math.log10(stats.beta.ppf(0.95, 1, 100))
+    assert lr.log10_lr_decision(40, hp, hd, threshold=10) == pytest.approx(want, rel=1e-9)
+    assert lr.log10_lr_decision(1000, hp, hd, threshold=10) == pytest.approx(want, rel=1e-9)
     # below the threshold: the event "S < 10": Hp 2/10 (upper bound), Hd 100/100 (lower bound)
     want = math.log10(stats.beta.ppf(0.95, 3, 8)) - math.log10(stats.beta.ppf(0.05, 100, 1))
-    assert lr.log10_lr_tail(3, hp, hd, threshold=10) == pytest.approx(want, rel=1e-9)
+    assert lr.log10_lr_decision(3, hp, hd, threshold=10) == pytest.approx(want, rel=1e-9)
     assert want < 0
 
 
@@ -84,11 +85,11 @@ def test_opinion_combines_only_consistent_lines():
     ok = opinion.evaluate(exhibit="Exhibit 1", work_id="W-1", owner="Ilse Marrow", detected=True,
                           threshold=1e-9, content=_content(True, 2.6), agreement={"agree": True})
     assert ok["log10_lr"]["combined"] == lr.CAP_LOG10 and ok["derivation_claimed"]
-    assert "extremely strong support for the proposition that exhibit 1 derives" in ok["verbal"]
+    assert "extremely strong support for the proposition that Exhibit 1 derives" in ok["verbal"]
     bad = opinion.evaluate(exhibit="Exhibit 2", work_id="W-1", owner="Ilse Marrow", detected=True,
                            threshold=1e-9, content=_content(False, -1.2), agreement=None)
     assert bad["log10_lr"]["combined"] is None and not bad["derivation_claimed"]
-    assert bad["reported_log10_lr"] == -1.2 and "rather than the proposition that exhibit 2 derives" \
+    assert bad["reported_log10_lr"] == -1.2 and "rather than the proposition that Exhibit 2 derives" \
         in bad["verbal"]
     assert "transplanted" in bad["combination"]
     assert "transplanted" in opinion.finding_words(detected=True, work_id="W-1",

@@ -52,7 +52,7 @@ def test_sound_bundle_passes_every_check(built_case, capsys):
     assert verdict["ok"] and verdict["failed"] == [] and verdict["checks"] == len(checks)
     names = {c["check"] for c in checks}
     assert {"manifest signature", "file hashes", "custody log", "custody of exhibits",
-            "E01 re-run", "E02 re-run", "E03 re-run", "dossier data", "figures",
+            "E01 re-run", "E02 re-run", "E03 re-run", "E04 re-run", "dossier data", "figures",
             "HTML dossier", "PDF signature", "PDF content",
             f"robustness {built_case.work_id}"} <= names
     disclosure = [c for c in checks if c["check"].startswith("disclosure ")]

@@ -112,7 +112,7 @@ def content_line(exhibit_luma: np.ndarray, *, reference_luma: np.ndarray | None 
             "genuine": {"count": cal["genuine"]["count"],
                         "reaching_threshold": sum(1 for v in cal["genuine"]["samples"]
                                                   if v >= threshold)},
-            "log10_lr": round(lr.log10_lr_tail(value, cal["genuine"]["samples"],
+            "log10_lr": round(lr.log10_lr_decision(value, cal["genuine"]["samples"],
                                                cal["null"]["samples"], threshold=threshold), 3),
         }
     if work_fingerprint:
@@ -120,7 +120,7 @@ def content_line(exhibit_luma: np.ndarray, *, reference_luma: np.ndarray | None 
         d = fp.fingerprint_distance(fp.perceptual_fingerprint(exhibit_luma), work_fingerprint)
         limit = int(fp.MATCH_DISTANCE)
         # Closer is a smaller distance: the tail arithmetic takes the negated distance.
-        log10_lr = lr.log10_lr_tail(-d, [-v for v in fcal["genuine"]["samples"]],
+        log10_lr = lr.log10_lr_decision(-d, [-v for v in fcal["genuine"]["samples"]],
                                     [-v for v in fcal["null"]["samples"]], threshold=-limit)
         return {
             "basis": "perceptual fingerprint of the work record",

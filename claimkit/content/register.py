@@ -35,6 +35,7 @@ References
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
@@ -173,10 +174,14 @@ def _fit(ref: Features, exh: Features, mirrored: bool) -> tuple[np.ndarray | Non
     def plausible(model, *_):
         return SCALE_RANGE[0] <= 1.0 / max(float(model.scale), 1e-12) <= SCALE_RANGE[1]
 
-    model, inliers = ransac((src, dst), SimilarityTransform, min_samples=2,
-                            residual_threshold=threshold, max_trials=RANSAC_TRIALS,
-                            is_model_valid=plausible, stop_probability=0.9999,
-                            rng=RANSAC_SEED)
+    with warnings.catch_warnings():
+        # "Estimated model is not valid": no plausible model, the usual case for unrelated
+        # pictures, reported below as no match.
+        warnings.simplefilter("ignore", UserWarning)
+        model, inliers = ransac((src, dst), SimilarityTransform, min_samples=2,
+                                residual_threshold=threshold, max_trials=RANSAC_TRIALS,
+                                is_model_valid=plausible, stop_probability=0.9999,
+                                rng=RANSAC_SEED)
     if model is None or inliers is None:
         return None, 0, np.zeros(0, bool)
     n = int(inliers.sum())

@@ -63,6 +63,9 @@ def draw_figures(root: Path, data: dict) -> dict[str, bytes]:
         out[names["surface"]] = figures.png_bytes(figures.surface_figure(a["surface"]))
         out[names["decoys"]] = figures.png_bytes(figures.decoy_figure(finding["decoy_scores"],
                                                                       r["score_pilot"]))
+        if "registered" in names:
+            reg = read_picture(root / r["reference"]["file"]).pixels
+            out[names["registered"]] = figures.png_bytes(figures.thumbnail(reg))
         if "aligned" in names:
             al = r["alignment"]
             ref = to_luma(read_picture(root / r["reference"]["file"]).pixels).astype(np.float64)
@@ -173,4 +176,5 @@ def build_report(case: Case, profile, *, out_pdf: Path | None = None) -> dict:
     return {"case_id": case.case_id, "pdf": str(root / PDF), "html": str(root / HTML),
             "data": str(root / DATA), "pdf_sha256": sha256_hex(signed),
             "manifest_sha256": sha256_file(root / MANIFEST), "files": len(manifest["files"]),
-            "summary": data["summary"], "out": None if out_pdf is None else str(out_pdf)}
+            "summary": data["summary"], "warnings": data["warnings"],
+            "out": None if out_pdf is None else str(out_pdf)}

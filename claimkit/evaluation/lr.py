@@ -3,7 +3,7 @@
 A likelihood ratio compares the probability of the findings under two
 propositions, ``LR = P(E | Hp) / P(E | Hd)`` [1]_. Each line of evidence here
 reports the ratio for an *event* it observed (the mark was found; the content
-statistic reached at least the observed value), with both probabilities taken
+statistic reached its threshold), with both probabilities taken
 from measured frequencies. Frequencies from a finite calibration set are
 replaced by the one-sided 95 % Clopper-Pearson bound [2]_ that moves the ratio
 towards 1, so that a ratio never rests on an estimate of zero: the numerator
@@ -38,7 +38,7 @@ __all__ = [
     "cap",
     "combine",
     "log10_lr_detection",
-    "log10_lr_tail",
+    "log10_lr_decision",
     "verbal",
 ]
 
@@ -124,9 +124,9 @@ def _ratio(p_hp: tuple[int, int], p_hd: tuple[int, int]) -> float:
     return math.log10(num) - math.log10(den)
 
 
-def log10_lr_tail(observed: float, hp_samples: Sequence[float], hd_samples: Sequence[float],
-                  *, threshold: float) -> float:
-    """log10 LR of a score's event: at least ``observed`` (at or above ``threshold``), else below.
+def log10_lr_decision(observed: float, hp_samples: Sequence[float], hd_samples: Sequence[float],
+                      *, threshold: float) -> float:
+    """log10 LR of a decision: the statistic at or above ``threshold``, or below it.
 
     Parameters
     ----------
@@ -136,21 +136,29 @@ def log10_lr_tail(observed: float, hp_samples: Sequence[float], hd_samples: Sequ
         The statistic measured where Hp is true (genuine copies) and where Hd
         is true (unrelated pictures).
     threshold : float
-        The decision point. At or above it the event is ``S >= observed``;
-        below it ``S < threshold`` (the event "does not correspond"), which
-        does not depend on how far below.
+        The decision point, fixed before the exhibit was seen.
 
     Returns
     -------
     float
-        Capped log10 likelihood ratio; frequencies bounded as the module says.
+        Capped log10 likelihood ratio of the event the observation falls in,
+        ``S >= threshold`` or ``S < threshold``; frequencies bounded as the
+        module says.
+
+    Notes
+    -----
+    The event, not the exact value, is weighed: the ratio of ``S >= s`` for an
+    ``s`` far above every calibration sample would rest on no measurement at
+    all under either proposition, while the decision's frequencies are
+    measured on both sides. This gives up some strength and keeps every
+    number measured.
     """
     hp, hd = list(hp_samples), list(hd_samples)
     if not hp or not hd:
         raise ValueError("both calibration samples are needed")
     if observed >= threshold:
-        k1 = sum(1 for v in hp if v >= observed)
-        k2 = sum(1 for v in hd if v >= observed)
+        k1 = sum(1 for v in hp if v >= threshold)
+        k2 = sum(1 for v in hd if v >= threshold)
     else:
         k1 = sum(1 for v in hp if v < threshold)
         k2 = sum(1 for v in hd if v < threshold)

@@ -80,7 +80,17 @@ def evaluate(*, exhibit: str, work_id: str | None, owner: str | None, detected: 
     robustness : dict or None
         The case's robustness battery of the registered file, if run.
     """
-    w = work_id or "the registered work"
+    if work_id is None:
+        # No work named by a mark or matched by appearance: nothing to state propositions about.
+        return {"propositions": None,
+                "log10_lr": {"mark": None, "content": None, "combined": None},
+                "lines": {}, "combination": "not evaluated: no registered work is named by a "
+                "mark or matched by appearance", "reported_log10_lr": None,
+                "cap_log10": lr.CAP_LOG10,
+                "verbal": "Not evaluated: no registered work is named by a mark or matched by "
+                          "appearance, so there are no source-level propositions to weigh.",
+                "scale": SCALE_NAME, "derivation_claimed": False}
+    w = work_id
     who = owner or "the owner"
     hp = f"{exhibit} derives from work {w} of {who}"
     hd = f"{exhibit} derives from a picture that is not work {w}"
@@ -132,8 +142,7 @@ def evaluate(*, exhibit: str, work_id: str | None, owner: str | None, detected: 
         "combination": why,
         "reported_log10_lr": round(reported, 3),
         "cap_log10": lr.CAP_LOG10,
-        "verbal": lr.verbal(reported, "the proposition that " + hp[0].lower() + hp[1:],
-                            "the proposition that " + hd[0].lower() + hd[1:]),
+        "verbal": lr.verbal(reported, "the proposition that " + hp, "the proposition that " + hd),
         "scale": SCALE_NAME,
         "derivation_claimed": bool(detected and not mismatch and reported > 0
                                    and (not has_content or content["corresponds"])),
