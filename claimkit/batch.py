@@ -340,8 +340,8 @@ class _MarkBatch:
         bits = payload.pack(self.profile.owner_tag, job.serial,
                             self.profile.payload_tag(job.serial))
         self.in_flight.add(staged)
-        from claimkit.workflow import FileMetadata, registry_name
         from claimkit.evidence.profile import work_id_for
+        from claimkit.workflow import FileMetadata, registry_name
 
         metadata = FileMetadata(rights=self.rights,
                                 work_id=work_id_for(self.profile.owner_tag, job.serial),

@@ -32,7 +32,7 @@ def _sha(path) -> str:
 def test_exhibits_are_byte_for_byte_read_only_and_logged(built_case):
     case = open_case(built_case.case)
     exhibits = case.exhibits()
-    assert [e.exhibit_id for e in exhibits] == ["E01", "E02", "E03", "E04"]
+    assert [e.exhibit_id for e in exhibits] == ["exhibit-1", "exhibit-2", "exhibit-3", "exhibit-4"]
     for ex, src in zip(exhibits, built_case.copies + [built_case.unmarked, built_case.forged]):
         stored = built_case.case / ex.file
         assert stored.read_bytes() == src.read_bytes()
@@ -59,7 +59,7 @@ def test_exhibits_are_byte_for_byte_read_only_and_logged(built_case):
 def test_intake_refuses_duplicates_non_images_and_missing_files(built_case, tmp_path, profile):
     case = new_case(tmp_path / "c", "Refusals", profile)
     add_exhibit(case, built_case.copies[0], source="shop", profile=profile)
-    with pytest.raises(InputError, match="already exhibit E01"):
+    with pytest.raises(InputError, match="already exhibit exhibit-1"):
         add_exhibit(case, built_case.copies[0], source="shop", profile=profile)
     junk = tmp_path / "notes.jpg"
     junk.write_bytes(b"this is not a photo at all")
@@ -74,7 +74,7 @@ def test_intake_refuses_duplicates_non_images_and_missing_files(built_case, tmp_
         new_case(tmp_path / "c", "again", profile)
     # The failed intakes left nothing behind.
     assert sorted(p.name for p in (tmp_path / "c" / "exhibits").iterdir()) == \
-        ["E01-tidewater-mug-listing.jpg", "E01.json"]
+        ["exhibit-1-tidewater-mug-listing.jpg", "exhibit-1.json"]
 
 
 def test_source_file_is_never_modified(built_case):
@@ -101,7 +101,7 @@ def test_altered_exhibit_is_caught_before_use(built_case, tmp_path, profile):
 
 def test_marked_copies_found_unmarked_not(built_case):
     case = open_case(built_case.case)
-    f1, f2, f3 = (case.finding(e) for e in ("E01", "E02", "E03"))
+    f1, f2, f3 = (case.finding(e) for e in ("exhibit-1", "exhibit-2", "exhibit-3"))
     for f in (f1, f2):
         r = f["result"]
         assert r["detected"] and r["work_id"] == built_case.work_id and r["registered"]
@@ -113,7 +113,7 @@ def test_marked_copies_found_unmarked_not(built_case):
 
 def test_decoy_control_is_the_null_the_score_is_set_against(built_case):
     case = open_case(built_case.case)
-    for e in ("E01", "E02", "E03"):
+    for e in ("exhibit-1", "exhibit-2", "exhibit-3"):
         f = case.finding(e)
         scores = f["decoy_scores"]
         assert len(scores) == DECOYS == f["decoy_summary"]["count"]
@@ -123,7 +123,7 @@ def test_decoy_control_is_the_null_the_score_is_set_against(built_case):
         assert again.keys() == f["decoy_summary"].keys()
         for k, v in again.items():
             assert f["decoy_summary"][k] == pytest.approx(v, abs=2e-4), k
-    marked, unmarked = case.finding("E01"), case.finding("E03")
+    marked, unmarked = case.finding("exhibit-1"), case.finding("exhibit-3")
     assert marked["result"]["score_pilot"] > max(marked["decoy_scores"])
     assert marked["decoy_summary"]["at_or_above_observed"] == 0
     # Under no mark the owner's key is just one more random key: not far above them.
@@ -148,16 +148,16 @@ def test_alignment_recovers_the_crop_and_measures_similarity(built_case):
     x0, y0, x1, y1 = edits["crop"]
     sw, sh = round(W * s), round(H * s)
     want = [round(x0 * sw) / s, round(y0 * sh) / s, round(x1 * sw) / s, round(y1 * sh) / s]
-    al = case.finding("E01")["alignment"]
+    al = case.finding("exhibit-1")["alignment"]
     assert al["aligned"]
     assert np.allclose(al["crop_box_px"], want, atol=4), (al["crop_box_px"], want)
     assert al["scale"] == pytest.approx(s, abs=0.01)
     assert abs(al["rotation_deg"]) < 0.3
     assert al["ssim"] > 0.9
-    turned = case.finding("E02")["alignment"]
+    turned = case.finding("exhibit-2")["alignment"]
     assert turned["aligned"] and turned["rotation_deg"] == pytest.approx(4.0, abs=0.3)
     assert turned["scale"] == pytest.approx(0.8, abs=0.01) and turned["ssim"] > 0.85
-    ref = case.finding("E01")["reference"]
+    ref = case.finding("exhibit-1")["reference"]
     assert ref["kind"] == "marked"
     assert ref["sha256"] == _sha(built_case.studio / "morning-cup-web.jpg")
 
@@ -171,7 +171,7 @@ def test_alignment_ssim_matches_skimage_on_the_stored_arrays(built_case):
     from claimkit.imageio import read_picture, to_luma
 
     case = open_case(built_case.case)
-    f = case.finding("E01")
+    f = case.finding("exhibit-1")
     with np.load(built_case.case / f["arrays"]["file"]) as a:
         aligned, mask = a["aligned"].astype(float), a["mask"]
     ref = to_luma(read_picture(built_case.case / f["reference"]["file"]).pixels).astype(float)
@@ -193,7 +193,7 @@ def test_examine_json_lines(built_case, monkeypatch, capsys, tmp_path):
                  "--no-robustness", "--json"])
     assert code == 0
     rows = [json.loads(x) for x in capsys.readouterr().out.splitlines()]
-    assert [r["exhibit_id"] for r in rows] == ["E01", "E02", "E03", "E04"]
+    assert [r["exhibit_id"] for r in rows] == ["exhibit-1", "exhibit-2", "exhibit-3", "exhibit-4"]
     assert [r["detected"] for r in rows] == [True, True, False, True]
     assert [r["content_mismatch"] for r in rows] == [False, False, False, True]
     for r in rows:

@@ -79,15 +79,15 @@ def test_genuine_copy_corresponds_and_reads_the_true_geometry(published, name):
 
 def test_case_findings_carry_both_lines(built_case):
     case = open_case(built_case.case)
-    for e in ("E01", "E02"):
+    for e in ("exhibit-1", "exhibit-2"):
         f = case.finding(e)
         assert f["content_mismatch"] is False and f["content"]["corresponds"]
         assert f["content"]["agreement_with_mark"]["agree"]
         ev = f["evaluation"]
         assert ev["derivation_claimed"] and ev["log10_lr"]["combined"] is not None
-        assert ev["propositions"]["Hp"].startswith(f"Exhibit {int(e[1:])} derives from work")
+        assert ev["propositions"]["Hp"].startswith(f"Exhibit {e.split('-')[1]} derives from work")
         assert f["alignment"]["how"] == "content line"
-    forged = case.finding("E04")
+    forged = case.finding("exhibit-4")
     assert forged["result"]["detected"] and forged["result"]["work_id"] == built_case.work_id
     assert forged["content_mismatch"] is True
     ev = forged["evaluation"]
@@ -105,9 +105,9 @@ def test_report_json_warnings_and_dossier_text(built_case, tmp_path, monkeypatch
     assert main(["--home", str(built_case.home), "report", str(work), "--json"]) == 0
     rep = json.loads(capsys.readouterr().out.strip().splitlines()[-1])
     codes = {(w["code"], w["exhibit"]) for w in rep["warnings"]}
-    assert codes == {("content-mismatch", "E04"), ("registered-after-found", "E04")}
+    assert codes == {("content-mismatch", "exhibit-4"), ("registered-after-found", "exhibit-4")}
     assert all(set(w) == {"code", "exhibit", "text"} for w in rep["warnings"])
-    assert rep["summary"]["derived"] == ["E01", "E02"]
+    assert rep["summary"]["derived"] == ["exhibit-1", "exhibit-2"]
     pdf = work / "report" / "dossier.pdf"
     # poppler's pdftotext reads the words as a reader's copy would.
     text = subprocess.run(["pdftotext", str(pdf), "-"], capture_output=True, text=True,

@@ -32,7 +32,7 @@ def test_demo_runs_end_to_end(tmp_path, monkeypatch):
     out = run_demo(Path("demo"), echo=lines.append, scenario=sc, decoys=8,
                    robustness=False)   # the battery itself is covered by the case tests
     assert out["verified"], out["failed"]
-    assert out["detected"] == ["E01", "E02"]
+    assert out["detected"] == ["exhibit-1", "exhibit-2"]
     text = "\n".join(lines)
     assert "Ilse Marrow" in text and "Harwick Bay Studio" in text and "Tidewater" in text
     assert "timestamp token" in text and "all" in text and "checks passed" in text

@@ -158,7 +158,7 @@ def test_claimed_copies_go_into_a_case(profile, finds, tmp_path, capsys):
     assert len(exhibits) == 2
     claimed = {sha256_file(r["file"]) for r in rows if r.get("detected")}
     assert {e.sha256 for e in exhibits} == claimed
-    assert sorted(r["exhibit_id"] for r in rows if r.get("detected")) == ["E01", "E02"]
+    assert sorted(r["exhibit_id"] for r in rows if r.get("detected")) == ["exhibit-1", "exhibit-2"]
     # Scanning again does not take the same file in twice.
     scan.scan_folders(profile, [finds["web"]], workers=1, case_dir=case_dir)
     assert "already exhibit" in capsys.readouterr().err
@@ -198,7 +198,7 @@ def test_report_is_not_left_half_written(profile, finds, tmp_path, monkeypatch, 
     monkeypatch.setattr(scan, "scan_task", boom)
     with pytest.raises(RuntimeError), monkeypatch.context() as m:
         m.setattr(scan, "_human_line", boom)
-        scan.scan_folders(profile, [finds["web"]], workers=1, report=report)
+        scan.scan_folders(profile, [finds["web"]], workers=1, report=report, force=True)
     assert report.read_text() == "an older report\n"
     assert not list(tmp_path.glob(".scan.csv.*"))
 

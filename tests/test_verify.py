@@ -52,7 +52,7 @@ def test_sound_bundle_passes_every_check(built_case, capsys):
     assert verdict["ok"] and verdict["failed"] == [] and verdict["checks"] == len(checks)
     names = {c["check"] for c in checks}
     assert {"manifest signature", "file hashes", "custody log", "custody of exhibits",
-            "E01 re-run", "E02 re-run", "E03 re-run", "E04 re-run", "dossier data", "figures",
+            "exhibit-1 re-run", "exhibit-2 re-run", "exhibit-3 re-run", "exhibit-4 re-run", "dossier data", "figures",
             "HTML dossier", "PDF signature", "PDF content",
             f"robustness {built_case.work_id}"} <= names
     disclosure = [c for c in checks if c["check"].startswith("disclosure ")]
@@ -94,35 +94,35 @@ def test_any_single_byte_change_is_named(built_case, tmp_path):
 
 def test_a_changed_exhibit_fails_the_full_verify_too(built_case, tmp_path):
     work = _unpack(built_case.bundle, tmp_path / "w")
-    p = next((work / "exhibits").glob("E01-*"))
+    p = next((work / "exhibits").glob("exhibit-1-*"))
     data = bytearray(p.read_bytes())
     data[-100] ^= 0x01
     p.write_bytes(bytes(data))
     rep = verify_bundle(work, rerun=False)
     text = _failed(rep)
     assert f"{p.relative_to(work).as_posix()}: SHA-256 differs" in text
-    assert "E01 exhibit" in text and "differs from the intake record" in text
+    assert "exhibit-1 exhibit" in text and "differs from the intake record" in text
 
 
 def test_removed_exhibit_is_named(built_case, tmp_path):
     work = _unpack(built_case.bundle, tmp_path / "w")
-    p = next((work / "exhibits").glob("E02-*"))
+    p = next((work / "exhibits").glob("exhibit-2-*"))
     p.unlink()
     rep = verify_bundle(work, rerun=False)
     text = _failed(rep)
-    assert "listed but missing" in text and "E02 exhibit" in text and "exhibit removed" in text
+    assert "listed but missing" in text and "exhibit-2 exhibit" in text and "exhibit removed" in text
 
 
 def test_exhibit_removed_with_its_records_and_re_signed_is_still_named(built_case, tmp_path):
     work = _unpack(built_case.bundle, tmp_path / "w")
-    for p in list((work / "exhibits").glob("E02*")) + list((work / "findings").glob("E02*")):
+    for p in list((work / "exhibits").glob("exhibit-2*")) + list((work / "findings").glob("exhibit-2*")):
         p.unlink()
     doc = json.loads((work / "manifest.json").read_bytes())
     doc["files"] = [f for f in doc["files"] if (work / f["path"]).exists()]
     (work / "manifest.json").write_bytes(canonical_json(doc))
     _resign(work, built_case.home)
     rep = verify_bundle(work, rerun=False)
-    assert "E02: taken in according to the custody log, but not in the bundle" in _failed(rep)
+    assert "exhibit-2: taken in according to the custody log, but not in the bundle" in _failed(rep)
 
 
 def test_replaced_key_is_named(built_case, tmp_path):
@@ -168,7 +168,7 @@ def test_edited_number_in_the_dossier_data_is_named(built_case, tmp_path):
 def test_edited_finding_is_caught_even_when_the_owner_re_signs(built_case, tmp_path):
     """An owner who edits a score and re-signs everything is still caught by the re-run."""
     work = _unpack(built_case.bundle, tmp_path / "w")
-    p = work / "findings" / "E01.json"
+    p = work / "findings" / "exhibit-1.json"
     f = json.loads(p.read_bytes())
     f["result"]["score_pilot"] = round(f["result"]["score_pilot"] + 3.0, 4)
     f["result"]["log10_false_alarm_probability"] -= 10
@@ -177,7 +177,7 @@ def test_edited_finding_is_caught_even_when_the_owner_re_signs(built_case, tmp_p
     _resign(work, built_case.home)
     rep = verify_bundle(work, robustness=False)
     names = {c["check"] for c in rep.failures}
-    assert "E01 re-run" in names, _failed(rep)
+    assert "exhibit-1 re-run" in names, _failed(rep)
     assert "custody of exhibits" in names          # not the finding that was logged
     assert "dossier data" in names                 # the dossier no longer matches its findings
     assert "score_pilot: stored" in _failed(rep)
@@ -187,7 +187,7 @@ def test_edited_finding_is_caught_even_when_the_owner_re_signs(built_case, tmp_p
 
 def test_exit_code_and_error_line(built_case, tmp_path, capsys):
     work = _unpack(built_case.bundle, tmp_path / "w")
-    (work / "exhibits" / "E03.json").write_bytes(b"{}")
+    (work / "exhibits" / "exhibit-3.json").write_bytes(b"{}")
     assert main(["verify", str(work)]) == 1
     captured = capsys.readouterr()
     assert "FAIL" in captured.out
@@ -246,11 +246,11 @@ def test_folder_with_a_link_out_is_refused(built_case, tmp_path):
 
 
 @pytest.mark.parametrize("target, field, value", [
-    ("findings/E01.json", "arrays", {"file": "../../outside.npz", "sha256": "0" * 64}),
-    ("findings/E01.json", "reference", {"file": "/etc/hostname", "kind": "marked",
+    ("findings/exhibit-1.json", "arrays", {"file": "../../outside.npz", "sha256": "0" * 64}),
+    ("findings/exhibit-1.json", "reference", {"file": "/etc/hostname", "kind": "marked",
                                          "sha256": "0" * 64}),
-    ("exhibits/E01.json", "file", "exhibits/../../../etc/hostname"),
-    ("exhibits/E01.json", "exhibit_id", "../E01"),
+    ("exhibits/exhibit-1.json", "file", "exhibits/../../../etc/hostname"),
+    ("exhibits/exhibit-1.json", "exhibit_id", "../exhibit-1"),
 ])
 def test_paths_named_inside_records_are_not_followed(built_case, tmp_path, target, field, value):
     work = _unpack(built_case.bundle, tmp_path / "w")

@@ -15,7 +15,6 @@ Numbers go to ``findings/EXX.json`` (canonical JSON) and arrays to
 from __future__ import annotations
 
 import os
-import re
 import shutil
 import stat
 from dataclasses import asdict, is_dataclass
@@ -44,7 +43,6 @@ __all__ = [
     "decoy_summary",
     "examine_case",
     "examine_exhibit",
-    "exhibit_label",
     "find_reference",
     "jsonable",
     "match_work",
@@ -80,12 +78,6 @@ def decoy_summary(scores: list[float], observed: float) -> dict:
     }
 
 
-def exhibit_label(exhibit_id: str) -> str:
-    """How the dossier and the propositions name an exhibit ("Exhibit 1")."""
-    m = re.search(r"(\d+)$", exhibit_id)
-    return f"Exhibit {int(m.group(1))}" if m else f"Exhibit {exhibit_id}"
-
-
 def alignment_geometry(content: dict) -> dict | None:
     """The content line's reference-to-exhibit map, for :func:`claimkit.case.align.align`.
 
@@ -105,7 +97,7 @@ def weigh_lines(luma: np.ndarray, *, exhibit_id: str, rep: dict, threshold: floa
     """The content line and the evaluation of one exhibit (shared with ``verify``'s re-run)."""
     what = {"marked": "registered marked file (as published)",
             "original": "registered original file"}.get(reference_kind or "", "reference")
-    return jsonable(weigh(luma, label=label or exhibit_label(exhibit_id), mark=rep, threshold=threshold,
+    return jsonable(weigh(luma, label=label or layout.exhibit_label(exhibit_id), mark=rep, threshold=threshold,
                           work_id=(match or {}).get("work_id"), work_record=work_record,
                           owner=owner, reference_luma=reference_luma, reference=what,
                           robustness=robustness))
@@ -296,6 +288,8 @@ def examine_case(case: Case, profile, *, decoys: int = DEFAULT_DECOYS,
     cache: dict = {}
     out = []
     for ex in exhibits:
+        if ex.withdrawal is not None:
+            continue     # withdrawn from the claims: kept in the record, not examined again
         doc = examine_exhibit(case, ex, profile, decoys=decoys, search=search,
                               threshold=threshold, robustness_cache=cache, workers=workers,
                               robustness=robustness)

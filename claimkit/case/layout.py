@@ -11,6 +11,8 @@ serves the case (which writes exhibits, findings and references), the dossier
     exhibits/E01.json             its intake record
     references/SHA256.EXT         the registered file a copy is aligned to (by hash)
     findings/E01.json, E01.npz    the examination: numbers, arrays
+    captures/cap-*.warc.gz|json   web captures: the WARC, its record, snapshots, token
+    captures/warc-*               a crawler's WARC file that exhibits were taken from
     handover/public-key.pem       the owner's public key
     handover/disclosures/WORK/    a key disclosure per matched work
     handover/custody.jsonl        a copy of the custody log
@@ -24,42 +26,52 @@ The path-safety rules for names read from a bundle live here too
 
 from __future__ import annotations
 
+import re
 from pathlib import Path, PurePosixPath
 
 from claimkit.errors import InputError
 
 __all__ = [
     "BUNDLE_PARTS",
+    "CAPTURES",
     "CASE_FILE",
     "CUSTODY_COPY",
     "DATA",
     "DISCLOSURES",
     "EXHIBITS",
+    "EXHIBIT_ID",
     "FIGURES",
     "FINDINGS",
     "HANDOVER",
     "HTML",
+    "INTAKE_GLOBS",
     "MANIFEST",
     "MANIFEST_SIG",
     "PDF",
     "PUBLIC_KEY",
     "REFERENCES",
     "REPORT",
+    "WITHDRAWN",
     "arrays_file",
     "bundle_files",
     "exhibit_file",
+    "exhibit_id_for",
+    "exhibit_label",
+    "exhibit_number",
     "figure_file",
     "finding_file",
     "inside",
     "intake_record",
     "reference_file",
     "unsafe_name",
+    "withdrawal_record",
 ]
 
 CASE_FILE = "case.json"
 EXHIBITS = "exhibits"
 REFERENCES = "references"
 FINDINGS = "findings"
+CAPTURES = "captures"
 REPORT = "report"
 FIGURES = f"{REPORT}/figures"
 DATA = f"{REPORT}/dossier.json"
@@ -73,7 +85,39 @@ MANIFEST = "manifest.json"
 MANIFEST_SIG = "manifest.sig"
 
 #: What a bundle holds besides the manifest and its signature: these files and folders.
-BUNDLE_PARTS = (CASE_FILE, EXHIBITS, REFERENCES, FINDINGS, REPORT, HANDOVER)
+BUNDLE_PARTS = (CASE_FILE, EXHIBITS, REFERENCES, FINDINGS, CAPTURES, REPORT, HANDOVER)
+
+
+# Exhibit ids. "E01" read to a forensic examiner as the segment extension of a disk-image
+# evidence format, so exhibits are now "exhibit-1", "exhibit-2", ... (shown as "Exhibit 1");
+# cases made before keep their E01-style ids and read as before.
+EXHIBIT_ID = re.compile(r"exhibit-([1-9][0-9]{0,5})|E([0-9]{2,6})")
+#: Intake records, new style and old, in ``exhibits/``.
+INTAKE_GLOBS = ("exhibit-[0-9]*.json", "E[0-9][0-9]*.json")
+#: Withdrawals (``claimkit case withdraw``): ``exhibits/withdrawn/ID.json``.
+WITHDRAWN = f"{EXHIBITS}/withdrawn"
+
+
+def exhibit_id_for(number: int) -> str:
+    """The id of the ``number``-th exhibit of a case."""
+    return f"exhibit-{int(number)}"
+
+
+def exhibit_number(exhibit_id: object) -> int | None:
+    """The number of an exhibit id (either style), None if it is not one."""
+    m = EXHIBIT_ID.fullmatch(exhibit_id) if isinstance(exhibit_id, str) else None
+    return None if m is None else int(m.group(1) or m.group(2))
+
+
+def exhibit_label(exhibit_id: str) -> str:
+    """How people read an exhibit id: "Exhibit 3"."""
+    n = exhibit_number(exhibit_id)
+    return f"Exhibit {n}" if n is not None else str(exhibit_id)
+
+
+def withdrawal_record(exhibit_id: str) -> str:
+    """The withdrawal of an exhibit (kept in the record, never deleted)."""
+    return f"{WITHDRAWN}/{exhibit_id}.json"
 
 
 def intake_record(exhibit_id: str) -> str:

@@ -44,6 +44,7 @@ __all__ = [
     "checked_exhibit_path",
     "new_case",
     "open_case",
+    "withdraw_exhibit",
 ]
 
 CASE_TYPE = "claimkit/case/v1"
@@ -57,6 +58,12 @@ class Exhibit:
 
     exhibit_id: str
     record: dict
+    withdrawal: dict | None = None
+
+    @property
+    def label(self) -> str:
+        """How people read the id: "Exhibit 3"."""
+        return layout.exhibit_label(self.exhibit_id)
 
     @property
     def file(self) -> str:
@@ -84,17 +91,19 @@ class Case:
         return self.info["case_id"]
 
     def exhibits(self) -> list[Exhibit]:
-        """Every exhibit, in intake order (E01, E02, ...)."""
+        """Every exhibit, in intake order (exhibit-1, exhibit-2, ...; E01, ... in older cases)."""
         folder = self.root / layout.EXHIBITS
         out = []
         if folder.is_dir():
-            for p in sorted(folder.glob("E[0-9][0-9]*.json")):
+            for p in sorted(q for g in layout.INTAKE_GLOBS for q in folder.glob(g)):
                 try:
                     rec = json.loads(p.read_bytes())
                 except ValueError:
                     raise InputError("intake record is not JSON", path=p) from None
-                out.append(Exhibit(rec["exhibit_id"], rec))
-        out.sort(key=lambda e: int(e.exhibit_id[1:]))
+                w = self.root / layout.withdrawal_record(rec["exhibit_id"])
+                out.append(Exhibit(rec["exhibit_id"], rec,
+                                   json.loads(w.read_bytes()) if w.is_file() else None))
+        out.sort(key=lambda e: layout.exhibit_number(e.exhibit_id) or 0)
         return out
 
     def exhibit(self, exhibit_id: str) -> Exhibit:
@@ -186,8 +195,25 @@ def _sniff(path: Path) -> tuple[str, int | None, int | None, str | None]:
         return "application/octet-stream", None, None, str(exc) or type(exc).__name__
 
 
+def _check_examinable(src: Path) -> None:
+    """Refuse at intake what no examination could read (exit 2): a copy taken in must be
+    examinable, or the case would be stuck with an exhibit that every later step fails on.
+
+    The whole picture is decoded (a truncated file fails here), under the pixel limit
+    (a decompression bomb fails here), and must be large enough to examine.
+    """
+    from claimkit.imageio import read_picture
+    from claimkit.workflow import MIN_EXAMINE_SIDE
+
+    pic = read_picture(src)
+    if min(pic.width, pic.height) < MIN_EXAMINE_SIDE:
+        raise InputError(f"image is {pic.width}x{pic.height} pixels; an examination needs at "
+                         f"least {MIN_EXAMINE_SIDE} pixels on each side", path=src)
+
+
 def add_exhibit(case: Case, src: str | os.PathLike, *, source: str, found: str | None = None,
-                by: str | None = None, note: str | None = None, profile=None) -> Exhibit:
+                by: str | None = None, note: str | None = None, profile=None,
+                acquisition: dict | None = None) -> Exhibit:
     """Take a disputed file into the case: copy it byte for byte, hash it, log it.
 
     The copy is read once into a temporary file in ``exhibits/`` while its
@@ -209,6 +235,11 @@ def add_exhibit(case: Case, src: str | os.PathLike, *, source: str, found: str |
     note : str, optional
     profile : Profile
         Opened with the passphrase: the intake is logged in the custody log.
+    acquisition : dict, optional
+        How the copy was acquired when claimkit itself took it from the web or
+        from a WARC file (:mod:`claimkit.capture`): URL, page, WARC file and
+        record, capture time and its clock. Its ``captured`` time becomes the
+        found time, with the clock it came from.
 
     Returns
     -------
@@ -229,8 +260,9 @@ def add_exhibit(case: Case, src: str | os.PathLike, *, source: str, found: str |
     media, width, height, why = _sniff(src)
     if why is not None:
         raise InputError(f"not an image claimkit can read ({why})", path=src)
-    number = 1 + max([int(e.exhibit_id[1:]) for e in case.exhibits()] or [0])
-    exhibit_id = f"E{number:02d}"
+    _check_examinable(src)
+    number = 1 + max([layout.exhibit_number(e.exhibit_id) or 0 for e in case.exhibits()] or [0])
+    exhibit_id = layout.exhibit_id_for(number)
     folder = case.root / layout.EXHIBITS
     folder.mkdir(exist_ok=True)
     stored = layout.exhibit_file(exhibit_id, _SAFE.sub('_', src.name)[-80:] or 'file')
@@ -256,17 +288,23 @@ def add_exhibit(case: Case, src: str | os.PathLike, *, source: str, found: str |
         raise
     fsync_dir(folder)
     who = (by or "").strip() or (profile.owner if profile is not None else "unknown")
+    if acquisition is not None and not found:
+        found = acquisition["captured"]
+        stated = acquisition["time_source"]
+    else:
+        stated = f"stated by {who}"
     record = {
         "type": EXHIBIT_TYPE, "exhibit_id": exhibit_id, "case_id": case.case_id,
         "file": stored, "original_name": src.name,
         "sha256": copied, "size": dest.stat().st_size, "media_type": media,
         "width": width, "height": height,
         "source": source.strip(),
-        "found": ({"when": found.strip(), "time_source": f"stated by {who}"}
-                  if found else None),
+        "found": {"when": found.strip(), "time_source": stated} if found else None,
         "taken_in": {"time": utc_now(), "time_source": "system clock", "by": who},
         "note": (note or "").strip() or None,
     }
+    if acquisition is not None:
+        record["acquisition"] = acquisition
     data = canonical_json(record)
     atomic_write(case.root / layout.intake_record(exhibit_id), data + b"\n")
     if profile is not None:
@@ -277,6 +315,52 @@ def add_exhibit(case: Case, src: str | os.PathLike, *, source: str, found: str |
                                     "original_name": src.name},
                            actor=who)
     return Exhibit(exhibit_id, record)
+
+
+def withdraw_exhibit(case: Case, exhibit_id: str, *, reason: str, by: str | None = None,
+                     profile=None) -> dict:
+    """Take an exhibit out of the claims, keeping it and the withdrawal in the record.
+
+    The stored copy, its intake record and any finding stay as they are; a
+    withdrawal record (``exhibits/withdrawn/ID.json``: who, when, why) is
+    added and the withdrawal is entered in the custody log. Later
+    examinations pass the exhibit over, and the dossier shows it as
+    withdrawn, resting nothing on it. A withdrawal is not undone.
+    """
+    reason = (reason or "").strip()
+    if not reason:
+        raise InputError("--reason is empty: say why the exhibit is withdrawn")
+    ex = case.exhibit(_exhibit_id_given(case, exhibit_id))
+    if ex.withdrawal is not None:
+        raise InputError(f"{ex.exhibit_id} was already withdrawn on {ex.withdrawal['time']}",
+                         path=case.root)
+    who = (by or "").strip() or (profile.owner if profile is not None else "unknown")
+    record = {"type": "claimkit/withdrawal/v1", "exhibit_id": ex.exhibit_id,
+              "case_id": case.case_id, "exhibit_sha256": ex.sha256, "reason": reason,
+              "by": who, "time": utc_now(), "time_source": "system clock"}
+    data = canonical_json(record) + b"\n"
+    path = case.root / layout.withdrawal_record(ex.exhibit_id)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    atomic_write(path, data, replace=False)
+    if profile is not None:
+        profile.log_action("exhibit withdrawn",
+                           items={"exhibit": ex.sha256, "withdrawal": sha256_hex(data)},
+                           details={"case_id": case.case_id, "exhibit_id": ex.exhibit_id,
+                                    "reason": reason, "by": who},
+                           actor=who)
+    return record
+
+
+def _exhibit_id_given(case: Case, text: str) -> str:
+    """An exhibit named as the user may write it: ``exhibit-3``, ``3``, ``Exhibit 3``, ``E03``."""
+    t = str(text).strip()
+    if t.lower().startswith("exhibit"):
+        t = t[7:].strip(" -")
+    if t.isdigit():
+        for ex in case.exhibits():
+            if layout.exhibit_number(ex.exhibit_id) == int(t):
+                return ex.exhibit_id
+    return str(text).strip()
 
 
 def checked_exhibit_path(case: Case, ex: Exhibit) -> Path:

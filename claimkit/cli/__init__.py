@@ -9,6 +9,7 @@ library imports this package.
 from __future__ import annotations
 
 import argparse
+import errno
 import importlib
 import os
 import sys
@@ -19,6 +20,10 @@ from claimkit.errors import ClaimkitError
 # Modules that provide ``register(subparsers, common)``; a missing module is
 # skipped so that the tool still runs while an area is being built.
 AREAS = ("engine", "evidence", "casework", "scale", "stress", "rights")
+
+
+_USER_FIXABLE = {errno.EACCES, errno.EPERM, errno.EROFS, errno.ENOSPC, errno.EDQUOT,
+                 errno.ENOENT, errno.ENOTDIR, errno.EISDIR, errno.EEXIST, errno.ENAMETOOLONG}
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -70,6 +75,18 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("claimkit: interrupted", file=sys.stderr)
         return 130
+    except OSError as exc:
+        # A folder the user cannot write to, a full disk, a missing folder: the user can
+        # fix these, so they are bad input (exit 2), named by the file, not internal faults.
+        if getattr(args, "debug", False) or exc.errno not in _USER_FIXABLE:
+            if getattr(args, "debug", False):
+                raise
+            print(f"claimkit: error: internal fault ({type(exc).__name__}: {exc}); "
+                  "run again with --debug for the details", file=sys.stderr)
+            return 3
+        where = f"{exc.filename}: " if exc.filename else ""
+        print(f"claimkit: error: {where}{exc.strerror or exc}", file=sys.stderr)
+        return 2
     except Exception as exc:  # an internal fault: one line unless --debug
         if getattr(args, "debug", False):
             raise

@@ -5,7 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from claimkit.cli.common import home_dir, passphrase, print_json
-from claimkit.errors import CheckFailed
+from claimkit.errors import CheckFailed, InputError
 
 CAUTION = ("Technical evidence, not legal advice. Consult counsel; the rules on evidence, "
            "registration and takedown notices differ between jurisdictions.")
@@ -48,6 +48,49 @@ def cmd_case_add(args) -> int:
         else:
             print(f"{ex.exhibit_id}: {r['original_name']} taken in, {r['width']}x{r['height']}, "
                   f"{r['size']} bytes, SHA-256 {r['sha256']}")
+    return 0
+
+
+def cmd_case_capture(args) -> int:
+    from claimkit.capture.collect import capture_pages
+    from claimkit.capture.fetch import FetchOptions
+    from claimkit.case.store import open_case
+
+    case = open_case(args.dir)
+    opts = FetchOptions(timeout=args.timeout, max_bytes=args.max_bytes,
+                        max_redirects=args.max_redirects, ca_file=args.ca_file)
+    with _profile(args) as p:
+        res = capture_pages(case, args.urls, p, tsa_url=args.tsa_url, tsa_cert=args.tsa_cert,
+                            options=opts, snapshot=not args.no_snapshot)
+    if args.json:
+        print_json(res.as_dict())
+        return 0
+    print(f"captured {len(args.urls)} page(s) into {res.warc} (SHA-256 {res.warc_sha256})")
+    tok = res.record.get("timestamp")
+    if tok:
+        print(f"WARC digest timestamped at {tok['gen_time']} by {tok['tsa']} (RFC 3161)")
+    else:
+        print("not timestamped: the capture time rests on this machine's clock "
+              "(give --tsa-url and --tsa-cert)")
+    for i in res.exhibit_ids:
+        ex = case.exhibit(i)
+        print(f"{i}: {ex.record['acquisition']['url']} taken in, SHA-256 {ex.sha256}")
+    return 0
+
+
+def cmd_case_withdraw(args) -> int:
+    from claimkit.case.store import open_case, withdraw_exhibit
+
+    case = open_case(args.dir)
+    with _profile(args) as p:
+        rec = withdraw_exhibit(case, args.exhibit, reason=args.reason, by=args.by, profile=p)
+    if args.json:
+        print_json({"case": str(case.root), "exhibit_id": rec["exhibit_id"],
+                    "status": "withdrawn", "reason": rec["reason"], "by": rec["by"],
+                    "time": rec["time"]})
+    else:
+        print(f"{rec['exhibit_id']} withdrawn from the claims ({rec['reason']}); it stays in "
+              "the case and the custody log; run claimkit report again")
     return 0
 
 
@@ -111,6 +154,14 @@ def cmd_report(args) -> int:
     from claimkit.dossier.build import build_report
 
     case = open_case(args.dir)
+    if args.out:
+        out = Path(args.out)
+        if out.is_dir():
+            raise InputError("is a folder; --out names the PDF file", path=out)
+        if out.exists() and not args.force:
+            raise InputError("already exists; use --force to replace it", path=out)
+        if not (out.parent if str(out.parent) else Path(".")).is_dir():
+            raise InputError(f"folder {out.parent} does not exist", path=out)
     with _profile(args) as p:
         rep = build_report(case, p, out_pdf=Path(args.out) if args.out else None)
     if args.json:
@@ -179,6 +230,39 @@ def register(sub, common) -> None:
     p.add_argument("--json", action="store_true")
     p.set_defaults(func=cmd_case_add)
 
+    p = csub.add_parser(
+        "capture", parents=[common], help="capture web pages and their images as a WARC file",
+        description="Fetch each page and every image it shows, keep every exchange in a "
+                    "WARC/1.1 file (with addresses, TLS certificates and headers), draw a "
+                    "full-page snapshot where Chromium is installed, timestamp the WARC when "
+                    "a TSA is given, and take every image in as an exhibit.")
+    p.add_argument("dir", metavar="CASE")
+    p.add_argument("urls", nargs="+", metavar="URL")
+    p.add_argument("--tsa-url", metavar="URL", help="RFC 3161 timestamp authority for the WARC")
+    p.add_argument("--tsa-cert", metavar="PEM", help="certificate(s) to trust for that TSA")
+    p.add_argument("--timeout", type=float, default=30.0, metavar="S",
+                   help="seconds to wait for a connection or a read (default 30)")
+    p.add_argument("--max-bytes", type=int, default=50 << 20, metavar="N",
+                   help="largest response taken (default 50 MiB)")
+    p.add_argument("--max-redirects", type=int, default=10, metavar="N")
+    p.add_argument("--ca-file", metavar="PEM",
+                   help="trust these CA certificates for HTTPS instead of the system's")
+    p.add_argument("--no-snapshot", action="store_true", help="no Chromium page snapshot")
+    p.add_argument("--json", action="store_true")
+    p.set_defaults(func=cmd_case_capture)
+
+    p = csub.add_parser("withdraw", parents=[common],
+                        help="take an exhibit out of the claims (kept in the record)",
+                        description="Withdraw an exhibit: it stays in the case, the withdrawal "
+                                    "is custody-logged, examinations pass it over and the "
+                                    "dossier shows it as withdrawn.")
+    p.add_argument("dir", metavar="CASE", help="the case folder")
+    p.add_argument("exhibit", metavar="EXHIBIT", help="the exhibit: exhibit-3, 3 or E03")
+    p.add_argument("--reason", required=True, metavar="TEXT", help="why it is withdrawn")
+    p.add_argument("--by", metavar="NAME", help="who withdraws it (default: the profile owner)")
+    p.add_argument("--json", action="store_true", help="one JSON object")
+    p.set_defaults(func=cmd_case_withdraw)
+
     p = csub.add_parser("examine", parents=[common], help="examine every exhibit")
     p.add_argument("dir", metavar="DIR")
     p.add_argument("--originals", nargs="*", metavar="FOLDER",
@@ -203,6 +287,7 @@ def register(sub, common) -> None:
                                    "the key disclosures and the signed manifest.")
     p.add_argument("dir", metavar="DIR")
     p.add_argument("--out", metavar="FILE.pdf", help="also write the PDF here")
+    p.add_argument("--force", action="store_true", help="replace an existing --out file")
     p.add_argument("--json", action="store_true")
     p.set_defaults(func=cmd_report)
 

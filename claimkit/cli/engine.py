@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import sys
 from pathlib import Path
 
 from claimkit.cli.common import home_dir, passphrase, print_json
@@ -123,10 +124,21 @@ def cmd_examine(args) -> int:
     threshold = args.threshold
     if not 0 < threshold < 1:
         raise InputError(f"--threshold {threshold} must lie between 0 and 1")
+    bad = 0
     with _open_profile(args) as profile:
         for f in args.files:
-            rep, finding = workflow.examine_file(profile, f, threshold=threshold,
-                                                 decoys=args.decoys, max_pixels=args.max_pixels)
+            try:
+                rep, finding = workflow.examine_file(profile, f, threshold=threshold,
+                                                     decoys=args.decoys,
+                                                     max_pixels=args.max_pixels)
+            except InputError as exc:
+                # One bad file does not stop the others: a line now, exit 2 at the end.
+                bad += 1
+                print(f"claimkit: error: {exc.line()}", file=sys.stderr)
+                if args.json:
+                    print_json({"file": str(f), "error": {"message": exc.message,
+                                                          "exit_code": exc.exit_code}})
+                continue
             if args.decoys:
                 rep["decoy_scores"] = [round(v, 3) for v in finding.decoy_scores]
             if args.json:
@@ -139,7 +151,7 @@ def cmd_examine(args) -> int:
                 print(_verdict_line(rep))
     if not args.json:
         print("claimkit gives technical evidence, not legal advice.")
-    return 0
+    return 2 if bad else 0
 
 
 def register(sub, common) -> None:

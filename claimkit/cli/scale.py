@@ -34,7 +34,7 @@ def cmd_scan(args) -> int:
             case_dir=Path(args.case) if args.case else None,
             engine=args.engine, scheduler=args.scheduler, workers=args.workers,
             progress=None if not args.no_progress else False,
-            threshold=args.threshold, max_pixels=args.max_pixels)
+            threshold=args.threshold, max_pixels=args.max_pixels, force=args.force)
 
 
 def register(sub, common) -> None:
@@ -47,10 +47,13 @@ def register(sub, common) -> None:
                     "per file, a summary at the end. Exit 0 when every file was read, 1 when "
                     "some could not be read, 2 when none could. Technical evidence, not legal "
                     "advice.")
-    p.add_argument("folders", nargs="+", metavar="DIR", help="folders (recursive) or files")
+    p.add_argument("folders", nargs="+", metavar="DIR",
+                   help="folders (recursive), image files, or WARC files (.warc, .warc.gz): "
+                        "every image response in a WARC is examined")
     p.add_argument("--json", action="store_true",
                    help="one JSON object per file on stdout; the summary as JSON on stderr")
     p.add_argument("--report", metavar="FILE.csv", help="also write a CSV, one row per file")
+    p.add_argument("--force", action="store_true", help="replace an existing --report file")
     p.add_argument("--case", metavar="DIR", help="take every claimed copy into this case")
     p.add_argument("--threshold", type=float, default=DEFAULT_THRESHOLD,
                    help="largest false-alarm bound that counts as a claim (default 1e-9)")

@@ -100,6 +100,8 @@ def _check_examined(case: Case) -> None:
     for ex in exhibits:
         checked_exhibit_path(case, ex)
         f = case.finding(ex.exhibit_id)
+        if f is None and ex.withdrawal is not None:
+            continue     # withdrawn before it was examined: shown as withdrawn, nothing more
         if f is None:
             raise InputError(f"exhibit {ex.exhibit_id} is not examined yet "
                              "(run claimkit case examine)", path=case.root)
@@ -116,6 +118,8 @@ def _handover(case: Case, profile) -> None:
     root = case.root
     work_ids = []
     for ex in case.exhibits():
+        if ex.withdrawal is not None:
+            continue     # no claim rests on a withdrawn exhibit: disclose nothing for it
         m = (case.finding(ex.exhibit_id) or {}).get("match")
         if m and m.get("work_id") and m["work_id"] not in work_ids:
             work_ids.append(m["work_id"])

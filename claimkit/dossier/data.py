@@ -11,12 +11,11 @@ then it re-runs each examination and compares the findings.
 from __future__ import annotations
 
 import json
-import re
 from pathlib import Path
 
 from claimkit import __version__
+from claimkit.capture.evidence import collection_data
 from claimkit.case import layout
-from claimkit.case.examine import exhibit_label
 from claimkit.case.layout import CUSTODY_COPY, DISCLOSURES, PUBLIC_KEY
 from claimkit.errors import InputError
 from claimkit.evaluation.timeline import build_timeline
@@ -35,7 +34,6 @@ __all__ = [
 ]
 
 DOSSIER_TYPE = "claimkit/dossier/v1"
-_EXHIBIT_ID = re.compile(r"E\d{2,6}")
 
 #: The published methods the analysis rests on (the method section lists them).
 REFERENCES_CITED = [
@@ -93,19 +91,23 @@ def case_files(root: Path) -> tuple[dict, list[dict], dict[str, dict]]:
     """``case.json``, the intake records in order, and findings by exhibit ID."""
     case = _read_json(root, layout.CASE_FILE)
     exhibits = []
-    for p in sorted((root / layout.EXHIBITS).glob("E[0-9]*.json")):
-        exhibits.append(json.loads(p.read_bytes()))
+    for glob in layout.INTAKE_GLOBS:
+        for p in sorted((root / layout.EXHIBITS).glob(glob)):
+            exhibits.append(json.loads(p.read_bytes()))
+
     def order(r: dict):
-        i = r.get("exhibit_id")
-        ok = isinstance(i, str) and _EXHIBIT_ID.fullmatch(i)
-        return (0, int(i[1:]), "") if ok else (1, 0, str(i))
+        n = layout.exhibit_number(r.get("exhibit_id"))
+        return (0, n, "") if n is not None else (1, 0, str(r.get("exhibit_id")))
 
     exhibits.sort(key=order)
     findings = {}
     for ex in exhibits:
         i = ex.get("exhibit_id")
-        if not (isinstance(i, str) and _EXHIBIT_ID.fullmatch(i)):
+        if layout.exhibit_number(i) is None:
             continue     # never used to build a path; verify names it
+        w = root / layout.withdrawal_record(i)
+        if w.is_file():
+            ex["withdrawn"] = json.loads(w.read_bytes())
         p = root / layout.finding_file(i)
         if p.is_file():
             findings[ex["exhibit_id"]] = json.loads(p.read_bytes())
@@ -209,11 +211,11 @@ def _content_parameters() -> dict:
 
 def _result(ex: dict, f: dict | None) -> dict:
     if f is None:
-        return {"exhibit_id": ex["exhibit_id"], "label": exhibit_label(ex["exhibit_id"]),
+        return {"exhibit_id": ex["exhibit_id"], "label": layout.exhibit_label(ex["exhibit_id"]),
                 "examined": False}
     r = f["result"]
     return {
-        "exhibit_id": ex["exhibit_id"], "label": exhibit_label(ex["exhibit_id"]), "examined": True,
+        "exhibit_id": ex["exhibit_id"], "label": layout.exhibit_label(ex["exhibit_id"]), "examined": True,
         "examined_at": f["examined"]["time"], "threshold": f["examined"]["threshold"],
         "detected": r["detected"],
         "log10_false_alarm": r["log10_false_alarm_probability"],
@@ -235,7 +237,7 @@ def _result(ex: dict, f: dict | None) -> dict:
 
 def _timeline(works: list[dict], exhibits: list[dict], results: list[dict]) -> dict:
     """Dates in order with their sources, and the warnings (see claimkit.evaluation.timeline)."""
-    labelled = [{**ex, "label": exhibit_label(ex["exhibit_id"])} for ex in exhibits]
+    labelled = [{**ex, "label": layout.exhibit_label(ex["exhibit_id"])} for ex in exhibits]
     matches = {r["exhibit_id"]: (r.get("work_id") if r.get("detected") and r.get("registered")
                                  else (r.get("match") or {}).get("work_id"))
                for r in results if r.get("examined")}
@@ -266,6 +268,8 @@ def build_data(root: str | Path) -> dict:
     results = []
     for ex in exhibits:
         res = _result(ex, findings.get(ex["exhibit_id"]))
+        if ex.get("withdrawn"):
+            res["withdrawn"] = {k: ex["withdrawn"].get(k) for k in ("time", "by", "reason")}
         if res["examined"]:
             res["finding_sha256"] = sha256_file(root / layout.finding_file(ex["exhibit_id"]))
         results.append(res)
@@ -276,7 +280,7 @@ def build_data(root: str | Path) -> dict:
     except (OSError, ValueError):
         fp = None
     owner = case.get("owner", {})
-    detected = [r for r in results if r.get("detected")]
+    detected = [r for r in results if r.get("detected") and not r.get("withdrawn")]
     tl = _timeline(works, exhibits, results)
     data = {
         "type": DOSSIER_TYPE,
@@ -288,6 +292,7 @@ def build_data(root: str | Path) -> dict:
         "exhibits": [{k: ex.get(k) for k in ("exhibit_id", "original_name", "file", "sha256",
                                               "size", "media_type", "width", "height",
                                               "source", "found", "taken_in", "note")}
+                     | ({"withdrawn": ex["withdrawn"]} if ex.get("withdrawn") else {})
                      for ex in exhibits],
         "results": results,
         "summary": {"exhibits": len(exhibits),
@@ -305,6 +310,7 @@ def build_data(root: str | Path) -> dict:
                    "mark": works[0]["mark_params"] if works else {},
                    "references": REFERENCES_CITED},
         "custody": _custody(root, case["case_id"], work_ids),
+        "collection": collection_data(root, exhibits),
         "figures": {r["exhibit_id"]: _figure_names(r) for r in results},
     }
     canonical_json(data)   # refuse anything that could not be stored

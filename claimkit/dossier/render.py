@@ -18,6 +18,7 @@ from pathlib import Path
 
 import jinja2
 
+from claimkit.case import layout
 from claimkit.errors import InputError
 
 __all__ = [
@@ -107,7 +108,7 @@ def _env() -> jinja2.Environment:
                              autoescape=False, undefined=jinja2.StrictUndefined,
                              keep_trailing_newline=True, trim_blocks=False)
     env.filters.update(day=_day, chance=_chance, cropdesc=_cropdesc, alignwords=_alignwords,
-                       power=_power, pct=_pct)
+                       power=_power, pct=_pct, label=layout.exhibit_label)
     return env
 
 

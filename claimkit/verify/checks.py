@@ -7,7 +7,6 @@ and never raises for a failed check; a failure names what failed.
 from __future__ import annotations
 
 import json
-import re
 from pathlib import Path
 
 from claimkit.case import layout
@@ -34,7 +33,7 @@ def path_audit(root: Path, exhibits: list[dict], findings: dict) -> list[str]:
     bad = []
     for ex in exhibits:
         i = ex.get("exhibit_id")
-        if not isinstance(i, str) or not re.fullmatch(r"E\d{2,6}", i):
+        if not isinstance(i, str) or layout.exhibit_number(i) is None:
             bad.append(f"intake record names the exhibit {i!r}")
             continue
         why = layout.inside(root, ex.get("file"), layout.EXHIBITS)
