@@ -37,8 +37,8 @@ __all__ = [
     "binomial_upper",
     "cap",
     "combine",
-    "log10_lr_detection",
     "log10_lr_decision",
+    "log10_lr_detection",
     "verbal",
 ]
 
