@@ -159,8 +159,9 @@ def measure_genuine(quick: bool) -> dict:
     """Every stress-battery attack on the first pictures, against full and half references."""
     t0 = time.perf_counter()
     pics = calibration_pictures(quick)
-    names = [k for k in pics if not k.startswith("generated")][:GENUINE_PHOTOS] + \
-        [k for k in pics if k.startswith("generated")][:GENUINE_GENERATED]
+    photos, made = (4, 1) if quick else (GENUINE_PHOTOS, GENUINE_GENERATED)
+    names = [k for k in pics if not k.startswith("generated")][:photos] + \
+        [k for k in pics if k.startswith("generated")][:made]
     rows = []
     for k in names:
         rgb = pics[k]
