@@ -3,9 +3,8 @@
     python benchmarks/bench_content_heldout.py
 
 Held out from the calibration (bench_content.py): the photos coffee and
-chelsea (enlarged, as published photos are), the tests' smooth sky and a
-generated picture of a seed the calibration never used. Each is marked with a
-fixed test key.
+chelsea (enlarged, as published photos are) and the tests' smooth sky, each
+marked with a fixed test key.
 
 * **Transplants**: the copy attack in numpy (tests/engine_helpers.transplant_mark,
   no claimkit code) from each marked picture onto unrelated hosts. Counted:
@@ -51,7 +50,7 @@ def pictures() -> dict[str, np.ndarray]:
         return np.asarray(Image.fromarray(a).resize((round(a.shape[1] * f), round(a.shape[0] * f)),
                                                     Image.Resampling.BICUBIC))
     return {"coffee": big(data.coffee(), 2), "chelsea": big(data.chelsea(), 2),
-            "sky": sky(), "generated-999": generated(999)}
+            "sky": sky()}
 
 
 def main() -> None:

@@ -373,7 +373,8 @@ def render_pdf(data: dict, root: Path, out: Path) -> bytes:
                 else:
                     cells.append([Paragraph(_inline(caption, sup="super"), st["cell"])])
             t = Table([cells], colWidths=[width / 2, width / 2])
-            t.setStyle(TableStyle([("VALIGN", (0, 0), (-1, -1), "TOP")]))
+            t.setStyle(TableStyle([("VALIGN", (0, 0), (-1, -1), "TOP"),
+                                   ("FONTNAME", (0, 0), (-1, -1), "Vera")]))
             story.append(KeepTogether([t, Spacer(1, 4)]))
         elif block[1] == "figure":
             rel = data["figures"].get(block[3], {}).get(block[2])
