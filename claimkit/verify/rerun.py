@@ -19,7 +19,7 @@ from claimkit.imageio import read_picture, to_luma
 from claimkit.mark import detect, payload
 from claimkit.stress import run_battery
 from claimkit.verify.compare import differences
-from claimkit.verify.report import VerifyReport
+from claimkit.verify.report import SKIPPED, VerifyReport
 from claimkit.workflow import examine_picture, expected_payload_check
 
 __all__ = ["rerun_examination", "rerun_robustness"]
@@ -69,11 +69,18 @@ def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
                 diffs.append(f"arrays.{name}: differs from the re-run")
         stored_arrays = {k: arr[k] for k in arr.files}
     luma = to_luma(pic.pixels)
-    ref_luma = None
-    if finding.get("reference"):
-        ref_luma = to_luma(read_picture(root / finding["reference"]["file"]).pixels)
+    reference = finding.get("reference") or {}
+    ref = root / reference.get("file", "")
+    # The unmarked master may be withheld from the bundle (report --include-original adds it);
+    # the published marked file never is.
+    withheld = bool(reference) and not ref.is_file() and reference.get("kind") != "marked"
+    ref_luma = to_luma(read_picture(ref).pixels) if reference and not withheld else None
     lines = None
-    if "evaluation" in finding:
+    if "evaluation" in finding and withheld:
+        rep.add(f"{i} content line", True, "not re-run: it compared the exhibit with the "
+                "unmarked master, withheld from the bundle (report --include-original adds it)",
+                status=SKIPPED)
+    elif "evaluation" in finding:
         # The content line and the evaluation, from the exhibit, the reference in the bundle,
         # the signed work record of the disclosure and the stored robustness rows.
         mark = {**got, "work_id": stored.get("work_id"), "registered": stored.get("registered")}
@@ -86,7 +93,11 @@ def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
         for k in ("content", "content_mismatch", "evaluation"):
             diffs += differences(finding.get(k), lines[k], k)
     al = finding.get("alignment")
-    if al and al.get("aligned") and ref_luma is not None:
+    if al and al.get("aligned") and withheld:
+        rep.add(f"{i} alignment", True, "not re-run: the file it aligns to is the unmarked "
+                "master, withheld from the bundle (report --include-original adds it)",
+                status=SKIPPED)
+    elif al and al.get("aligned") and ref_luma is not None:
         geom = alignment_geometry(lines["content"]) if lines else (f.geometry or None)
         again = align(ref_luma, luma, geom)
         diffs += differences(al, again.numbers, "alignment")
