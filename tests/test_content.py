@@ -127,3 +127,18 @@ def test_report_json_warnings_and_dossier_text(built_case, tmp_path, monkeypatch
                           check=True).stdout.splitlines()[2:]
     first = [r.split() for r in rows if r.split()[0] == "1"]
     assert len(first) >= 2 and all(r[5] == "rgb" for r in first)
+
+
+def test_featureless_work_is_inconclusive_never_a_mismatch():
+    # A clear sky gives no keypoints that repeat: a failure to register its copy says nothing,
+    # so the genuine copy is not flagged, and no derivation is claimed either.
+    from engine_helpers import sky
+
+    from claimkit.evaluation.opinion import evaluate
+
+    published = mark(sky())
+    c = content_line(to_luma(stress.jpeg(published, 50)), reference_luma=to_luma(published))
+    assert c["corresponds"] is None and c["log10_lr"] == 0.0 and "inconclusive" in c["reason"]
+    ev = evaluate(exhibit="Exhibit 1", work_id="W-1", owner=None, detected=True, threshold=1e-9,
+                  content=c, agreement=None)
+    assert not ev["derivation_claimed"] and "cannot be excluded" in ev["combination"]

@@ -45,6 +45,22 @@ ROTATION_TOLERANCE_DEG = 3.0
 #: battery's tolerance), so genuine copies agree and a 180 degree or mirrored
 #: misreading does not.
 SCALE_TOLERANCE = 0.05
+#: Before "does not correspond" is said, the registered picture must register to an edited
+#: copy of itself (scaled to 70 % and turned 10 degrees) with at least this many times the
+#: threshold: a featureless picture (a clear sky) gives no keypoints that repeat, and then
+#: a failure to register says nothing about the exhibit.
+ABLE_FACTOR = 3
+
+
+def self_check(reference_luma: np.ndarray) -> int:
+    """Inliers of the registered picture against an edited copy of itself (70 %, turned 10 degrees)."""
+    from skimage.transform import rescale, rotate
+
+    ref = np.asarray(reference_luma, dtype=np.float64)
+    edited = rotate(rescale(ref, 0.7, anti_aliasing=True, preserve_range=True), 10.0,
+                    resize=True, preserve_range=True, order=1)
+    return int(reg.register(reg.features(ref), reg.features(edited),
+                            reg.features(edited, mirrored=True))["inliers"])
 
 
 @lru_cache(maxsize=1)
@@ -102,11 +118,17 @@ def content_line(exhibit_luma: np.ndarray, *, reference_luma: np.ndarray | None 
             g["matrix"] = [[round(v * reference_scale, 6) for v in row] for row in g["matrix"]]
         threshold = int(cal["threshold"])
         value = int(res["inliers"])
-        return {
+        corresponds: bool | None = value >= threshold
+        able = None
+        if not corresponds:
+            able = self_check(reference_luma)
+            if able < ABLE_FACTOR * threshold:
+                corresponds = None
+        out = {
             "basis": reference, "limited_to_fingerprint": False,
             "statistic": {"name": "RANSAC inliers", "value": value, "threshold": threshold,
                           "higher_means": "closer correspondence"},
-            "corresponds": value >= threshold,
+            "corresponds": corresponds,
             "registration": res,
             "null": _null_summary(cal["null"]["samples"], threshold, higher_is_closer=True),
             "genuine": {"count": cal["genuine"]["count"],
@@ -115,6 +137,15 @@ def content_line(exhibit_luma: np.ndarray, *, reference_luma: np.ndarray | None 
             "log10_lr": round(lr.log10_lr_decision(value, cal["genuine"]["samples"],
                                                cal["null"]["samples"], threshold=threshold), 3),
         }
+        if able is not None:
+            out["reference_self_check"] = {"inliers": able, "needed": ABLE_FACTOR * threshold}
+        if corresponds is None:
+            out["log10_lr"] = 0.0
+            out["reason"] = ("inconclusive: the registered picture has too little structure for "
+                             f"the content line (against an edited copy of itself it reached "
+                             f"{able} matching points, {ABLE_FACTOR * threshold} needed), so a "
+                             "failure to register the exhibit says nothing about it")
+        return out
     if work_fingerprint:
         fcal = cal["fingerprint"]
         d = fp.fingerprint_distance(fp.perceptual_fingerprint(exhibit_luma), work_fingerprint)

@@ -257,6 +257,12 @@ def _timeline(works: list[dict], exhibits: list[dict], results: list[dict]) -> d
     mismatches = {r["exhibit_id"]: bool(r.get("content_mismatch")) for r in results}
     tl = build_timeline(works, labelled, matches, mismatches)
     for r in results:
+        c = r.get("content") or {}
+        if r.get("detected") and c.get("basis") not in (None, "none") and c.get("corresponds") is None:
+            tl["warnings"].append({"code": "content-inconclusive", "exhibit": r["exhibit_id"],
+                                   "text": f"{r['label']}: {c.get('reason', 'the content line was inconclusive')}; "
+                                           "a transplanted mark cannot be excluded, and no "
+                                           "derivation is claimed."})
         ag = ((r.get("content") or {}).get("agreement_with_mark") or {})
         if ag.get("compared") and not ag.get("agree"):
             tl["warnings"].append({"code": "lines-disagree", "exhibit": r["exhibit_id"], "text": (

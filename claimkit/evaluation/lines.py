@@ -62,5 +62,6 @@ def weigh(exhibit_luma: np.ndarray, *, label: str, mark: dict, threshold: float,
                                   agreement=content["agreement_with_mark"], robustness=robustness)
     evaluation["finding"] = opinion.finding_words(
         detected=detected, work_id=mark.get("work_id") if detected else None,
-        content_mismatch=mismatch, limited=bool(content.get("limited_to_fingerprint")))
+        content_mismatch=mismatch, limited=bool(content.get("limited_to_fingerprint")),
+        inconclusive=content.get("basis") not in (None, "none") and content.get("corresponds") is None)
     return {"content": content, "content_mismatch": mismatch, "evaluation": evaluation}

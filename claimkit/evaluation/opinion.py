@@ -47,11 +47,15 @@ def _battery(robustness: dict | None) -> dict:
 
 
 def finding_words(*, detected: bool, work_id: str | None, content_mismatch: bool,
-                  limited: bool) -> str:
+                  limited: bool, inconclusive: bool = False) -> str:
     """The investigative finding, in words (what was observed, not what it means)."""
     if not detected:
         return "No mark of this owner was found."
     named = f" naming work {work_id}" if work_id else ""
+    if inconclusive:
+        return (f"The owner's mark{named} was found. The picture content could not be compared "
+                "with the registered work, which has too little structure for it, so a "
+                "transplanted mark cannot be excluded; no derivation from the work is claimed.")
     if content_mismatch:
         return (f"The owner's mark{named} was found, but the picture does not correspond to the "
                 "registered work, consistent with a transplanted mark"
@@ -104,6 +108,8 @@ def evaluate(*, exhibit: str, work_id: str | None, owner: str | None, detected: 
         "assumes": "no mark was transplanted from a published copy into another picture",
     }}
     has_content = bool(content) and content.get("corresponds") is not None
+    inconclusive = bool(content) and content.get("basis") not in (None, "none") \
+        and content.get("corresponds") is None
     mismatch = bool(detected and has_content and content["corresponds"] is False)
     if has_content:
         lines["content"] = {
@@ -118,6 +124,11 @@ def evaluate(*, exhibit: str, work_id: str | None, owner: str | None, detected: 
         why = ("not combined: the mark was found in a picture that does not correspond to the "
                "work, which a transplanted mark explains; the content line is reported")
         reported = content["log10_lr"]
+    elif inconclusive:
+        why = ("not combined: the content line was inconclusive (the registered picture has too "
+               "little structure to register); the mark line alone is reported, with its "
+               "assumption, and a transplanted mark cannot be excluded")
+        reported = mark_lr
     elif not has_content:
         why = ("not combined: no content line (neither the registered picture nor its "
                "fingerprint was at hand); the mark line alone is reported, with its assumption")
@@ -144,6 +155,8 @@ def evaluate(*, exhibit: str, work_id: str | None, owner: str | None, detected: 
         "cap_log10": lr.CAP_LOG10,
         "verbal": lr.verbal(reported, "the proposition that " + hp, "the proposition that " + hd),
         "scale": SCALE_NAME,
-        "derivation_claimed": bool(detected and not mismatch and reported > 0
+        # Derivation is claimed only where the picture itself was found to correspond (or no
+        # picture could be compared at all); an inconclusive content line claims nothing.
+        "derivation_claimed": bool(detected and not mismatch and reported > 0 and not inconclusive
                                    and (not has_content or content["corresponds"])),
     }
