@@ -237,5 +237,5 @@ def build_report(case: Case, profile, *, out_pdf: Path | None = None,
             "data": str(root / DATA), "pdf_sha256": sha256_hex(signed),
             "manifest_sha256": sha256_file(root / MANIFEST), "files": len(manifest["files"]),
             "summary": data["summary"], "warnings": data["warnings"],
-            "out": None if out_pdf is None else str(out_pdf),
+            "output": None if out_pdf is None else str(out_pdf),
             "key_material": "disclosed" if disclose else "withheld"}
