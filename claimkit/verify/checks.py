@@ -268,7 +268,7 @@ def check_exhibit(root: Path, ex: dict, finding: dict | None, listed: set[str],
     if finding is None:
         rep.add(f"{i} finding", False, "not examined (no finding in the bundle)")
         return False
-    if finding.get("exhibit_sha256") != ex["sha256"]:
+    if finding.get("exhibit_sha256") != ex.get("sha256"):
         rep.add(f"{i} finding", False, "the finding is for other bytes than the exhibit")
         return False
     return True
