@@ -111,7 +111,7 @@ def _build(tmp_path_factory) -> BuiltCase:
         h = ["--home", str(home)]
         assert _run(["case", "new", str(case), "--title", sc["case_title"], *h]) == 0
         today = datetime.now(timezone.utc).date().isoformat()
-        for c, f in zip(sc["copies"], copies):
+        for c, f in zip(sc["copies"], copies, strict=True):
             assert _run(["case", "add", str(case), str(f), "--source", c["source"],
                          "--found", c["found"].replace("{day}", today), "--by", c["by"],
                          "--note", c["note"], *h]) == 0

@@ -18,8 +18,10 @@ from pathlib import Path
 
 import jinja2
 
+from claimkit import words
 from claimkit.case import layout
 from claimkit.errors import InputError
+from claimkit.evaluation.lr import verbal
 
 __all__ = [
     "parse_markup",
@@ -168,10 +170,6 @@ def _inline(text: str, *, sup: str) -> str:
 
 # ---------------------------------------------------------------- tables
 
-def _short(h: str | None, n: int = 16) -> str:
-    return "" if not h else (h if len(h) <= n else h[:n] + "...")
-
-
 def tables(data: dict, name: str, arg: str | None) -> tuple[list[str], list[list[str]]]:
     """Header and rows of a named table (plain text cells)."""
     if name == "exhibits":
@@ -181,22 +179,15 @@ def tables(data: dict, name: str, arg: str | None) -> tuple[list[str], list[list
         return ["Exhibit", "Found at", "Found (stated)", "Taken in by, at", "SHA-256"], rows
     if name == "parameters":
         eng = data["method"]["engine"]
-        labels = {"tile_px": "tile side (pixels)", "payload_bits": "payload bits",
-                  "pilot_spots": "pilot spots", "code_spots": "code spots",
-                  "formats_read": "mark formats read", "prefilter_px": "prefilter (pixels)",
-                  "geometries_tried": "geometric hypotheses",
-                  "quarter_turns_and_mirrors": "quarter turns and mirrors",
-                  "subpixel_phases": "sub-pixel phases", "hypotheses": "placements counted (H)",
-                  "payload_space": "payloads counted", "bound": "false-alarm bound"}
-        rows = [[f"mark: {labels[k]}", str(eng[k])] for k in labels if k in eng]
-        rows += [[f"mark strength: {k}", str(v)] for k, v in sorted(data["method"]["mark"].items())]
+        rows = [[k, str(v)] for k, v in sorted(eng.items())
+                if k not in ("format_records", "examination")]
+        rows += [[f"examination: {k}", str(v)] for k, v in sorted(eng["examination"].items())]
+        for f in eng["format_records"]:
+            rows += [[f"{f['format']}: {k}", str(v)] for k, v in sorted(f.items())
+                     if k != "format"]
+        rows += [[f"mark: {k}", str(v)] for k, v in sorted(data["method"]["mark"].items())]
         rows += [[f"content line: {k.replace('_', ' ')}", str(v)]
                  for k, v in data["method"].get("content", {}).items()]
-        if data["results"] and data["results"][0].get("examined"):
-            r0 = data["results"][0]
-            rows.append(["detection threshold", str(r0["threshold"])])
-            decoys = r0["decoys"]
-            rows.append(["decoy keys, seed", f"{decoys.get('count', 0)}, {decoys.get('seed', '')}"])
         return ["Parameter", "Value"], rows
     if name == "custody":
         rows = [[str(e["seq"]), e["time"][:19] + "Z", e["actor"], e["action"], e["what"],
@@ -217,7 +208,6 @@ def tables(data: dict, name: str, arg: str | None) -> tuple[list[str], list[list
             lg = ev.get("log10_lr") or {}
             if not ev:
                 continue
-            from claimkit.evaluation.lr import verbal
             rows.append([r["label"], _power(lg.get("mark")), _power(lg.get("content")),
                          _power(lg.get("combined")), _power(ev.get("reported_log10_lr")),
                          "not evaluated" if ev.get("reported_log10_lr") is None
@@ -232,8 +222,7 @@ def tables(data: dict, name: str, arg: str | None) -> tuple[list[str], list[list
         rows = []
         for row in rows_in:
             lp = row.get("log10_false_alarm_probability")
-            bound = "" if lp is None else (f"below 10^{math.floor(lp) + 1}" if lp < -3
-                                           else f"{10 ** lp:.2g}")
+            bound = "" if lp is None else words.probability(lp)
             rows.append([str(row.get("attack", "")), _cell(row.get("detected")),
                          _cell(row.get("same_payload")) or "n/a", bound,
                          _cell(row.get("message_psnr_db")) or "n/a",
