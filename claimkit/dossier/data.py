@@ -186,6 +186,29 @@ def _examination() -> dict:
     }
 
 
+def _content_parameters() -> dict:
+    """What an expert needs to repeat the content line and the evaluation (no internals)."""
+    cal = assess.calibration()
+    return {
+        "keypoints": f"ORB, {register.KEYPOINTS} per picture at {register.WORK_SIDE} px on the "
+                     "longer side; the exhibit also mirrored",
+        "fit": f"RANSAC similarity, inliers within {register.RESIDUAL_PX} px, "
+               f"{register.RANSAC_TRIALS} samples, seed {register.RANSAC_SEED}",
+        "threshold_inliers": cal["threshold"],
+        "threshold_rule": cal["threshold_rule"],
+        "null_pairs": cal["null"]["count"], "null_max_inliers": max(cal["null"]["samples"]),
+        "genuine_copies": cal["genuine"]["count"],
+        "genuine_below_threshold": sum(1 for v in cal["genuine"]["samples"] if v < cal["threshold"]),
+        "second_view_inliers": cal["same_scene_second_view"]["inliers"],
+        "fingerprint_null_min_bits": min(cal["fingerprint"]["null"]["samples"]),
+        "calibration": cal["measured"]["by"],
+        "geometry_tolerance": f"turn {assess.ROTATION_TOLERANCE_DEG} degrees, scale "
+                              f"{100 * assess.SCALE_TOLERANCE:g} %, same mirroring",
+        "lr_cap": f"10^{lr.CAP_LOG10:g} either way",
+        "rate_bounds": f"one-sided {100 * lr.CONFIDENCE:g} % Clopper-Pearson",
+    }
+
+
 def _engine_parameters() -> dict:
     """The method's numbers: the record of each mark format read, and of the examination."""
     return {
@@ -239,7 +262,8 @@ def _timeline(works: list[dict], exhibits: list[dict], results: list[dict]) -> d
         c = r.get("content") or {}
         if r.get("detected") and c.get("basis") not in (None, "none") and c.get("corresponds") is None:
             tl["warnings"].append({"code": "content-inconclusive", "exhibit": r["exhibit_id"],
-                                   "text": f"{r['label']}: {c.get('reason', 'the content line was inconclusive')}; "
+                                   "text": f"{r['label']}: "
+                                           f"{c.get('reason', 'the content line was inconclusive')}; "
                                            "a transplanted mark cannot be excluded, and no "
                                            "derivation is claimed."})
         ag = ((r.get("content") or {}).get("agreement_with_mark") or {})
