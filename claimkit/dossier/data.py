@@ -18,6 +18,8 @@ from claimkit.capture.evidence import collection_data
 from claimkit.case import layout
 from claimkit.case.documents import CaseDoc, DossierDataDoc, ExhibitDoc, FindingDoc, WithdrawalDoc
 from claimkit.case.layout import CUSTODY_COPY, CUSTODY_COPY_V1, DISCLOSURES, PUBLIC_KEY, SOFTWARE
+from claimkit.content import assess, register
+from claimkit.evaluation import lr
 from claimkit.evaluation.timeline import build_timeline
 from claimkit.evidence import signing
 from claimkit.evidence.canonical import canonical_json
