@@ -14,10 +14,11 @@ those carried in the bundle, so the detail says the anchor is not pinned.
 from __future__ import annotations
 
 import hashlib
+import json
 from pathlib import Path
 
-from claimkit.capture.evidence import capture_records
-from claimkit.case.layout import CAPTURES, EXHIBITS, inside
+from claimkit.capture.evidence import capture_files
+from claimkit.case.layout import CAPTURES, CASE_FILE, CUSTODY_COPY, EXHIBITS, inside
 from claimkit.errors import CheckFailed, InputError
 
 __all__ = ["check_collection"]
@@ -25,6 +26,34 @@ __all__ = ["check_collection"]
 
 def _safe(root: Path, rel: object, folder: str = CAPTURES) -> str | None:
     return rel if isinstance(rel, str) and inside(root, rel, folder) is None else None
+
+
+def _logged(root: Path) -> dict[str, set[str]]:
+    """Hashes the custody-log copy records for captures: capture records, WARC files.
+
+    The log's signatures and chain are checked by the custody check; here only
+    its entries for this case are read, so that a capture record or WARC file
+    that was never logged (added to the bundle afterwards) is named.
+    """
+    out: dict[str, set[str]] = {"capture_record": set(), "warc": set()}
+    try:
+        case_id = json.loads((root / CASE_FILE).read_bytes()).get("case_id")
+        lines = (root / CUSTODY_COPY).read_bytes().splitlines()
+    except (OSError, ValueError):
+        return out
+    for line in lines:
+        try:
+            e = json.loads(line)
+        except ValueError:
+            continue
+        if not isinstance(e, dict) or (e.get("details") or {}).get("case_id") != case_id:
+            continue
+        if e.get("action") in ("web pages captured", "web archive taken in"):
+            for k, seen in out.items():
+                v = (e.get("items") or {}).get(k)
+                if isinstance(v, str):
+                    seen.add(v)
+    return out
 
 
 def _sha(path: Path) -> str:
@@ -57,8 +86,16 @@ def check_collection(root: str | Path, exhibits: list[dict], rep) -> None:
                             f"SHA-256 {got} is not the recorded {expected}"))
         return p if warc_ok[rel_s] else None
 
-    for cid, cap in capture_records(root).items():
+    logged = _logged(root)
+    for path, cap in capture_files(root):
+        cid = cap["capture_id"]
         w = cap.get("warc") or {}
+        ok = (path.name == f"{cid}.json" and _sha(path) in logged["capture_record"]
+              and w.get("sha256") in logged["warc"])
+        out.append((f"capture {cid} custody", ok,
+                    "the capture record and its WARC file are those the custody log recorded"
+                    if ok else "the custody log has no capture entry with this record and "
+                    "WARC file (added or changed after the capture)"))
         p = warc_file(w.get("file"), w.get("sha256"), f"capture {cid}")
         stamp = cap.get("timestamp")
         if stamp:
@@ -70,6 +107,12 @@ def check_collection(root: str | Path, exhibits: list[dict], rep) -> None:
             if snap:
                 out.append(_check_snapshot(root, p, snap))
     _exhibits(root, exhibits, out, warc_file)
+    scanned = {a.get("warc_sha256") for a in (ex.get("acquisition") for ex in exhibits)
+               if isinstance(a, dict) and a.get("method") == "image response in a WARC file"}
+    for sha in sorted(x for x in scanned if isinstance(x, str)):
+        out.append((f"web archive {sha[:16]} custody", sha in logged["warc"],
+                    "taken into the case with a custody entry" if sha in logged["warc"] else
+                    "no custody entry takes this WARC file in"))
     for name, ok, detail in out:
         rep.add(name, ok, detail)
 
