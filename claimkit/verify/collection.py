@@ -166,9 +166,9 @@ def _check_token(root: Path, cid: str, stamp: dict, warc_sha: object) -> tuple[s
     from claimkit.evidence import timestamp
 
     name = f"capture {cid} timestamp"
-    rels = [_safe(root, stamp.get(k)) for k in ("token_file", "request_file",
-                                           "tsa_certificates_file")]
-    if None in rels or not all((root / r).is_file() for r in rels):
+    rels = [r for r in (_safe(root, stamp.get(k)) for k in
+                        ("token_file", "request_file", "tsa_certificates_file")) if r]
+    if len(rels) != 3 or not all((root / r).is_file() for r in rels):
         return name, False, "token, request or TSA certificate file missing or unsafe"
     token, tsq, pem = ((root / r).read_bytes() for r in rels)
     try:
