@@ -29,25 +29,43 @@ def _safe(root: Path, rel: object, folder: str = CAPTURES) -> str | None:
     return rel if isinstance(rel, str) and inside(root, rel, folder) is None else None
 
 
-def _logged(root: Path) -> dict[str, set[str]]:
-    """Hashes the custody-log copy records for captures: capture records, WARC files.
+def _log_entries(root: Path) -> list[dict]:
+    """The full entries of the custody copy: a custody excerpt (canonical JSON, its lines
+    verbatim) or, in older bundles, the log itself (JSON Lines)."""
+    try:
+        raw = (root / CUSTODY_COPY).read_bytes()
+    except OSError:
+        return []
+    try:
+        doc = json.loads(raw)
+        lines = [x["line"] for x in doc.get("entries", []) if isinstance(x, dict) and "line" in x]
+    except (ValueError, AttributeError):
+        lines = raw.splitlines()
+    out = []
+    for line in lines:
+        try:
+            e = json.loads(line)
+        except ValueError:
+            continue
+        if isinstance(e, dict):
+            out.append(e)
+    return out
 
-    The log's signatures and chain are checked by the custody check; here only
+
+def _logged(root: Path) -> dict[str, set[str]]:
+    """Hashes the custody copy records for captures: capture records, WARC files.
+
+    The copy's signatures and chain are checked by the custody check; here only
     its entries for this case are read, so that a capture record or WARC file
     that was never logged (added to the bundle afterwards) is named.
     """
     out: dict[str, set[str]] = {"capture_record": set(), "warc": set()}
     try:
         case_id = json.loads((root / CASE_FILE).read_bytes()).get("case_id")
-        lines = (root / CUSTODY_COPY).read_bytes().splitlines()
     except (OSError, ValueError):
         return out
-    for line in lines:
-        try:
-            e = json.loads(line)
-        except ValueError:
-            continue
-        if not isinstance(e, dict) or (e.get("details") or {}).get("case_id") != case_id:
+    for e in _log_entries(root):
+        if (e.get("details") or {}).get("case_id") != case_id:
             continue
         if e.get("action") in ("web pages captured", "web archive taken in"):
             for k, seen in out.items():
