@@ -19,8 +19,12 @@ import json
 from pathlib import Path
 
 from claimkit.capture.evidence import capture_files
+from claimkit.capture.warc import record_payload
 from claimkit.case.layout import CAPTURES, CASE_FILE, CUSTODY_COPY, EXHIBITS, inside
 from claimkit.errors import CheckFailed, InputError
+from claimkit.evidence import timestamp
+from claimkit.evidence.storage import sha256_file
+from claimkit.verify.report import UNPINNED
 
 __all__ = ["check_collection"]
 
@@ -76,7 +80,6 @@ def _logged(root: Path) -> dict[str, set[str]]:
 
 
 def _sha(path: Path) -> str:
-    from claimkit.evidence.storage import sha256_file
 
     return sha256_file(path)
 
@@ -84,7 +87,6 @@ def _sha(path: Path) -> str:
 def check_collection(root: str | Path, exhibits: list[dict], rep, *,
                      tsa_roots: tuple | None = None) -> None:
     """Add every collection check to ``rep`` (none when nothing was captured)."""
-    from claimkit.verify.report import UNPINNED
 
     root = Path(root)
     out: list[tuple[str, bool, str]] = []
@@ -142,7 +144,6 @@ def check_collection(root: str | Path, exhibits: list[dict], rep, *,
 
 
 def _exhibits(root: Path, exhibits: list[dict], out: list, warc_file) -> None:
-    from claimkit.capture.warc import record_payload
 
     for ex in exhibits:
         a = ex.get("acquisition")
@@ -172,7 +173,6 @@ def _exhibits(root: Path, exhibits: list[dict], out: list, warc_file) -> None:
 
 
 def _check_snapshot(root: Path, warc: Path, snap: dict) -> tuple[str, bool, str]:
-    from claimkit.capture.warc import record_payload
 
     rel = _safe(root, snap.get("file"))
     name = f"snapshot {rel}"
@@ -188,7 +188,6 @@ def _check_snapshot(root: Path, warc: Path, snap: dict) -> tuple[str, bool, str]
 
 def _check_token(root: Path, cid: str, stamp: dict, warc_sha: object,
                  tsa_roots: tuple | None = None) -> tuple[str, bool, str]:
-    from claimkit.evidence import timestamp
 
     name = f"capture {cid} timestamp"
     rels = [r for r in (_safe(root, stamp.get(k)) for k in
