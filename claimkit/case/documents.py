@@ -235,6 +235,9 @@ class FindingDoc(Document):
     reference: dict | None = None
     alignment: dict | None = None
     robustness: dict | None = None
+    content: dict | None = None            # the content line (claimkit.content)
+    content_mismatch: bool = False         # a mark in a picture that does not show its work
+    evaluation: dict | None = None         # propositions, likelihood ratios, verbal scale
 
 
 @dataclass
