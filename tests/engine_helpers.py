@@ -78,3 +78,27 @@ ATTACKS = {
     "gamma1.5": lambda a: gamma(a, 1.5),
     "crop25": crop_quarter,
 }
+
+
+def transplant_mark(marked: np.ndarray, host: np.ndarray, *, gain: float = 1.5,
+                    tile: int = 128) -> np.ndarray:
+    """The copy attack, in numpy only (no claimkit code): estimate a tiled mark, add it elsewhere.
+
+    The attacker knows the published method (a pattern repeated every ``tile``
+    pixels from the top-left corner) but not the key: the high-pass residual
+    of the marked file (luma minus its 5 x 5 box mean) is averaged over every
+    whole tile, which keeps the repeated mark and averages the picture away,
+    and the estimate is tiled over an unrelated photo, on all three channels.
+    """
+    y = marked[..., :3].astype(np.float64) @ np.array([0.299, 0.587, 0.114])
+    k = 5
+    p = np.pad(y, k // 2, mode="reflect")
+    c = np.pad(np.cumsum(np.cumsum(p, 0), 1), ((1, 0), (1, 0)))
+    mean = (c[k:, k:] - c[:-k, k:] - c[k:, :-k] + c[:-k, :-k]) / (k * k)
+    res = y - mean
+    h, w = (res.shape[0] // tile) * tile, (res.shape[1] // tile) * tile
+    est = res[:h, :w].reshape(h // tile, tile, w // tile, tile).mean(axis=(0, 2))
+    H, W = host.shape[:2]
+    big = np.tile(est, (-(-H // tile), -(-W // tile)))[:H, :W]
+    out = host[..., :3].astype(np.float64) + gain * big[..., None]
+    return np.clip(out, 0, 255).round().astype(np.uint8)

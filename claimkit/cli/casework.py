@@ -12,6 +12,9 @@ CAUTION = ("Technical evidence, not legal advice. Consult counsel; the rules on 
            "registration and takedown notices differ between jurisdictions.")
 
 
+# Each command imports the library modules it runs when it runs, so that `claimkit --help`
+# starts in about 0.2 s rather than the 3 s that importing the whole library takes.
+
 def _profile(args):
     from claimkit.evidence.profile import Profile
 
@@ -111,9 +114,13 @@ def cmd_case_examine(args) -> int:
                         "work_id": r.get("work_id"), "message_psnr_db": r["message_psnr_db"],
                         "geometry": r["geometry"], "match": doc["match"],
                         "ssim_aligned": (doc["alignment"] or {}).get("ssim"),
-                        "decoys": doc["decoy_summary"]})
+                        "decoys": doc["decoy_summary"], "content": doc["content"],
+                        "content_mismatch": doc["content_mismatch"],
+                        "evaluation": doc["evaluation"]})
             return
-        if r["detected"]:
+        if r["detected"] and doc["content_mismatch"]:
+            line = f"{ex.exhibit_id}: {doc['evaluation']['finding']}"
+        elif r["detected"]:
             line = (f"{ex.exhibit_id}: MARK FOUND, work {r.get('work_id')}; false-alarm bound "
                     f"{r['false_alarm_text']}; {r['geometry_text']}")
         else:
@@ -127,8 +134,9 @@ def cmd_case_examine(args) -> int:
         print(line)
 
     with _profile(args) as p:
-        examine_case(case, p, decoys=DEFAULT_DECOYS if args.decoys is None else args.decoys, search=search, progress=progress,
-                     workers=args.workers, robustness=not args.no_robustness)
+        examine_case(case, p, decoys=DEFAULT_DECOYS if args.decoys is None else args.decoys,
+                     search=search, progress=progress, workers=args.workers,
+                     robustness=not args.no_robustness)
     return 0
 
 
@@ -182,6 +190,8 @@ def cmd_report(args) -> int:
         if rep["key_material"] == "withheld":
             print("no key material in the bundle: give the other side's expert a disclosure "
                   "separately (claimkit disclose WORK --out DIR), or report with --disclose")
+        for w in rep["warnings"]:
+            print(f"WARNING {w['code']}: {w['text']}")
         print(CAUTION)
     return 0
 
