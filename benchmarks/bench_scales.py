@@ -98,10 +98,12 @@ def master_copies() -> None:
     print(f"24 MP master generated in {time.perf_counter() - t:.1f} s")
     t = time.perf_counter()
     mk = mark_scales(master)
+    crop_ssim = metrics.structural_similarity(master[1000:3000, 2000:4000],
+                                              mk[1000:3000, 2000:4000],
+                                              channel_axis=2, data_range=255)
     print(f"marked (fine + coarse, in memory) in {time.perf_counter() - t:.1f} s; "
           f"PSNR {metrics.peak_signal_noise_ratio(master, mk, data_range=255):.2f} dB "
-          f"(SSIM on a 2000 x 2000 crop "
-          f"{metrics.structural_similarity(master[1000:3000, 2000:4000], mk[1000:3000, 2000:4000], channel_axis=2, data_range=255):.4f})")
+          f"(SSIM on a 2000 x 2000 crop {crop_ssim:.4f})")
     del master
     for width in (2048, 1600, 1080, 800, 640):
         copy = jpeg(lanczos(mk, (width, round(4000 * width / 6000))), 85)

@@ -93,7 +93,8 @@ class Finding:
     recovered_raw: np.ndarray = field(repr=False)  # raw correlation map, aligned
     reference: np.ndarray = field(repr=False)    # reference message template
     decoy_scores: list[float] = field(default_factory=list)
-    scales_searched: int = 1             # scales the copy was examined at (mark.scales), all in ``hypotheses``
+    # Scales the copy was examined at (mark.scales), all counted in ``hypotheses``.
+    scales_searched: int = 1
 
     @property
     def false_alarm_probability(self) -> float:
@@ -345,7 +346,9 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1,
     win = central_window(luma.shape)
     r0, c0, wh, ww = win
     x = whiten(luma[r0:r0 + wh, c0:c0 + ww])
-    spectra, transforms, lattices = [], [], []
+    spectra: list = []
+    transforms: list = []
+    found: list[geometry.Lattice | None] = []
 
     def add(f, transform, lattice):
         # Single precision from here on: the folds sum thousands of pixels, and
@@ -361,7 +364,7 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1,
         idx, phase = _variant_spectra(tile)
         spectra.append(s.ravel()[idx] * phase)
         transforms.append(transform)
-        lattices.append(lattice)
+        found.append(lattice)
 
     add(fold(x, tile), None, None)
     half = np.array([wh, ww], dtype=float) / 2
@@ -374,7 +377,7 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1,
         if drift.max() < 0.2:
             continue
         add(fold_resampled(x, t, tile), t, lat)
-    return _Prepared(spectra, transforms, lattices, win)
+    return _Prepared(spectra, transforms, found, win)
 
 
 def _surfaces(prep: _Prepared, pattern: KeyPattern, ramps: np.ndarray):

@@ -62,6 +62,7 @@ import hashlib
 import hmac
 import math
 from dataclasses import dataclass, field, replace
+from typing import Any
 
 import numpy as np
 from scipy import sparse
@@ -155,7 +156,8 @@ def _period(keys, payload_bits: np.ndarray) -> np.ndarray:
     if isinstance(keys, (bytes, bytearray)):
         pat = pattern.key_pattern(bytes(keys))
         return pattern.mark_tile(pat, pat.codeword(np.asarray(payload_bits, dtype=np.uint8)))
-    return embed.period(keys, np.asarray(payload_bits, dtype=np.uint8))
+    # A format with a cell larger than one tile provides embed.period (none does yet).
+    return embed.period(keys, np.asarray(payload_bits, dtype=np.uint8))  # type: ignore[attr-defined]
 
 
 # ---------------------------------------------------------------- resampling
@@ -257,6 +259,7 @@ class ScalesPlan:
 
     @property
     def shape(self) -> tuple[int, int]:
+        """The marked picture's (height, width)."""
         return self.fine.shape
 
     def rows(self, r0: int, r1: int, *, out: np.ndarray | None = None) -> np.ndarray:
@@ -468,6 +471,7 @@ class PreparedScales:
         self._done: dict = {}
 
     def get(self, name: str):
+        """The prepared view ``name`` (computed once), or None when too small to examine."""
         if name not in self._done:
             if name == "native":
                 x = self.luma
@@ -538,7 +542,7 @@ def examine(luma: np.ndarray, seed: bytes, *, overview: np.ndarray | None = None
             continue
         # The coarse views look for the coarse component, under its own keys; a view
         # is the whole copy, so a window's offset applies at native resolution only.
-        extra = {} if offset is None or name != "native" else {"offset": offset}
+        extra: dict[str, Any] = {} if offset is None or name != "native" else {"offset": offset}
         key = seed if name == "native" else coarse_keys(seed)
         # Each scale is tested at threshold / n: the union bound over the n scales.
         f = detect.examine_luma(luma, key, threshold=threshold / n, workers=workers,
@@ -549,6 +553,7 @@ def examine(luma: np.ndarray, seed: bytes, *, overview: np.ndarray | None = None
             # A claim at one scale is a claim: the other scales need not be looked at,
             # and the bound still counts them (the count is fixed in advance).
             break
+    assert best is not None, "the native view is always examined"
     name, f = best
     geom = dict(f.geometry)
     if geom and name != "native":
