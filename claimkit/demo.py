@@ -23,8 +23,19 @@ from datetime import datetime, timezone
 from pathlib import Path
 
 import numpy as np
+from PIL import Image
+from skimage import data
+from skimage.transform import rescale
 
+from claimkit.case.bundle import export_bundle
+from claimkit.case.examine import examine_case
+from claimkit.case.store import add_exhibit, new_case
+from claimkit.dossier.build import build_report
 from claimkit.errors import InputError
+from claimkit.evidence.profile import Profile
+from claimkit.evidence.timestamp import load_certificates
+from claimkit.verify import verify_bundle
+from claimkit.workflow import mark_file
 
 __all__ = ["SCENARIO", "load_scenario", "make_test_tsa", "run_demo"]
 
@@ -45,13 +56,13 @@ SCENARIO = {
     "copies": [
         {"name": "tidewater-mug-listing.jpg",
          "source": "https://tidewater-home-goods.example/products/harbour-mug",
-         "found": "2026-11-28, while searching the shop's new arrivals", "by": "Ilse Marrow",
+         "found": "{day}, while searching the shop's new arrivals", "by": "Ilse Marrow",
          "note": "Used as the main product photo; no licence was issued to Tidewater Home Goods.",
          "edits": {"scale": 0.7, "crop": [0.06, 0.08, 0.94, 0.9], "rotate_deg": 0,
                    "jpeg_quality": 72}},
         {"name": "tidewater-banner.jpg",
          "source": "https://tidewater-home-goods.example/collections/autumn",
-         "found": "2026-11-29, collection banner", "by": "Ilse Marrow",
+         "found": "{day}, collection banner", "by": "Ilse Marrow",
          "note": "Turned slightly and cropped for the banner.",
          "edits": {"scale": 0.8, "crop": [0.1, 0.12, 0.9, 0.85], "rotate_deg": 4,
                    "jpeg_quality": 80}},
@@ -125,9 +136,6 @@ def make_test_tsa(folder: Path, name: str) -> Callable[[bytes], bytes]:
 
 
 def _picture(name: str, upscale: float) -> np.ndarray:
-    from skimage import data
-    from skimage.transform import rescale
-
     if name not in ALLOWED_PICTURES:
         raise InputError(f"picture {name!r} is not one the demo may use ({', '.join(ALLOWED_PICTURES)})")
     img = getattr(data, name)()
@@ -140,7 +148,6 @@ def _picture(name: str, upscale: float) -> np.ndarray:
 
 def make_copy(published: Path, out: Path, edits: dict) -> None:
     """What the shop did: resize, turn, crop, recompress (Pillow's own resampling and JPEG)."""
-    from PIL import Image
 
     with Image.open(published) as im:
         im = im.convert("RGB")
@@ -174,15 +181,7 @@ def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None =
     robustness : bool
         Run the robustness battery on the published file (the dossier's table).
     """
-    from PIL import Image
 
-    from claimkit.case.bundle import export_bundle
-    from claimkit.case.examine import examine_case
-    from claimkit.case.store import add_exhibit, new_case
-    from claimkit.dossier.build import build_report
-    from claimkit.evidence.profile import Profile
-    from claimkit.verify import verify_bundle
-    from claimkit.workflow import mark_file
 
     say = echo or (lambda s: None)
     sc = scenario or load_scenario()
@@ -222,8 +221,14 @@ def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None =
         say(f"4. the shop's copies: {', '.join(p.name for p in copies)}")
         case_dir = folder / "case-tidewater"
         case = new_case(case_dir, sc["case_title"], profile)
-        for c, p in zip(sc["copies"], copies):
-            add_exhibit(case, p, source=c["source"], found=c.get("found"), by=c.get("by"),
+        # The demo marks, stamps and finds in one sitting, so the copies are "found" on the day
+        # it runs, after the registration; a found date before it would (rightly) give the
+        # warning registered-after-found.
+        day = datetime.now(timezone.utc).date().isoformat()
+        for c, p in zip(sc["copies"], copies, strict=True):
+            found = c.get("found")
+            found = found.replace("{day}", day) if found else found
+            add_exhibit(case, p, source=c["source"], found=found, by=c.get("by"),
                         note=c.get("note"), profile=profile)
         say(f"5. case {case.case_id}: {len(copies)} exhibits taken in (copied, hashed, logged)")
         kw = {} if decoys is None else {"decoys": decoys}
@@ -249,7 +254,6 @@ def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None =
             f"{key_sha256} (told by phone, in the demo)")
     finally:
         profile.close()
-    from claimkit.evidence.timestamp import load_certificates
     result = verify_bundle(bundle, expect_keys=(key_sha256,), disclosure=delivered,
                            tsa_roots=load_certificates((folder / "test-tsa" / "ca.pem")
                                                        .read_bytes()))

@@ -46,9 +46,10 @@ import os
 import shutil
 import signal
 import subprocess
-import tempfile
 import sys
+import tempfile
 import threading
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 
@@ -167,7 +168,8 @@ class _ExifTool:
         # file, so it outlives a process that dies without closing it (a pool worker
         # ends with os._exit, which skips atexit). On Linux the kernel ends it with us.
         proc = subprocess.Popen(cmd, stdin=subprocess.PIPE, stdout=subprocess.PIPE,
-                                stderr=subprocess.PIPE, preexec_fn=_die_with_parent)
+                                stderr=subprocess.PIPE,
+                                preexec_fn=_die_with_parent)  # noqa: PLW1509 - one syscall
         self._pid = os.getpid()
         return proc
 
@@ -179,7 +181,7 @@ class _ExifTool:
         with self._lock:
             if self._proc is None or self._pid != os.getpid() or self._proc.poll() is not None:
                 # A forked worker must not share its parent's pipes: start its own.
-                self._proc = self._start()
+                self._proc = _starter().submit(self._start).result()
             self._count += 1
             n = self._count
             lines = [*args, "-echo4", f"{{done{n}}}", f"-execute{n}"]
@@ -216,23 +218,56 @@ def _config_file() -> Path:
     return path
 
 
+_STARTER: tuple[int, ThreadPoolExecutor] | None = None
+
+
+def _starter() -> ThreadPoolExecutor:
+    """One long-lived thread of this process that starts exiftool.
+
+    Linux's parent-death signal (``PR_SET_PDEATHSIG``) fires when the
+    *thread* that forked the child ends, not the process: started from a
+    marking writer thread, which ends after every photo, exiftool was killed
+    and started again (about 1.5 s of Perl start-up) for each file. Started
+    from this thread, which lives as long as the process, it ends with the
+    process, as intended.
+    """
+    global _STARTER
+    if _STARTER is None or _STARTER[0] != os.getpid():
+        _STARTER = (os.getpid(), ThreadPoolExecutor(max_workers=1,
+                                                    thread_name_prefix="claimkit-exiftool"))
+    return _STARTER[1]
+
+
+# prctl is looked up here, in the parent, so that the forked child only makes one system
+# call before exec (no dynamic loading, no lock another thread might hold at the fork).
+_PRCTL = ctypes.CDLL(None, use_errno=True).prctl if sys.platform.startswith("linux") else None
+
+
 def _die_with_parent() -> None:
     """In the exiftool child: ask Linux to send SIGTERM when the parent ends."""
-    if sys.platform.startswith("linux"):
-        libc = ctypes.CDLL(None, use_errno=True)
-        libc.prctl(1, signal.SIGTERM)  # PR_SET_PDEATHSIG = 1 (prctl(2))
+    if _PRCTL is not None:
+        _PRCTL(1, signal.SIGTERM)  # PR_SET_PDEATHSIG = 1 (prctl(2))
 
 
 def _read_until(stream, marker: str) -> str:
-    chunks: list[str] = []
-    while True:
-        line = stream.readline()
-        if not line:
+    """Everything ``stream`` gives up to the line ``marker``.
+
+    Read in large chunks straight from the pipe, not line by line: the
+    marking writer thread calls this while another thread computes SSIM, and
+    every Python-level read waits its turn for the interpreter lock (about
+    5 ms), so a few hundred readline calls cost seconds; a few os.read calls
+    cost nothing.
+    """
+    fd = stream.fileno()
+    end = ("\n" + marker + "\n").encode()
+    buf = bytearray(b"\n")
+    while not buf.endswith(end) and not buf.endswith(end.replace(b"\n", b"\r\n")):
+        chunk = os.read(fd, 1 << 16)
+        if not chunk:
             raise RuntimeError("exiftool stopped unexpectedly")
-        text = line.decode("utf-8", "replace")
-        if text.rstrip("\r\n") == marker:
-            return "".join(chunks)
-        chunks.append(text)
+        buf += chunk
+    text = bytes(buf[1:]).decode("utf-8", "replace")
+    return text[:text.rindex(marker)]
 
 
 _TOOL = _ExifTool()

@@ -44,21 +44,22 @@ from pathlib import Path
 from typing import TypeVar
 
 import numpy as np
+import tifffile
 from PIL import Image, UnidentifiedImageError
 from PIL.PngImagePlugin import PngInfo
 
-from claimkit.errors import InputError
+from claimkit.errors import AlreadyExists, InputError
 from claimkit.evidence.storage import atomic_write
 
 __all__ = [
     "DEFAULT_MAX_PIXELS",
     "MIN_SIDE",
     "Picture",
-    "read_picture",
-    "write_picture",
-    "to_luma",
     "add_luma_delta",
+    "read_picture",
     "resolve_max_pixels",
+    "to_luma",
+    "write_picture",
 ]
 
 #: Default limit on width × height, a guard against decompression bombs
@@ -158,6 +159,11 @@ class Picture:
         ``pixels`` and ``alpha`` hold, when only a part was asked for
         (``read_picture(region=...)``); None when they hold the whole picture.
         ``height`` and ``width`` are always the whole picture's.
+    overview, overview_step : ndarray or None, int
+        With a region: the whole upright picture reduced by Pillow's box
+        filter (``Image.reduce``), ``overview_step`` pixels to one, when asked
+        for (``read_picture(overview=...)``); the examination of a large copy
+        looks for the mark's coarse component there.
     dpi : tuple of float or None
         Resolution in pixels per inch as Pillow reads it (JFIF, PNG pHYs,
         TIFF or EXIF), None where the file states none.
@@ -177,6 +183,8 @@ class Picture:
     region: tuple[int, int, int, int] | None = None
     dpi: tuple[float, float] | None = None
     full_size: tuple[int, int] | None = field(default=None, repr=False)   # (height, width) with a region
+    overview: np.ndarray | None = field(default=None, repr=False)   # whole picture, box-reduced
+    overview_step: int = 1
 
     @property
     def height(self) -> int:
@@ -209,6 +217,7 @@ def resolve_max_pixels(max_pixels: int | None = None) -> int:
 
 def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
                  region: Callable[[tuple[int, int]], tuple[int, int, int, int]] | None = None,
+                 overview: Callable[[tuple[int, int]], int] | None = None,
                  ) -> Picture:
     """Decode a photo into an upright array plus the metadata to carry over.
 
@@ -227,6 +236,10 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
         only that part is copied out of the decoder into the array: at
         24 megapixels the copy of the whole picture costs about as much as
         half the decoding. ``Picture.region`` records the part.
+    overview : callable, optional
+        With ``region``: given the upright ``(height, width)``, a whole-number
+        step; the whole picture, box-reduced by that step from the same
+        decoded image, goes to ``Picture.overview``.
 
     Returns
     -------
@@ -268,6 +281,7 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
                 path=path,
             )
         notes: list[str] = []
+        small, step = None, 1   # the overview, when asked for
         frames = int(getattr(im, "n_frames", 1) or 1)
         if frames > 1:
             # Image.open leaves the first frame selected.
@@ -296,6 +310,8 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
                         upright_size = (width, height) if oriented in (5, 6, 7, 8) else (height, width)
                         box = region(upright_size)
                         part = im.crop(_stored_box(oriented, (height, width), box))
+                        if overview is not None:
+                            small, step = _overview(im, overview(upright_size), rawmode, path)
                     pixels, alpha, bit_depth, icc_ok = _pixels_from_pillow(
                         part, rawmode, notes, path
                     )
@@ -324,6 +340,8 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
             xmp = xmp.encode("utf-8")
 
     pixels = _upright(pixels, orientation)
+    if small is not None:
+        small = np.ascontiguousarray(_upright(small, orientation))
     if alpha is not None:
         alpha = _upright(alpha, orientation)
     if orientation in _TRANSPOSES:
@@ -351,7 +369,19 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
         region=None if region is None else tuple(int(v) for v in box),
         dpi=dpi,
         full_size=full_size,
+        overview=small,
+        overview_step=step,
     )
+
+
+def _overview(im: Image.Image, step: int, rawmode: str, path: Path) -> tuple[np.ndarray | None, int]:
+    """The whole picture box-reduced by ``step`` (Pillow's ``reduce``), as stored (not yet upright)."""
+    step = max(1, int(step))
+    try:
+        small = im.reduce(step) if step > 1 else im
+    except (ValueError, NotImplementedError):  # a mode reduce does not handle
+        return None, 1
+    return _pixels_from_pillow(small, rawmode, [], path)[0], step
 
 
 def _stored_box(orientation: int, stored: tuple[int, int],
@@ -539,10 +569,6 @@ def _is_16bit_multichannel_tiff(im: Image.Image) -> bool:
 
 def _read_tiff16(data: bytes) -> tuple[np.ndarray, np.ndarray | None] | None:
     """Full-precision 16-bit colour TIFF through tifffile; None if it cannot."""
-    try:
-        import tifffile
-    except ImportError:  # pragma: no cover - tifffile ships with scikit-image
-        return None
     try:
         with tifffile.TiffFile(io.BytesIO(data)) as tif:
             page = tif.pages[0]
@@ -863,8 +889,6 @@ def _encode_tiff16(pixels: np.ndarray, alpha: np.ndarray | None, like: Picture) 
     sub-IFD (e.g. DateTimeOriginal) is not written: tifffile has no way to
     add one.
     """
-    import tifffile
-
     data = pixels
     extrasamples = None
     if alpha is not None:
@@ -902,10 +926,8 @@ def _atomic_write(path: Path, payload: bytes, *, force: bool) -> None:
     """Temp file in the same folder, fsync, rename; without ``force`` never replace a file."""
     try:
         atomic_write(path, payload, replace=force)
-    except InputError as exc:
-        if "already exists" in exc.message:
-            raise InputError("already exists; use --force to replace it", path=path) from None
-        raise
+    except AlreadyExists:
+        raise AlreadyExists("already exists; use --force to replace it", path=path) from None
 
 
 # ---------------------------------------------------------------- pixel helpers
@@ -943,7 +965,7 @@ def to_luma(pixels: np.ndarray) -> np.ndarray:
     same arithmetic, in the same order, as the one-pass
     ``np.einsum("ijk,k->ij", ..., dtype=float32)`` earlier versions used,
     so the luma (and every mark derived from it) is bit-for-bit unchanged;
-    ``tests/test_markspeed.py`` checks this over all 2**24 8-bit colours.
+    ``tests/test_mark_pipeline.py`` checks this over all 2**24 8-bit colours.
 
     References
     ----------

@@ -18,25 +18,59 @@ from pathlib import Path
 
 import numpy as np
 
-from claimkit import __version__
+from claimkit import __version__, words
 from claimkit.errors import InputError
-from claimkit.evidence.profile import derive_payload_tag, work_id_for
-from claimkit.evidence.storage import sha256_file
-from claimkit.filemeta import Carried, Rights, carry_metadata
+from claimkit.evidence.keys import derive_payload_tag, work_id_for
+from claimkit.evidence.rights import load_rights
+from claimkit.evidence.storage import fsync_dir, sha256_file
+from claimkit.filemeta import INSTALL_HINT, Carried, Rights, carry_metadata, exiftool_available
 from claimkit.imageio import (
     Picture,
     add_luma_delta,
+    check_output_path,
+    output_format,
     read_picture,
     to_luma,
     write_picture,
 )
-from claimkit.mark import detect, embed, formats, pattern, payload, quality
+from claimkit.mark import detect, embed, formats, pattern, payload, quality, scales
 from claimkit.mark.detect import Finding
 from claimkit.mark.fingerprint import perceptual_fingerprint
 from claimkit.mark.format3 import EmbedKeys, MarkKeys
 
 MIN_MARK_SIDE = pattern.TILE      # one full period of the mark on each side
 MIN_EXAMINE_SIDE = 64
+
+
+# ---------------------------------------------------------------- input checks
+# The one place where the numbers a user gives are checked, for every command and the API.
+
+def check_strength(strength: float) -> float:
+    """The marking strength, refused (InputError) outside 0..4."""
+    if not 0 < strength <= 4:
+        raise InputError(f"strength {strength} is outside 0..4")
+    return float(strength)
+
+
+def check_jpeg_quality(quality: int) -> int:
+    """The JPEG quality of a marked copy, refused outside 1..100."""
+    if not 1 <= int(quality) <= 100:
+        raise InputError(f"JPEG quality {quality} is outside 1..100")
+    return int(quality)
+
+
+def check_threshold(threshold: float) -> float:
+    """The false-alarm bound that counts as a detection, refused outside (0, 1)."""
+    if not 0 < threshold < 1:
+        raise InputError(f"--threshold {threshold} must lie between 0 and 1")
+    return float(threshold)
+
+
+def check_decoys(decoys: int) -> int:
+    """The number of decoy keys of a control, refused outside 0..10000."""
+    if not 0 <= decoys <= 10000:
+        raise InputError(f"decoys {decoys} is outside 0..10000")
+    return int(decoys)
 
 
 def mark_parameters(strength: float) -> dict:
@@ -51,6 +85,15 @@ def mark_parameters(strength: float) -> dict:
         "mask": "SSIM-derived local amplitude",
         "local_ssim_target": embed.DEFAULT_LOCAL_SSIM,
         "psnr_cap_db": embed.DEFAULT_PSNR_DB,
+        "coarse_level": {
+            "what": "the same kind of mark computed on the picture reduced to a short side of "
+                    f"{scales.COARSE_SIDE} px, interpolated back (cubic convolution), under seeds "
+                    "derived from the marking keys (HMAC-SHA256 of each with the seed label); only on pictures whose short side is at least "
+                    f"{round(scales.MIN_COARSE_FACTOR * scales.COARSE_SIDE)} px",
+            "short_side_px": scales.COARSE_SIDE,
+            "energy_share": scales.COARSE_SHARE,
+            "seed_label": scales.COARSE_LABEL.decode(),
+        },
         "strength": strength,
         "channel": "luma (same change on R, G and B)",
     }
@@ -182,8 +225,8 @@ def mark_picture(pic: Picture, out: Path, seed: bytes | EmbedKeys, bits: np.ndar
     with _helpers(threads if threads > 1 else 0, "claimkit-band") as pool:
         list(pool.map(_luma_band, repeat(pixels), repeat(luma), starts, ends))
         fingerprint_job = pool.submit(perceptual_fingerprint, luma)
-        plan = embed.mark_plan(luma, seed, np.asarray(bits, dtype=np.uint8), strength=strength,
-                               executor=pool)
+        plan = scales.scales_plan(luma, seed, np.asarray(bits, dtype=np.uint8), strength=strength,
+                                  executor=pool)
         fingerprint = fingerprint_job.result()
         del luma
         sse = sum(pool.map(_mark_band, repeat(plan), repeat(pixels), repeat(marked), starts, ends))
@@ -219,7 +262,7 @@ def _luma_band(pixels: np.ndarray, luma: np.ndarray, r0: int, r1: int) -> None:
     luma[r0:r1] = to_luma(pixels[r0:r1])
 
 
-def _mark_band(plan: embed.MarkPlan, pixels: np.ndarray, marked: np.ndarray, r0: int,
+def _mark_band(plan: scales.ScalesPlan, pixels: np.ndarray, marked: np.ndarray, r0: int,
                r1: int) -> int:
     """Mark rows ``r0:r1`` into ``marked``; their exact sum of squared changes."""
     add_luma_delta(pixels[r0:r1], plan.rows(r0, r1), out=marked[r0:r1])
@@ -269,15 +312,39 @@ def _discard_written(job, out: Path) -> None:
     out.unlink(missing_ok=True)
 
 
+STAGED_TAG = ".claimkit-staged"
+
+
+def staged_path(out: Path) -> Path:
+    """Hidden name beside ``out`` where a marked copy waits until it is registered."""
+    return out.with_name(f".{out.stem}{STAGED_TAG}{out.suffix}")
+
+
+def place_staged(staged: Path, out: Path, *, force: bool) -> None:
+    """Move a registered staged copy to its final name; without ``force`` never replace a file."""
+    if force:
+        os.replace(staged, out)
+    else:
+        try:
+            os.link(staged, out)       # fails if the name appeared meanwhile
+        except FileExistsError:
+            raise InputError("already exists (appeared during the run); the marked copy "
+                             f"was kept as {staged.name}", path=out) from None
+        except OSError:
+            if out.exists():
+                raise
+            os.replace(staged, out)    # a file system without hard links
+        else:
+            staged.unlink()
+    fsync_dir(out.parent)
+
+
 def prepare_output(out: Path, src: Path, *, force: bool) -> None:
     """Check an output path before any work, creating its folder as folder mode does.
 
     Everything the user can fix is found here (exit 2), before a serial is
     handed out or a pixel is changed.
     """
-    from claimkit.filemeta import INSTALL_HINT, exiftool_available
-    from claimkit.imageio import check_output_path, output_format
-
     if out.resolve() == src.resolve():
         raise InputError("the output would overwrite the original; choose another name", path=out)
     output_format(out)
@@ -298,12 +365,15 @@ def mark_file(profile, src: str | os.PathLike, out: str | os.PathLike, *, force:
               rights: Rights | None = None) -> dict:
     """Mark one photo, write the marked copy to ``out`` and register the work.
 
-    The original is only read. ``out``'s folder is created if missing. The
-    marked file is staged, its metadata carried over and the rights fields
-    written (exiftool), then it is put in place atomically and registered
-    with the hash of those final bytes; if anything fails the marked file is
-    removed again and the serial given back, so a failed mark leaves no
-    unregistered marked file and uses up no serial.
+    The original is only read. ``out``'s folder is created if missing. The one
+    marking protocol, the same as a batch's (:mod:`claimkit.batch`): the marked
+    copy is written under a hidden staged name beside ``out``
+    (:func:`staged_path`), its metadata carried over and the rights fields
+    written (exiftool); the work is registered with the hash of those final
+    bytes, and only then is the copy renamed to ``out`` (:func:`place_staged`).
+    So a file under its final name is always registered, whenever the process
+    is killed. If marking or registering fails, the staged file is removed and
+    the serial given back, so a failed mark uses up no serial.
 
     Returns
     -------
@@ -312,21 +382,20 @@ def mark_file(profile, src: str | os.PathLike, out: str | os.PathLike, *, force:
         ``sha256_marked``, ``metadata_dropped`` and more (see the README).
     """
     src, out = Path(src), Path(out)
-    if not 0 < strength <= 4:
-        raise InputError(f"strength {strength} is outside 0..4")
+    check_strength(strength)
+    check_jpeg_quality(jpeg_quality)
     pic, sha_orig = load_original(src, max_pixels=max_pixels)
     prepare_output(out, src, force=force)
     if rights is None:
-        from claimkit.evidence.rights import load_rights
-
         rights = load_rights(profile.home, profile.owner)
     serial = profile.allocate_serials(1)[0]
     bits = payload.pack(profile.owner_tag, serial, profile.payload_tag(serial))
     meta = FileMetadata(rights=rights, work_id=work_id_for(profile.owner_tag, serial),
                         registry=registry_name(profile))
+    staged = staged_path(out)
     try:
-        facts = mark_picture(pic, out, embed_keys(profile, serial), bits, strength=strength,
-                             jpeg_quality=jpeg_quality, force=force, max_pixels=max_pixels,
+        facts = mark_picture(pic, staged, embed_keys(profile, serial), bits, strength=strength,
+                             jpeg_quality=jpeg_quality, force=True, max_pixels=max_pixels,
                              metadata=meta)
         record = profile.register_work(
             serial, sha256_original=sha_orig, sha256_marked=facts["sha256_marked"],
@@ -334,10 +403,10 @@ def mark_file(profile, src: str | os.PathLike, out: str | os.PathLike, *, force:
             mark_params=mark_parameters(strength), capture=facts["capture"],
             quality=facts["quality"])
     except BaseException:
-        if "facts" in locals():
-            out.unlink(missing_ok=True)
+        staged.unlink(missing_ok=True)
         profile.release_serials([serial])
         raise
+    place_staged(staged, out, force=force)
     return {
         "work_id": record.work_id, "serial": serial,
         "file": str(src), "output": str(out),
@@ -355,7 +424,7 @@ class PayloadChecker:
     """Says whether decoded bits are a valid payload of one owner (picklable, for workers).
 
     Valid: the owner's tag, a serial above 0, and the keyed payload tag of
-    that serial (:func:`claimkit.evidence.profile.derive_payload_tag`).
+    that serial (:func:`claimkit.evidence.keys.derive_payload_tag`).
     """
 
     owner_tag: int
@@ -397,26 +466,49 @@ def examine_picture(pic: Picture, seed: bytes | MarkKeys, *, owner_tag: int | No
     weak marks decodable more often. Give it wherever it is known.
     """
     _check_size(pic, MIN_EXAMINE_SIDE, "examination")
-    # Convert only the window the detector will read (large photos are examined
-    # on a central window; see detect.MAX_EXAMINE_PIXELS). A picture read with
-    # read_for_examination holds that window only.
-    r0, c0, h, w = detect.central_window((pic.height, pic.width))
+    # Convert only the window the detector will read at native resolution (large
+    # photos are examined on a central window; see detect.MAX_EXAMINE_PIXELS), and
+    # the whole picture reduced once for the coarse views (mark.scales). A picture
+    # read with read_for_examination holds that window and that overview only.
+    shape = (pic.height, pic.width)
+    r0, c0, h, w = detect.central_window(shape)
+    step = scales.overview_step(shape)
     if pic.region is not None:
         if pic.region != (r0, c0, h, w):
             raise ValueError(f"picture holds {pic.region}, not the examined window {(r0, c0, h, w)}")
-        window = pic.pixels
+        window = to_luma(pic.pixels)
+        if pic.overview is not None:
+            overview, step = to_luma(pic.overview), pic.overview_step
+        else:   # no overview: the coarse views come from the window alone
+            shape, overview, step = window.shape, None, 1
+    elif (r0, c0, h, w) == (0, 0, *shape):
+        window, overview = to_luma(pic.pixels), None
     else:
-        window = pic.pixels[r0:r0 + h, c0:c0 + w]
-    finding = detect.examine_luma(
-        to_luma(window), seed, payload_check=payload_check,
+        window, overview = to_luma(pic.pixels[r0:r0 + h, c0:c0 + w]), _overview(pic.pixels, step)
+    finding = scales.examine(
+        window, seed, overview=overview, step=step, shape=shape, payload_check=payload_check,
         payload_space=payload.PAYLOAD_SPACE,
         known_bits=None if owner_tag is None else known_owner_bits(owner_tag),
         threshold=threshold, decoys=decoys, workers=workers, offset=(r0, c0))
-    if finding.geometry:
-        g = finding.geometry
+    g = finding.geometry
+    if g and "level" not in g:   # found at native resolution, in the window
         g["shift_px"] = [round(g["shift_px"][0] + c0, 2), round(g["shift_px"][1] + r0, 2)]
         g["examined_window"] = [c0, r0, w, h]
     return finding
+
+
+def _overview(pixels: np.ndarray, step: int) -> np.ndarray:
+    """The whole picture's luma box-reduced by ``step``, as ``read_for_examination`` makes it.
+
+    Pillow's ``reduce`` on 8-bit pixels (the reader's own overview, so a
+    picture read whole gives the finding of one read through its window);
+    other pixels are averaged in blocks of their luma.
+    """
+    if pixels.dtype == np.uint8 and pixels.ndim in (2, 3):
+        from PIL import Image
+
+        return to_luma(np.asarray(Image.fromarray(pixels).reduce(step)) if step > 1 else pixels)
+    return scales.decimate(to_luma(pixels), step)
 
 
 def examine_file(profile, path: str | os.PathLike, *, threshold: float = detect.DEFAULT_THRESHOLD,
@@ -440,9 +532,11 @@ def read_for_examination(path: str | os.PathLike, *, max_pixels: int | None = No
     Large photos are examined on a central window (``detect.MAX_EXAMINE_PIXELS``);
     copying the rest of a 24-megapixel picture out of the decoder would cost
     about half as much as decoding it. The window holds the pixels ``read_picture``
-    gives there.
+    gives there; the coarse views come from the whole picture box-reduced by the
+    decoder (``Picture.overview``).
     """
-    return read_picture(path, max_pixels=max_pixels, region=detect.central_window)
+    return read_picture(path, max_pixels=max_pixels, region=detect.central_window,
+                        overview=scales.overview_step)
 
 
 def report_for(path: Path, pic: Picture, finding: Finding, profile=None) -> dict:
@@ -464,9 +558,7 @@ def report_for(path: Path, pic: Picture, finding: Finding, profile=None) -> dict
             rep["registered"] = True
         else:
             rep["work_id"] = work_id_for(p["owner_tag"], p["serial"])
-    rep["geometry_text"] = detect.describe_in_words(finding.geometry)
-    if finding.removal_suspected:
-        rep["removal_text"] = REMOVAL_TEXT
+    rep.update(finding_words(finding))
     return rep
 
 
@@ -474,3 +566,15 @@ def report_for(path: Path, pic: Picture, finding: Finding, profile=None) -> dict
 REMOVAL_TEXT = ("The owner's synchronisation pattern is clearly present, but no keyed claim was "
                 "found: the mark may have been stripped by an estimation attack, or the pattern "
                 "copied onto this picture. This is a trace to investigate, not a claim.")
+
+
+def finding_words(finding: Finding) -> dict:
+    """The finding's bound and geometry in words (:mod:`claimkit.words`), beside its numbers.
+
+    A finding with ``removal_suspected`` also gets ``removal_text`` (:data:`REMOVAL_TEXT`).
+    """
+    out = {"false_alarm_text": words.probability(finding.log10_false_alarm),
+           "geometry_text": words.geometry(finding.geometry)}
+    if finding.removal_suspected:
+        out["removal_text"] = REMOVAL_TEXT
+    return out

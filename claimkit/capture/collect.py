@@ -36,10 +36,17 @@ from urllib.parse import unquote, urlsplit
 
 from claimkit import __version__
 from claimkit.capture import fetch as _fetch
-from claimkit.capture.pagescan import find_images
+from claimkit.capture import snapshot as snap
+from claimkit.capture.pagescan import MAX_STYLESHEETS, css_images, find_images
 from claimkit.capture.warc import WarcWriter, exchange_facts, looks_like_image
 from claimkit.case.layout import CAPTURES
+from claimkit.case.store import add_exhibit
 from claimkit.errors import InputError
+from claimkit.evidence import timestamp
+from claimkit.evidence.canonical import canonical_json
+from claimkit.evidence.custodylog import utc_now
+from claimkit.evidence.storage import atomic_write, fsync_dir, sha256_file, sha256_hex
+from claimkit.workflow import MIN_EXAMINE_SIDE
 
 __all__ = ["CaptureResult", "capture_pages", "tls_summary"]
 
@@ -109,10 +116,11 @@ def _is_image(ex: _fetch.Exchange) -> bool:
 
 def _decode_html(ex: _fetch.Exchange) -> str:
     m = re.search(r"charset=([\w.:-]+)", ex.header("Content-Type") or "", re.IGNORECASE)
-    if m is None:
-        m = re.search(rb"<meta[^>]+charset=[\"']?([\w.:-]+)", ex.body[:2048], re.IGNORECASE)
-    charset = m.group(1) if m else "utf-8"
-    charset = charset.decode("ascii", "replace") if isinstance(charset, bytes) else charset
+    if m is not None:
+        charset = m.group(1)
+    else:
+        mb = re.search(rb"<meta[^>]+charset=[\"']?([\w.:-]+)", ex.body[:2048], re.IGNORECASE)
+        charset = mb.group(1).decode("ascii", "replace") if mb else "utf-8"
     try:
         return ex.body.decode(charset, "replace")
     except LookupError:
@@ -123,7 +131,6 @@ def _unusable(data: bytes) -> str | None:
     """None when the bytes are a picture claimkit can examine, else why not."""
     from PIL import Image, UnidentifiedImageError
 
-    from claimkit.workflow import MIN_EXAMINE_SIDE
 
     try:
         with Image.open(io.BytesIO(data)) as im:
@@ -224,7 +231,6 @@ class _Session:
 
     def _stylesheet_images(self, page: str, sheets: list[str], known: set[str]) -> list:
         """Background images named in the page's linked stylesheets (fetched and kept too)."""
-        from claimkit.capture.pagescan import MAX_STYLESHEETS, css_images
 
         if len(sheets) > MAX_STYLESHEETS:
             self.note(f"{page}: {len(sheets)} stylesheets; the first {MAX_STYLESHEETS} are "
@@ -262,7 +268,6 @@ class _Session:
         self.images[url] = _Found(url, page, page_final, how, chain, rid, date)
 
     def _snapshot(self, page: dict, url: str, rid: str) -> None:
-        from claimkit.capture import snapshot as snap
 
         if snap.chromium_path() is None:
             if not getattr(self, "_said_no_chromium", False):
@@ -296,8 +301,6 @@ class _Session:
 
 
 def _stamp(warc_sha: str, tsa_url: str, tsa_cert: Path, work: Path, capture_id: str) -> dict:
-    from claimkit.evidence import timestamp
-    from claimkit.evidence.storage import sha256_hex
 
     try:
         pem = Path(tsa_cert).read_bytes()
@@ -352,10 +355,6 @@ def capture_pages(case, urls: list[str], profile, *, tsa_url: str | None = None,
     """
     import sys
 
-    from claimkit.case.store import add_exhibit
-    from claimkit.evidence.canonical import canonical_json
-    from claimkit.evidence.custodylog import utc_now
-    from claimkit.evidence.storage import atomic_write, fsync_dir, sha256_file, sha256_hex
 
     if not urls:
         raise InputError("no URL to capture")
@@ -379,7 +378,7 @@ def capture_pages(case, urls: list[str], profile, *, tsa_url: str | None = None,
         finished = utc_now()
         warc_sha = sha256_file(work / s.warc_name)
         stamp = (_stamp(warc_sha, tsa_url, Path(tsa_cert), work, capture_id)
-                 if tsa_url else None)
+                 if tsa_url and tsa_cert is not None else None)
         record = {
             "type": CAPTURE_TYPE, "capture_id": capture_id, "case_id": case.case_id,
             "software": f"claimkit {__version__}", "operator": profile.owner,

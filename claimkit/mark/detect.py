@@ -98,12 +98,16 @@ class Finding:
     z_sync: float | None = None           # best synchronisation score (no claim rests on it)
     mark_family: int | None = None        # format 3 family of the claimed work
     counting: dict = field(default_factory=dict)   # the factors of the bound, test by test
+    # Scales the copy was examined at (mark.scales), all counted in ``hypotheses``.
+    scales_searched: int = 1
 
     @property
     def false_alarm_probability(self) -> float:
+        """The bound as a probability (never rounded to zero)."""
         return stats.as_probability(self.log10_false_alarm)
 
     def to_json(self) -> dict:
+        """The finding as JSON values (the ``examine --json`` fields)."""
         return {
             "detected": self.detected,
             "false_alarm_probability": self.false_alarm_probability,
@@ -112,6 +116,7 @@ class Finding:
             "score_pilot": round(self.z_pilot, 4),
             "score_full": None if self.z_full is None else round(self.z_full, 4),
             "hypotheses": self.hypotheses,
+            "scales_searched": self.scales_searched,
             "payload_space": self.payload_space,
             "payload_valid": self.payload_valid,
             "mark_format": self.mark_format,
@@ -350,12 +355,15 @@ def central_window(shape: tuple[int, int], max_pixels: int = MAX_EXAMINE_PIXELS)
 
 
 def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1,
-            macro: int = format3.MACRO) -> _Prepared:
+            macro: int = format3.MACRO, lattices: bool = True) -> _Prepared:
     """Whiten, estimate the lattice, resample and fold: everything that needs no key.
 
     Each geometry is folded at format 3's macro-period (``macro * tile``);
     the tile fold that formats 1 and 2 and the synchronisation search read
-    is its sum block by block.
+    is its sum block by block. ``lattices=False`` keeps the unwarped fold
+    only (a view whose geometry is known in advance,
+    :mod:`claimkit.mark.scales`); the count of hypotheses is unchanged, so
+    that is conservative.
     """
     if min(luma.shape) < MIN_SIDE:
         raise ValueError(f"image side below {MIN_SIDE} pixels")
@@ -364,7 +372,10 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1,
     win = central_window(luma.shape)
     r0, c0, wh, ww = win
     x = whiten(luma[r0:r0 + wh, c0:c0 + ww])
-    spectra, transforms, lattices, macro_folds = [], [], [], []
+    spectra: list = []
+    transforms: list = []
+    found: list[geometry.Lattice | None] = []
+    macro_folds: list = []
 
     def add(f, transform, lattice, mf):
         # Single precision from here on: the folds sum thousands of pixels, and
@@ -380,13 +391,13 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1,
         idx, phase = _variant_spectra(tile)
         spectra.append(s.ravel()[idx] * phase)
         transforms.append(transform)
-        lattices.append(lattice)
+        found.append(lattice)
         macro_folds.append(np.asarray(mf, dtype=np.float32))
 
     mf = fold(x, tile * macro)
     add(mf.reshape(macro, tile, macro, tile).sum(axis=(0, 2)), None, None, mf)
     half = np.array([wh, ww], dtype=float) / 2
-    for lat in geometry.find_lattices(x, tile, workers=workers):
+    for lat in geometry.find_lattices(x, tile, workers=workers) if lattices else ():
         t = lat.transform(tile)
         # A lattice that is the identity to within a fifth of a pixel across the
         # window adds nothing to the unwarped fold: skip the costly resampling.
@@ -400,7 +411,7 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1,
         else:
             tf, mf = fold_resampled(x, t, tile, macro=macro)
             add(tf, t, lat, mf)
-    return _Prepared(spectra, transforms, lattices, win, macro_folds)
+    return _Prepared(spectra, transforms, found, win, macro_folds)
 
 
 def _surfaces(prep: _Prepared, pattern: KeyPattern, ramps: np.ndarray):

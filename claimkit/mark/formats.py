@@ -69,6 +69,7 @@ class FormatRecord:
         return out
 
     def describe(self) -> str:
+        """The format in words (the dossier's method section)."""
         extra = ""
         if self.families > 1:
             extra = (f"; {self.families} keyed families, a carrier per tile of a "

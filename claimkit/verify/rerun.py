@@ -6,28 +6,28 @@ is compared with the re-run (:func:`claimkit.verify.compare.differences`).
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import numpy as np
 
 from claimkit import __version__
+from claimkit.case import layout
 from claimkit.case.align import align
-from claimkit.case.examine import decoy_summary, jsonable
+from claimkit.case.examine import alignment_geometry, decoy_summary, jsonable, weigh_lines
 from claimkit.imageio import read_picture, to_luma
-from claimkit.mark import detect, payload
-from claimkit.mark.format3 import FAMILIES
+from claimkit.mark import payload
+from claimkit.mark.format3 import FAMILIES, MarkKeys
 from claimkit.stress import run_battery
 from claimkit.verify.compare import differences
 from claimkit.verify.report import SKIPPED, VerifyReport
-from claimkit.workflow import examine_picture, expected_payload_check
+from claimkit.workflow import examine_picture, expected_payload_check, finding_words
 
 __all__ = ["rerun_examination", "rerun_robustness"]
 
 
 def _merged_keys(all_keys: list):
     """One key set from several disclosures of one owner: the legacy seed, the sync seed, every family disclosed."""
-    from claimkit.mark.format3 import MarkKeys
-
     first = all_keys[0]
     if not isinstance(first, MarkKeys):
         return first
@@ -39,9 +39,15 @@ def _merged_keys(all_keys: list):
 
 def _partial(keys) -> bool:
     """Whether the keys hold format 3 but not every family (nor, then, what the owner used)."""
-    from claimkit.mark.format3 import MarkKeys
-
     return isinstance(keys, MarkKeys) and keys.sync is not None and len(keys.families) < FAMILIES
+
+
+def _name_versions(diffs: list[str], made_with: str | None) -> None:
+    """Put first, when numbers differ, which claimkit made them and which re-ran them."""
+    this = f"claimkit {__version__}"
+    if diffs and made_with and made_with != this:
+        diffs.insert(0, f"examined with {made_with} and re-run with {this} (install {made_with} "
+                        "to reproduce its numbers to the digit)")
 
 
 def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
@@ -64,8 +70,7 @@ def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
     f = examine_picture(pic, seed, owner_tag=owner_tag, payload_check=check,
                         threshold=params["threshold"], decoys=params["decoys"])
     stored = finding["result"]
-    got = f.to_json()
-    got["geometry_text"] = detect.describe_in_words(f.geometry)
+    got = {**f.to_json(), **finding_words(f)}
     diffs = []
     if _partial(seed) and not stored.get("detected") and not f.detected:
         # Nothing claimed, and the disclosure holds some of format 3's families only:
@@ -99,28 +104,69 @@ def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
             if a.shape != b.shape or not np.allclose(a, b, rtol=1e-4, atol=1e-4):
                 diffs.append(f"arrays.{name}: differs from the re-run")
         stored_arrays = {k: arr[k] for k in arr.files}
+    luma = to_luma(pic.pixels)
+    reference = finding.get("reference") or {}
+    ref = root / reference.get("file", "")
+    # The unmarked master may be withheld from the bundle (report --include-original adds it);
+    # the published marked file never is.
+    withheld = bool(reference) and not ref.is_file() and reference.get("kind") != "marked"
+    ref_luma = to_luma(read_picture(ref).pixels) if reference and not withheld else None
+    lines = None
+    if "evaluation" in finding and withheld:
+        rep.add(f"{i} content line", True, "not re-run: it compared the exhibit with the "
+                "unmarked master, withheld from the bundle (report --include-original adds it)",
+                status=SKIPPED)
+    elif "evaluation" in finding:
+        # The content line and the evaluation, from the exhibit, the reference in the bundle,
+        # the signed work record of the disclosure and the stored robustness rows.
+        mark = {**got, "work_id": stored.get("work_id"), "registered": stored.get("registered")}
+        lines = weigh_lines(luma, exhibit_id=i, rep=mark, threshold=params["threshold"],
+                            match=finding.get("match"),
+                            work_record=_work_record(root, (finding.get("match") or {}).get("work_id")),
+                            owner=_owner(root), reference_luma=ref_luma,
+                            reference_kind=(finding.get("reference") or {}).get("kind"),
+                            robustness=finding.get("robustness"))
+        for k in ("content", "content_mismatch", "evaluation"):
+            diffs += differences(finding.get(k), lines[k], k)
     al = finding.get("alignment")
-    ref = root / (finding.get("reference") or {}).get("file", "")
-    if al and al.get("aligned") and not ref.is_file() and \
-            finding["reference"].get("kind") != "marked":
+    if al and al.get("aligned") and withheld:
         rep.add(f"{i} alignment", True, "not re-run: the file it aligns to is the unmarked "
                 "master, withheld from the bundle (report --include-original adds it)",
                 status=SKIPPED)
-    elif al and al.get("aligned"):
-        rpic = read_picture(ref)
-        again = align(to_luma(rpic.pixels), to_luma(pic.pixels), f.geometry or None)
+    elif al and al.get("aligned") and ref_luma is not None:
+        geom = alignment_geometry(lines["content"]) if lines else (f.geometry or None)
+        again = align(ref_luma, luma, geom)
         diffs += differences(al, again.numbers, "alignment")
         if "difference" in stored_arrays and not np.array_equal(stored_arrays["difference"],
                                                                again.difference):
             diffs.append("arrays.difference: the difference map differs from the re-run")
-    made_with, this = params.get("software"), f"claimkit {__version__}"
-    if diffs and made_with and made_with != this:
-        diffs.insert(0, f"examined with {made_with} and re-run with {this} (install {made_with} "
-                        "to reproduce its numbers to the digit)")
+    _name_versions(diffs, params.get("software"))
     rep.add(f"{i} re-run", not diffs, "; ".join(diffs[:8]) if diffs else
             f"{'detected' if f.detected else 'not detected'}, log10 P_fa "
             f"{round(f.log10_false_alarm, 4)}, {len(f.decoy_scores)} decoys and every stored "
             "number reproduced")
+
+
+def _work_record(root: Path, work_id: str | None) -> dict | None:
+    """The signed work record from the bundle's disclosure of ``work_id`` (checked earlier)."""
+    if not work_id:
+        return None
+    folder = root / layout.DISCLOSURES
+    for p in sorted(folder.glob("*/work-record.json")) if folder.is_dir() else []:
+        try:
+            record = json.loads(p.read_bytes())
+        except (OSError, ValueError):
+            continue
+        if isinstance(record, dict) and record.get("work_id") == work_id:
+            return record
+    return None
+
+
+def _owner(root: Path) -> str | None:
+    try:
+        return json.loads((root / layout.CASE_FILE).read_bytes()).get("owner", {}).get("name")
+    except (OSError, ValueError):
+        return None
 
 
 def rerun_robustness(root: Path, findings: dict, keys: dict, rep: VerifyReport) -> None:
@@ -143,5 +189,6 @@ def rerun_robustness(root: Path, findings: dict, keys: dict, rep: VerifyReport) 
         strip = [{k: v for k, v in r.items() if k != "seconds"} for r in stored]
         fresh = [{k: v for k, v in r.items() if k != "seconds"} for r in again]
         diffs = differences(strip, fresh, "rows")
+        _name_versions(diffs, (f.get("examined") or {}).get("software"))
         rep.add(f"robustness {wid}", not diffs, "; ".join(diffs[:6]) if diffs else
                 f"{len(fresh)} edits of the registered file re-run, every row reproduced")
