@@ -332,8 +332,6 @@ class _MarkBatch:
         metadata = FileMetadata(rights=self.rights,
                                 work_id=work_id_for(self.profile.owner_tag, job.serial),
                                 registry=registry_name(self.profile))
-        from claimkit import workflow
-
         keys = workflow.embed_keys(self.profile, job.serial)
         return (str(src), str(staged), keys, [int(b) for b in bits], strength,
                 self.jpeg_quality, self.max_pixels, metadata)

@@ -88,7 +88,8 @@ def mark_parameters(strength: float) -> dict:
         "coarse_level": {
             "what": "the same kind of mark computed on the picture reduced to a short side of "
                     f"{scales.COARSE_SIDE} px, interpolated back (cubic convolution), under seeds "
-                    "derived from the marking keys (HMAC-SHA256 of each with the seed label); only on pictures whose short side is at least "
+                    "derived from the marking keys (HMAC-SHA256 of each with the seed label); only on "
+                    "pictures whose short side is at least "
                     f"{round(scales.MIN_COARSE_FACTOR * scales.COARSE_SIDE)} px",
             "short_side_px": scales.COARSE_SIDE,
             "energy_share": scales.COARSE_SHARE,

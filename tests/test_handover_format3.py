@@ -10,16 +10,11 @@ from engine_helpers import photos
 from PIL import Image
 
 from claimkit import workflow
-from claimkit.evidence import profile as _profile_module
 from claimkit.evidence.disclose import check_disclosure
+from claimkit.evidence.keys import format3_family_of
 from claimkit.evidence.profile import Profile
 from claimkit.imageio import read_picture
 from claimkit.mark import payload
-
-# Mark format 3 (families) is landing separately; these tests run as soon as it is there.
-if not hasattr(_profile_module, "format3_family_of"):
-    pytest.skip("mark format 3 is not in this claimkit yet", allow_module_level=True)
-format3_family_of = _profile_module.format3_family_of
 
 pytestmark = pytest.mark.slow
 

@@ -18,7 +18,7 @@ import hmac
 import numpy as np
 import pytest
 
-from claimkit.evidence import profile as prof
+from claimkit.evidence import keys as prof
 from claimkit.imageio import add_luma_delta, to_luma
 from claimkit.mark import detect, embed, format3, formats
 from claimkit.mark.format3 import EmbedKeys, MarkKeys
@@ -125,7 +125,8 @@ def test_key_hierarchy_is_the_documented_hkdf():
     # RFC 5869 HKDF (hand-written in test_evidence_vectors, checked there against Appendix A.3).
     assert KEYS["sync"] == _hkdf_sha256(SECRET, b"claimkit/mark3/sync/v1")
     for f in (0, 5, 15):
-        assert KEYS["families"][f] == _hkdf_sha256(SECRET, b"claimkit/mark3/family/v1/" + f.to_bytes(2, "big"))
+        info = b"claimkit/mark3/family/v1/" + f.to_bytes(2, "big")
+        assert KEYS["families"][f] == _hkdf_sha256(SECRET, info)
     assign = _hkdf_sha256(SECRET, b"claimkit/mark3/family-assignment/v1")
     for serial in (1, 2, 77, 2 ** 24 - 1):
         want = int.from_bytes(hmac.new(assign, serial.to_bytes(3, "big"), hashlib.sha256).digest()[:4],
@@ -252,7 +253,10 @@ def test_fold_estimate_copy_attack_makes_no_claim(portfolio):
     """
     unrelated = photos()["rocket"]
     serials = {s for s, _ in portfolio}
-    check = lambda b: any(np.array_equal(b, payload(s)) for s in serials)
+
+    def check(b):
+        return any(np.array_equal(b, payload(s)) for s in serials)
+
     pool = np.mean([fold_estimate(m, 128) for _, m in portfolio[:10]], axis=0)
     for est in (fold_estimate(portfolio[1][1], 128), pool):
         d = tiled(est, unrelated.shape[:2])

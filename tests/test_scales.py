@@ -206,7 +206,12 @@ def test_bound_counts_every_scale(pictures):
     doc = f.to_json()
     assert doc["scales_searched"] == 3 and doc["hypotheses"] == f.hypotheses
     # An expert redoes the arithmetic from the published scores and counts.
-    redo = stats.log10_false_alarm(f.z_pilot, f.z_full, doc["hypotheses"], doc["payload_space"])
+    # The reported test's bound over every scale's placements, times the number of
+    # tests (formats 1-2 and format 3), each counted whichever keys the examiner holds.
+    redo = stats.log10_false_alarm(z_pilot=f.z_pilot, z_full=f.z_full, hypotheses=doc["hypotheses"],
+                                   payload_space=doc["payload_space"])
+    redo += math.log10(doc["false_alarm_counting"]["tests"])
+    assert doc["false_alarm_counting"]["scales"] == 3
     assert redo == pytest.approx(f.log10_false_alarm, abs=1e-9)
 
 

@@ -238,14 +238,14 @@ def fold_resampled(x: np.ndarray, transform: np.ndarray, tile: int = TILE, *,
         a = 0.5 * a + 0.25 * (np.roll(a, 1, 1) + np.roll(a, -1, 1))
         return a[::2, ::2]
 
-    acc, cnt = acc.reshape(fine, fine), cnt.reshape(fine, fine)
+    acc2, cnt2 = acc.reshape(fine, fine), cnt.reshape(fine, fine)
     if macro == 1:
-        return tent(acc) / np.maximum(tent(cnt), 1e-9)
+        return tent(acc2) / np.maximum(tent(cnt2), 1e-9)
     small = 2 * tile
-    acc_t = acc.reshape(macro, small, macro, small).sum(axis=(0, 2))
-    cnt_t = cnt.reshape(macro, small, macro, small).sum(axis=(0, 2))
+    acc_t = acc2.reshape(macro, small, macro, small).sum(axis=(0, 2))
+    cnt_t = cnt2.reshape(macro, small, macro, small).sum(axis=(0, 2))
     return (tent(acc_t) / np.maximum(tent(cnt_t), 1e-9),
-            tent(acc) / np.maximum(tent(cnt), 1e-9))
+            tent(acc2) / np.maximum(tent(cnt2), 1e-9))
 
 
 def _variants(f: np.ndarray) -> np.ndarray:
@@ -546,6 +546,7 @@ def _read_legacy(prep, seed, ramps, payload_check, known_bits, payload_space) ->
                                      payload_space=counted)
         if best is None or lp < best[0]:
             best = (lp, (g, d, ph, shift), pattern, bits, valid, z_full, z_pilot, rec)
+    assert best is not None     # ``_top`` yields at least one placement
     lp, (g, d, ph, shift), pattern, bits, valid, z_full, z_pilot, rec = best
     return _Outcome(lp=lp, z_pilot=z_pilot, z_full=z_full, bits=bits, valid=valid,
                     fmt=pattern.fmt.name, placement=(g, d, ph, shift),

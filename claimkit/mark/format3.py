@@ -102,7 +102,8 @@ class MarkKeys:
     sync: bytes | None = None
     families: Mapping[int, bytes] = field(default_factory=dict)
 
-    def __hash__(self) -> int:   # usable as a cache key
+    def __hash__(self) -> int:
+        """A hash over every seed (the keys are used as a cache key)."""
         return hash((self.legacy, self.sync, tuple(sorted(self.families.items()))))
 
 
@@ -155,7 +156,8 @@ def claim_frequencies(tile: int = TILE) -> tuple[np.ndarray, np.ndarray]:
 class FamilyPattern:
     """The key-derived arrays of one family."""
 
-    phases: np.ndarray       # (MACRO**2, nf) complex64 unit phasors at claim_frequencies(), class c = u * MACRO + v
+    # (MACRO**2, nf) complex64 unit phasors at claim_frequencies(); class c = u * MACRO + v
+    phases: np.ndarray
     pilot_pos: np.ndarray    # (CLAIM_PILOTS, 2)
     pilot_sign: np.ndarray   # (CLAIM_PILOTS,) +-1
     code_pos: np.ndarray     # (code spots, 2)
@@ -374,7 +376,10 @@ def _class_dft(a: np.ndarray) -> np.ndarray:
 
 
 def score_families_direct(spec: np.ndarray, families: Mapping[int, bytes]) -> dict[int, np.ndarray]:
-    """:func:`score_families` by the plain formula over full spectra, tile by tile, offset by offset (tests)."""
+    """:func:`score_families` by the plain formula over full spectra, tile by tile and offset by offset.
+
+    (For the tests: the fast path must agree with it.)
+    """
     n = spec.shape[-1]
     out = {}
     sp = spot_spectrum(n, SPOT_SIGMA)
@@ -422,7 +427,8 @@ def decode_family(spec: np.ndarray, seed: bytes, offset: tuple[int, int], *,
     return bits, True, z_full, rec
 
 
-def reference_message(seed: bytes, bits: np.ndarray, tile: int = TILE) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def reference_message(seed: bytes, bits: np.ndarray,
+                      tile: int = TILE) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Spot positions, signs and the template (spots of peak 1) of a family's message for ``bits``."""
     fam = family_pattern(seed, tile)
     code = 2.0 * CODE.encode(np.asarray(bits, dtype=np.uint8)).astype(np.float64) - 1.0

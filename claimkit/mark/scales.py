@@ -67,7 +67,7 @@ from typing import Any
 import numpy as np
 from scipy import sparse
 
-from claimkit.mark import detect, embed, pattern, stats
+from claimkit.mark import detect, embed, pattern
 
 COARSE_SIDE = 384        # short side of the coarse level, level pixels (three periods of TILE)
 COARSE_SHARE = 0.5       # fraction of the mean squared change given to the coarse component
@@ -559,7 +559,8 @@ def examine(luma: np.ndarray, seed: bytes, *, overview: np.ndarray | None = None
     if geom and name != "native":
         geom = _view_geometry(geom, shape, prepared.view_shapes[name], name)
     return replace(f, log10_false_alarm=min(0.0, f.log10_false_alarm + math.log10(n)),
-                   hypotheses=f.hypotheses * n, scales_searched=n, geometry=geom)
+                   hypotheses=f.hypotheses * n, scales_searched=n, geometry=geom,
+                   counting={**f.counting, "scales": n} if f.counting else {})
 
 
 def _view_geometry(geom: dict, shape: tuple[int, int], vshape: tuple[int, int], view: str) -> dict:
@@ -606,9 +607,3 @@ def reduce_copy(luma: np.ndarray, view: str = "short side") -> np.ndarray:
     """A whole copy's luma resampled to one coarse view."""
     shape = np.shape(luma)
     return resample(luma, view_shape(shape, view))
-
-
-def log10_bound(z_pilot: float, z_full: float | None, payload_space: int) -> float:
-    """The bound for scores read at one scale, counting every scale's placements."""
-    return stats.log10_false_alarm(z_pilot, z_full, detect.hypotheses() * len(SCALES),
-                                   payload_space)

@@ -29,6 +29,7 @@ from claimkit.mark import payload
 from claimkit.verify.policy import Policy
 from claimkit.verify.report import VerifyReport
 from claimkit.verify.trust import check_tsa
+from claimkit.workflow import disclosure_mark_keys
 
 __all__ = [
     "check_custody",
@@ -131,8 +132,6 @@ def check_manifest(root: Path, files: list[str], rep: VerifyReport):
 
 def _keys_of(chk) -> tuple:
     """(detection keys, payload bits, check): every format's seeds the disclosure holds."""
-    from claimkit.workflow import disclosure_mark_keys
-
     bits = payload.pack(chk.owner_tag, chk.serial, chk.payload_tag)
     keys = disclosure_mark_keys(getattr(chk, "format3", None) or {}, legacy=chk.detection_seed)
     return (keys, bits, chk)

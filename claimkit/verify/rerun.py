@@ -27,7 +27,10 @@ __all__ = ["rerun_examination", "rerun_robustness"]
 
 
 def _merged_keys(all_keys: list):
-    """One key set from several disclosures of one owner: the legacy seed, the sync seed, every family disclosed."""
+    """One key set from several disclosures of one owner.
+
+    The legacy seed, the sync seed and every family disclosed.
+    """
     first = all_keys[0]
     if not isinstance(first, MarkKeys):
         return first
