@@ -141,7 +141,7 @@ def lanczos(a: np.ndarray, size: tuple[int, int]) -> np.ndarray:
 
 
 def transplant_mark(marked: np.ndarray, host: np.ndarray, *, gain: float = 1.5,
-                    tile: int = 128) -> np.ndarray:
+                    tile: int | None = 128) -> np.ndarray:
     """The copy attack, in numpy only (no claimkit code): estimate a tiled mark, add it elsewhere.
 
     The attacker knows the published method (a pattern repeated every ``tile``
@@ -149,6 +149,11 @@ def transplant_mark(marked: np.ndarray, host: np.ndarray, *, gain: float = 1.5,
     of the marked file (luma minus its 5 x 5 box mean) is averaged over every
     whole tile, which keeps the repeated mark and averages the picture away,
     and the estimate is tiled over an unrelated photo, on all three channels.
+
+    ``tile=None`` is the strongest form, which needs no period at all: the
+    whole residual of the marked file is added (tiled where the host is
+    larger). It carries every component of any mark that does not depend on
+    the picture, format 3's keyed claim included; the content line catches it.
     """
     y = marked[..., :3].astype(np.float64) @ np.array([0.299, 0.587, 0.114])
     k = 5
@@ -156,9 +161,12 @@ def transplant_mark(marked: np.ndarray, host: np.ndarray, *, gain: float = 1.5,
     c = np.pad(np.cumsum(np.cumsum(p, 0), 1), ((1, 0), (1, 0)))
     mean = (c[k:, k:] - c[:-k, k:] - c[k:, :-k] + c[:-k, :-k]) / (k * k)
     res = y - mean
-    h, w = (res.shape[0] // tile) * tile, (res.shape[1] // tile) * tile
-    est = res[:h, :w].reshape(h // tile, tile, w // tile, tile).mean(axis=(0, 2))
+    if tile is None:
+        est = res
+    else:
+        h, w = (res.shape[0] // tile) * tile, (res.shape[1] // tile) * tile
+        est = res[:h, :w].reshape(h // tile, tile, w // tile, tile).mean(axis=(0, 2))
     H, W = host.shape[:2]
-    big = np.tile(est, (-(-H // tile), -(-W // tile)))[:H, :W]
+    big = np.tile(est, (-(-H // est.shape[0]), -(-W // est.shape[1])))[:H, :W]
     out = host[..., :3].astype(np.float64) + gain * big[..., None]
     return np.clip(out, 0, 255).round().astype(np.uint8)

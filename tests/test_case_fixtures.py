@@ -7,7 +7,7 @@ finds two copies on the fictional shop Tidewater Home Goods: one resized to
 80 %, turned 4 degrees counter-clockwise, cropped, JPEG quality 80. A third
 exhibit is an unmarked photo (``chelsea``) that must not be claimed. The fourth
 is a forgery: the owner's mark estimated from the published file with numpy
-alone (the copy attack, ``engine_helpers.transplant_mark``) and added to the
+alone (the copy attack with the whole residual, ``engine_helpers.transplant_mark``) and added to the
 unrelated ``rocket`` photo; it is dated before the work was registered, so it
 must carry both the ``content-mismatch`` and the ``registered-after-found``
 warnings and must never be reported as derived from the work.
@@ -106,7 +106,10 @@ def _build(tmp_path_factory) -> BuiltCase:
         forged = web / "tidewater-rocket-poster.jpg"
         with Image.open(published) as im:
             marked = np.asarray(im.convert("RGB"))
-        Image.fromarray(transplant_mark(marked, data.rocket())).save(forged, quality=92)
+        # The whole residual: format 3's keyed claim does not survive a fold at the tile
+        # period, but no mark independent of the picture survives having its whole
+        # residual lifted (the content line is what catches this forgery).
+        Image.fromarray(transplant_mark(marked, data.rocket(), tile=None)).save(forged, quality=92)
         case = root / "case"
         h = ["--home", str(home)]
         assert _run(["case", "new", str(case), "--title", sc["case_title"], *h]) == 0
