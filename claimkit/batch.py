@@ -50,7 +50,7 @@ from claimkit.evidence.keys import work_id_for
 from claimkit.evidence.rights import load_rights
 from claimkit.evidence.storage import sha256_file, unfinished_writes
 from claimkit.filemeta import INSTALL_HINT, exiftool_available
-from claimkit.mark import payload
+from claimkit.mark import formats, payload
 from claimkit.runner import (
     Outcome,
     Progress,
@@ -242,7 +242,7 @@ class BatchSummary:
 class _MarkBatch:
     def __init__(self, profile, *, force: bool, jpeg_quality: int, strength: float,
                  max_pixels: int | None, on_row: Callable[[dict], None] | None,
-                 progress: Progress, guard: StopGuard, rights=None):
+                 progress: Progress, guard: StopGuard, rights=None, mark_format: int | None = None):
         self.rights = rights if rights is not None else load_rights(profile.home, profile.owner)
         self.profile = profile
         self.force = force
@@ -252,7 +252,8 @@ class _MarkBatch:
         self.on_row = on_row
         self.progress = progress
         self.guard = guard
-        self.params = workflow.mark_parameters(strength)
+        self.mark_format = workflow.check_format(mark_format)
+        self.params = workflow.mark_parameters(strength, self.mark_format)
         self.summary = BatchSummary()
         self.handed_back = 0
         self.in_flight: set[Path] = set()   # staged names a worker may be writing
@@ -316,11 +317,14 @@ class _MarkBatch:
             job.restore_of = work
             job.serial = work.serial
             strength = float(rec.get("mark_params", {}).get("strength", self.strength))
+            # A registered copy is re-made in the format it was registered in.
+            fmt = formats.number_of(rec.get("mark_params", {}).get("format")) or self.mark_format
         else:
             if out.exists() and not self.force:
                 raise InputError("already exists; use --force to replace it", path=out)
             job.serial = self.profile.allocate_serials(1)[0]
             strength = self.strength
+            fmt = self.mark_format
         try:
             out.parent.mkdir(parents=True, exist_ok=True)
         except OSError as exc:
@@ -332,7 +336,7 @@ class _MarkBatch:
         metadata = FileMetadata(rights=self.rights,
                                 work_id=work_id_for(self.profile.owner_tag, job.serial),
                                 registry=registry_name(self.profile))
-        keys = workflow.embed_keys(self.profile, job.serial)
+        keys = workflow.embed_keys(self.profile, job.serial, fmt)
         return (str(src), str(staged), keys, [int(b) for b in bits], strength,
                 self.jpeg_quality, self.max_pixels, metadata)
 
@@ -436,7 +440,8 @@ def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
               jpeg_quality: int = 95, strength: float = 1.0, workers: int | None = None,
               engine: str = "local", scheduler: str | None = None,
               on_row: Callable[[dict], None] | None = None, progress: bool | None = None,
-              max_pixels: int | None = None, rights=None) -> BatchSummary:
+              max_pixels: int | None = None, rights=None,
+              mark_format: int | None = None) -> BatchSummary:
     """Mark every photo in ``inputs`` (files and folders) into the folder ``out``.
 
     Parameters
@@ -451,7 +456,7 @@ def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
         The output folder (created if missing).
     force : bool
         Replace existing output files.
-    jpeg_quality, strength : see :func:`claimkit.workflow.mark_file`.
+    jpeg_quality, strength, mark_format : see :func:`claimkit.workflow.mark_file`.
     workers : int, optional
         Worker processes (default: the usable cores); 1 runs in this process.
     engine : {"local", "dask"}
@@ -472,6 +477,7 @@ def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
     out = Path(out)
     workflow.check_strength(strength)
     workflow.check_jpeg_quality(jpeg_quality)
+    mark_format = workflow.check_format(mark_format)
     for p in inputs:
         if Path(p).is_dir() and out.exists() and os.path.samefile(p, out):
             raise InputError("the output folder is an input folder; choose another --out",
@@ -494,7 +500,7 @@ def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
     with StopGuard() as guard:
         batch = _MarkBatch(profile, force=force, jpeg_quality=jpeg_quality, strength=strength,
                            max_pixels=max_pixels, on_row=on_row, progress=bar,
-                           guard=guard, rights=rights)
+                           guard=guard, rights=rights, mark_format=mark_format)
         for p in problems:
             batch.summary.failures.append(p.line())
             batch.summary.failure_kinds.append("input")

@@ -73,14 +73,24 @@ def check_decoys(decoys: int) -> int:
     return int(decoys)
 
 
-def mark_parameters(strength: float) -> dict:
+def check_format(mark_format: int | None) -> int:
+    """The mark format to write (``formats.DEFAULT_WRITTEN`` for None), refused when not writable."""
+    if mark_format is None:
+        return formats.DEFAULT_WRITTEN
+    if int(mark_format) not in formats.WRITABLE:
+        raise InputError(f"mark format {mark_format} cannot be written (choose "
+                         f"{' or '.join(str(n) for n in formats.WRITABLE)})")
+    return int(mark_format)
+
+
+def mark_parameters(strength: float, mark_format: int | None = None) -> dict:
     """The parameters recorded with every work (enough to re-derive the mark from the keys).
 
     The format's public parameter record (:mod:`claimkit.mark.formats`) plus
     the embedding settings of this work.
     """
     return {
-        **formats.CURRENT.as_record(),
+        **formats.WRITABLE[check_format(mark_format)].as_record(),
         "software": f"claimkit {__version__}",
         "mask": "SSIM-derived local amplitude",
         "local_ssim_target": embed.DEFAULT_LOCAL_SSIM,
@@ -111,8 +121,14 @@ def disclosure_mark_keys(keys: dict, legacy: bytes | None = None) -> MarkKeys:
     return MarkKeys(legacy=legacy, sync=keys.get("sync"), families=dict(keys.get("families", {})))
 
 
-def embed_keys(profile, serial: int) -> EmbedKeys:
-    """What marking one work in format 3 needs: the sync seed and the work's own family seed."""
+def embed_keys(profile, serial: int, mark_format: int | None = None) -> bytes | EmbedKeys:
+    """What marking one work needs.
+
+    Format 3: the sync seed and the work's own family seed. Format 2: the
+    owner-level detection seed.
+    """
+    if check_format(mark_format) == 2:
+        return profile.detection_seed
     k = profile.format3_disclosure_keys(serial)
     return EmbedKeys(sync=k["sync"], family=k["family"], family_seed=k["families"][k["family"]])
 
@@ -363,7 +379,7 @@ def prepare_output(out: Path, src: Path, *, force: bool) -> None:
 
 def mark_file(profile, src: str | os.PathLike, out: str | os.PathLike, *, force: bool = False,
               strength: float = 1.0, jpeg_quality: int = 95, max_pixels: int | None = None,
-              rights: Rights | None = None) -> dict:
+              rights: Rights | None = None, mark_format: int | None = None) -> dict:
     """Mark one photo, write the marked copy to ``out`` and register the work.
 
     The original is only read. ``out``'s folder is created if missing. The one
@@ -385,6 +401,7 @@ def mark_file(profile, src: str | os.PathLike, out: str | os.PathLike, *, force:
     src, out = Path(src), Path(out)
     check_strength(strength)
     check_jpeg_quality(jpeg_quality)
+    mark_format = check_format(mark_format)
     pic, sha_orig = load_original(src, max_pixels=max_pixels)
     prepare_output(out, src, force=force)
     if rights is None:
@@ -395,13 +412,14 @@ def mark_file(profile, src: str | os.PathLike, out: str | os.PathLike, *, force:
                         registry=registry_name(profile))
     staged = staged_path(out)
     try:
-        facts = mark_picture(pic, staged, embed_keys(profile, serial), bits, strength=strength,
+        facts = mark_picture(pic, staged, embed_keys(profile, serial, mark_format), bits,
+                             strength=strength,
                              jpeg_quality=jpeg_quality, force=True, max_pixels=max_pixels,
                              metadata=meta)
         record = profile.register_work(
             serial, sha256_original=sha_orig, sha256_marked=facts["sha256_marked"],
             original_name=src.name, marked_name=out.name, fingerprint=facts["fingerprint"],
-            mark_params=mark_parameters(strength), capture=facts["capture"],
+            mark_params=mark_parameters(strength, mark_format), capture=facts["capture"],
             quality=facts["quality"])
     except BaseException:
         staged.unlink(missing_ok=True)

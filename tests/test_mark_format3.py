@@ -319,3 +319,29 @@ def test_a_format3_disclosure_holds_one_family_committed_to_and_reads_its_work(p
     f = workflow.examine_picture(read_picture(tmp_path / "cup-m.png"), keys,
                                  payload_check=workflow.expected_payload_check(bits))
     assert f.detected and f.payload_valid and f.mark_format == format3.NAME and f.mark_family == fam
+
+
+def test_mark_format_2_on_request_is_recorded_and_read_as_format_2(profile, tmp_path):
+    """``mark --format 2`` writes the owner-level tiled pattern, records it, and the owner reads it."""
+    from PIL import Image
+
+    from claimkit import workflow
+    from claimkit.cli import main
+    from claimkit.errors import InputError
+
+    src = tmp_path / "cat.png"
+    Image.fromarray(photos()["chelsea"]).save(src)
+    rep = workflow.mark_file(profile, src, tmp_path / "cat-2.png", mark_format=2)
+    work = profile.work(rep["work_id"])
+    assert work.record["mark_params"]["format"] == "claimkit-mark/2"
+    assert "format3_keys_sha256" not in profile.commitment_opening(rep["work_id"])
+    found, _ = workflow.examine_file(profile, tmp_path / "cat-2.png")
+    assert found["detected"] and found["mark_format"] == "claimkit-mark/2"
+    assert found["work_id"] == rep["work_id"]
+    with pytest.raises(InputError, match="cannot be written"):
+        workflow.mark_file(profile, src, tmp_path / "cat-5.png", mark_format=5)
+    assert not (tmp_path / "cat-5.png").exists()
+    # The command line offers 2 and 3 only (argparse refuses anything else: exit 2).
+    with pytest.raises(SystemExit) as stop:
+        main(["mark", str(src), "--out", str(tmp_path / "x.png"), "--format", "4"])
+    assert stop.value.code == 2

@@ -37,12 +37,12 @@ def cmd_mark(args) -> int:
                              scheduler=args.scheduler, json_lines=args.json,
                              progress=not (args.json or getattr(args, "quiet", False)),
                              max_pixels=args.max_pixels,
-                             rights=rights)
+                             rights=rights, mark_format=args.mark_format)
         if out.is_dir():
             raise InputError("is a folder; with one input, --out names the marked file", path=out)
         rep = workflow.mark_file(profile, inputs[0], out, force=args.force, strength=args.strength,
                                  jpeg_quality=args.quality, max_pixels=args.max_pixels,
-                                 rights=rights)
+                                 rights=rights, mark_format=args.mark_format)
     if args.json:
         print_json(rep)
     else:
@@ -171,6 +171,10 @@ def register(sub, common) -> None:
     p.add_argument("--quality", type=int, default=95, metavar="Q", help="JPEG quality (default 95)")
     p.add_argument("--strength", type=float, default=1.0,
                    help="multiplier on the default strength (default 1.0)")
+    p.add_argument("--format", dest="mark_format", type=int, choices=(2, 3), default=None,
+                   metavar="N", help="mark format written: 3 (keyed per tile and family; the "
+                                     "default) or 2 (one tiled pattern per owner); every format "
+                                     "is read")
     p.add_argument("--max-pixels", type=int, default=None, metavar="N",
                    help="refuse images with more pixels (decompression-bomb guard)")
     p.add_argument("--workers", type=int, default=None, help="parallel workers for batches")

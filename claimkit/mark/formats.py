@@ -102,11 +102,20 @@ FORMAT_3 = FormatRecord(
     families=format3.FAMILIES, macro_cell_tiles=format3.MACRO, sync_spots=format3.SYNC_SPOTS,
     sync_energy_share=format3.SYNC_SHARE)
 
-CURRENT = FORMAT_3
-#: Every format the detector reads, the current first.
+#: The formats ``mark`` writes, by number (``mark --format N``).
+WRITABLE = {2: FORMAT_2, 3: FORMAT_3}
+#: The format written when none is asked for.
+DEFAULT_WRITTEN = 3
+CURRENT = WRITABLE[DEFAULT_WRITTEN]
+#: Every format the detector reads, the newest first.
 READABLE = (FORMAT_3, FORMAT_2, FORMAT_1)
 
 
 def by_name(name: str) -> FormatRecord | None:
     """The record of a format by its name (None for an unknown one)."""
     return next((f for f in READABLE if f.name == name), None)
+
+
+def number_of(name: str | None) -> int | None:
+    """The number ``N`` of a format named ``claimkit-mark/N`` that ``mark`` writes (else None)."""
+    return next((n for n, f in WRITABLE.items() if f.name == name), None)
