@@ -4,11 +4,17 @@ from __future__ import annotations
 
 import json
 
-from claimkit.mark import ecc, formats, pattern
+from claimkit.mark import ecc, format3, formats, pattern
 
 
 def test_every_readable_format_has_a_record_that_matches_the_engine():
-    assert [f.name for f in formats.READABLE] == [f.name for f in pattern.READABLE]
+    # Formats 1 and 2 are read by the one pilot search of mark.pattern, format 3 by its own test.
+    assert [f.name for f in formats.READABLE] == [format3.NAME] + [f.name for f in pattern.READABLE]
+    rec3 = formats.by_name(format3.NAME)
+    assert rec3 is not None and rec3.pilot_spots == format3.CLAIM_PILOTS
+    assert rec3.code_spots == format3.CODE.coded_length(pattern.PAYLOAD_BITS)
+    assert (rec3.families, rec3.macro_cell_tiles) == (format3.FAMILIES, format3.MACRO)
+    assert (rec3.sync_spots, rec3.sync_energy_share) == (format3.SYNC_SPOTS, format3.SYNC_SHARE)
     for fmt in pattern.READABLE:
         rec = formats.by_name(fmt.name)
         assert rec is not None
