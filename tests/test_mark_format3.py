@@ -345,3 +345,82 @@ def test_mark_format_2_on_request_is_recorded_and_read_as_format_2(profile, tmp_
     with pytest.raises(SystemExit) as stop:
         main(["mark", str(src), "--out", str(tmp_path / "x.png"), "--format", "4"])
     assert stop.value.code == 2
+
+
+# ---------------------------------------------------------------- the coarse component (issue 17)
+
+@pytest.fixture(scope="module")
+def master():
+    """A 1000 x 1500 generated landscape marked in format 3 with both components, and its serial."""
+    from claimkit.mark import scales
+    from tests.engine_helpers import landscape
+
+    serial = 77
+    rgb = landscape(1000, 1500, seed=41)
+    return serial, add_luma_delta(rgb, scales.multiscale_delta(to_luma(rgb), embed_keys(serial),
+                                                               payload(serial)))
+
+
+def test_format3_web_copy_is_claimed_at_the_coarse_scale_with_its_family(master):
+    """A 25 % copy (Pillow's Lanczos, then scikit-image's rescale) has lost the fine mark; the
+    coarse component, format 3 at the level, names the work and its family."""
+    from skimage.transform import rescale
+
+    from claimkit.mark import scales
+    from tests.engine_helpers import lanczos
+
+    serial, mk = master
+    bits = payload(serial)
+    copies = [lanczos(mk, (375, 250)),
+              np.clip(np.rint(rescale(mk.astype(float) / 255, 0.25, anti_aliasing=True,
+                                      channel_axis=2, order=3) * 255), 0, 255).astype(np.uint8)]
+    for copy in copies:
+        f = scales.examine(to_luma(copy), ALL, payload_check=lambda b: np.array_equal(b, bits))
+        assert f.detected and f.payload_valid and f.mark_format == format3.NAME
+        assert f.mark_family == prof.format3_family_of(SECRET, serial)
+        assert f.geometry["level"]["view"] in ("short side", "long side")
+        assert f.counting["scales"] == 3 and f.hypotheses == 3 * detect.format3_hypotheses()
+
+
+def test_a_fold_of_the_web_copy_at_the_level_keeps_the_claim_off_other_photos(master):
+    """The keyless fold at the coarse level (the copy reduced to 384 px, residual averaged over
+    128 px) gives the coarse sync only: added to an unrelated photo at 38 dB, no claim."""
+    from claimkit.mark import scales
+    from tests.engine_helpers import lanczos
+
+    serial, mk = master
+    small = lanczos(mk, (576, 384))          # the attacker's own reduction, to the level
+    est = fold_estimate(small, 128)
+    unrelated = lanczos(photos()["rocket"], (576, 384))
+    d = tiled(est, unrelated.shape[:2])
+    g = np.sqrt(255.0 ** 2 / 10 ** (38.0 / 10) / np.mean(d ** 2))
+    bits = payload(serial)
+    f = scales.examine(to_luma(add(unrelated, g * d)), ALL,
+                       payload_check=lambda b: np.array_equal(b, bits))
+    assert not f.detected and f.payload_bits is None
+
+
+def test_null_calibration_at_every_scale_with_format3_keys():
+    """Unmarked pictures large enough for the coarse views, under random owner keys: no claim at
+    any scale, and the bound (counting both tests and the three scales) stays conservative."""
+    from skimage import data
+
+    from claimkit.mark import scales
+    from tests.engine_helpers import landscape
+
+    rng = np.random.default_rng(57)
+    pvals = []
+    for pic in (landscape(700, 1050, seed=43), np.stack([np.tile(data.brick(), (2, 2))] * 3, -1)):
+        luma = to_luma(pic)
+        prep = scales.prepare(luma)
+        for _ in range(4):
+            keys = MarkKeys(legacy=rng.bytes(32), sync=rng.bytes(32),
+                            families={f: rng.bytes(32) for f in range(format3.FAMILIES)})
+            f = scales.examine(luma, keys, payload_check=lambda b: False, prepared=prep)
+            assert not f.detected and not f.removal_suspected
+            pvals.append(f.false_alarm_probability)
+    format3.family_pattern.cache_clear()
+    format3._pilot_kernels.cache_clear()
+    pvals = np.asarray(pvals)
+    for p in (0.25, 0.5):
+        assert np.mean(pvals <= p) <= p + 1e-9, p

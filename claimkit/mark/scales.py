@@ -67,7 +67,7 @@ from typing import Any
 import numpy as np
 from scipy import sparse
 
-from claimkit.mark import detect, embed, pattern
+from claimkit.mark import detect, embed, format3, pattern
 
 COARSE_SIDE = 384        # short side of the coarse level, level pixels (three periods of TILE)
 COARSE_SHARE = 0.5       # fraction of the mean squared change given to the coarse component
@@ -495,7 +495,8 @@ def prepare(luma: np.ndarray, *, overview: np.ndarray | None = None, step: int =
     return prep
 
 
-def examine(luma: np.ndarray, seed: bytes, *, overview: np.ndarray | None = None, step: int = 1,
+def examine(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
+            overview: np.ndarray | None = None, step: int = 1,
             shape: tuple[int, int] | None = None,
             threshold: float = detect.DEFAULT_THRESHOLD, workers: int = 1,
             prepared: PreparedScales | None = None, offset: tuple[int, int] | None = None,
