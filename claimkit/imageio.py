@@ -115,6 +115,18 @@ _FORMAT_BY_SUFFIX = {
 # File signatures, used only to tell "damaged image" from "not an image".
 _MAGIC = (b"\xff\xd8\xff", b"\x89PNG\r\n\x1a\n", b"II*\x00", b"MM\x00*", b"GIF8", b"RIFF")
 
+# Examination methods: how a file's pixels become the luma the detector reads. Each finding
+# records its method and ``verify`` re-runs it by that method; a finding that records none
+# was made by the first. A new way of reading is a new name, never a change to an old one.
+LUMA_FROM_RGB = "rgb-luma-1"
+"""Decode to RGB (or grey), then BT.601 luma in float32 (:func:`to_luma`)."""
+LUMA_FROM_JPEG_Y = "jpeg-y-1"
+"""A colour JPEG is decoded straight to its luma plane (libjpeg's Y of YCbCr, read without
+the chroma planes); every other file as :data:`LUMA_FROM_RGB`."""
+EXAMINATION_METHODS = (LUMA_FROM_RGB, LUMA_FROM_JPEG_Y)
+CURRENT_EXAMINATION_METHOD = LUMA_FROM_JPEG_Y
+
+
 # Pillow's own bomb check reads a process-wide setting during Image.open; we
 # apply our own (configurable) limit instead, so the setting is lifted for
 # the duration of the open, under a lock so that threads do not race on it.
@@ -161,6 +173,9 @@ class Picture:
     dpi : tuple of float or None
         Resolution in pixels per inch as Pillow reads it (JFIF, PNG pHYs,
         TIFF or EXIF), None where the file states none.
+    examination_method : str or None
+        The examination method the pixels were read for
+        (:data:`EXAMINATION_METHODS`); None for a picture read whole, as is.
     """
 
     path: Path
@@ -177,6 +192,7 @@ class Picture:
     region: tuple[int, int, int, int] | None = None
     dpi: tuple[float, float] | None = None
     full_size: tuple[int, int] | None = field(default=None, repr=False)   # (height, width) with a region
+    examination_method: str | None = None
 
     @property
     def height(self) -> int:
@@ -209,7 +225,7 @@ def resolve_max_pixels(max_pixels: int | None = None) -> int:
 
 def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
                  region: Callable[[tuple[int, int]], tuple[int, int, int, int]] | None = None,
-                 ) -> Picture:
+                 method: str | None = None) -> Picture:
     """Decode a photo into an upright array plus the metadata to carry over.
 
     Parameters
@@ -227,6 +243,12 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
         only that part is copied out of the decoder into the array: at
         24 megapixels the copy of the whole picture costs about as much as
         half the decoding. ``Picture.region`` records the part.
+    method : str, optional
+        Read the pixels an examination method reads (:data:`EXAMINATION_METHODS`):
+        with :data:`LUMA_FROM_JPEG_Y` a colour JPEG is decoded to its luma
+        plane only (grey ``uint8``; EXIF orientation applied as always), which
+        skips the chroma planes, their upsampling and the colour conversion.
+        ``Picture.examination_method`` records it.
 
     Returns
     -------
@@ -240,6 +262,9 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
         point). The message names the cause; ``.path`` names the file.
     """
     path = Path(path)
+    if method is not None and method not in EXAMINATION_METHODS:
+        raise InputError(f"unknown examination method {method!r}; this version knows "
+                         f"{', '.join(EXAMINATION_METHODS)}", path=path)
     limit = resolve_max_pixels(max_pixels)
     data = _read_bytes(path)
     digest = hashlib.sha256(data).hexdigest()
@@ -273,6 +298,11 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
             # Image.open leaves the first frame selected.
             notes.append(f"{frames} frames; the first frame was used")
         fmt = im.format or "unknown"
+        if method == LUMA_FROM_JPEG_Y and fmt == "JPEG":
+            # libjpeg then emits the Y plane of a YCbCr file (ITU-T T.871: the same BT.601
+            # weights as to_luma, taken before chroma subsampling) and never decodes
+            # chroma. Pillow changes only a colour ("RGB" raw mode) file; CMYK stays.
+            im.draft("L", None)
         rawmode = _rawmode(im)  # the tile list is gone once the pixels are loaded
         # Pillow holds 16-bit colour only at 8 bits; tifffile reads it whole.
         full = None
@@ -351,6 +381,7 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
         region=None if region is None else tuple(int(v) for v in box),
         dpi=dpi,
         full_size=full_size,
+        examination_method=method,
     )
 
 

@@ -24,6 +24,8 @@ from claimkit.evidence.profile import derive_payload_tag, work_id_for
 from claimkit.evidence.storage import sha256_file
 from claimkit.filemeta import Carried, Rights, carry_metadata
 from claimkit.imageio import (
+    CURRENT_EXAMINATION_METHOD,
+    LUMA_FROM_RGB,
     Picture,
     add_luma_delta,
     read_picture,
@@ -418,15 +420,17 @@ def examine_file(profile, path: str | os.PathLike, *, threshold: float = detect.
     return report_for(path, pic, finding, profile), finding
 
 
-def read_for_examination(path: str | os.PathLike, *, max_pixels: int | None = None) -> Picture:
+def read_for_examination(path: str | os.PathLike, *, max_pixels: int | None = None,
+                         method: str = CURRENT_EXAMINATION_METHOD) -> Picture:
     """Read a copy for :func:`examine_picture`: only the window the detector reads is converted.
 
     Large photos are examined on a central window (``detect.MAX_EXAMINE_PIXELS``);
     copying the rest of a 24-megapixel picture out of the decoder would cost
     about half as much as decoding it. The window holds the pixels ``read_picture``
-    gives there.
+    gives there for the examination ``method`` (a colour JPEG's luma plane
+    under the current method; see :data:`claimkit.imageio.EXAMINATION_METHODS`).
     """
-    return read_picture(path, max_pixels=max_pixels, region=detect.central_window)
+    return read_picture(path, max_pixels=max_pixels, region=detect.central_window, method=method)
 
 
 def report_for(path: Path, pic: Picture, finding: Finding, profile=None) -> dict:
@@ -437,6 +441,8 @@ def report_for(path: Path, pic: Picture, finding: Finding, profile=None) -> dict
     rep = {"file": str(path), "sha256": pic.sha256 or sha256_file(path),
            "width": pic.width, "height": pic.height}
     rep.update(finding.to_json())
+    # How the pixels became luma: verify re-runs an examination by this method.
+    rep["examination_method"] = pic.examination_method or LUMA_FROM_RGB
     rep["work_id"] = None
     rep["registered"] = False
     if finding.payload_valid and finding.payload_bits is not None:
