@@ -3,7 +3,10 @@
 A rights desk gets folders of candidate images (saved from shops, social
 media, search results). :func:`scan_folders` examines every image under them
 with the owner's key, in parallel, and says for each which work it is, how
-sure, and what was done to it; a summary closes the run.
+sure, and what was done to it; a summary closes the run. Web archives (WARC
+files, plain or gzip, given or found in the folders) are read as folders
+are: every image response in them is examined, and its line names the
+record's target URL and capture date (:mod:`claimkit.capture.warcintake`).
 
 Why the cost per file does not depend on the size of the registry: the mark
 carries its own work serial in the payload, checked by a keyed payload tag,
@@ -52,7 +55,8 @@ EXIT_OK, EXIT_SOME_UNREADABLE, EXIT_NOTHING_READ, EXIT_INTERRUPTED = 0, 1, 2, 13
 
 CSV_COLUMNS = ("file", "status", "detected", "work_id", "registered",
                "false_alarm_probability", "message_psnr_db", "rotation_deg", "scale",
-               "flipped", "shift_x_px", "shift_y_px", "width", "height", "sha256", "error")
+               "flipped", "shift_x_px", "shift_y_px", "width", "height", "sha256", "error",
+               "url", "capture_date", "warc_record_id")
 
 
 def scan_task(path: str, seed: bytes, checker, threshold: float,
@@ -101,17 +105,24 @@ class ScanSummary:
 class _CaseAdder:
     """Puts claimed copies into a case through the case layer."""
 
-    def __init__(self, case_dir: Path, profile, notice):
+    def __init__(self, case_dir: Path, profile, notice, origins: dict | None = None):
+        self.origins = origins or {}
         self.profile = profile
         self.notice = notice
         self.case = open_case(case_dir)       # a missing case is bad input: raise before scanning
 
     def __call__(self, path: Path, rep: dict) -> str | None:
         """Take ``path`` in; returns the exhibit id, or None (with a note) when it was not."""
+        note = f"claimed as {rep.get('work_id')} by claimkit scan"
         try:
-            ex = add_exhibit(self.case, path, source=f"file found by claimkit scan: {path}",
-                          note=f"claimed as {rep.get('work_id')} by claimkit scan",
-                          profile=self.profile)
+            origin = self.origins.get(path)
+            if origin is not None:
+                from claimkit.capture.warcintake import take_in
+
+                ex = take_in(self.case, path, origin, self.profile, note=note)
+            else:
+                ex = add_exhibit(self.case, path, source=f"file found by claimkit scan: {path}",
+                                 note=note, profile=self.profile)
         except ClaimkitError as exc:
             self.notice(f"claimkit: note: not added to the case: {exc.line()}")
             return None
@@ -132,6 +143,8 @@ def _csv_row(rep: dict) -> dict:
         "flipped": geom.get("flipped"), "shift_x_px": shift[0], "shift_y_px": shift[1],
         "width": rep.get("width"), "height": rep.get("height"), "sha256": rep.get("sha256"),
         "error": rep.get("error"),
+        "url": rep.get("url"), "capture_date": rep.get("capture_date"),
+        "warc_record_id": rep.get("warc_record_id"),
     }
 
 
@@ -166,15 +179,21 @@ class _CsvReport:
         self.tmp.unlink(missing_ok=True)
 
 
+def _where(rep: dict) -> str:
+    if rep.get("url"):
+        return f"{rep['url']} (captured {rep.get('capture_date')}, in {rep['file']})"
+    return str(rep["file"])
+
+
 def _human_line(rep: dict) -> str:
     if "error" in rep:
         return f"unreadable  {rep['error']}"
     if not rep.get("detected"):
-        return f"-           {rep['file']}"
+        return f"-           {_where(rep)}"
     who = rep.get("work_id") or "payload unreadable"
     reg = "" if rep.get("registered") else " (not in this registry)"
     geom = rep.get("geometry_text") or ""
-    return (f"CLAIMED     {rep['file']}: {who}{reg}; false-alarm bound "
+    return (f"CLAIMED     {_where(rep)}: {who}{reg}; false-alarm bound "
             f"{rep.get('false_alarm_text', rep.get('false_alarm_probability'))}; {geom}")
 
 
@@ -218,12 +237,35 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
     threshold = detect.DEFAULT_THRESHOLD if threshold is None else float(threshold)
     if not 0 < threshold < 1:
         raise InputError(f"--threshold {threshold} must lie between 0 and 1")
+    from claimkit.capture.warc import is_warc
+
     passed_over: list[Path] = []
-    files, problems = find_images([Path(f) for f in folders], IMAGE_SUFFIXES,
+    inputs = [Path(f) for f in folders]
+    warcs = [f for f in inputs if is_warc(f) and f.is_file()]
+    files, problems = find_images([f for f in inputs if f not in warcs], IMAGE_SUFFIXES,
                                   passed_over=passed_over)
     for p in problems:
         if not Path(p.path or "").exists():
             raise p                      # a folder that is not there is a usage error
+    # WARC files (given, or found in the folders) are read as folders of images are.
+    warcs += [f for f in passed_over if is_warc(f)]
+    passed_over = [f for f in passed_over if not is_warc(f)]
+    unpacked = tempfile.TemporaryDirectory(prefix="claimkit-warc-") if warcs else None
+    origins = {}
+    small: list[str] = []
+    if unpacked is not None:
+        from claimkit.capture.warcintake import unpack_images
+
+        try:
+            origins = unpack_images(warcs, Path(unpacked.name), small)
+        except BaseException:
+            unpacked.cleanup()
+            raise
+        files += [(f, None, None) for f in origins]
+        if small:
+            print(f"claimkit: note: {len(small)} image(s) in the WARC file(s) are smaller than "
+                  "an examination needs (icons, spacers) and were not examined",
+                  file=sys.stderr, flush=True)
     seed = profile.detection_seed
     checker = workflow.owner_payload_check(profile)
     err = sys.stderr
@@ -233,7 +275,8 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
         print(msg, file=err, flush=True)
 
     bar = Progress(len(files), enabled=progress, label="scanning ")
-    adder = _CaseAdder(Path(case_dir), profile, notice) if case_dir is not None else None
+    adder = (_CaseAdder(Path(case_dir), profile, notice, origins)
+             if case_dir is not None else None)
     csv_out = _CsvReport(Path(report), force=force) if report is not None else None
     s = ScanSummary(passed_over=len(passed_over))
     for p in problems:
@@ -246,6 +289,13 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
         handed += 1
         path = o.item
         rep = o.value if o.error is None else {"file": str(path), "error": f"{path}: {o.error}"}
+        origin = origins.get(path)
+        if origin is not None:
+            # The line names the record's URL and capture date, not the unpacked copy.
+            rep.update(file=str(origin.warc), url=origin.url, capture_date=origin.date,
+                       warc_record_id=origin.record_id)
+            if "error" in rep:
+                rep["error"] = rep["error"].replace(str(path), origin.label())
         if "error" in rep:
             rep["error"] = remote_path_hint(eng, path, rep["error"])
             rep.update(status="unreadable", detected=None, work_id=None)
@@ -294,6 +344,8 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
         raise
     finally:
         bar.close()
+        if unpacked is not None:
+            unpacked.cleanup()
     s.seconds = time.monotonic() - start
     s.not_started = len(files) - handed
     if csv_out is not None:

@@ -11,6 +11,8 @@ serves the case (which writes exhibits, findings and references), the dossier
     exhibits/E01.json             its intake record
     references/SHA256.EXT         the registered file a copy is aligned to (by hash)
     findings/E01.json, E01.npz    the examination: numbers, arrays
+    captures/cap-*.warc.gz|json   web captures: the WARC, its record, snapshots, token
+    captures/warc-*               a crawler's WARC file that exhibits were taken from
     handover/public-key.pem       the owner's public key
     handover/disclosures/WORK/    a key disclosure per matched work
     handover/custody.jsonl        a copy of the custody log
@@ -31,6 +33,7 @@ from claimkit.errors import InputError
 
 __all__ = [
     "BUNDLE_PARTS",
+    "CAPTURES",
     "CASE_FILE",
     "CUSTODY_COPY",
     "DATA",
@@ -68,6 +71,7 @@ CASE_FILE = "case.json"
 EXHIBITS = "exhibits"
 REFERENCES = "references"
 FINDINGS = "findings"
+CAPTURES = "captures"
 REPORT = "report"
 FIGURES = f"{REPORT}/figures"
 DATA = f"{REPORT}/dossier.json"
@@ -81,7 +85,7 @@ MANIFEST = "manifest.json"
 MANIFEST_SIG = "manifest.sig"
 
 #: What a bundle holds besides the manifest and its signature: these files and folders.
-BUNDLE_PARTS = (CASE_FILE, EXHIBITS, REFERENCES, FINDINGS, REPORT, HANDOVER)
+BUNDLE_PARTS = (CASE_FILE, EXHIBITS, REFERENCES, FINDINGS, CAPTURES, REPORT, HANDOVER)
 
 
 # Exhibit ids. "E01" read to a forensic examiner as the segment extension of a disk-image

@@ -212,7 +212,8 @@ def _check_examinable(src: Path) -> None:
 
 
 def add_exhibit(case: Case, src: str | os.PathLike, *, source: str, found: str | None = None,
-                by: str | None = None, note: str | None = None, profile=None) -> Exhibit:
+                by: str | None = None, note: str | None = None, profile=None,
+                acquisition: dict | None = None) -> Exhibit:
     """Take a disputed file into the case: copy it byte for byte, hash it, log it.
 
     The copy is read once into a temporary file in ``exhibits/`` while its
@@ -234,6 +235,11 @@ def add_exhibit(case: Case, src: str | os.PathLike, *, source: str, found: str |
     note : str, optional
     profile : Profile
         Opened with the passphrase: the intake is logged in the custody log.
+    acquisition : dict, optional
+        How the copy was acquired when claimkit itself took it from the web or
+        from a WARC file (:mod:`claimkit.capture`): URL, page, WARC file and
+        record, capture time and its clock. Its ``captured`` time becomes the
+        found time, with the clock it came from.
 
     Returns
     -------
@@ -282,17 +288,23 @@ def add_exhibit(case: Case, src: str | os.PathLike, *, source: str, found: str |
         raise
     fsync_dir(folder)
     who = (by or "").strip() or (profile.owner if profile is not None else "unknown")
+    if acquisition is not None and not found:
+        found = acquisition["captured"]
+        stated = acquisition["time_source"]
+    else:
+        stated = f"stated by {who}"
     record = {
         "type": EXHIBIT_TYPE, "exhibit_id": exhibit_id, "case_id": case.case_id,
         "file": stored, "original_name": src.name,
         "sha256": copied, "size": dest.stat().st_size, "media_type": media,
         "width": width, "height": height,
         "source": source.strip(),
-        "found": ({"when": found.strip(), "time_source": f"stated by {who}"}
-                  if found else None),
+        "found": {"when": found.strip(), "time_source": stated} if found else None,
         "taken_in": {"time": utc_now(), "time_source": "system clock", "by": who},
         "note": (note or "").strip() or None,
     }
+    if acquisition is not None:
+        record["acquisition"] = acquisition
     data = canonical_json(record)
     atomic_write(case.root / layout.intake_record(exhibit_id), data + b"\n")
     if profile is not None:

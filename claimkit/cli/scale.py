@@ -47,7 +47,9 @@ def register(sub, common) -> None:
                     "per file, a summary at the end. Exit 0 when every file was read, 1 when "
                     "some could not be read, 2 when none could. Technical evidence, not legal "
                     "advice.")
-    p.add_argument("folders", nargs="+", metavar="DIR", help="folders (recursive) or files")
+    p.add_argument("folders", nargs="+", metavar="DIR",
+                   help="folders (recursive), image files, or WARC files (.warc, .warc.gz): "
+                        "every image response in a WARC is examined")
     p.add_argument("--json", action="store_true",
                    help="one JSON object per file on stdout; the summary as JSON on stderr")
     p.add_argument("--report", metavar="FILE.csv", help="also write a CSV, one row per file")

@@ -14,6 +14,7 @@ import json
 from pathlib import Path
 
 from claimkit import __version__
+from claimkit.capture.evidence import collection_data
 from claimkit.case import layout
 from claimkit.case.layout import CUSTODY_COPY, DISCLOSURES, PUBLIC_KEY
 from claimkit.errors import InputError
@@ -252,6 +253,7 @@ def build_data(root: str | Path) -> dict:
                    "mark": works[0]["mark_params"] if works else {},
                    "references": REFERENCES_CITED},
         "custody": _custody(root, case["case_id"], work_ids),
+        "collection": collection_data(root, exhibits),
         "figures": {r["exhibit_id"]: _figure_names(r) for r in results},
     }
     canonical_json(data)   # refuse anything that could not be stored

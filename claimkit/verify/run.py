@@ -16,10 +16,13 @@ and the verdict is "all passed" or not. Checks, in order:
 5. the custody log copy: every signature and the hash chain, and that every
    exhibit's intake and examination are logged with the right hashes;
 6. each exhibit against its intake record; each finding against its exhibit;
-7. each examination re-run from the disclosed detection key, and every stored
+7. each exhibit taken from the web against the payload of its WARC record,
+   each WARC file against its recorded SHA-256 and its RFC 3161 token
+   (:mod:`.collection`);
+8. each examination re-run from the disclosed detection key, and every stored
    number compared (the decoy control and the alignment included); the
    robustness battery re-run on the registered marked file, row by row;
-8. the dossier data rebuilt from the bundle and compared byte for byte with
+9. the dossier data rebuilt from the bundle and compared byte for byte with
    ``report/dossier.json``; the figures redrawn and compared pixel for pixel;
    the HTML re-rendered and compared; the PDF's PAdES signature checked, and
    its signed content compared with the PDF re-rendered from the data.
@@ -42,6 +45,7 @@ from claimkit.verify.checks import (
     check_manifest,
     path_audit,
 )
+from claimkit.verify.collection import check_collection
 from claimkit.verify.dossier import check_dossier
 from claimkit.verify.policy import Policy
 from claimkit.verify.report import VerifyReport
@@ -132,6 +136,7 @@ def _verify_unpacked(root: Path, files: list[str], policy: Policy, rep: VerifyRe
             rerun_examination(root, ex, f, keys, rep)
         except (InputError, OSError, KeyError, ValueError) as exc:
             rep.add(f"{i} re-run", False, f"cannot be re-run ({exc})")
+    check_collection(root, exhibits, rep)
     if policy.rerun and policy.robustness:
         try:
             rerun_robustness(root, findings, keys, rep)
