@@ -51,14 +51,20 @@ from claimkit.errors import InputError
 from claimkit.evidence.storage import atomic_write
 
 __all__ = [
+    "CURRENT_EXAMINATION_METHOD",
     "DEFAULT_MAX_PIXELS",
+    "EXAMINATION_METHODS",
+    "LUMA_FROM_JPEG_Y",
+    "LUMA_FROM_RGB",
     "MIN_SIDE",
     "Picture",
-    "read_picture",
-    "write_picture",
-    "to_luma",
     "add_luma_delta",
+    "canvas_like",
+    "read_picture",
     "resolve_max_pixels",
+    "to_luma",
+    "write_picture",
+    "write_picture_keeping_bytes",
 ]
 
 #: Default limit on width × height, a guard against decompression bombs
@@ -225,7 +231,7 @@ def resolve_max_pixels(max_pixels: int | None = None) -> int:
 
 def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
                  region: Callable[[tuple[int, int]], tuple[int, int, int, int]] | None = None,
-                 method: str | None = None) -> Picture:
+                 method: str | None = None, data: bytes | None = None) -> Picture:
     """Decode a photo into an upright array plus the metadata to carry over.
 
     Parameters
@@ -249,6 +255,9 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
         plane only (grey ``uint8``; EXIF orientation applied as always), which
         skips the chroma planes, their upsampling and the colour conversion.
         ``Picture.examination_method`` records it.
+    data : bytes, optional
+        The file's bytes when the caller holds them already (a file it has just
+        written): they are decoded and hashed instead of reading ``path`` again.
 
     Returns
     -------
@@ -266,7 +275,8 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
         raise InputError(f"unknown examination method {method!r}; this version knows "
                          f"{', '.join(EXAMINATION_METHODS)}", path=path)
     limit = resolve_max_pixels(max_pixels)
-    data = _read_bytes(path)
+    if data is None:
+        data = _read_bytes(path)
     digest = hashlib.sha256(data).hexdigest()
     try:
         with _PIL_LIMIT_LOCK, warnings.catch_warnings():
@@ -671,6 +681,27 @@ def write_picture(
 ) -> T | None:
     """Encode ``pixels`` to ``path`` atomically, with ``like``'s metadata.
 
+    As :func:`write_picture_keeping_bytes`, without keeping the bytes.
+    """
+    return write_picture_keeping_bytes(path, pixels, like=like, quality=quality, force=force,
+                                       finish=finish)[0]
+
+
+def write_picture_keeping_bytes(
+    path: str | os.PathLike,
+    pixels: np.ndarray,
+    *,
+    like: Picture,
+    quality: int = 95,
+    force: bool = False,
+    finish: Callable[[Path, Staged], T] | None = None,
+) -> tuple[T | None, bytes]:
+    """Encode ``pixels`` to ``path`` atomically, with ``like``'s metadata; keep the bytes.
+
+    Returns ``finish``'s result and the exact bytes now in ``path`` (after
+    ``finish``), so that a caller can hash or decode them without reading
+    the file again.
+
     Parameters
     ----------
     path : str or path-like
@@ -730,7 +761,7 @@ def write_picture(
             result = finish(file, staged)
             payload = file.read_bytes()
     _atomic_write(path, payload, force=force)
-    return result
+    return result, payload
 
 
 @dataclass
@@ -832,7 +863,8 @@ def _encode(
         stacked = np.dstack([pixels, alpha])
         im = Image.fromarray(np.ascontiguousarray(stacked), "RGBA" if colour else "LA")
     else:
-        im = Image.fromarray(np.ascontiguousarray(pixels), "RGB" if colour else "L")
+        shared = _rgbx_image(pixels) if fmt == "JPEG" else None
+        im = shared or Image.fromarray(np.ascontiguousarray(pixels), "RGB" if colour else "L")
     if fmt == "WEBP" and im.mode == "L":
         im = im.convert("RGB")  # WebP has no grey mode
     if fmt == "WEBP" and im.mode == "LA":
@@ -873,6 +905,37 @@ def _encode(
     buf = io.BytesIO()
     im.save(buf, format=fmt, **kw)
     return buf.getvalue()
+
+
+def canvas_like(pixels: np.ndarray) -> np.ndarray:
+    """An empty array for pixels like ``pixels``; for 8-bit colour, laid out as Pillow holds RGB.
+
+    Pillow keeps an RGB picture as 4 bytes a pixel (RGBX). An ``(H, W, 3)``
+    view of an ``(H, W, 4)`` buffer is that layout, so the JPEG encoder reads
+    it in place (:func:`_rgbx_image`) instead of copying the whole picture
+    into Pillow first; NumPy works on the view as on any array.
+    """
+    if pixels.ndim == 3 and pixels.shape[2] == 3 and pixels.dtype == np.uint8:
+        return np.empty(pixels.shape[:2] + (4,), dtype=np.uint8)[..., :3]
+    return np.empty_like(pixels)
+
+
+def _rgbx_image(pixels: np.ndarray) -> Image.Image | None:
+    """A Pillow RGBX image on the memory of a :func:`canvas_like` view, else None.
+
+    ``Image.frombuffer`` maps an RGBX buffer without copying; the JPEG
+    encoder ignores the fourth byte, and the file is byte for byte the one
+    written from an RGB copy (checked in ``tests/test_marking_buffers.py``).
+    """
+    base = pixels.base
+    if not (pixels.dtype == np.uint8 and pixels.ndim == 3 and isinstance(base, np.ndarray)):
+        return None
+    h, w = pixels.shape[:2]
+    if (base.shape != (h, w, 4) or base.dtype != np.uint8 or not base.flags.c_contiguous
+            or pixels.strides != base.strides
+            or pixels.__array_interface__["data"][0] != base.__array_interface__["data"][0]):
+        return None
+    return Image.frombuffer("RGBX", (w, h), base, "raw", "RGBX", 0, 1)
 
 
 def _icc_fits(icc: bytes, *, grey: bool) -> bool:

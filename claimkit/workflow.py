@@ -8,6 +8,7 @@ profile for keys and registration, and leaves all numerics to
 
 from __future__ import annotations
 
+import hashlib
 import hmac
 import os
 from collections.abc import Callable
@@ -28,9 +29,10 @@ from claimkit.imageio import (
     LUMA_FROM_RGB,
     Picture,
     add_luma_delta,
+    canvas_like,
     read_picture,
     to_luma,
-    write_picture,
+    write_picture_keeping_bytes,
 )
 from claimkit.mark import detect, embed, pattern, payload, quality
 from claimkit.mark.detect import Finding
@@ -163,7 +165,7 @@ def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, stre
     starts = range(0, pixels.shape[0], _MARK_BAND_ROWS)
     ends = [min(pixels.shape[0], r0 + _MARK_BAND_ROWS) for r0 in starts]
     luma = np.empty(pixels.shape[:2], dtype=np.float32)
-    marked = np.empty_like(pixels)
+    marked = canvas_like(pixels)      # the encoder reads it in place (no copy into Pillow)
     threads = band_threads()
     with _helpers(threads if threads > 1 else 0, "claimkit-band") as pool:
         list(pool.map(_luma_band, repeat(pixels), repeat(luma), starts, ends))
@@ -180,14 +182,16 @@ def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, stre
         job = pool.submit(_write_marked, out, marked, pic, jpeg_quality=jpeg_quality,
                           force=force, max_pixels=max_pixels, peak=peak, metadata=metadata)
         try:
-            ssim_value, sampled = quality.ssim(pixels, marked, grey=to_luma)
+            ssim_est = quality.ssim_estimate(pixels, marked, grey=to_luma)
         except BaseException:
             _discard_written(job, out)
             raise
         sha_marked, psnr_file, carried = job.result()
     del marked
-    measures["ssim"] = round(ssim_value, 5)
-    measures["ssim_sampled"] = sampled
+    measures["ssim"] = round(ssim_est.value, 5)
+    measures["ssim_sampled"] = ssim_est.sampled
+    if ssim_est.standard_error is not None:
+        measures["ssim_standard_error"] = float(f"{ssim_est.standard_error:.2g}")
     if psnr_file is not None:
         measures["psnr_db_file"] = round(psnr_file, 3)
     return {
@@ -229,13 +233,13 @@ def _write_marked(out: Path, marked: np.ndarray, pic: Picture, *, jpeg_quality: 
                                   work_id=metadata.work_id, registry=metadata.registry,
                                   copy_icc=staged.icc_fits and not staged.icc_embedded,
                                   reasons=staged.reasons)
-    carried = write_picture(out, marked, like=pic, quality=jpeg_quality, force=force,
-                            finish=finish)
+    carried, data = write_picture_keeping_bytes(out, marked, like=pic, quality=jpeg_quality,
+                                                force=force, finish=finish)
     try:
         if out.suffix.lower() not in (".jpg", ".jpeg", ".webp"):
-            return sha256_file(out), None, carried
-        # One read: the picture carries the hash of the very bytes it was decoded from.
-        back = read_picture(out, max_pixels=max_pixels)
+            return hashlib.sha256(data).hexdigest(), None, carried
+        # The bytes just written, decoded and hashed once from memory (not read back from disk).
+        back = read_picture(out, max_pixels=max_pixels, data=data)
         written = back.pixels
         if written.dtype != pic.pixels.dtype:
             # A 16-bit photo written as an 8-bit JPEG: compare on the original's scale.
