@@ -38,12 +38,16 @@ photos does not pay Perl's start-up for every file.
 from __future__ import annotations
 
 import atexit
+import ctypes
+import hashlib
 import json
 import logging
 import os
 import shutil
+import signal
 import subprocess
 import tempfile
+import sys
 import threading
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
@@ -140,7 +144,6 @@ class _ExifTool:
         self._pid = 0
         self._count = 0
         self.version = 0.0
-        self._config: str | None = None
 
     def program(self) -> str | None:
         name = os.environ.get(EXIFTOOL_ENV) or "exiftool"
@@ -158,13 +161,13 @@ class _ExifTool:
             self.version = 0.0
         cmd = [program]
         if self.version < _DATA_MINING_BUILTIN:
-            fd, self._config = tempfile.mkstemp(prefix="claimkit-exiftool-", suffix=".config")
-            with os.fdopen(fd, "w") as f:
-                f.write(_CONFIG)
-            cmd += ["-config", self._config]
+            cmd += ["-config", str(_config_file())]
         cmd += ["-stay_open", "True", "-@", "-"]
+        # In -stay_open mode exiftool keeps polling its argument file after end of
+        # file, so it outlives a process that dies without closing it (a pool worker
+        # ends with os._exit, which skips atexit). On Linux the kernel ends it with us.
         proc = subprocess.Popen(cmd, stdin=subprocess.PIPE, stdout=subprocess.PIPE,
-                                stderr=subprocess.PIPE)
+                                stderr=subprocess.PIPE, preexec_fn=_die_with_parent)
         self._pid = os.getpid()
         return proc
 
@@ -199,9 +202,25 @@ class _ExifTool:
                 proc.wait(timeout=5)
             except (OSError, subprocess.TimeoutExpired):
                 proc.kill()
-        if self._config:
-            Path(self._config).unlink(missing_ok=True)
-            self._config = None
+
+
+def _config_file() -> Path:
+    """The exiftool configuration, written once per content (shared, never a leftover per run)."""
+    digest = hashlib.sha256(_CONFIG.encode("utf-8")).hexdigest()[:16]
+    path = Path(tempfile.gettempdir()) / f"claimkit-exiftool-{os.getuid()}-{digest}.config"
+    if not path.is_file():
+        fd, staged = tempfile.mkstemp(dir=path.parent, prefix=".claimkit-exiftool-")
+        with os.fdopen(fd, "w") as f:
+            f.write(_CONFIG)
+        os.replace(staged, path)
+    return path
+
+
+def _die_with_parent() -> None:
+    """In the exiftool child: ask Linux to send SIGTERM when the parent ends."""
+    if sys.platform.startswith("linux"):
+        libc = ctypes.CDLL(None, use_errno=True)
+        libc.prctl(1, signal.SIGTERM)  # PR_SET_PDEATHSIG = 1 (prctl(2))
 
 
 def _read_until(stream, marker: str) -> str:

@@ -242,3 +242,31 @@ def test_failed_marks_use_no_serial_and_replace_nothing(profile_home, jpeg_full,
         assert capsys.readouterr().err.startswith("claimkit: error: ")
     assert next_serial() == start
     assert existing.read_bytes() == b"keep me"
+
+
+def test_exiftool_ends_with_a_worker_that_ends_without_cleanup():
+    # A pool worker ends with os._exit (no atexit). exiftool in -stay_open mode keeps polling
+    # its argument file after end of file, so without a parent-death signal it would run on
+    # forever: seen as a hundred orphaned perl processes after one test session.
+    import os
+    import time
+
+    from claimkit import filemeta
+
+    read, write = os.pipe()
+    pid = os.fork()
+    if pid == 0:  # the worker
+        os.close(read)
+        filemeta._TOOL.run(["-ver"])
+        os.write(write, str(filemeta._TOOL._proc.pid).encode())
+        os._exit(0)
+    os.close(write)
+    child_tool = int(os.read(read, 32))
+    os.close(read)
+    os.waitpid(pid, 0)
+    deadline = time.monotonic() + 10
+    while Path(f"/proc/{child_tool}").exists() and time.monotonic() < deadline:
+        time.sleep(0.05)
+    stat = Path(f"/proc/{child_tool}/stat")
+    # Gone, or a zombie waiting for init to reap it ("Z" in /proc/PID/stat, proc(5)).
+    assert not stat.exists() or stat.read_text().split(") ")[1].startswith("Z")
