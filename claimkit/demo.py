@@ -238,10 +238,21 @@ def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None =
         say(f"6. dossier: {built['pdf']} (PAdES-signed) and {built['html']}")
         bundle = folder / "tidewater-bundle.zip"
         exported = export_bundle(case, bundle, profile)
-        say(f"7. hand-over bundle: {bundle} ({exported['files']} files)")
+        say(f"7. hand-over bundle: {bundle} ({exported['files']} files, no key material)")
+        # The key disclosure travels apart from the bundle, to the other side's expert only.
+        delivered = folder / "disclosure-for-the-expert"
+        delivered.mkdir()
+        for wid in sorted({f["match"]["work_id"] for f in findings if f.get("match")}):
+            profile.disclose(wid, delivered / wid)
+        key_sha256 = profile.public_key_fingerprint
+        say(f"   key disclosure, delivered separately: {delivered}; owner key SHA-256 "
+            f"{key_sha256} (told by phone, in the demo)")
     finally:
         profile.close()
-    result = verify_bundle(bundle)
+    from claimkit.evidence.timestamp import load_certificates
+    result = verify_bundle(bundle, expect_keys=(key_sha256,), disclosure=delivered,
+                           tsa_roots=load_certificates((folder / "test-tsa" / "ca.pem")
+                                                       .read_bytes()))
     for c in result.failures:
         say(f"   FAIL {c['check']}: {c['detail']}")
     say(f"8. claimkit verify {bundle}: "

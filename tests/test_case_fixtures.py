@@ -39,6 +39,9 @@ class BuiltCase:
     bundle: Path
     work_id: str
     scenario: dict
+    disclosure: Path        # the key disclosure, delivered apart from the bundle
+    tsa_roots: Path         # the test TSA's root certificate
+    key_sha256: str         # the owner's key fingerprint, as the owner would tell it
 
 
 def _run(argv: list[str]) -> int:
@@ -104,4 +107,10 @@ def _build(tmp_path_factory) -> BuiltCase:
         assert _run(["report", str(case), *h]) == 0
         bundle = root / "bundle.zip"
         assert _run(["case", "export", str(case), "--out", str(bundle), *h]) == 0
-    return BuiltCase(root, home, case, studio, copies, unmarked, bundle, rep["work_id"], sc)
+        disclosure = root / "delivered" / rep["work_id"]
+        disclosure.parent.mkdir()
+        assert _run(["disclose", rep["work_id"], "--out", str(disclosure), *h]) == 0
+        with Profile.open(home, PASS.encode()) as p:
+            fp = p.public_key_fingerprint
+    return BuiltCase(root, home, case, studio, copies, unmarked, bundle, rep["work_id"], sc,
+                     disclosure.parent, root / "tsa" / "ca.pem", fp)

@@ -142,6 +142,8 @@ def test_disclose_and_key_export(profile_home, local_tsa, tmp_path, capsys):
     out_dir = tmp_path / "for-expert"
     code, out, _ = run(capsys, "disclose", ids[1], "--out", str(out_dir))
     assert code == 0 and "not legal advice" in out
+    # It says what it gives away: formats 1 and 2 disclose an owner-level seed.
+    assert "this disclosure finds every format-1/2 work of the owner" in out
     check = check_disclosure(out_dir)
     assert check.ok, check.problems
     with Profile.open(profile_home, PASS) as p:

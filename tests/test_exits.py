@@ -120,4 +120,9 @@ def test_withdraw_keeps_the_exhibit_and_logs_it(profile_home, marked, tmp_path, 
     text = (case / "report" / "dossier.html").read_text()
     assert "Exhibit 2" in text and "withdrawn" in text and "licensed after all" in text
     assert main(["case", "export", str(case), "--out", str(tmp_path / "b.zip")]) == 0
-    assert main(["verify", str(tmp_path / "b.zip")]) == 0, capsys.readouterr().out
+    # The key disclosure travels apart from the bundle; with it everything re-runs.
+    work_id = rep["summary"]["works"][0]
+    (tmp_path / "keys").mkdir()
+    assert main(["disclose", work_id, "--out", str(tmp_path / "keys" / work_id)]) == 0
+    assert main(["verify", str(tmp_path / "b.zip"), "--disclosure",
+                 str(tmp_path / "keys")]) == 0, capsys.readouterr().out

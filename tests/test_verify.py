@@ -12,10 +12,10 @@ from pathlib import Path
 import pytest
 from test_case_fixtures import PASS, built_case  # noqa: F401 - the shared fixture
 
-from claimkit.verify import safe_extract, verify_bundle
 from claimkit.cli import main
 from claimkit.errors import CheckFailed
 from claimkit.evidence.canonical import canonical_json
+from claimkit.verify import safe_extract, verify_bundle
 
 pytestmark = pytest.mark.slow
 
@@ -45,24 +45,91 @@ def _resign(folder: Path, home: Path) -> None:
         (folder / "manifest.sig").write_bytes(p.sign(data))
 
 
-def test_sound_bundle_passes_every_check(built_case, capsys):
-    assert main(["verify", str(built_case.bundle), "--json"]) == 0
+def _pinned(built_case) -> list[str]:
+    return ["--expect-key", built_case.key_sha256, "--tsa-roots", str(built_case.tsa_roots),
+            "--disclosure", str(built_case.disclosure)]
+
+
+def test_sound_bundle_with_pins_and_disclosure_passes_every_check(built_case, capsys):
+    assert main(["verify", str(built_case.bundle), *_pinned(built_case), "--json"]) == 0
     lines = [json.loads(x) for x in capsys.readouterr().out.splitlines()]
     checks, verdict = lines[:-1], lines[-1]
     assert verdict["ok"] and verdict["failed"] == [] and verdict["checks"] == len(checks)
+    assert verdict["verdict"] == "passed" and verdict["unpinned"] == []
+    assert all(c["status"] == "ok" and c["ok"] is True for c in checks), checks
     names = {c["check"] for c in checks}
     assert {"manifest signature", "file hashes", "custody log", "custody of exhibits",
+            "signer key", "timestamp authority", f"disclosure {built_case.work_id}",
             "exhibit-1 re-run", "exhibit-2 re-run", "exhibit-3 re-run", "dossier data", "figures",
             "HTML dossier", "PDF signature", "PDF content",
             f"robustness {built_case.work_id}"} <= names
-    disclosure = [c for c in checks if c["check"].startswith("disclosure ")]
-    assert len(disclosure) == 1 and "1 timestamp token(s) verified" in disclosure[0]["detail"]
+    work = [c for c in checks if c["check"] == f"work {built_case.work_id}"]
+    assert len(work) == 1 and "1 timestamp token(s) verified" in work[0]["detail"]
+
+
+def test_default_bundle_no_rerun_passes_with_the_signer_unpinned(built_case, capsys):
+    assert main(["verify", str(built_case.bundle), "--no-rerun", "--json"]) == 0
+    lines = [json.loads(x) for x in capsys.readouterr().out.splitlines()]
+    checks, verdict = lines[:-1], lines[-1]
+    status = {c["check"]: c["status"] for c in checks}
+    assert status["signer key"] == "unpinned" and status["timestamp authority"] == "unpinned"
+    assert status["re-run"] == "skipped"
+    # "unpinned" is never "ok", in JSON or in words.
+    assert all(c["ok"] is None for c in checks if c["status"] != "ok")
+    assert verdict["verdict"] == "passed, unpinned"
+    assert any(built_case.key_sha256 in x for x in verdict["compare_out_of_band"])
+    assert main(["verify", str(built_case.bundle), "--no-rerun"]) == 0
+    out = capsys.readouterr().out
+    assert f"UNPINNED signer key: the bundle is signed by the key with SHA-256 " \
+           f"{built_case.key_sha256}" in out
+    assert "compare out of band" in out and "phone" in out
+
+
+def test_without_a_disclosure_the_re_run_is_named_not_done(built_case, capsys):
+    assert main(["verify", str(built_case.bundle)]) == 1
+    captured = capsys.readouterr()
+    assert "NOT DONE re-run: not done: no key disclosure" in captured.out
+    assert "1 check(s) failed: re-run" in captured.err
+
+
+def test_wrong_expected_key_fails_and_names_both(built_case, capsys):
+    wrong = "ab" * 32
+    assert main(["verify", str(built_case.bundle), "--no-rerun", "--expect-key", wrong]) == 1
+    out = capsys.readouterr().out
+    assert f"FAIL     signer key: the bundle is signed by the key with SHA-256 " \
+           f"{built_case.key_sha256}, not by the expected {wrong}" in out
+
+
+def test_tsa_roots_that_did_not_issue_the_token_fail(built_case, tmp_path, make_tsa, capsys):
+    other = make_tsa("Unrelated Test TSA")
+    assert main(["verify", str(built_case.bundle), "--no-rerun", "--expect-key",
+                 built_case.key_sha256, "--tsa-roots", str(other.ca_cert)]) == 1
+    out = capsys.readouterr().out
+    assert f"FAIL     work {built_case.work_id}:" in out and "untrusted TSA" in out
+
+
+def test_a_disclosure_for_other_key_or_record_is_refused(built_case, tmp_path):
+    from claimkit.evidence.profile import Profile
+
+    other = Profile.create(tmp_path / "mallory", "Someone Else", b"other-passphrase")
+    d = tmp_path / "forged"
+    shutil.copytree(built_case.disclosure / built_case.work_id, d)
+    # A disclosure signed by another key (the forger's), for the same work id.
+    body = (d / "disclosure.json").read_bytes()
+    (d / "disclosure.sig").write_bytes(other.sign(body))
+    (d / "public-key.pem").write_bytes(other.public_key_pem())
+    other.close()
+    rep = verify_bundle(built_case.bundle, disclosure=d, robustness=False)
+    text = _failed(rep)
+    assert f"disclosure {d.name}" in text and "signed by another key" in text
+    assert "re-run" in text          # no key material verified, so nothing re-runs
 
 
 def test_the_case_folder_itself_verifies(built_case):
     rep = verify_bundle(built_case.case, rerun=False)
-    # The quick path says plainly that it did not re-derive the numbers, and nothing else fails.
-    assert [c["check"] for c in rep.failures] == ["re-run"], _failed(rep)
+    # The quick path says plainly that it did not re-derive the numbers, and nothing fails.
+    assert rep.failures == [], _failed(rep)
+    assert [c["check"] for c in rep.checks if c["status"] == "skipped"] == ["re-run"]
     assert {"dossier data", "custody of exhibits", "file hashes"} <= \
         {c["check"] for c in rep.checks if c["ok"]}
 
@@ -175,7 +242,7 @@ def test_edited_finding_is_caught_even_when_the_owner_re_signs(built_case, tmp_p
     f["examined"]["software"] = "claimkit 0.0.9"     # and claims an older version made it
     p.write_bytes(canonical_json(f) + b"\n")
     _resign(work, built_case.home)
-    rep = verify_bundle(work, robustness=False)
+    rep = verify_bundle(work, robustness=False, disclosure=built_case.disclosure)
     names = {c["check"] for c in rep.failures}
     assert "exhibit-1 re-run" in names, _failed(rep)
     assert "custody of exhibits" in names          # not the finding that was logged

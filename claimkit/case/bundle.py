@@ -26,8 +26,14 @@ __all__ = ["export_bundle"]
 _DATE = (2020, 1, 1, 0, 0, 0)
 
 
-def export_bundle(case: Case, out: str | os.PathLike, profile=None, *, force: bool = False) -> dict:
-    """Write the bundle zip of ``case`` to ``out``; returns its SHA-256 and file count."""
+def export_bundle(case: Case, out: str | os.PathLike, profile=None, *, force: bool = False,
+                  disclose: bool = False) -> dict:
+    """Write the bundle zip of ``case`` to ``out``; returns its SHA-256 and file count.
+
+    The zip carries what ``report`` put in the bundle: key material only if the
+    report was built with it. ``disclose=True`` asks for it, and refuses a
+    bundle built without (so that the choice is never made silently here).
+    """
     out = Path(out)
     root = case.root
     if out.exists() and not force:
@@ -46,7 +52,11 @@ def export_bundle(case: Case, out: str | os.PathLike, profile=None, *, force: bo
                                                             (root / MANIFEST_SIG).read_bytes()):
         raise CheckFailed("the manifest signature does not verify with this profile's key",
                           path=root / MANIFEST_SIG)
-    present = bundle_files(root)
+    key_material = manifest.get("key_material", "disclosed")
+    if disclose and key_material != "disclosed":
+        raise InputError("the report was built without key material: run claimkit report "
+                         "with --disclose first", path=root)
+    present = bundle_files(root, include_original=bool(manifest.get("include_original")))
     changed = [rel for rel in present if rel not in listed or sha256_file(root / rel) != listed[rel]]
     changed += [rel for rel in listed if rel not in present]
     if changed:
@@ -79,5 +89,6 @@ def export_bundle(case: Case, out: str | os.PathLike, profile=None, *, force: bo
         profile.log_action("bundle exported",
                            items={"bundle": digest, "manifest": sha256_file(root / MANIFEST)},
                            details={"case_id": case.case_id, "files": len(names),
-                                    "file": out.name})
-    return {"bundle": str(out), "sha256": digest, "files": len(names)}
+                                    "file": out.name, "key_material": key_material})
+    return {"bundle": str(out), "sha256": digest, "files": len(names),
+            "key_material": key_material}

@@ -14,8 +14,10 @@ serves the case (which writes exhibits, findings and references), the dossier
     captures/cap-*.warc.gz|json   web captures: the WARC, its record, snapshots, token
     captures/warc-*               a crawler's WARC file that exhibits were taken from
     handover/public-key.pem       the owner's public key
-    handover/disclosures/WORK/    a key disclosure per matched work
-    handover/custody.jsonl        a copy of the custody log
+    handover/disclosures/WORK/    per matched work: signed record, timestamps; key material
+                                  only when the owner chose to disclose it
+    handover/custody-excerpt.json the custody entries of this case and its works, others by hash
+    handover/software.json        the versions of the software that made the numbers
     report/dossier.json|pdf|html  the dossier and the data it renders
     report/figures/E01-KIND.png   its figures
     manifest.json, manifest.sig   every file above with its SHA-256, signed
@@ -36,6 +38,7 @@ __all__ = [
     "CAPTURES",
     "CASE_FILE",
     "CUSTODY_COPY",
+    "CUSTODY_COPY_V1",
     "DATA",
     "DISCLOSURES",
     "EXHIBITS",
@@ -51,6 +54,7 @@ __all__ = [
     "PUBLIC_KEY",
     "REFERENCES",
     "REPORT",
+    "SOFTWARE",
     "WITHDRAWN",
     "arrays_file",
     "bundle_files",
@@ -63,6 +67,7 @@ __all__ = [
     "inside",
     "intake_record",
     "reference_file",
+    "references_used",
     "unsafe_name",
     "withdrawal_record",
 ]
@@ -79,7 +84,9 @@ PDF = f"{REPORT}/dossier.pdf"
 HTML = f"{REPORT}/dossier.html"
 HANDOVER = "handover"
 PUBLIC_KEY = f"{HANDOVER}/public-key.pem"
-CUSTODY_COPY = f"{HANDOVER}/custody.jsonl"
+CUSTODY_COPY = f"{HANDOVER}/custody-excerpt.json"
+CUSTODY_COPY_V1 = f"{HANDOVER}/custody.jsonl"     # bundles of claimkit 0.2: the whole log
+SOFTWARE = f"{HANDOVER}/software.json"
 DISCLOSURES = f"{HANDOVER}/disclosures"
 MANIFEST = "manifest.json"
 MANIFEST_SIG = "manifest.sig"
@@ -185,14 +192,34 @@ def inside(root: Path, rel: object, folder: str) -> str | None:
     return None
 
 
-def bundle_files(root: Path) -> list[str]:
+def references_used(root: Path) -> dict[str, str]:
+    """Reference files the findings align to: relative path -> kind ("marked", "original")."""
+    import json
+
+    out = {}
+    for p in sorted((root / FINDINGS).glob("*.json")):
+        try:
+            ref = json.loads(p.read_bytes()).get("reference") or {}
+        except (OSError, ValueError, AttributeError):
+            continue
+        if isinstance(ref.get("file"), str):
+            out[ref["file"]] = ref.get("kind", "original")
+    return out
+
+
+def bundle_files(root: Path, *, include_original: bool = False) -> list[str]:
     """Relative paths of every file that goes into the bundle (sorted; no links, no hidden).
+
+    Of ``references/`` only the files a finding aligns to go in, and an unmarked
+    master only with ``include_original``: the published marked file is what the
+    other side may see; the master is the owner's to give or keep.
 
     Raises
     ------
     InputError
         When the folder holds a symbolic link: bundles never do.
     """
+    used = references_used(root)
     out = []
     for part in BUNDLE_PARTS:
         p = root / part
@@ -205,6 +232,10 @@ def bundle_files(root: Path) -> list[str]:
                     continue
                 if q.is_symlink():
                     raise InputError("the case holds a symbolic link; bundles never do", path=q)
-                if q.is_file():
-                    out.append(rel.as_posix())
+                if not q.is_file():
+                    continue
+                if part == REFERENCES and (rel.as_posix() not in used or (
+                        used[rel.as_posix()] != "marked" and not include_original)):
+                    continue
+                out.append(rel.as_posix())
     return sorted(out)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import sys
 from pathlib import Path
 
 from claimkit.cli.common import home_dir, passphrase, print_json
@@ -136,7 +137,7 @@ def cmd_case_export(args) -> int:
 
     case = open_case(args.dir)
     with _profile(args) as p:
-        rep = export_bundle(case, args.out, p, force=args.force)
+        rep = export_bundle(case, args.out, p, force=args.force, disclose=args.disclose)
     if args.json:
         print_json(rep)
     else:
@@ -159,32 +160,66 @@ def cmd_report(args) -> int:
         if not (out.parent if str(out.parent) else Path(".")).is_dir():
             raise InputError(f"folder {out.parent} does not exist", path=out)
     with _profile(args) as p:
-        rep = build_report(case, p, out_pdf=Path(args.out) if args.out else None)
+        if args.disclose:
+            from claimkit.dossier.build import matched_works
+            from claimkit.evidence.disclose import what_it_reveals
+
+            # Said before it is done (and each disclosure is logged with its scope).
+            lines = what_it_reveals(p, matched_works(case))
+            print("claimkit: --disclose puts key material in the bundle. It reveals:",
+                  file=sys.stderr)
+            for line in lines or ["nothing: no exhibit matched a registered work"]:
+                print(f"  - {line}", file=sys.stderr)
+        rep = build_report(case, p, out_pdf=Path(args.out) if args.out else None,
+                           disclose=args.disclose, include_original=args.include_original)
     if args.json:
         print_json(rep)
     else:
         print(f"dossier: {rep['out'] or rep['pdf']} (signed, PAdES)")
         print(f"same content as a web page: {rep['html']}")
         print(f"signed manifest of {rep['files']} files: {case.root / 'manifest.json'}")
+        if rep["key_material"] == "withheld":
+            print("no key material in the bundle: give the other side's expert a disclosure "
+                  "separately (claimkit disclose WORK --out DIR), or report with --disclose")
         print(CAUTION)
     return 0
 
 
 def cmd_verify(args) -> int:
+    from claimkit.errors import InputError
+    from claimkit.evidence.timestamp import load_certificates
     from claimkit.verify import verify_bundle
 
-    rep = verify_bundle(args.bundle)
+    roots = None
+    if args.tsa_roots:
+        try:
+            data = Path(args.tsa_roots).read_bytes()
+        except OSError as exc:
+            raise InputError(f"cannot read ({exc.strerror})", path=args.tsa_roots) from None
+        roots = load_certificates(data, path=args.tsa_roots)
+    rep = verify_bundle(args.bundle, rerun=not args.no_rerun, expect_keys=tuple(args.expect_key),
+                        tsa_roots=roots, disclosure=args.disclosure)
+    verdict = rep.verdict
     if args.json:
         for c in rep.checks:
             print_json(c)
-        print_json({"bundle": rep.bundle, "ok": rep.ok, "checks": len(rep.checks),
-                    "failed": [c["check"] for c in rep.failures]})
+        print_json({"bundle": rep.bundle, "ok": rep.ok, "verdict": verdict,
+                    "checks": len(rep.checks),
+                    "failed": [c["check"] for c in rep.failures],
+                    "unpinned": [c["check"] for c in rep.unpinned],
+                    "compare_out_of_band": rep.out_of_band})
     else:
+        words = {"ok": "ok      ", "failed": "FAIL    ", "unpinned": "UNPINNED",
+                 "skipped": "skipped ", "not done": "NOT DONE"}
         for c in rep.checks:
-            mark = "ok  " if c["ok"] else "FAIL"
-            print(f"{mark} {c['check']}: {c['detail']}")
+            print(f"{words[c['status']]} {c['check']}: {c['detail']}")
         if rep.ok:
-            print(f"all {len(rep.checks)} checks passed")
+            print(f"{len(rep.checks)} checks, none failed"
+                  + (f"; {len(rep.unpinned)} unpinned" if rep.unpinned else ""))
+        if rep.out_of_band:
+            print("Before relying on this, compare out of band:")
+            for line in rep.out_of_band:
+                print(f"  - {line}")
     if not rep.ok:
         names = ", ".join(c["check"] for c in rep.failures)
         raise CheckFailed(f"{len(rep.failures)} check(s) failed: {names}", path=args.bundle)
@@ -273,14 +308,24 @@ def register(sub, common) -> None:
     p.add_argument("dir", metavar="DIR")
     p.add_argument("--out", required=True, metavar="FILE.zip")
     p.add_argument("--force", action="store_true")
+    p.add_argument("--disclose", action="store_true",
+                   help="require that the bundle carries key material (build the report "
+                        "with --disclose first)")
     p.add_argument("--json", action="store_true")
     p.set_defaults(func=cmd_case_export)
 
     p = sub.add_parser("report", parents=[common], help="build the signed dossier of a case",
                        description="Build the dossier (PDF signed the PDF way, HTML, data), "
-                                   "the key disclosures and the signed manifest.")
+                                   "the works' public evidence, a custody excerpt and the signed "
+                                   "manifest; key material only with --disclose.")
     p.add_argument("dir", metavar="DIR")
     p.add_argument("--out", metavar="FILE.pdf", help="also write the PDF here")
+    p.add_argument("--disclose", action="store_true",
+                   help="put the matched works' key material in the bundle, after saying "
+                        "what it reveals (default: none)")
+    p.add_argument("--include-original", action="store_true",
+                   help="put the unmarked master in the bundle when a finding aligns to it "
+                        "(default: withheld, named by its hash)")
     p.add_argument("--force", action="store_true", help="replace an existing --out file")
     p.add_argument("--json", action="store_true")
     p.set_defaults(func=cmd_report)
@@ -290,6 +335,17 @@ def register(sub, common) -> None:
                                    "custody chain of a bundle, and re-run every examination. "
                                    "Exit 0 only when every check passes.")
     p.add_argument("bundle", metavar="BUNDLE_OR_DIR")
+    p.add_argument("--expect-key", action="append", default=[], metavar="SHA256",
+                   help="the owner key fingerprint you obtained from the owner yourself "
+                        "(repeatable); without it the signer is reported unpinned")
+    p.add_argument("--tsa-roots", metavar="FILE",
+                   help="PEM file of the timestamp authorities' root certificates you trust; "
+                        "without it the timestamps are reported unpinned")
+    p.add_argument("--disclosure", metavar="DIR",
+                   help="a key disclosure delivered apart from the bundle (needed to re-run "
+                        "the examinations when the bundle holds no key material)")
+    p.add_argument("--no-rerun", action="store_true",
+                   help="check integrity only: hashes, signatures, tokens, custody; no re-run")
     p.add_argument("--json", action="store_true")
     p.set_defaults(func=cmd_verify)
 

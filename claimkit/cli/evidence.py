@@ -214,15 +214,18 @@ def cmd_log_verify(args) -> int:
 # --------------------------------------------------------------------------- disclose, key
 
 def cmd_disclose(args) -> int:
+    from claimkit.evidence.disclose import what_it_reveals
+
     with _open(args, secrets=True) as p:
         wid = _work_id(p, args.work_id)
+        reveals = what_it_reveals(p, [wid])
         out = p.disclose(wid, Path(args.out))
     if args.json:
-        print_json({"work_id": wid, "out": str(out)})
+        print_json({"work_id": wid, "out": str(out), "reveals": reveals})
     else:
-        print(f"disclosure for {wid} written to {out}")
-        print("it holds the detection seed, this work's payload tag and commitment opening, the "
-              "public key and the signed record; never the signing key or the marking secret")
+        print(f"disclosure for {wid} written to {out}; it reveals:")
+        for line in reveals:
+            print(f"  - {line}")
         print(CAUTION)
     return 0
 
@@ -311,9 +314,11 @@ def register(sub, common) -> None:
 
     p = add(sub, "disclose", "write what an independent expert needs to re-check one work",
             cmd_disclose, formatter_class=argparse.RawDescriptionHelpFormatter,
-            epilog="Reveals the detection seed, the work's payload tag and commitment opening, "
-                   "the public key and the signed record. Never the signing key, the marking "
-                   "secret or the payload-tag key. " + CAUTION)
+            epilog="Reveals the key material of the work's mark format (formats 1 and 2: the "
+                   "owner-level detection seed, which finds every format-1/2 work of the "
+                   "owner), the work's payload tag and commitment opening, the public key and "
+                   "the signed record. Never the signing key, the marking secret or the "
+                   "payload-tag key. " + CAUTION)
     p.add_argument("work_id", metavar="WORK")
     p.add_argument("--out", required=True, metavar="DIR")
     json_opt(p)

@@ -2,8 +2,11 @@
 
 Order matters, because each step may only read what the bundle will hold:
 
-1. ``handover/``: the owner's public key, a key disclosure for every work the
-   exhibits matched, then a copy of the custody log (so it includes them);
+1. ``handover/``: the owner's public key, the public evidence of every work
+   the exhibits matched (signed record, timestamps; key material only with
+   ``disclose=True``), the software versions, then the custody excerpt (taken
+   last, so it holds the disclosures just logged): the entries of this case
+   and its works in full, every other entry by its hash only;
 2. figures, drawn from the stored findings and files;
 3. ``report/dossier.json`` from :func:`claimkit.dossier.data.build_data`;
 4. the PDF (signed, PAdES) and the HTML page, both rendered from that data;
@@ -63,7 +66,8 @@ def draw_figures(root: Path, data: dict) -> dict[str, bytes]:
         out[names["surface"]] = figures.png_bytes(figures.surface_figure(a["surface"]))
         out[names["decoys"]] = figures.png_bytes(figures.decoy_figure(finding["decoy_scores"],
                                                                       r["score_pilot"]))
-        if "aligned" in names:
+        # A withheld master cannot be drawn from in a bundle; the figure stays as signed.
+        if "aligned" in names and (root / r["reference"]["file"]).is_file():
             al = r["alignment"]
             ref = to_luma(read_picture(root / r["reference"]["file"]).pixels).astype(np.float64)
             s = al["work_scale"]
@@ -74,16 +78,34 @@ def draw_figures(root: Path, data: dict) -> dict[str, bytes]:
     return out
 
 
-def write_manifest(root: Path, profile, case_id: str) -> dict:
+def withheld_references(root: Path, listed: list[str]) -> list[dict]:
+    """Files of the case's ``references/`` that the bundle leaves out, by hash, with why."""
+    used = layout.references_used(root)
+    folder = root / layout.REFERENCES
+    out = []
+    for p in sorted(folder.iterdir()) if folder.is_dir() else []:
+        rel = f"{layout.REFERENCES}/{p.name}"
+        if rel in listed or not p.is_file() or p.is_symlink() or p.name.startswith("."):
+            continue
+        why = ("an unmarked master a finding aligns to; claimkit report --include-original "
+               "adds it" if rel in used else "no finding aligns to it")
+        out.append({"path": rel, "sha256": sha256_file(p), "why": why})
+    return out
+
+
+def write_manifest(root: Path, profile, case_id: str, *, key_material: str = "withheld",
+                   include_original: bool = False) -> dict:
     """``manifest.json`` (every bundle file with SHA-256 and size) and its signature."""
+    names = layout.bundle_files(root, include_original=include_original)
     files = [{"path": rel, "sha256": sha256_file(root / rel), "size": (root / rel).stat().st_size}
-             for rel in layout.bundle_files(root)]
+             for rel in names]
     doc = {"type": MANIFEST_TYPE, "case_id": case_id, "created": {"time": utc_now(),
            "time_source": "system clock"}, "software": f"claimkit {__version__}",
            "signer": {"name": profile.owner, "public_key_sha256": profile.public_key_fingerprint},
            "signature": {"algorithm": "Ed25519 (RFC 8032) over the exact bytes of manifest.json",
                          "file": MANIFEST_SIG, "public_key": PUBLIC_KEY},
-           "files": files}
+           "key_material": key_material, "include_original": include_original,
+           "withheld": withheld_references(root, names), "files": files}
     data = canonical_json(doc)
     atomic_write(root / MANIFEST, data)
     atomic_write(root / MANIFEST_SIG, profile.sign(data))
@@ -111,15 +133,33 @@ def _check_examined(case: Case) -> None:
                               "examine again", path=arrays)
 
 
-def _handover(case: Case, profile) -> None:
-    root = case.root
-    work_ids = []
+def matched_works(case: Case) -> list[str]:
+    """The works the case's exhibits matched, in exhibit order."""
+    work_ids: list[str] = []
     for ex in case.exhibits():
         if ex.withdrawal is not None:
             continue     # no claim rests on a withdrawn exhibit: disclose nothing for it
         m = (case.finding(ex.exhibit_id) or {}).get("match")
         if m and m.get("work_id") and m["work_id"] not in work_ids:
             work_ids.append(m["work_id"])
+    return work_ids
+
+
+def _stamp_requests(profile, work_ids: list[str]) -> set[str]:
+    """Stamp requests whose Merkle trees hold one of the works (their log entries concern them)."""
+    out = set()
+    for request_id, listed in profile.db.execute("SELECT request_id, work_ids FROM stamp_requests"):
+        if set(json.loads(listed)) & set(work_ids):
+            out.add(request_id)
+    return out
+
+
+def _handover(case: Case, profile, *, disclose: bool) -> None:
+    from claimkit.evidence.excerpt import build_excerpt
+    from claimkit.software import versions
+
+    root = case.root
+    work_ids = matched_works(case)
     tmp = root / f".{HANDOVER}.part"
     shutil.rmtree(tmp, ignore_errors=True)
     # Built under a hidden name beside handover/, then swapped in: the layout's paths
@@ -130,19 +170,32 @@ def _handover(case: Case, profile) -> None:
     part(layout.DISCLOSURES).mkdir(parents=True)
     atomic_write(part(PUBLIC_KEY), profile.public_key_pem())
     for wid in work_ids:
-        profile.disclose(wid, part(layout.DISCLOSURES) / wid)
-    # The log copy is taken last, so it holds the disclosures just logged.
-    log = profile.log_path.read_bytes()
-    log = log[: log.rfind(b"\n") + 1]
-    atomic_write(part(layout.CUSTODY_COPY), log)
+        profile.disclose(wid, part(layout.DISCLOSURES) / wid, keys=disclose)
+    atomic_write(part(layout.SOFTWARE), canonical_json(versions()) + b"\n")
+    # The excerpt is taken last, so it holds the disclosures just logged.
+    excerpt = build_excerpt(profile.log_path.read_bytes(), case_id=case.case_id,
+                            work_ids=work_ids, request_ids=_stamp_requests(profile, work_ids))
+    atomic_write(part(layout.CUSTODY_COPY), excerpt)
     old = root / HANDOVER
     if old.exists():
         shutil.rmtree(old)
     os.replace(tmp, old)
 
 
-def build_report(case: Case, profile, *, out_pdf: Path | None = None) -> dict:
+def build_report(case: Case, profile, *, out_pdf: Path | None = None,
+                 disclose: bool = False, include_original: bool = False) -> dict:
     """Build the whole dossier of ``case``; returns paths and hashes.
+
+    Parameters
+    ----------
+    disclose : bool
+        Put each matched work's key material in the bundle (the caller has said
+        what it reveals: :func:`claimkit.evidence.disclose.what_it_reveals`).
+        Without it the bundle holds no key material, and the other side's
+        expert re-runs with a disclosure delivered separately.
+    include_original : bool
+        Put an unmarked master that a finding aligns to in the bundle (default:
+        it is withheld, named by its hash only).
 
     Raises
     ------
@@ -153,7 +206,7 @@ def build_report(case: Case, profile, *, out_pdf: Path | None = None) -> dict:
     """
     _check_examined(case)
     root = case.root
-    _handover(case, profile)
+    _handover(case, profile, disclose=disclose)
     shutil.rmtree(root / layout.REPORT, ignore_errors=True)
     (root / layout.FIGURES).mkdir(parents=True)
     data = build_data(root)
@@ -172,9 +225,13 @@ def build_report(case: Case, profile, *, out_pdf: Path | None = None) -> dict:
                        items={"dossier_pdf": sha256_hex(signed), "dossier_data": sha256_hex(data_bytes),
                               "dossier_html": sha256_hex(html)},
                        details={"case_id": case.case_id, "exhibits": len(data["exhibits"]),
-                                "detected": data["summary"]["detected"]})
-    manifest = write_manifest(root, profile, case.case_id)
+                                "detected": data["summary"]["detected"],
+                                "key_material": "disclosed" if disclose else "withheld"})
+    manifest = write_manifest(root, profile, case.case_id,
+                              key_material="disclosed" if disclose else "withheld",
+                              include_original=include_original)
     return {"case_id": case.case_id, "pdf": str(root / PDF), "html": str(root / HTML),
             "data": str(root / DATA), "pdf_sha256": sha256_hex(signed),
             "manifest_sha256": sha256_file(root / MANIFEST), "files": len(manifest["files"]),
-            "summary": data["summary"], "out": None if out_pdf is None else str(out_pdf)}
+            "summary": data["summary"], "out": None if out_pdf is None else str(out_pdf),
+            "key_material": "disclosed" if disclose else "withheld"}

@@ -16,12 +16,13 @@ from pathlib import Path
 from claimkit import __version__
 from claimkit.capture.evidence import collection_data
 from claimkit.case import layout
-from claimkit.case.layout import CUSTODY_COPY, DISCLOSURES, PUBLIC_KEY
+from claimkit.case.layout import CUSTODY_COPY, CUSTODY_COPY_V1, DISCLOSURES, PUBLIC_KEY, SOFTWARE
 from claimkit.errors import InputError
 from claimkit.evidence import signing
 from claimkit.evidence.canonical import canonical_json, canonicalize
 from claimkit.evidence.custodylog import verify_log
 from claimkit.evidence.disclose import check_disclosure
+from claimkit.evidence.excerpt import verify_excerpt
 from claimkit.evidence.storage import sha256_file
 from claimkit.mark import detect, geometry, pattern, stats
 
@@ -115,6 +116,7 @@ def _works(root: Path) -> list[dict]:
             "work_id": chk.work_id or d.name,
             "folder": d.relative_to(root).as_posix(),
             "checks_passed": chk.ok,
+            "key_material": {"disclosed": chk.keys_included, "scope": chk.scope},
             "problems": list(chk.problems),
             "serial": chk.serial,
             "original": record.get("original", {}),
@@ -138,7 +140,10 @@ def _custody(root: Path, case_id: str, work_ids: set[str]) -> dict:
         pub = signing.load_public_pem((root / PUBLIC_KEY).read_bytes())
     except (OSError, ValueError):
         return {"checked": False, "problems": ["public key missing or unreadable"], "entries": []}
-    rep = verify_log(log, pub)
+    # A bundle of claimkit 0.2 carries the whole log; later ones an excerpt.
+    old = root / CUSTODY_COPY_V1
+    rep = verify_log(old, pub) if old.is_file() and not log.is_file() else \
+        verify_excerpt(log, pub)
     rows = []
     for e in rep.entries:
         d = e.get("details", {})
@@ -152,6 +157,14 @@ def _custody(root: Path, case_id: str, work_ids: set[str]) -> dict:
     return {"checked": True, "lines": rep.lines, "ok": rep.ok,
             "problems": [str(p) for p in rep.problems], "entries": rows,
             "head_seq": rep.head_seq, "head_sha256": rep.head_hash}
+
+
+def _software(root: Path) -> dict | None:
+    """The versions ``report`` recorded (``handover/software.json``), or None in an old bundle."""
+    try:
+        return json.loads((root / SOFTWARE).read_bytes())
+    except (OSError, ValueError):
+        return None
 
 
 def _constants(module) -> dict:
@@ -253,6 +266,7 @@ def build_data(root: str | Path) -> dict:
                    "mark": works[0]["mark_params"] if works else {},
                    "references": REFERENCES_CITED},
         "custody": _custody(root, case["case_id"], work_ids),
+        "software_made_with": _software(root),
         "collection": collection_data(root, exhibits),
         "figures": {r["exhibit_id"]: _figure_names(r) for r in results},
     }

@@ -3,10 +3,11 @@
 A disclosure folder holds:
 
 ``disclosure.json`` / ``disclosure.sig``
-    The detection seed, the work's serial and payload tag, the opening of the
-    record's key commitment, the timestamp inclusion proofs, the list of what
-    is withheld, and the usual cautions; canonical JSON signed with the owner's
-    Ed25519 key.
+    The work's serial, the record's key commitment, the timestamp inclusion
+    proofs, the list of what is withheld, the usual cautions and, only when
+    key material is disclosed, ``keys`` (seeds by name, their scope), the
+    payload tag and the commitment's opening; canonical JSON signed with the
+    owner's Ed25519 key.
 ``work-record.json`` / ``work-record.sig``
     The signed work record, byte for byte as signed.
 ``public-key.pem``
@@ -17,20 +18,20 @@ A disclosure folder holds:
 ``CHECK.txt``
     How to re-check every signature with the ``openssl`` command.
 
-What a disclosure reveals, and what it does not (the README states the same):
+Disclosure is a choice. Without key material (``keys=False``, what a bundle
+holds by default) the same folder carries only what anyone may see: the
+signed record, the commitment value, the public key and the timestamps. With
+it, ``disclosure.json`` adds the key material the work's mark format needs
+(:func:`disclosed_keys`), the payload tag and the commitment opening.
 
-It reveals the owner's 32-byte detection seed (from which the carrier, pilot
-and payload positions are derived), the work's serial and 24-bit payload tag,
-the opening of the key commitment in the signed record, the public key, the
-signed record, and each RFC 3161 token covering it with its Merkle inclusion
-proof. It never contains the Ed25519 signing key, the 256-bit marking secret,
-or the key that makes payload tags: a holder cannot sign in the owner's name
-or compute the payload tag of any other serial, so cannot make an image that
-claimkit accepts as another of the owner's registered works (a blind guess of
-a tag succeeds once in 2**24 tries). The detection seed is shared by all of
-the owner's works: its holder can find and read the mark in any of the
-owner's images, and with effort weaken or remove marks, or copy this work's
-mark into another picture.
+What key material reveals depends on the mark format, and the disclosure
+says so in ``keys.scope``: formats 1 and 2 use the owner-level detection
+seed, so their disclosure finds every format-1/2 work of the owner; a format
+that derives a key per family of works registers its own provider in
+:data:`KEY_MATERIAL`, whose scope is that family. A disclosure never contains
+the Ed25519 signing key, the 256-bit marking secret, or the key that makes
+payload tags: its holder cannot sign in the owner's name or compute the
+payload tag of any other serial (a blind guess succeeds once in 2**24 tries).
 """
 
 from __future__ import annotations
@@ -39,6 +40,7 @@ import json
 import os
 import shutil
 import tempfile
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -50,17 +52,99 @@ from claimkit.evidence.profile import COMMITMENT_SCHEME, commitment_of
 from claimkit.evidence.stamping import inclusion_proof
 from claimkit.evidence.storage import atomic_write, fsync_dir, sha256_hex
 
-__all__ = ["WITHHELD", "DisclosureCheck", "check_disclosure", "write_disclosure"]
+__all__ = [
+    "KEY_MATERIAL",
+    "WITHHELD",
+    "DisclosedKeys",
+    "DisclosureCheck",
+    "check_disclosure",
+    "disclosed_keys",
+    "what_it_reveals",
+    "write_disclosure",
+]
 
-DISCLOSURE_TYPE = "claimkit/disclosure/v1"
+DISCLOSURE_TYPE = "claimkit/disclosure/v2"
 WITHHELD = [
     "Ed25519 signing key (no one else can sign records or log entries as the owner)",
     "marking secret (256-bit root of every derived key)",
     "payload-tag key (no payload for any other serial can be made)",
 ]
-CAUTION = ("Technical evidence, not legal advice. The detection seed lets its holder detect, "
-           "and with effort weaken, this owner's marks in any image; share it only with the "
-           "parties to the dispute, and rely on counsel and the local law for how it is used.")
+CAUTION = ("Technical evidence, not legal advice. Disclosed key material lets its holder "
+           "detect, and with effort weaken, the owner's marks within its scope (keys.scope); "
+           "share it only with the parties to the dispute, and rely on counsel and the local "
+           "law for how it is used.")
+
+
+@dataclass(frozen=True)
+class DisclosedKeys:
+    """The key material one work's examination needs, and what else it finds.
+
+    ``seeds`` maps a name the examiner knows (``detection`` for formats 1 and 2)
+    to the bytes; ``scope`` says in words which works the material detects,
+    ``finds_all_owner_works`` whether that is every work of the owner's in the
+    format.
+    """
+
+    mark_format: str
+    seeds: dict[str, bytes]
+    derivation: dict[str, str]
+    scope: str
+    finds_all_owner_works: bool
+
+    def as_json(self) -> dict:
+        return {"format": self.mark_format, "scope": self.scope,
+                "finds_all_owner_works": self.finds_all_owner_works,
+                "seeds": {k: v.hex() for k, v in sorted(self.seeds.items())},
+                "derivation": dict(sorted(self.derivation.items()))}
+
+
+def _owner_level(profile, work) -> DisclosedKeys:
+    """Formats 1 and 2: one detection seed for all of the owner's works."""
+    return DisclosedKeys(
+        mark_format=_format_of(work), seeds={"detection": profile.detection_seed},
+        derivation={"detection": "HKDF-SHA256(marking secret, salt=none, "
+                                 "info='claimkit/detection/v1')"},
+        scope="this disclosure finds every format-1/2 work of the owner (the detection seed "
+              "is owner-level in these formats), not only this work",
+        finds_all_owner_works=True)
+
+
+#: mark format name -> provider of the key material its disclosure carries. A format
+#: with per-family keys adds itself here (the evidence layer owns the derivation).
+KEY_MATERIAL: dict[str, Callable[..., DisclosedKeys]] = {
+    "claimkit-mark/1": _owner_level,
+    "claimkit-mark/2": _owner_level,
+}
+
+
+def _format_of(work) -> str:
+    return (work.record.get("mark_params") or {}).get("format", "claimkit-mark/1")
+
+
+def disclosed_keys(profile, work) -> DisclosedKeys:
+    """The key material a disclosure of ``work`` carries (by the work's mark format)."""
+    fmt = _format_of(work)
+    try:
+        provider = KEY_MATERIAL[fmt]
+    except KeyError:
+        raise InputError(f"{work.work_id}: no key disclosure is defined for mark format "
+                         f"{fmt}") from None
+    return provider(profile, work)
+
+
+def what_it_reveals(profile, work_ids: list[str]) -> list[str]:
+    """What disclosing these works' keys reveals, one sentence each (said before it is done)."""
+    out = []
+    for wid in work_ids:
+        work = profile.work(wid)
+        if work is None:
+            raise InputError(f"no work {wid} in this profile")
+        keys = disclosed_keys(profile, work)
+        out.append(f"{wid} ({keys.mark_format}): {', '.join(sorted(keys.seeds))} seed; "
+                   f"{keys.scope}; also the work's payload tag and commitment opening")
+    if out:
+        out.append("never disclosed: " + "; ".join(WITHHELD))
+    return out
 
 _CHECK_TXT = """\
 Checking this disclosure with OpenSSL (no claimkit needed)
@@ -78,10 +162,11 @@ Checking this disclosure with OpenSSL (no claimkit needed)
    published elsewhere: a key that arrives with the evidence proves nothing by
    itself.
 
-2. The key commitment: SHA-256 of the canonical JSON (RFC 8785) of
-   disclosure.json's "commitment.opening" must equal the record's
-   "key_commitment.value"; "opening.detection_seed_sha256" must be the SHA-256
-   of the bytes of "detection.seed_hex".
+2. The key commitment (only when disclosure.json carries "keys": key
+   material is disclosed by choice, see "keys.scope" for what it finds):
+   SHA-256 of the canonical JSON (RFC 8785) of "commitment.opening" must
+   equal the record's "key_commitment.value"; for each seed NAME in
+   "keys.seeds", "opening.NAME_seed_sha256" must be the SHA-256 of its bytes.
 
 3. Each timestamp token (RFC 3161) in timestamps/ covers a Merkle root
    (RFC 6962) of work records. Check the token's signature and time with:
@@ -90,7 +175,10 @@ Checking this disclosure with OpenSSL (no claimkit needed)
        -CAfile timestamps/TOKEN.tsa.pem
 
    (add -partial_chain when TOKEN.tsa.pem is the TSA's own certificate rather
-   than its CA's)
+   than its CA's; add -attime with the token's time as seconds since 1970 to
+   check the certificates at that time, as claimkit does, rather than now).
+   TOKEN.tsa.pem is what the owner trusted: check it against the TSA's
+   published root, not against this file.
 
    then the record's inclusion: leaf = SHA-256(0x00 || work-record.json), nodes
    SHA-256(0x01 || left || right) along "audit_path" (disclosure.json).
@@ -99,8 +187,11 @@ Checking this disclosure with OpenSSL (no claimkit needed)
 """
 
 
-def write_disclosure(profile, work_id: str, out: Path) -> Path:
+def write_disclosure(profile, work_id: str, out: Path, *, keys: bool = True) -> Path:
     """Write the disclosure for ``work_id`` to the new folder ``out`` (all or nothing).
+
+    With ``keys=False`` the folder holds no key material (no seed, no payload tag,
+    no commitment opening): the public evidence of the work only, nothing logged.
 
     Raises
     ------
@@ -116,11 +207,11 @@ def write_disclosure(profile, work_id: str, out: Path) -> Path:
     if not work.verify():
         raise CheckFailed(f"{work_id}: record signature does not verify; not disclosing "
                           "a damaged record", path=profile.home)
-    opening = profile.commitment_opening(work_id)
-    if commitment_of(opening) != work.record["key_commitment"]["value"]:
+    opening = profile.commitment_opening(work_id) if keys else None
+    if opening is not None and commitment_of(opening) != work.record["key_commitment"]["value"]:
         raise CheckFailed(f"{work_id}: the commitment opening does not match the record",
                           path=profile.home)
-    seed = profile.detection_seed
+    material = disclosed_keys(profile, work) if keys else None
     stamps = []
     files: dict[str, bytes] = {
         "public-key.pem": profile.public_key_pem(),
@@ -140,15 +231,12 @@ def write_disclosure(profile, work_id: str, out: Path) -> Path:
         "work_id": work_id,
         "created": {"time": utc_now(), "time_source": "system clock"},
         "owner": work.record["owner"],
-        "detection": {
-            "seed_hex": seed.hex(),
-            "derivation": "HKDF-SHA256(marking secret, salt=none, info='claimkit/detection/v1')",
-        },
+        "keys": material.as_json() if material else None,
         "payload": {"owner_tag": profile.owner_tag, "serial": work.serial,
-                    "payload_tag": profile.payload_tag(work.serial)},
+                    **({"payload_tag": profile.payload_tag(work.serial)} if keys else {})},
         "commitment": {"scheme": COMMITMENT_SCHEME,
                        "value": work.record["key_commitment"]["value"],
-                       "opening": opening},
+                       **({"opening": opening} if keys else {})},
         "record": {"file": "work-record.json", "signature_file": "work-record.sig",
                    "sha256": sha256_hex(work.canonical)},
         "timestamps": stamps,
@@ -175,11 +263,16 @@ def write_disclosure(profile, work_id: str, out: Path) -> Path:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     fsync_dir(parent)
-    profile.log_action("key material disclosed",
-                       items={"disclosure": sha256_hex(body), "record": sha256_hex(work.canonical)},
-                       details={"work_id": work_id, "folder": str(out.resolve()),
-                                "withheld": ["signing key", "marking secret",
-                                             "payload-tag key"]})
+    if material is not None:
+        # The folder's name only: an absolute path would travel with the custody excerpt.
+        profile.log_action("key material disclosed",
+                           items={"disclosure": sha256_hex(body),
+                                  "record": sha256_hex(work.canonical)},
+                           details={"work_id": work_id, "folder": out.name,
+                                    "format": material.mark_format,
+                                    "seeds": sorted(material.seeds), "scope": material.scope,
+                                    "withheld": ["signing key", "marking secret",
+                                                 "payload-tag key"]})
     return out
 
 
@@ -189,7 +282,10 @@ class DisclosureCheck:
 
     folder: Path
     work_id: str | None = None
-    detection_seed: bytes | None = None
+    keys_included: bool = False
+    seeds: dict[str, bytes] = field(default_factory=dict)
+    mark_format: str | None = None
+    scope: str | None = None
     owner_tag: int | None = None
     serial: int | None = None
     payload_tag: int | None = None
@@ -201,6 +297,10 @@ class DisclosureCheck:
     def ok(self) -> bool:
         return not self.problems
 
+    @property
+    def detection_seed(self) -> bytes | None:
+        return self.seeds.get("detection")
+
 
 def _inside(folder: Path, name: str) -> Path:
     """A file named by the disclosure, refused unless it lies inside the folder (no links out)."""
@@ -211,8 +311,16 @@ def _inside(folder: Path, name: str) -> Path:
     return path
 
 
-def check_disclosure(folder: Path) -> DisclosureCheck:
-    """Re-check a disclosure folder as the other side's expert would, without any secret."""
+def check_disclosure(folder: Path, *, tsa_roots: list | None = None) -> DisclosureCheck:
+    """Re-check a disclosure folder as the other side's expert would, without any secret.
+
+    Parameters
+    ----------
+    tsa_roots : list of Certificate, optional
+        The timestamp authorities the checker trusts. Without them each token is
+        checked against the certificate the folder brings (integrity only: the
+        caller must report the authority as not pinned).
+    """
     folder = Path(folder)
     res = DisclosureCheck(folder)
     try:
@@ -239,32 +347,46 @@ def check_disclosure(folder: Path) -> DisclosureCheck:
         return res
     res.work_id = doc.get("work_id")
     try:
-        seed = bytes.fromhex(doc["detection"]["seed_hex"])
-        opening = doc["commitment"]["opening"]
-        res.detection_seed = seed
         res.owner_tag = doc["payload"]["owner_tag"]
         res.serial = doc["payload"]["serial"]
-        res.payload_tag = doc["payload"]["payload_tag"]
-    except (KeyError, ValueError, TypeError):
-        res.problems.append("disclosure.json lacks the detection seed or commitment opening")
+        commitment = doc["commitment"]["value"]
+        keys = doc.get("keys")
+        if keys is not None:
+            res.seeds = {k: bytes.fromhex(v) for k, v in keys["seeds"].items()}
+            res.mark_format, res.scope = keys["format"], keys["scope"]
+            opening = doc["commitment"]["opening"]
+            res.payload_tag = doc["payload"]["payload_tag"]
+            res.keys_included = True
+    except (KeyError, ValueError, TypeError, AttributeError):
+        res.problems.append("disclosure.json lacks its payload, commitment or key fields")
         return res
     if record.get("owner", {}).get("public_key_sha256") != res.public_key_sha256:
         res.problems.append("work-record.json names another public key")
-    if record.get("work_id") != res.work_id or opening.get("work_id") != res.work_id:
-        res.problems.append("work IDs of record, disclosure and opening differ")
+    if record.get("work_id") != res.work_id:
+        res.problems.append("work IDs of record and disclosure differ")
     if record.get("serial") != res.serial:
         res.problems.append("the disclosed serial is not the record's")
-    if commitment_of(opening) != record.get("key_commitment", {}).get("value"):
-        res.problems.append("the commitment opening does not match the record's key commitment")
-    if opening.get("detection_seed_sha256") != sha256_hex(seed):
-        res.problems.append("the detection seed is not the one committed to")
-    if opening.get("payload_tag") != res.payload_tag:
-        res.problems.append("the payload tag is not the one committed to")
+    if commitment != record.get("key_commitment", {}).get("value"):
+        res.problems.append("the disclosure names another key commitment than the record")
+    if res.keys_included:
+        if opening.get("work_id") != res.work_id:
+            res.problems.append("the commitment opening is for another work")
+        if commitment_of(opening) != commitment:
+            res.problems.append("the commitment opening does not match the record's key "
+                                "commitment")
+        # Formats 1 and 2 commit to the detection seed; a format with other seeds commits
+        # to them under its own names (seed name + "_seed_sha256").
+        for name, seed in res.seeds.items():
+            if opening.get(f"{name}_seed_sha256") != sha256_hex(seed):
+                res.problems.append(f"the {name} seed is not the one committed to")
+        if opening.get("payload_tag") != res.payload_tag:
+            res.problems.append("the payload tag is not the one committed to")
     for st in doc.get("timestamps", []):
         label = st.get("token_id", "token")
         try:
             token = _inside(folder, st["token_file"]).read_bytes()
-            certs = timestamp.load_certificates(_inside(folder, st["tsa_cert_file"]).read_bytes())
+            certs = tsa_roots if tsa_roots is not None else \
+                timestamp.load_certificates(_inside(folder, st["tsa_cert_file"]).read_bytes())
             root = bytes.fromhex(st["merkle_root"])
             info = timestamp.check_token(token, digest=root, nonce=int(st["nonce"]), trusted=certs)
             path = [bytes.fromhex(p) for p in st["audit_path"]]

@@ -771,10 +771,11 @@ class Profile:
         from claimkit.evidence.checks import audit_profile
         return audit_profile(self)
 
-    def disclose(self, work_id: str, out: Path) -> Path:
-        """Write the key disclosure for one work (see :mod:`claimkit.evidence.disclose`)."""
+    def disclose(self, work_id: str, out: Path, *, keys: bool = True) -> Path:
+        """Write the disclosure for one work, with key material or without
+        (see :mod:`claimkit.evidence.disclose`)."""
         from claimkit.evidence.disclose import write_disclosure
-        return write_disclosure(self, work_id, out)
+        return write_disclosure(self, work_id, out, keys=keys)
 
     # ----------------------------------------------------------------- internals
     def _meta(self, key: str) -> str:

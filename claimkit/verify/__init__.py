@@ -1,6 +1,7 @@
 """Verification of a hand-over bundle: the layer above the case and the dossier.
 
 - :mod:`.policy` -- what the person verifying asks for and pins (:class:`Policy`);
+- :mod:`.trust` -- the pins applied: expected owner key, trusted timestamp authorities;
 - :mod:`.run` -- :func:`verify_bundle`, the order of the checks;
 - :mod:`.unpack` -- reading a zip or folder without escaping it;
 - :mod:`.checks` -- manifest, key disclosures, custody log, exhibits, paths;

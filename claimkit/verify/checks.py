@@ -10,14 +10,24 @@ import json
 from pathlib import Path
 
 from claimkit.case import layout
-from claimkit.case.layout import CUSTODY_COPY, DISCLOSURES, MANIFEST, MANIFEST_SIG, PUBLIC_KEY
+from claimkit.case.layout import (
+    CUSTODY_COPY,
+    CUSTODY_COPY_V1,
+    DISCLOSURES,
+    MANIFEST,
+    MANIFEST_SIG,
+    PUBLIC_KEY,
+)
 from claimkit.errors import InputError
 from claimkit.evidence import signing
 from claimkit.evidence.custodylog import verify_log
 from claimkit.evidence.disclose import check_disclosure
+from claimkit.evidence.excerpt import verify_excerpt
 from claimkit.evidence.storage import sha256_file
 from claimkit.mark import payload
+from claimkit.verify.policy import Policy
 from claimkit.verify.report import VerifyReport
+from claimkit.verify.trust import check_tsa
 
 __all__ = [
     "check_custody",
@@ -102,47 +112,106 @@ def check_manifest(root: Path, files: list[str], rep: VerifyReport):
             bad.append(f"{rel}: listed but missing")
         elif sha256_file(p) != f["sha256"]:
             bad.append(f"{rel}: SHA-256 differs from the manifest (file altered)")
-    extra = sorted(set(files) - set(listed) - {MANIFEST, MANIFEST_SIG})
+    # A case folder still holds the masters its bundle withholds: named in the manifest by
+    # hash, they are left alone when the bytes are the ones named.
+    withheld = {w.get("path"): w.get("sha256") for w in manifest.get("withheld", [])
+                if isinstance(w, dict)}
+    extra = sorted(rel for rel in set(files) - set(listed) - {MANIFEST, MANIFEST_SIG}
+                   if not (rel in withheld and sha256_file(root / rel) == withheld[rel]))
     bad += [f"{rel}: in the bundle but not in the manifest" for rel in extra]
     rep.add("file hashes", not bad,
             "; ".join(bad) if bad else f"{len(listed)} files, every SHA-256 matches")
     return manifest, pub
 
 
-def check_disclosures(root: Path, fp: str, rep: VerifyReport) -> dict:
-    """Check each disclosure; returns work_id -> (seed, payload bits, check)."""
-    out = {}
+def _keys_of(chk) -> tuple:
+    bits = payload.pack(chk.owner_tag, chk.serial, chk.payload_tag)
+    return (chk.detection_seed, bits, chk)
+
+
+def check_disclosures(root: Path, fp: str, rep: VerifyReport,
+                      policy: Policy | None = None) -> dict:
+    """Each work's evidence in the bundle, and the key disclosures wherever they came from.
+
+    Returns work_id -> (seed, payload bits, check) for the works whose key material
+    verified (from the bundle, when the owner disclosed it there, or from
+    ``policy.disclosure``).
+    """
+    policy = policy or Policy()
+    roots = list(policy.tsa_roots) if policy.tsa_roots is not None else None
+    out: dict = {}
+    records: dict[str, bytes] = {}
+    tsas: set[str] = set()
     folder = root / DISCLOSURES
-    if not folder.is_dir():
-        rep.add("key disclosures", False, "no key disclosure in the bundle; nothing can be re-run")
-        return out
-    for d in sorted(folder.iterdir()):
+    for d in sorted(folder.iterdir()) if folder.is_dir() else []:
         try:
-            chk = check_disclosure(d)
+            chk = check_disclosure(d, tsa_roots=roots)
+        except InputError as exc:
+            rep.add(f"work {d.name}", False, exc.message)
+            continue
+        probs = list(chk.problems)
+        if chk.public_key_sha256 != fp:
+            probs.append("its public key is not the bundle's (key replaced)")
+        rep.add(f"work {d.name}", not probs, "; ".join(probs) if probs else
+                f"record signature{', key commitment' if chk.keys_included else ''} and "
+                f"{len(chk.timestamps)} timestamp token(s) verified"
+                + ("" if roots is not None else " (against the TSA certificate in the bundle)"))
+        tsas.update(t.get("tsa") or "?" for t in chk.timestamps)
+        records[chk.work_id or d.name] = (d / "work-record.json").read_bytes()
+        if not probs and chk.keys_included:
+            out[chk.work_id] = _keys_of(chk)
+    check_tsa(tsas, policy, rep)
+    if policy.disclosure is not None:
+        _check_delivered(Path(policy.disclosure), fp, records, roots, out, rep)
+    return out
+
+
+def _check_delivered(path: Path, fp: str, records: dict, roots, out: dict,
+                     rep: VerifyReport) -> None:
+    """A disclosure delivered apart from the bundle: one folder, or a folder of them."""
+    if not path.is_dir():
+        raise InputError("not a disclosure folder", path=path)
+    folders = [path] if (path / "disclosure.json").is_file() else \
+        sorted(d for d in path.iterdir() if d.is_dir() and (d / "disclosure.json").is_file())
+    if not folders:
+        raise InputError("holds no disclosure.json", path=path)
+    for d in folders:
+        try:
+            chk = check_disclosure(d, tsa_roots=roots)
         except InputError as exc:
             rep.add(f"disclosure {d.name}", False, exc.message)
             continue
         probs = list(chk.problems)
         if chk.public_key_sha256 != fp:
-            probs.append("its public key is not the bundle's (key replaced)")
-        rep.add(f"disclosure {d.name}", not probs,
-                "; ".join(probs) if probs else
-                f"record and disclosure signatures, key commitment and "
-                f"{len(chk.timestamps)} timestamp token(s) verified")
+            probs.append("signed by another key than the bundle's")
+        if not chk.keys_included:
+            probs.append("holds no key material")
+        if chk.work_id not in records:
+            probs.append(f"its work {chk.work_id} is not in the bundle")
+        elif (d / "work-record.json").read_bytes() != records[chk.work_id]:
+            probs.append("its work record differs from the bundle's")
+        rep.add(f"disclosure {d.name}", not probs, "; ".join(probs) if probs else
+                f"delivered separately; key material for {chk.work_id} ({chk.mark_format}) "
+                "matches the record's key commitment")
         if not probs:
-            bits = payload.pack(chk.owner_tag, chk.serial, chk.payload_tag)
-            out[chk.work_id] = (chk.detection_seed, bits, chk)
-    return out
+            out[chk.work_id] = _keys_of(chk)
 
 
 def check_custody(root: Path, pub, exhibits: list[dict], findings: dict,
                   rep: VerifyReport) -> None:
-    """The custody-log copy, and that every intake and examination is logged with its hashes."""
-    log = verify_log(root / CUSTODY_COPY, pub)
-    rep.add("custody log", log.ok, "; ".join(str(p) for p in log.problems) if log.problems
-            else f"{log.lines} entries, signatures and hash chain intact")
+    """The custody excerpt, and that every intake and examination is logged with its hashes."""
+    if (root / CUSTODY_COPY_V1).is_file() and not (root / CUSTODY_COPY).is_file():
+        log = verify_log(root / CUSTODY_COPY_V1, pub)     # a claimkit 0.2 bundle: whole log
+        rep.add("custody log", log.ok, "; ".join(str(p) for p in log.problems)
+                if log.problems else f"{log.lines} entries, signatures and hash chain intact")
+    else:
+        log = verify_excerpt(root / CUSTODY_COPY, pub)
+        rep.add("custody log", log.ok, "; ".join(str(p) for p in log.problems)
+                if log.problems else
+                f"excerpt of {log.lines} entries: {len(log.entries)} of this case and its works "
+                "in full and signed, the others by hash; the chain recomputes")
     intake = {}
-    examined = {}
+    examined: dict[str, set] = {}     # every finding logged for an exhibit (re-examinations)
     case_id = None
     try:
         case_id = json.loads((root / layout.CASE_FILE).read_bytes()).get("case_id")
@@ -155,7 +224,7 @@ def check_custody(root: Path, pub, exhibits: list[dict], findings: dict,
         if e["action"] == "disputed file taken in":
             intake[d.get("exhibit_id")] = e["items"]
         elif e["action"] == "exhibit examined":
-            examined[d.get("exhibit_id")] = e["items"]
+            examined.setdefault(d.get("exhibit_id"), set()).add(e["items"].get("finding"))
     probs = []
     for ex in exhibits:
         i = ex["exhibit_id"]
@@ -166,7 +235,7 @@ def check_custody(root: Path, pub, exhibits: list[dict], findings: dict,
             probs.append(f"{i}: the intake record differs from the one logged")
         if i in findings:
             fpath = root / layout.finding_file(i)
-            if examined.get(i, {}).get("finding") != sha256_file(fpath):
+            if sha256_file(fpath) not in examined.get(i, set()):
                 probs.append(f"{i}: the stored finding is not the one logged at examination")
     present = {ex["exhibit_id"] for ex in exhibits}
     for i in sorted(set(intake) - present):

@@ -7,8 +7,9 @@ and record lengths checked (:mod:`claimkit.capture.warc`). Each WARC file is
 checked against the SHA-256 its capture or intake record gives; each
 snapshot against its ``resource`` record; each RFC 3161 token against the
 WARC file's digest and the nonce of the stored request
-(:func:`claimkit.evidence.timestamp.check_token`). The TSA certificates are
-those carried in the bundle, so the detail says the anchor is not pinned.
+(:func:`claimkit.evidence.timestamp.check_token`), against the roots the user
+pinned with ``--tsa-roots``; without them, against the TSA certificates the
+bundle carries, and the check is reported ``unpinned``.
 """
 
 from __future__ import annotations
@@ -33,8 +34,11 @@ def _sha(path: Path) -> str:
     return sha256_file(path)
 
 
-def check_collection(root: str | Path, exhibits: list[dict], rep) -> None:
+def check_collection(root: str | Path, exhibits: list[dict], rep, *,
+                     tsa_roots: tuple | None = None) -> None:
     """Add every collection check to ``rep`` (none when nothing was captured)."""
+    from claimkit.verify.report import UNPINNED
+
     root = Path(root)
     out: list[tuple[str, bool, str]] = []
     warc_ok: dict[str, bool] = {}
@@ -62,7 +66,7 @@ def check_collection(root: str | Path, exhibits: list[dict], rep) -> None:
         p = warc_file(w.get("file"), w.get("sha256"), f"capture {cid}")
         stamp = cap.get("timestamp")
         if stamp:
-            out.append(_check_token(root, cid, stamp, w.get("sha256")))
+            out.append(_check_token(root, cid, stamp, w.get("sha256"), tsa_roots))
         if p is None:
             continue
         for page in cap.get("pages") or []:
@@ -71,7 +75,9 @@ def check_collection(root: str | Path, exhibits: list[dict], rep) -> None:
                 out.append(_check_snapshot(root, p, snap))
     _exhibits(root, exhibits, out, warc_file)
     for name, ok, detail in out:
-        rep.add(name, ok, detail)
+        # A token that holds only against the certificate the bundle brings is unpinned.
+        unpinned = ok and tsa_roots is None and name.endswith(" timestamp")
+        rep.add(name, ok, detail, status=UNPINNED if unpinned else None)
 
 
 def _exhibits(root: Path, exhibits: list[dict], out: list, warc_file) -> None:
@@ -119,7 +125,8 @@ def _check_snapshot(root: Path, warc: Path, snap: dict) -> tuple[str, bool, str]
                       "differs from its resource record in the WARC, or is missing")
 
 
-def _check_token(root: Path, cid: str, stamp: dict, warc_sha: object) -> tuple[str, bool, str]:
+def _check_token(root: Path, cid: str, stamp: dict, warc_sha: object,
+                 tsa_roots: tuple | None = None) -> tuple[str, bool, str]:
     from claimkit.evidence import timestamp
 
     name = f"capture {cid} timestamp"
@@ -132,8 +139,8 @@ def _check_token(root: Path, cid: str, stamp: dict, warc_sha: object) -> tuple[s
         digest, _alg, nonce = timestamp.parse_request(tsq)
         if not isinstance(warc_sha, str) or digest != bytes.fromhex(warc_sha):
             return name, False, "the stored request is for another digest than the WARC's"
-        info = timestamp.check_token(token, digest=digest, nonce=nonce,
-                                     trusted=timestamp.load_certificates(pem))
+        trusted = list(tsa_roots) if tsa_roots is not None else timestamp.load_certificates(pem)
+        info = timestamp.check_token(token, digest=digest, nonce=nonce, trusted=trusted)
     except (CheckFailed, InputError) as exc:
         return name, False, exc.message
     except ValueError as exc:
@@ -142,5 +149,6 @@ def _check_token(root: Path, cid: str, stamp: dict, warc_sha: object) -> tuple[s
         return name, False, (f"the token says {info.gen_time_iso}, the capture record "
                              f"{stamp.get('gen_time')}")
     return name, True, (f"RFC 3161 token over the WARC's SHA-256, made {info.gen_time_iso} by "
-                        f"{info.tsa_name or info.signer_subject}; trust anchor: the TSA "
-                        "certificate carried in the bundle (not pinned by you)")
+                        f"{info.tsa_name or info.signer_subject}; trust anchor: "
+                        + ("a root you pinned" if tsa_roots is not None else
+                           "the TSA certificate carried in the bundle (not pinned by you)"))

@@ -1,15 +1,36 @@
-"""The dossier rebuilt from the bundle: data byte for byte, figures pixel for pixel, HTML, PDF."""
+"""The dossier rebuilt from the bundle: data byte for byte, figures, HTML, PDF.
+
+The figures and the PDF are re-made by this machine's software. When it is
+the software that made the bundle (the versions ``handover/software.json``
+records: Python, NumPy, SciPy, Pillow and its libjpeg, scikit-image,
+reportlab), they must be equal to the byte or pixel. When a version differs,
+they are compared by their data, with these tolerances:
+
+- a figure: same size and mode, no pixel more than :data:`FIGURE_MAX_LEVELS`
+  (2 of 255) apart and a mean absolute difference of at most
+  :data:`FIGURE_MEAN_LEVELS` (0.5 of 255): another NumPy/SciPy/Pillow may round
+  an interpolated or rescaled value to the next level, never redraw a plot;
+- the PDF: the words of its text, as poppler's ``pdftotext`` extracts them from
+  the signed PDF and from the re-render, must be the same; numbers within one
+  unit of their last printed digit (the rule :func:`.compare.differences`
+  applies to stored numbers), since another reportlab may lay out a line
+  differently but must print the same data.
+
+The dossier data (``report/dossier.json``) is compared byte for byte in every
+case: it is made by claimkit alone, from the bundle's stored findings.
+"""
 
 from __future__ import annotations
 
 import io
 import json
+import re
 from pathlib import Path
 
 import numpy as np
 from PIL import Image
 
-from claimkit.case.layout import DATA, HTML, PDF
+from claimkit.case.layout import DATA, HTML, PDF, SOFTWARE
 from claimkit.dossier.build import draw_figures
 from claimkit.dossier.data import build_data
 from claimkit.dossier.pdfsign import check_pdf_signature
@@ -19,7 +40,82 @@ from claimkit.evidence.canonical import canonical_json, canonicalize
 from claimkit.verify.compare import differences
 from claimkit.verify.report import VerifyReport
 
-__all__ = ["check_dossier"]
+__all__ = ["FIGURE_MAX_LEVELS", "FIGURE_MEAN_LEVELS", "check_dossier", "check_software",
+           "figures_agree", "pdf_texts_agree"]
+
+FIGURE_MAX_LEVELS = 2
+FIGURE_MEAN_LEVELS = 0.5
+#: Components whose versions change how a figure or the PDF is drawn.
+_DRAWING = ("python", "numpy", "scipy", "pillow", "libjpeg", "scikit-image", "reportlab")
+
+
+def check_software(root: Path, rep: VerifyReport) -> bool:
+    """Report the versions on both sides; True when a drawing component differs."""
+    from claimkit.software import differences as version_differences
+    from claimkit.software import versions
+
+    here = versions()
+    try:
+        made = json.loads((root / SOFTWARE).read_bytes())
+    except (OSError, ValueError):
+        rep.add("software", True, f"the bundle does not name its software (made before "
+                f"claimkit 0.3); re-run with claimkit {here['claimkit']}")
+        return False
+    diffs = version_differences(made, here)
+    drawing = [d for d in diffs if d.split(":")[0] in _DRAWING]
+    mine = ", ".join(f"{k} {here[k]}" for k in sorted(here) if k != "type")
+    rep.add("software", True, ("same versions as the bundle's: " + mine) if not diffs else
+            "versions differ from the bundle's (" + "; ".join(diffs) + ")"
+            + ("; figures and PDF compared by their data, within the documented tolerances"
+               if drawing else ""))
+    return bool(drawing)
+
+
+def figures_agree(a: np.ndarray, b: np.ndarray, *, exact: bool) -> bool:
+    """Two renderings of one figure: equal, or (``exact=False``) within the tolerances."""
+    if a.shape != b.shape:
+        return False
+    if exact:
+        return bool(np.array_equal(a, b))
+    d = np.abs(a.astype(np.int16) - b.astype(np.int16))
+    return bool(d.max(initial=0) <= FIGURE_MAX_LEVELS and d.mean() <= FIGURE_MEAN_LEVELS)
+
+
+def _pdf_words(pdf: bytes) -> list[str] | None:
+    """The words of a PDF's text by poppler's pdftotext; None when poppler is missing."""
+    import shutil
+    import subprocess
+
+    if shutil.which("pdftotext") is None:
+        return None
+    proc = subprocess.run(["pdftotext", "-q", "-", "-"], input=pdf, capture_output=True,
+                          check=False)
+    return proc.stdout.decode("utf-8", "replace").split()
+
+
+_NUMBER = re.compile(r"([-+]?\d+)(?:\.(\d+))?")
+
+
+def _same_word(a: str, b: str) -> bool:
+    if a == b:
+        return True
+    ma, mb = _NUMBER.fullmatch(a), _NUMBER.fullmatch(b)
+    if not ma or not mb:
+        return False
+    digits = max(len(ma.group(2) or ""), len(mb.group(2) or ""))
+    return abs(float(a) - float(b)) <= 1.01 * 10.0 ** -digits
+
+
+def pdf_texts_agree(signed: bytes, again: bytes) -> tuple[bool, str]:
+    """The PDFs' texts word for word, numbers within one unit of their last printed digit."""
+    a, b = _pdf_words(signed), _pdf_words(again)
+    if a is None or b is None:
+        return False, "pdftotext (poppler-utils) is not installed, so the text cannot be compared"
+    if len(a) != len(b):
+        return False, f"{len(a)} words signed, {len(b)} re-rendered"
+    bad = [f"word {i}: signed {x!r}, re-rendered {y!r}" for i, (x, y) in enumerate(zip(a, b))
+           if not _same_word(x, y)]
+    return not bad, "; ".join(bad[:4])
 
 
 def check_dossier(root: Path, pub, rep: VerifyReport, *, full: bool = True) -> None:
@@ -56,6 +152,7 @@ def check_dossier(root: Path, pub, rep: VerifyReport, *, full: bool = True) -> N
                     "from the bundle: " + "; ".join(rest[:6] or ["(byte differences)"]))
     if not full:
         return
+    lenient = check_software(root, rep)
     bad = []
     try:
         figs = draw_figures(root, data)
@@ -68,10 +165,13 @@ def check_dossier(root: Path, pub, rep: VerifyReport, *, full: bool = True) -> N
             bad.append(f"{rel}: missing")
             continue
         with Image.open(io.BytesIO(png)) as a, Image.open(p) as b:
-            if a.size != b.size or not np.array_equal(np.asarray(a), np.asarray(b.convert(a.mode))):
+            if a.size != b.size or not figures_agree(np.asarray(a), np.asarray(b.convert(a.mode)),
+                                                     exact=not lenient):
                 bad.append(f"{rel}: does not show the stored data")
     rep.add("figures", not bad, "; ".join(bad) if bad else
-            f"{len(figs)} figures redrawn from the stored data, pixel for pixel equal")
+            f"{len(figs)} figures redrawn from the stored data, "
+            + ("within the tolerances for other software versions" if lenient
+               else "pixel for pixel equal"))
     try:
         html = render_html(data, root).encode("utf-8")
         same = (root / HTML).read_bytes() == html
@@ -90,6 +190,12 @@ def check_dossier(root: Path, pub, rep: VerifyReport, *, full: bool = True) -> N
             "whole file covered")
     unsigned = render_pdf(data, root, root / PDF)
     same = pdf.startswith(unsigned)
-    rep.add("PDF content", same, "the signed PDF is exactly the dossier the data renders to"
-            if same else "the signed PDF's content is not what the data renders to "
-                         "(edited, or rendered with another version of reportlab)")
+    if same or not lenient:
+        rep.add("PDF content", same, "the signed PDF is exactly the dossier the data renders "
+                "to" if same else "the signed PDF's content is not what the data renders to "
+                "(edited)")
+        return
+    agree, why = pdf_texts_agree(pdf, unsigned)
+    rep.add("PDF content", agree, "rendered by other software versions: the signed PDF's text "
+            "says what the data renders to, word for word, numbers within their last digit"
+            if agree else f"the signed PDF's text is not what the data renders to: {why}")

@@ -17,7 +17,7 @@ from claimkit.imageio import LUMA_FROM_RGB, read_picture, to_luma
 from claimkit.mark import detect, payload
 from claimkit.stress import run_battery
 from claimkit.verify.compare import differences
-from claimkit.verify.report import VerifyReport
+from claimkit.verify.report import SKIPPED, VerifyReport
 from claimkit.workflow import examine_picture, expected_payload_check
 
 __all__ = ["rerun_examination", "rerun_robustness"]
@@ -68,8 +68,13 @@ def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
                 diffs.append(f"arrays.{name}: differs from the re-run")
         stored_arrays = {k: arr[k] for k in arr.files}
     al = finding.get("alignment")
-    if al and al.get("aligned"):
-        ref = root / finding["reference"]["file"]
+    ref = root / (finding.get("reference") or {}).get("file", "")
+    if al and al.get("aligned") and not ref.is_file() and \
+            finding["reference"].get("kind") != "marked":
+        rep.add(f"{i} alignment", True, "not re-run: the file it aligns to is the unmarked "
+                "master, withheld from the bundle (report --include-original adds it)",
+                status=SKIPPED)
+    elif al and al.get("aligned"):
         rpic = read_picture(ref)
         again = align(to_luma(rpic.pixels), to_luma(pic.pixels), f.geometry or None)
         diffs += differences(al, again.numbers, "alignment")

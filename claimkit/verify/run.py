@@ -10,11 +10,16 @@ and the verdict is "all passed" or not. Checks, in order:
 2. the manifest: its Ed25519 signature by the key in the bundle, every file
    listed present with its SHA-256, and no file unlisted;
 3. the key: the manifest, the case, the work records and the disclosures all
-   name the same public key;
-4. each key disclosure: record and disclosure signatures, the key
-   commitment, each timestamp token (RFC 3161) and its Merkle inclusion;
-5. the custody log copy: every signature and the hash chain, and that every
-   exhibit's intake and examination are logged with the right hashes;
+   name the same public key, and it is the key the user pinned
+   (``--expect-key``; without a pin the signer is reported ``unpinned``);
+4. each work's evidence: record signature, each timestamp token (RFC 3161,
+   against the roots the user pinned with ``--tsa-roots``, else ``unpinned``)
+   and its Merkle inclusion; the key disclosure (in the bundle if the owner
+   chose so, else delivered apart: ``--disclosure``) against the key
+   commitment;
+5. the custody excerpt: every full entry's signature and the hash chain
+   through every line, and that every exhibit's intake and examination are
+   logged with the right hashes;
 6. each exhibit against its intake record; each finding against its exhibit;
 7. each exhibit taken from the web against the payload of its WARC record,
    each WARC file against its recorded SHA-256 and its RFC 3161 token
@@ -48,14 +53,17 @@ from claimkit.verify.checks import (
 from claimkit.verify.collection import check_collection
 from claimkit.verify.dossier import check_dossier
 from claimkit.verify.policy import Policy
-from claimkit.verify.report import VerifyReport
+from claimkit.verify.report import NOT_DONE, SKIPPED, VerifyReport
 from claimkit.verify.rerun import rerun_examination, rerun_robustness
+from claimkit.verify.trust import check_signer
 from claimkit.verify.unpack import folder_files, safe_extract
 
 __all__ = ["verify_bundle"]
 
 
 def verify_bundle(path: str | os.PathLike, *, rerun: bool = True, robustness: bool = True,
+                  expect_keys: tuple[str, ...] = (), tsa_roots=None,
+                  disclosure: str | os.PathLike | None = None,
                   policy: Policy | None = None) -> VerifyReport:
     """Verify a bundle zip or an unpacked bundle/case folder; never raises for a failed check.
 
@@ -66,17 +74,19 @@ def verify_bundle(path: str | os.PathLike, *, rerun: bool = True, robustness: bo
     rerun : bool
         Re-run each examination and redraw the dossier (the slow part). Without
         it only hashes, signatures, tokens and the custody chain are checked,
-        and the report says so with a failed "re-run" check, so that a quick
-        check can never pass for a full one.
+        and the report says so with a "skipped" re-run check.
     robustness : bool
         Also re-run the robustness battery (with ``rerun``); skipping it is
-        reported as a failed check too.
+        reported as a failed check.
+    expect_keys, tsa_roots, disclosure
+        The user's pins and a separately delivered disclosure: see :class:`Policy`.
     policy : Policy, optional
-        The whole policy at once; when given, ``rerun`` and ``robustness`` are
-        taken from it.
+        The whole policy at once; when given, the other options are taken from it.
     """
     if policy is None:
-        policy = Policy(rerun=rerun, robustness=robustness)
+        policy = Policy(rerun=rerun, robustness=robustness, expect_keys=tuple(expect_keys),
+                        tsa_roots=None if tsa_roots is None else tuple(tsa_roots),
+                        disclosure=None if disclosure is None else Path(disclosure))
     path = Path(path)
     rep = VerifyReport(str(path))
     if not path.exists():
@@ -111,6 +121,7 @@ def _verify_unpacked(root: Path, files: list[str], policy: Policy, rep: VerifyRe
     if pub is None:
         return
     fp = signing.fingerprint(signing.raw_public(pub))
+    check_signer(fp, policy, rep)
     try:
         case, exhibits, findings = case_files(root)
     except (InputError, KeyError, ValueError) as exc:
@@ -125,26 +136,33 @@ def _verify_unpacked(root: Path, files: list[str], policy: Policy, rep: VerifyRe
     rep.add("case key", owner_fp == fp, "case.json names the bundle's key" if owner_fp == fp
             else "case.json names another key than the bundle's (key replaced)")
     listed = {f["path"] for f in (manifest or {}).get("files", [])}
-    keys = check_disclosures(root, fp, rep)
+    keys = check_disclosures(root, fp, rep, policy)
+    rerun, robustness = policy.rerun, policy.robustness
+    if rerun and not keys:
+        rep.add("re-run", False, "not done: no key disclosure (the bundle holds no key "
+                "material; give the one the owner delivered with --disclosure DIR, or ask "
+                "for --no-rerun to check integrity only)", status=NOT_DONE)
+        rerun = robustness = False
     check_custody(root, pub, exhibits, findings, rep)
     for ex in exhibits:
         i = ex["exhibit_id"]
         f = findings.get(i)
-        if not check_exhibit(root, ex, f, listed, rep) or not policy.rerun:
+        if not check_exhibit(root, ex, f, listed, rep) or not rerun:
             continue
         try:
             rerun_examination(root, ex, f, keys, rep)
         except (InputError, OSError, KeyError, ValueError) as exc:
             rep.add(f"{i} re-run", False, f"cannot be re-run ({exc})")
-    check_collection(root, exhibits, rep)
-    if policy.rerun and policy.robustness:
+    check_collection(root, exhibits, rep, tsa_roots=policy.tsa_roots)
+    if rerun and robustness:
         try:
             rerun_robustness(root, findings, keys, rep)
         except (InputError, OSError, KeyError, ValueError) as exc:
             rep.add("robustness", False, f"cannot be re-run ({exc})")
-    elif policy.rerun:
+    elif rerun:
         rep.add("robustness re-run", False, "skipped on request")
+    # Figures, HTML and PDF need no key: they are redrawn whenever a re-run was asked for.
     check_dossier(root, pub, rep, full=policy.rerun)
     if not policy.rerun:
-        rep.add("re-run", False, "skipped on request: the examinations, figures and PDF "
-                                 "were not re-derived")
+        rep.add("re-run", True, "skipped on request (--no-rerun): the examinations, figures "
+                "and PDF were not re-derived", status=SKIPPED)
