@@ -46,9 +46,10 @@ import os
 import shutil
 import signal
 import subprocess
-import tempfile
 import sys
+import tempfile
 import threading
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 
@@ -141,6 +142,7 @@ class _ExifTool:
     def __init__(self) -> None:
         self._lock = threading.Lock()
         self._proc: subprocess.Popen | None = None
+        self._spawner: ThreadPoolExecutor | None = None
         self._pid = 0
         self._count = 0
         self.version = 0.0
@@ -166,8 +168,16 @@ class _ExifTool:
         # In -stay_open mode exiftool keeps polling its argument file after end of
         # file, so it outlives a process that dies without closing it (a pool worker
         # ends with os._exit, which skips atexit). On Linux the kernel ends it with us.
-        proc = subprocess.Popen(cmd, stdin=subprocess.PIPE, stdout=subprocess.PIPE,
-                                stderr=subprocess.PIPE, preexec_fn=_die_with_parent)
+        # Linux sends the parent-death signal when the *thread* that started the child
+        # ends (prctl(2), PR_SET_PDEATHSIG), and the first exiftool command often comes
+        # from a short-lived thread (mark writes the file on a helper thread): exiftool
+        # is therefore started from one thread that lasts as long as the process.
+        if self._spawner is None or self._pid != os.getpid():
+            self._spawner = ThreadPoolExecutor(max_workers=1,
+                                               thread_name_prefix="claimkit-exiftool")
+        proc = self._spawner.submit(
+            subprocess.Popen, cmd, stdin=subprocess.PIPE, stdout=subprocess.PIPE,
+            stderr=subprocess.PIPE, preexec_fn=_die_with_parent).result()
         self._pid = os.getpid()
         return proc
 

@@ -353,6 +353,6 @@ def test_a_finding_is_re_run_by_the_examination_method_it_records(built_case, tm
             f["examined"]["examination_method"] = label
         p.write_bytes(canonical_json(f) + b"\n")
         _resign(work, built_case.home)
-        rep = verify_bundle(work, robustness=False)
+        rep = verify_bundle(work, robustness=False, disclosure=built_case.disclosure)
         rerun = [c for c in rep.failures if c["check"] == "exhibit-1 re-run"]
         assert rerun and "score_pilot: stored" in rerun[0]["detail"], _failed(rep)
