@@ -34,8 +34,37 @@ OTHER_FILE = "saltmarsh-poster-7731-reprint.jpg"
 OTHER_WORK_NAME = "lantern-festival-unreleased-0042.tif"
 
 
+def _expanded(name: str, data: bytes) -> bytes:
+    """A file's bytes with what it compresses inflated too (PDF streams, npz/zip members,
+    gzip), so that a search cannot miss text stored compressed."""
+    import base64
+    import gzip
+    import io
+    import re
+    import zlib
+
+    parts = [data]
+    if name.endswith(".pdf"):
+        # reportlab writes streams Flate-compressed, most also ASCII85-armoured (PDF 32000-1
+        # 7.4.3 and 7.4.4); Python's own codecs undo both.
+        for m in re.finditer(rb"stream\r?\n(.*?)endstream", data, re.DOTALL):
+            body = m.group(1).strip()
+            try:
+                if body.endswith(b"~>"):
+                    body = base64.a85decode(body[:-2], adobe=False)
+                parts.append(zlib.decompress(body))
+            except (ValueError, zlib.error):
+                pass
+    elif name.endswith((".npz", ".zip")):
+        with zipfile.ZipFile(io.BytesIO(data)) as zf:
+            parts += [zf.read(n) + n.encode() for n in zf.namelist()]
+    elif name.endswith(".gz"):
+        parts.append(gzip.decompress(data))
+    return b"\n".join(parts)
+
+
 def _texts_of(folder: Path) -> dict[str, bytes]:
-    return {p.relative_to(folder).as_posix(): p.read_bytes()
+    return {p.relative_to(folder).as_posix(): _expanded(p.name, p.read_bytes())
             for p in sorted(folder.rglob("*")) if p.is_file()}
 
 
@@ -111,7 +140,10 @@ def test_no_key_material_no_absolute_path_no_master(two_cases, built_case):
     assert manifest["key_material"] == "withheld"
     # The unmarked master (the studio original) is not among the bundle's files.
     master = (built_case.studio / "morning-cup.png").read_bytes()
-    assert all(data != master for data in files.values())
+    assert all(master not in data for data in files.values())
+    pdf = two_cases["unpacked"] / "report" / "dossier.pdf"
+    assert len(files["report/dossier.pdf"]) > 2 * pdf.stat().st_size, \
+        "the PDF's streams were inflated for the search"
 
 
 def test_custody_excerpt_holds_this_case_and_hashes_the_rest(two_cases, built_case):

@@ -53,6 +53,7 @@ from claimkit.evidence.stamping import inclusion_proof
 from claimkit.evidence.storage import atomic_write, fsync_dir, sha256_hex
 
 __all__ = [
+    "COMMITMENT_CHECKS",
     "KEY_MATERIAL",
     "WITHHELD",
     "DisclosedKeys",
@@ -109,11 +110,59 @@ def _owner_level(profile, work) -> DisclosedKeys:
         finds_all_owner_works=True)
 
 
+def _one_family(profile, work) -> DisclosedKeys:
+    """Format 3: the owner's sync seed (geometry only) and the seed of this work's family.
+
+    No owner-level detection seed: its holder detects the works of this family and
+    none of the owner's other families (nor any format-1/2 work)."""
+    k = profile.format3_disclosure_keys(work.serial)
+    family = k["family"]
+    return DisclosedKeys(
+        mark_format=_format_of(work),
+        seeds={"sync": k["sync"], "family": k["families"][family]},
+        derivation={"sync": "HKDF-SHA256(marking secret, salt=none, "
+                            "info='claimkit/mark3/sync/v1')",
+                    "family": "HKDF-SHA256(marking secret, salt=none, info="
+                              f"'claimkit/mark3/family/v1/' || {family} as 2 bytes)",
+                    "family_index": str(family)},
+        scope=f"this disclosure finds the owner's format-3 works of family {family} (about one "
+              "in 16 of them, which ones only the owner can tell), no work of another family "
+              "and no format-1/2 work; the sync seed reveals only the geometry grid",
+        finds_all_owner_works=False)
+
+
 #: mark format name -> provider of the key material its disclosure carries. A format
 #: with per-family keys adds itself here (the evidence layer owns the derivation).
 KEY_MATERIAL: dict[str, Callable[..., DisclosedKeys]] = {
     "claimkit-mark/1": _owner_level,
     "claimkit-mark/2": _owner_level,
+    "claimkit-mark/3": _one_family,
+}
+
+
+def _seed_hashes(opening: dict, keys: dict, seeds: dict[str, bytes]) -> list[str]:
+    """Formats 1 and 2: the opening commits to SHA-256 of each seed, as NAME_seed_sha256."""
+    return [f"the {name} seed is not the one committed to" for name, seed in seeds.items()
+            if opening.get(f"{name}_seed_sha256") != sha256_hex(seed)]
+
+
+def _family_digest(opening: dict, keys: dict, seeds: dict[str, bytes]) -> list[str]:
+    """Format 3: the opening commits to SHA-256(sync || family as 2 bytes || family seed)."""
+    from claimkit.evidence.profile import format3_keys_digest
+
+    try:
+        family = int(keys["derivation"]["family_index"])
+        digest = format3_keys_digest({"sync": seeds["sync"], "family": family,
+                                      "families": {family: seeds["family"]}})
+    except (KeyError, ValueError, TypeError):
+        return ["the format-3 key material is incomplete"]
+    return [] if opening.get("format3_keys_sha256") == digest else \
+        ["the format-3 keys are not the ones committed to"]
+
+
+#: mark format name -> how a disclosure's seeds are checked against the record's commitment.
+COMMITMENT_CHECKS: dict[str, Callable[[dict, dict, dict], list[str]]] = {
+    "claimkit-mark/3": _family_digest,
 }
 
 
@@ -286,6 +335,7 @@ class DisclosureCheck:
     seeds: dict[str, bytes] = field(default_factory=dict)
     mark_format: str | None = None
     scope: str | None = None
+    format3: dict | None = None     # format 3: {"sync", "family", "families": {family: seed}}
     owner_tag: int | None = None
     serial: int | None = None
     payload_tag: int | None = None
@@ -357,6 +407,10 @@ def check_disclosure(folder: Path, *, tsa_roots: list | None = None) -> Disclosu
             opening = doc["commitment"]["opening"]
             res.payload_tag = doc["payload"]["payload_tag"]
             res.keys_included = True
+            if "sync" in res.seeds and "family" in res.seeds:
+                family = int(keys["derivation"]["family_index"])
+                res.format3 = {"sync": res.seeds["sync"], "family": family,
+                               "families": {family: res.seeds["family"]}}
     except (KeyError, ValueError, TypeError, AttributeError):
         res.problems.append("disclosure.json lacks its payload, commitment or key fields")
         return res
@@ -374,11 +428,9 @@ def check_disclosure(folder: Path, *, tsa_roots: list | None = None) -> Disclosu
         if commitment_of(opening) != commitment:
             res.problems.append("the commitment opening does not match the record's key "
                                 "commitment")
-        # Formats 1 and 2 commit to the detection seed; a format with other seeds commits
-        # to them under its own names (seed name + "_seed_sha256").
-        for name, seed in res.seeds.items():
-            if opening.get(f"{name}_seed_sha256") != sha256_hex(seed):
-                res.problems.append(f"the {name} seed is not the one committed to")
+        # Each format says how its seeds are committed to in the record.
+        check = COMMITMENT_CHECKS.get(res.mark_format or "", _seed_hashes)
+        res.problems += check(opening, keys, res.seeds)
         if opening.get("payload_tag") != res.payload_tag:
             res.problems.append("the payload tag is not the one committed to")
     for st in doc.get("timestamps", []):
