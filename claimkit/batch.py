@@ -424,12 +424,14 @@ class _MarkBatch:
             if result.get("kind") == "disk-full":
                 self.guard.request("the disk is full")
         self.handed_back += 1
-        row = {"original": str(job.src), "output": str(job.out), "sha256_original": job.sha256,
+        row = {"file": str(job.src), "output": str(job.out), "sha256_original": job.sha256,
                **result}
         if self.json_lines:
             from claimkit.cli.common import print_json
             self.progress.clear()
-            print_json(row)
+            # The error is an object in every command's JSON (examine's and scan's too).
+            print_json({**row, "error": {"message": row["error"], "exit_code": 2}}
+                       if isinstance(row.get("error"), str) else row)
             self.progress.draw(force=True)
         else:
             self.progress.write(_human_line(row))
@@ -468,10 +470,10 @@ def _place(staged: Path, out: Path, *, force: bool) -> None:
 def _human_line(row: dict) -> str:
     status = row["status"]
     if status == "marked":
-        return (f"marked    {row['original']} -> {row['output']}  {row['work_id']}  "
+        return (f"marked    {row['file']} -> {row['output']}  {row['work_id']}  "
                 f"PSNR {row.get('psnr_db', float('nan')):.1f} dB  SSIM {row.get('ssim', 0):.4f}")
     if status == "skipped":
-        return f"done      {row['original']}: {row['reason']} ({row['work_id']})"
+        return f"done      {row['file']}: {row['reason']} ({row['work_id']})"
     if status == "restored":
         return f"restored  {row['output']}: {row['reason']} ({row['work_id']})"
     return f"failed    {row['error']}"

@@ -29,7 +29,6 @@ from __future__ import annotations
 import collections
 import concurrent.futures as cf
 import contextlib
-import math
 import multiprocessing
 import os
 import signal
@@ -131,26 +130,32 @@ class StopGuard:
 # --------------------------------------------------------------------------- progress
 
 class Progress:
-    """A one-line progress bar with rate and time left, drawn on stderr when it is a terminal.
+    """A one-line progress bar on stderr, drawn by tqdm, only when stderr is a terminal.
 
-    Use :meth:`write` to print a result line without tearing the bar. The
-    bar is drawn only when ``enabled`` is not False *and* the stream is a
-    terminal: a log file or a pipe never gets carriage-return noise.
+    tqdm (a maintained library) measures the terminal's width on every redraw
+    (``dynamic_ncols``), so a narrow terminal shows one line that updates in
+    place rather than a fixed-width bar that wraps into many. Use
+    :meth:`write` to print a result line without tearing the bar. The bar is
+    drawn only when ``enabled`` is not False *and* the stream is a terminal:
+    a log file or a pipe never gets carriage-return noise.
     """
-
-    WIDTH = 24
 
     def __init__(self, total: int, *, enabled: bool | None = None, label: str = "",
                  stream=None):
+        from tqdm import tqdm
+
         self.stream = stream or sys.stderr
         tty = bool(getattr(self.stream, "isatty", lambda: False)())
         self.enabled = tty and enabled is not False
         self.total = max(0, int(total))
-        self.done = 0
-        self.label = label
         self.start = time.monotonic()
-        self._last = 0.0
-        self._shown = False
+        self._bar = tqdm(total=self.total, desc=label.strip() or None, unit="file",
+                         file=self.stream, disable=not self.enabled, dynamic_ncols=True,
+                         leave=False, mininterval=0.1, smoothing=0.1)
+
+    @property
+    def done(self) -> int:
+        return int(self._bar.n)
 
     def rate(self) -> float:
         """Files per second so far."""
@@ -158,55 +163,27 @@ class Progress:
         return self.done / elapsed if elapsed > 0 else 0.0
 
     def advance(self, n: int = 1) -> None:
-        self.done += n
-        self.draw()
-
-    def _line(self) -> str:
-        frac = self.done / self.total if self.total else 1.0
-        filled = round(frac * self.WIDTH)
-        bar = "#" * filled + "." * (self.WIDTH - filled)
-        rate = self.rate()
-        left = (self.total - self.done) / rate if rate > 0 else math.inf
-        eta = "--" if math.isinf(left) else _duration(left)
-        return (f"{self.label}[{bar}] {self.done}/{self.total}  "
-                f"{rate:.1f} files/s  {eta} left")
+        self._bar.update(n)
 
     def draw(self, *, force: bool = False) -> None:
-        if not self.enabled:
-            return
-        now = time.monotonic()
-        if not force and now - self._last < 0.1 and self.done < self.total:
-            return
-        self._last = now
-        self.stream.write("\r" + self._line() + "\x1b[K")
-        self.stream.flush()
-        self._shown = True
+        if self.enabled:
+            self._bar.refresh() if force else self._bar.update(0)
 
     def clear(self) -> None:
-        if self.enabled and self._shown:
-            self.stream.write("\r\x1b[K")
-            self.stream.flush()
-            self._shown = False
+        if self.enabled:
+            self._bar.clear()
 
     def write(self, line: str, stream=None) -> None:
         """Print ``line`` (to stdout by default) above the bar."""
-        self.clear()
         out = stream or sys.stdout
-        out.write(line + "\n")
+        if self.enabled:
+            self._bar.write(line, file=out)
+        else:
+            out.write(line + "\n")
         out.flush()
-        self.draw(force=True)
 
     def close(self) -> None:
-        self.clear()
-
-
-def _duration(seconds: float) -> str:
-    seconds = round(seconds)
-    if seconds < 60:
-        return f"{seconds} s"
-    if seconds < 3600:
-        return f"{seconds // 60} min {seconds % 60:02d} s"
-    return f"{seconds // 3600} h {seconds % 3600 // 60:02d} min"
+        self._bar.close()
 
 
 # --------------------------------------------------------------------------- engines

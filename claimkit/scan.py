@@ -316,13 +316,15 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
                         rep["exhibit_id"] = ex
                         s.added_to_case += 1
         if "status" not in rep:
-            rep["status"] = "claimed" if rep.get("detected") else "not found"
+            rep["status"] = "claimed" if rep.get("detected") else "not-found"
         if csv_out is not None:
             csv_out.add(rep)
         if json_lines:
             from claimkit.cli.common import print_json
             bar.clear()
-            print_json(rep)
+            # The error is an object in every command's JSON (examine's too).
+            print_json({**rep, "error": {"message": rep["error"], "exit_code": 2}}
+                       if isinstance(rep.get("error"), str) else rep)
             bar.draw(force=True)
         else:
             bar.write(_human_line(rep))

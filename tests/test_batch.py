@@ -149,10 +149,10 @@ def test_marks_a_tree_and_registers_every_file(profile, shoot, tmp_path, capsys)
     rows, err = _lines(capsys)
     assert code == 0, err
     originals = _originals(shoot)
-    assert [r["original"] for r in rows] == [str(p) for p in originals]   # input order
+    assert [r["file"] for r in rows] == [str(p) for p in originals]   # input order
     assert {r["status"] for r in rows} == {"marked"}
     for r in rows:
-        rel = Path(r["original"]).relative_to(shoot)
+        rel = Path(r["file"]).relative_to(shoot)
         assert Path(r["output"]) == out / rel                               # tree kept
         assert sha256_file(out / rel) == r["sha256_marked"]
         assert r["psnr_db"] >= 40
@@ -213,7 +213,8 @@ def test_bad_files_are_listed_and_the_rest_is_marked(profile, shoot, tmp_path, c
     code = batch.mark_many(profile, [shoot], out, workers=1, json_lines=True)
     rows, err = _lines(capsys)
     assert code == 1
-    failed = {Path(r["original"]).name: r["error"] for r in rows if r["status"] == "failed"}
+    failed = {Path(r["file"]).name: r["error"]["message"] for r in rows
+              if r["status"] == "failed"}
     assert set(failed) == {"truncated.jpg", "letter.jpg", "tiny.png"}
     assert "truncated" in failed["truncated.jpg"] or "damaged" in failed["truncated.jpg"]
     assert "not an image" in failed["letter.jpg"]
@@ -255,8 +256,8 @@ def test_a_file_that_vanishes_mid_run(profile, shoot, tmp_path, monkeypatch, cap
     code = batch.mark_many(profile, [shoot], out, workers=1, json_lines=True)
     rows, _ = _lines(capsys)
     assert code == 1
-    gone = [r for r in rows if r["original"] == str(victim)]
-    assert gone[0]["status"] == "failed" and "no such file" in gone[0]["error"]
+    gone = [r for r in rows if r["file"] == str(victim)]
+    assert gone[0]["status"] == "failed" and "no such file" in gone[0]["error"]["message"]
     assert sum(r["status"] == "marked" for r in rows) == 4
     assert_consistent(profile, out, _originals(shoot))
 
@@ -378,7 +379,7 @@ def test_a_copy_that_cannot_be_made_again_is_reported(profile, shoot, tmp_path, 
                            workers=1, jpeg_quality=90, json_lines=True)
     rows, _ = _lines(capsys)
     assert code == 1
-    assert rows[0]["status"] == "failed" and "could not be re-made bit for bit" in rows[0]["error"]
+    assert rows[0]["status"] == "failed" and "could not be re-made bit for bit" in rows[0]["error"]["message"]
     assert rows[1]["status"] == "marked"
     assert not (tmp_path / "second" / "coffee.jpg").exists()
     assert len(profile.works()) == 2
@@ -392,7 +393,7 @@ def test_output_folder_rules(profile, shoot, tmp_path, capsys):
     capsys.readouterr()
     assert batch.mark_many(profile, [shoot], inside, workers=1, json_lines=True) == 0
     rows, _ = _lines(capsys)
-    assert all(not r["original"].startswith(str(inside)) for r in rows)
+    assert all(not r["file"].startswith(str(inside)) for r in rows)
     from claimkit.errors import InputError
     with pytest.raises(InputError, match="input folder"):
         batch.mark_many(profile, [shoot], shoot, workers=1)

@@ -72,7 +72,7 @@ def test_scan_finds_every_marked_image_in_a_wget_warc(site, shop_owner, wget_war
     for url, r in claimed.items():
         assert r["capture_date"] == expected[url] and r["file"] == str(wget_warc)
         assert r["work_id"] in site.work_ids.values() and r["warc_record_id"].startswith("<urn:")
-    unclaimed = {r["url"] for r in rows if r["status"] == "not found"}
+    unclaimed = {r["url"] for r in rows if r["status"] == "not-found"}
     assert site.url("/img/cat.jpg") in unclaimed
     # The human lines name the URL and the capture date too.
     code, out, _ = _run(capsys, "scan", wget_warc, "--workers", "1")

@@ -91,7 +91,7 @@ def test_stamp_request_attach_and_verify(profile_home, local_tsa, tmp_path, caps
     assert code == 0 and "leaf 3 of 3): valid" in out
     code, out, _ = run(capsys, "log", "verify", "--json")
     doc = json.loads(out)
-    assert code == 0 and doc["ok"] and doc["tokens"] == 1 and doc["works"] == 3
+    assert code == 0 and doc["ok"] and doc["tokens_checked"] == 1 and doc["works_checked"] == 3
 
 
 def test_untrusted_tsa_is_a_failed_check(profile_home, local_tsa, make_tsa, tmp_path, capsys):

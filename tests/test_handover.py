@@ -302,7 +302,7 @@ def test_other_versions_compare_figures_and_pdf_by_data(two_cases, monkeypatch):
     assert by["figures"]["status"] == "ok" and "tolerances" in by["figures"]["detail"]
     assert by["PDF content"]["status"] == "ok", by["PDF content"]
     # No disclosure was given: the examinations themselves are named as not re-run.
-    assert by["re-run"]["status"] == "not done"
+    assert by["re-run"]["status"] == "not-done"
 
 
 def test_figure_tolerance():

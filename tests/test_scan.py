@@ -73,8 +73,8 @@ def test_scan_claims_the_marked_copies_and_names_their_works(profile, finds, tmp
         assert by[name]["false_alarm_probability"] <= 1e-9
         assert set(by[name]["geometry"]) >= {"rotation_deg", "scale", "flipped", "shift_px"}
     assert by["cat.jpg"]["detected"] is False and by["cat.jpg"]["work_id"] is None
-    assert "broken.jpg" in by["broken.jpg"]["error"]
-    assert [by[n]["status"] for n in names] == ["not found", "claimed", "unreadable", "claimed"]
+    assert "broken.jpg" in by["broken.jpg"]["error"]["message"]
+    assert [by[n]["status"] for n in names] == ["not-found", "claimed", "unreadable", "claimed"]
     summary = json.loads(err.strip().splitlines()[0])
     assert summary["summary"] and summary["files_read"] == 3 and summary["claimed"] == 2
     assert summary["unreadable"] == 1 and summary["passed_over"] == 1    # page.html
@@ -83,7 +83,7 @@ def test_scan_claims_the_marked_copies_and_names_their_works(profile, finds, tmp
     with report.open(newline="") as fh:
         table = list(csv.DictReader(fh))
     assert [Path(r["file"]).name for r in table] == names
-    assert [r["status"] for r in table] == ["not found", "claimed", "unreadable", "claimed"]
+    assert [r["status"] for r in table] == ["not-found", "claimed", "unreadable", "claimed"]
     assert table[1]["work_id"] == finds["rocket"]
     assert table[3]["sha256"] == sha256_file(finds["web"] / "shop" / "mug-listing.jpg")
 

@@ -90,5 +90,5 @@ def export_bundle(case: Case, out: str | os.PathLike, profile=None, *, force: bo
                            items={"bundle": digest, "manifest": sha256_file(root / MANIFEST)},
                            details={"case_id": case.case_id, "files": len(names),
                                     "file": out.name, "key_material": key_material})
-    return {"bundle": str(out), "sha256": digest, "files": len(names),
+    return {"output": str(out), "sha256": digest, "files": len(names),
             "key_material": key_material}

@@ -26,6 +26,44 @@ _USER_FIXABLE = {errno.EACCES, errno.EPERM, errno.EROFS, errno.ENOSPC, errno.EDQ
                  errno.ENOENT, errno.ENOTDIR, errno.EISDIR, errno.EEXIST, errno.ENAMETOOLONG}
 
 
+def add_output_options(p: argparse.ArgumentParser) -> None:
+    """``--quiet`` and ``--verbose``, accepted before or after any command."""
+    p.add_argument("--quiet", "-q", action="store_true", default=argparse.SUPPRESS,
+                   help="no progress bar")
+    p.add_argument("--verbose", "-v", action="store_true", default=argparse.SUPPRESS,
+                   help="also show the warnings of the libraries claimkit uses (Pillow, "
+                        "tifffile, exiftool) on stderr")
+
+
+def setup_logging(verbose: bool) -> None:
+    """Route third-party warnings through ``logging``; show them only with ``--verbose``.
+
+    Pillow's and tifffile's warnings (a metadata tag with an odd count, say)
+    are not problems of the user's input: without ``--verbose`` they are
+    kept off stderr, so that ``--json`` output and one-line errors stay clean.
+    Worker processes inherit the choice through ``PYTHONWARNINGS``.
+    """
+    import logging
+    import warnings
+
+    logging.captureWarnings(True)
+    root = logging.getLogger()
+    for h in list(root.handlers):
+        if getattr(h, "_claimkit", False):
+            root.removeHandler(h)
+    handler = logging.StreamHandler(sys.stderr)
+    handler._claimkit = True  # type: ignore[attr-defined]
+    handler.setFormatter(logging.Formatter("claimkit: %(name)s: %(message)s"))
+    root.addHandler(handler)
+    root.setLevel(logging.INFO if verbose else logging.CRITICAL)
+    if verbose:
+        warnings.simplefilter("default")
+        os.environ.pop("PYTHONWARNINGS", None)
+    else:
+        warnings.simplefilter("ignore")
+        os.environ["PYTHONWARNINGS"] = "ignore"
+
+
 def build_parser() -> argparse.ArgumentParser:
     # SUPPRESS: an option given before the command must not be reset by the
     # command's own copy of it (both levels accept --home and --debug).
@@ -34,6 +72,7 @@ def build_parser() -> argparse.ArgumentParser:
                         help="owner profile folder (default: $CLAIMKIT_HOME or ~/.claimkit)")
     common.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
                         help="show a full traceback on errors")
+    add_output_options(common)
     parser = argparse.ArgumentParser(
         prog="claimkit",
         description="Mark photos invisibly, examine disputed copies, and hand over "
@@ -60,6 +99,7 @@ def main(argv: list[str] | None = None) -> int:
     if not getattr(args, "func", None):
         parser.print_help()
         return 2
+    setup_logging(bool(getattr(args, "verbose", False)))
     try:
         code = args.func(args)
     except ClaimkitError as exc:

@@ -39,11 +39,12 @@ def cmd_case_add(args) -> int:
         for f in args.files:
             ex = add_exhibit(case, f, source=args.source, found=args.found, by=args.by,
                              note=args.note, profile=p)
-            out.append(ex)
-    for ex in out:
+            out.append((f, ex))
+    for src, ex in out:
         r = ex.record
         if args.json:
-            print_json({"exhibit_id": ex.exhibit_id, "file": r["file"], "sha256": r["sha256"],
+            print_json({"exhibit_id": ex.exhibit_id, "file": str(src), "stored": r["file"],
+                        "sha256": r["sha256"],
                         "size": r["size"], "media_type": r["media_type"],
                         "width": r["width"], "height": r["height"]})
         else:
@@ -141,8 +142,8 @@ def cmd_case_export(args) -> int:
     if args.json:
         print_json(rep)
     else:
-        print(f"bundle written to {rep['bundle']} ({rep['files']} files, SHA-256 {rep['sha256']})")
-        print("Anyone can check it with: claimkit verify " + rep["bundle"])
+        print(f"bundle written to {rep['output']} ({rep['files']} files, SHA-256 {rep['sha256']})")
+        print("Anyone can check it with: claimkit verify " + rep["output"])
     return 0
 
 
@@ -175,7 +176,7 @@ def cmd_report(args) -> int:
     if args.json:
         print_json(rep)
     else:
-        print(f"dossier: {rep['out'] or rep['pdf']} (signed, PAdES)")
+        print(f"dossier: {rep['output'] or rep['pdf']} (signed, PAdES)")
         print(f"same content as a web page: {rep['html']}")
         print(f"signed manifest of {rep['files']} files: {case.root / 'manifest.json'}")
         if rep["key_material"] == "withheld":
@@ -203,14 +204,14 @@ def cmd_verify(args) -> int:
     if args.json:
         for c in rep.checks:
             print_json(c)
-        print_json({"bundle": rep.bundle, "ok": rep.ok, "verdict": verdict,
+        print_json({"file": rep.bundle, "ok": rep.ok, "verdict": verdict,
                     "checks": len(rep.checks),
                     "failed": [c["check"] for c in rep.failures],
                     "unpinned": [c["check"] for c in rep.unpinned],
                     "compare_out_of_band": rep.out_of_band})
     else:
         words = {"ok": "ok      ", "failed": "FAIL    ", "unpinned": "UNPINNED",
-                 "skipped": "skipped ", "not done": "NOT DONE"}
+                 "skipped": "skipped ", "not-done": "NOT DONE"}
         for c in rep.checks:
             print(f"{words[c['status']]} {c['check']}: {c['detail']}")
         if rep.ok:
@@ -231,7 +232,10 @@ def cmd_demo(args) -> int:
 
     out = run_demo(Path(args.dir) if args.dir else None, echo=None if args.json else print)
     if args.json:
-        print_json(out)
+        print_json({"output": out["folder"], "case": out["case"], "pdf": out["pdf"],
+                    "html": out["html"], "zip": out["bundle"], "ok": out["verified"],
+                    "checks": out["checks"], "failed": out["failed"],
+                    "exhibits_detected": out["detected"], "seconds": out["seconds"]})
     return 0 if out["verified"] else 1
 
 
@@ -243,20 +247,21 @@ def register(sub, common) -> None:
     csub.required = True
 
     p = csub.add_parser("new", parents=[common], help="open a new case folder")
-    p.add_argument("dir", metavar="DIR")
-    p.add_argument("--title", required=True, metavar="T")
-    p.add_argument("--json", action="store_true")
+    p.add_argument("dir", metavar="DIR", help="a new or empty folder for the case")
+    p.add_argument("--title", required=True, metavar="T", help="a short title for the case")
+    p.add_argument("--json", action="store_true", help="one JSON object")
     p.set_defaults(func=cmd_case_new)
 
     p = csub.add_parser("add", parents=[common], help="take in a disputed copy (byte for byte)")
-    p.add_argument("dir", metavar="DIR")
-    p.add_argument("files", nargs="+", metavar="FILE")
+    p.add_argument("dir", metavar="DIR", help="the case folder")
+    p.add_argument("files", nargs="+", metavar="FILE",
+                   help="the disputed files as saved (only read; copied byte for byte)")
     p.add_argument("--source", required=True, metavar="S",
                    help="where it was found (URL, shop, publication)")
     p.add_argument("--found", metavar="WHEN", help="when it was found, as you state it")
     p.add_argument("--by", metavar="NAME", help="who takes it in (default: the profile owner)")
-    p.add_argument("--note", metavar="TEXT")
-    p.add_argument("--json", action="store_true")
+    p.add_argument("--note", metavar="TEXT", help="a note kept with the intake record")
+    p.add_argument("--json", action="store_true", help="one JSON object per file")
     p.set_defaults(func=cmd_case_add)
 
     p = csub.add_parser(
@@ -265,19 +270,20 @@ def register(sub, common) -> None:
                     "WARC/1.1 file (with addresses, TLS certificates and headers), draw a "
                     "full-page snapshot where Chromium is installed, timestamp the WARC when "
                     "a TSA is given, and take every image in as an exhibit.")
-    p.add_argument("dir", metavar="CASE")
-    p.add_argument("urls", nargs="+", metavar="URL")
+    p.add_argument("dir", metavar="CASE", help="the case folder")
+    p.add_argument("urls", nargs="+", metavar="URL", help="the pages (or images) to capture")
     p.add_argument("--tsa-url", metavar="URL", help="RFC 3161 timestamp authority for the WARC")
     p.add_argument("--tsa-cert", metavar="PEM", help="certificate(s) to trust for that TSA")
     p.add_argument("--timeout", type=float, default=30.0, metavar="S",
                    help="seconds to wait for a connection or a read (default 30)")
     p.add_argument("--max-bytes", type=int, default=50 << 20, metavar="N",
                    help="largest response taken (default 50 MiB)")
-    p.add_argument("--max-redirects", type=int, default=10, metavar="N")
+    p.add_argument("--max-redirects", type=int, default=10, metavar="N",
+                   help="redirects followed at most (default 10)")
     p.add_argument("--ca-file", metavar="PEM",
                    help="trust these CA certificates for HTTPS instead of the system's")
     p.add_argument("--no-snapshot", action="store_true", help="no Chromium page snapshot")
-    p.add_argument("--json", action="store_true")
+    p.add_argument("--json", action="store_true", help="one JSON object")
     p.set_defaults(func=cmd_case_capture)
 
     p = csub.add_parser("withdraw", parents=[common],
@@ -293,32 +299,33 @@ def register(sub, common) -> None:
     p.set_defaults(func=cmd_case_withdraw)
 
     p = csub.add_parser("examine", parents=[common], help="examine every exhibit")
-    p.add_argument("dir", metavar="DIR")
+    p.add_argument("dir", metavar="DIR", help="the case folder")
     p.add_argument("--originals", nargs="*", metavar="FOLDER",
                    help="folders holding the registered files (found by SHA-256) for alignment")
     p.add_argument("--decoys", type=int, default=None, metavar="N",
                    help="random decoy keys in the control (default 64)")
-    p.add_argument("--workers", type=int, default=1, metavar="N")
+    p.add_argument("--workers", type=int, default=1, metavar="N",
+                   help="worker processes for the decoy control (default 1)")
     p.add_argument("--no-robustness", action="store_true",
                    help="skip the robustness battery on the registered marked file")
-    p.add_argument("--json", action="store_true")
+    p.add_argument("--json", action="store_true", help="JSON output, one object per line")
     p.set_defaults(func=cmd_case_examine)
 
     p = csub.add_parser("export", parents=[common], help="pack the hand-over bundle (zip)")
-    p.add_argument("dir", metavar="DIR")
-    p.add_argument("--out", required=True, metavar="FILE.zip")
-    p.add_argument("--force", action="store_true")
+    p.add_argument("dir", metavar="DIR", help="the case folder")
+    p.add_argument("--out", required=True, metavar="FILE.zip", help="the bundle to write")
+    p.add_argument("--force", action="store_true", help="replace an existing --out file")
     p.add_argument("--disclose", action="store_true",
                    help="require that the bundle carries key material (build the report "
                         "with --disclose first)")
-    p.add_argument("--json", action="store_true")
+    p.add_argument("--json", action="store_true", help="one JSON object")
     p.set_defaults(func=cmd_case_export)
 
     p = sub.add_parser("report", parents=[common], help="build the signed dossier of a case",
                        description="Build the dossier (PDF signed the PDF way, HTML, data), "
                                    "the works' public evidence, a custody excerpt and the signed "
                                    "manifest; key material only with --disclose.")
-    p.add_argument("dir", metavar="DIR")
+    p.add_argument("dir", metavar="DIR", help="the case folder")
     p.add_argument("--out", metavar="FILE.pdf", help="also write the PDF here")
     p.add_argument("--disclose", action="store_true",
                    help="put the matched works' key material in the bundle, after saying "
@@ -327,14 +334,15 @@ def register(sub, common) -> None:
                    help="put the unmarked master in the bundle when a finding aligns to it "
                         "(default: withheld, named by its hash)")
     p.add_argument("--force", action="store_true", help="replace an existing --out file")
-    p.add_argument("--json", action="store_true")
+    p.add_argument("--json", action="store_true", help="JSON output, one object per line")
     p.set_defaults(func=cmd_report)
 
     p = sub.add_parser("verify", parents=[common], help="check a hand-over bundle",
                        description="Check every hash, signature, timestamp token and the "
                                    "custody chain of a bundle, and re-run every examination. "
                                    "Exit 0 only when every check passes.")
-    p.add_argument("bundle", metavar="BUNDLE_OR_DIR")
+    p.add_argument("bundle", metavar="BUNDLE_OR_DIR",
+                   help="the hand-over bundle (zip) or an unpacked case folder")
     p.add_argument("--expect-key", action="append", default=[], metavar="SHA256",
                    help="the owner key fingerprint you obtained from the owner yourself "
                         "(repeatable); without it the signer is reported unpinned")
@@ -346,7 +354,7 @@ def register(sub, common) -> None:
                         "the examinations when the bundle holds no key material)")
     p.add_argument("--no-rerun", action="store_true",
                    help="check integrity only: hashes, signatures, tokens, custody; no re-run")
-    p.add_argument("--json", action="store_true")
+    p.add_argument("--json", action="store_true", help="JSON output, one object per line")
     p.set_defaults(func=cmd_verify)
 
     p = sub.add_parser("demo", parents=[common], help="run the whole job on a fictional case",
@@ -354,6 +362,6 @@ def register(sub, common) -> None:
                                    "copies, a dossier and its verification, end to end.")
     p.add_argument("dir", nargs="?", metavar="DIR", help="where to put it (default: a new "
                                                          "folder claimkit-demo-*)")
-    p.add_argument("--json", action="store_true")
+    p.add_argument("--json", action="store_true", help="JSON output, one object per line")
     p.set_defaults(func=cmd_demo)
 

@@ -36,7 +36,8 @@ def cmd_mark(args) -> int:
             return mark_many(profile, inputs, out, force=args.force, jpeg_quality=args.quality,
                              strength=args.strength, workers=args.workers, engine=args.engine,
                              scheduler=args.scheduler, json_lines=args.json,
-                             progress=not args.json, max_pixels=args.max_pixels,
+                             progress=not (args.json or getattr(args, "quiet", False)),
+                             max_pixels=args.max_pixels,
                              rights=rights)
         if out.is_dir():
             raise InputError("is a folder; with one input, --out names the marked file", path=out)
@@ -133,7 +134,8 @@ def register(sub, common) -> None:
     e = sub.add_parser("examine", parents=[common], help="look for the owner's mark in copies",
                        description="Blind examination with the owner's key (no original needed): "
                                    "geometry, payload, and a conservative false-alarm bound.")
-    e.add_argument("files", nargs="+", metavar="FILE")
+    e.add_argument("files", nargs="+", metavar="FILE", help="copies to examine (a bad one is "
+                   "reported and the others examined; exit 2 at the end)")
     e.add_argument("--json", action="store_true", help="one JSON object per line, per file, in order")
     e.add_argument("--threshold", type=float, default=detect.DEFAULT_THRESHOLD,
                    help="largest false-alarm bound called 'detected' (default 1e-9)")

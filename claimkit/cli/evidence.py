@@ -76,17 +76,17 @@ def cmd_works(args) -> int:
         for w in works:
             r = w.record
             row = {"work_id": w.work_id, "serial": w.serial,
-                   "registered": r.get("registered", {}).get("time"),
-                   "original": r.get("original", {}).get("name"),
-                   "marked": r.get("marked", {}).get("name"),
+                   "registered_at": r.get("registered", {}).get("time"),
+                   "original_name": r.get("original", {}).get("name"),
+                   "marked_name": r.get("marked", {}).get("name"),
                    "sha256_marked": r.get("marked", {}).get("sha256"),
                    "stamped": stamped.get(w.work_id)}
             if args.json:
                 print_json(row)
             else:
                 when = row["stamped"] or "not stamped"
-                print(f"{w.work_id}  {row['registered'][:19]}Z  {row['original']} -> "
-                      f"{row['marked']}  [{when}]")
+                print(f"{w.work_id}  {row['registered_at'][:19]}Z  {row['original_name']} -> "
+                      f"{row['marked_name']}  [{when}]")
         if not works and not args.json:
             print(f"no works registered in {p.home}")
     return 0
@@ -147,7 +147,7 @@ def cmd_stamp_request(args) -> int:
         req = p.stamp_request(ids or None)
         write_new_file(out, req.tsq)
     if args.json:
-        print_json({"request_id": req.request_id, "out": str(out), "merkle_root": req.root,
+        print_json({"request_id": req.request_id, "output": str(out), "merkle_root": req.root,
                     "nonce": req.nonce, "works": req.work_ids})
     else:
         print(f"request {req.request_id} for {len(req.work_ids)} work(s) written to {out}")
@@ -192,7 +192,12 @@ def cmd_log_verify(args) -> int:
     with _open(args, secrets=False) as p:
         report = p.audit()
     if args.json:
-        print_json(report.as_dict())
+        doc = report.as_dict()
+        # "works" is a list of work ids elsewhere; here the counts get their own names.
+        for old, new in (("works", "works_checked"), ("tokens", "tokens_checked")):
+            if old in doc:
+                doc[new] = doc.pop(old)
+        print_json(doc)
         return 0 if report.ok else 1
     for problem in report.log.problems:
         print(f"{report.log.path}: {problem}")
@@ -221,7 +226,7 @@ def cmd_disclose(args) -> int:
         reveals = what_it_reveals(p, [wid])
         out = p.disclose(wid, Path(args.out))
     if args.json:
-        print_json({"work_id": wid, "out": str(out), "reveals": reveals})
+        print_json({"work_id": wid, "output": str(out), "reveals": reveals})
     else:
         print(f"disclosure for {wid} written to {out}; it reveals:")
         for line in reveals:
@@ -240,7 +245,7 @@ def cmd_key_export(args) -> int:
         atomic_write(out, p.public_key_pem())
         fp = p.public_key_fingerprint
     if args.json:
-        print_json({"out": str(out), "public_key_sha256": fp})
+        print_json({"output": str(out), "public_key_sha256": fp})
     else:
         print(f"public key written to {out} (SHA-256 of the raw key: {fp})")
     return 0
@@ -260,6 +265,9 @@ def _sub_common() -> argparse.ArgumentParser:
                    help="owner profile folder (default: $CLAIMKIT_HOME or ~/.claimkit)")
     p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
                    help="show a full traceback on errors")
+    from claimkit.cli import add_output_options
+
+    add_output_options(p)
     return p
 
 
@@ -285,7 +293,7 @@ def register(sub, common) -> None:
     wsub = p.add_subparsers(dest="works_command", metavar="show")
     q = add(wsub, "show", "show one work record and check its signature and timestamps",
             cmd_works_show)
-    q.add_argument("work_id", metavar="ID")
+    q.add_argument("work_id", metavar="ID", help="the work id, e.g. W-D8AA-000001")
     json_opt(q)
 
     p = add(sub, "stamp", "RFC 3161 trusted timestamps for work records")
@@ -293,7 +301,8 @@ def register(sub, common) -> None:
     q = add(ssub, "request", "write a TimeStampReq over the Merkle root of work records",
             cmd_stamp_request)
     q.add_argument("works", nargs="*", metavar="WORK", help="work IDs (default: all unstamped)")
-    q.add_argument("--out", required=True, metavar="FILE.tsq")
+    q.add_argument("--out", required=True, metavar="FILE.tsq",
+                   help="where to write the request (never replaced)")
     json_opt(q)
     q = add(ssub, "attach", "check a TimeStampResp against its request and store the token",
             cmd_stamp_attach)
@@ -319,14 +328,14 @@ def register(sub, common) -> None:
                    "owner), the work's payload tag and commitment opening, the public key and "
                    "the signed record. Never the signing key, the marking secret or the "
                    "payload-tag key. " + CAUTION)
-    p.add_argument("work_id", metavar="WORK")
-    p.add_argument("--out", required=True, metavar="DIR")
+    p.add_argument("work_id", metavar="WORK", help="the disputed work's id")
+    p.add_argument("--out", required=True, metavar="DIR", help="a new folder for the disclosure")
     json_opt(p)
 
     p = add(sub, "key", "the owner's public key")
     ksub = p.add_subparsers(dest="key_command", metavar="export", required=True)
     q = add(ksub, "export", "write the Ed25519 public key as PEM", cmd_key_export)
-    q.add_argument("--out", required=True, metavar="FILE.pem")
+    q.add_argument("--out", required=True, metavar="FILE.pem", help="where to write the key")
     q.add_argument("--force", action="store_true", help="replace an existing file")
     json_opt(q)
 

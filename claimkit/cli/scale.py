@@ -33,7 +33,7 @@ def cmd_scan(args) -> int:
             report=Path(args.report) if args.report else None,
             case_dir=Path(args.case) if args.case else None,
             engine=args.engine, scheduler=args.scheduler, workers=args.workers,
-            progress=None if not args.no_progress else False,
+            progress=False if (args.no_progress or getattr(args, "quiet", False)) else None,
             threshold=args.threshold, max_pixels=args.max_pixels, force=args.force)
 
 

@@ -233,5 +233,5 @@ def build_report(case: Case, profile, *, out_pdf: Path | None = None,
     return {"case_id": case.case_id, "pdf": str(root / PDF), "html": str(root / HTML),
             "data": str(root / DATA), "pdf_sha256": sha256_hex(signed),
             "manifest_sha256": sha256_file(root / MANIFEST), "files": len(manifest["files"]),
-            "summary": data["summary"], "out": None if out_pdf is None else str(out_pdf),
+            "summary": data["summary"], "output": None if out_pdf is None else str(out_pdf),
             "key_material": "disclosed" if disclose else "withheld"}

@@ -7,9 +7,9 @@ from dataclasses import dataclass, field
 __all__ = ["FAILED", "NOT_DONE", "PASSED", "SKIPPED", "UNPINNED", "VerifyReport"]
 
 #: Outcomes of a check. ``unpinned``: it held, but rests on an anchor the bundle brought
-#: (the user pinned none); ``skipped``: left out on request; ``not done``: could not be
+#: (the user pinned none); ``skipped``: left out on request; ``not-done``: could not be
 #: done (no key disclosure), which fails the verification like ``failed``.
-PASSED, FAILED, UNPINNED, SKIPPED, NOT_DONE = "ok", "failed", "unpinned", "skipped", "not done"
+PASSED, FAILED, UNPINNED, SKIPPED, NOT_DONE = "ok", "failed", "unpinned", "skipped", "not-done"
 
 
 @dataclass
