@@ -190,8 +190,8 @@ def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, stre
     del marked
     measures["ssim"] = round(ssim_est.value, 5)
     measures["ssim_sampled"] = ssim_est.sampled
-    if ssim_est.standard_error is not None:
-        measures["ssim_standard_error"] = float(f"{ssim_est.standard_error:.2g}")
+    se = ssim_est.standard_error        # None: the whole picture was measured
+    measures["ssim_standard_error"] = None if se is None else float(f"{se:.2g}")
     if psnr_file is not None:
         measures["psnr_db_file"] = round(psnr_file, 3)
     return {
