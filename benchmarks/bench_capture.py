@@ -76,8 +76,9 @@ def _server(folder: Path, ctx: ssl.SSLContext | None) -> tuple[object, str]:
 
 def _tls(folder: Path) -> tuple[ssl.SSLContext, Path]:
     folder.mkdir()
-    run = lambda *a: subprocess.run(["openssl", *a], cwd=folder, check=True,
-                                    capture_output=True)
+    def run(*a):
+        return subprocess.run(["openssl", *a], cwd=folder, check=True, capture_output=True)
+
     ec = ["-newkey", "ec", "-pkeyopt", "ec_paramgen_curve:P-256", "-nodes"]
     run("req", "-x509", *ec, "-keyout", "ca.key", "-out", "ca.pem", "-days", "1",
         "-subj", "/CN=Bench Root")

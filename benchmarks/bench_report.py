@@ -26,10 +26,10 @@ from skimage import data
 from claimkit.case.bundle import export_bundle
 from claimkit.case.examine import examine_case
 from claimkit.case.store import add_exhibit, new_case
-from claimkit.verify import verify_bundle
 from claimkit.demo import make_copy
 from claimkit.dossier.build import build_report
 from claimkit.evidence.profile import Profile
+from claimkit.verify import verify_bundle
 from claimkit.workflow import mark_file
 
 REPORT_TARGET_S = 30.0

@@ -246,7 +246,8 @@ def load() -> str:
 
 
 def bench_scan(profile, work: Path, count: int) -> None:
-    from claimkit import batch, scan, workflow
+    from claimkit import scan, workflow
+    from claimkit.cli import scale
 
     print(f"\n1. scan of {count} web-size JPEGs (1.2-1.9 MP, half marked and recompressed), "
           "best of 2 runs"
@@ -254,7 +255,7 @@ def bench_scan(profile, work: Path, count: int) -> None:
     half = count // 2
     write_jpegs(work / "scan-src", half, (1600, 1200), start=1000, quality=95)
     with quiet():
-        batch.mark_many(profile, [work / "scan-src"], work / "scan-marked", workers=2)
+        scale.mark_many(profile, [work / "scan-src"], work / "scan-marked", workers=2)
     web = work / "web"
     web.mkdir()
     for p in sorted((work / "scan-marked").glob("*.jpg")):
@@ -277,7 +278,7 @@ def bench_scan(profile, work: Path, count: int) -> None:
                                        lambda f: (str(f), seed, checker, 1e-9, None), 2))
     with quiet():
         t = time.perf_counter()
-        scan.scan_folders(profile, [web], workers=2, json_lines=True)
+        scale.scan_folders(profile, [web], workers=2, json_lines=True)
         t_cmd = time.perf_counter() - t
     line("mean picture size", f"{mp:.2f} MP")
     line("claimed (of the marked half)", f"{claimed}/{half}")
@@ -329,6 +330,7 @@ def one_core(on: bool = True):
 
 def bench_mark(profile, work: Path, count: int, rounds: int = 2) -> None:
     from claimkit import batch
+    from claimkit.cli import scale
 
     print(f"\n2. batch mark of {count} 12-megapixel JPEGs (4000 x 3000), best of {rounds} "
           f"runs each  [{load()}]")
@@ -375,7 +377,7 @@ def bench_mark(profile, work: Path, count: int, rounds: int = 2) -> None:
         # A fresh profile per run: a run must not skip what the one before marked.
         with fresh_profile(work / f"home-mark-{run}") as prof, quiet(), one_core(workers == 1):
             t, cpu = time.perf_counter(), time.process_time()
-            code = batch.mark_many(prof, [folder], out, workers=workers)
+            code = scale.mark_many(prof, [folder], out, workers=workers)
             wall = time.perf_counter() - t
             if wall < times[workers]:
                 times[workers] = wall

@@ -1,3 +1,3 @@
 """claimkit: keyed invisible watermarks and the evidence that goes with them."""
 
-__version__ = "0.2.0"
+__version__ = "0.3.0.dev0"

@@ -25,29 +25,32 @@ If the marked copy of a registered original is missing altogether, the next
 run makes it again with the same serial (marking is deterministic) and
 accepts it only if its SHA-256 is the registered one.
 
-Exit status
------------
-0 every input marked or already done; 1 some inputs failed (each listed at
-the end) or the run stopped early for lack of disk space; 2 nothing could be
-marked because every input was bad input (or no image was found); 130 the
-run was interrupted (Ctrl-C) — run the same command again to finish.
+Results
+-------
+:func:`mark_many` hands each file's result row to the caller as it comes
+(``on_row``) and returns a :class:`BatchSummary`; the command line
+(:mod:`claimkit.cli.scale`) prints them and chooses the exit status.
 """
 
 from __future__ import annotations
 
 import errno
-import json
 import os
 import sqlite3
-import sys
 import time
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
-from claimkit.errors import ClaimkitError, InputError
-from claimkit.evidence.storage import fsync_dir
+from claimkit import workflow
+from claimkit.errors import ClaimkitError, DiskFull, InputError
+from claimkit.evidence.keys import work_id_for
+from claimkit.evidence.rights import load_rights
+from claimkit.evidence.storage import sha256_file, unfinished_writes
+from claimkit.filemeta import INSTALL_HINT, exiftool_available
+from claimkit.mark import payload
 from claimkit.runner import (
     Outcome,
     Progress,
@@ -57,6 +60,7 @@ from claimkit.runner import (
     run_ordered,
     tune_memory,
 )
+from claimkit.workflow import FileMetadata, place_staged, registry_name, staged_path
 
 __all__ = [
     "IMAGE_SUFFIXES",
@@ -71,9 +75,6 @@ __all__ = [
 MARK_SUFFIXES = (".jpg", ".jpeg", ".png", ".tif", ".tiff", ".webp")
 #: Extensions examined by ``scan`` (what Pillow reads that photos come as).
 IMAGE_SUFFIXES = MARK_SUFFIXES + (".gif", ".bmp")
-STAGED_TAG = ".claimkit-staged"
-
-EXIT_OK, EXIT_SOME_FAILED, EXIT_BAD_INPUT, EXIT_INTERRUPTED = 0, 1, 2, 130
 
 
 # --------------------------------------------------------------------------- finding files
@@ -156,22 +157,19 @@ def plan_outputs(files: list[tuple[Path, Path, Path]], out: Path
     return pairs, problems
 
 
-def staged_path(out: Path) -> Path:
-    """Hidden name beside ``out`` where a marked copy waits until it is registered."""
-    return out.with_name(f".{out.stem}{STAGED_TAG}{out.suffix}")
-
-
 # --------------------------------------------------------------------------- the worker
 
 def _disk_full(exc: BaseException | None) -> bool:
     """Whether an error (or one it was raised from) is a full disk or quota."""
     seen = 0
     while exc is not None and seen < 8:
+        if isinstance(exc, DiskFull):
+            return True
         if isinstance(exc, OSError) and exc.errno in (errno.ENOSPC, errno.EDQUOT):
             return True
-        if isinstance(exc, sqlite3.OperationalError) and "full" in str(exc):
-            return True
-        if "No space left on device" in str(exc):
+        # SQLITE_FULL (13): "database or disk is full" (sqlite.org/rescode.html#full).
+        if isinstance(exc, sqlite3.OperationalError) and \
+                getattr(exc, "sqlite_errorcode", None) == 13:
             return True
         exc = exc.__cause__ or exc.__context__
         seen += 1
@@ -186,9 +184,6 @@ def mark_task(src: str, staged: str, seed: bytes, bits: list[int], strength: flo
     (hashes, fingerprint, quality measures, capture facts); on failure
     ``{"error": line, "kind": "input" | "disk-full" | "internal"}``.
     """
-    # Imported here so that a worker process pays for the engine only once it works.
-    from claimkit import workflow
-
     tune_memory()
     src_p, staged_p = Path(src), Path(staged)
     try:
@@ -236,6 +231,7 @@ class BatchSummary:
     not_started: int = 0
     stopped: str | None = None
     seconds: float = 0.0
+    total: int = 0          # inputs: files to mark plus inputs refused before marking
 
     def as_dict(self) -> dict:
         return {"marked": self.marked, "already_done": self.skipped, "restored": self.restored,
@@ -245,18 +241,15 @@ class BatchSummary:
 
 class _MarkBatch:
     def __init__(self, profile, *, force: bool, jpeg_quality: int, strength: float,
-                 max_pixels: int | None, json_lines: bool, progress: Progress,
-                 guard: StopGuard, rights=None):
-        from claimkit import workflow
-        from claimkit.evidence.rights import load_rights
-
+                 max_pixels: int | None, on_row: Callable[[dict], None] | None,
+                 progress: Progress, guard: StopGuard, rights=None):
         self.rights = rights if rights is not None else load_rights(profile.home, profile.owner)
         self.profile = profile
         self.force = force
         self.jpeg_quality = jpeg_quality
         self.strength = strength
         self.max_pixels = max_pixels
-        self.json_lines = json_lines
+        self.on_row = on_row
         self.progress = progress
         self.guard = guard
         self.seed = profile.detection_seed
@@ -284,9 +277,6 @@ class _MarkBatch:
             yield job, args
 
     def _prepare(self, job: _Job):
-        from claimkit.evidence.storage import sha256_file
-        from claimkit.mark import payload
-
         src, out = job.src, job.out
         if out.exists() and os.path.samefile(src, out):
             raise InputError("the output would overwrite the original; choose another --out",
@@ -309,7 +299,7 @@ class _MarkBatch:
             if _hash_or_none(staged) == want:
                 # A run stopped between registering and renaming: finish the rename.
                 with self.guard.critical():
-                    _place(staged, out, force=self.force)
+                    place_staged(staged, out, force=self.force)
                 job.early = {"status": "restored", "work_id": work.work_id,
                              "reason": "registered copy moved into place", "sha256_marked": want}
                 return None
@@ -340,9 +330,6 @@ class _MarkBatch:
         bits = payload.pack(self.profile.owner_tag, job.serial,
                             self.profile.payload_tag(job.serial))
         self.in_flight.add(staged)
-        from claimkit.evidence.profile import work_id_for
-        from claimkit.workflow import FileMetadata, registry_name
-
         metadata = FileMetadata(rights=self.rights,
                                 work_id=work_id_for(self.profile.owner_tag, job.serial),
                                 registry=registry_name(self.profile))
@@ -385,7 +372,7 @@ class _MarkBatch:
                     "this file on its own (claimkit mark FILE --out OUT) to register it as "
                     "a new work")}
             with self.guard.critical():
-                _place(staged, job.out, force=self.force)
+                place_staged(staged, job.out, force=self.force)
             return {"status": "restored", "work_id": job.restore_of.work_id,
                     "reason": "registered copy re-made", "sha256_marked": want}
         try:
@@ -396,7 +383,7 @@ class _MarkBatch:
                     marked_name=job.out.name, fingerprint=value["fingerprint"],
                     mark_params=self.params, capture=value["capture"],
                     quality=value["quality"])
-                _place(staged, job.out, force=self.force)
+                place_staged(staged, job.out, force=self.force)
         except (ClaimkitError, sqlite3.Error, OSError) as exc:
             staged.unlink(missing_ok=True)
             line = exc.line() if isinstance(exc, ClaimkitError) else f"{job.out}: {exc}"
@@ -426,20 +413,14 @@ class _MarkBatch:
         self.handed_back += 1
         row = {"file": str(job.src), "output": str(job.out), "sha256_original": job.sha256,
                **result}
-        if self.json_lines:
-            from claimkit.cli.common import print_json
+        if self.on_row is not None:
             self.progress.clear()
-            # The error is an object in every command's JSON (examine's and scan's too).
-            print_json({**row, "error": {"message": row["error"], "exit_code": 2}}
-                       if isinstance(row.get("error"), str) else row)
+            self.on_row(row)
             self.progress.draw(force=True)
-        else:
-            self.progress.write(_human_line(row))
         self.progress.advance()
 
 
 def _hash_or_none(path: Path) -> str | None:
-    from claimkit.evidence.storage import sha256_file
     if not path.is_file():
         return None
     try:
@@ -448,41 +429,11 @@ def _hash_or_none(path: Path) -> str | None:
         return None
 
 
-def _place(staged: Path, out: Path, *, force: bool) -> None:
-    """Move a staged copy to its final name; without ``force`` never replace a file."""
-    if force:
-        os.replace(staged, out)
-    else:
-        try:
-            os.link(staged, out)       # fails if the name appeared meanwhile
-        except FileExistsError:
-            raise InputError("already exists (appeared during the run); the marked copy "
-                             f"was kept as {staged.name}", path=out) from None
-        except OSError:
-            if out.exists():
-                raise
-            os.replace(staged, out)    # a file system without hard links
-        else:
-            staged.unlink()
-    fsync_dir(out.parent)
-
-
-def _human_line(row: dict) -> str:
-    status = row["status"]
-    if status == "marked":
-        return (f"marked    {row['file']} -> {row['output']}  {row['work_id']}  "
-                f"PSNR {row.get('psnr_db', float('nan')):.1f} dB  SSIM {row.get('ssim', 0):.4f}")
-    if status == "skipped":
-        return f"done      {row['file']}: {row['reason']} ({row['work_id']})"
-    if status == "restored":
-        return f"restored  {row['output']}: {row['reason']} ({row['work_id']})"
-    return f"failed    {row['error']}"
-
-
 def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
               jpeg_quality: int = 95, strength: float = 1.0, workers: int | None = None,
-              engine: str = "local", scheduler: str | None = None, json_lines: bool = False,
-              progress: bool | None = None, max_pixels: int | None = None, rights=None) -> int:
+              engine: str = "local", scheduler: str | None = None,
+              on_row: Callable[[dict], None] | None = None, progress: bool | None = None,
+              max_pixels: int | None = None, rights=None) -> BatchSummary:
     """Mark every photo in ``inputs`` (files and folders) into the folder ``out``.
 
     Parameters
@@ -503,21 +454,21 @@ def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
     engine : {"local", "dask"}
     scheduler : str, optional
         Dask scheduler address; without it ``dask`` starts a local cluster.
-    json_lines : bool
-        One JSON object per file on stdout instead of a readable line.
+    on_row : callable, optional
+        Called with each file's result row (``original``, ``output``,
+        ``status``: marked, skipped, restored or failed, and the facts), in
+        input order, as soon as it is known.
     progress : bool, optional
         Draw a progress bar on stderr (default: when stderr is a terminal).
 
     Returns
     -------
-    int
-        The exit status (see the module notes).
+    BatchSummary
+        The counts, the failures (each one line) and why the run stopped, if it did.
     """
     out = Path(out)
-    if not 0 < strength <= 4:
-        raise InputError(f"strength {strength} is outside 0..4")
-    if not 1 <= int(jpeg_quality) <= 100:
-        raise InputError(f"JPEG quality {jpeg_quality} is outside 1..100")
+    workflow.check_strength(strength)
+    workflow.check_jpeg_quality(jpeg_quality)
     for p in inputs:
         if Path(p).is_dir() and out.exists() and os.path.samefile(p, out):
             raise InputError("the output folder is an input folder; choose another --out",
@@ -525,8 +476,6 @@ def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
     if out.exists() and not out.is_dir():
         raise InputError("is a file; with several inputs or a folder, --out must be a folder",
                          path=out)
-    from claimkit.filemeta import INSTALL_HINT, exiftool_available
-
     if not exiftool_available():
         raise InputError("exiftool is needed to keep the photos' metadata and write the rights "
                          "fields, and was not found", hint=INSTALL_HINT)
@@ -541,7 +490,7 @@ def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
     bar = Progress(len(pairs), enabled=progress, label="marking ")
     with StopGuard() as guard:
         batch = _MarkBatch(profile, force=force, jpeg_quality=jpeg_quality, strength=strength,
-                           max_pixels=max_pixels, json_lines=json_lines, progress=bar,
+                           max_pixels=max_pixels, on_row=on_row, progress=bar,
                            guard=guard, rights=rights)
         for p in problems:
             batch.summary.failures.append(p.line())
@@ -560,44 +509,7 @@ def mark_many(profile, inputs: list[Path], out: Path, *, force: bool = False,
     for staged in batch.in_flight:
         staged.unlink(missing_ok=True)
         # A worker stopped mid-write may leave the writer's temporary file too.
-        for tmp in staged.parent.glob(f".{staged.name}.*.partial"):
+        for tmp in unfinished_writes(staged):
             tmp.unlink(missing_ok=True)
-    return _finish_report(batch.summary, total=len(pairs) + len(problems),
-                          json_lines=json_lines)
-
-
-def _finish_report(s: BatchSummary, *, total: int, json_lines: bool) -> int:
-    err = sys.stderr
-    done = s.marked + s.skipped + s.restored
-    rate = (s.marked + s.restored) / s.seconds if s.seconds > 0 else 0.0
-    line = (f"claimkit: {s.marked} marked, {s.skipped} already done, {s.restored} restored, "
-            f"{len(s.failures)} failed")
-    if s.not_started:
-        line += f", {s.not_started} not started"
-    line += f" ({total} inputs, {s.seconds:.1f} s, {rate:.2f} files/s)"
-    if json_lines:    # stdout stays one object per file; the summary goes to stderr
-        print(json.dumps({"summary": True, "inputs": total, **s.as_dict()}, sort_keys=True),
-              file=err, flush=True)
-    else:
-        print(line, flush=True)
-    if s.failures:
-        print(f"claimkit: {len(s.failures)} file(s) failed:", file=err)
-        for f in s.failures:
-            print(f"claimkit: error: {f}", file=err)
-    if s.stopped == "interrupted":
-        print("claimkit: interrupted; everything listed above as marked is registered and "
-              "in place; run the same command again to finish the rest", file=err, flush=True)
-        return EXIT_INTERRUPTED
-    if s.stopped:
-        print(f"claimkit: stopped early: {s.stopped}; what was marked is registered and in "
-              "place; free space and run the same command again to finish the rest",
-              file=err, flush=True)
-        return EXIT_SOME_FAILED
-    if total == 0:
-        print("claimkit: error: no image files found in the inputs", file=err)
-        return EXIT_BAD_INPUT
-    if s.failures:
-        if done == 0 and all(k == "input" for k in s.failure_kinds):
-            return EXIT_BAD_INPUT
-        return EXIT_SOME_FAILED
-    return EXIT_OK
+    batch.summary.total = len(pairs) + len(problems)
+    return batch.summary

@@ -23,8 +23,19 @@ from datetime import datetime, timezone
 from pathlib import Path
 
 import numpy as np
+from PIL import Image
+from skimage import data
+from skimage.transform import rescale
 
+from claimkit.case.bundle import export_bundle
+from claimkit.case.examine import examine_case
+from claimkit.case.store import add_exhibit, new_case
+from claimkit.dossier.build import build_report
 from claimkit.errors import InputError
+from claimkit.evidence.profile import Profile
+from claimkit.evidence.timestamp import load_certificates
+from claimkit.verify import verify_bundle
+from claimkit.workflow import mark_file
 
 __all__ = ["SCENARIO", "load_scenario", "make_test_tsa", "run_demo"]
 
@@ -125,9 +136,6 @@ def make_test_tsa(folder: Path, name: str) -> Callable[[bytes], bytes]:
 
 
 def _picture(name: str, upscale: float) -> np.ndarray:
-    from skimage import data
-    from skimage.transform import rescale
-
     if name not in ALLOWED_PICTURES:
         raise InputError(f"picture {name!r} is not one the demo may use ({', '.join(ALLOWED_PICTURES)})")
     img = getattr(data, name)()
@@ -140,7 +148,6 @@ def _picture(name: str, upscale: float) -> np.ndarray:
 
 def make_copy(published: Path, out: Path, edits: dict) -> None:
     """What the shop did: resize, turn, crop, recompress (Pillow's own resampling and JPEG)."""
-    from PIL import Image
 
     with Image.open(published) as im:
         im = im.convert("RGB")
@@ -174,15 +181,7 @@ def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None =
     robustness : bool
         Run the robustness battery on the published file (the dossier's table).
     """
-    from PIL import Image
 
-    from claimkit.case.bundle import export_bundle
-    from claimkit.case.examine import examine_case
-    from claimkit.case.store import add_exhibit, new_case
-    from claimkit.dossier.build import build_report
-    from claimkit.evidence.profile import Profile
-    from claimkit.verify import verify_bundle
-    from claimkit.workflow import mark_file
 
     say = echo or (lambda s: None)
     sc = scenario or load_scenario()
@@ -222,7 +221,7 @@ def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None =
         say(f"4. the shop's copies: {', '.join(p.name for p in copies)}")
         case_dir = folder / "case-tidewater"
         case = new_case(case_dir, sc["case_title"], profile)
-        for c, p in zip(sc["copies"], copies):
+        for c, p in zip(sc["copies"], copies, strict=True):
             add_exhibit(case, p, source=c["source"], found=c.get("found"), by=c.get("by"),
                         note=c.get("note"), profile=profile)
         say(f"5. case {case.case_id}: {len(copies)} exhibits taken in (copied, hashed, logged)")
@@ -249,7 +248,6 @@ def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None =
             f"{key_sha256} (told by phone, in the demo)")
     finally:
         profile.close()
-    from claimkit.evidence.timestamp import load_certificates
     result = verify_bundle(bundle, expect_keys=(key_sha256,), disclosure=delivered,
                            tsa_roots=load_certificates((folder / "test-tsa" / "ca.pem")
                                                        .read_bytes()))

@@ -7,6 +7,8 @@ and exit without a traceback.
 
 from __future__ import annotations
 
+from dataclasses import dataclass, field
+
 
 class ClaimkitError(Exception):
     """Base class. ``exit_code`` 2 is bad input or usage, 1 a failed check."""
@@ -32,7 +34,31 @@ class ProfileError(InputError):
     """No profile, a damaged profile, or a wrong passphrase (exit 2)."""
 
 
+class AlreadyExists(InputError):
+    """The output exists and claimkit was not asked to replace it (exit 2)."""
+
+
+class DiskFull(InputError):
+    """A write failed for want of space or quota (exit 2): free space and run again."""
+
+
 class CheckFailed(ClaimkitError):
     """A verification found something wrong (exit 1)."""
 
     exit_code = 1
+
+
+@dataclass(kw_only=True)
+class Outcome:
+    """The result of a check that can fail and says what failed (the one such type).
+
+    ``problems`` empty means the check held; each entry names one failure.
+    Results whose verdict also rests on parts (a work on its timestamps, an
+    audit on its log) extend :attr:`ok` and still name every failure.
+    """
+
+    problems: list = field(default_factory=list)
+
+    @property
+    def ok(self) -> bool:
+        return not self.problems

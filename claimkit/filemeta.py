@@ -142,7 +142,6 @@ class _ExifTool:
     def __init__(self) -> None:
         self._lock = threading.Lock()
         self._proc: subprocess.Popen | None = None
-        self._spawner: ThreadPoolExecutor | None = None
         self._pid = 0
         self._count = 0
         self.version = 0.0
@@ -168,16 +167,9 @@ class _ExifTool:
         # In -stay_open mode exiftool keeps polling its argument file after end of
         # file, so it outlives a process that dies without closing it (a pool worker
         # ends with os._exit, which skips atexit). On Linux the kernel ends it with us.
-        # Linux sends the parent-death signal when the *thread* that started the child
-        # ends (prctl(2), PR_SET_PDEATHSIG), and the first exiftool command often comes
-        # from a short-lived thread (mark writes the file on a helper thread): exiftool
-        # is therefore started from one thread that lasts as long as the process.
-        if self._spawner is None or self._pid != os.getpid():
-            self._spawner = ThreadPoolExecutor(max_workers=1,
-                                               thread_name_prefix="claimkit-exiftool")
-        proc = self._spawner.submit(
-            subprocess.Popen, cmd, stdin=subprocess.PIPE, stdout=subprocess.PIPE,
-            stderr=subprocess.PIPE, preexec_fn=_die_with_parent).result()
+        proc = subprocess.Popen(cmd, stdin=subprocess.PIPE, stdout=subprocess.PIPE,
+                                stderr=subprocess.PIPE,
+                                preexec_fn=_die_with_parent)  # noqa: PLW1509 - one syscall
         self._pid = os.getpid()
         return proc
 
@@ -189,7 +181,7 @@ class _ExifTool:
         with self._lock:
             if self._proc is None or self._pid != os.getpid() or self._proc.poll() is not None:
                 # A forked worker must not share its parent's pipes: start its own.
-                self._proc = self._start()
+                self._proc = _starter().submit(self._start).result()
             self._count += 1
             n = self._count
             lines = [*args, "-echo4", f"{{done{n}}}", f"-execute{n}"]
@@ -226,23 +218,56 @@ def _config_file() -> Path:
     return path
 
 
+_STARTER: tuple[int, ThreadPoolExecutor] | None = None
+
+
+def _starter() -> ThreadPoolExecutor:
+    """One long-lived thread of this process that starts exiftool.
+
+    Linux's parent-death signal (``PR_SET_PDEATHSIG``) fires when the
+    *thread* that forked the child ends, not the process: started from a
+    marking writer thread, which ends after every photo, exiftool was killed
+    and started again (about 1.5 s of Perl start-up) for each file. Started
+    from this thread, which lives as long as the process, it ends with the
+    process, as intended.
+    """
+    global _STARTER
+    if _STARTER is None or _STARTER[0] != os.getpid():
+        _STARTER = (os.getpid(), ThreadPoolExecutor(max_workers=1,
+                                                    thread_name_prefix="claimkit-exiftool"))
+    return _STARTER[1]
+
+
+# prctl is looked up here, in the parent, so that the forked child only makes one system
+# call before exec (no dynamic loading, no lock another thread might hold at the fork).
+_PRCTL = ctypes.CDLL(None, use_errno=True).prctl if sys.platform.startswith("linux") else None
+
+
 def _die_with_parent() -> None:
     """In the exiftool child: ask Linux to send SIGTERM when the parent ends."""
-    if sys.platform.startswith("linux"):
-        libc = ctypes.CDLL(None, use_errno=True)
-        libc.prctl(1, signal.SIGTERM)  # PR_SET_PDEATHSIG = 1 (prctl(2))
+    if _PRCTL is not None:
+        _PRCTL(1, signal.SIGTERM)  # PR_SET_PDEATHSIG = 1 (prctl(2))
 
 
 def _read_until(stream, marker: str) -> str:
-    chunks: list[str] = []
-    while True:
-        line = stream.readline()
-        if not line:
+    """Everything ``stream`` gives up to the line ``marker``.
+
+    Read in large chunks straight from the pipe, not line by line: the
+    marking writer thread calls this while another thread computes SSIM, and
+    every Python-level read waits its turn for the interpreter lock (about
+    5 ms), so a few hundred readline calls cost seconds; a few os.read calls
+    cost nothing.
+    """
+    fd = stream.fileno()
+    end = ("\n" + marker + "\n").encode()
+    buf = bytearray(b"\n")
+    while not buf.endswith(end) and not buf.endswith(end.replace(b"\n", b"\r\n")):
+        chunk = os.read(fd, 1 << 16)
+        if not chunk:
             raise RuntimeError("exiftool stopped unexpectedly")
-        text = line.decode("utf-8", "replace")
-        if text.rstrip("\r\n") == marker:
-            return "".join(chunks)
-        chunks.append(text)
+        buf += chunk
+    text = bytes(buf[1:]).decode("utf-8", "replace")
+    return text[:text.rindex(marker)]
 
 
 _TOOL = _ExifTool()

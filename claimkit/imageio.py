@@ -44,10 +44,11 @@ from pathlib import Path
 from typing import TypeVar
 
 import numpy as np
+import tifffile
 from PIL import Image, UnidentifiedImageError
 from PIL.PngImagePlugin import PngInfo
 
-from claimkit.errors import InputError
+from claimkit.errors import AlreadyExists, InputError
 from claimkit.evidence.storage import atomic_write
 
 __all__ = [
@@ -581,10 +582,6 @@ def _is_16bit_multichannel_tiff(im: Image.Image) -> bool:
 def _read_tiff16(data: bytes) -> tuple[np.ndarray, np.ndarray | None] | None:
     """Full-precision 16-bit colour TIFF through tifffile; None if it cannot."""
     try:
-        import tifffile
-    except ImportError:  # pragma: no cover - tifffile ships with scikit-image
-        return None
-    try:
         with tifffile.TiffFile(io.BytesIO(data)) as tif:
             page = tif.pages[0]
             arr = page.asarray()
@@ -957,8 +954,6 @@ def _encode_tiff16(pixels: np.ndarray, alpha: np.ndarray | None, like: Picture) 
     sub-IFD (e.g. DateTimeOriginal) is not written: tifffile has no way to
     add one.
     """
-    import tifffile
-
     data = pixels
     extrasamples = None
     if alpha is not None:
@@ -996,10 +991,8 @@ def _atomic_write(path: Path, payload: bytes, *, force: bool) -> None:
     """Temp file in the same folder, fsync, rename; without ``force`` never replace a file."""
     try:
         atomic_write(path, payload, replace=force)
-    except InputError as exc:
-        if "already exists" in exc.message:
-            raise InputError("already exists; use --force to replace it", path=path) from None
-        raise
+    except AlreadyExists:
+        raise AlreadyExists("already exists; use --force to replace it", path=path) from None
 
 
 # ---------------------------------------------------------------- pixel helpers
@@ -1037,7 +1030,7 @@ def to_luma(pixels: np.ndarray) -> np.ndarray:
     same arithmetic, in the same order, as the one-pass
     ``np.einsum("ijk,k->ij", ..., dtype=float32)`` earlier versions used,
     so the luma (and every mark derived from it) is bit-for-bit unchanged;
-    ``tests/test_markspeed.py`` checks this over all 2**24 8-bit colours.
+    ``tests/test_mark_pipeline.py`` checks this over all 2**24 8-bit colours.
 
     References
     ----------

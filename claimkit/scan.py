@@ -20,9 +20,9 @@ workers are processes of this user on this machine. With ``--engine dask``
 they go to the cluster's workers: use only a cluster you trust, over TLS
 (``tls://`` scheduler addresses) when it leaves the machine.
 
-Exit status: 0 when every file was read (claimed or not); 1 when some files
-could not be read (each listed); 2 when no file could be read or none was
-found; 130 when interrupted (the lines and report cover the files done).
+:func:`scan_folders` hands each file's result to the caller as it comes
+(``on_row``) and returns a :class:`ScanSummary`; the command line
+(:mod:`claimkit.cli.scale`) prints them and chooses the exit status.
 """
 
 from __future__ import annotations
@@ -30,15 +30,19 @@ from __future__ import annotations
 import csv
 import io
 import os
-import sys
 import tempfile
 import time
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from claimkit import workflow
 from claimkit.batch import IMAGE_SUFFIXES, find_images
+from claimkit.capture.warc import is_warc
+from claimkit.capture.warcintake import take_in, unpack_images
 from claimkit.case.store import add_exhibit, open_case
 from claimkit.errors import ClaimkitError, InputError
+from claimkit.mark import detect
 from claimkit.runner import (
     Outcome,
     Progress,
@@ -51,8 +55,6 @@ from claimkit.runner import (
 
 __all__ = ["CSV_COLUMNS", "ScanSummary", "scan_folders", "scan_task"]
 
-EXIT_OK, EXIT_SOME_UNREADABLE, EXIT_NOTHING_READ, EXIT_INTERRUPTED = 0, 1, 2, 130
-
 CSV_COLUMNS = ("file", "status", "detected", "work_id", "registered",
                "false_alarm_probability", "message_psnr_db", "rotation_deg", "scale",
                "flipped", "shift_x_px", "shift_y_px", "width", "height", "sha256", "error",
@@ -62,8 +64,6 @@ CSV_COLUMNS = ("file", "status", "detected", "work_id", "registered",
 def scan_task(path: str, seed: bytes, checker, threshold: float,
               max_pixels: int | None) -> dict:
     """Examine one file (runs in a worker; no registry). Returns the report or ``{"error": ...}``."""
-    from claimkit import workflow
-
     tune_memory()
     p = Path(path)
     try:
@@ -91,6 +91,8 @@ class ScanSummary:
     seconds: float = 0.0
     not_started: int = 0
     stopped: str | None = None
+    total: int = 0          # files found plus inputs that could not be used
+    report: str | None = None
 
     def as_dict(self) -> dict:
         return {"summary": True, "files_read": self.read, "claimed": self.claimed,
@@ -117,8 +119,6 @@ class _CaseAdder:
         try:
             origin = self.origins.get(path)
             if origin is not None:
-                from claimkit.capture.warcintake import take_in
-
                 ex = take_in(self.case, path, origin, self.profile, note=note)
             else:
                 ex = add_exhibit(self.case, path, source=f"file found by claimkit scan: {path}",
@@ -179,30 +179,14 @@ class _CsvReport:
         self.tmp.unlink(missing_ok=True)
 
 
-def _where(rep: dict) -> str:
-    if rep.get("url"):
-        return f"{rep['url']} (captured {rep.get('capture_date')}, in {rep['file']})"
-    return str(rep["file"])
-
-
-def _human_line(rep: dict) -> str:
-    if "error" in rep:
-        return f"unreadable  {rep['error']}"
-    if not rep.get("detected"):
-        return f"-           {_where(rep)}"
-    who = rep.get("work_id") or "payload unreadable"
-    reg = "" if rep.get("registered") else " (not in this registry)"
-    geom = rep.get("geometry_text") or ""
-    return (f"CLAIMED     {_where(rep)}: {who}{reg}; false-alarm bound "
-            f"{rep.get('false_alarm_text', rep.get('false_alarm_probability'))}; {geom}")
-
-
-def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
+def scan_folders(profile, folders: list[Path], *,
+                 on_row: Callable[[dict], None] | None = None,
+                 on_notice: Callable[[str], None] | None = None,
                  report: Path | None = None, case_dir: Path | None = None,
                  engine: str = "local", scheduler: str | None = None,
                  workers: int | None = None, progress: bool | None = None,
                  threshold: float | None = None, max_pixels: int | None = None,
-                 force: bool = False) -> int:
+                 force: bool = False) -> ScanSummary:
     """Examine every image under ``folders`` with the owner's key.
 
     Parameters
@@ -211,11 +195,13 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
         Opened with its passphrase (the detection seed and payload check come from it).
     folders : list of Path
         Folders (walked recursively) or single files.
-    json_lines : bool
-        One JSON object per file on stdout, in a stable order: the
-        ``examine --json`` fields plus ``status`` (``claimed``, ``not found``
-        or ``unreadable``, the last with ``error``); the summary goes to
-        stderr as a JSON object with ``"summary": true``.
+    on_row : callable, optional
+        Called with each file's result, in a stable order: the ``examine
+        --json`` fields plus ``status`` (``claimed``, ``not found`` or
+        ``unreadable``, the last with ``error``).
+    on_notice : callable, optional
+        Called with a one-line note (a copy not added to the case, a stop
+        request); default: not shown.
     report : Path, optional
         Also write a CSV with one row per file (columns :data:`CSV_COLUMNS`).
     case_dir : Path, optional
@@ -228,17 +214,10 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
 
     Returns
     -------
-    int
-        Exit status (module notes).
+    ScanSummary
     """
-    from claimkit import workflow
-    from claimkit.mark import detect
-
-    threshold = detect.DEFAULT_THRESHOLD if threshold is None else float(threshold)
-    if not 0 < threshold < 1:
-        raise InputError(f"--threshold {threshold} must lie between 0 and 1")
-    from claimkit.capture.warc import is_warc
-
+    threshold = workflow.check_threshold(detect.DEFAULT_THRESHOLD if threshold is None
+                                         else float(threshold))
     passed_over: list[Path] = []
     inputs = [Path(f) for f in folders]
     warcs = [f for f in inputs if is_warc(f) and f.is_file()]
@@ -254,25 +233,23 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
     origins = {}
     small: list[str] = []
     if unpacked is not None:
-        from claimkit.capture.warcintake import unpack_images
-
         try:
             origins = unpack_images(warcs, Path(unpacked.name), small)
         except BaseException:
             unpacked.cleanup()
             raise
         files += [(f, None, None) for f in origins]
-        if small:
-            print(f"claimkit: note: {len(small)} image(s) in the WARC file(s) are smaller than "
-                  "an examination needs (icons, spacers) and were not examined",
-                  file=sys.stderr, flush=True)
+        if small and on_notice is not None:
+            on_notice(f"claimkit: note: {len(small)} image(s) in the WARC file(s) are smaller "
+                      "than an examination needs (icons, spacers) and were not examined")
     seed = profile.detection_seed
     checker = workflow.owner_payload_check(profile)
-    err = sys.stderr
 
     def notice(msg: str) -> None:
         bar.clear()
-        print(msg, file=err, flush=True)
+        if on_notice is not None:
+            on_notice(msg)
+        bar.draw(force=True)
 
     bar = Progress(len(files), enabled=progress, label="scanning ")
     adder = (_CaseAdder(Path(case_dir), profile, notice, origins)
@@ -319,15 +296,10 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
             rep["status"] = "claimed" if rep.get("detected") else "not-found"
         if csv_out is not None:
             csv_out.add(rep)
-        if json_lines:
-            from claimkit.cli.common import print_json
+        if on_row is not None:
             bar.clear()
-            # The error is an object in every command's JSON (examine's too).
-            print_json({**rep, "error": {"message": rep["error"], "exit_code": 2}}
-                       if isinstance(rep.get("error"), str) else rep)
+            on_row(rep)
             bar.draw(force=True)
-        else:
-            bar.write(_human_line(rep))
         bar.advance()
 
     start = time.monotonic()
@@ -352,42 +324,6 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False,
     s.not_started = len(files) - handed
     if csv_out is not None:
         csv_out.close()
-    return _finish(s, total=len(files) + len(problems), json_lines=json_lines, report=report)
-
-
-def _finish(s: ScanSummary, *, total: int, json_lines: bool, report: Path | None) -> int:
-    err = sys.stderr
-    if json_lines:
-        import json
-        print(json.dumps(s.as_dict(), sort_keys=True), file=err, flush=True)
-    else:
-        rate = s.read / s.seconds if s.seconds > 0 else 0.0
-        line = (f"{s.read} files read, {s.claimed} claimed ({s.registered} in this registry), "
-                f"{len(s.unreadable)} unreadable")
-        if s.added_to_case:
-            line += f", {s.added_to_case} added to the case"
-        if s.not_started:
-            line += f", {s.not_started} not examined"
-        if s.passed_over:
-            line += (f", {s.passed_over} other files passed over (not "
-                     f"{'/'.join(x.lstrip('.') for x in IMAGE_SUFFIXES)})")
-        print(f"{line}; {s.seconds:.1f} s, {rate:.1f} files/s", flush=True)
-        if report is not None:
-            print(f"report: {report}", flush=True)
-        if s.claimed:
-            print("A claim rests on technical evidence, not legal advice; consult counsel "
-                  "before acting on it.", flush=True)
-    if s.unreadable:
-        print(f"claimkit: {len(s.unreadable)} file(s) could not be read:", file=err)
-        for line in s.unreadable:
-            print(f"claimkit: error: {line}", file=err)
-    if s.stopped == "interrupted":
-        print("claimkit: interrupted; the lines above cover the files examined so far",
-              file=err, flush=True)
-        return EXIT_INTERRUPTED
-    if total == 0:
-        print("claimkit: error: no image files found", file=err)
-        return EXIT_NOTHING_READ
-    if s.read == 0:
-        return EXIT_NOTHING_READ
-    return EXIT_SOME_UNREADABLE if s.unreadable else EXIT_OK
+    s.total = len(files) + len(problems)
+    s.report = None if report is None else str(report)
+    return s

@@ -15,6 +15,8 @@ from __future__ import annotations
 import platform
 from importlib import metadata
 
+from claimkit import __version__
+
 __all__ = ["SOFTWARE_TYPE", "differences", "versions"]
 
 SOFTWARE_TYPE = "claimkit/software/v1"
@@ -31,8 +33,6 @@ def _dist(name: str) -> str | None:
 def versions() -> dict:
     """Versions of the software the numbers, figures and PDF depend on (JSON-ready)."""
     from PIL import features
-
-    from claimkit import __version__
 
     out = {"type": SOFTWARE_TYPE, "claimkit": __version__,
            "python": platform.python_version(),

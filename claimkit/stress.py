@@ -30,6 +30,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from PIL import Image, ImageEnhance, ImageFilter
 
+from claimkit import words
 from claimkit.imageio import to_luma
 from claimkit.mark import detect, payload
 
@@ -408,19 +409,6 @@ def plot_png(rows: list[dict], *, title: str = "", threshold: float = detect.DEF
 
 
 def geometry_text(row: dict) -> str:
-    t = row["true_geometry"]
-    e = row.get("estimated_geometry")
-    true = _geom_words(t)
-    if not e:
-        return f"{true} -> not found"
-    return f"{true} -> {_geom_words(e)}"
-
-
-def _geom_words(g: dict) -> str:
-    # Adding 0.0 turns a rounded -0.0 into 0.0.
-    parts = [f"{round(g['rotation_deg'], 1) + 0.0:+.1f}°", f"x{g['scale']:.3f}"]
-    if abs(g.get("aspect", 1.0) - 1.0) >= 0.005:
-        parts.append(f"aspect {g['aspect']:.2f}")
-    if g.get("flipped"):
-        parts.append("mirrored")
-    return " ".join(parts)
+    """'true -> estimated' geometry of a battery row, in the short words of :mod:`claimkit.words`."""
+    return (f"{words.geometry(row['true_geometry'], short=True)} -> "
+            f"{words.geometry(row.get('estimated_geometry'), short=True)}")

@@ -19,17 +19,20 @@ from pathlib import Path
 
 import numpy as np
 
-from claimkit import __version__
+from claimkit import __version__, words
 from claimkit.errors import InputError
-from claimkit.evidence.profile import derive_payload_tag, work_id_for
-from claimkit.evidence.storage import sha256_file
-from claimkit.filemeta import Carried, Rights, carry_metadata
+from claimkit.evidence.keys import derive_payload_tag, work_id_for
+from claimkit.evidence.rights import load_rights
+from claimkit.evidence.storage import fsync_dir, sha256_file
+from claimkit.filemeta import INSTALL_HINT, Carried, Rights, carry_metadata, exiftool_available
 from claimkit.imageio import (
     CURRENT_EXAMINATION_METHOD,
     LUMA_FROM_RGB,
     Picture,
     add_luma_delta,
     canvas_like,
+    check_output_path,
+    output_format,
     read_picture,
     to_luma,
     write_picture_keeping_bytes,
@@ -40,6 +43,37 @@ from claimkit.mark.fingerprint import perceptual_fingerprint
 
 MIN_MARK_SIDE = pattern.TILE      # one full period of the mark on each side
 MIN_EXAMINE_SIDE = 64
+
+
+# ---------------------------------------------------------------- input checks
+# The one place where the numbers a user gives are checked, for every command and the API.
+
+def check_strength(strength: float) -> float:
+    """The marking strength, refused (InputError) outside 0..4."""
+    if not 0 < strength <= 4:
+        raise InputError(f"strength {strength} is outside 0..4")
+    return float(strength)
+
+
+def check_jpeg_quality(quality: int) -> int:
+    """The JPEG quality of a marked copy, refused outside 1..100."""
+    if not 1 <= int(quality) <= 100:
+        raise InputError(f"JPEG quality {quality} is outside 1..100")
+    return int(quality)
+
+
+def check_threshold(threshold: float) -> float:
+    """The false-alarm bound that counts as a detection, refused outside (0, 1)."""
+    if not 0 < threshold < 1:
+        raise InputError(f"--threshold {threshold} must lie between 0 and 1")
+    return float(threshold)
+
+
+def check_decoys(decoys: int) -> int:
+    """The number of decoy keys of a control, refused outside 0..10000."""
+    if not 0 <= decoys <= 10000:
+        raise InputError(f"decoys {decoys} is outside 0..10000")
+    return int(decoys)
 
 
 def mark_parameters(strength: float) -> dict:
@@ -259,15 +293,39 @@ def _discard_written(job, out: Path) -> None:
     out.unlink(missing_ok=True)
 
 
+STAGED_TAG = ".claimkit-staged"
+
+
+def staged_path(out: Path) -> Path:
+    """Hidden name beside ``out`` where a marked copy waits until it is registered."""
+    return out.with_name(f".{out.stem}{STAGED_TAG}{out.suffix}")
+
+
+def place_staged(staged: Path, out: Path, *, force: bool) -> None:
+    """Move a registered staged copy to its final name; without ``force`` never replace a file."""
+    if force:
+        os.replace(staged, out)
+    else:
+        try:
+            os.link(staged, out)       # fails if the name appeared meanwhile
+        except FileExistsError:
+            raise InputError("already exists (appeared during the run); the marked copy "
+                             f"was kept as {staged.name}", path=out) from None
+        except OSError:
+            if out.exists():
+                raise
+            os.replace(staged, out)    # a file system without hard links
+        else:
+            staged.unlink()
+    fsync_dir(out.parent)
+
+
 def prepare_output(out: Path, src: Path, *, force: bool) -> None:
     """Check an output path before any work, creating its folder as folder mode does.
 
     Everything the user can fix is found here (exit 2), before a serial is
     handed out or a pixel is changed.
     """
-    from claimkit.filemeta import INSTALL_HINT, exiftool_available
-    from claimkit.imageio import check_output_path, output_format
-
     if out.resolve() == src.resolve():
         raise InputError("the output would overwrite the original; choose another name", path=out)
     output_format(out)
@@ -288,12 +346,15 @@ def mark_file(profile, src: str | os.PathLike, out: str | os.PathLike, *, force:
               rights: Rights | None = None) -> dict:
     """Mark one photo, write the marked copy to ``out`` and register the work.
 
-    The original is only read. ``out``'s folder is created if missing. The
-    marked file is staged, its metadata carried over and the rights fields
-    written (exiftool), then it is put in place atomically and registered
-    with the hash of those final bytes; if anything fails the marked file is
-    removed again and the serial given back, so a failed mark leaves no
-    unregistered marked file and uses up no serial.
+    The original is only read. ``out``'s folder is created if missing. The one
+    marking protocol, the same as a batch's (:mod:`claimkit.batch`): the marked
+    copy is written under a hidden staged name beside ``out``
+    (:func:`staged_path`), its metadata carried over and the rights fields
+    written (exiftool); the work is registered with the hash of those final
+    bytes, and only then is the copy renamed to ``out`` (:func:`place_staged`).
+    So a file under its final name is always registered, whenever the process
+    is killed. If marking or registering fails, the staged file is removed and
+    the serial given back, so a failed mark uses up no serial.
 
     Returns
     -------
@@ -302,21 +363,20 @@ def mark_file(profile, src: str | os.PathLike, out: str | os.PathLike, *, force:
         ``sha256_marked``, ``metadata_dropped`` and more (see the README).
     """
     src, out = Path(src), Path(out)
-    if not 0 < strength <= 4:
-        raise InputError(f"strength {strength} is outside 0..4")
+    check_strength(strength)
+    check_jpeg_quality(jpeg_quality)
     pic, sha_orig = load_original(src, max_pixels=max_pixels)
     prepare_output(out, src, force=force)
     if rights is None:
-        from claimkit.evidence.rights import load_rights
-
         rights = load_rights(profile.home, profile.owner)
     serial = profile.allocate_serials(1)[0]
     bits = payload.pack(profile.owner_tag, serial, profile.payload_tag(serial))
     meta = FileMetadata(rights=rights, work_id=work_id_for(profile.owner_tag, serial),
                         registry=registry_name(profile))
+    staged = staged_path(out)
     try:
-        facts = mark_picture(pic, out, profile.detection_seed, bits, strength=strength,
-                             jpeg_quality=jpeg_quality, force=force, max_pixels=max_pixels,
+        facts = mark_picture(pic, staged, profile.detection_seed, bits, strength=strength,
+                             jpeg_quality=jpeg_quality, force=True, max_pixels=max_pixels,
                              metadata=meta)
         record = profile.register_work(
             serial, sha256_original=sha_orig, sha256_marked=facts["sha256_marked"],
@@ -324,10 +384,10 @@ def mark_file(profile, src: str | os.PathLike, out: str | os.PathLike, *, force:
             mark_params=mark_parameters(strength), capture=facts["capture"],
             quality=facts["quality"])
     except BaseException:
-        if "facts" in locals():
-            out.unlink(missing_ok=True)
+        staged.unlink(missing_ok=True)
         profile.release_serials([serial])
         raise
+    place_staged(staged, out, force=force)
     return {
         "work_id": record.work_id, "serial": serial,
         "file": str(src), "output": str(out),
@@ -345,7 +405,7 @@ class PayloadChecker:
     """Says whether decoded bits are a valid payload of one owner (picklable, for workers).
 
     Valid: the owner's tag, a serial above 0, and the keyed payload tag of
-    that serial (:func:`claimkit.evidence.profile.derive_payload_tag`).
+    that serial (:func:`claimkit.evidence.keys.derive_payload_tag`).
     """
 
     owner_tag: int
@@ -458,5 +518,11 @@ def report_for(path: Path, pic: Picture, finding: Finding, profile=None) -> dict
             rep["registered"] = True
         else:
             rep["work_id"] = work_id_for(p["owner_tag"], p["serial"])
-    rep["geometry_text"] = detect.describe_in_words(finding.geometry)
+    rep.update(finding_words(finding))
     return rep
+
+
+def finding_words(finding: Finding) -> dict:
+    """The finding's bound and geometry in words (:mod:`claimkit.words`), beside its numbers."""
+    return {"false_alarm_text": words.probability(finding.log10_false_alarm),
+            "geometry_text": words.geometry(finding.geometry)}

@@ -26,6 +26,7 @@ from PIL import Image
 from skimage import data
 
 from claimkit import batch, runner, workflow
+from claimkit.cli import scale
 from claimkit.evidence.profile import Profile
 from claimkit.evidence.storage import sha256_file
 from tests.conftest import TEST_PASSPHRASE
@@ -145,7 +146,7 @@ def test_runner_stop_request_finishes_what_is_in_flight():
 
 def test_marks_a_tree_and_registers_every_file(profile, shoot, tmp_path, capsys):
     out = tmp_path / "marked"
-    code = batch.mark_many(profile, [shoot], out, workers=1, json_lines=True)
+    code = scale.mark_many(profile, [shoot], out, workers=1, json_lines=True)
     rows, err = _lines(capsys)
     assert code == 0, err
     originals = _originals(shoot)
@@ -189,15 +190,15 @@ def test_a_batch_worker_marks_exactly_as_mark_file(profile, shoot, tmp_path):
 
 def test_second_run_marks_nothing_twice(profile, shoot, tmp_path, capsys):
     out = tmp_path / "marked"
-    assert batch.mark_many(profile, [shoot], out, workers=1) == 0
+    assert scale.mark_many(profile, [shoot], out, workers=1) == 0
     capsys.readouterr()
     before = len(profile.works())
-    assert batch.mark_many(profile, [shoot], out, workers=1, json_lines=True) == 0
+    assert scale.mark_many(profile, [shoot], out, workers=1, json_lines=True) == 0
     rows, _ = _lines(capsys)
     assert {r["status"] for r in rows} == {"skipped"}
     assert len(profile.works()) == before
     # A marked copy given as input is recognised too, not marked again.
-    assert batch.mark_many(profile, [out / "day1"], tmp_path / "again", workers=1,
+    assert scale.mark_many(profile, [out / "day1"], tmp_path / "again", workers=1,
                            json_lines=True) == 0
     rows, _ = _lines(capsys)
     assert [r["reason"] for r in rows] == ["is itself a marked copy"] * 2
@@ -210,7 +211,7 @@ def test_bad_files_are_listed_and_the_rest_is_marked(profile, shoot, tmp_path, c
     (shoot / "day1" / "letter.jpg").write_text("Dear Tidewater Home Goods, ...")
     _save(data.coffee()[:100, :100], shoot / "day1" / "tiny.png")
     out = tmp_path / "marked"
-    code = batch.mark_many(profile, [shoot], out, workers=1, json_lines=True)
+    code = scale.mark_many(profile, [shoot], out, workers=1, json_lines=True)
     rows, err = _lines(capsys)
     assert code == 1
     failed = {Path(r["file"]).name: r["error"]["message"] for r in rows
@@ -231,12 +232,12 @@ def test_every_input_bad_is_exit_2(profile, tmp_path, capsys):
     folder.mkdir()
     (folder / "a.jpg").write_bytes(b"\xff\xd8\xff\xe0 not really")
     (folder / "b.png").write_text("text")
-    assert batch.mark_many(profile, [folder], tmp_path / "out", workers=1) == 2
-    assert batch.mark_many(profile, [tmp_path / "nowhere.jpg", folder], tmp_path / "out",
+    assert scale.mark_many(profile, [folder], tmp_path / "out", workers=1) == 2
+    assert scale.mark_many(profile, [tmp_path / "nowhere.jpg", folder], tmp_path / "out",
                            workers=1) == 2
     empty = tmp_path / "empty"
     empty.mkdir()
-    assert batch.mark_many(profile, [empty], tmp_path / "out", workers=1) == 2
+    assert scale.mark_many(profile, [empty], tmp_path / "out", workers=1) == 2
     assert profile.works() == []
 
 
@@ -253,7 +254,7 @@ def test_a_file_that_vanishes_mid_run(profile, shoot, tmp_path, monkeypatch, cap
 
     monkeypatch.setattr(batch, "mark_task", task)
     out = tmp_path / "marked"
-    code = batch.mark_many(profile, [shoot], out, workers=1, json_lines=True)
+    code = scale.mark_many(profile, [shoot], out, workers=1, json_lines=True)
     rows, _ = _lines(capsys)
     assert code == 1
     gone = [r for r in rows if r["file"] == str(victim)]
@@ -277,7 +278,7 @@ def test_full_disk_stops_keeps_what_was_done_and_resumes(profile, shoot, tmp_pat
 
     monkeypatch.setattr(imageio, "_atomic_write", writer)
     out = tmp_path / "marked"
-    code = batch.mark_many(profile, [shoot], out, workers=1, json_lines=True)
+    code = scale.mark_many(profile, [shoot], out, workers=1, json_lines=True)
     rows, err = _lines(capsys)
     assert code == 1
     assert [r["status"] for r in rows] == ["marked", "marked", "failed"]
@@ -289,7 +290,7 @@ def test_full_disk_stops_keeps_what_was_done_and_resumes(profile, shoot, tmp_pat
     assert_consistent(profile, out, _originals(shoot))
 
     monkeypatch.setattr(imageio, "_atomic_write", real)     # space freed
-    assert batch.mark_many(profile, [shoot], out, workers=1, json_lines=True) == 0
+    assert scale.mark_many(profile, [shoot], out, workers=1, json_lines=True) == 0
     rows, _ = _lines(capsys)
     assert [r["status"] for r in rows] == ["skipped"] * 2 + ["marked"] * 3
     assert len(profile.works()) == 5
@@ -306,12 +307,15 @@ def test_full_registry_disk_registers_nothing_half_way(profile, shoot, tmp_path,
     def register(*a, **k):
         calls.append(a)
         if len(calls) == 2:
-            raise sqlite3.OperationalError("database or disk is full")
+            # What SQLite raises (Python 3.11+ carries the result code, SQLITE_FULL = 13).
+            exc = sqlite3.OperationalError("database or disk is full")
+            exc.sqlite_errorcode = sqlite3.SQLITE_FULL
+            raise exc
         return real(*a, **k)
 
     monkeypatch.setattr(profile, "register_work", register)
     out = tmp_path / "marked"
-    code = batch.mark_many(profile, [shoot], out, workers=1, json_lines=True)
+    code = scale.mark_many(profile, [shoot], out, workers=1, json_lines=True)
     rows, err = _lines(capsys)
     assert code == 1
     assert [r["status"] for r in rows] == ["marked", "failed"]
@@ -320,7 +324,7 @@ def test_full_registry_disk_registers_nothing_half_way(profile, shoot, tmp_path,
     assert len(profile.works()) == 1
     assert_consistent(profile, out, _originals(shoot))
     monkeypatch.setattr(profile, "register_work", real)
-    assert batch.mark_many(profile, [shoot], out, workers=1) == 0
+    assert scale.mark_many(profile, [shoot], out, workers=1) == 0
     assert len(profile.works()) == 5
     assert_consistent(profile, out, _originals(shoot))
 
@@ -338,21 +342,21 @@ def test_ctrl_c_in_process_finishes_the_current_file(profile, shoot, tmp_path,
 
     monkeypatch.setattr(batch, "mark_task", task)
     out = tmp_path / "marked"
-    code = batch.mark_many(profile, [shoot], out, workers=1, json_lines=True)
+    code = scale.mark_many(profile, [shoot], out, workers=1, json_lines=True)
     rows, err = _lines(capsys)
     assert code == 130
     assert [r["status"] for r in rows] == ["marked", "marked"]
     assert "interrupted" in err and "run the same command again" in err
     assert_consistent(profile, out, _originals(shoot))
     monkeypatch.setattr(batch, "mark_task", real)
-    assert batch.mark_many(profile, [shoot], out, workers=1) == 0
+    assert scale.mark_many(profile, [shoot], out, workers=1) == 0
     assert len(profile.works()) == 5
     assert_consistent(profile, out, _originals(shoot))
 
 
 def test_a_registered_copy_is_moved_into_place_or_made_again(profile, shoot, tmp_path, capsys):
     out = tmp_path / "marked"
-    assert batch.mark_many(profile, [shoot], out, workers=1) == 0
+    assert scale.mark_many(profile, [shoot], out, workers=1) == 0
     coffee, rocket = out / "day1" / "coffee.jpg", out / "day2" / "rocket.jpg"
     coffee_sha, rocket_sha = sha256_file(coffee), sha256_file(rocket)
     # A run stopped after registering but before renaming leaves the staged copy.
@@ -360,7 +364,7 @@ def test_a_registered_copy_is_moved_into_place_or_made_again(profile, shoot, tmp
     # A marked copy deleted by the owner: made again, bit for bit, with its own serial.
     rocket.unlink()
     capsys.readouterr()
-    assert batch.mark_many(profile, [shoot], out, workers=1, json_lines=True) == 0
+    assert scale.mark_many(profile, [shoot], out, workers=1, json_lines=True) == 0
     rows, _ = _lines(capsys)
     status = {Path(r["output"]).name: (r["status"], r.get("reason")) for r in rows}
     assert status["coffee.jpg"] == ("restored", "registered copy moved into place")
@@ -372,10 +376,10 @@ def test_a_registered_copy_is_moved_into_place_or_made_again(profile, shoot, tmp
 
 def test_a_copy_that_cannot_be_made_again_is_reported(profile, shoot, tmp_path, capsys):
     one = shoot / "day1" / "coffee.jpg"
-    assert batch.mark_many(profile, [one], tmp_path / "first", workers=1) == 0
+    assert scale.mark_many(profile, [one], tmp_path / "first", workers=1) == 0
     capsys.readouterr()
     # Another JPEG quality gives other bytes: the registered copy cannot be re-made.
-    code = batch.mark_many(profile, [one, shoot / "day2" / "brick.tif"], tmp_path / "second",
+    code = scale.mark_many(profile, [one, shoot / "day2" / "brick.tif"], tmp_path / "second",
                            workers=1, jpeg_quality=90, json_lines=True)
     rows, _ = _lines(capsys)
     assert code == 1
@@ -389,21 +393,21 @@ def test_a_copy_that_cannot_be_made_again_is_reported(profile, shoot, tmp_path, 
 def test_output_folder_rules(profile, shoot, tmp_path, capsys):
     # Inside an input folder: not walked into (nothing is marked twice).
     inside = shoot / "marked"
-    assert batch.mark_many(profile, [shoot], inside, workers=1) == 0
+    assert scale.mark_many(profile, [shoot], inside, workers=1) == 0
     capsys.readouterr()
-    assert batch.mark_many(profile, [shoot], inside, workers=1, json_lines=True) == 0
+    assert scale.mark_many(profile, [shoot], inside, workers=1, json_lines=True) == 0
     rows, _ = _lines(capsys)
     assert all(not r["file"].startswith(str(inside)) for r in rows)
     from claimkit.errors import InputError
     with pytest.raises(InputError, match="input folder"):
-        batch.mark_many(profile, [shoot], shoot, workers=1)
+        scale.mark_many(profile, [shoot], shoot, workers=1)
     (tmp_path / "a-file").write_text("x")
     with pytest.raises(InputError, match="must be a folder"):
-        batch.mark_many(profile, [shoot], tmp_path / "a-file", workers=1)
+        scale.mark_many(profile, [shoot], tmp_path / "a-file", workers=1)
     # Two inputs that would land on the same output name: the second is refused.
     other = tmp_path / "other"
     _save(data.coffee(), other / "coffee.jpg", quality=80)
-    code = batch.mark_many(profile, [shoot / "day1" / "coffee.jpg", other / "coffee.jpg"],
+    code = scale.mark_many(profile, [shoot / "day1" / "coffee.jpg", other / "coffee.jpg"],
                            tmp_path / "flat", workers=1, json_lines=True)
     assert code == 1
     assert "rename one of them" in capsys.readouterr().err

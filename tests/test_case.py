@@ -33,7 +33,7 @@ def test_exhibits_are_byte_for_byte_read_only_and_logged(built_case):
     case = open_case(built_case.case)
     exhibits = case.exhibits()
     assert [e.exhibit_id for e in exhibits] == ["exhibit-1", "exhibit-2", "exhibit-3"]
-    for ex, src in zip(exhibits, built_case.copies + [built_case.unmarked]):
+    for ex, src in zip(exhibits, built_case.copies + [built_case.unmarked], strict=True):
         stored = built_case.case / ex.file
         assert stored.read_bytes() == src.read_bytes()
         assert ex.sha256 == _sha(src) == _sha(stored)

@@ -97,7 +97,7 @@ def _build(tmp_path_factory) -> BuiltCase:
         case = root / "case"
         h = ["--home", str(home)]
         assert _run(["case", "new", str(case), "--title", sc["case_title"], *h]) == 0
-        for c, f in zip(sc["copies"], copies):
+        for c, f in zip(sc["copies"], copies, strict=True):
             assert _run(["case", "add", str(case), str(f), "--source", c["source"],
                          "--found", c["found"], "--by", c["by"], "--note", c["note"], *h]) == 0
         assert _run(["case", "add", str(case), str(unmarked), "--source",

@@ -13,7 +13,8 @@ import pytest
 from PIL import Image
 from skimage import data
 
-from claimkit import batch, scan, workflow
+from claimkit import workflow
+from claimkit.cli import scale
 from claimkit.errors import InputError
 from claimkit.evidence.storage import sha256_file
 
@@ -40,7 +41,7 @@ def test_batch_mark_on_dask_registers_what_it_writes(profile, tmp_path, cluster,
     _save(data.rocket(), shoot / "b" / "rocket.jpg", quality=92)
     (shoot / "b" / "broken.jpg").write_bytes(b"\xff\xd8\xff\xe0 truncated")
     out = tmp_path / "marked"
-    code = batch.mark_many(profile, [shoot], out, engine="dask",
+    code = scale.mark_many(profile, [shoot], out, engine="dask",
                            scheduler=cluster.scheduler_address, json_lines=True)
     rows = [json.loads(x) for x in capsys.readouterr().out.splitlines()]
     assert code == 1
@@ -55,7 +56,7 @@ def test_batch_mark_on_dask_registers_what_it_writes(profile, tmp_path, cluster,
     rep, _ = workflow.examine_file(profile, out / "a" / "coffee.jpg")
     assert rep["detected"] and rep["work_id"] == rows[0]["work_id"]
     # And a second run on the cluster marks nothing twice.
-    assert batch.mark_many(profile, [shoot], out, engine="dask",
+    assert scale.mark_many(profile, [shoot], out, engine="dask",
                            scheduler=cluster.scheduler_address, json_lines=True) == 1
     rows = [json.loads(x) for x in capsys.readouterr().out.splitlines()]
     assert [r["status"] for r in rows] == ["skipped", "failed", "skipped", "skipped"]
@@ -68,9 +69,9 @@ def test_scan_on_dask_gives_the_local_answer(profile, tmp_path, cluster, capsys)
     _save(Image.open(tmp_path / "coffee-marked.png"), web / "listing.jpg", quality=80)
     _save(data.chelsea(), web / "cat.jpg", quality=85)
     (web / "zz-broken.jpg").write_bytes(b"GIF89a....")
-    assert scan.scan_folders(profile, [web], workers=1, json_lines=True) == 1
+    assert scale.scan_folders(profile, [web], workers=1, json_lines=True) == 1
     local = [json.loads(x) for x in capsys.readouterr().out.splitlines()]
-    assert scan.scan_folders(profile, [web], engine="dask",
+    assert scale.scan_folders(profile, [web], engine="dask",
                              scheduler=cluster.scheduler_address, json_lines=True) == 1
     remote = [json.loads(x) for x in capsys.readouterr().out.splitlines()]
     assert [r["file"] for r in remote] == [r["file"] for r in local]

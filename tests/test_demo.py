@@ -5,8 +5,8 @@ from __future__ import annotations
 import copy
 import json
 import shutil
-from pathlib import Path
 import subprocess
+from pathlib import Path
 
 import pytest
 

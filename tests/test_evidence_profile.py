@@ -17,7 +17,8 @@ import pytest
 from claimkit.errors import InputError, ProfileError
 from claimkit.evidence import custodylog
 from claimkit.evidence.canonical import canonical_json
-from claimkit.evidence.profile import Profile, commitment_of
+from claimkit.evidence.keys import commitment_of
+from claimkit.evidence.profile import Profile
 
 PASS = b"harwick-bay-test-passphrase"  # same as conftest.TEST_PASSPHRASE
 

@@ -11,7 +11,7 @@ import pytest
 
 from claimkit.evidence import signing
 from claimkit.evidence.canonical import canonical_json, format_number, is_canonical
-from claimkit.evidence.profile import derive_detection_seed, derive_payload_tag
+from claimkit.evidence.keys import derive_detection_seed, derive_payload_tag
 from claimkit.evidence.storage import sha256_file, sha256_hex
 
 # FIPS 180-4 examples (NIST "SHA256.pdf" example values, and the one-million-"a" test

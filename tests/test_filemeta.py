@@ -227,7 +227,7 @@ def test_failed_marks_use_no_serial_and_replace_nothing(profile_home, jpeg_full,
 
     def next_serial():
         with Profile.open_public(profile_home) as p:
-            return int(p._meta("next_serial"))
+            return int(p.registry.meta("next_serial"))
 
     start = next_serial()
     existing = tmp_path / "exists.jpg"

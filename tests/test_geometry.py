@@ -60,7 +60,7 @@ def best_match(copy: np.ndarray, truth: np.ndarray) -> tuple[int, tuple[float, f
             continue
         if abs(err[0]) < 1 and abs(err[1]) < 0.02:
             return i, err
-    raise AssertionError(f"no candidate near the truth: {[l.basis.round(1).tolist() for l in lats]}")
+    raise AssertionError(f"no candidate near the truth: {[lat.basis.round(1).tolist() for lat in lats]}")
 
 
 @pytest.fixture(scope="module")
@@ -137,7 +137,7 @@ def test_candidates_are_ranked_distinct_and_repeatable(hubble):
         for j in range(i + 1, len(a)):
             assert not geometry._related(a[i].basis, a[j].basis)
     # Deterministic: the search uses no key and no randomness.
-    assert all(np.array_equal(p.basis, q.basis) for p, q in zip(a, b))
+    assert all(np.array_equal(p.basis, q.basis) for p, q in zip(a, b, strict=True))
 
 
 def test_tiny_copies_give_no_lattice_rather_than_an_error():

@@ -16,7 +16,7 @@ from PIL import Image
 from skimage import data
 
 from claimkit import scan, workflow
-from claimkit.cli import main
+from claimkit.cli import main, scale
 from claimkit.errors import InputError
 from claimkit.evidence.storage import sha256_file
 from claimkit.mark import payload
@@ -140,7 +140,7 @@ def test_cost_per_file_does_not_depend_on_the_registry(profile, finds, monkeypat
     monkeypatch.setattr(profile, "work_by_payload", by_payload)
     monkeypatch.setattr(profile, "works", forbidden)
     monkeypatch.setattr(profile, "works_by_fingerprint", forbidden)
-    scan.scan_folders(profile, [finds["web"]], workers=1, json_lines=True)
+    scale.scan_folders(profile, [finds["web"]], workers=1, json_lines=True)
     capsys.readouterr()
     assert len(lookups) == 2
 
@@ -150,7 +150,7 @@ def test_claimed_copies_go_into_a_case(profile, finds, tmp_path, capsys):
 
     case_dir = tmp_path / "case-tidewater"
     new_case(case_dir, "Tidewater Home Goods: unlicensed product photos", profile)
-    code = scan.scan_folders(profile, [finds["web"]], workers=1, json_lines=True,
+    code = scale.scan_folders(profile, [finds["web"]], workers=1, json_lines=True,
                              case_dir=case_dir)
     rows = [json.loads(x) for x in capsys.readouterr().out.splitlines()]
     assert code == 1
@@ -160,17 +160,17 @@ def test_claimed_copies_go_into_a_case(profile, finds, tmp_path, capsys):
     assert {e.sha256 for e in exhibits} == claimed
     assert sorted(r["exhibit_id"] for r in rows if r.get("detected")) == ["exhibit-1", "exhibit-2"]
     # Scanning again does not take the same file in twice.
-    scan.scan_folders(profile, [finds["web"]], workers=1, case_dir=case_dir)
+    scale.scan_folders(profile, [finds["web"]], workers=1, case_dir=case_dir)
     assert "already exhibit" in capsys.readouterr().err
     assert len(open_case(case_dir).exhibits()) == 2
     with pytest.raises(InputError, match="not a case folder"):
-        scan.scan_folders(profile, [finds["web"]], workers=1, case_dir=tmp_path / "no-case")
+        scale.scan_folders(profile, [finds["web"]], workers=1, case_dir=tmp_path / "no-case")
 
 
 def test_scan_with_two_worker_processes_matches_one(profile, finds, capsys):
-    scan.scan_folders(profile, [finds["web"]], workers=1, json_lines=True)
+    scale.scan_folders(profile, [finds["web"]], workers=1, json_lines=True)
     one = capsys.readouterr().out
-    scan.scan_folders(profile, [finds["web"]], workers=2, json_lines=True)
+    scale.scan_folders(profile, [finds["web"]], workers=2, json_lines=True)
     two = capsys.readouterr().out
     assert one == two
 
@@ -180,7 +180,7 @@ def test_another_owners_key_claims_nothing(tmp_path, finds, capsys):
 
     other = Profile.create(tmp_path / "other-home", "Oren Vasquez", b"another passphrase")
     try:
-        code = scan.scan_folders(other, [finds["web"]], workers=1, json_lines=True)
+        code = scale.scan_folders(other, [finds["web"]], workers=1, json_lines=True)
     finally:
         other.close()
     rows = [json.loads(x) for x in capsys.readouterr().out.splitlines()]
@@ -197,8 +197,8 @@ def test_report_is_not_left_half_written(profile, finds, tmp_path, monkeypatch, 
 
     monkeypatch.setattr(scan, "scan_task", boom)
     with pytest.raises(RuntimeError), monkeypatch.context() as m:
-        m.setattr(scan, "_human_line", boom)
-        scan.scan_folders(profile, [finds["web"]], workers=1, report=report, force=True)
+        m.setattr(scale, "_scan_line", boom)
+        scale.scan_folders(profile, [finds["web"]], workers=1, report=report, force=True)
     assert report.read_text() == "an older report\n"
     assert not list(tmp_path.glob(".scan.csv.*"))
 
@@ -218,7 +218,7 @@ def test_ctrl_c_keeps_the_report_of_the_files_done(profile, finds, tmp_path, mon
 
     monkeypatch.setattr(scan, "scan_task", task)
     report = tmp_path / "partial.csv"
-    code = scan.scan_folders(profile, [finds["web"]], workers=1, json_lines=True, report=report)
+    code = scale.scan_folders(profile, [finds["web"]], workers=1, json_lines=True, report=report)
     cap = capsys.readouterr()
     assert code == 130 and "interrupted" in cap.err
     rows = [json.loads(x) for x in cap.out.splitlines()]

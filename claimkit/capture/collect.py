@@ -36,10 +36,17 @@ from urllib.parse import unquote, urlsplit
 
 from claimkit import __version__
 from claimkit.capture import fetch as _fetch
-from claimkit.capture.pagescan import find_images
+from claimkit.capture import snapshot as snap
+from claimkit.capture.pagescan import MAX_STYLESHEETS, css_images, find_images
 from claimkit.capture.warc import WarcWriter, exchange_facts, looks_like_image
 from claimkit.case.layout import CAPTURES
+from claimkit.case.store import add_exhibit
 from claimkit.errors import InputError
+from claimkit.evidence import timestamp
+from claimkit.evidence.canonical import canonical_json
+from claimkit.evidence.custodylog import utc_now
+from claimkit.evidence.storage import atomic_write, fsync_dir, sha256_file, sha256_hex
+from claimkit.workflow import MIN_EXAMINE_SIDE
 
 __all__ = ["CaptureResult", "capture_pages", "tls_summary"]
 
@@ -123,7 +130,6 @@ def _unusable(data: bytes) -> str | None:
     """None when the bytes are a picture claimkit can examine, else why not."""
     from PIL import Image, UnidentifiedImageError
 
-    from claimkit.workflow import MIN_EXAMINE_SIDE
 
     try:
         with Image.open(io.BytesIO(data)) as im:
@@ -224,7 +230,6 @@ class _Session:
 
     def _stylesheet_images(self, page: str, sheets: list[str], known: set[str]) -> list:
         """Background images named in the page's linked stylesheets (fetched and kept too)."""
-        from claimkit.capture.pagescan import MAX_STYLESHEETS, css_images
 
         if len(sheets) > MAX_STYLESHEETS:
             self.note(f"{page}: {len(sheets)} stylesheets; the first {MAX_STYLESHEETS} are "
@@ -262,7 +267,6 @@ class _Session:
         self.images[url] = _Found(url, page, page_final, how, chain, rid, date)
 
     def _snapshot(self, page: dict, url: str, rid: str) -> None:
-        from claimkit.capture import snapshot as snap
 
         if snap.chromium_path() is None:
             if not getattr(self, "_said_no_chromium", False):
@@ -296,8 +300,6 @@ class _Session:
 
 
 def _stamp(warc_sha: str, tsa_url: str, tsa_cert: Path, work: Path, capture_id: str) -> dict:
-    from claimkit.evidence import timestamp
-    from claimkit.evidence.storage import sha256_hex
 
     try:
         pem = Path(tsa_cert).read_bytes()
@@ -352,10 +354,6 @@ def capture_pages(case, urls: list[str], profile, *, tsa_url: str | None = None,
     """
     import sys
 
-    from claimkit.case.store import add_exhibit
-    from claimkit.evidence.canonical import canonical_json
-    from claimkit.evidence.custodylog import utc_now
-    from claimkit.evidence.storage import atomic_write, fsync_dir, sha256_file, sha256_hex
 
     if not urls:
         raise InputError("no URL to capture")

@@ -36,6 +36,7 @@ from urllib.parse import quote, urljoin, urlsplit
 
 from claimkit import __version__
 from claimkit.errors import InputError
+from claimkit.evidence.custodylog import utc_now
 
 __all__ = [
     "DEFAULT_MAX_BYTES",
@@ -285,7 +286,6 @@ def fetch(url: str, opts: FetchOptions | None = None) -> Exchange:
         host, refused connection, timeout, TLS failure, a response over the
         size limit or not HTTP.
     """
-    from claimkit.evidence.custodylog import utc_now
 
     opts = opts or FetchOptions()
     scheme, host, port, target = check_url(url)

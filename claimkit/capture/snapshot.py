@@ -31,6 +31,8 @@ import tempfile
 import time
 from dataclasses import dataclass
 
+from claimkit.evidence.custodylog import utc_now
+
 __all__ = ["Snapshot", "chromium_path", "take_snapshot"]
 
 WIDTH = 1280
@@ -139,7 +141,6 @@ def take_snapshot(url: str, *, timeout: float = 60.0, width: int = WIDTH) -> Sna
     SnapshotFailed
         When Chromium is missing or cannot draw the page.
     """
-    from claimkit.evidence.custodylog import utc_now
 
     exe = chromium_path()
     if exe is None:

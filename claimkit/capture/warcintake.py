@@ -25,7 +25,10 @@ from urllib.parse import unquote, urlsplit
 
 from claimkit.capture.warc import image_responses
 from claimkit.case.layout import CAPTURES
+from claimkit.case.store import add_exhibit
 from claimkit.errors import CheckFailed
+from claimkit.evidence.storage import fsync_dir, sha256_file
+from claimkit.workflow import MIN_EXAMINE_SIDE
 
 __all__ = ["WarcOrigin", "take_in", "unpack_images"]
 
@@ -59,7 +62,6 @@ def _too_small(data: bytes) -> bool:
 
     from PIL import Image, UnidentifiedImageError
 
-    from claimkit.workflow import MIN_EXAMINE_SIDE
 
     try:
         with Image.open(io.BytesIO(data)) as im:
@@ -80,7 +82,6 @@ def unpack_images(warcs: list[Path], folder: Path,
     InputError
         For a WARC file that cannot be read or is damaged (naming it).
     """
-    from claimkit.evidence.storage import sha256_file
 
     out: dict[Path, WarcOrigin] = {}
     n = 0
@@ -103,7 +104,6 @@ def unpack_images(warcs: list[Path], folder: Path,
 
 def _warc_in_case(case, origin: WarcOrigin, profile) -> str:
     """The WARC file's path inside the case, copying it there the first time."""
-    from claimkit.evidence.storage import fsync_dir, sha256_file
 
     dest_dir = case.root / CAPTURES
     dest_dir.mkdir(exist_ok=True)
@@ -130,7 +130,6 @@ def _warc_in_case(case, origin: WarcOrigin, profile) -> str:
 
 def take_in(case, path: Path, origin: WarcOrigin, profile, *, note: str):
     """Make the unpacked image ``path`` an exhibit whose acquisition is its WARC record."""
-    from claimkit.case.store import add_exhibit
 
     rel = _warc_in_case(case, origin, profile)
     acq = {"method": "image response in a WARC file", "url": origin.url,

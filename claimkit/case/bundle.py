@@ -10,12 +10,12 @@ zip bytes.
 
 from __future__ import annotations
 
-import json
 import os
 import tempfile
 import zipfile
 from pathlib import Path
 
+from claimkit.case.documents import ManifestDoc
 from claimkit.case.layout import MANIFEST, MANIFEST_SIG, bundle_files
 from claimkit.case.store import Case
 from claimkit.errors import CheckFailed, InputError
@@ -40,12 +40,12 @@ def export_bundle(case: Case, out: str | os.PathLike, profile=None, *, force: bo
         raise InputError("already exists; use --force to replace it", path=out)
     if out.suffix.lower() != ".zip":
         raise InputError("the bundle is a zip file; name it *.zip", path=out)
+    if not (root / MANIFEST).is_file():
+        raise InputError("no manifest yet: run claimkit report first", path=root)
     try:
-        manifest = json.loads((root / MANIFEST).read_bytes())
-        listed = {f["path"]: f["sha256"] for f in manifest["files"]}
-    except FileNotFoundError:
-        raise InputError("no manifest yet: run claimkit report first", path=root) from None
-    except (ValueError, KeyError, TypeError):
+        manifest = ManifestDoc.read(root / MANIFEST)
+        listed = {rel: f["sha256"] for rel, f in manifest.listed().items()}
+    except (InputError, KeyError, TypeError):
         raise CheckFailed("manifest.json is damaged: run claimkit report again",
                           path=root / MANIFEST) from None
     if profile is not None and not profile.verify_signature((root / MANIFEST).read_bytes(),

@@ -25,11 +25,11 @@ import numpy as np
 from claimkit import __version__, workflow
 from claimkit.case import layout
 from claimkit.case.align import align
+from claimkit.case.documents import FindingDoc
 from claimkit.case.store import Case, Exhibit, checked_exhibit_path
 from claimkit.errors import CheckFailed, InputError
-from claimkit.evidence.canonical import canonical_json
 from claimkit.evidence.custodylog import utc_now
-from claimkit.evidence.storage import atomic_write, sha256_file, sha256_hex
+from claimkit.evidence.storage import sha256_file, sha256_hex
 from claimkit.imageio import CURRENT_EXAMINATION_METHOD, read_picture, to_luma
 from claimkit.mark import detect, payload
 from claimkit.mark.fingerprint import MATCH_DISTANCE, perceptual_fingerprint
@@ -46,7 +46,7 @@ __all__ = [
     "jsonable",
 ]
 
-FINDING_TYPE = "claimkit/finding/v1"
+FINDING_TYPE = FindingDoc.type_name()
 DEFAULT_DECOYS = 64     # random keys in the decoy control; each costs about one pilot search
 DECOY_SEED = 0          # fixed, so that anyone re-running the control gets the same keys
 
@@ -225,10 +225,9 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
         "robustness": robustness,
         "arrays": {"file": npz.relative_to(case.root).as_posix(), "sha256": sha256_file(npz)},
     }
-    data = canonical_json(doc)
-    atomic_write(case.finding_path(ex.exhibit_id), data + b"\n")
+    data = FindingDoc.from_json(doc).write(case.finding_path(ex.exhibit_id))
     profile.log_action("exhibit examined",
-                       items={"exhibit": ex.sha256, "finding": sha256_hex(data + b"\n")},
+                       items={"exhibit": ex.sha256, "finding": sha256_hex(data)},
                        details={"case_id": case.case_id, "exhibit_id": ex.exhibit_id,
                                 "detected": rep["detected"], "work_id": rep.get("work_id"),
                                 "log10_false_alarm": rep["log10_false_alarm_probability"]})
@@ -242,8 +241,7 @@ def examine_case(case: Case, profile, *, decoys: int = DEFAULT_DECOYS,
     exhibits = case.exhibits()
     if not exhibits:
         raise InputError("the case has no exhibits yet (claimkit case add)", path=case.root)
-    if not 0 <= decoys <= 10000:
-        raise InputError(f"decoys {decoys} is outside 0..10000")
+    workflow.check_decoys(decoys)
     cache: dict = {}
     out = []
     for ex in exhibits:

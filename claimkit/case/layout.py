@@ -22,16 +22,18 @@ serves the case (which writes exhibits, findings and references), the dossier
     report/figures/E01-KIND.png   its figures
     manifest.json, manifest.sig   every file above with its SHA-256, signed
 
-The path-safety rules for names read from a bundle live here too
-(:func:`unsafe_name`, :func:`inside`), so that every reader applies the same ones.
+Names read from a bundle are checked by :func:`inside`, which rests on the one
+path-safety rule of :func:`claimkit.evidence.storage.outside` (also used by the
+disclosure check and by unpacking a zip).
 """
 
 from __future__ import annotations
 
 import re
-from pathlib import Path, PurePosixPath
+from pathlib import Path
 
 from claimkit.errors import InputError
+from claimkit.evidence.storage import outside, unsafe_name
 
 __all__ = [
     "BUNDLE_PARTS",
@@ -157,39 +159,14 @@ def figure_file(exhibit_id: str, kind: str) -> str:
     return f"{FIGURES}/{exhibit_id}-{kind}.png"
 
 
-def unsafe_name(name: str) -> str | None:
-    """Why a relative name read from a bundle is unsafe, or None when it is fine.
-
-    Refuses what could leave the folder or mean different files on different
-    systems: absolute paths (POSIX or drive letters), ``..``, backslashes, NUL.
-    """
-    if not name or "\\" in name or "\x00" in name:
-        return "has a backslash or an empty or NUL name"
-    p = PurePosixPath(name)
-    if p.is_absolute() or name.startswith("/") or (len(name) > 1 and name[1] == ":"):
-        return "is an absolute path"
-    if any(part == ".." for part in p.parts):
-        return "climbs out of the bundle (..)"
-    return None
-
-
 def inside(root: Path, rel: object, folder: str) -> str | None:
     """Why ``rel`` (named inside a bundle file) is not a safe path under ``root/folder``, or None."""
     if not isinstance(rel, str):
         return f"{rel!r} is not a path"
-    why = unsafe_name(rel)
-    if why:
-        return f"{rel!r} {why}"
-    if not rel.startswith(folder + "/"):
+    if not unsafe_name(rel) and not rel.startswith(folder + "/"):
         return f"{rel!r} is outside {folder}/"
-    p = root / rel
-    if p.is_symlink():
-        return f"{rel!r} is a symbolic link"
-    try:
-        p.resolve().relative_to(root.resolve())
-    except ValueError:
-        return f"{rel!r} leads out of the bundle"
-    return None
+    why = outside(root, rel)
+    return None if why is None else f"{rel!r} {why}"
 
 
 def references_used(root: Path) -> dict[str, str]:

@@ -19,7 +19,6 @@ after checking its SHA-256 against the intake record
 
 from __future__ import annotations
 
-import json
 import os
 import re
 import shutil
@@ -28,13 +27,17 @@ import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
+from PIL import Image, UnidentifiedImageError
+
 from claimkit import __version__
 from claimkit.case import layout
+from claimkit.case.documents import CaseDoc, ExhibitDoc, FindingDoc, WithdrawalDoc
 from claimkit.case.layout import CASE_FILE
 from claimkit.errors import CheckFailed, InputError
-from claimkit.evidence.canonical import canonical_json
 from claimkit.evidence.custodylog import utc_now
-from claimkit.evidence.storage import atomic_write, fsync_dir, sha256_file, sha256_hex
+from claimkit.evidence.storage import fsync_dir, sha256_file, sha256_hex
+from claimkit.imageio import read_picture
+from claimkit.workflow import MIN_EXAMINE_SIDE
 
 __all__ = [
     "CASE_FILE",
@@ -47,8 +50,8 @@ __all__ = [
     "withdraw_exhibit",
 ]
 
-CASE_TYPE = "claimkit/case/v1"
-EXHIBIT_TYPE = "claimkit/exhibit/v1"
+CASE_TYPE = CaseDoc.type_name()
+EXHIBIT_TYPE = ExhibitDoc.type_name()
 _SAFE = re.compile(r"[^A-Za-z0-9._-]+")
 
 
@@ -96,13 +99,10 @@ class Case:
         out = []
         if folder.is_dir():
             for p in sorted(q for g in layout.INTAKE_GLOBS for q in folder.glob(g)):
-                try:
-                    rec = json.loads(p.read_bytes())
-                except ValueError:
-                    raise InputError("intake record is not JSON", path=p) from None
+                rec = ExhibitDoc.read(p).to_json()
                 w = self.root / layout.withdrawal_record(rec["exhibit_id"])
                 out.append(Exhibit(rec["exhibit_id"], rec,
-                                   json.loads(w.read_bytes()) if w.is_file() else None))
+                                   WithdrawalDoc.read(w).to_json() if w.is_file() else None))
         out.sort(key=lambda e: layout.exhibit_number(e.exhibit_id) or 0)
         return out
 
@@ -122,11 +122,7 @@ class Case:
         p = self.finding_path(exhibit_id)
         if not p.is_file():
             return None
-        return json.loads(p.read_bytes())
-
-    @property
-    def report_dir(self) -> Path:
-        return self.root / layout.REPORT
+        return FindingDoc.read(p).to_json()
 
 
 def new_case(folder: str | os.PathLike, title: str, profile=None) -> Case:
@@ -150,21 +146,17 @@ def new_case(folder: str | os.PathLike, title: str, profile=None) -> Case:
     for sub in (layout.EXHIBITS, layout.FINDINGS, layout.REFERENCES):
         (root / sub).mkdir(exist_ok=True)
     now = utc_now()
-    info = {
-        "type": CASE_TYPE, "title": title,
-        "case_id": f"C-{now[:10].replace('-', '')}-{os.urandom(3).hex().upper()}",
-        "opened": {"time": now, "time_source": "system clock"},
-        "software": f"claimkit {__version__}",
-    }
+    doc = CaseDoc(
+        title=title, case_id=f"C-{now[:10].replace('-', '')}-{os.urandom(3).hex().upper()}",
+        opened={"time": now, "time_source": "system clock"},
+        software=f"claimkit {__version__}",
+        owner=None if profile is None else {"name": profile.owner,
+                                            "public_key_sha256": profile.public_key_fingerprint})
+    data = doc.write(root / CASE_FILE)
     if profile is not None:
-        info["owner"] = {"name": profile.owner,
-                         "public_key_sha256": profile.public_key_fingerprint}
-    data = canonical_json(info)
-    atomic_write(root / CASE_FILE, data + b"\n")
-    if profile is not None:
-        profile.log_action("case opened", items={"case": sha256_hex(data + b"\n")},
-                           details={"case_id": info["case_id"], "title": title})
-    return Case(root, info)
+        profile.log_action("case opened", items={"case": sha256_hex(data)},
+                           details={"case_id": doc.case_id, "title": title})
+    return Case(root, doc.to_json())
 
 
 def open_case(folder: str | os.PathLike) -> Case:
@@ -174,19 +166,11 @@ def open_case(folder: str | os.PathLike) -> Case:
     if not p.is_file():
         raise InputError("not a case folder (no case.json); make one with claimkit case new",
                          path=root)
-    try:
-        info = json.loads(p.read_bytes())
-    except ValueError:
-        raise InputError("case.json is not JSON", path=p) from None
-    if info.get("type") != CASE_TYPE:
-        raise InputError("case.json is not a claimkit case", path=p)
-    return Case(root, info)
+    return Case(root, CaseDoc.read(p).to_json())
 
 
 def _sniff(path: Path) -> tuple[str, int | None, int | None, str | None]:
     """Media type, width, height and a reason it is not an image (or None)."""
-    from PIL import Image, UnidentifiedImageError
-
     try:
         with Image.open(path) as im:
             return (Image.MIME.get(im.format, f"image/{(im.format or 'unknown').lower()}"),
@@ -202,9 +186,6 @@ def _check_examinable(src: Path) -> None:
     The whole picture is decoded (a truncated file fails here), under the pixel limit
     (a decompression bomb fails here), and must be large enough to examine.
     """
-    from claimkit.imageio import read_picture
-    from claimkit.workflow import MIN_EXAMINE_SIDE
-
     pic = read_picture(src)
     if min(pic.width, pic.height) < MIN_EXAMINE_SIDE:
         raise InputError(f"image is {pic.width}x{pic.height} pixels; an examination needs at "
@@ -293,23 +274,19 @@ def add_exhibit(case: Case, src: str | os.PathLike, *, source: str, found: str |
         stated = acquisition["time_source"]
     else:
         stated = f"stated by {who}"
-    record = {
-        "type": EXHIBIT_TYPE, "exhibit_id": exhibit_id, "case_id": case.case_id,
-        "file": stored, "original_name": src.name,
-        "sha256": copied, "size": dest.stat().st_size, "media_type": media,
-        "width": width, "height": height,
-        "source": source.strip(),
-        "found": {"when": found.strip(), "time_source": stated} if found else None,
-        "taken_in": {"time": utc_now(), "time_source": "system clock", "by": who},
-        "note": (note or "").strip() or None,
-    }
-    if acquisition is not None:
-        record["acquisition"] = acquisition
-    data = canonical_json(record)
-    atomic_write(case.root / layout.intake_record(exhibit_id), data + b"\n")
+    doc = ExhibitDoc(
+        exhibit_id=exhibit_id, case_id=case.case_id, file=stored, original_name=src.name,
+        sha256=copied, size=dest.stat().st_size, media_type=media, width=width, height=height,
+        source=source.strip(),
+        found={"when": found.strip(), "time_source": stated} if found else None,
+        taken_in={"time": utc_now(), "time_source": "system clock", "by": who},
+        note=(note or "").strip() or None,
+        extra={} if acquisition is None else {"acquisition": acquisition})
+    data = doc.write(case.root / layout.intake_record(exhibit_id))
+    record = doc.to_json()
     if profile is not None:
         profile.log_action("disputed file taken in",
-                           items={"exhibit": copied, "intake_record": sha256_hex(data + b"\n")},
+                           items={"exhibit": copied, "intake_record": sha256_hex(data)},
                            details={"case_id": case.case_id, "exhibit_id": exhibit_id,
                                     "source": record["source"], "by": who,
                                     "original_name": src.name},
@@ -335,13 +312,12 @@ def withdraw_exhibit(case: Case, exhibit_id: str, *, reason: str, by: str | None
         raise InputError(f"{ex.exhibit_id} was already withdrawn on {ex.withdrawal['time']}",
                          path=case.root)
     who = (by or "").strip() or (profile.owner if profile is not None else "unknown")
-    record = {"type": "claimkit/withdrawal/v1", "exhibit_id": ex.exhibit_id,
-              "case_id": case.case_id, "exhibit_sha256": ex.sha256, "reason": reason,
-              "by": who, "time": utc_now(), "time_source": "system clock"}
-    data = canonical_json(record) + b"\n"
+    doc = WithdrawalDoc(exhibit_id=ex.exhibit_id, case_id=case.case_id, exhibit_sha256=ex.sha256,
+                        reason=reason, by=who, time=utc_now(), time_source="system clock")
     path = case.root / layout.withdrawal_record(ex.exhibit_id)
     path.parent.mkdir(parents=True, exist_ok=True)
-    atomic_write(path, data, replace=False)
+    data = doc.write(path, replace=False)
+    record = doc.to_json()
     if profile is not None:
         profile.log_action("exhibit withdrawn",
                            items={"exhibit": ex.sha256, "withdrawal": sha256_hex(data)},

@@ -17,8 +17,7 @@ import sys
 from claimkit import __version__
 from claimkit.errors import ClaimkitError
 
-# Modules that provide ``register(subparsers, common)``; a missing module is
-# skipped so that the tool still runs while an area is being built.
+# Modules that provide ``register(subparsers, common)``.
 AREAS = ("engine", "evidence", "casework", "scale", "stress", "rights")
 
 
@@ -83,13 +82,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"claimkit {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     for name in AREAS:
-        try:
-            module = importlib.import_module(f"claimkit.cli.{name}")
-        except ModuleNotFoundError as exc:
-            if exc.name == f"claimkit.cli.{name}":
-                continue
-            raise
-        module.register(sub, common)
+        importlib.import_module(f"claimkit.cli.{name}").register(sub, common)
     return parser
 
 

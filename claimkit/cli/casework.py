@@ -12,6 +12,9 @@ CAUTION = ("Technical evidence, not legal advice. Consult counsel; the rules on 
            "registration and takedown notices differ between jurisdictions.")
 
 
+# Each command imports the library modules it runs when it runs, so that `claimkit --help`
+# starts in about 0.2 s rather than the 3 s that importing the whole library takes.
+
 def _profile(args):
     from claimkit.evidence.profile import Profile
 
@@ -127,8 +130,9 @@ def cmd_case_examine(args) -> int:
         print(line)
 
     with _profile(args) as p:
-        examine_case(case, p, decoys=DEFAULT_DECOYS if args.decoys is None else args.decoys, search=search, progress=progress,
-                     workers=args.workers, robustness=not args.no_robustness)
+        examine_case(case, p, decoys=DEFAULT_DECOYS if args.decoys is None else args.decoys,
+                     search=search, progress=progress, workers=args.workers,
+                     robustness=not args.no_robustness)
     return 0
 
 

@@ -12,6 +12,9 @@ from claimkit.errors import CheckFailed, InputError
 CAUTION = "Technical evidence, not legal advice; rely on counsel and the local law."
 
 
+# Each command imports the library modules it runs when it runs, so that `claimkit --help`
+# starts in about 0.2 s rather than the 3 s that importing the whole library takes.
+
 def _open(args, *, secrets: bool):
     from claimkit.evidence.profile import Profile
 
@@ -60,18 +63,9 @@ def cmd_init(args) -> int:
 
 # --------------------------------------------------------------------------- works
 
-def _stamp_summary(profile) -> dict[str, str]:
-    out: dict[str, str] = {}
-    for work_id, gen_time in profile.db.execute(
-            "SELECT s.work_id, MIN(t.gen_time) FROM work_stamps s "
-            "JOIN tokens t ON t.token_id = s.token_id GROUP BY s.work_id"):
-        out[work_id] = gen_time
-    return out
-
-
 def cmd_works(args) -> int:
     with _open(args, secrets=False) as p:
-        stamped = _stamp_summary(p)
+        stamped = p.registry.first_stamp_times()
         works = p.works()
         for w in works:
             r = w.record

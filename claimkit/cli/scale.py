@@ -1,14 +1,30 @@
-"""Commands for work at scale: ``scan``.
+"""Commands for work at scale: ``scan``, and the batch form of ``mark``.
 
-The batch form of ``mark`` (several inputs or a folder) is parsed by
-:mod:`claimkit.cli.engine` and runs :func:`claimkit.batch.mark_many`.
+The library (:func:`claimkit.batch.mark_many`, :func:`claimkit.scan.scan_folders`)
+hands back each file's row and a summary; this module prints them and picks
+the exit status.
+
+Exit status of a batch ``mark``: 0 every input marked or already done; 1 some
+inputs failed (each listed at the end) or the run stopped early for lack of
+disk space; 2 nothing could be marked because every input was bad input (or
+no image was found); 130 the run was interrupted (Ctrl-C): run the same
+command again to finish.
+
+Exit status of ``scan``: 0 when every file was read (claimed or not); 1 when
+some files could not be read (each listed); 2 when no file could be read or
+none was found; 130 when interrupted (the lines and report cover the files done).
 """
 
 from __future__ import annotations
 
+import json
+import sys
 from pathlib import Path
 
-from claimkit.cli.common import home_dir, passphrase
+from claimkit.cli.common import home_dir, passphrase, print_json
+from claimkit.mark.detect import DEFAULT_THRESHOLD
+
+EXIT_OK, EXIT_SOME_FAILED, EXIT_BAD_INPUT, EXIT_INTERRUPTED = 0, 1, 2, 130
 
 
 def add_scale_options(p) -> None:
@@ -23,9 +39,146 @@ def add_scale_options(p) -> None:
                         "dask; without it a cluster is started on this machine)")
 
 
+def _json_row(row: dict) -> None:
+    """One JSON line; an error is an object in every command's JSON (examine's too)."""
+    if isinstance(row.get("error"), str):
+        row = {**row, "error": {"message": row["error"], "exit_code": 2}}
+    print_json(row)
+
+
+def _notice(msg: str) -> None:
+    print(msg, file=sys.stderr, flush=True)
+
+
+# --------------------------------------------------------------------------- batch mark
+
+def _mark_line(row: dict) -> str:
+    status = row["status"]
+    if status == "marked":
+        return (f"marked    {row['file']} -> {row['output']}  {row['work_id']}  "
+                f"PSNR {row.get('psnr_db', float('nan')):.1f} dB  SSIM {row.get('ssim', 0):.4f}")
+    if status == "skipped":
+        return f"done      {row['file']}: {row['reason']} ({row['work_id']})"
+    if status == "restored":
+        return f"restored  {row['output']}: {row['reason']} ({row['work_id']})"
+    return f"failed    {row['error']}"
+
+
+def mark_many(profile, inputs: list[Path], out: Path, *, json_lines: bool = False,
+              progress: bool | None = None, **kw) -> int:
+    """Run :func:`claimkit.batch.mark_many`, print each row and the summary; the exit status."""
+    # Imported when used: the batch machinery is not needed for --help (start-up time).
+    from claimkit.batch import mark_many as run
+
+    s = run(profile, inputs, out, progress=progress,
+            on_row=_json_row if json_lines else (lambda row: print(_mark_line(row),
+                                                                    flush=True)),
+            **kw)
+    err = sys.stderr
+    done = s.marked + s.skipped + s.restored
+    rate = (s.marked + s.restored) / s.seconds if s.seconds > 0 else 0.0
+    line = (f"claimkit: {s.marked} marked, {s.skipped} already done, {s.restored} restored, "
+            f"{len(s.failures)} failed")
+    if s.not_started:
+        line += f", {s.not_started} not started"
+    line += f" ({s.total} inputs, {s.seconds:.1f} s, {rate:.2f} files/s)"
+    if json_lines:    # stdout stays one object per file; the summary goes to stderr
+        print(json.dumps({"summary": True, "inputs": s.total, **s.as_dict()}, sort_keys=True),
+              file=err, flush=True)
+    else:
+        print(line, flush=True)
+    if s.failures:
+        print(f"claimkit: {len(s.failures)} file(s) failed:", file=err)
+        for f in s.failures:
+            print(f"claimkit: error: {f}", file=err)
+    if s.stopped == "interrupted":
+        print("claimkit: interrupted; everything listed above as marked is registered and "
+              "in place; run the same command again to finish the rest", file=err, flush=True)
+        return EXIT_INTERRUPTED
+    if s.stopped:
+        print(f"claimkit: stopped early: {s.stopped}; what was marked is registered and in "
+              "place; free space and run the same command again to finish the rest",
+              file=err, flush=True)
+        return EXIT_SOME_FAILED
+    if s.total == 0:
+        print("claimkit: error: no image files found in the inputs", file=err)
+        return EXIT_BAD_INPUT
+    if s.failures:
+        if done == 0 and all(k == "input" for k in s.failure_kinds):
+            return EXIT_BAD_INPUT
+        return EXIT_SOME_FAILED
+    return EXIT_OK
+
+
+# --------------------------------------------------------------------------- scan
+
+def _where(rep: dict) -> str:
+    """Where a scanned picture was found: its file, or its URL and capture in a WARC."""
+    if rep.get("url"):
+        return f"{rep['url']} (captured {rep.get('capture_date')}, in {rep['file']})"
+    return str(rep["file"])
+
+
+def _scan_line(rep: dict) -> str:
+    if "error" in rep:
+        return f"unreadable  {rep['error']}"
+    if not rep.get("detected"):
+        return f"-           {_where(rep)}"
+    who = rep.get("work_id") or "payload unreadable"
+    reg = "" if rep.get("registered") else " (not in this registry)"
+    geom = rep.get("geometry_text") or ""
+    return (f"CLAIMED     {_where(rep)}: {who}{reg}; false-alarm bound "
+            f"{rep.get('false_alarm_text', rep.get('false_alarm_probability'))}; {geom}")
+
+
+def scan_folders(profile, folders: list[Path], *, json_lines: bool = False, **kw) -> int:
+    """Run :func:`claimkit.scan.scan_folders`, print each row and the summary; the exit status."""
+    # Imported when used: the examination engine is not needed for --help (start-up time).
+    from claimkit.batch import IMAGE_SUFFIXES
+    from claimkit.scan import scan_folders as run
+
+    s = run(profile, folders, on_notice=_notice,
+            on_row=_json_row if json_lines else (lambda rep: print(_scan_line(rep),
+                                                                    flush=True)),
+            **kw)
+    err = sys.stderr
+    if json_lines:
+        print(json.dumps(s.as_dict(), sort_keys=True), file=err, flush=True)
+    else:
+        rate = s.read / s.seconds if s.seconds > 0 else 0.0
+        line = (f"{s.read} files read, {s.claimed} claimed ({s.registered} in this registry), "
+                f"{len(s.unreadable)} unreadable")
+        if s.added_to_case:
+            line += f", {s.added_to_case} added to the case"
+        if s.not_started:
+            line += f", {s.not_started} not examined"
+        if s.passed_over:
+            line += (f", {s.passed_over} other files passed over (not "
+                     f"{'/'.join(x.lstrip('.') for x in IMAGE_SUFFIXES)})")
+        print(f"{line}; {s.seconds:.1f} s, {rate:.1f} files/s", flush=True)
+        if s.report is not None:
+            print(f"report: {s.report}", flush=True)
+        if s.claimed:
+            print("A claim rests on technical evidence, not legal advice; consult counsel "
+                  "before acting on it.", flush=True)
+    if s.unreadable:
+        print(f"claimkit: {len(s.unreadable)} file(s) could not be read:", file=err)
+        for line in s.unreadable:
+            print(f"claimkit: error: {line}", file=err)
+    if s.stopped == "interrupted":
+        print("claimkit: interrupted; the lines above cover the files examined so far",
+              file=err, flush=True)
+        return EXIT_INTERRUPTED
+    if s.total == 0:
+        print("claimkit: error: no image files found", file=err)
+        return EXIT_BAD_INPUT
+    if s.read == 0:
+        return EXIT_BAD_INPUT
+    return EXIT_SOME_FAILED if s.unreadable else EXIT_OK
+
+
 def cmd_scan(args) -> int:
-    from claimkit.evidence.profile import Profile
-    from claimkit.scan import scan_folders
+    from claimkit.evidence.profile import Profile  # start-up time, as above
 
     with Profile.open(home_dir(args), passphrase()) as profile:
         return scan_folders(
@@ -38,8 +191,6 @@ def cmd_scan(args) -> int:
 
 
 def register(sub, common) -> None:
-    from claimkit.mark.detect import DEFAULT_THRESHOLD
-
     p = sub.add_parser(
         "scan", parents=[common], help="look for the owner's mark in every image under folders",
         description="Examine every image under the folders with the owner's key: which are "

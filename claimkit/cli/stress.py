@@ -7,11 +7,10 @@ from pathlib import Path
 from claimkit.cli.common import home_dir, passphrase, print_json
 from claimkit.errors import InputError
 from claimkit.mark import detect
+from claimkit.words import probability
 
-
-def _fmt_bound(lp: float) -> str:
-    return f"<1e{int(lp)}" if lp < -3 else f"{10 ** lp:.2g}"
-
+# Each command imports the library modules it runs when it runs, so that `claimkit --help`
+# starts in about 0.2 s rather than the 3 s that importing the whole library takes.
 
 def _table_line(r: dict) -> str:
     from claimkit.stress import geometry_text
@@ -23,7 +22,7 @@ def _table_line(r: dict) -> str:
     if r["detected"] and not r["geometry_ok"]:
         geo += "  (off)"
     return (f"{r['attack']:<28} {r['width']:>5}x{r['height']:<5} {found:<5} {same:<5} "
-            f"{_fmt_bound(r['log10_false_alarm_probability']):>9} {psnr:>6}  {geo}")
+            f"{probability(r['log10_false_alarm_probability']):>14} {psnr:>6}  {geo}")
 
 
 def cmd_stress(args) -> int:
@@ -42,8 +41,7 @@ def cmd_stress(args) -> int:
             raise InputError("already exists; use --force to replace it", path=plot)
         if marked.exists() and plot.resolve() == marked.resolve():
             raise InputError("the plot would overwrite the marked photo", path=plot)
-    if not 0 < args.threshold < 1:
-        raise InputError(f"--threshold {args.threshold} must lie between 0 and 1")
+    workflow.check_threshold(args.threshold)
     pic = read_picture(marked, max_pixels=args.max_pixels)
     if min(pic.pixels.shape[:2]) < workflow.MIN_MARK_SIDE:
         h, w = pic.pixels.shape[:2]

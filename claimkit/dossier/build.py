@@ -26,6 +26,7 @@ from skimage.transform import rescale
 
 from claimkit import __version__
 from claimkit.case import layout
+from claimkit.case.documents import DossierDataDoc, ManifestDoc
 from claimkit.case.layout import DATA, HANDOVER, HTML, MANIFEST, MANIFEST_SIG, PDF, PUBLIC_KEY
 from claimkit.case.store import Case, checked_exhibit_path
 from claimkit.dossier import figures
@@ -35,8 +36,10 @@ from claimkit.dossier.render import render_html, render_pdf
 from claimkit.errors import CheckFailed, InputError
 from claimkit.evidence.canonical import canonical_json
 from claimkit.evidence.custodylog import utc_now
+from claimkit.evidence.excerpt import build_excerpt
 from claimkit.evidence.storage import atomic_write, sha256_file, sha256_hex
 from claimkit.imageio import read_picture, to_luma
+from claimkit.software import versions
 
 __all__ = [
     "build_report",
@@ -44,7 +47,7 @@ __all__ = [
     "write_manifest",
 ]
 
-MANIFEST_TYPE = "claimkit/bundle-manifest/v1"
+MANIFEST_TYPE = ManifestDoc.type_name()
 
 
 def draw_figures(root: Path, data: dict) -> dict[str, bytes]:
@@ -106,8 +109,7 @@ def write_manifest(root: Path, profile, case_id: str, *, key_material: str = "wi
                          "file": MANIFEST_SIG, "public_key": PUBLIC_KEY},
            "key_material": key_material, "include_original": include_original,
            "withheld": withheld_references(root, names), "files": files}
-    data = canonical_json(doc)
-    atomic_write(root / MANIFEST, data)
+    data = ManifestDoc.from_json(doc).write(root / MANIFEST)
     atomic_write(root / MANIFEST_SIG, profile.sign(data))
     return doc
 
@@ -147,17 +149,10 @@ def matched_works(case: Case) -> list[str]:
 
 def _stamp_requests(profile, work_ids: list[str]) -> set[str]:
     """Stamp requests whose Merkle trees hold one of the works (their log entries concern them)."""
-    out = set()
-    for request_id, listed in profile.db.execute("SELECT request_id, work_ids FROM stamp_requests"):
-        if set(json.loads(listed)) & set(work_ids):
-            out.add(request_id)
-    return out
+    return profile.registry.requests_holding(work_ids)
 
 
 def _handover(case: Case, profile, *, disclose: bool) -> None:
-    from claimkit.evidence.excerpt import build_excerpt
-    from claimkit.software import versions
-
     root = case.root
     work_ids = matched_works(case)
     tmp = root / f".{HANDOVER}.part"
@@ -213,7 +208,7 @@ def build_report(case: Case, profile, *, out_pdf: Path | None = None,
     for rel, png in draw_figures(root, data).items():
         atomic_write(root / rel, png)
     data_bytes = canonical_json(data)
-    atomic_write(root / DATA, data_bytes + b"\n")
+    DossierDataDoc.from_json(data).write(root / DATA)
     pdf = render_pdf(data, root, root / PDF)
     signed = sign_pdf(pdf, profile, reason=f"Evidence dossier {data['case']['case_id']}")
     atomic_write(root / PDF, signed)

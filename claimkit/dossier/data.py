@@ -16,15 +16,15 @@ from pathlib import Path
 from claimkit import __version__
 from claimkit.capture.evidence import collection_data
 from claimkit.case import layout
+from claimkit.case.documents import CaseDoc, DossierDataDoc, ExhibitDoc, FindingDoc, WithdrawalDoc
 from claimkit.case.layout import CUSTODY_COPY, CUSTODY_COPY_V1, DISCLOSURES, PUBLIC_KEY, SOFTWARE
-from claimkit.errors import InputError
 from claimkit.evidence import signing
-from claimkit.evidence.canonical import canonical_json, canonicalize
+from claimkit.evidence.canonical import canonical_json
 from claimkit.evidence.custodylog import verify_log
 from claimkit.evidence.disclose import check_disclosure
 from claimkit.evidence.excerpt import verify_excerpt
 from claimkit.evidence.storage import sha256_file
-from claimkit.mark import detect, geometry, pattern, stats
+from claimkit.mark import detect, formats
 
 __all__ = [
     "DOSSIER_TYPE",
@@ -33,7 +33,9 @@ __all__ = [
     "case_files",
 ]
 
-DOSSIER_TYPE = "claimkit/dossier/v1"
+#: v2: the method's parameters come from explicit per-format records
+#: (``method.engine.format_records``, ``method.engine.examination``), not ``settings``.
+DOSSIER_TYPE = DossierDataDoc.type_name()
 
 #: The published methods the analysis rests on (the method section lists them).
 REFERENCES_CITED = [
@@ -62,24 +64,12 @@ REFERENCES_CITED = [
 ]
 
 
-def _read_json(root: Path, rel: str) -> dict:
-    p = root / rel
-    try:
-        return json.loads(p.read_bytes())
-    except FileNotFoundError:
-        raise InputError("missing", path=p) from None
-    except ValueError:
-        raise InputError("not JSON", path=p) from None
-
-
 def case_files(root: Path) -> tuple[dict, list[dict], dict[str, dict]]:
-    """``case.json``, the intake records in order, and findings by exhibit ID."""
-    case = _read_json(root, layout.CASE_FILE)
-    exhibits = []
-    for glob in layout.INTAKE_GLOBS:
-        for p in sorted((root / layout.EXHIBITS).glob(glob)):
-            exhibits.append(json.loads(p.read_bytes()))
-
+    """``case.json``, the intake records in order, and findings by exhibit ID (JSON values,
+    each read and checked by its document type)."""
+    case = CaseDoc.read(root / layout.CASE_FILE).to_json()
+    exhibits = [ExhibitDoc.read(p).to_json() for glob in layout.INTAKE_GLOBS
+                for p in sorted((root / layout.EXHIBITS).glob(glob))]
     def order(r: dict):
         n = layout.exhibit_number(r.get("exhibit_id"))
         return (0, n, "") if n is not None else (1, 0, str(r.get("exhibit_id")))
@@ -92,10 +82,10 @@ def case_files(root: Path) -> tuple[dict, list[dict], dict[str, dict]]:
             continue     # never used to build a path; verify names it
         w = root / layout.withdrawal_record(i)
         if w.is_file():
-            ex["withdrawn"] = json.loads(w.read_bytes())
+            ex["withdrawn"] = WithdrawalDoc.read(w).to_json()
         p = root / layout.finding_file(i)
         if p.is_file():
-            findings[ex["exhibit_id"]] = json.loads(p.read_bytes())
+            findings[ex["exhibit_id"]] = FindingDoc.read(p).to_json()
     return case, exhibits, findings
 
 
@@ -167,30 +157,31 @@ def _software(root: Path) -> dict | None:
         return None
 
 
-def _constants(module) -> dict:
-    """Every upper-case scalar setting of an engine module (the parameters, all of them)."""
-    out = {}
-    for name in sorted(vars(module)):
-        v = getattr(module, name)
-        if isinstance(v, tuple) and not all(isinstance(x, (int, float, str)) for x in v):
-            continue   # e.g. the readable mark formats, listed on their own
-        if name.isupper() and not name.startswith("_") and isinstance(v, (int, float, str, tuple)) \
-                and not isinstance(v, bool):
-            out[f"{module.__name__.rsplit('.', 1)[-1]}.{name}"] = canonicalize(v)
-    return out
+def _examination() -> dict:
+    """How every copy is examined, named one by one (not gathered from module constants, so
+    that renaming a setting or adding a speed knob cannot change what a dossier states)."""
+    return {
+        "prefilter_px": detect.PREFILTER, "norm_window_px": detect.NORM_WINDOW,
+        "geometries_tried": detect.GEOMETRIES, "quarter_turns_and_mirrors": detect.DIHEDRAL,
+        "subpixel_phases": len(detect.PHASES), "decode_tries": detect.DECODE_TRIES,
+        "payload_space": detect.DEFAULT_PAYLOAD_SPACE,
+        "default_threshold": detect.DEFAULT_THRESHOLD,
+        "max_examine_pixels": detect.MAX_EXAMINE_PIXELS,
+    }
 
 
 def _engine_parameters() -> dict:
+    """The method's numbers: the record of each mark format read, and of the examination."""
     return {
-        "tile_px": pattern.TILE, "payload_bits": pattern.PAYLOAD_BITS,
-        "pilot_spots": pattern.PILOT_SPOTS, "code_spots": pattern.CODE_SPOTS,
-        "formats_read": "; ".join(f.describe() for f in pattern.READABLE),
-        "prefilter_px": getattr(detect, "PREFILTER", None),
+        "tile_px": formats.CURRENT.tile_px, "payload_bits": formats.CURRENT.payload_bits,
+        "pilot_spots": formats.CURRENT.pilot_spots, "code_spots": formats.CURRENT.code_spots,
+        "formats_read": "; ".join(f.describe() for f in formats.READABLE),
+        "format_records": [f.as_record() for f in formats.READABLE],
+        "prefilter_px": detect.PREFILTER,
         "geometries_tried": detect.GEOMETRIES, "quarter_turns_and_mirrors": detect.DIHEDRAL,
         "subpixel_phases": len(detect.PHASES), "hypotheses": detect.hypotheses(),
         "bound": "P_fa <= 2 x H x exp(-z^2/2) (sub-Gaussian tail, union over hypotheses)",
-        "settings": {**_constants(pattern), **_constants(detect), **_constants(geometry),
-                     **_constants(stats)},
+        "examination": _examination(),
     }
 
 

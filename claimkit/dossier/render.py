@@ -18,6 +18,7 @@ from pathlib import Path
 
 import jinja2
 
+from claimkit import words
 from claimkit.case import layout
 from claimkit.errors import InputError
 
@@ -151,10 +152,6 @@ def _inline(text: str, *, sup: str) -> str:
 
 # ---------------------------------------------------------------- tables
 
-def _short(h: str | None, n: int = 16) -> str:
-    return "" if not h else (h if len(h) <= n else h[:n] + "...")
-
-
 def tables(data: dict, name: str, arg: str | None) -> tuple[list[str], list[list[str]]]:
     """Header and rows of a named table (plain text cells)."""
     if name == "exhibits":
@@ -164,8 +161,12 @@ def tables(data: dict, name: str, arg: str | None) -> tuple[list[str], list[list
         return ["Exhibit", "Found at", "Found (stated)", "Taken in by, at", "SHA-256"], rows
     if name == "parameters":
         eng = data["method"]["engine"]
-        rows = [[k, str(v)] for k, v in sorted(eng.items()) if k != "settings"]
-        rows += [[k, str(v)] for k, v in sorted(eng.get("settings", {}).items())]
+        rows = [[k, str(v)] for k, v in sorted(eng.items())
+                if k not in ("format_records", "examination")]
+        rows += [[f"examination: {k}", str(v)] for k, v in sorted(eng["examination"].items())]
+        for f in eng["format_records"]:
+            rows += [[f"{f['format']}: {k}", str(v)] for k, v in sorted(f.items())
+                     if k != "format"]
         rows += [[f"mark: {k}", str(v)] for k, v in sorted(data["method"]["mark"].items())]
         return ["Parameter", "Value"], rows
     if name == "custody":
@@ -181,8 +182,7 @@ def tables(data: dict, name: str, arg: str | None) -> tuple[list[str], list[list
         rows = []
         for row in rows_in:
             lp = row.get("log10_false_alarm_probability")
-            bound = "" if lp is None else (f"below 1e{math.floor(lp)}" if lp < -3
-                                           else f"{10 ** lp:.2g}")
+            bound = "" if lp is None else words.probability(lp)
             rows.append([str(row.get("attack", "")), _cell(row.get("detected")),
                          _cell(row.get("same_payload")) or "n/a", bound,
                          _cell(row.get("message_psnr_db")) or "n/a",

@@ -7,9 +7,9 @@ picture (as a verifier for evidence should).
 
 from __future__ import annotations
 
-import json
 from dataclasses import dataclass, field
 
+from claimkit.errors import Outcome
 from claimkit.evidence import custodylog
 from claimkit.evidence.stamping import StampStatus, stamps_of
 from claimkit.evidence.storage import sha256_hex
@@ -18,12 +18,11 @@ __all__ = ["AuditReport", "WorkStatus", "audit_profile", "check_work"]
 
 
 @dataclass
-class WorkStatus:
-    """The standing of one work record."""
+class WorkStatus(Outcome):
+    """The standing of one work record (its own problems; its stamps have theirs)."""
 
     work_id: str
     signature_ok: bool
-    problems: list[str] = field(default_factory=list)
     stamps: list[StampStatus] = field(default_factory=list)
 
     @property
@@ -43,26 +42,25 @@ def check_work(profile, work) -> WorkStatus:
     status = WorkStatus(work.work_id, sig_ok)
     if not sig_ok:
         status.problems.append("record signature does not verify (record altered)")
-    row = profile.db.execute("SELECT serial, sha256_original, sha256_marked, fingerprint "
-                             "FROM works WHERE work_id = ?", (work.work_id,)).fetchone()
+    row = profile.registry.index_columns(work.work_id)
     rec = work.record
     expected = (rec.get("serial"), rec.get("original", {}).get("sha256"),
                 rec.get("marked", {}).get("sha256"), rec.get("fingerprint"))
-    if row is not None and tuple(row) != expected:
+    if row is not None and row != expected:
         status.problems.append("registry index columns disagree with the signed record")
     status.stamps = stamps_of(profile, work)
     return status
 
 
 @dataclass
-class AuditReport:
-    """The custody log check plus the registry cross-checks."""
+class AuditReport(Outcome):
+    """The custody log check plus the registry cross-checks (``problems``: the registry's,
+    each naming its item; the log's are in ``log``)."""
 
     log: custodylog.LogReport
     works: int = 0
     tokens: int = 0
     pending_entries: int = 0
-    problems: list[str] = field(default_factory=list)  # registry problems, each naming its item
 
     @property
     def ok(self) -> bool:
@@ -95,8 +93,8 @@ def audit_profile(profile) -> AuditReport:
     registered = logged.get("work registered", set())
     stamped = logged.get("works stamped", set())
     pending_items: set[str] = set()
-    for (items,) in profile.db.execute("SELECT items FROM log_outbox"):
-        pending_items.update(json.loads(items).values())
+    for items in profile.registry.queued_items():
+        pending_items.update(items.values())
     for work in profile.works():
         report.works += 1
         status = check_work(profile, work)
@@ -106,7 +104,7 @@ def audit_profile(profile) -> AuditReport:
         if digest not in registered and digest not in pending_items:
             report.problems.append(f"registry: {work.work_id}: no intact custody-log entry "
                                    "registers this record")
-    for token_id, token_sha in profile.db.execute("SELECT token_id, token_sha256 FROM tokens"):
+    for token_id, token_sha in profile.registry.tokens():
         report.tokens += 1
         if token_sha not in stamped and token_sha not in pending_items:
             report.problems.append(f"registry: {token_id}: no intact custody-log entry "

@@ -31,6 +31,7 @@ from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
 
+from claimkit.errors import Outcome
 from claimkit.evidence import signing
 from claimkit.evidence.canonical import canonical_json
 
@@ -94,19 +95,14 @@ class LogProblem:
 
 
 @dataclass
-class LogReport:
-    """Result of :func:`verify_log`."""
+class LogReport(Outcome):
+    """Result of :func:`verify_log` (``problems``: :class:`LogProblem`, each naming its line)."""
 
     path: Path
     lines: int = 0
     entries: list[dict] = field(default_factory=list)  # entries whose signature verified
-    problems: list[LogProblem] = field(default_factory=list)
     head_seq: int = 0
     head_hash: str = GENESIS
-
-    @property
-    def ok(self) -> bool:
-        return not self.problems
 
 
 def _parse_line(raw: bytes, pub: signing.Ed25519PublicKey) -> tuple[dict | None, str | None]:
@@ -168,14 +164,14 @@ def verify_log(path: Path, public_key: signing.Ed25519PublicKey, *,
         entry, why = _parse_line(raw, public_key)
         this_hash = entry_hash(raw)
         if entry is None:
-            report.problems.append(LogProblem(number, why))
+            report.problems.append(LogProblem(number, why or "the line cannot be read"))
             report.head_seq, report.head_hash = expected_seq, this_hash
             expected_seq, prev = expected_seq + 1, this_hash
             continue
         seq = entry["seq"]
         if why:
             # An altered entry's own seq cannot be trusted: assume it stood in its place.
-            report.problems.append(LogProblem(number, why))
+            report.problems.append(LogProblem(number, why or "the line cannot be read"))
             report.head_seq, report.head_hash = expected_seq, this_hash
             expected_seq, prev = expected_seq + 1, this_hash
             continue

@@ -44,13 +44,14 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from claimkit.errors import CheckFailed, InputError
+from claimkit.errors import CheckFailed, InputError, Outcome
+from claimkit.evidence import keys as keys_module
 from claimkit.evidence import merkle, signing, timestamp
 from claimkit.evidence.canonical import canonical_json
 from claimkit.evidence.custodylog import utc_now
-from claimkit.evidence.profile import COMMITMENT_SCHEME, commitment_of
+from claimkit.evidence.keys import COMMITMENT_SCHEME, commitment_of
 from claimkit.evidence.stamping import inclusion_proof
-from claimkit.evidence.storage import atomic_write, fsync_dir, sha256_hex
+from claimkit.evidence.storage import atomic_write, fsync_dir, outside, sha256_hex
 
 __all__ = [
     "COMMITMENT_CHECKS",
@@ -148,11 +149,9 @@ def _seed_hashes(opening: dict, keys: dict, seeds: dict[str, bytes]) -> list[str
 
 def _family_digest(opening: dict, keys: dict, seeds: dict[str, bytes]) -> list[str]:
     """Format 3: the opening commits to SHA-256(sync || family as 2 bytes || family seed)."""
-    from claimkit.evidence.profile import format3_keys_digest
-
     try:
         family = int(keys["derivation"]["family_index"])
-        digest = format3_keys_digest({"sync": seeds["sync"], "family": family,
+        digest = keys_module.format3_keys_digest({"sync": seeds["sync"], "family": family,
                                       "families": {family: seeds["family"]}})
     except (KeyError, ValueError, TypeError):
         return ["the format-3 key material is incomplete"]
@@ -236,6 +235,12 @@ Checking this disclosure with OpenSSL (no claimkit needed)
 """
 
 
+#: What a claimkit 0.2 disclosure (``claimkit/disclosure/v1``, always with the detection seed)
+#: finds, in the words of :attr:`DisclosureCheck.scope`.
+V1_SCOPE = ("a claimkit 0.2 disclosure: its detection seed finds every format-1/2 work of the "
+            "owner")
+
+
 def write_disclosure(profile, work_id: str, out: Path, *, keys: bool = True) -> Path:
     """Write the disclosure for ``work_id`` to the new folder ``out`` (all or nothing).
 
@@ -267,8 +272,7 @@ def write_disclosure(profile, work_id: str, out: Path, *, keys: bool = True) -> 
         "work-record.json": work.canonical,
         "work-record.sig": work.signature,
     }
-    token_ids = [r[0] for r in profile.db.execute(
-        "SELECT token_id FROM work_stamps WHERE work_id = ?", (work_id,))]
+    token_ids = profile.registry.token_ids_of(work_id, by_time=False)
     for token_id in token_ids:
         proof = inclusion_proof(profile, work_id, token_id)
         files[f"timestamps/{token_id}.tst"] = proof["token"]
@@ -326,7 +330,7 @@ def write_disclosure(profile, work_id: str, out: Path, *, keys: bool = True) -> 
 
 
 @dataclass
-class DisclosureCheck:
+class DisclosureCheck(Outcome):
     """Result of :func:`check_disclosure`; ``problems`` empty means every check held."""
 
     folder: Path
@@ -341,11 +345,6 @@ class DisclosureCheck:
     payload_tag: int | None = None
     public_key_sha256: str | None = None
     timestamps: list[dict] = field(default_factory=list)
-    problems: list[str] = field(default_factory=list)
-
-    @property
-    def ok(self) -> bool:
-        return not self.problems
 
     @property
     def detection_seed(self) -> bytes | None:
@@ -354,11 +353,9 @@ class DisclosureCheck:
 
 def _inside(folder: Path, name: str) -> Path:
     """A file named by the disclosure, refused unless it lies inside the folder (no links out)."""
-    path = (folder / name)
-    base = folder.resolve()
-    if path.is_symlink() or not path.resolve().is_relative_to(base):
+    if not isinstance(name, str) or outside(folder, name) is not None:
         raise ValueError(f"{name} points outside the disclosure folder")
-    return path
+    return folder / name
 
 
 def check_disclosure(folder: Path, *, tsa_roots: list | None = None) -> DisclosureCheck:
@@ -401,6 +398,12 @@ def check_disclosure(folder: Path, *, tsa_roots: list | None = None) -> Disclosu
         res.serial = doc["payload"]["serial"]
         commitment = doc["commitment"]["value"]
         keys = doc.get("keys")
+        if keys is None and doc.get("type") == "claimkit/disclosure/v1" and "detection" in doc:
+            # claimkit 0.2 put the owner's detection seed in every disclosure, in the bundle
+            # (CHANGELOG.md); it is read as the key material it was.
+            keys = {"seeds": {"detection": doc["detection"]["seed_hex"]},
+                    "format": (record.get("mark_params") or {}).get("format", "claimkit-mark/1"),
+                    "scope": V1_SCOPE}
         if keys is not None:
             res.seeds = {k: bytes.fromhex(v) for k, v in keys["seeds"].items()}
             res.mark_format, res.scope = keys["format"], keys["scope"]

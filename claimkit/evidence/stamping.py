@@ -14,11 +14,11 @@ from __future__ import annotations
 import hashlib
 import json
 import os
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 from cryptography.hazmat.primitives.serialization import Encoding
 
-from claimkit.errors import CheckFailed, InputError
+from claimkit.errors import CheckFailed, InputError, Outcome
 from claimkit.evidence import merkle, timestamp
 from claimkit.evidence.custodylog import utc_now
 from claimkit.evidence.storage import sha256_hex
@@ -54,7 +54,7 @@ class StampResult:
 
 
 @dataclass
-class StampStatus:
+class StampStatus(Outcome):
     """One token's standing for one work, re-checked from what is stored."""
 
     token_id: str
@@ -63,19 +63,11 @@ class StampStatus:
     root: str
     leaf_index: int
     tree_size: int
-    ok: bool
-    problems: list[str] = field(default_factory=list)
 
     def as_dict(self) -> dict:
         return {"token_id": self.token_id, "gen_time": self.gen_time, "tsa": self.tsa_name,
                 "merkle_root": self.root, "leaf_index": self.leaf_index,
                 "tree_size": self.tree_size, "ok": self.ok, "problems": self.problems}
-
-
-def _unstamped(profile) -> list[str]:
-    return [r[0] for r in profile.db.execute(
-        "SELECT work_id FROM works WHERE work_id NOT IN (SELECT work_id FROM work_stamps) "
-        "ORDER BY serial")]
 
 
 def request_stamp(profile, work_ids: list[str] | None = None) -> StampRequest:
@@ -94,17 +86,11 @@ def request_stamp(profile, work_ids: list[str] | None = None) -> StampRequest:
             raise InputError(f"no such work in this profile: {', '.join(missing)}")
         chosen = sorted(set(work_ids), key=lambda w: profile.work(w).serial)
     else:
-        chosen = _unstamped(profile)
+        chosen = profile.registry.unstamped()
         if not chosen:
             raise InputError("every registered work already has a timestamp token "
                              "(name works to stamp them again)")
-    rows: dict[str, tuple[bytes, bytes]] = {}
-    for i in range(0, len(chosen), 500):
-        part = chosen[i:i + 500]
-        q = ",".join("?" * len(part))
-        for work_id, canonical, signature in profile.db.execute(
-                f"SELECT work_id, canonical, signature FROM works WHERE work_id IN ({q})", part):
-            rows[work_id] = (bytes(canonical), bytes(signature))
+    rows = profile.registry.works_in(chosen)
     leaves = [rows[w][0] for w in chosen]
     damaged = [w for w in chosen if not profile.verify_signature(*rows[w])]
     if damaged:
@@ -114,22 +100,18 @@ def request_stamp(profile, work_ids: list[str] | None = None) -> StampRequest:
     root = merkle.root_of(leaves)
     tsq, nonce = timestamp.build_request(root)
     request_id = f"S-{utc_now()[:19].replace('-', '').replace(':', '')}-{os.urandom(3).hex()}"
-    with profile.transaction():
-        profile.db.execute("INSERT INTO stamp_requests VALUES (?, ?, ?, ?, ?, ?, 'pending')",
-                           (request_id, utc_now(), str(nonce), root.hex(),
-                            json.dumps(chosen), tsq))
-        profile._queue_log("stamp requested", items={"request": sha256_hex(tsq)},
-                           details={"request_id": request_id, "merkle_root": root.hex(),
-                                    "works": len(chosen)})
-    profile._flush_outbox()
+    with profile.change() as ch:
+        ch.registry.insert_stamp_request(request_id=request_id, created=utc_now(), nonce=nonce,
+                                         root=root.hex(), work_ids=chosen, tsq=tsq)
+        ch.log("stamp requested", items={"request": sha256_hex(tsq)},
+               details={"request_id": request_id, "merkle_root": root.hex(),
+                        "works": len(chosen)})
     return StampRequest(request_id, tsq, root.hex(), nonce, chosen)
 
 
 def pending_requests(profile) -> list[dict]:
     return [{"request_id": r[0], "created": r[1], "merkle_root": r[2], "works": len(json.loads(r[3]))}
-            for r in profile.db.execute(
-                "SELECT request_id, created, root, work_ids FROM stamp_requests "
-                "WHERE state = 'pending' ORDER BY created")]
+            for r in profile.registry.pending_requests()]
 
 
 def find_request(profile, *, tsq: bytes | None = None, root: bytes | None = None,
@@ -137,16 +119,13 @@ def find_request(profile, *, tsq: bytes | None = None, root: bytes | None = None
     """The request with these bytes, or whose root is ``root`` (and nonce ``nonce``, if any
     request over that root has it; else the newest pending one, which the checks then refuse)."""
     if tsq is not None:
-        row = profile.db.execute(
-            "SELECT request_id, nonce, root, work_ids, tsq, state FROM stamp_requests "
-            "WHERE tsq = ?", (tsq,)).fetchone()
+        row = profile.registry.request_by_tsq(tsq)
         if row is None:
             raise InputError("this request was not made by this profile", path=path)
     else:
-        rows = profile.db.execute(
-            "SELECT request_id, nonce, root, work_ids, tsq, state FROM stamp_requests "
-            "WHERE root = ? ORDER BY (state = 'pending') DESC, created DESC",
-            (root.hex(),)).fetchall()
+        if root is None:
+            raise ValueError("give the request bytes or the Merkle root")
+        rows = profile.registry.requests_by_root(root.hex())
         row = next((r for r in rows if nonce is not None and int(r[1]) == nonce),
                    rows[0] if rows else None)
         if row is None:
@@ -156,11 +135,10 @@ def find_request(profile, *, tsq: bytes | None = None, root: bytes | None = None
 
 
 def latest_pending_tsq(profile) -> bytes:
-    row = profile.db.execute("SELECT tsq FROM stamp_requests WHERE state = 'pending' "
-                             "ORDER BY created DESC LIMIT 1").fetchone()
-    if row is None:
+    tsq = profile.registry.latest_pending_tsq()
+    if tsq is None:
         raise InputError("no pending stamp request (run claimkit stamp request first)")
-    return bytes(row[0])
+    return tsq
 
 
 def attach_stamp(profile, tsr: bytes, tsa_cert_pem: bytes, *, tsq: bytes | None = None,
@@ -208,44 +186,34 @@ def attach_stamp(profile, tsr: bytes, tsa_cert_pem: bytes, *, tsq: bytes | None 
     token = info.token_der
     token_sha = sha256_hex(token)
     token_id = f"T-{token_sha[:12]}"
-    if profile.db.execute("SELECT 1 FROM tokens WHERE token_id = ?", (token_id,)).fetchone():
+    if profile.registry.has_token(token_id):
         raise InputError(f"this token is already attached ({token_id})", path=tsr_path)
     cert_pem = b"".join(c.public_bytes(Encoding.PEM) for c in trusted)
     now = utc_now()
-    with profile.transaction():
-        profile.db.execute("INSERT INTO tokens VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                           (token_id, request_id, token, token_sha, cert_pem, info.gen_time_iso,
-                            info.tsa_name, str(info.serial_number), now))
-        profile.db.executemany(
-            "INSERT INTO work_stamps VALUES (?, ?, ?, ?, ?)",
-            [(w, token_id, i, tree.size, json.dumps([p.hex() for p in tree.proof(i)]))
-             for i, w in enumerate(work_ids)])
-        profile.db.execute("UPDATE stamp_requests SET state = 'attached' WHERE request_id = ?",
-                           (request_id,))
-        profile._queue_log("works stamped",
-                           items={"token": token_sha, "response": sha256_hex(tsr),
-                                  "tsa_certificate": hashlib.sha256(info.signer_cert_der
-                                                                    ).hexdigest()},
-                           details={"request_id": request_id, "token_id": token_id,
-                                    "merkle_root": root_hex, "works": len(work_ids),
-                                    "gen_time": info.gen_time_iso,
-                                    "time_source": "RFC 3161 timestamp authority",
-                                    "tsa": info.tsa_name or info.signer_subject})
-    profile._flush_outbox()
+    with profile.change() as ch:
+        ch.registry.insert_token(
+            token_id=token_id, request_id=request_id, token=token, token_sha256=token_sha,
+            tsa_cert=cert_pem, gen_time=info.gen_time_iso, tsa_name=info.tsa_name,
+            tsa_serial=str(info.serial_number), attached_at=now,
+            leaves=[(w, i, tree.size, json.dumps([p.hex() for p in tree.proof(i)]))
+                    for i, w in enumerate(work_ids)])
+        ch.log("works stamped",
+               items={"token": token_sha, "response": sha256_hex(tsr),
+                      "tsa_certificate": hashlib.sha256(info.signer_cert_der).hexdigest()},
+               details={"request_id": request_id, "token_id": token_id,
+                        "merkle_root": root_hex, "works": len(work_ids),
+                        "gen_time": info.gen_time_iso,
+                        "time_source": "RFC 3161 timestamp authority",
+                        "tsa": info.tsa_name or info.signer_subject})
     return StampResult(token_id, request_id, info.gen_time_iso, info.tsa_name, root_hex, work_ids)
 
 
 def check_stamp(profile, work, token_id: str) -> StampStatus:
     """Re-check one stored token for one work: token integrity, TSA checks, inclusion proof."""
-    row = profile.db.execute(
-        "SELECT t.token, t.token_sha256, t.tsa_cert, t.gen_time, t.tsa_name, r.root, r.nonce, "
-        "s.leaf_index, s.tree_size, s.proof FROM work_stamps s "
-        "JOIN tokens t ON t.token_id = s.token_id "
-        "JOIN stamp_requests r ON r.request_id = t.request_id "
-        "WHERE s.work_id = ? AND s.token_id = ?", (work.work_id, token_id)).fetchone()
-    token, token_sha, cert_pem, gen_time, tsa_name, root_hex, nonce, idx, size, proof = row
+    row = profile.registry.stamp_of(work.work_id, token_id)
+    token, token_sha, cert_pem, gen_time, tsa_name, root_hex, nonce, idx, size, proof, _ = row
     token = bytes(token)
-    status = StampStatus(token_id, gen_time, tsa_name, root_hex, idx, size, ok=True)
+    status = StampStatus(token_id, gen_time, tsa_name, root_hex, idx, size)
     if sha256_hex(token) != token_sha:
         status.problems.append("token bytes altered since they were attached")
     try:
@@ -265,26 +233,19 @@ def check_stamp(profile, work, token_id: str) -> StampStatus:
     if not included:
         status.problems.append("the record is not in the stamped Merkle tree "
                                "(record or inclusion proof altered)")
-    status.ok = not status.problems
     return status
 
 
 def stamps_of(profile, work) -> list[StampStatus]:
     """Every token of a work, each re-checked."""
-    ids = [r[0] for r in profile.db.execute(
-        "SELECT s.token_id FROM work_stamps s JOIN tokens t ON t.token_id = s.token_id "
-        "WHERE s.work_id = ? ORDER BY t.gen_time", (work.work_id,))]
+    ids = profile.registry.token_ids_of(work.work_id)
     return [check_stamp(profile, work, t) for t in ids]
 
 
 def inclusion_proof(profile, work_id: str, token_id: str) -> dict:
     """What an outside party needs to check one work against one token."""
-    row = profile.db.execute(
-        "SELECT t.token, t.tsa_cert, t.gen_time, r.root, r.nonce, r.tsq, s.leaf_index, "
-        "s.tree_size, s.proof FROM work_stamps s JOIN tokens t ON t.token_id = s.token_id "
-        "JOIN stamp_requests r ON r.request_id = t.request_id "
-        "WHERE s.work_id = ? AND s.token_id = ?", (work_id, token_id)).fetchone()
-    token, cert, gen_time, root, nonce, tsq, idx, size, proof = row
+    row = profile.registry.stamp_of(work_id, token_id)
+    token, _, cert, gen_time, _, root, nonce, idx, size, proof, tsq = row
     return {"token": bytes(token), "tsa_cert_pem": bytes(cert), "tsq": bytes(tsq),
             "proof": {"scheme": "RFC 6962 Merkle tree over canonical work records",
                       "token_id": token_id, "gen_time": gen_time, "merkle_root": root,

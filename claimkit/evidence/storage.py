@@ -8,12 +8,13 @@ old file or the new one, never half of one.
 
 from __future__ import annotations
 
+import errno
 import hashlib
 import os
 import tempfile
-from pathlib import Path
+from pathlib import Path, PurePosixPath
 
-from claimkit.errors import InputError
+from claimkit.errors import AlreadyExists, DiskFull, InputError
 
 __all__ = ["atomic_write", "fsync_dir", "sha256_file", "sha256_hex", "write_new_file"]
 
@@ -64,6 +65,15 @@ def fsync_dir(path: str | os.PathLike) -> None:
         os.close(fd)
 
 
+_PART = ".part"
+
+
+def unfinished_writes(path: str | os.PathLike) -> list[Path]:
+    """Temporary files :func:`atomic_write` left beside ``path`` when a process was killed."""
+    path = Path(path)
+    return sorted(path.parent.glob(f".{path.name}.*{_PART}"))
+
+
 def atomic_write(path: str | os.PathLike, data: bytes, *, mode: int | None = None,
                  replace: bool = True) -> None:
     """Write ``data`` to ``path`` all at once: temp file in the same folder, fsync, rename.
@@ -95,11 +105,11 @@ def atomic_write(path: str | os.PathLike, data: bytes, *, mode: int | None = Non
         os.umask(umask)
         mode = 0o666 & ~umask
     try:
-        fd, tmp = tempfile.mkstemp(dir=folder, prefix=f".{path.name}.", suffix=".part")
+        fd, tmp = tempfile.mkstemp(dir=folder, prefix=f".{path.name}.", suffix=_PART)
     except FileNotFoundError:
         raise InputError("folder does not exist", path=folder) from None
     except OSError as exc:
-        raise InputError(f"cannot write: {exc.strerror or exc}", path=path) from None
+        raise _write_error(exc, path) from None
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
@@ -116,22 +126,62 @@ def atomic_write(path: str | os.PathLike, data: bytes, *, mode: int | None = Non
         except OSError:
             pass
         if isinstance(exc, OSError):
-            raise InputError(f"cannot write: {exc.strerror or exc}", path=path) from None
+            raise _write_error(exc, path) from None
         raise
     fsync_dir(folder)
+
+
+def _write_error(exc: OSError, path: Path) -> InputError:
+    """The typed error for a failed write (a full disk is told apart by its errno)."""
+    cls = DiskFull if exc.errno in (errno.ENOSPC, errno.EDQUOT) else InputError
+    return cls(f"cannot write: {exc.strerror or exc}", path=path)
 
 
 def _link_new(tmp: str, path: Path) -> None:
     try:
         os.link(tmp, path)
     except FileExistsError:
-        raise InputError("already exists (will not overwrite)", path=path) from None
+        raise AlreadyExists("already exists (will not overwrite)", path=path) from None
     except OSError:
         if path.exists():
-            raise InputError("already exists (will not overwrite)", path=path) from None
+            raise AlreadyExists("already exists (will not overwrite)", path=path) from None
         os.replace(tmp, path)   # a file system without hard links
         return
     os.unlink(tmp)
+
+
+def unsafe_name(name: str) -> str | None:
+    """Why a relative name read from a bundle is unsafe, or None when it is fine.
+
+    Refuses what could leave the folder or mean different files on different
+    systems: absolute paths (POSIX or drive letters), ``..``, backslashes, NUL.
+    """
+    if not name or "\\" in name or "\x00" in name:
+        return "has a backslash or an empty or NUL name"
+    p = PurePosixPath(name)
+    if p.is_absolute() or name.startswith("/") or (len(name) > 1 and name[1] == ":"):
+        return "is an absolute path"
+    if any(part == ".." for part in p.parts):
+        return "climbs out of its folder (..)"
+    return None
+
+
+def outside(root: Path, rel: str) -> str | None:
+    """Why ``root / rel`` is not safely inside ``root``, or None when it is.
+
+    The one path-safety rule: ``rel`` must be a plain relative name
+    (:func:`unsafe_name`), must not be a symbolic link, and must resolve
+    inside ``root`` (a linked folder on the way is caught by the resolution).
+    """
+    why = unsafe_name(rel)
+    if why:
+        return why
+    p = Path(root) / rel
+    if p.is_symlink():
+        return "is a symbolic link"
+    if not p.resolve().is_relative_to(Path(root).resolve()):
+        return "leads out of its folder"
+    return None
 
 
 def write_new_file(path: str | os.PathLike, data: bytes, *, mode: int | None = None) -> None:

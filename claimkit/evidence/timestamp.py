@@ -41,12 +41,13 @@ import urllib.request
 from dataclasses import dataclass
 from datetime import datetime
 
-from asn1crypto import algos, cms, core, tsp
+from asn1crypto import cms, core, tsp
 from asn1crypto import x509 as asn1_x509
 from cryptography import x509
 from cryptography.exceptions import InvalidSignature, UnsupportedAlgorithm
 from cryptography.hazmat.primitives import hashes
 from cryptography.hazmat.primitives.asymmetric import ec, ed25519, padding, rsa
+from cryptography.hazmat.primitives.serialization import Encoding
 
 from claimkit.errors import CheckFailed, InputError
 from claimkit.evidence import certpath
@@ -198,9 +199,7 @@ def _verify_signature(public_key, signature: bytes, data: bytes,
         raise _Refused("the TSA's signature does not verify (token forged or altered)") from None
 
 
-from cryptography.hazmat.primitives.serialization import Encoding as _Enc
-
-_DER = _Enc.DER
+_DER = Encoding.DER
 
 
 # --------------------------------------------------------------------------- checks
@@ -277,7 +276,7 @@ def _check(token_der: bytes, digest: bytes, nonce: int | None,
     attrs = si["signed_attrs"]
     if not attrs.contents:
         raise _Refused("the token has no signed attributes")
-    by_type = {}
+    by_type: dict[str, list] = {}
     for a in attrs:
         by_type.setdefault(a["type"].native, []).append(a["values"])
     if [v.native for v in by_type.get("content_type", [[]])[0]] != ["tst_info"]:
@@ -388,7 +387,3 @@ def check_response(tsr: bytes, *, digest: bytes, nonce: int | None,
     except _DAMAGE as exc:
         raise CheckFailed(f"the token is damaged ({type(exc).__name__}: {exc})",
                           path=path) from None
-
-
-def algorithm_name(alg: algos.DigestAlgorithm) -> str:  # pragma: no cover - helper for callers
-    return alg["algorithm"].native

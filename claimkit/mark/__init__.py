@@ -1,0 +1,1 @@
+"""The numeric core: pure functions on arrays (no files, no keys on disk)."""

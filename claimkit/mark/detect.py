@@ -96,9 +96,11 @@ class Finding:
 
     @property
     def false_alarm_probability(self) -> float:
+        """The bound as a probability (never rounded to zero)."""
         return stats.as_probability(self.log10_false_alarm)
 
     def to_json(self) -> dict:
+        """The finding as JSON values (the ``examine --json`` fields)."""
         return {
             "detected": self.detected,
             "false_alarm_probability": self.false_alarm_probability,
@@ -505,6 +507,7 @@ def examine_luma(luma: np.ndarray, seed: bytes, *,
         lp = stats.log10_false_alarm(float(flat[idx]), z_full, hypotheses(n), counted)
         if best is None or lp < best[0]:
             best = (lp, (g, d, ph, shift), pattern, bits, valid, z_full, float(flat[idx]), rec)
+    assert best is not None     # ``order`` holds at least one placement
     lp, (g, d, ph, shift), pattern, bits, valid, z_full, z_pilot, rec_map = best
     detected = lp <= np.log10(threshold)
     psnr, psnr_raw, psnr_zero, rec, rec_raw, ref = _message(pattern, rec_map, shift, bits)

@@ -65,12 +65,14 @@ class ConvCode:
         self._signs = 2.0 * self.out - 1.0   # +1 for a coded 1
 
     def __repr__(self) -> str:
+        """``ConvCode(...)`` with the code in words."""
         return f"ConvCode({self.describe()})"
 
     def describe(self) -> str:
         """'convolutional, rate 1/2, constraint 9, generators 561/753 (octal)'."""
         gens = "/".join(f"{g:o}" for g in self.generators)
-        return f"convolutional, rate 1/{self.rate_inv}, constraint {self.constraint}, generators {gens} (octal)"
+        return (f"convolutional, rate 1/{self.rate_inv}, constraint {self.constraint}, "
+                f"generators {gens} (octal)")
 
     def coded_length(self, n_bits: int) -> int:
         """Number of coded symbols for ``n_bits`` payload bits (tail included)."""
@@ -117,6 +119,7 @@ class ConvCode:
             cand = metric[None, :] + self._signs @ soft[t]  # (2, nstates): per input bit and state
             new = np.full(self.nstates, -np.inf)
             choice = np.zeros(self.nstates, dtype=np.int64)
+            allowed: tuple[int, ...]
             if t >= n_bits:
                 allowed = (0,)
             elif known is not None and known[t] >= 0:
@@ -143,10 +146,13 @@ class ConvCode:
         return bits[:n_bits]
 
     def free_distance(self, depth: int = 64) -> int:
-        """Least Hamming weight of a path that leaves state 0 and returns to it (trellis search, ``depth`` steps)."""
+        """Least Hamming weight of a path that leaves state 0 and returns to it.
+
+        A trellis search of ``depth`` steps.
+        """
         weight = self.out.sum(axis=-1)   # (2, nstates)
         best = {int(self.next[1, 0]): int(weight[1, 0])}
-        found = None
+        found: int | None = None
         for _ in range(depth):
             step: dict[int, int] = {}
             for s, w in best.items():
@@ -159,7 +165,9 @@ class ConvCode:
             best = step
             if not best:
                 break
-        return int(found)
+        if found is None:
+            raise ValueError(f"no path returns to state 0 within {depth} steps")
+        return found
 
 
 RATE_HALF = ConvCode((0o561, 0o753))          # mark format 2

@@ -34,7 +34,9 @@ from claimkit.mark.pattern import KeyPattern, key_pattern, mark_tile
 
 SSIM_C2 = (0.03 * 255.0) ** 2       # the SSIM stabiliser for 8-bit data (Wang et al. 2004)
 DEFAULT_LOCAL_SSIM = 0.988          # local SSIM the mask aims at
-DEFAULT_PSNR_DB = 42.4              # cap on the mean squared change (40 dB+ is usual for invisible marks; common practice, no source)
+# Cap on the mean squared change (40 dB and more is usual for invisible marks: common practice,
+# no single source).
+DEFAULT_PSNR_DB = 42.4
 MASK_WINDOW = 7
 MASK_MODE = "level"     # "level": flat areas keep their full SSIM allowance; "scale": uniform scaling
 

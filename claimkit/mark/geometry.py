@@ -70,7 +70,8 @@ from scipy import ndimage
 
 ACF_WINDOW = 1024          # largest side of the central window whose autocorrelation is taken
 LAG_MAX = 512              # largest lag used (the zero padding is this wide)
-SCALE_RANGE = (0.45, 2.8)  # copy/original scale the search covers (0.5x..2x, and a 400 px photo posted 1080 wide)
+# Copy/original scale the search covers: 0.5x..2x, and a 400 px photo posted 1080 wide.
+SCALE_RANGE = (0.45, 2.8)
 ASPECT_RANGE = 0.1         # aspect changes along the picture's axes: up to +-10 %
 LATTICE_CANDIDATES = 2     # fixed number of lattice hypotheses (counted in the statistics)
 
@@ -299,8 +300,8 @@ def _comb(max_norm: float) -> tuple[np.ndarray, np.ndarray]:
     Returns log|n| and arg n in [0, pi/2) (angle measured from +col towards +row).
     """
     m = int(np.ceil(max_norm))
-    i, j = np.meshgrid(np.arange(-m, m + 1), np.arange(-m, m + 1), indexing="ij")
-    i, j = i.ravel(), j.ravel()
+    i2, j2 = np.meshgrid(np.arange(-m, m + 1), np.arange(-m, m + 1), indexing="ij")
+    i, j = i2.ravel(), j2.ravel()
     nrm = np.hypot(i, j)
     keep = (nrm > 0) & (nrm <= max_norm)
     ang = np.arctan2(i[keep], j[keep])
@@ -376,7 +377,7 @@ def _coarse(acf: _Acf, tile: int, grid) -> list[tuple[float, np.ndarray]]:
         num = np.zeros((ks.size, g.shape[1]), dtype=np.float32)
         den = np.zeros((ks.size, v.shape[1]))
         g2, v2 = np.concatenate([g, g], axis=1), np.concatenate([v, v], axis=1)
-        for lr, ar in zip(log_n, arg_n):
+        for lr, ar in zip(log_n, arg_n, strict=True):
             first = ks[0] + int(np.rint(lr / d))
             rows = min(ks.size, n_rho - first)
             if rows <= 0:
@@ -422,7 +423,7 @@ def _top_maxima(score: np.ndarray, keep: int, size: int = 7) -> list[tuple[int, 
     while True:
         cand = np.argpartition(flat, flat.size - count)[flat.size - count:]
         cand = cand[np.argsort(flat[cand])[::-1]]
-        out = []
+        out: list[tuple[int, int, float]] = []
         for idx in cand:
             val = float(flat[idx])
             if val <= 0:
@@ -488,7 +489,10 @@ def _polar_support(window: tuple[int, int], cc: int, lo_rho: float, d: float, n_
 
 
 def _overlap(window: tuple[int, int], dy: np.ndarray, dx: np.ndarray) -> np.ndarray:
-    """Squared weight (overlap fraction of the window with itself) at lags (dy, dx); zero where too small to use."""
+    """Squared weight (overlap fraction of the window with itself) at lags (dy, dx).
+
+    Zero where the overlap is too small to use.
+    """
     sh, sw = window
     ov = np.clip(1.0 - np.abs(dy) / sh, 0.0, None) * np.clip(1.0 - np.abs(dx) / sw, 0.0, None)
     return np.where(ov >= MIN_OVERLAP, ov, 0.0)
@@ -509,8 +513,9 @@ def _comb_rect(max_norm: float, aspect: float) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _basis(period: float, theta: float, aspect: float = 1.0, lattice_aspect: float = 1.0) -> np.ndarray:
-    """Basis of a square lattice: squeezed along its own columns, turned by theta, squeezed along the picture's.
+    """Basis of a square lattice, squeezed, turned and squeezed again.
 
+    Squeezed along its own columns, turned by theta, squeezed along the picture's.
     Columns, in (row, col) pixels: the images of the original's +row step and
     +col step.
     """
@@ -593,8 +598,8 @@ def _refine(acf: _Acf, basis: np.ndarray, r_min: float) -> tuple[np.ndarray, int
     block = (offs[:, None] * size + offs[None, :]).ravel()   # 5x5 neighbourhood, row by row
     inliers = 0
     shortest = float(np.min(np.linalg.norm(basis, axis=0)))
-    for radius in REFINE_RADII:
-        radius = min(max(radius, 1.6 * shortest), acf.c - 4)
+    for refine_radius in REFINE_RADII:
+        radius = min(max(refine_radius, 1.6 * shortest), acf.c - 4)
         for _ in range(2):
             n = _points(basis, r_min, radius)
             if n.shape[1] < 2:
@@ -656,7 +661,8 @@ def _plausible(basis: np.ndarray, tile: int) -> bool:
     lo, hi = SCALE_RANGE
     s = np.sqrt(abs(np.linalg.det(basis))) / tile
     sv = np.linalg.svd(basis, compute_uv=False)
-    return bool(lo * 0.97 <= s <= hi * 1.03 and sv[0] / sv[1] <= (1 + ASPECT_RANGE) / (1 - ASPECT_RANGE) * 1.02)
+    squeeze = (1 + ASPECT_RANGE) / (1 - ASPECT_RANGE) * 1.02
+    return bool(lo * 0.97 <= s <= hi * 1.03 and sv[0] / sv[1] <= squeeze)
 
 
 def find_lattices(x: np.ndarray, tile: int, *, workers: int = 1,

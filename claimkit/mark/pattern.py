@@ -28,7 +28,9 @@ from claimkit.mark import ecc
 
 TILE = 128            # period of the tiled mark, in pixels of the original
 PAYLOAD_BITS = 64     # owner tag (16) + work serial (24) + payload tag (24)
-SPOT_SIGMA = 1.0      # width of each message spot (Gaussian sigma, pixels): trades message sharpness for survival of JPEG and blur
+# Width of each message spot (Gaussian sigma, pixels): trades message sharpness for survival
+# of JPEG and blur.
+SPOT_SIGMA = 1.0
 MIN_SPACING = 4       # minimum cyclic distance between spot centres, pixels
 MAX_PILOTS = 64       # pilot signs drawn from the key (a format uses the first ``pilots`` of them)
 
@@ -48,9 +50,11 @@ class MarkFormat:
 
     @property
     def code_spots(self) -> int:
+        """Spots that carry the coded payload."""
         return self.code.coded_length(PAYLOAD_BITS)
 
     def describe(self) -> str:
+        """The format in words (the dossier's method section)."""
         return f"{self.name}: {self.pilots} pilot and {self.code_spots} code spots, {self.code.describe()}"
 
 
@@ -88,6 +92,7 @@ class KeyPattern:
 
     @property
     def tile(self) -> int:
+        """Side of the tile, pixels."""
         return self.carrier_phase.shape[0]
 
 
@@ -128,7 +133,7 @@ def _upper_half(n: int) -> np.ndarray:
 def _positions(rng: np.random.Generator, n: int, count: int) -> np.ndarray:
     """Distinct spot centres at least MIN_SPACING apart on the torus."""
     taken = np.zeros((n, n), dtype=bool)
-    out = []
+    out: list[tuple[int, int]] = []
     r = MIN_SPACING - 1
     while len(out) < count:
         y, x = rng.integers(0, n, size=2)

@@ -16,8 +16,8 @@ PAYLOAD_SPACE = 2 ** 24   # valid payloads for one owner: one per serial
 
 def pack(owner_tag: int, serial: int, tag: int) -> np.ndarray:
     """Payload bits (uint8 0/1, length 64)."""
-    out = []
-    for (name, width), value in zip(FIELDS, (owner_tag, serial, tag)):
+    out: list[int] = []
+    for (name, width), value in zip(FIELDS, (owner_tag, serial, tag), strict=True):
         if not 0 <= value < 2 ** width:
             raise ValueError(f"{name} {value} does not fit in {width} bits")
         out.extend((value >> (width - 1 - i)) & 1 for i in range(width))

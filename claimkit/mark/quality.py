@@ -73,7 +73,9 @@ def squared_error_sum(a: np.ndarray, b: np.ndarray) -> int:
 
 
 def _ssim_map_mean(x: np.ndarray, y: np.ndarray, data_range: float) -> float:
-    f = lambda z: ndimage.gaussian_filter(z, 1.5, truncate=3.5, mode="reflect")
+    def f(z):
+        return ndimage.gaussian_filter(z, 1.5, truncate=3.5, mode="reflect")
+
     c1, c2 = (0.01 * data_range) ** 2, (0.03 * data_range) ** 2
     mx, my = f(x), f(y)
     vx = f(x * x) - mx * mx

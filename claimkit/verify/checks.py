@@ -10,6 +10,7 @@ import json
 from pathlib import Path
 
 from claimkit.case import layout
+from claimkit.case.documents import ManifestDoc
 from claimkit.case.layout import (
     CUSTODY_COPY,
     CUSTODY_COPY_V1,
@@ -94,10 +95,14 @@ def check_manifest(root: Path, files: list[str], rep: VerifyReport):
             else "manifest.json: the Ed25519 signature does not verify (manifest altered or "
                  "signed by another key)")
     try:
-        manifest = json.loads(body)
-        listed = {f["path"]: f for f in manifest["files"]}
-    except (ValueError, KeyError, TypeError):
-        rep.add("manifest", False, "manifest.json is not a claimkit manifest")
+        doc = ManifestDoc.from_json(json.loads(body), path=MANIFEST)
+        listed = doc.listed()
+        manifest = doc.to_json()
+    except ValueError:
+        rep.add("manifest", False, "manifest.json is not JSON")
+        return None, pub
+    except InputError as exc:
+        rep.add("manifest", False, exc.line())
         return None, pub
     fp = signing.fingerprint(signing.raw_public(pub))
     rep.add("manifest signer", manifest.get("signer", {}).get("public_key_sha256") == fp,

@@ -18,8 +18,12 @@ import hashlib
 from pathlib import Path
 
 from claimkit.capture.evidence import capture_records
+from claimkit.capture.warc import record_payload
 from claimkit.case.layout import CAPTURES, EXHIBITS, inside
 from claimkit.errors import CheckFailed, InputError
+from claimkit.evidence import timestamp
+from claimkit.evidence.storage import sha256_file
+from claimkit.verify.report import UNPINNED
 
 __all__ = ["check_collection"]
 
@@ -29,7 +33,6 @@ def _safe(root: Path, rel: object, folder: str = CAPTURES) -> str | None:
 
 
 def _sha(path: Path) -> str:
-    from claimkit.evidence.storage import sha256_file
 
     return sha256_file(path)
 
@@ -37,7 +40,6 @@ def _sha(path: Path) -> str:
 def check_collection(root: str | Path, exhibits: list[dict], rep, *,
                      tsa_roots: tuple | None = None) -> None:
     """Add every collection check to ``rep`` (none when nothing was captured)."""
-    from claimkit.verify.report import UNPINNED
 
     root = Path(root)
     out: list[tuple[str, bool, str]] = []
@@ -81,7 +83,6 @@ def check_collection(root: str | Path, exhibits: list[dict], rep, *,
 
 
 def _exhibits(root: Path, exhibits: list[dict], out: list, warc_file) -> None:
-    from claimkit.capture.warc import record_payload
 
     for ex in exhibits:
         a = ex.get("acquisition")
@@ -111,7 +112,6 @@ def _exhibits(root: Path, exhibits: list[dict], out: list, warc_file) -> None:
 
 
 def _check_snapshot(root: Path, warc: Path, snap: dict) -> tuple[str, bool, str]:
-    from claimkit.capture.warc import record_payload
 
     rel = _safe(root, snap.get("file"))
     name = f"snapshot {rel}"
@@ -127,7 +127,6 @@ def _check_snapshot(root: Path, warc: Path, snap: dict) -> tuple[str, bool, str]
 
 def _check_token(root: Path, cid: str, stamp: dict, warc_sha: object,
                  tsa_roots: tuple | None = None) -> tuple[str, bool, str]:
-    from claimkit.evidence import timestamp
 
     name = f"capture {cid} timestamp"
     rels = [_safe(root, stamp.get(k)) for k in ("token_file", "request_file",

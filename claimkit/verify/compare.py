@@ -26,7 +26,7 @@ def differences(a, b, path: str = "") -> list[str]:
         if len(a) != len(b):
             return [f"{path}: {len(a)} items stored, {len(b)} reproduced"]
         out = []
-        for i, (x, y) in enumerate(zip(a, b)):
+        for i, (x, y) in enumerate(zip(a, b, strict=True)):
             out += differences(x, y, f"{path}[{i}]")
         return out
     if isinstance(a, bool) or isinstance(b, bool) or not isinstance(a, (int, float)) \

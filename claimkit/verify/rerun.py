@@ -14,13 +14,21 @@ from claimkit import __version__
 from claimkit.case.align import align
 from claimkit.case.examine import decoy_summary, jsonable
 from claimkit.imageio import LUMA_FROM_RGB, read_picture, to_luma
-from claimkit.mark import detect, payload
+from claimkit.mark import payload
 from claimkit.stress import run_battery
 from claimkit.verify.compare import differences
 from claimkit.verify.report import SKIPPED, VerifyReport
-from claimkit.workflow import examine_picture, expected_payload_check
+from claimkit.workflow import examine_picture, expected_payload_check, finding_words
 
 __all__ = ["rerun_examination", "rerun_robustness"]
+
+
+def _name_versions(diffs: list[str], made_with: str | None) -> None:
+    """Put first, when numbers differ, which claimkit made them and which re-ran them."""
+    this = f"claimkit {__version__}"
+    if diffs and made_with and made_with != this:
+        diffs.insert(0, f"examined with {made_with} and re-run with {this} (install {made_with} "
+                        "to reproduce its numbers to the digit)")
 
 
 def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
@@ -44,8 +52,7 @@ def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
     f = examine_picture(pic, seed, owner_tag=owner_tag, payload_check=check,
                         threshold=params["threshold"], decoys=params["decoys"])
     stored = finding["result"]
-    got = f.to_json()
-    got["geometry_text"] = detect.describe_in_words(f.geometry)
+    got = {**f.to_json(), **finding_words(f)}
     diffs = []
     for k, v in got.items():
         diffs += differences(stored.get(k), v, k)
@@ -81,10 +88,7 @@ def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
         if "difference" in stored_arrays and not np.array_equal(stored_arrays["difference"],
                                                                again.difference):
             diffs.append("arrays.difference: the difference map differs from the re-run")
-    made_with, this = params.get("software"), f"claimkit {__version__}"
-    if diffs and made_with and made_with != this:
-        diffs.insert(0, f"examined with {made_with} and re-run with {this} (install {made_with} "
-                        "to reproduce its numbers to the digit)")
+    _name_versions(diffs, params.get("software"))
     rep.add(f"{i} re-run", not diffs, "; ".join(diffs[:8]) if diffs else
             f"{'detected' if f.detected else 'not detected'}, log10 P_fa "
             f"{round(f.log10_false_alarm, 4)}, {len(f.decoy_scores)} decoys and every stored "
@@ -111,5 +115,6 @@ def rerun_robustness(root: Path, findings: dict, keys: dict, rep: VerifyReport) 
         strip = [{k: v for k, v in r.items() if k != "seconds"} for r in stored]
         fresh = [{k: v for k, v in r.items() if k != "seconds"} for r in again]
         diffs = differences(strip, fresh, "rows")
+        _name_versions(diffs, (f.get("examined") or {}).get("software"))
         rep.add(f"robustness {wid}", not diffs, "; ".join(diffs[:6]) if diffs else
                 f"{len(fresh)} edits of the registered file re-run, every row reproduced")

@@ -8,8 +8,8 @@ import stat
 import zipfile
 from pathlib import Path, PurePosixPath
 
-from claimkit.case.layout import unsafe_name
 from claimkit.errors import CheckFailed, InputError
+from claimkit.evidence.storage import outside, unsafe_name
 
 __all__ = ["MAX_BUNDLE_BYTES", "MAX_FILES", "folder_files", "safe_extract"]
 
@@ -59,10 +59,10 @@ def safe_extract(zip_path: Path, dest: Path) -> list[str]:
         for info in infos:
             if info.is_dir():
                 continue
-            target = dest / PurePosixPath(info.filename)
-            if not str(target.resolve()).startswith(str(dest.resolve()) + os.sep):
+            if outside(dest, info.filename) is not None:
                 raise CheckFailed(f"refused entry {info.filename!r}: it leaves the bundle",
                                   path=zip_path)
+            target = dest / PurePosixPath(info.filename)
             target.parent.mkdir(parents=True, exist_ok=True)
             with zf.open(info) as src, open(target, "wb") as out:
                 shutil.copyfileobj(src, out, 1 << 20)

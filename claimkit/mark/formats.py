@@ -1,0 +1,101 @@
+"""The public parameter record of each mark format: what an expert needs to rebuild and re-check it.
+
+Every number here is public (the method is published); only the seeds are
+secret. The dossier and each work record carry :meth:`FormatRecord.as_record`
+instead of reading module constants, so that a record states exactly what
+was embedded and what the detector searches.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from claimkit.mark import pattern
+
+
+@dataclass(frozen=True)
+class FormatRecord:
+    """Public parameters of one mark format.
+
+    Attributes
+    ----------
+    name : str
+        The format's name (``claimkit-mark/N``).
+    method : str
+        One line on what is embedded.
+    tile_px : int
+        Period of the periodic component, pixels.
+    payload_bits : int
+        Bits carried (owner tag 16, serial 24, payload tag 24).
+    pilot_spots, code_spots : int
+        Spots of the message that the claim rests on.
+    spot_sigma_px : float
+        Gaussian width of a spot.
+    code : str
+        The convolutional code of the payload.
+    keys : str
+        Which seeds the format uses (all derived from the owner's marking secret).
+    families : int
+        Keyed families of works (1: every work shares one pattern).
+    macro_cell_tiles : int
+        Tiles per side of the macro-cell over which the claim's carriers change (1: none).
+    sync_spots : int
+        Spots of the synchronisation component (0: none).
+    sync_energy_share : float
+        Share of the mark's energy in the synchronisation component.
+    scales : int
+        Scales at which the mark is embedded and searched (1: native only).
+    """
+
+    name: str
+    method: str
+    tile_px: int
+    payload_bits: int
+    pilot_spots: int
+    code_spots: int
+    spot_sigma_px: float
+    code: str
+    keys: str
+    families: int = 1
+    macro_cell_tiles: int = 1
+    sync_spots: int = 0
+    sync_energy_share: float = 0.0
+    scales: int = 1
+
+    def as_record(self) -> dict:
+        """The record as JSON-ready data (``format`` is the name)."""
+        out = {"format": self.name}
+        out.update({k: v for k, v in self.__dict__.items() if k != "name"})
+        return out
+
+    def describe(self) -> str:
+        """The format in words (the dossier's method section)."""
+        extra = ""
+        if self.families > 1:
+            extra = (f"; {self.families} keyed families, a carrier per tile of a "
+                     f"{self.macro_cell_tiles} x {self.macro_cell_tiles} macro-cell, "
+                     f"synchronisation {self.sync_spots} spots at {self.sync_energy_share:.0%} of the energy")
+        return (f"{self.name}: {self.pilot_spots} pilot and {self.code_spots} code spots, "
+                f"{self.code}, {self.tile_px}-px tile{extra}")
+
+
+_PHASE = "phase-dispersion: random-phase carrier convolved with a spot template"
+
+FORMAT_1 = FormatRecord(
+    name=pattern.FORMAT_1.name, method=_PHASE + ", tiled", tile_px=pattern.TILE,
+    payload_bits=pattern.PAYLOAD_BITS, pilot_spots=pattern.FORMAT_1.pilots,
+    code_spots=pattern.FORMAT_1.code_spots, spot_sigma_px=pattern.SPOT_SIGMA,
+    code=pattern.FORMAT_1.code.describe(), keys="owner-level detection seed")
+FORMAT_2 = FormatRecord(
+    name=pattern.FORMAT_2.name, method=_PHASE + ", tiled", tile_px=pattern.TILE,
+    payload_bits=pattern.PAYLOAD_BITS, pilot_spots=pattern.FORMAT_2.pilots,
+    code_spots=pattern.FORMAT_2.code_spots, spot_sigma_px=pattern.SPOT_SIGMA,
+    code=pattern.FORMAT_2.code.describe(), keys="owner-level detection seed")
+CURRENT = FORMAT_2
+#: Every format the detector reads, the current first.
+READABLE = (FORMAT_2, FORMAT_1)
+
+
+def by_name(name: str) -> FormatRecord | None:
+    """The record of a format by its name (None for an unknown one)."""
+    return next((f for f in READABLE if f.name == name), None)

@@ -1,0 +1,87 @@
+"""Numbers in words for people: false-alarm probabilities and geometry, one formatter each.
+
+Outside the numeric core on purpose: wording is for readers and changes with
+them, while :mod:`claimkit.mark` computes. JSON keeps the numbers themselves
+(``false_alarm_probability``, ``log10_false_alarm_probability``, ``geometry``);
+these strings sit beside them.
+
+A probability is written as a power of ten with its sign spelled out
+("3.2 x 10^-7"), never as "3.2e-07": an exponent written with an "e" loses
+its meaning, and sometimes its minus sign, when copied into prose or a
+word processor.
+"""
+
+from __future__ import annotations
+
+import math
+
+__all__ = ["FLOOR_LOG10", "geometry", "probability"]
+
+#: Below this the words stop at "below 10^-12": smaller numbers tell a reader nothing more
+#: and rest ever harder on the model; the exact bound stays in the JSON (log10).
+FLOOR_LOG10 = -12
+
+
+def probability(log10p: float) -> str:
+    """A probability given by its base-10 logarithm, in words that survive copying.
+
+    Parameters
+    ----------
+    log10p : float
+        log10 of the probability (at most 0).
+
+    Returns
+    -------
+    str
+        "below 10^-12" past :data:`FLOOR_LOG10`; "3.2 x 10^-7" below 10^-3;
+        a plain decimal ("0.0032", "0.5") above.
+    """
+    if not math.isfinite(log10p) or log10p < FLOOR_LOG10:
+        return f"below 10^{FLOOR_LOG10}"
+    if log10p < -3:
+        e = math.floor(log10p)
+        m = 10.0 ** (log10p - e)
+        if round(m, 1) >= 10.0:       # 9.96 x 10^-5 rounds to 10.0: write 1.0 x 10^-4
+            m, e = m / 10.0, e + 1
+        return f"{m:.1f} x 10^{e}"
+    return f"{10.0 ** log10p:.2g}"
+
+
+def _turn(geom: dict) -> tuple[float, float, float, bool]:
+    return (float(geom["rotation_deg"]), float(geom["scale"]), float(geom.get("aspect", 1.0)),
+            bool(geom.get("flipped")))
+
+
+def geometry(geom: dict | None, *, short: bool = False) -> str:
+    """What was done to a copy's geometry, in words.
+
+    Parameters
+    ----------
+    geom : dict or None
+        ``rotation_deg``, ``scale``, ``aspect`` (optional), ``flipped``; None
+        or empty when the mark was not found.
+    short : bool
+        The compact table form ("+4.0° x0.800 mirrored") instead of the
+        sentence form ("rotated 4.0°, scaled to 80 %, mirrored").
+    """
+    if not geom:
+        return "not found" if short else "no geometry (mark not found)"
+    rot, scale, aspect, flipped = _turn(geom)
+    if short:
+        # Adding 0.0 turns a rounded -0.0 into 0.0.
+        parts = [f"{round(rot, 1) + 0.0:+.1f}°", f"x{scale:.3f}"]
+        if abs(aspect - 1.0) >= 0.005:
+            parts.append(f"aspect {aspect:.2f}")
+        if flipped:
+            parts.append("mirrored")
+        return " ".join(parts)
+    parts = []
+    if abs(rot) >= 0.05:
+        parts.append(f"rotated {rot:.1f}°")
+    if abs(scale - 1) >= 0.005:
+        parts.append(f"scaled to {100 * scale:.0f} %")
+    if abs(aspect - 1) >= 0.005:
+        parts.append(f"aspect changed to {aspect:.2f}")
+    if flipped:
+        parts.append("mirrored")
+    return ", ".join(parts) if parts else "no rotation, scaling or mirroring"
