@@ -351,7 +351,10 @@ class _MarkBatch:
                       "error": remote_path_hint(self.engine, job.src, outcome.value["error"]),
                       "kind": outcome.value.get("kind", "input")}
         else:
-            result = self._finish(job, outcome.value)
+            # A work registered is a row reported: a second Ctrl-C waits for both.
+            with self.guard.critical():
+                self._report(job, self._finish(job, outcome.value))
+            return
         self._report(job, result)
 
     def _finish(self, job: _Job, value: dict) -> dict:

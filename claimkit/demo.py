@@ -56,13 +56,13 @@ SCENARIO = {
     "copies": [
         {"name": "tidewater-mug-listing.jpg",
          "source": "https://tidewater-home-goods.example/products/harbour-mug",
-         "found": "2026-11-28, while searching the shop's new arrivals", "by": "Ilse Marrow",
+         "found": "{day}, while searching the shop's new arrivals", "by": "Ilse Marrow",
          "note": "Used as the main product photo; no licence was issued to Tidewater Home Goods.",
          "edits": {"scale": 0.7, "crop": [0.06, 0.08, 0.94, 0.9], "rotate_deg": 0,
                    "jpeg_quality": 72}},
         {"name": "tidewater-banner.jpg",
          "source": "https://tidewater-home-goods.example/collections/autumn",
-         "found": "2026-11-29, collection banner", "by": "Ilse Marrow",
+         "found": "{day}, collection banner", "by": "Ilse Marrow",
          "note": "Turned slightly and cropped for the banner.",
          "edits": {"scale": 0.8, "crop": [0.1, 0.12, 0.9, 0.85], "rotate_deg": 4,
                    "jpeg_quality": 80}},
@@ -221,8 +221,14 @@ def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None =
         say(f"4. the shop's copies: {', '.join(p.name for p in copies)}")
         case_dir = folder / "case-tidewater"
         case = new_case(case_dir, sc["case_title"], profile)
+        # The demo marks, stamps and finds in one sitting, so the copies are "found" on the day
+        # it runs, after the registration; a found date before it would (rightly) give the
+        # warning registered-after-found.
+        day = datetime.now(timezone.utc).date().isoformat()
         for c, p in zip(sc["copies"], copies, strict=True):
-            add_exhibit(case, p, source=c["source"], found=c.get("found"), by=c.get("by"),
+            found = c.get("found")
+            found = found.replace("{day}", day) if found else found
+            add_exhibit(case, p, source=c["source"], found=found, by=c.get("by"),
                         note=c.get("note"), profile=profile)
         say(f"5. case {case.case_id}: {len(copies)} exhibits taken in (copied, hashed, logged)")
         kw = {} if decoys is None else {"decoys": decoys}

@@ -177,6 +177,11 @@ class Picture:
         ``pixels`` and ``alpha`` hold, when only a part was asked for
         (``read_picture(region=...)``); None when they hold the whole picture.
         ``height`` and ``width`` are always the whole picture's.
+    overview, overview_step : ndarray or None, int
+        With a region: the whole upright picture reduced by Pillow's box
+        filter (``Image.reduce``), ``overview_step`` pixels to one, when asked
+        for (``read_picture(overview=...)``); the examination of a large copy
+        looks for the mark's coarse component there.
     dpi : tuple of float or None
         Resolution in pixels per inch as Pillow reads it (JFIF, PNG pHYs,
         TIFF or EXIF), None where the file states none.
@@ -200,6 +205,8 @@ class Picture:
     dpi: tuple[float, float] | None = None
     full_size: tuple[int, int] | None = field(default=None, repr=False)   # (height, width) with a region
     examination_method: str | None = None
+    overview: np.ndarray | None = field(default=None, repr=False)   # whole picture, box-reduced
+    overview_step: int = 1
 
     @property
     def height(self) -> int:
@@ -232,6 +239,7 @@ def resolve_max_pixels(max_pixels: int | None = None) -> int:
 
 def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
                  region: Callable[[tuple[int, int]], tuple[int, int, int, int]] | None = None,
+                 overview: Callable[[tuple[int, int]], int] | None = None,
                  method: str | None = None, data: bytes | None = None) -> Picture:
     """Decode a photo into an upright array plus the metadata to carry over.
 
@@ -250,6 +258,11 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
         only that part is copied out of the decoder into the array: at
         24 megapixels the copy of the whole picture costs about as much as
         half the decoding. ``Picture.region`` records the part.
+    overview : callable, optional
+        With ``region``: given the upright ``(height, width)``, a whole-number
+        step; the whole picture, box-reduced by that step from the same
+        decoded image, goes to ``Picture.overview`` (grey, like ``pixels``,
+        when ``method`` decodes luma only).
     method : str, optional
         Read the pixels an examination method reads (:data:`EXAMINATION_METHODS`):
         with :data:`LUMA_FROM_JPEG_Y` a colour JPEG is decoded to its luma
@@ -304,6 +317,7 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
                 path=path,
             )
         notes: list[str] = []
+        small, step = None, 1   # the overview, when asked for
         frames = int(getattr(im, "n_frames", 1) or 1)
         if frames > 1:
             # Image.open leaves the first frame selected.
@@ -337,6 +351,8 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
                         upright_size = (width, height) if oriented in (5, 6, 7, 8) else (height, width)
                         box = region(upright_size)
                         part = im.crop(_stored_box(oriented, (height, width), box))
+                        if overview is not None:
+                            small, step = _overview(im, overview(upright_size), rawmode, path)
                     pixels, alpha, bit_depth, icc_ok = _pixels_from_pillow(
                         part, rawmode, notes, path
                     )
@@ -365,6 +381,8 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
             xmp = xmp.encode("utf-8")
 
     pixels = _upright(pixels, orientation)
+    if small is not None:
+        small = np.ascontiguousarray(_upright(small, orientation))
     if alpha is not None:
         alpha = _upright(alpha, orientation)
     if orientation in _TRANSPOSES:
@@ -393,7 +411,19 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
         dpi=dpi,
         full_size=full_size,
         examination_method=method,
+        overview=small,
+        overview_step=step,
     )
+
+
+def _overview(im: Image.Image, step: int, rawmode: str, path: Path) -> tuple[np.ndarray | None, int]:
+    """The whole picture box-reduced by ``step`` (Pillow's ``reduce``), as stored (not yet upright)."""
+    step = max(1, int(step))
+    try:
+        small = im.reduce(step) if step > 1 else im
+    except (ValueError, NotImplementedError):  # a mode reduce does not handle
+        return None, 1
+    return _pixels_from_pillow(small, rawmode, [], path)[0], step
 
 
 def _stored_box(orientation: int, stored: tuple[int, int],

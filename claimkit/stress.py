@@ -32,10 +32,11 @@ from PIL import Image, ImageEnhance, ImageFilter
 
 from claimkit import words
 from claimkit.imageio import to_luma
-from claimkit.mark import detect, payload
+from claimkit.mark import detect, payload, scales
 
 ROTATION_TOLERANCE_DEG = 0.5   # issue 3: estimated rotation within 0.5 degrees
 SCALE_TOLERANCE = 0.02         # issue 3: estimated scale within 2 %
+DOWNSCALES = (50, 35, 25, 15, 10)   # per cent of the width: web sizes of a large master
 NOISE_SEED = 20240611          # fixed, so that a battery run can be repeated exactly
 
 
@@ -71,10 +72,10 @@ def _array(im: Image.Image) -> np.ndarray:
     return np.asarray(im).copy()
 
 
-def jpeg(pixels: np.ndarray, quality: int) -> np.ndarray:
-    """Re-encode with Pillow's JPEG codec (4:2:0 chroma, as a web upload would)."""
+def jpeg(pixels: np.ndarray, quality: int, subsampling: int = 2) -> np.ndarray:
+    """Re-encode with Pillow's JPEG codec (4:2:0 chroma by default, as a web upload would)."""
     buf = io.BytesIO()
-    _image(pixels).save(buf, "JPEG", quality=int(quality))
+    _image(pixels).save(buf, "JPEG", quality=int(quality), subsampling=int(subsampling))
     buf.seek(0)
     return _array(Image.open(buf))
 
@@ -159,7 +160,7 @@ def gamma(pixels: np.ndarray, g: float) -> np.ndarray:
 
 
 def social(pixels: np.ndarray, width: int = 1080, quality: int = 80) -> np.ndarray:
-    """A social-media upload: resize to ``width`` wide, crop to 4:5 portrait, JPEG."""
+    """A social-media upload: resize to ``width`` wide, crop to 4:5 portrait, JPEG (4:2:0)."""
     w = pixels.shape[1]
     s = width / w
     out = resize(pixels, s)
@@ -172,6 +173,11 @@ def social(pixels: np.ndarray, width: int = 1080, quality: int = 80) -> np.ndarr
     return jpeg(out[r0:r0 + ch, c0:c0 + cw].copy(), quality)
 
 
+def downscale_jpeg(pixels: np.ndarray, factor: float, quality: int = 85) -> np.ndarray:
+    """A web copy: Pillow Lanczos to ``factor`` of the width and height, JPEG ``quality``."""
+    return jpeg(resize(pixels, factor), quality)
+
+
 def shrink_turn_jpeg(pixels: np.ndarray, factor: float = 0.6, deg: float = 2.0,
                      quality: int = 70) -> np.ndarray:
     """Downscale, straighten by a few degrees, crop the borders, JPEG: a re-posted print scan."""
@@ -179,7 +185,7 @@ def shrink_turn_jpeg(pixels: np.ndarray, factor: float = 0.6, deg: float = 2.0,
 
 
 def _size_scale(attack: Attack, before: tuple[int, int]) -> float:
-    if attack.name.startswith("social"):
+    if attack.family == "pipeline" and "width" in attack.params:
         return attack.params["width"] / before[1]
     raise ValueError(f"no size-dependent scale for {attack.name}")
 
@@ -212,6 +218,16 @@ def battery(*, quick: bool = False) -> list[Attack]:
         ]
     a.append(Attack("social 1080 4:5 jpeg 80", "pipeline", {"width": 1080, "crop": "4:5", "quality": 80},
                     social, scale=None))
+    if not quick:
+        # Web copies of a large master: a 24-megapixel photo posted 1080 px wide
+        # is an 18 % copy (the mark's coarse component, claimkit.mark.scales).
+        for pct in DOWNSCALES:
+            a.append(Attack(f"downscale {pct} % jpeg 85", "downscale",
+                            {"factor": pct / 100, "quality": 85},
+                            lambda p, f=pct / 100: downscale_jpeg(p, f), scale=pct / 100))
+        a.append(Attack("master to 1080 4:5 jpeg 75", "pipeline",
+                        {"width": 1080, "crop": "4:5", "quality": 75, "chroma": "4:2:0"},
+                        lambda p: social(p, 1080, 75), scale=None))
     a.append(Attack("shrink 0.6 rotate 2 jpeg 70", "pipeline",
                     {"factor": 0.6, "degrees": 2, "crop": "no border", "quality": 70},
                     shrink_turn_jpeg, rotation_deg=2.0, scale=0.6))
@@ -247,12 +263,17 @@ def run_attack(attack: Attack, pixels: np.ndarray, seed: bytes, payload_check, *
     """Apply one attack and examine the copy blind; one row of the battery's table."""
     start = time.perf_counter()
     copy = attack.apply(pixels)
-    finding = detect.examine_luma(to_luma(copy), seed, payload_check=payload_check,
-                                  payload_space=payload.PAYLOAD_SPACE, threshold=threshold,
-                                  workers=workers)
-    seconds = time.perf_counter() - start
     truth = attack.truth(pixels.shape[:2], copy.shape[:2])
-    est = {k: finding.geometry[k] for k in ("rotation_deg", "scale", "aspect", "flipped")} \
+    if min(copy.shape[:2]) < detect.MIN_SIDE:
+        return _too_small(attack, copy, truth)
+    finding = scales.examine(to_luma(copy), seed, payload_check=payload_check,
+                             payload_space=payload.PAYLOAD_SPACE, threshold=threshold,
+                             workers=workers)
+    seconds = time.perf_counter() - start
+    # A finding at a coarse view is stated against the original's coarse level;
+    # the battery knows the original's size, so it is compared as any other.
+    geom = scales.relative_to_original(finding.geometry, pixels.shape[:2])
+    est = {k: geom[k] for k in ("rotation_deg", "scale", "aspect", "flipped")} \
         if finding.detected else None
     rot_err, scale_err, geom_ok = geometry_errors(truth, est or {})
     same = None
@@ -271,12 +292,26 @@ def run_attack(attack: Attack, pixels: np.ndarray, seed: bytes, payload_check, *
         "false_alarm_probability": finding.false_alarm_probability,
         "log10_false_alarm_probability": round(finding.log10_false_alarm, 3),
         "message_psnr_db": None if finding.message_psnr_db is None else round(finding.message_psnr_db, 2),
+        "scale_examined": (geom.get("level") or {}).get("view", "native") if finding.detected else None,
         "estimated_geometry": est,
         "rotation_error_deg": rot_err,
         "scale_error": scale_err,
         "geometry_ok": geom_ok,
         "seconds": round(seconds, 3),
         "payload_bits": finding.payload_bits,
+    }
+
+
+def _too_small(attack: Attack, copy: np.ndarray, truth: dict) -> dict:
+    """The row of a copy too small to examine at all: not found."""
+    return {
+        "attack": attack.name, "family": attack.family, "params": attack.params,
+        "width": int(copy.shape[1]), "height": int(copy.shape[0]), "true_geometry": truth,
+        "detected": False, "payload_valid": False, "same_payload": False,
+        "false_alarm_probability": 1.0, "log10_false_alarm_probability": 0.0,
+        "message_psnr_db": None, "scale_examined": None, "estimated_geometry": None,
+        "rotation_error_deg": None, "scale_error": None, "geometry_ok": False, "seconds": 0.0,
+        "payload_bits": None, "note": f"copy below {detect.MIN_SIDE} px a side: not examined",
     }
 
 

@@ -37,7 +37,7 @@ from claimkit.imageio import (
     to_luma,
     write_picture_keeping_bytes,
 )
-from claimkit.mark import detect, embed, pattern, payload, quality
+from claimkit.mark import detect, embed, pattern, payload, quality, scales
 from claimkit.mark.detect import Finding
 from claimkit.mark.fingerprint import perceptual_fingerprint
 
@@ -91,6 +91,15 @@ def mark_parameters(strength: float) -> dict:
         "mask": "SSIM-derived local amplitude",
         "local_ssim_target": embed.DEFAULT_LOCAL_SSIM,
         "psnr_cap_db": embed.DEFAULT_PSNR_DB,
+        "coarse_level": {
+            "what": "the same kind of mark computed on the picture reduced to a short side of "
+                    f"{scales.COARSE_SIDE} px, interpolated back (cubic convolution), under a seed "
+                    "derived from the detection seed; only on pictures whose short side is at least "
+                    f"{round(scales.MIN_COARSE_FACTOR * scales.COARSE_SIDE)} px",
+            "short_side_px": scales.COARSE_SIDE,
+            "energy_share": scales.COARSE_SHARE,
+            "seed_label": scales.COARSE_LABEL.decode(),
+        },
         "strength": strength,
         "channel": "luma (same change on R, G and B)",
     }
@@ -204,8 +213,8 @@ def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, stre
     with _helpers(threads if threads > 1 else 0, "claimkit-band") as pool:
         list(pool.map(_luma_band, repeat(pixels), repeat(luma), starts, ends))
         fingerprint_job = pool.submit(perceptual_fingerprint, luma)
-        plan = embed.mark_plan(luma, seed, np.asarray(bits, dtype=np.uint8), strength=strength,
-                               executor=pool)
+        plan = scales.scales_plan(luma, seed, np.asarray(bits, dtype=np.uint8), strength=strength,
+                                  executor=pool)
         fingerprint = fingerprint_job.result()
         del luma
         sse = sum(pool.map(_mark_band, repeat(plan), repeat(pixels), repeat(marked), starts, ends))
@@ -243,7 +252,7 @@ def _luma_band(pixels: np.ndarray, luma: np.ndarray, r0: int, r1: int) -> None:
     luma[r0:r1] = to_luma(pixels[r0:r1])
 
 
-def _mark_band(plan: embed.MarkPlan, pixels: np.ndarray, marked: np.ndarray, r0: int,
+def _mark_band(plan: scales.ScalesPlan, pixels: np.ndarray, marked: np.ndarray, r0: int,
                r1: int) -> int:
     """Mark rows ``r0:r1`` into ``marked``; their exact sum of squared changes."""
     add_luma_delta(pixels[r0:r1], plan.rows(r0, r1), out=marked[r0:r1])
@@ -447,26 +456,49 @@ def examine_picture(pic: Picture, seed: bytes, *, owner_tag: int | None = None, 
     weak marks decodable more often. Give it wherever it is known.
     """
     _check_size(pic, MIN_EXAMINE_SIDE, "examination")
-    # Convert only the window the detector will read (large photos are examined
-    # on a central window; see detect.MAX_EXAMINE_PIXELS). A picture read with
-    # read_for_examination holds that window only.
-    r0, c0, h, w = detect.central_window((pic.height, pic.width))
+    # Convert only the window the detector will read at native resolution (large
+    # photos are examined on a central window; see detect.MAX_EXAMINE_PIXELS), and
+    # the whole picture reduced once for the coarse views (mark.scales). A picture
+    # read with read_for_examination holds that window and that overview only.
+    shape = (pic.height, pic.width)
+    r0, c0, h, w = detect.central_window(shape)
+    step = scales.overview_step(shape)
     if pic.region is not None:
         if pic.region != (r0, c0, h, w):
             raise ValueError(f"picture holds {pic.region}, not the examined window {(r0, c0, h, w)}")
-        window = pic.pixels
+        window = to_luma(pic.pixels)
+        if pic.overview is not None:
+            overview, step = to_luma(pic.overview), pic.overview_step
+        else:   # no overview: the coarse views come from the window alone
+            shape, overview, step = window.shape, None, 1
+    elif (r0, c0, h, w) == (0, 0, *shape):
+        window, overview = to_luma(pic.pixels), None
     else:
-        window = pic.pixels[r0:r0 + h, c0:c0 + w]
-    finding = detect.examine_luma(
-        to_luma(window), seed, payload_check=payload_check,
+        window, overview = to_luma(pic.pixels[r0:r0 + h, c0:c0 + w]), _overview(pic.pixels, step)
+    finding = scales.examine(
+        window, seed, overview=overview, step=step, shape=shape, payload_check=payload_check,
         payload_space=payload.PAYLOAD_SPACE,
         known_bits=None if owner_tag is None else known_owner_bits(owner_tag),
         threshold=threshold, decoys=decoys, workers=workers)
-    if finding.geometry:
-        g = finding.geometry
+    g = finding.geometry
+    if g and "level" not in g:   # found at native resolution, in the window
         g["shift_px"] = [round(g["shift_px"][0] + c0, 2), round(g["shift_px"][1] + r0, 2)]
         g["examined_window"] = [c0, r0, w, h]
     return finding
+
+
+def _overview(pixels: np.ndarray, step: int) -> np.ndarray:
+    """The whole picture's luma box-reduced by ``step``, as ``read_for_examination`` makes it.
+
+    Pillow's ``reduce`` on 8-bit pixels (the reader's own overview, so a
+    picture read whole gives the finding of one read through its window);
+    other pixels are averaged in blocks of their luma.
+    """
+    if pixels.dtype == np.uint8 and pixels.ndim in (2, 3):
+        from PIL import Image
+
+        return to_luma(np.asarray(Image.fromarray(pixels).reduce(step)) if step > 1 else pixels)
+    return scales.decimate(to_luma(pixels), step)
 
 
 def examine_file(profile, path: str | os.PathLike, *, threshold: float = detect.DEFAULT_THRESHOLD,
@@ -492,9 +524,12 @@ def read_for_examination(path: str | os.PathLike, *, max_pixels: int | None = No
     copying the rest of a 24-megapixel picture out of the decoder would cost
     about half as much as decoding it. The window holds the pixels ``read_picture``
     gives there for the examination ``method`` (a colour JPEG's luma plane
-    under the current method; see :data:`claimkit.imageio.EXAMINATION_METHODS`).
+    under the current method; see :data:`claimkit.imageio.EXAMINATION_METHODS`);
+    the coarse views come from the whole picture box-reduced by the decoder
+    (``Picture.overview``, luma too under that method).
     """
-    return read_picture(path, max_pixels=max_pixels, region=detect.central_window, method=method)
+    return read_picture(path, max_pixels=max_pixels, region=detect.central_window,
+                        overview=scales.overview_step, method=method)
 
 
 def report_for(path: Path, pic: Picture, finding: Finding, profile=None) -> dict:

@@ -78,3 +78,87 @@ ATTACKS = {
     "gamma1.5": lambda a: gamma(a, 1.5),
     "crop25": crop_quarter,
 }
+
+
+def landscape(h: int, w: int, seed: int = 11) -> np.ndarray:
+    """A generated photo: a smooth sky over ground with 1/f texture, and sensor grain.
+
+    Natural photos have about a 1/f amplitude spectrum (Field, "Relations
+    between the statistics of natural images and the response properties of
+    cortical cells", JOSA A 4(12), 1987); the texture is made so, at a fraction
+    of the size and enlarged, so that a 24-megapixel master takes a few
+    seconds. The upper third is a plain sky, the hardest place for a mark to
+    hide.
+    """
+    rng = np.random.default_rng(seed)
+
+    def texture(th: int, tw: int, beta: float) -> np.ndarray:
+        fy = np.fft.fftfreq(th)[:, None]
+        fx = np.fft.rfftfreq(tw)[None, :]
+        f = np.hypot(fy, fx)
+        f[0, 0] = 1.0
+        spec = (rng.standard_normal((th, fx.shape[1])) + 1j * rng.standard_normal((th, fx.shape[1])))
+        spec /= f ** beta
+        spec[0, 0] = 0
+        x = np.fft.irfft2(spec, s=(th, tw)).astype(np.float32)
+        x /= x.std()
+        return np.array(Image.fromarray(x, mode="F").resize((w, h), Image.Resampling.BICUBIC))
+
+    coarse = texture(max(8, h // 8), max(8, w // 8), 1.0)
+    fine = texture(max(8, h // 4), max(8, w // 4), 0.8)
+    y = np.linspace(0.0, 1.0, h, dtype=np.float32)[:, None]
+    horizon = 0.33 + 0.05 * np.sin(np.linspace(0.0, 6.0, w, dtype=np.float32))[None, :]
+    ground = y > horizon
+    lum = coarse
+    lum *= 35
+    lum += 12 * fine + 110
+    grain = rng.standard_normal((h, w), dtype=np.float32)
+    grain *= 1.2
+    out = np.empty((h, w, 3), np.uint8)
+    plane = np.empty((h, w), np.float32)
+    for c, (gain, off, top, slope) in enumerate(((1.05, 0, 150, 40), (1.0, 5, 185, 30), (0.8, -10, 235, 10))):
+        np.multiply(lum, np.float32(gain), out=plane)
+        plane += off
+        np.copyto(plane, np.broadcast_to(top + slope * y, plane.shape), where=~ground)
+        plane += grain
+        np.rint(plane, out=plane)
+        np.clip(plane, 0, 255, out=plane)
+        out[..., c] = plane
+    return out
+
+
+def mark_scales(rgb: np.ndarray, seed: bytes = SEED, bits: np.ndarray | None = None) -> np.ndarray:
+    """Mark with both components (the fine mark alone on pictures too small for a coarse level)."""
+    from claimkit.mark.scales import multiscale_delta
+
+    bits = payload() if bits is None else bits
+    return add_luma_delta(rgb, multiscale_delta(to_luma(rgb), seed, bits))
+
+
+def lanczos(a: np.ndarray, size: tuple[int, int]) -> np.ndarray:
+    """Pillow's Lanczos resize to ``size`` = (width, height)."""
+    return np.asarray(Image.fromarray(a).resize(size, Image.Resampling.LANCZOS))
+
+
+def transplant_mark(marked: np.ndarray, host: np.ndarray, *, gain: float = 1.5,
+                    tile: int = 128) -> np.ndarray:
+    """The copy attack, in numpy only (no claimkit code): estimate a tiled mark, add it elsewhere.
+
+    The attacker knows the published method (a pattern repeated every ``tile``
+    pixels from the top-left corner) but not the key: the high-pass residual
+    of the marked file (luma minus its 5 x 5 box mean) is averaged over every
+    whole tile, which keeps the repeated mark and averages the picture away,
+    and the estimate is tiled over an unrelated photo, on all three channels.
+    """
+    y = marked[..., :3].astype(np.float64) @ np.array([0.299, 0.587, 0.114])
+    k = 5
+    p = np.pad(y, k // 2, mode="reflect")
+    c = np.pad(np.cumsum(np.cumsum(p, 0), 1), ((1, 0), (1, 0)))
+    mean = (c[k:, k:] - c[:-k, k:] - c[k:, :-k] + c[:-k, :-k]) / (k * k)
+    res = y - mean
+    h, w = (res.shape[0] // tile) * tile, (res.shape[1] // tile) * tile
+    est = res[:h, :w].reshape(h // tile, tile, w // tile, tile).mean(axis=(0, 2))
+    H, W = host.shape[:2]
+    big = np.tile(est, (-(-H // tile), -(-W // tile)))[:H, :W]
+    out = host[..., :3].astype(np.float64) + gain * big[..., None]
+    return np.clip(out, 0, 255).round().astype(np.uint8)

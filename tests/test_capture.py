@@ -197,6 +197,20 @@ def test_page_snapshot_by_chromium_is_in_the_case_and_the_warc(site, shop_owner,
                  if h["WARC-Type"] == "resource"]
     assert len(resources) == 1 and resources[0][1] == png
     assert resources[0][0]["Content-Type"] == "image/png"
+    # verify's snapshot check: the stored PNG equals its resource record, and a changed one not.
+    from claimkit.verify.collection import check_collection
+    from claimkit.verify.report import VerifyReport
+
+    def snapshot_checks():
+        rep = VerifyReport(str(case))
+        check_collection(case, [], rep)
+        return [c for c in rep.checks if c["check"].startswith("snapshot ")]
+
+    assert [c["ok"] for c in snapshot_checks()] == [True]
+    stored = case / shot["file"]
+    stored.chmod(0o644)
+    stored.write_bytes(png[:-12] + bytes(12))
+    assert [c["ok"] for c in snapshot_checks()] == [False]
 
 
 def test_chromium_missing_is_said_once_and_the_capture_goes_on(site, shop_owner, tmp_path,

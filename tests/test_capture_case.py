@@ -81,6 +81,11 @@ def test_dossier_lists_the_collection_facts(site, reported):
     rows = data["collection"]["exhibits"]
     assert len(rows) == 6 and all(r["http_status"] == 200 for r in rows)
     assert {r["url"] for r in rows} >= {site.url(p, tls=True) for p in site.marked}
+    # The token came after the last WARC record (same machine clock here: a second at most
+    # of TSA accuracy and rounding either way).
+    cap = data["collection"]["captures"][0]
+    assert -1.0 <= cap["clock_vs_token_s"] <= 60
+    assert "of the last of them" in flat and "BEFORE" not in flat
 
 
 def test_verify_checks_each_exhibit_against_its_warc_record_and_the_token(reported, capsys):
@@ -93,6 +98,8 @@ def test_verify_checks_each_exhibit_against_its_warc_record_and_the_token(report
     stamp = [c for n, c in names.items() if n.endswith("timestamp") and n.startswith("capture")]
     assert len(stamp) == 1 and stamp[0]["status"] == "unpinned" and stamp[0]["ok"] is None
     assert "not pinned" in stamp[0]["detail"]
+    custody = [c for n, c in names.items() if n.startswith("capture") and n.endswith("custody")]
+    assert len(custody) == 1 and custody[0]["ok"]
 
 
 def _tampered_bundle(reported, tmp_path, change) -> Path:
@@ -137,3 +144,16 @@ def test_an_exhibit_that_is_not_its_warc_payload_is_caught(reported, tmp_path, c
 
     failed = _failed(capsys, _tampered_bundle(reported, tmp_path, change))
     assert any(n.endswith("WARC payload") and "differ" in c["detail"] for n, c in failed.items())
+
+
+def test_a_capture_record_changed_after_the_capture_is_caught(reported, tmp_path, capsys):
+    """The capture record rewritten (a page URL changed): the custody log recorded its hash."""
+    def change(folder: Path):
+        rec_path = next((folder / "captures").glob("cap-*.json"))
+        rec = json.loads(rec_path.read_bytes())
+        rec["pages"][0]["url"] = "https://elsewhere.example/listing.html"
+        rec_path.chmod(0o644)
+        rec_path.write_text(json.dumps(rec))
+
+    failed = _failed(capsys, _tampered_bundle(reported, tmp_path, change))
+    assert any(n.startswith("capture") and n.endswith("custody") for n in failed)

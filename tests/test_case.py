@@ -32,8 +32,8 @@ def _sha(path) -> str:
 def test_exhibits_are_byte_for_byte_read_only_and_logged(built_case):
     case = open_case(built_case.case)
     exhibits = case.exhibits()
-    assert [e.exhibit_id for e in exhibits] == ["exhibit-1", "exhibit-2", "exhibit-3"]
-    for ex, src in zip(exhibits, built_case.copies + [built_case.unmarked], strict=True):
+    assert [e.exhibit_id for e in exhibits] == ["exhibit-1", "exhibit-2", "exhibit-3", "exhibit-4"]
+    for ex, src in zip(exhibits, built_case.copies + [built_case.unmarked, built_case.forged], strict=True):
         stored = built_case.case / ex.file
         assert stored.read_bytes() == src.read_bytes()
         assert ex.sha256 == _sha(src) == _sha(stored)
@@ -45,7 +45,9 @@ def test_exhibits_are_byte_for_byte_read_only_and_logged(built_case):
         assert ex.record["taken_in"]["time_source"] == "system clock"
     first = exhibits[0].record
     sc = built_case.scenario["copies"][0]
-    assert first["source"] == sc["source"] and first["found"]["when"] == sc["found"]
+    assert first["source"] == sc["source"]
+    # the scenario's "{day}" is the day the copies were found (the day the fixture runs)
+    assert first["found"]["when"].endswith(sc["found"].replace("{day}", ""))
     assert first["found"]["time_source"] == f"stated by {sc['by']}"
     # Every intake is in the signed custody log with the exhibit's hash.
     pub = load_public_pem((built_case.home / "public.pem").read_bytes())
@@ -193,11 +195,14 @@ def test_examine_json_lines(built_case, monkeypatch, capsys, tmp_path):
                  "--no-robustness", "--json"])
     assert code == 0
     rows = [json.loads(x) for x in capsys.readouterr().out.splitlines()]
-    assert [r["exhibit_id"] for r in rows] == ["exhibit-1", "exhibit-2", "exhibit-3"]
-    assert [r["detected"] for r in rows] == [True, True, False]
+    assert [r["exhibit_id"] for r in rows] == ["exhibit-1", "exhibit-2", "exhibit-3", "exhibit-4"]
+    assert [r["detected"] for r in rows] == [True, True, False, True]
+    assert [r["content_mismatch"] for r in rows] == [False, False, False, True]
     for r in rows:
         assert set(r) >= {"file", "detected", "false_alarm_probability", "work_id",
-                          "message_psnr_db", "geometry"}
+                          "message_psnr_db", "geometry", "content", "content_mismatch",
+                          "evaluation"}
+        assert set(r["evaluation"]["log10_lr"]) == {"mark", "content", "combined"}
 
 
 def test_unmarked_copy_of_the_original_is_matched_by_appearance_only(built_case, tmp_path):

@@ -5,7 +5,12 @@ Scenario (invented): Ilse Marrow of Harwick Bay Studio marks scikit-image's
 finds two copies on the fictional shop Tidewater Home Goods: one resized to
 70 %, cropped and saved at JPEG quality 72 (Pillow's encoder), one resized to
 80 %, turned 4 degrees counter-clockwise, cropped, JPEG quality 80. A third
-exhibit is an unmarked photo (``chelsea``) that must not be claimed.
+exhibit is an unmarked photo (``chelsea``) that must not be claimed. The fourth
+is a forgery: the owner's mark estimated from the published file with numpy
+alone (the copy attack, ``engine_helpers.transplant_mark``) and added to the
+unrelated ``rocket`` photo; it is dated before the work was registered, so it
+must carry both the ``content-mismatch`` and the ``registered-after-found``
+warnings and must never be reported as derived from the work.
 
 Other test modules import the ``built_case`` fixture from here.
 """
@@ -15,6 +20,7 @@ from __future__ import annotations
 import copy
 import shutil
 from dataclasses import dataclass
+from datetime import datetime, timezone
 from pathlib import Path
 
 import numpy as np
@@ -42,6 +48,7 @@ class BuiltCase:
     disclosure: Path        # the key disclosure, delivered apart from the bundle
     tsa_roots: Path         # the test TSA's root certificate
     key_sha256: str         # the owner's key fingerprint, as the owner would tell it
+    forged: Path            # the transplanted-mark forgery (exhibit 4)
 
 
 def _run(argv: list[str]) -> int:
@@ -94,14 +101,25 @@ def _build(tmp_path_factory) -> BuiltCase:
             copies.append(out)
         unmarked = web / "tidewater-cat-cushion.jpg"
         Image.fromarray(data.chelsea()).save(unmarked, quality=85)
+        from engine_helpers import transplant_mark
+
+        forged = web / "tidewater-rocket-poster.jpg"
+        with Image.open(published) as im:
+            marked = np.asarray(im.convert("RGB"))
+        Image.fromarray(transplant_mark(marked, data.rocket())).save(forged, quality=92)
         case = root / "case"
         h = ["--home", str(home)]
         assert _run(["case", "new", str(case), "--title", sc["case_title"], *h]) == 0
+        today = datetime.now(timezone.utc).date().isoformat()
         for c, f in zip(sc["copies"], copies, strict=True):
             assert _run(["case", "add", str(case), str(f), "--source", c["source"],
-                         "--found", c["found"], "--by", c["by"], "--note", c["note"], *h]) == 0
+                         "--found", c["found"].replace("{day}", today), "--by", c["by"],
+                         "--note", c["note"], *h]) == 0
         assert _run(["case", "add", str(case), str(unmarked), "--source",
                      "https://tidewater-home-goods.example/products/cat-cushion", *h]) == 0
+        assert _run(["case", "add", str(case), str(forged), "--source",
+                     "https://tidewater-home-goods.example/products/rocket-poster",
+                     "--found", "2025-06-01, poster listing", "--by", "Ilse Marrow", *h]) == 0
         assert _run(["case", "examine", str(case), "--originals", str(studio),
                      "--decoys", str(DECOYS), *h]) == 0
         assert _run(["report", str(case), *h]) == 0
@@ -113,4 +131,4 @@ def _build(tmp_path_factory) -> BuiltCase:
         with Profile.open(home, PASS.encode()) as p:
             fp = p.public_key_fingerprint
     return BuiltCase(root, home, case, studio, copies, unmarked, bundle, rep["work_id"], sc,
-                     disclosure.parent, root / "tsa" / "ca.pem", fp)
+                     disclosure.parent, root / "tsa" / "ca.pem", fp, forged)

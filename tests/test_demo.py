@@ -45,6 +45,12 @@ def test_demo_runs_end_to_end(tmp_path, monkeypatch):
                       .read_bytes())
     assert [e["original_name"] for e in data["exhibits"]] == \
         [c["name"] for c in SCENARIO["copies"]]
+    # The copies were found after the work was registered and stamped: dates in order, and
+    # both lines agree on both copies, so the dossier carries no warning at all.
+    assert data["warnings"] == []
+    days = [e["day"] for e in data["timeline"]["events"] if e["day"]]
+    assert days == sorted(days)
+    assert data["summary"]["derived"] == ["exhibit-1", "exhibit-2"]
     # A second run into the same folder is refused rather than mixed in.
     from claimkit.errors import InputError
     with pytest.raises(InputError, match="not empty"):

@@ -19,7 +19,8 @@ from claimkit.dossier.render import parse_markup, render_markup, template_dir
 
 pytestmark = pytest.mark.slow
 
-SECTIONS = ["Summary for the reader", "Please note", "The claimant and the work",
+SECTIONS = ["Summary for the reader", "Please note", "Evaluative opinion", "Timeline",
+            "The claimant and the work",
             "The exhibits", "Method", "Published references", "Results for each exhibit",
             "Limitations", "Chain of custody", "Reproducing every number"]
 
@@ -55,7 +56,8 @@ def test_pdftotext_finds_every_section_and_the_numbers(built_case):
         assert f"log10 = {r['log10_false_alarm']}" in text
         if r["detected"]:
             assert f"PSNR of {r['message_psnr_db']} dB" in text
-            assert f"SSIM after alignment {r['alignment']['ssim']}" in text
+            if r["alignment"].get("aligned"):     # not for the transplanted-mark forgery
+                assert f"SSIM after alignment {r['alignment']['ssim']}" in text
             assert f"highest {r['decoys']['max']}" in text
     for e in d["exhibits"]:
         # The table wraps long hashes; the exhibit paragraph keeps each one whole.
@@ -75,7 +77,8 @@ def test_pdftotext_finds_every_section_and_the_numbers(built_case):
     # The plain-language line, for the non-technical reader.
     first = d["results"][0]
     if first["log10_false_alarm"] < -12:
-        assert "below one in a million million (10^12)" in text.replace("1012", "10^12")
+        # written so that the minus sign survives copying the text out of the PDF
+        assert "below 10^-12 (less than one in a million million)" in text
     else:
         n = int(-first["log10_false_alarm"] // 1)
         assert f"a 1 followed by {n} zeros" in text
@@ -209,9 +212,9 @@ def test_markup_parser():
 def test_summary_for_an_unmarked_exhibit_claims_nothing(built_case):
     d = _data(built_case)
     text = _flat(render_markup(d))
-    assert "**Exhibit 3** (https://tidewater-home-goods.example/products/cat-cushion): " \
-           "no mark of this owner was found" in text
-    assert "2 carry the owner's mark" in text
+    assert "**Exhibit 3. Finding.** No mark of this owner was found." in text
+    assert "**Exhibit 3. Opinion.** Not evaluated: no registered work is named" in text
+    assert "the owner's mark was found in 3; 2 are reported as derived from a registered work" in text
 
 
 def test_report_json_and_out(built_case, tmp_path, monkeypatch, capsys):
@@ -224,7 +227,8 @@ def test_report_json_and_out(built_case, tmp_path, monkeypatch, capsys):
     assert main(["--home", str(built_case.home), "report", str(work), "--out", str(out),
                  "--json"]) == 0
     rep = json.loads(capsys.readouterr().out)
-    assert rep["summary"]["detected"] == ["exhibit-1", "exhibit-2"]
+    assert rep["summary"]["detected"] == ["exhibit-1", "exhibit-2", "exhibit-4"]
+    assert rep["summary"]["derived"] == ["exhibit-1", "exhibit-2"]
     assert out.read_bytes()[:5] == b"%PDF-"
     assert io.BytesIO(out.read_bytes()).getbuffer().nbytes == (work / "report/dossier.pdf").stat().st_size
 

@@ -138,3 +138,30 @@ def test_decoded_y_plane_matches_a_whole_file_decode_of_the_window(tmp_path):
     # Pillow's convert("L") is luma of the RGB decode: the same bound as above.
     d = part.pixels.astype(np.float64) - whole[r0:r0 + h, c0:c0 + w]
     assert np.sqrt(np.mean(d ** 2)) < RMS_BOUND
+
+
+@pytest.mark.parametrize("orientation", [1, 6])
+def test_overview_of_the_luma_plane_is_the_reduced_whole_plane(tmp_path, orientation):
+    """The coarse views' overview under ``jpeg-y-1``: Pillow's box reduction of the upright Y plane.
+
+    It is what ``examine_picture`` builds from a picture read whole by the same method, and it
+    differs from the RGB reading's overview only by the decoder's rounding (bound above).
+    """
+    from claimkit.mark import scales
+    from claimkit.workflow import _overview
+
+    big = np.tile(data.rocket(), (5, 4, 1))[:1700, :2500]   # over the window size, step 2
+    f = tmp_path / "big.jpg"
+    exif = Image.Exif()
+    exif[0x0112] = orientation
+    _jpeg(big, f, quality=85, subsampling=2, exif=exif.tobytes())
+    part = read_for_examination(f, method=LUMA_FROM_JPEG_Y)
+    whole = read_picture(f, method=LUMA_FROM_JPEG_Y)
+    step = scales.overview_step(whole.pixels.shape)
+    assert part.overview_step == step == 2 and part.overview is not None
+    assert part.overview.ndim == 2 and part.overview.dtype == np.uint8
+    np.testing.assert_array_equal(to_luma(part.overview), _overview(whole.pixels, step))
+    rgb = read_for_examination(f, method=LUMA_FROM_RGB)
+    assert rgb.overview is not None and rgb.overview.shape[:2] == part.overview.shape
+    d = part.overview.astype(np.float64) - to_luma(rgb.overview)
+    assert np.sqrt(np.mean(d ** 2)) < RMS_BOUND

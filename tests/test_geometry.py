@@ -21,7 +21,7 @@ from claimkit.imageio import to_luma
 from claimkit.mark import detect, geometry
 from claimkit.mark.pattern import TILE, key_pattern
 from claimkit.stress import jpeg, resize, rotate_crop
-from tests.engine_helpers import SEED, mark, payload
+from tests.engine_helpers import SEED, mark, payload, photos
 
 ROTATION_TOL_DEG = 0.1   # much tighter than the 0.5 degrees the issue asks of the whole examination
 SCALE_TOL = 0.003        # likewise (the issue asks 2 %)
@@ -271,3 +271,78 @@ def test_whitening_in_strips_equals_whole_picture_filters():
     x = luma - ndimage.uniform_filter(luma, detect.PREFILTER, mode="reflect")
     var = ndimage.uniform_filter(x * x, detect.NORM_WINDOW, mode="reflect") + np.float32(1e-3)
     np.testing.assert_allclose(detect.whiten(luma), x / np.sqrt(var), rtol=1e-5, atol=1e-6)
+
+
+# ---------------------------------------------------------------- no examination can run away
+
+def test_degenerate_basis_gives_no_points_and_no_allocation():
+    # The basis seen in the field (issue 10): both vectors along the columns,
+    # rows a thousandth of a pixel. Enumerating its points wanted a grid
+    # 2.5 million x 1.3 million wide (94.9 TiB).
+    basis = np.array([[-0.00028985679855947355, -0.001953125], [235.15484321475247, 512.0]])
+    assert geometry.degenerate(basis)
+    assert geometry._points(basis, 10.0, 500.0).shape == (2, 0)
+    for bad in (np.full((2, 2), np.nan), np.zeros((2, 2)), np.array([[100.0, 99.9], [100.0, 100.0]])):
+        assert geometry.degenerate(bad)
+        assert geometry._points(bad, 10.0, 500.0).shape == (2, 0)
+    assert not geometry.degenerate(TILE * np.eye(2))
+    assert geometry._points(TILE * np.eye(2), 10.0, 500.0).shape[1] > 0
+
+
+def test_regression_copy_resized_to_aspect_088_does_not_exhaust_memory():
+    """The failing case: the demo's 3x coffee marked under this key, JPEG 95, width x0.88 (Pillow)."""
+    from claimkit.demo import _picture
+
+    seed = bytes.fromhex("364bbe1507e64803c17bb40801b4ef4b996b197b759a82027531a89ca2dfd4d3")
+    copy = resize(jpeg(mark(_picture("coffee", 3), seed), 95), 0.88, 1.0)
+    prep = detect.prepare(to_luma(copy))        # raised MemoryError before the fix
+    for lat in prep.lattices:
+        if lat is not None:
+            assert not geometry.degenerate(lat.basis)
+            err = lattice_error(lat.basis, true_transform(sx=0.88))
+            assert abs(err[1]) < 0.01
+
+
+def test_property_no_key_scale_aspect_or_turn_makes_the_search_run_away():
+    """Random keys x scales 0.5-1.6 x aspects 0.85-1.15 x any turn, on four pictures.
+
+    Whatever the copy, the search returns sound lattices (never degenerate)
+    and never enumerates more than the capped grid of lattice points.
+    """
+    pics = {k: v for k, v in photos().items() if k in ("chelsea", "coffee", "rocket", "sky")}
+    largest = []
+    real = geometry._half_plane.__wrapped__
+
+    def spy(m):
+        largest.append(m)
+        return real(m)
+
+    rng = np.random.default_rng(20261202)
+    original = geometry._half_plane
+    geometry._half_plane = spy
+    try:
+        for i in range(16):
+            name = sorted(pics)[i % len(pics)]
+            seed = rng.bytes(32)
+            marked = mark(pics[name][:360, :480], seed)
+            aspect, scale, turn = rng.uniform(0.85, 1.15), rng.uniform(0.5, 1.6), rng.uniform(-180, 180)
+            copy = Image.fromarray(marked).rotate(turn, resample=Image.Resampling.BICUBIC)
+            w, h = copy.size
+            copy = copy.resize((max(64, round(w * scale * aspect)), max(64, round(h * scale))),
+                               Image.Resampling.LANCZOS)
+            prep = detect.prepare(to_luma(np.asarray(copy)))
+            assert all(lat is None or not geometry.degenerate(lat.basis) for lat in prep.lattices)
+    finally:
+        geometry._half_plane = original
+    assert largest and max(largest) <= geometry.MAX_GRID_SIDE
+
+
+def test_untouched_copy_is_never_resampled_whatever_the_key():
+    # Issue 16: the search may return the copy's own grid with its basis
+    # vectors swapped or negated; brought to the variant nearest the identity,
+    # it is recognised as the unwarped hypothesis and not resampled.
+    rng = np.random.default_rng(16)
+    pic = photos()["coffee"]
+    for _ in range(5):
+        prep = detect.prepare(to_luma(mark(pic, rng.bytes(32))))
+        assert prep.transforms == [None]

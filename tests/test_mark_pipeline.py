@@ -23,7 +23,7 @@ from skimage.transform import resize
 from claimkit import workflow
 from claimkit.errors import InputError
 from claimkit.imageio import add_luma_delta, read_picture, to_luma
-from claimkit.mark import embed, fingerprint, quality
+from claimkit.mark import embed, fingerprint, quality, scales
 from claimkit.mark.pattern import TILE
 from tests.engine_helpers import SEED, payload
 
@@ -185,8 +185,8 @@ def test_mark_picture_records_what_the_files_hold(tmp_path):
     png = tmp_path / "marked.png"
     facts = workflow.mark_picture(pic, png, SEED, bits)
     marked = np.asarray(Image.open(png))
-    # the plain whole-array construction gives the same pixels
-    assert np.array_equal(marked, add_luma_delta(rgb, embed.mark_delta(to_luma(rgb), SEED, bits)))
+    # the plain whole-array construction (fine and coarse components) gives the same pixels
+    assert np.array_equal(marked, add_luma_delta(rgb, scales.multiscale_delta(to_luma(rgb), SEED, bits)))
     assert facts["sha256_marked"] == hashlib.sha256(png.read_bytes()).hexdigest()
     psnr = metrics.peak_signal_noise_ratio(rgb, marked, data_range=255)
     assert facts["quality"]["psnr_db"] == round(psnr, 3) and psnr >= 42.0

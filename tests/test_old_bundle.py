@@ -42,4 +42,8 @@ def test_an_old_bundle_verifies_or_says_precisely_why_not():
     for c in rep.failures:
         # Each refusal names the version that made the bundle and what was not re-derived.
         assert "claimkit 0.2.0" in c["detail"], c
-        assert c["check"] in ("dossier version", "software settings") or "re-run" in c["check"], c
+        # A robustness row re-run by today's multi-scale examination differs (it also looks at
+        # coarse views), and today's figures are drawn larger and numbered; those refusals name
+        # both versions, asserted just above.
+        assert (c["check"] in ("dossier version", "software settings", "figures")
+                or "re-run" in c["check"] or c["check"].startswith("robustness ")), c

@@ -116,10 +116,11 @@ def _is_image(ex: _fetch.Exchange) -> bool:
 
 def _decode_html(ex: _fetch.Exchange) -> str:
     m = re.search(r"charset=([\w.:-]+)", ex.header("Content-Type") or "", re.IGNORECASE)
-    if m is None:
-        m = re.search(rb"<meta[^>]+charset=[\"']?([\w.:-]+)", ex.body[:2048], re.IGNORECASE)
-    charset = m.group(1) if m else "utf-8"
-    charset = charset.decode("ascii", "replace") if isinstance(charset, bytes) else charset
+    if m is not None:
+        charset = m.group(1)
+    else:
+        mb = re.search(rb"<meta[^>]+charset=[\"']?([\w.:-]+)", ex.body[:2048], re.IGNORECASE)
+        charset = mb.group(1).decode("ascii", "replace") if mb else "utf-8"
     try:
         return ex.body.decode(charset, "replace")
     except LookupError:
@@ -377,7 +378,7 @@ def capture_pages(case, urls: list[str], profile, *, tsa_url: str | None = None,
         finished = utc_now()
         warc_sha = sha256_file(work / s.warc_name)
         stamp = (_stamp(warc_sha, tsa_url, Path(tsa_cert), work, capture_id)
-                 if tsa_url else None)
+                 if tsa_url and tsa_cert is not None else None)
         record = {
             "type": CAPTURE_TYPE, "capture_id": capture_id, "case_id": case.case_id,
             "software": f"claimkit {__version__}", "operator": profile.owner,

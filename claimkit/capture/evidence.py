@@ -13,12 +13,13 @@ from pathlib import Path
 
 from claimkit.case.layout import CAPTURES
 
-__all__ = ["CAPTURES", "capture_records", "collection_data"]
+__all__ = ["CAPTURES", "capture_files", "capture_records", "collection_data"]
 
 
-def capture_records(root: Path) -> dict[str, dict]:
-    out = {}
-    folder = root / CAPTURES
+def capture_files(root: Path) -> list[tuple[Path, dict]]:
+    """Every capture record of a case or bundle, with its file (``captures/cap-*.json``)."""
+    out = []
+    folder = Path(root) / CAPTURES
     if folder.is_dir():
         for p in sorted(folder.glob("cap-*.json")):
             try:
@@ -26,8 +27,31 @@ def capture_records(root: Path) -> dict[str, dict]:
             except ValueError:
                 continue
             if isinstance(rec, dict) and rec.get("capture_id"):
-                out[rec["capture_id"]] = rec
+                out.append((p, rec))
     return out
+
+
+def capture_records(root: Path) -> dict[str, dict]:
+    """Capture records by capture ID."""
+    return {rec["capture_id"]: rec for _, rec in capture_files(root)}
+
+
+def _gap(last: str | None, stamp: dict | None) -> float | None:
+    """Seconds from the last WARC-Date (capturing clock) to the token's time (the TSA's).
+
+    Positive: the token came after the last record, as it must; a negative
+    value means the capturing clock ran ahead of the authority's by at least
+    that much (less the TSA's stated accuracy)."""
+    from datetime import datetime
+
+    if not last or not stamp or not stamp.get("gen_time"):
+        return None
+    try:
+        a = datetime.fromisoformat(last.replace("Z", "+00:00"))
+        b = datetime.fromisoformat(stamp["gen_time"].replace("Z", "+00:00"))
+    except ValueError:
+        return None
+    return round((b - a).total_seconds(), 3)
 
 
 def collection_data(root: str | Path, exhibits: list[dict]) -> dict:
@@ -58,7 +82,11 @@ def collection_data(root: str | Path, exhibits: list[dict]) -> dict:
         })
     captures = []
     for cid, c in caps.items():
+        dates = sorted(x.get("date") for x in c.get("exchanges") or [] if x.get("date"))
         captures.append({
+            "first_record": dates[0] if dates else None,
+            "last_record": dates[-1] if dates else None,
+            "clock_vs_token_s": _gap(dates[-1] if dates else None, c.get("timestamp")),
             "capture_id": cid, "started": c.get("started"), "finished": c.get("finished"),
             "operator": c.get("operator"), "software": c.get("software"),
             "warc": c.get("warc"), "timestamp": c.get("timestamp"),

@@ -24,6 +24,7 @@ from __future__ import annotations
 import gzip
 import hashlib
 import http.client
+import importlib
 import io
 import re
 import socket
@@ -32,6 +33,7 @@ import time
 import zlib
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 from urllib.parse import quote, urljoin, urlsplit
 
 from claimkit import __version__
@@ -198,7 +200,7 @@ def _connect(host: str, port: int, timeout: float, url: str) -> tuple[socket.soc
         sock.settimeout(timeout)
         try:
             sock.connect(addr)
-            return sock, addr[0]
+            return sock, str(addr[0])
         except OSError as exc:
             sock.close()
             last = exc
@@ -211,13 +213,13 @@ def _connect(host: str, port: int, timeout: float, url: str) -> tuple[socket.soc
 
 
 def _chain(ssock: ssl.SSLSocket) -> list[bytes]:
-    obj = getattr(ssock, "_sslobj", None)
+    obj: Any = getattr(ssock, "_sslobj", None)
     try:
         # Python 3.10-3.12 keep the chain as sent behind _sslobj; 3.13 made it public.
         getter = getattr(ssock, "get_unverified_chain", None) or obj.get_unverified_chain
         certs = getter() or []
-        return [c if isinstance(c, bytes) else c.public_bytes(ssl._ssl.ENCODING_DER)
-                for c in certs]
+        der = importlib.import_module("_ssl").ENCODING_DER   # no public name for it
+        return [c if isinstance(c, bytes) else c.public_bytes(der) for c in certs]
     except (AttributeError, ValueError):
         leaf = ssock.getpeercert(binary_form=True)
         return [leaf] if leaf else []
@@ -311,8 +313,8 @@ def fetch(url: str, opts: FetchOptions | None = None) -> Exchange:
         sock.sendall(request)
         tee = _Tee(sock.makefile("rb", buffering=0), opts.max_bytes + (64 << 10),
                    t0 + 4 * opts.timeout)
-        resp = http.client.HTTPResponse(_SockShim(io.BufferedReader(tee, 1 << 16)),
-                                        method="GET")
+        shim: Any = _SockShim(io.BufferedReader(tee, 1 << 16))
+        resp = http.client.HTTPResponse(shim, method="GET")
         resp.begin()
         # The buffered reader may have read past the head; find its end in what was kept.
         end = bytes(tee.kept).find(b"\r\n\r\n")
@@ -367,7 +369,7 @@ def fetch_following(url: str, opts: FetchOptions | None = None,
             record(ex)
         if not ex.is_redirect:
             return out
-        nxt = urljoin(current, ex.header("Location").strip()).split("#", 1)[0]
+        nxt = urljoin(current, (ex.header("Location") or "").strip()).split("#", 1)[0]
         if nxt in seen:
             hops = " -> ".join([*seen[seen.index(nxt):], nxt])
             raise InputError(f"redirect loop ({hops})", path=url)

@@ -38,6 +38,10 @@ import zlib
 from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
+
+from warcio.statusandheaders import StatusAndHeaders, StatusAndHeadersParser
+from warcio.warcwriter import WARCWriter
 
 from claimkit import __version__
 from claimkit.errors import InputError
@@ -79,27 +83,17 @@ def looks_like_image(data: bytes) -> bool:
     return data.startswith(_IMAGE_MAGIC) or (data[:4] == b"RIFF" and data[8:12] == b"WEBP")
 
 
-def _warcio():
-    try:
-        from warcio.statusandheaders import StatusAndHeaders, StatusAndHeadersParser
-        from warcio.warcwriter import WARCWriter
-    except ImportError:  # pragma: no cover - a declared dependency
-        raise InputError("the warcio package is missing; reinstall claimkit") from None
-    return WARCWriter, StatusAndHeaders, StatusAndHeadersParser
+class _WireHeaders(StatusAndHeaders):
+    """warcio's header object, writing the header bytes exactly as they were received."""
 
+    def __init__(self, head: bytes):
+        parsed = StatusAndHeadersParser([], verify=False).parse(io.BytesIO(head))
+        super().__init__(parsed.statusline, parsed.headers, protocol=parsed.protocol)
+        self.wire = head
+        self.headers_buff = head
 
-def _wire_headers(head: bytes):
-    """warcio's header object that writes ``head`` exactly as it was received."""
-    _, status_and_headers, parser_cls = _warcio()
-
-    class _WireHeaders(status_and_headers):
-        def compute_headers_buffer(self, header_filter=None):
-            self.headers_buff = head
-
-    parsed = parser_cls([], verify=False).parse(io.BytesIO(head))
-    out = _WireHeaders(parsed.statusline, parsed.headers, protocol=parsed.protocol)
-    out.headers_buff = head
-    return out
+    def compute_headers_buffer(self, header_filter=None):
+        self.headers_buff = self.wire
 
 
 def _head_and_body(raw: bytes) -> tuple[bytes, bytes]:
@@ -119,10 +113,9 @@ class WarcWriter:
     """A WARC/1.1 file being written (gzip per record when the name ends ``.gz``)."""
 
     def __init__(self, path: Path, *, operator: str | None, description: str):
-        writer_cls, _, _ = _warcio()
         self.path = Path(path)
         self.fh = open(self.path, "xb")  # noqa: SIM115 - open until close(); "x": never replace
-        self.writer = writer_cls(self.fh, gzip=self.path.name.endswith(".gz"),
+        self.writer = WARCWriter(self.fh, gzip=self.path.name.endswith(".gz"),
                                  warc_version="1.1")
         info = {
             "software": f"claimkit {__version__} (warcio; Python {platform.python_version()}; "
@@ -151,7 +144,7 @@ class WarcWriter:
                    "WARC-Payload-Digest": b32_sha256(body)}
         resp = self.writer.create_warc_record(
             ex.url, "response", payload=io.BytesIO(body), length=len(body),
-            warc_headers_dict=headers, http_headers=_wire_headers(head))
+            warc_headers_dict=headers, http_headers=_WireHeaders(head))
         self.writer.write_record(resp)
         rid = resp.rec_headers.get_header("WARC-Record-ID")
         rhead, rbody = _head_and_body(ex.request)
@@ -160,7 +153,7 @@ class WarcWriter:
             warc_headers_dict={**self._common(ex.url, ex.started), "WARC-Concurrent-To": rid,
                                "WARC-Block-Digest": b32_sha256(ex.request),
                                "WARC-Payload-Digest": b32_sha256(rbody)},
-            http_headers=_wire_headers(rhead))
+            http_headers=_WireHeaders(rhead))
         self.writer.write_record(req)
         fields = [("fetch-seconds", f"{ex.seconds:.6f}"),
                   ("clock", "system clock of the capturing machine"),
@@ -264,7 +257,7 @@ def _content(rec, path: Path) -> bytes:
         raise _damaged(path, exc) from None
 
 
-def _records(path: Path) -> Iterator[object]:
+def _records(path: Path) -> Iterator[Any]:
     """Every record, every digest checked; InputError on damage."""
     try:
         fh = open(path, "rb")  # noqa: SIM115 - closed by the with below, kept open across yields

@@ -34,6 +34,8 @@ from skimage.metrics import structural_similarity
 from skimage.registration import phase_cross_correlation
 from skimage.transform import rescale
 
+from claimkit.mark import scales
+
 WORK_SIDE = 1024       # longer side of the working resolution, pixels
 EDGE = 4               # pixels trimmed from the shared area's border before measuring
 
@@ -110,9 +112,11 @@ def align(reference_luma: np.ndarray, copy_luma: np.ndarray, geometry: dict | No
     reference_luma, copy_luma : ndarray
         Luma on a 0..255 scale (see :func:`claimkit.imageio.to_luma`).
     geometry : dict or None
-        The examination's geometry (``matrix``: the original-to-copy linear
-        map in (x, y) with y pointing down). Without it, the copy is assumed
-        unrotated, and the scales 1, width ratio and height ratio are tried.
+        A geometry (``matrix``: the original-to-copy linear map in (x, y) with
+        y pointing down). With a ``source`` (the content line's registration)
+        it is used as given; without one (the mark's lattice) the reading
+        turned by 180 degrees is tried too. Without a geometry, the copy is
+        assumed unrotated, and the scales 1, width ratio and height ratio are tried.
 
     Returns
     -------
@@ -122,7 +126,13 @@ def align(reference_luma: np.ndarray, copy_luma: np.ndarray, geometry: dict | No
     copy = np.asarray(copy_luma, dtype=np.float64)
     s = _work_scale(ref_full.shape)
     ref = rescale(ref_full, s, anti_aliasing=True, preserve_range=True) if s < 1 else ref_full
-    if geometry and geometry.get("matrix"):
+    if geometry and geometry.get("level"):
+        # Found at a coarse view: the matrix is against the original's coarse level.
+        geometry = scales.relative_to_original(geometry, ref_full.shape[:2])
+    if geometry and geometry.get("matrix") and geometry.get("source"):
+        # A geometry from picture content is unambiguous: one reading only.
+        candidates = [(str(geometry["source"]), np.asarray(geometry["matrix"], dtype=float))]
+    elif geometry and geometry.get("matrix"):
         m = np.asarray(geometry["matrix"], dtype=float)
         # A lattice looks the same turned by 180 degrees; try both readings.
         candidates = [("mark geometry", m), ("mark geometry, turned 180 degrees", -m)]

@@ -224,6 +224,9 @@ class FindingDoc(Document):
     """``findings/ID.json``: one examination, its control, alignment and robustness."""
 
     KIND: ClassVar[str] = "finding"
+    # Findings stored before the content line (claimkit 0.2) lack these three: they are
+    # written back without them, so such a finding still round-trips to the byte.
+    OMIT_NONE: ClassVar[tuple[str, ...]] = ("content", "content_mismatch", "evaluation")
     exhibit_id: str
     exhibit_sha256: str
     examined: dict
@@ -235,6 +238,9 @@ class FindingDoc(Document):
     reference: dict | None = None
     alignment: dict | None = None
     robustness: dict | None = None
+    content: dict | None = None            # the content line (claimkit.content)
+    content_mismatch: bool | None = None   # a mark in a picture that does not show its work
+    evaluation: dict | None = None         # propositions, likelihood ratios, verbal scale
 
 
 @dataclass

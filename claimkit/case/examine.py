@@ -28,6 +28,7 @@ from claimkit.case.align import align
 from claimkit.case.documents import FindingDoc
 from claimkit.case.store import Case, Exhibit, checked_exhibit_path
 from claimkit.errors import CheckFailed, InputError
+from claimkit.evaluation.lines import weigh
 from claimkit.evidence.custodylog import utc_now
 from claimkit.evidence.storage import sha256_file, sha256_hex
 from claimkit.imageio import CURRENT_EXAMINATION_METHOD, read_picture, to_luma
@@ -44,6 +45,8 @@ __all__ = [
     "examine_exhibit",
     "find_reference",
     "jsonable",
+    "match_work",
+    "weigh_lines",
 ]
 
 FINDING_TYPE = FindingDoc.type_name()
@@ -75,7 +78,33 @@ def decoy_summary(scores: list[float], observed: float) -> dict:
     }
 
 
-def _match_work(profile, rep: dict, luma: np.ndarray) -> dict | None:
+def alignment_geometry(content: dict) -> dict | None:
+    """The content line's reference-to-exhibit map, for :func:`claimkit.case.align.align`.
+
+    The alignment uses the content line's geometry, never the mark's, so that
+    what the figures show does not borrow from the line it is set against.
+    """
+    g = ((content or {}).get("registration") or {}).get("geometry")
+    if not content.get("corresponds") or not g:
+        return None
+    return {"matrix": g["matrix"], "source": "content line"}
+
+
+def weigh_lines(luma: np.ndarray, *, exhibit_id: str, rep: dict, threshold: float,
+                match: dict | None, work_record: dict | None, owner: str | None,
+                reference_luma: np.ndarray | None, reference_kind: str | None,
+                robustness: dict | None, label: str | None = None) -> dict:
+    """The content line and the evaluation of one exhibit (shared with ``verify``'s re-run)."""
+    what = {"marked": "registered marked file (as published)",
+            "original": "registered original file"}.get(reference_kind or "", "reference")
+    return jsonable(weigh(luma, label=label or layout.exhibit_label(exhibit_id), mark=rep,
+                          threshold=threshold,
+                          work_id=(match or {}).get("work_id"), work_record=work_record,
+                          owner=owner, reference_luma=reference_luma, reference=what,
+                          robustness=robustness))
+
+
+def match_work(profile, rep: dict, luma: np.ndarray) -> dict | None:
     """The registered work this copy derives from: by the payload, else by the fingerprint."""
     if rep.get("registered") and rep.get("work_id"):
         return {"work_id": rep["work_id"], "by": "payload"}
@@ -175,13 +204,16 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
     rep["file"] = ex.file
     if rep["sha256"] != ex.sha256:
         raise CheckFailed(f"{ex.exhibit_id}: stored copy changed during the examination", path=path)
-    match = _match_work(profile, rep, luma)
+    match = match_work(profile, rep, luma)
     arrays = {"surface": finding.surface.astype(np.float32),
               "recovered": finding.recovered.astype(np.float32),
               "reference": finding.reference.astype(np.float32)}
     alignment = None
     robustness = None
     reference = None
+    ref_luma = None
+    kind = None
+    work = None
     if match is not None:
         work = profile.work(match["work_id"])
         found = find_reference(case, work.record, list(search or []))
@@ -189,10 +221,7 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
             ref_path, kind = found
             reference = {"file": ref_path.relative_to(case.root).as_posix(), "kind": kind,
                          "sha256": sha256_file(ref_path)}
-            ref_pic = read_picture(ref_path)
-            al = align(to_luma(ref_pic.pixels), luma, finding.geometry or None)
-            alignment = al.numbers
-            arrays.update(aligned=al.aligned, difference=al.difference, mask=al.mask)
+            ref_luma = to_luma(read_picture(ref_path).pixels)
             if kind == "marked" and not robustness_wanted:
                 robustness = {"status": "not run", "reason": "skipped at the examiner's request"}
             elif kind == "marked":
@@ -204,6 +233,18 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
             reference = None
             alignment = {"aligned": False,
                          "reason": "the registered file was not at hand (give --originals)"}
+    lines = weigh_lines(luma, exhibit_id=ex.exhibit_id, rep=rep, threshold=threshold, match=match,
+                        work_record=None if work is None else work.record, owner=profile.owner,
+                        reference_luma=ref_luma, reference_kind=kind, robustness=robustness)
+    if ref_luma is not None:
+        geom = alignment_geometry(lines["content"])
+        if geom is None:
+            alignment = {"aligned": False, "reason": "the content line did not find the registered "
+                         "picture in the copy, so there is nothing to lay over it"}
+        else:
+            al = align(ref_luma, luma, geom)
+            alignment = al.numbers
+            arrays.update(aligned=al.aligned, difference=al.difference, mask=al.mask)
     npz = case.arrays_path(ex.exhibit_id)
     tmp = npz.with_name(f".{npz.name}.part.npz")
     np.savez_compressed(tmp, **arrays)
@@ -223,6 +264,7 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
         "reference": reference,
         "alignment": alignment,
         "robustness": robustness,
+        **lines,
         "arrays": {"file": npz.relative_to(case.root).as_posix(), "sha256": sha256_file(npz)},
     }
     data = FindingDoc.from_json(doc).write(case.finding_path(ex.exhibit_id))
@@ -230,6 +272,7 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
                        items={"exhibit": ex.sha256, "finding": sha256_hex(data)},
                        details={"case_id": case.case_id, "exhibit_id": ex.exhibit_id,
                                 "detected": rep["detected"], "work_id": rep.get("work_id"),
+                                "content_mismatch": lines["content_mismatch"],
                                 "log10_false_alarm": rep["log10_false_alarm_probability"]})
     return doc
 

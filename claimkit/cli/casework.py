@@ -114,9 +114,13 @@ def cmd_case_examine(args) -> int:
                         "work_id": r.get("work_id"), "message_psnr_db": r["message_psnr_db"],
                         "geometry": r["geometry"], "match": doc["match"],
                         "ssim_aligned": (doc["alignment"] or {}).get("ssim"),
-                        "decoys": doc["decoy_summary"]})
+                        "decoys": doc["decoy_summary"], "content": doc["content"],
+                        "content_mismatch": doc["content_mismatch"],
+                        "evaluation": doc["evaluation"]})
             return
-        if r["detected"]:
+        if r["detected"] and doc["content_mismatch"]:
+            line = f"{ex.exhibit_id}: {doc['evaluation']['finding']}"
+        elif r["detected"]:
             line = (f"{ex.exhibit_id}: MARK FOUND, work {r.get('work_id')}; false-alarm bound "
                     f"{r['false_alarm_text']}; {r['geometry_text']}")
         else:
@@ -186,6 +190,8 @@ def cmd_report(args) -> int:
         if rep["key_material"] == "withheld":
             print("no key material in the bundle: give the other side's expert a disclosure "
                   "separately (claimkit disclose WORK --out DIR), or report with --disclose")
+        for w in rep["warnings"]:
+            print(f"WARNING {w['code']}: {w['text']}")
         print(CAUTION)
     return 0
 

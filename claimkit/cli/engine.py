@@ -76,6 +76,48 @@ def _verdict_line(rep: dict) -> str:
             f"message PSNR {rep['message_psnr_db']:.1f} dB")
 
 
+def _registered_file(record: dict, folders: list[Path]) -> tuple[Path, str] | None:
+    """The registered marked (preferred) or original file in ``folders``, found by SHA-256."""
+    from claimkit.evidence.storage import sha256_file
+
+    wanted = {(record.get("marked") or {}).get("sha256"): "marked",
+              (record.get("original") or {}).get("sha256"): "original"}
+    wanted.pop(None, None)
+    found: dict[str, Path] = {}
+    for folder in folders:
+        for p in sorted(folder.rglob("*")):
+            if p.is_file() and not p.is_symlink() and p.stat().st_size <= 512 << 20:
+                kind = wanted.get(sha256_file(p))
+                if kind and kind not in found:
+                    found[kind] = p
+    for kind in ("marked", "original"):
+        if kind in found:
+            return found[kind], kind
+    return None
+
+
+def _with_lines(profile, rep: dict, path: Path, threshold: float, folders: list[Path]) -> dict:
+    """Add ``content``, ``content_mismatch`` and ``evaluation`` to an ``examine --json`` line."""
+    from claimkit.case.examine import match_work, weigh_lines
+    from claimkit.imageio import read_picture, to_luma
+
+    luma = to_luma(read_picture(path).pixels)
+    match = match_work(profile, rep, luma)
+    record = None if match is None else profile.work(match["work_id"]).record
+    ref_luma, kind = None, None
+    if record is not None and folders:
+        found = _registered_file(record, folders)
+        if found is not None:
+            ref_luma, kind = to_luma(read_picture(found[0]).pixels), found[1]
+            rep["reference"] = {"file": str(found[0]), "kind": kind}
+    lines = weigh_lines(luma, exhibit_id=path.name, rep=rep, threshold=threshold, match=match,
+                        work_record=record, owner=profile.owner, reference_luma=ref_luma,
+                        reference_kind=kind, robustness=None, label=f"The file {path.name}")
+    rep["match"] = match
+    rep.update(lines)
+    return rep
+
+
 def cmd_examine(args) -> int:
     from claimkit import workflow
 
@@ -97,7 +139,14 @@ def cmd_examine(args) -> int:
                 continue
             if args.decoys:
                 rep["decoy_scores"] = [round(v, 3) for v in finding.decoy_scores]
-            print_json(rep) if args.json else print(_verdict_line(rep))
+            if args.json:
+                # The content line and the evaluation: against the registered file where
+                # --originals holds it, else against the work record's fingerprint.
+                rep = _with_lines(profile, rep, Path(f), threshold,
+                                  [Path(d) for d in args.originals or []])
+                print_json(rep)
+            else:
+                print(_verdict_line(rep))
     if not args.json:
         print("claimkit gives technical evidence, not legal advice.")
     return 2 if bad else 0
@@ -140,4 +189,7 @@ def register(sub, common) -> None:
                    help="also examine under N random decoy keys (control)")
     e.add_argument("--max-pixels", type=int, default=None, metavar="N",
                    help="refuse images with more pixels (decompression-bomb guard)")
+    e.add_argument("--originals", action="append", metavar="DIR",
+                   help="folder holding the registered files (found by SHA-256), for the "
+                        "content line; without it the work record's fingerprint is used")
     e.set_defaults(func=cmd_examine)

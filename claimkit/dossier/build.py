@@ -69,6 +69,9 @@ def draw_figures(root: Path, data: dict) -> dict[str, bytes]:
         out[names["surface"]] = figures.png_bytes(figures.surface_figure(a["surface"]))
         out[names["decoys"]] = figures.png_bytes(figures.decoy_figure(finding["decoy_scores"],
                                                                       r["score_pilot"]))
+        if "registered" in names and (root / r["reference"]["file"]).is_file():
+            reg = read_picture(root / r["reference"]["file"]).pixels
+            out[names["registered"]] = figures.png_bytes(figures.thumbnail(reg))
         # A withheld master cannot be drawn from in a bundle; the figure stays as signed.
         if "aligned" in names and (root / r["reference"]["file"]).is_file():
             al = r["alignment"]
@@ -228,5 +231,6 @@ def build_report(case: Case, profile, *, out_pdf: Path | None = None,
     return {"case_id": case.case_id, "pdf": str(root / PDF), "html": str(root / HTML),
             "data": str(root / DATA), "pdf_sha256": sha256_hex(signed),
             "manifest_sha256": sha256_file(root / MANIFEST), "files": len(manifest["files"]),
-            "summary": data["summary"], "output": None if out_pdf is None else str(out_pdf),
+            "summary": data["summary"], "warnings": data["warnings"],
+            "output": None if out_pdf is None else str(out_pdf),
             "key_material": "disclosed" if disclose else "withheld"}

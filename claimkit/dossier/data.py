@@ -18,6 +18,9 @@ from claimkit.capture.evidence import collection_data
 from claimkit.case import layout
 from claimkit.case.documents import CaseDoc, DossierDataDoc, ExhibitDoc, FindingDoc, WithdrawalDoc
 from claimkit.case.layout import CUSTODY_COPY, CUSTODY_COPY_V1, DISCLOSURES, PUBLIC_KEY, SOFTWARE
+from claimkit.content import assess, register
+from claimkit.evaluation import lr
+from claimkit.evaluation.timeline import build_timeline
 from claimkit.evidence import signing
 from claimkit.evidence.canonical import canonical_json
 from claimkit.evidence.custodylog import verify_log
@@ -40,18 +43,33 @@ DOSSIER_TYPE = DossierDataDoc.type_name()
 #: The published methods the analysis rests on (the method section lists them).
 REFERENCES_CITED = [
     ("J. J. K. O Ruanaidh, T. Pun, \"Rotation, scale and translation invariant spread spectrum digital "
-    "image watermarking\", Signal Processing 66(3), 303-317, 1998. doi:10.1016/S0165-1684(98)00012-7"),
+    "image watermarking\", Signal Processing 66(3), 303-317, 1998. doi:10.1016/S0165-1684(98)00012-7 "
+    "(the mark's tiling and resynchronisation)"),
     ("Q. Chen, M. Defrise, F. Deconinck, \"Symmetric phase-only matched filtering of "
     "Fourier-Mellin transforms for image registration and recognition\", IEEE Trans. PAMI "
-    "16(12), 1156-1168, 1994. doi:10.1109/34.387491"),
+    "16(12), 1156-1168, 1994. doi:10.1109/34.387491 (the carrier correlation)"),
     ("I. J. Cox, M. L. Miller, J. A. Bloom, J. Fridrich, T. Kalker, Digital Watermarking and "
-    "Steganography, 2nd ed., Morgan Kaufmann, 2008."),
-    ("W. Hoeffding, \"Probability inequalities for sums of bounded random variables\", "
-    "J. Amer. Statist. Assoc. 58(301), 13-30, 1963. doi:10.1080/01621459.1963.10500830"),
+    "Steganography, 2nd ed., Morgan Kaufmann, 2008 (watermark detection, and the copy attack "
+    "that estimates a mark and adds it to another picture)"),
+    ("M. Abramowitz, I. A. Stegun, Handbook of Mathematical Functions, 1964, eq. 9.6.10, the "
+    "series of the Bessel function I0; term by term it gives I0(x) <= exp(x^2/4), hence the "
+    "tail bound exp(-z^2/2) for a sum of cosines with independent uniform phases"),
+    ("R. Vershynin, High-Dimensional Probability, Cambridge University Press, 2018, sec. 2.5 "
+    "(sub-Gaussian variables: a variance proxy gives the tail exp(-t^2/2) after "
+    "standardisation)"),
     ("A. J. Viterbi, \"Error bounds for convolutional codes and an asymptotically optimum "
     "decoding algorithm\", IEEE Trans. Inf. Theory 13(2), 260-269, 1967. doi:10.1109/TIT.1967.1054010"),
     ("K. J. Larsen, \"Short convolutional codes with maximal free distance for rates 1/2, 1/3, "
     "and 1/4\", IEEE Trans. Inf. Theory 19(3), 371-372, 1973. doi:10.1109/TIT.1973.1055014"),
+    ("E. Rublee, V. Rabaud, K. Konolige, G. Bradski, \"ORB: an efficient alternative to SIFT or "
+    "SURF\", Proc. IEEE ICCV 2011, 2564-2571. doi:10.1109/ICCV.2011.6126544 (the content line's "
+    "keypoints)"),
+    ("M. A. Fischler, R. C. Bolles, \"Random sample consensus\", Commun. ACM 24(6), 381-395, "
+    "1981. doi:10.1145/358669.358692 (the content line's robust fit)"),
+    ("C. J. Clopper, E. S. Pearson, \"The use of confidence or fiducial limits illustrated in "
+    "the case of the binomial\", Biometrika 26(4), 404-413, 1934 (bounds on measured rates)"),
+    ("European Network of Forensic Science Institutes, ENFSI Guideline for Evaluative Reporting "
+    "in Forensic Science, 2015 (propositions, likelihood ratios, the verbal scale)"),
     ("Z. Wang, A. C. Bovik, H. R. Sheikh, E. P. Simoncelli, \"Image quality assessment: from "
     "error visibility to structural similarity\", IEEE Trans. Image Process. 13(4), 600-612, "
     "2004. doi:10.1109/TIP.2003.819861"),
@@ -170,6 +188,29 @@ def _examination() -> dict:
     }
 
 
+def _content_parameters() -> dict:
+    """What an expert needs to repeat the content line and the evaluation (no internals)."""
+    cal = assess.calibration()
+    return {
+        "keypoints": f"ORB, {register.KEYPOINTS} per picture at {register.WORK_SIDE} px on the "
+                     "longer side; the exhibit also mirrored",
+        "fit": f"RANSAC similarity, inliers within {register.RESIDUAL_PX} px, "
+               f"{register.RANSAC_TRIALS} samples, seed {register.RANSAC_SEED}",
+        "threshold_inliers": cal["threshold"],
+        "threshold_rule": cal["threshold_rule"],
+        "null_pairs": cal["null"]["count"], "null_max_inliers": max(cal["null"]["samples"]),
+        "genuine_copies": cal["genuine"]["count"],
+        "genuine_below_threshold": sum(1 for v in cal["genuine"]["samples"] if v < cal["threshold"]),
+        "second_view_inliers": cal["same_scene_second_view"]["inliers"],
+        "fingerprint_null_min_bits": min(cal["fingerprint"]["null"]["samples"]),
+        "calibration": cal["measured"]["by"],
+        "geometry_tolerance": f"turn {assess.ROTATION_TOLERANCE_DEG} degrees, scale "
+                              f"{100 * assess.SCALE_TOLERANCE:g} %, same mirroring",
+        "lr_cap": f"10^{lr.CAP_LOG10:g} either way",
+        "rate_bounds": f"one-sided {100 * lr.CONFIDENCE:g} % Clopper-Pearson",
+    }
+
+
 def _engine_parameters() -> dict:
     """The method's numbers: the record of each mark format read, and of the examination."""
     return {
@@ -187,10 +228,11 @@ def _engine_parameters() -> dict:
 
 def _result(ex: dict, f: dict | None) -> dict:
     if f is None:
-        return {"exhibit_id": ex["exhibit_id"], "examined": False}
+        return {"exhibit_id": ex["exhibit_id"], "label": layout.exhibit_label(ex["exhibit_id"]),
+                "examined": False}
     r = f["result"]
     return {
-        "exhibit_id": ex["exhibit_id"], "examined": True,
+        "exhibit_id": ex["exhibit_id"], "label": layout.exhibit_label(ex["exhibit_id"]), "examined": True,
         "examined_at": f["examined"]["time"], "threshold": f["examined"]["threshold"],
         "detected": r["detected"],
         "log10_false_alarm": r["log10_false_alarm_probability"],
@@ -204,8 +246,36 @@ def _result(ex: dict, f: dict | None) -> dict:
         "decoys": f["decoy_summary"], "match": f.get("match"),
         "reference": f.get("reference"), "alignment": f.get("alignment"),
         "robustness": f.get("robustness"),
+        "content": f.get("content"), "content_mismatch": bool(f.get("content_mismatch")),
+        "evaluation": f.get("evaluation"),
         "finding_sha256": None,
     }
+
+
+def _timeline(works: list[dict], exhibits: list[dict], results: list[dict]) -> dict:
+    """Dates in order with their sources, and the warnings (see claimkit.evaluation.timeline)."""
+    labelled = [{**ex, "label": layout.exhibit_label(ex["exhibit_id"])} for ex in exhibits]
+    matches = {r["exhibit_id"]: (r.get("work_id") if r.get("detected") and r.get("registered")
+                                 else (r.get("match") or {}).get("work_id"))
+               for r in results if r.get("examined")}
+    mismatches = {r["exhibit_id"]: bool(r.get("content_mismatch")) for r in results}
+    tl = build_timeline(works, labelled, matches, mismatches)
+    for r in results:
+        c = r.get("content") or {}
+        if r.get("detected") and c.get("basis") not in (None, "none") and c.get("corresponds") is None:
+            tl["warnings"].append({"code": "content-inconclusive", "exhibit": r["exhibit_id"],
+                                   "text": f"{r['label']}: "
+                                           f"{c.get('reason', 'the content line was inconclusive')}; "
+                                           "a transplanted mark cannot be excluded, and no "
+                                           "derivation is claimed."})
+        ag = ((r.get("content") or {}).get("agreement_with_mark") or {})
+        if ag.get("compared") and not ag.get("agree"):
+            tl["warnings"].append({"code": "lines-disagree", "exhibit": r["exhibit_id"], "text": (
+                f"{r['label']}: the mark and the picture content read different geometries "
+                f"(turn {ag['rotation_difference_deg']} degrees apart, scale {ag['scale_difference']} "
+                "apart, mirroring " + ("the same" if ag["same_mirroring"] else "different")
+                + "); the two lines are not combined.")})
+    return tl
 
 
 def build_data(root: str | Path) -> dict:
@@ -235,6 +305,7 @@ def build_data(root: str | Path) -> dict:
         fp = None
     owner = case.get("owner", {})
     detected = [r for r in results if r.get("detected") and not r.get("withdrawn")]
+    tl = _timeline(works, exhibits, results)
     data = {
         "type": DOSSIER_TYPE,
         "software": f"claimkit {__version__}",
@@ -252,8 +323,14 @@ def build_data(root: str | Path) -> dict:
                     "examined": sum(1 for r in results if r["examined"]),
                     "detected": [r["exhibit_id"] for r in detected],
                     "works": sorted({r["work_id"] for r in detected if r.get("work_id")}),
-                    "best_log10": min([r["log10_false_alarm"] for r in detected] or [0.0])},
-        "method": {"engine": _engine_parameters(),
+                    "best_log10": min([r["log10_false_alarm"] for r in detected] or [0.0]),
+                    "derived": [r["exhibit_id"] for r in results
+                                if (r.get("evaluation") or {}).get("derivation_claimed")],
+                    "content_mismatch": [r["exhibit_id"] for r in results
+                                         if r.get("content_mismatch")]},
+        "timeline": {"events": tl["events"], "priority": tl["priority"]},
+        "warnings": tl["warnings"],
+        "method": {"engine": _engine_parameters(), "content": _content_parameters(),
                    "mark": works[0]["mark_params"] if works else {},
                    "references": REFERENCES_CITED},
         "custody": _custody(root, case["case_id"], work_ids),
@@ -270,6 +347,8 @@ def _figure_names(r: dict) -> dict:
     kinds = ["thumbnail"]
     if r.get("examined"):
         kinds += ["message", "surface", "decoys"]
+        if r.get("reference"):
+            kinds.append("registered")
         if (r.get("alignment") or {}).get("aligned"):
             kinds.append("aligned")
     return {k: layout.figure_file(e, k) for k in kinds}

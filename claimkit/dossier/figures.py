@@ -91,7 +91,7 @@ def message_figure(recovered: np.ndarray, reference: np.ndarray) -> Image.Image:
         x = 20 + k * (n + 20)
         img.paste(tile, (x, 30))
         d.rectangle([x - 1, 29, x + n, 30 + n], outline=GRID)
-        d.text((x, 8), title, fill=INK, font=_font(13))
+        d.text((x, 8), title, fill=INK, font=_font(17))
     return img
 
 
@@ -108,7 +108,7 @@ def surface_figure(surface: np.ndarray) -> Image.Image:
     r, c = np.unravel_index(int(np.argmax(s)), s.shape)
     cx, cy = 20 + c * z + z // 2, 40 + r * z + z // 2
     d.ellipse([cx - 9, cy - 9, cx + 9, cy + 9], outline=ACCENT, width=2)
-    d.text((20, 10), f"peak z = {s.max():.1f} at shift ({c}, {r})", fill=INK, font=_font(14))
+    d.text((20, 10), f"peak z = {s.max():.1f}", fill=INK, font=_font(18))
     # Colour scale.
     bx = n + 50
     ramp = np.linspace(hi, lo, n)[:, None].repeat(20, axis=1)
@@ -116,8 +116,8 @@ def surface_figure(surface: np.ndarray) -> Image.Image:
     for v in np.linspace(lo, hi, 5):
         y = 40 + round(float((hi - v) / (hi - lo) * (n - 1)))
         d.line([bx + 20, y, bx + 26, y], fill=INK)
-        d.text((bx + 30, y - 7), f"{v:.0f}", fill=INK, font=_font(12))
-    d.text((bx - 10, 18), "z", fill=INK, font=_font(13, True))
+        d.text((bx + 30, y - 7), f"{v:.0f}", fill=INK, font=_font(16))
+    d.text((bx - 10, 18), "z", fill=INK, font=_font(17, True))
     return img
 
 
@@ -145,17 +145,17 @@ def decoy_figure(decoy_scores: list[float], observed: float) -> Image.Image:
     for v in np.linspace(xmin, xmax, 7):
         x = xpix(v)
         d.line([x, bottom, x, bottom + 5], fill=INK)
-        d.text((x - 10, bottom + 8), f"{v:.0f}", fill=INK, font=_font(12))
+        d.text((x - 10, bottom + 8), f"{v:.0f}", fill=INK, font=_font(16))
     for v in (0, cmax):
         y = bottom - v / cmax * (bottom - top)
-        d.text((left - 30, y - 7), f"{v}", fill=INK, font=_font(12))
+        d.text((left - 30, y - 7), f"{v}", fill=INK, font=_font(16))
     ox = xpix(observed)
     d.line([ox, top - 5, ox, bottom], fill=ACCENT, width=3)
     label = f"observed {observed:.1f}"
-    tw = d.textlength(label, font=_font(13, True))
-    d.text((min(ox + 6, right - tw), top - 22), label, fill=ACCENT, font=_font(13, True))
+    tw = d.textlength(label, font=_font(17, True))
+    d.text((min(ox + 6, right - tw), top - 22), label, fill=ACCENT, font=_font(17, True))
     d.text((left, h - 22), f"best score (z) under each of {scores.size} decoy keys",
-           fill=INK, font=_font(13))
+           fill=INK, font=_font(17))
     return img
 
 
@@ -180,7 +180,7 @@ def aligned_figure(original: np.ndarray, aligned: np.ndarray, difference: np.nda
         x = 20 + k * (size[0] + 20)
         img.paste(p.convert("RGB").resize(size, Image.Resampling.LANCZOS), (x, 36))
         d.rectangle([x - 1, 35, x + size[0], 36 + size[1]], outline=GRID)
-        d.text((x, 10), title, fill=INK, font=_font(13))
+        d.text((x, 10), title, fill=INK, font=_font(17))
     if crop_box_work is not None:
         x0, y0, x1, y1 = (v * scale for v in crop_box_work)
         d.rectangle([20 + x0, 36 + y0, 20 + x1, 36 + y1], outline=ACCENT, width=2)

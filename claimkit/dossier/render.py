@@ -21,6 +21,7 @@ import jinja2
 from claimkit import words
 from claimkit.case import layout
 from claimkit.errors import InputError
+from claimkit.evaluation.lr import verbal
 
 __all__ = [
     "parse_markup",
@@ -51,15 +52,32 @@ def _day(iso: str) -> str:
 
 
 def _chance(log10p: float) -> str:
-    # Past 1e-12 the plain-language text stops at "one in a million million":
-    # smaller numbers say nothing more to a reader and rest ever harder on the
-    # model; the exact bound (log10) is given under "Results for each exhibit".
+    """A probability as a power of ten whose minus sign survives copying ("10^-12").
+
+    The markup turns ``10^-12`` into a superscript in the PDF and the HTML; in
+    plain text it stays ``10^-12``. Never "1e-12" (loses its meaning when read
+    aloud) and never "(10^12)" (loses its sign).
+    """
     if log10p < -12:
-        return "below one in a million million (10^12)"
+        return "below 10^-12 (less than one in a million million)"
     if log10p <= -3:
         n = math.floor(-log10p)
-        return f"below 1 in 10^{n} (a 1 followed by {n} zeros)"
+        return f"below 10^-{n} (less than 1 in a 1 followed by {n} zeros)"
     return f"about {10 ** log10p:.2g}"
+
+
+def _power(log10v: float | None) -> str:
+    """10^x for a log10 value, with its sign and a plain reading ("10^2.4 (about 250)")."""
+    if log10v is None:
+        return "not computed"
+    v = round(float(log10v), 1)
+    plain = 10 ** abs(float(log10v))
+    approx = f"{plain:,.0f}" if plain >= 10 else f"{plain:.2g}"
+    return f"10^{v:g} (about {'1/' if v < 0 else ''}{approx})"
+
+
+def _pct(v: float | None) -> str:
+    return "not measured" if v is None else f"{100 * float(v):.0f} %"
 
 
 def _cropdesc(box, r) -> str:
@@ -82,7 +100,7 @@ def _alignwords(al: dict) -> str:
         parts.append(f"turned {abs(rot):.1f} degrees {way}")
     if abs(al.get("scale", 1.0) - 1) >= 0.005:
         parts.append(f"scaled to {100 * al['scale']:.0f} %")
-    if al.get("mirrored"):
+    if al.get("mirrored") or al.get("flipped"):
         parts.append("mirrored")
     return ", ".join(parts) if parts else "neither turned nor scaled"
 
@@ -92,7 +110,7 @@ def _env() -> jinja2.Environment:
                              autoescape=False, undefined=jinja2.StrictUndefined,
                              keep_trailing_newline=True, trim_blocks=False)
     env.filters.update(day=_day, chance=_chance, cropdesc=_cropdesc, alignwords=_alignwords,
-                       label=layout.exhibit_label)
+                       power=_power, pct=_pct, label=layout.exhibit_label)
     return env
 
 
@@ -145,8 +163,8 @@ def _inline(text: str, *, sup: str) -> str:
     """Escape, then **bold** and 10^N; ``sup`` is the superscript tag (PDF or HTML)."""
     t = html.escape(text, quote=False)
     t = re.sub(r"\*\*(.+?)\*\*", r"<b>\1</b>", t)
-    t = re.sub(r"10\^(-?\d+)", rf"10<{sup}>\1</{sup}>", t)
-    t = re.sub(r"exp\(-z\^2/2\)", rf"exp(-z<{sup}>2</{sup}>/2)", t)
+    # Powers stay written as 10^-12 and exp(-z^2/2): a superscript loses its meaning when
+    # the text is copied out of the PDF ("10-12", "106"), the caret does not.
     return t
 
 
@@ -168,12 +186,34 @@ def tables(data: dict, name: str, arg: str | None) -> tuple[list[str], list[list
             rows += [[f"{f['format']}: {k}", str(v)] for k, v in sorted(f.items())
                      if k != "format"]
         rows += [[f"mark: {k}", str(v)] for k, v in sorted(data["method"]["mark"].items())]
+        rows += [[f"content line: {k.replace('_', ' ')}", str(v)]
+                 for k, v in data["method"].get("content", {}).items()]
         return ["Parameter", "Value"], rows
     if name == "custody":
         rows = [[str(e["seq"]), e["time"][:19] + "Z", e["actor"], e["action"], e["what"],
                  ", ".join(f"{k} {v}" for k, v in e["items"].items())]
                 for e in data["custody"]["entries"]]
         return ["#", "Time (system clock)", "By", "Action", "Concerns", "Items (SHA-256, first 16)"], rows
+    if name == "warnings":
+        rows = [[w["code"], _label_of(data, w.get("exhibit")), w["text"]] for w in data["warnings"]]
+        return ["Warning", "Concerns", "What it means"], rows or [["none", "", "No warning."]]
+    if name == "timeline":
+        rows = [[e["day"] or "(no date)", e["what"], e["source"], str(e["time"] or "")]
+                for e in data["timeline"]["events"]]
+        return ["Day", "Event", "Source of the date", "As recorded"], rows
+    if name == "lines":
+        rows = []
+        for r in data["results"]:
+            ev = r.get("evaluation") or {}
+            lg = ev.get("log10_lr") or {}
+            if not ev:
+                continue
+            rows.append([r["label"], _power(lg.get("mark")), _power(lg.get("content")),
+                         _power(lg.get("combined")), _power(ev.get("reported_log10_lr")),
+                         "not evaluated" if ev.get("reported_log10_lr") is None
+                         else verbal(ev["reported_log10_lr"], "Hp", "Hd")])
+        return ["Exhibit", "LR, mark line", "LR, content line", "LR, combined", "LR reported",
+                "Verbal equivalent (ENFSI 2015)"], rows or [["(none)", "", "", "", "", ""]]
     if name == "robustness":
         r = next(x for x in data["results"] if x["exhibit_id"] == arg)
         rows_in = (r.get("robustness") or {}).get("rows") or []
@@ -191,12 +231,31 @@ def tables(data: dict, name: str, arg: str | None) -> tuple[list[str], list[list
     raise KeyError(f"no table {name}")
 
 
+def _label_of(data: dict, exhibit_id: str | None) -> str:
+    if not exhibit_id:
+        return "the case"
+    return next((r["label"] for r in data["results"] if r["exhibit_id"] == exhibit_id), exhibit_id)
+
+
 def _cell(v) -> str:
     if isinstance(v, bool):
         return "yes" if v else "no"
     if isinstance(v, float):
         return f"{v:.4g}"
     return "" if v is None else str(v)
+
+
+def _pair(data: dict, exhibit_id: str) -> list[tuple[str, str]]:
+    """The page-1 pair: (figure kind, caption) for the registered picture and the exhibit."""
+    r = next(x for x in data["results"] if x["exhibit_id"] == exhibit_id)
+    wid = (r.get("match") or {}).get("work_id") or r.get("work_id")
+    if r.get("reference"):
+        left = f"Registered work {wid}: the {r['reference']['kind']} file on record"
+    elif wid:
+        left = f"Registered work {wid}: its file was not at hand, so it is not shown"
+    else:
+        left = "No registered work is named by a mark or matched by appearance"
+    return [("registered", left), ("thumbnail", f"{r['label']} as found")]
 
 
 # ---------------------------------------------------------------- PDF
@@ -289,15 +348,32 @@ def render_pdf(data: dict, root: Path, out: Path) -> bytes:
             ]))
             story.append(t)
             story.append(Spacer(1, 6))
+        elif block[1] == "pair":
+            cells = []
+            for kind, caption in _pair(data, block[2]):
+                rel = data["figures"].get(block[2], {}).get(kind)
+                if rel and (root / rel).is_file():
+                    from PIL import Image as PILImage
+                    with PILImage.open(root / rel) as im:
+                        w, h = im.size
+                    sc = min(7.6 * cm / w, 6.2 * cm / h)
+                    cells.append([Image(str(root / rel), width=w * sc, height=h * sc),
+                                  Paragraph(_inline(caption, sup="super"), st["cell"])])
+                else:
+                    cells.append([Paragraph(_inline(caption, sup="super"), st["cell"])])
+            t = Table([cells], colWidths=[width / 2, width / 2])
+            t.setStyle(TableStyle([("VALIGN", (0, 0), (-1, -1), "TOP"),
+                                   ("FONTNAME", (0, 0), (-1, -1), "Vera")]))
+            story.append(KeepTogether([t, Spacer(1, 4)]))
         elif block[1] == "figure":
             rel = data["figures"].get(block[3], {}).get(block[2])
             if rel and (root / rel).is_file():
                 from PIL import Image as PILImage
                 with PILImage.open(root / rel) as im:
                     w, h = im.size
-                maxw = {"thumbnail": 6 * cm, "surface": 9 * cm, "message": 12 * cm,
-                        "decoys": 12 * cm}.get(block[2], width)
-                scale = min(maxw / w, 7.5 * cm / h)
+                maxw = {"thumbnail": 6 * cm, "surface": 11 * cm, "message": 13 * cm,
+                        "decoys": 14 * cm, "registered": 6 * cm}.get(block[2], width)
+                scale = min(maxw / w, 9 * cm / h)
                 story.append(KeepTogether([Image(str(root / rel), width=w * scale,
                                                  height=h * scale, hAlign="LEFT"),
                                            Spacer(1, 4)]))
@@ -322,6 +398,9 @@ def render_pdf(data: dict, root: Path, out: Path) -> bytes:
 
 def _col_widths(name: str, n: int, width: float) -> list[float]:
     shares = {"exhibits": [0.08, 0.27, 0.15, 0.2, 0.3],
+              "lines": [0.1, 0.14, 0.14, 0.14, 0.14, 0.34],
+              "warnings": [0.25, 0.12, 0.63],
+              "timeline": [0.12, 0.4, 0.2, 0.28],
               "custody": [0.05, 0.17, 0.12, 0.17, 0.12, 0.37],
               "parameters": [0.4, 0.6]}.get(name)
     if shares is None or len(shares) != n:
@@ -364,6 +443,17 @@ def render_html(data: dict, root: Path) -> str:
                 t.append("<tr>" + "".join(f"<td>{html.escape(c)}</td>" for c in row) + "</tr>")
             t.append("</tbody></table>")
             parts.append("".join(t))
+        elif block[1] == "pair":
+            cells = []
+            for kind, caption in _pair(data, block[2]):
+                rel = data["figures"].get(block[2], {}).get(kind)
+                img = ""
+                if rel and (root / rel).is_file():
+                    b64 = base64.b64encode((root / rel).read_bytes()).decode("ascii")
+                    img = f'<img alt="{html.escape(caption)}" src="data:image/png;base64,{b64}">'
+                cells.append(f"<figure>{img}<figcaption>{_inline(caption, sup='sup')}"
+                             "</figcaption></figure>")
+            parts.append('<div class="pair">' + "".join(cells) + "</div>")
         elif block[1] == "figure":
             rel = data["figures"].get(block[3], {}).get(block[2])
             if rel and (root / rel).is_file():

@@ -93,6 +93,8 @@ class Finding:
     recovered_raw: np.ndarray = field(repr=False)  # raw correlation map, aligned
     reference: np.ndarray = field(repr=False)    # reference message template
     decoy_scores: list[float] = field(default_factory=list)
+    # Scales the copy was examined at (mark.scales), all counted in ``hypotheses``.
+    scales_searched: int = 1
 
     @property
     def false_alarm_probability(self) -> float:
@@ -109,6 +111,7 @@ class Finding:
             "score_pilot": round(self.z_pilot, 4),
             "score_full": None if self.z_full is None else round(self.z_full, 4),
             "hypotheses": self.hypotheses,
+            "scales_searched": self.scales_searched,
             "payload_space": self.payload_space,
             "payload_valid": self.payload_valid,
             "mark_format": self.mark_format,
@@ -328,8 +331,14 @@ def central_window(shape: tuple[int, int], max_pixels: int = MAX_EXAMINE_PIXELS)
     return (h - wh) // 2, (w - ww) // 2, wh, ww
 
 
-def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1) -> _Prepared:
-    """Whiten, estimate the lattice, resample and fold: everything that needs no key."""
+def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1,
+            lattices: bool = True) -> _Prepared:
+    """Whiten, estimate the lattice, resample and fold: everything that needs no key.
+
+    ``lattices=False`` keeps the unwarped fold only (a view whose geometry is
+    known in advance, :mod:`claimkit.mark.scales`); the count of hypotheses is
+    unchanged, so that is conservative.
+    """
     if min(luma.shape) < MIN_SIDE:
         raise ValueError(f"image side below {MIN_SIDE} pixels")
     # A 4-megapixel window holds far more than enough of a tiled mark; beyond
@@ -337,7 +346,9 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1) -> _Prepare
     win = central_window(luma.shape)
     r0, c0, wh, ww = win
     x = whiten(luma[r0:r0 + wh, c0:c0 + ww])
-    spectra, transforms, lattices = [], [], []
+    spectra: list = []
+    transforms: list = []
+    found: list[geometry.Lattice | None] = []
 
     def add(f, transform, lattice):
         # Single precision from here on: the folds sum thousands of pixels, and
@@ -353,11 +364,11 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1) -> _Prepare
         idx, phase = _variant_spectra(tile)
         spectra.append(s.ravel()[idx] * phase)
         transforms.append(transform)
-        lattices.append(lattice)
+        found.append(lattice)
 
     add(fold(x, tile), None, None)
     half = np.array([wh, ww], dtype=float) / 2
-    for lat in geometry.find_lattices(x, tile, workers=workers):
+    for lat in geometry.find_lattices(x, tile, workers=workers) if lattices else ():
         t = lat.transform(tile)
         # A lattice that is the identity to within a fifth of a pixel across the
         # window adds nothing to the unwarped fold: skip the costly resampling.
@@ -366,7 +377,7 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1) -> _Prepare
         if drift.max() < 0.2:
             continue
         add(fold_resampled(x, t, tile), t, lat)
-    return _Prepared(spectra, transforms, lattices, win)
+    return _Prepared(spectra, transforms, found, win)
 
 
 def _surfaces(prep: _Prepared, pattern: KeyPattern, ramps: np.ndarray):

@@ -93,6 +93,12 @@ REFINE_RADII = (200, 360, LAG_MAX)   # growing radii of the refinement passes
 CLEAR_SCORE = 15.0         # a lattice scoring this much stands out clearly from noise (~5 at most)
 RUNNER_UP = 0.25           # ... and then lattices below this fraction of it are not resampled
 DEN_STEP = 8               # angle subsampling of the coarse scores' variance
+# Sanity limits on any basis the search builds (see degenerate()): the shortest
+# plausible vector is SCALE_RANGE[0] * TILE * (1 - ASPECT_RANGE), about 52 px;
+# these limits only reject bases that no plausible refinement can reach.
+MIN_BASIS_PX = 8.0         # smallest singular value of a usable basis, pixels
+MAX_CONDITION = 8.0        # largest ratio of its singular values
+MAX_GRID_SIDE = 4 * LAG_MAX // 8   # half-side of the lattice-point enumeration grid (256)
 MIN_SUPPORT = 0.25         # least summed squared weight of a coarse hypothesis
 
 
@@ -528,14 +534,46 @@ def _basis(period: float, theta: float, aspect: float = 1.0, lattice_aspect: flo
 
 # ---------------------------------------------------------------- refinement and scoring
 
+def degenerate(basis: np.ndarray) -> bool:
+    """True for a basis no lattice of the mark can have: not finite, nearly singular or far from square.
+
+    The search only ever looks for lattices within ``SCALE_RANGE`` and
+    ``ASPECT_RANGE`` of the original grid, whose shortest basis vector is
+    tens of pixels and whose basis is nearly orthogonal once reduced. A
+    least-squares fit to collinear peaks can produce a basis with one
+    vector a fraction of a pixel long; enumerating its lattice points would
+    need a grid millions of points wide (a 94.9 TiB allocation was seen on
+    a copy resized to aspect 0.9). Such bases are discarded before any
+    grid is built.
+    """
+    b = np.asarray(basis, dtype=float)
+    if b.shape != (2, 2) or not np.all(np.isfinite(b)):
+        return True
+    sv = np.linalg.svd(b, compute_uv=False)
+    return bool(sv[1] < MIN_BASIS_PX or sv[0] > MAX_CONDITION * sv[1])
+
+
 def _points(basis: np.ndarray, r_min: float, r_max: float) -> np.ndarray:
-    """Integer vectors n (one of each +-pair) with r_min <= |basis n| <= r_max."""
+    """Integer vectors n (one of each +-pair) with r_min <= |basis n| <= r_max.
+
+    Empty for a :func:`degenerate` basis, and whenever the enumeration grid
+    would exceed ``MAX_GRID_SIDE`` (every lag the search reads lies within
+    ``LAG_MAX`` of the origin, so a sound basis never needs more).
+    """
+    if degenerate(basis) or not np.isfinite(r_max):
+        return _NO_POINTS
     inv = np.linalg.inv(basis)
     m = int(np.ceil(r_max * np.max(np.abs(inv)) * 2)) + 1
+    if m > MAX_GRID_SIDE:
+        return _NO_POINTS
     n = _half_plane(m)
     p = basis @ n
     r = np.sqrt(p[0] * p[0] + p[1] * p[1])
     return n[:, (r >= r_min) & (r <= r_max)]
+
+
+_NO_POINTS = np.zeros((2, 0))
+_NO_POINTS.setflags(write=False)
 
 
 @lru_cache(maxsize=64)
@@ -626,9 +664,15 @@ def _refine(acf: _Acf, basis: np.ndarray, r_min: float) -> tuple[np.ndarray, int
             # Residuals far beyond the prediction error are noise peaks.
             wgt = np.where(np.linalg.norm(obs - p, axis=0) <= 2.2, wgt, 0.0)
             nn = (n * wgt) @ n.T
-            if abs(np.linalg.det(nn)) < 1e-9:
+            # Peaks along one line of the lattice fix only one direction: the
+            # normal matrix is then (nearly) singular and the fit would be a
+            # degenerate basis (see degenerate()). Keep the last sound one.
+            if abs(np.linalg.det(nn)) < 1e-9 or np.linalg.cond(nn) > 1e6:
                 return basis, inliers
-            basis = ((obs - acf.c) * wgt) @ n.T @ np.linalg.inv(nn)
+            fitted = ((obs - acf.c) * wgt) @ n.T @ np.linalg.inv(nn)
+            if degenerate(fitted):
+                return basis, inliers
+            basis = fitted
     return basis, inliers
 
 
@@ -703,15 +747,44 @@ def find_lattices(x: np.ndarray, tile: int, *, workers: int = 1,
         # plainly marked copy), the second refinement would repeat the first.
         starts = (basis,) if np.array_equal(widened, basis) else (basis, widened)
         for start in starts:
+            if degenerate(start):
+                continue
             refined, inliers = _refine(acf, start, r_min)
             refined = _reduce(refined)
-            if _plausible(refined, tile):
+            if not degenerate(refined) and _plausible(refined, tile):
                 score, points = lattice_score(acf, refined, r_min, acf.c)
                 if best is None or score > best.score:
                     best = Lattice(basis=refined, score=score, inliers=inliers, points=points)
         if best is not None:
             rough.append(best)
-    return _worth_trying(_distinct(rough), x.shape, tile)[:candidates]
+    return [_canonical(lat, tile) for lat in _worth_trying(_distinct(rough), x.shape, tile)[:candidates]]
+
+
+def _signed_permutations() -> tuple[np.ndarray, ...]:
+    out = []
+    for perm in (np.eye(2), np.array([[0.0, 1.0], [1.0, 0.0]])):
+        for sr in (1.0, -1.0):
+            for sc in (1.0, -1.0):
+                out.append(perm @ np.diag([sr, sc]))
+    return tuple(out)
+
+
+_DIHEDRAL = _signed_permutations()
+
+
+def _canonical(lat: Lattice, tile: int) -> Lattice:
+    """The same lattice with the basis (of the eight quarter-turn/mirror variants) nearest ``tile * I``.
+
+    ``basis @ D`` for a signed permutation ``D`` spans the same points, and
+    the detector tries all eight variants of the fold, so the hypotheses do
+    not change. What does change is the drift check of
+    :func:`claimkit.mark.detect.prepare`: an untouched copy whose basis came
+    out with its vectors swapped or negated is recognised as the mark's own
+    grid and is not resampled.
+    """
+    target = tile * np.eye(2)
+    best = min(_DIHEDRAL, key=lambda d: float(np.abs(lat.basis @ d - target).sum()))
+    return Lattice(basis=lat.basis @ best, score=lat.score, inliers=lat.inliers, points=lat.points)
 
 
 def _worth_trying(ranked: list[Lattice], shape: tuple[int, int], tile: int) -> list[Lattice]:

@@ -234,7 +234,8 @@ def check_custody(root: Path, pub, exhibits: list[dict], findings: dict,
     for ex in exhibits:
         i = ex["exhibit_id"]
         rec = root / layout.intake_record(i)
-        if intake.get(i, {}).get("exhibit") != ex["sha256"]:
+        # .get: a tampered intake record may lack the field; that is a finding, not a crash.
+        if intake.get(i, {}).get("exhibit") != ex.get("sha256"):
             probs.append(f"{i}: no custody entry takes in these bytes")
         elif rec.is_file() and intake[i].get("intake_record") != sha256_file(rec):
             probs.append(f"{i}: the intake record differs from the one logged")
@@ -265,13 +266,14 @@ def check_exhibit(root: Path, ex: dict, finding: dict | None, listed: set[str],
     if rel not in listed:
         rep.add(f"{i} exhibit", False, f"{rel}: not in the manifest")
     got = sha256_file(p)
-    rep.add(f"{i} exhibit", got == ex["sha256"],
-            f"{rel}: SHA-256 as at intake" if got == ex["sha256"] else
+    want = ex.get("sha256")      # a tampered intake record may lack it: a failure, not a crash
+    rep.add(f"{i} exhibit", got == want,
+            f"{rel}: SHA-256 as at intake" if got == want else
             f"{rel}: SHA-256 {got[:16]}... differs from the intake record")
     if finding is None:
         rep.add(f"{i} finding", False, "not examined (no finding in the bundle)")
         return False
-    if finding.get("exhibit_sha256") != ex["sha256"]:
+    if finding.get("exhibit_sha256") != ex.get("sha256"):
         rep.add(f"{i} finding", False, "the finding is for other bytes than the exhibit")
         return False
     return True

@@ -15,11 +15,12 @@ bundle carries, and the check is reported ``unpinned``.
 from __future__ import annotations
 
 import hashlib
+import json
 from pathlib import Path
 
-from claimkit.capture.evidence import capture_records
+from claimkit.capture.evidence import capture_files
 from claimkit.capture.warc import record_payload
-from claimkit.case.layout import CAPTURES, EXHIBITS, inside
+from claimkit.case.layout import CAPTURES, CASE_FILE, CUSTODY_COPY, EXHIBITS, inside
 from claimkit.errors import CheckFailed, InputError
 from claimkit.evidence import timestamp
 from claimkit.evidence.storage import sha256_file
@@ -30,6 +31,52 @@ __all__ = ["check_collection"]
 
 def _safe(root: Path, rel: object, folder: str = CAPTURES) -> str | None:
     return rel if isinstance(rel, str) and inside(root, rel, folder) is None else None
+
+
+def _log_entries(root: Path) -> list[dict]:
+    """The full entries of the custody copy: a custody excerpt (canonical JSON, its lines
+    verbatim) or, in older bundles, the log itself (JSON Lines)."""
+    try:
+        raw = (root / CUSTODY_COPY).read_bytes()
+    except OSError:
+        return []
+    try:
+        doc = json.loads(raw)
+        lines = [x["line"] for x in doc.get("entries", []) if isinstance(x, dict) and "line" in x]
+    except (ValueError, AttributeError):
+        lines = raw.splitlines()
+    out = []
+    for line in lines:
+        try:
+            e = json.loads(line)
+        except ValueError:
+            continue
+        if isinstance(e, dict):
+            out.append(e)
+    return out
+
+
+def _logged(root: Path) -> dict[str, set[str]]:
+    """Hashes the custody copy records for captures: capture records, WARC files.
+
+    The copy's signatures and chain are checked by the custody check; here only
+    its entries for this case are read, so that a capture record or WARC file
+    that was never logged (added to the bundle afterwards) is named.
+    """
+    out: dict[str, set[str]] = {"capture_record": set(), "warc": set()}
+    try:
+        case_id = json.loads((root / CASE_FILE).read_bytes()).get("case_id")
+    except (OSError, ValueError):
+        return out
+    for e in _log_entries(root):
+        if (e.get("details") or {}).get("case_id") != case_id:
+            continue
+        if e.get("action") in ("web pages captured", "web archive taken in"):
+            for k, seen in out.items():
+                v = (e.get("items") or {}).get(k)
+                if isinstance(v, str):
+                    seen.add(v)
+    return out
 
 
 def _sha(path: Path) -> str:
@@ -63,8 +110,16 @@ def check_collection(root: str | Path, exhibits: list[dict], rep, *,
                             f"SHA-256 {got} is not the recorded {expected}"))
         return p if warc_ok[rel_s] else None
 
-    for cid, cap in capture_records(root).items():
+    logged = _logged(root)
+    for path, cap in capture_files(root):
+        cid = cap["capture_id"]
         w = cap.get("warc") or {}
+        ok = (path.name == f"{cid}.json" and _sha(path) in logged["capture_record"]
+              and w.get("sha256") in logged["warc"])
+        out.append((f"capture {cid} custody", ok,
+                    "the capture record and its WARC file are those the custody log recorded"
+                    if ok else "the custody log has no capture entry with this record and "
+                    "WARC file (added or changed after the capture)"))
         p = warc_file(w.get("file"), w.get("sha256"), f"capture {cid}")
         stamp = cap.get("timestamp")
         if stamp:
@@ -76,6 +131,12 @@ def check_collection(root: str | Path, exhibits: list[dict], rep, *,
             if snap:
                 out.append(_check_snapshot(root, p, snap))
     _exhibits(root, exhibits, out, warc_file)
+    scanned = {a.get("warc_sha256") for a in (ex.get("acquisition") for ex in exhibits)
+               if isinstance(a, dict) and a.get("method") == "image response in a WARC file"}
+    for sha in sorted(x for x in scanned if isinstance(x, str)):
+        out.append((f"web archive {sha[:16]} custody", sha in logged["warc"],
+                    "taken into the case with a custody entry" if sha in logged["warc"] else
+                    "no custody entry takes this WARC file in"))
     for name, ok, detail in out:
         # A token that holds only against the certificate the bundle brings is unpinned.
         unpinned = ok and tsa_roots is None and name.endswith(" timestamp")
@@ -129,9 +190,9 @@ def _check_token(root: Path, cid: str, stamp: dict, warc_sha: object,
                  tsa_roots: tuple | None = None) -> tuple[str, bool, str]:
 
     name = f"capture {cid} timestamp"
-    rels = [_safe(root, stamp.get(k)) for k in ("token_file", "request_file",
-                                           "tsa_certificates_file")]
-    if None in rels or not all((root / r).is_file() for r in rels):
+    rels = [r for r in (_safe(root, stamp.get(k)) for k in
+                        ("token_file", "request_file", "tsa_certificates_file")) if r]
+    if len(rels) != 3 or not all((root / r).is_file() for r in rels):
         return name, False, "token, request or TSA certificate file missing or unsafe"
     token, tsq, pem = ((root / r).read_bytes() for r in rels)
     try:

@@ -176,6 +176,9 @@ def check_dossier(root: Path, pub, rep: VerifyReport, *, full: bool = True) -> N
             if a.size != b.size or not figures_agree(np.asarray(a), np.asarray(b.convert(a.mode)),
                                                      exact=not lenient):
                 bad.append(f"{rel}: does not show the stored data")
+    if bad and made is not None and not full_render:
+        # Figures of an older dossier schema are drawn by that claimkit: name both sides.
+        bad.append(f"drawn by {made[1]}, redrawn by claimkit {__version__}")
     rep.add("figures", not bad, "; ".join(bad) if bad else
             f"{len(figs)} figures redrawn from the stored data, "
             + ("within the tolerances for other software versions" if lenient

@@ -6,13 +6,15 @@ is compared with the re-run (:func:`claimkit.verify.compare.differences`).
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import numpy as np
 
 from claimkit import __version__
+from claimkit.case import layout
 from claimkit.case.align import align
-from claimkit.case.examine import decoy_summary, jsonable
+from claimkit.case.examine import alignment_geometry, decoy_summary, jsonable, weigh_lines
 from claimkit.imageio import LUMA_FROM_RGB, read_picture, to_luma
 from claimkit.mark import payload
 from claimkit.stress import run_battery
@@ -74,16 +76,38 @@ def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
             if a.shape != b.shape or not np.allclose(a, b, rtol=1e-4, atol=1e-4):
                 diffs.append(f"arrays.{name}: differs from the re-run")
         stored_arrays = {k: arr[k] for k in arr.files}
+    luma = to_luma(pic.pixels)
+    reference = finding.get("reference") or {}
+    ref = root / reference.get("file", "")
+    # The unmarked master may be withheld from the bundle (report --include-original adds it);
+    # the published marked file never is.
+    withheld = bool(reference) and not ref.is_file() and reference.get("kind") != "marked"
+    ref_luma = to_luma(read_picture(ref).pixels) if reference and not withheld else None
+    lines = None
+    if "evaluation" in finding and withheld:
+        rep.add(f"{i} content line", True, "not re-run: it compared the exhibit with the "
+                "unmarked master, withheld from the bundle (report --include-original adds it)",
+                status=SKIPPED)
+    elif "evaluation" in finding:
+        # The content line and the evaluation, from the exhibit, the reference in the bundle,
+        # the signed work record of the disclosure and the stored robustness rows.
+        mark = {**got, "work_id": stored.get("work_id"), "registered": stored.get("registered")}
+        lines = weigh_lines(luma, exhibit_id=i, rep=mark, threshold=params["threshold"],
+                            match=finding.get("match"),
+                            work_record=_work_record(root, (finding.get("match") or {}).get("work_id")),
+                            owner=_owner(root), reference_luma=ref_luma,
+                            reference_kind=(finding.get("reference") or {}).get("kind"),
+                            robustness=finding.get("robustness"))
+        for k in ("content", "content_mismatch", "evaluation"):
+            diffs += differences(finding.get(k), lines[k], k)
     al = finding.get("alignment")
-    ref = root / (finding.get("reference") or {}).get("file", "")
-    if al and al.get("aligned") and not ref.is_file() and \
-            finding["reference"].get("kind") != "marked":
+    if al and al.get("aligned") and withheld:
         rep.add(f"{i} alignment", True, "not re-run: the file it aligns to is the unmarked "
                 "master, withheld from the bundle (report --include-original adds it)",
                 status=SKIPPED)
-    elif al and al.get("aligned"):
-        rpic = read_picture(ref)
-        again = align(to_luma(rpic.pixels), to_luma(pic.pixels), f.geometry or None)
+    elif al and al.get("aligned") and ref_luma is not None:
+        geom = alignment_geometry(lines["content"]) if lines else (f.geometry or None)
+        again = align(ref_luma, luma, geom)
         diffs += differences(al, again.numbers, "alignment")
         if "difference" in stored_arrays and not np.array_equal(stored_arrays["difference"],
                                                                again.difference):
@@ -93,6 +117,28 @@ def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
             f"{'detected' if f.detected else 'not detected'}, log10 P_fa "
             f"{round(f.log10_false_alarm, 4)}, {len(f.decoy_scores)} decoys and every stored "
             "number reproduced")
+
+
+def _work_record(root: Path, work_id: str | None) -> dict | None:
+    """The signed work record from the bundle's disclosure of ``work_id`` (checked earlier)."""
+    if not work_id:
+        return None
+    folder = root / layout.DISCLOSURES
+    for p in sorted(folder.glob("*/work-record.json")) if folder.is_dir() else []:
+        try:
+            record = json.loads(p.read_bytes())
+        except (OSError, ValueError):
+            continue
+        if isinstance(record, dict) and record.get("work_id") == work_id:
+            return record
+    return None
+
+
+def _owner(root: Path) -> str | None:
+    try:
+        return json.loads((root / layout.CASE_FILE).read_bytes()).get("owner", {}).get("name")
+    except (OSError, ValueError):
+        return None
 
 
 def rerun_robustness(root: Path, findings: dict, keys: dict, rep: VerifyReport) -> None:

@@ -1,0 +1,193 @@
+"""The content line's result for one exhibit: registration, decision, likelihood ratio.
+
+Two bases, said in the result:
+
+* a **reference picture** (the registered marked file as published, or a
+  reduced-resolution reference): :func:`claimkit.content.register.register`,
+  whose statistic (RANSAC inliers) is set against the measured distributions
+  in ``calibration.json``;
+* the **perceptual fingerprint** in the work record only
+  (:mod:`claimkit.mark.fingerprint`), when no reference picture is at hand:
+  a 128-bit summary of the whole picture, so a crop or a heavy edit moves it
+  as much as a different picture does; the result says the line was limited
+  to it.
+
+Either way nothing here reads the mark's key, payload or geometry.
+:func:`agreement` compares the content geometry with the mark's afterwards.
+"""
+
+from __future__ import annotations
+
+import json
+from functools import lru_cache
+from importlib import resources
+
+import numpy as np
+
+from claimkit.content import register as reg
+from claimkit.evaluation import lr
+from claimkit.mark import fingerprint as fp
+
+__all__ = [
+    "ROTATION_TOLERANCE_DEG",
+    "SCALE_TOLERANCE",
+    "agreement",
+    "calibration",
+    "content_line",
+]
+
+#: The two geometries agree when the turns differ by at most this (degrees) ...
+ROTATION_TOLERANCE_DEG = 3.0
+#: ... the scales by at most this fraction, and both read the same mirroring.
+#: Both limits lie above the largest error either line showed on the stress
+#: battery where it matched (the content line: calibration.json,
+#: ``geometry_error_when_matched``; the mark: 0.5 degrees and 2 %, the stress
+#: battery's tolerance), so genuine copies agree and a 180 degree or mirrored
+#: misreading does not.
+SCALE_TOLERANCE = 0.05
+#: Before "does not correspond" is said, the registered picture must register to an edited
+#: copy of itself (scaled to 70 % and turned 10 degrees) with at least this many times the
+#: threshold: a featureless picture (a clear sky) gives no keypoints that repeat, and then
+#: a failure to register says nothing about the exhibit.
+ABLE_FACTOR = 3
+
+
+def self_check(reference_luma: np.ndarray) -> int:
+    """Inliers of the registered picture against an edited copy of itself (70 %, turned 10 degrees)."""
+    from skimage.transform import rescale, rotate
+
+    ref = np.asarray(reference_luma, dtype=np.float64)
+    edited = rotate(rescale(ref, 0.7, anti_aliasing=True, preserve_range=True), 10.0,
+                    resize=True, preserve_range=True, order=1)
+    return int(reg.register(reg.features(ref), reg.features(edited),
+                            reg.features(edited, mirrored=True))["inliers"])
+
+
+@lru_cache(maxsize=1)
+def calibration() -> dict:
+    """The measured distributions (``calibration.json``, written by benchmarks/bench_content.py)."""
+    return json.loads(resources.files("claimkit.content").joinpath("calibration.json").read_text())
+
+
+def _null_summary(samples: list, threshold: float, *, higher_is_closer: bool) -> dict:
+    n = len(samples)
+    k = sum(1 for v in samples if (v >= threshold if higher_is_closer else v <= threshold))
+    return {"count": n, "reaching_threshold": k,
+            "rate_upper_95": round(lr.binomial_upper(k, n), 6)}
+
+
+def content_line(exhibit_luma: np.ndarray, *, reference_luma: np.ndarray | None = None,
+                 reference: str = "registered marked file", reference_scale: float = 1.0,
+                 work_fingerprint: str | None = None) -> dict:
+    """Judge whether the exhibit shows the registered picture, by content alone.
+
+    Parameters
+    ----------
+    exhibit_luma : ndarray
+        The exhibit's luma.
+    reference_luma : ndarray, optional
+        The registered picture (or a reduced-resolution reference of it).
+    reference : str
+        What ``reference_luma`` is, in words (kept in the result).
+    reference_scale : float
+        Reference pixels per pixel of the registered picture (1 for the
+        published file; 0.25 for a reference at a quarter of its width), so
+        that the scale reported is the exhibit's against the registered picture.
+    work_fingerprint : str, optional
+        The work record's perceptual fingerprint, used when no reference picture
+        is given.
+
+    Returns
+    -------
+    dict
+        ``basis``, ``limited_to_fingerprint``, ``statistic`` (name, value,
+        threshold), ``corresponds`` (True, False, or None when nothing could be
+        compared), ``registration`` (the numbers of the registration), ``null``
+        (how often the measured unrelated pictures reached the threshold) and
+        ``log10_lr`` (Hp: the exhibit shows the registered picture).
+    """
+    cal = calibration()
+    if reference_luma is not None:
+        ref = reg.features(reference_luma)
+        ex = reg.features(exhibit_luma)
+        exm = reg.features(exhibit_luma, mirrored=True)
+        res = reg.register(ref, ex, exm)
+        if res.get("matched") and reference_scale != 1.0:
+            g = res["geometry"]
+            g["scale"] = round(g["scale"] * reference_scale, 5)
+            g["matrix"] = [[round(v * reference_scale, 6) for v in row] for row in g["matrix"]]
+        threshold = int(cal["threshold"])
+        value = int(res["inliers"])
+        corresponds: bool | None = value >= threshold
+        able = None
+        if not corresponds:
+            able = self_check(reference_luma)
+            if able < ABLE_FACTOR * threshold:
+                corresponds = None
+        out = {
+            "basis": reference, "limited_to_fingerprint": False,
+            "statistic": {"name": "RANSAC inliers", "value": value, "threshold": threshold,
+                          "higher_means": "closer correspondence"},
+            "corresponds": corresponds,
+            "registration": res,
+            "null": _null_summary(cal["null"]["samples"], threshold, higher_is_closer=True),
+            "genuine": {"count": cal["genuine"]["count"],
+                        "reaching_threshold": sum(1 for v in cal["genuine"]["samples"]
+                                                  if v >= threshold)},
+            "log10_lr": round(lr.log10_lr_decision(value, cal["genuine"]["samples"],
+                                               cal["null"]["samples"], threshold=threshold), 3),
+        }
+        if able is not None:
+            out["reference_self_check"] = {"inliers": able, "needed": ABLE_FACTOR * threshold}
+        if corresponds is None:
+            out["log10_lr"] = 0.0
+            out["reason"] = ("inconclusive: the registered picture has too little structure for "
+                             f"the content line (against an edited copy of itself it reached "
+                             f"{able} matching points, {ABLE_FACTOR * threshold} needed), so a "
+                             "failure to register the exhibit says nothing about it")
+        return out
+    if work_fingerprint:
+        fcal = cal["fingerprint"]
+        d = fp.fingerprint_distance(fp.perceptual_fingerprint(exhibit_luma), work_fingerprint)
+        limit = int(fp.MATCH_DISTANCE)
+        # Closer is a smaller distance: the tail arithmetic takes the negated distance.
+        log10_lr = lr.log10_lr_decision(-d, [-v for v in fcal["genuine"]["samples"]],
+                                    [-v for v in fcal["null"]["samples"]], threshold=-limit)
+        return {
+            "basis": "perceptual fingerprint of the work record",
+            "limited_to_fingerprint": True,
+            "statistic": {"name": "fingerprint distance (bits of 128)", "value": int(d),
+                          "threshold": limit, "higher_means": "less alike"},
+            "corresponds": d <= limit,
+            "registration": None,
+            "null": _null_summary(fcal["null"]["samples"], limit, higher_is_closer=False),
+            "genuine": {"count": len(fcal["genuine"]["samples"]),
+                        "reaching_threshold": sum(1 for v in fcal["genuine"]["samples"]
+                                                  if v <= limit)},
+            "log10_lr": round(log10_lr, 3),
+        }
+    return {"basis": "none", "limited_to_fingerprint": False, "corresponds": None,
+            "statistic": None, "registration": None, "null": None, "log10_lr": 0.0,
+            "reason": "neither the registered picture nor its fingerprint was at hand"}
+
+
+def agreement(content: dict, mark_geometry: dict | None) -> dict:
+    """Whether the content line's geometry and the mark's agree, within the stated tolerances.
+
+    Returns ``{"compared": False, ...}`` when either geometry is missing.
+    """
+    reg_ = (content or {}).get("registration") or {}
+    g = reg_.get("geometry")
+    if not g or not mark_geometry or not content.get("corresponds"):
+        return {"compared": False,
+                "reason": "the content line did not register the exhibit" if not g or not
+                content.get("corresponds") else "the mark gave no geometry"}
+    rot = abs((g["rotation_deg"] - mark_geometry["rotation_deg"] + 180.0) % 360.0 - 180.0)
+    scale = abs(g["scale"] / mark_geometry["scale"] - 1.0) if mark_geometry.get("scale") else None
+    same_flip = bool(g["flipped"]) == bool(mark_geometry.get("flipped"))
+    ok = rot <= ROTATION_TOLERANCE_DEG and scale is not None and scale <= SCALE_TOLERANCE \
+        and same_flip
+    return {"compared": True, "agree": bool(ok), "rotation_difference_deg": round(rot, 3),
+            "scale_difference": None if scale is None else round(scale, 4),
+            "same_mirroring": same_flip,
+            "tolerances": {"rotation_deg": ROTATION_TOLERANCE_DEG, "scale": SCALE_TOLERANCE}}

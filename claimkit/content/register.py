@@ -1,0 +1,284 @@
+"""Register an exhibit to a registered picture by its content alone.
+
+The content line is the second, independent line of evidence beside the mark.
+It asks whether the exhibit shows the registered picture (or a part of it),
+using only the two pictures: oriented FAST keypoints with rotated BRIEF
+descriptors (ORB) [1]_ on both, mutual nearest-neighbour matching in Hamming
+distance, and a similarity transform (rotation, uniform scale, translation)
+fitted to the matches by RANSAC [2]_. ORB's descriptors are not mirror
+invariant, so the mirrored exhibit is registered as well and the better of
+the two readings is kept; the statistic is therefore the same maximum over
+both readings for every pair of pictures, related or not, which is what the
+measured null (:mod:`claimkit.content.calibration`) counts.
+
+The statistic is the number of RANSAC inliers: matched keypoint pairs that the
+fitted transform maps to within :data:`RESIDUAL_PX` working pixels of each
+other. Unrelated pictures leave a handful of chance inliers; a copy keeps tens
+to hundreds. Nothing here reads the mark: neither its key nor the geometry the
+mark's examination found, so the two lines can be set against each other.
+
+Every random choice (RANSAC's samples) comes from a fixed seed, so a re-run
+gives the same numbers to the bit on the same software versions.
+
+References
+----------
+.. [1] E. Rublee, V. Rabaud, K. Konolige, G. Bradski, "ORB: an efficient
+   alternative to SIFT or SURF", Proc. IEEE ICCV 2011, 2564-2571.
+   doi:10.1109/ICCV.2011.6126544
+.. [2] M. A. Fischler, R. C. Bolles, "Random sample consensus: a paradigm for
+   model fitting with applications to image analysis and automated
+   cartography", Commun. ACM 24(6), 381-395, 1981. doi:10.1145/358669.358692
+.. [3] Z. Wang, A. C. Bovik, H. R. Sheikh, E. P. Simoncelli, "Image quality
+   assessment: from error visibility to structural similarity", IEEE Trans.
+   Image Process. 13(4), 600-612, 2004. doi:10.1109/TIP.2003.819861
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import ndimage
+from skimage.feature import ORB, match_descriptors
+from skimage.measure import ransac
+from skimage.metrics import structural_similarity
+from skimage.transform import SimilarityTransform, rescale
+
+__all__ = [
+    "KEYPOINTS",
+    "RANSAC_SEED",
+    "RESIDUAL_PX",
+    "WORK_SIDE",
+    "Features",
+    "describe_linear",
+    "features",
+    "register",
+]
+
+#: Longer side, in pixels, each picture is reduced to before keypoints are found.
+WORK_SIDE = 640
+#: Keypoints kept per picture (the strongest by Harris response).
+KEYPOINTS = 2000
+#: FAST threshold (luma on a 0..1 scale); lower finds keypoints in flat pictures.
+FAST_THRESHOLD = 0.02
+#: RANSAC inlier distance, in pixels of the reference's working resolution.
+RESIDUAL_PX = 3.0
+#: RANSAC samples drawn; with 2-point samples this finds a 5 % inlier set with
+#: probability 1 - (1 - 0.05**2)**2000 > 0.99.
+RANSAC_TRIALS = 2000
+RANSAC_SEED = 20261
+#: Lowe's ratio test [1]_ on Hamming distances (best / second best).
+MAX_RATIO = 0.85
+#: A fitted scale outside this range (exhibit pixels per reference pixel) is not a copy.
+SCALE_RANGE = (1 / 12, 12.0)
+#: Pixels trimmed from the shared area's border before the similarity is measured.
+EDGE = 3
+
+
+@dataclass(frozen=True)
+class Features:
+    """Keypoints (x, y in full-resolution pixels of the picture) and binary descriptors."""
+
+    xy: np.ndarray            # (n, 2) float64
+    descriptors: np.ndarray   # (n, 256) bool
+    shape: tuple[int, int]    # (height, width) of the full-resolution picture
+    scale: float              # working size / full size
+    work: np.ndarray          # the luma at working size, 0..1, for the similarity measure
+
+
+def _work(luma: np.ndarray) -> tuple[np.ndarray, float]:
+    a = np.asarray(luma, dtype=np.float64)
+    if a.ndim != 2 or min(a.shape) < 16:
+        raise ValueError(f"luma must be 2-D and at least 16 px a side, got {a.shape}")
+    top = float(a.max()) if a.size else 1.0
+    a = a / (255.0 if top > 1.0 else 1.0)
+    s = min(1.0, WORK_SIDE / max(a.shape))
+    if s < 1.0:
+        a = rescale(a, s, anti_aliasing=True, preserve_range=True)
+    return np.clip(a, 0.0, 1.0), s
+
+
+def features(luma: np.ndarray, *, mirrored: bool = False) -> Features:
+    """ORB keypoints and descriptors of a picture (or of its left-right mirror image).
+
+    Parameters
+    ----------
+    luma : ndarray
+        ``(H, W)`` luma, 0..255 (or 0..1).
+    mirrored : bool
+        Describe the mirrored picture; the keypoints are returned in the
+        coordinates of the picture as given (``x -> W - 1 - x``), so that a
+        transform fitted to them includes the mirroring.
+
+    Returns
+    -------
+    Features
+    """
+    work, s = _work(luma)
+    shape = (int(np.asarray(luma).shape[0]), int(np.asarray(luma).shape[1]))
+    img = work[:, ::-1] if mirrored else work
+    orb = ORB(n_keypoints=KEYPOINTS, fast_threshold=FAST_THRESHOLD)
+    try:
+        orb.detect_and_extract(img)
+        rc = np.asarray(orb.keypoints, dtype=np.float64)
+        desc = np.asarray(orb.descriptors, dtype=bool)
+    except RuntimeError:       # no keypoints at all (a flat picture)
+        rc = np.zeros((0, 2))
+        desc = np.zeros((0, 256), bool)
+    x = rc[:, 1]
+    if mirrored:
+        x = (img.shape[1] - 1) - x
+    xy = np.stack([x, rc[:, 0]], axis=1) / s if len(rc) else np.zeros((0, 2))
+    return Features(xy, desc, shape, s, work)
+
+
+def describe_linear(m: np.ndarray) -> dict:
+    """Rotation, scale and mirroring of a 2 x 2 map in (x, y) with y pointing down.
+
+    The convention is the mark examination's (:func:`claimkit.mark.detect.describe_geometry`):
+    a positive angle is a counter-clockwise turn on screen, and a mirror image
+    is read as a left-right flip followed by the turn.
+    """
+    m = np.asarray(m, dtype=np.float64)
+    u, _, vt = np.linalg.svd(m)
+    rot = u @ vt
+    flipped = bool(np.linalg.det(rot) < 0)
+    if flipped:
+        rot = rot @ np.diag([-1.0, 1.0])
+    angle = float(np.degrees(np.arctan2(rot[0, 1], rot[0, 0])))
+    return {"rotation_deg": round((angle + 180.0) % 360.0 - 180.0, 3),
+            "scale": round(float(np.sqrt(abs(np.linalg.det(m)))), 5),
+            "flipped": flipped}
+
+
+def _fit(ref: Features, exh: Features, mirrored: bool) -> tuple[np.ndarray | None, int, np.ndarray]:
+    """Best map from exhibit to reference (3 x 3, full-resolution pixels), inlier count.
+
+    A similarity transform cannot mirror, so for the mirrored reading it is
+    fitted to the mirrored exhibit's coordinates and composed with the flip.
+    """
+    if len(ref.xy) < 3 or len(exh.xy) < 3:
+        return None, 0, np.zeros(0, bool)
+    pairs = match_descriptors(exh.descriptors, ref.descriptors, metric="hamming",
+                              cross_check=True, max_ratio=MAX_RATIO)
+    if len(pairs) < 3:
+        return None, 0, np.zeros(0, bool)
+    flip = np.eye(3)
+    if mirrored:
+        flip = np.array([[-1.0, 0.0, exh.shape[1] - 1.0], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]])
+    src = (exh.xy[pairs[:, 0]] @ flip[:2, :2].T) + flip[:2, 2]
+    dst = ref.xy[pairs[:, 1]]
+    threshold = RESIDUAL_PX / ref.scale
+
+    def plausible(model, *_):
+        return SCALE_RANGE[0] <= 1.0 / max(float(model.scale), 1e-12) <= SCALE_RANGE[1]
+
+    with warnings.catch_warnings():
+        # "Estimated model is not valid": no plausible model, the usual case for unrelated
+        # pictures, reported below as no match.
+        warnings.simplefilter("ignore", UserWarning)
+        model, inliers = ransac((src, dst), SimilarityTransform, min_samples=2,
+                                residual_threshold=threshold, max_trials=RANSAC_TRIALS,
+                                is_model_valid=plausible, stop_probability=0.9999,
+                                rng=RANSAC_SEED)
+    if model is None or inliers is None:
+        return None, 0, np.zeros(0, bool)
+    n = int(inliers.sum())
+    if n >= 3:  # final least-squares fit on the inliers only
+        refit = SimilarityTransform.from_estimate(src[inliers], dst[inliers])
+        if refit and plausible(refit):
+            model = refit
+    residual = np.sqrt(np.mean(np.sum((model(src[inliers]) - dst[inliers]) ** 2, axis=1)))
+    return np.asarray(model.params, dtype=np.float64) @ flip, n, np.array([residual])
+
+
+def _footprint(mat: np.ndarray, src_shape: tuple[int, int], dst_shape: tuple[int, int],
+               dst_scale: float) -> np.ndarray:
+    """Mask, at ``dst``'s working size, of where a picture of ``src_shape`` lands under ``mat``."""
+    h = max(1, round(dst_shape[0] * dst_scale))
+    w = max(1, round(dst_shape[1] * dst_scale))
+    inv = np.linalg.inv(mat)
+    yy, xx = np.mgrid[0:h, 0:w].astype(np.float64)
+    pts = np.stack([xx.ravel() / dst_scale, yy.ravel() / dst_scale, np.ones(h * w)])
+    sx, sy, _ = inv @ pts
+    inside = (sx >= -0.5) & (sx <= src_shape[1] - 0.5) & (sy >= -0.5) & (sy <= src_shape[0] - 0.5)
+    return inside.reshape(h, w)
+
+
+def _similarity(ref: Features, exh: Features, mat: np.ndarray) -> tuple[float, np.ndarray]:
+    """SSIM [3]_ of the exhibit resampled onto the reference's working grid, on the shared area."""
+    h, w = ref.work.shape
+    # reference working (x, y) -> exhibit working (x, y)
+    to_full = np.diag([1 / ref.scale, 1 / ref.scale, 1.0])
+    to_exh = np.diag([exh.scale, exh.scale, 1.0])
+    m = to_exh @ np.linalg.inv(mat) @ to_full
+    swap = np.array([[0.0, 1.0, 0.0], [1.0, 0.0, 0.0], [0.0, 0.0, 1.0]])
+    mrc = swap @ m @ swap      # (row, col) form for ndimage
+    aligned = ndimage.affine_transform(exh.work, mrc[:2, :2], offset=mrc[:2, 2],
+                                       output_shape=(h, w), order=1, mode="constant", cval=0.0)
+    mask = ndimage.affine_transform(np.ones_like(exh.work), mrc[:2, :2], offset=mrc[:2, 2],
+                                    output_shape=(h, w), order=0, mode="constant", cval=0.0) > 0.5
+    inner = ndimage.binary_erosion(mask, iterations=EDGE)
+    if inner.sum() < 49 or min(h, w) < 7:
+        return float("nan"), inner
+    _, smap = structural_similarity(ref.work, aligned, data_range=1.0, full=True)
+    return float(smap[inner].mean()), inner
+
+
+def register(reference: Features, exhibit: Features, exhibit_mirrored: Features) -> dict:
+    """Register the exhibit to the reference by content; JSON-ready numbers.
+
+    Parameters
+    ----------
+    reference : Features
+        :func:`features` of the registered picture (the published marked
+        file or a reduced-resolution reference).
+    exhibit, exhibit_mirrored : Features
+        :func:`features` of the exhibit, plain and ``mirrored=True``.
+
+    Returns
+    -------
+    dict
+        ``inliers`` (the statistic), ``matched`` (whether a transform was
+        found at all), and where it was: ``geometry`` (reference-to-exhibit
+        ``rotation_deg``, ``scale``, ``flipped``, ``matrix``),
+        ``residual_px`` (RMS distance of the inliers under the transform, in
+        reference pixels), ``work_area_fraction`` (share of the registered
+        picture's area the exhibit shows), ``exhibit_area_fraction`` (share of
+        the exhibit's area that lies inside the registered picture) and
+        ``ssim`` (structural similarity over the shared area after alignment,
+        at working resolution).
+
+    Notes
+    -----
+    The map found is exhibit -> reference; the geometry reported is its
+    inverse, reference -> exhibit, the direction the mark's examination
+    reports, so the two can be compared directly.
+    """
+    best = None
+    for feats, how in ((exhibit, "as is"), (exhibit_mirrored, "mirrored")):
+        mat, n, res = _fit(reference, feats, how == "mirrored")
+        if mat is not None and (best is None or n > best[1]):
+            best = (mat, n, res, how)
+    out: dict = {"method": "ORB keypoints, RANSAC similarity", "work_side_px": WORK_SIDE,
+                 "residual_limit_px": RESIDUAL_PX, "ransac_seed": RANSAC_SEED,
+                 "reference_keypoints": len(reference.xy),
+                 "exhibit_keypoints": len(exhibit.xy)}
+    if best is None:
+        out.update(matched=False, inliers=0)
+        return out
+    mat, n, res, how = best
+    lin = np.linalg.inv(mat)[:2, :2]          # reference -> exhibit
+    geom = describe_linear(lin)
+    geom["matrix"] = [[round(float(v), 6) for v in row] for row in lin]
+    geom["translation_px"] = [round(float(v), 2) for v in np.linalg.inv(mat)[:2, 2]]
+    work_mask = _footprint(mat, exhibit.shape, reference.shape, reference.scale)
+    exh_mask = _footprint(np.linalg.inv(mat), reference.shape, exhibit.shape, exhibit.scale)
+    ssim, _ = _similarity(reference, exhibit, mat)
+    out.update(matched=True, inliers=n, reading=how, geometry=geom,
+               residual_px=round(float(res[0]) / 1.0, 3),
+               work_area_fraction=round(float(work_mask.mean()), 4),
+               exhibit_area_fraction=round(float(exh_mask.mean()), 4),
+               ssim=None if not np.isfinite(ssim) else round(ssim, 4))
+    return out

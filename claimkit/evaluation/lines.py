@@ -1,0 +1,67 @@
+"""Both lines for one exhibit: the content line, its consistency with the mark, the opinion.
+
+Pure: pictures come in as luma arrays and records as dicts, so the case
+examination, ``examine --json`` and ``verify`` (which re-runs it) share one
+computation.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from claimkit.content.assess import agreement, content_line
+from claimkit.evaluation import opinion
+
+__all__ = ["weigh"]
+
+
+def weigh(exhibit_luma: np.ndarray, *, label: str, mark: dict, threshold: float,
+          work_id: str | None, work_record: dict | None, owner: str | None,
+          reference_luma: np.ndarray | None = None, reference: str = "registered marked file",
+          reference_scale: float = 1.0, robustness: dict | None = None) -> dict:
+    """``content``, ``content_mismatch`` and ``evaluation`` for one exhibit.
+
+    Parameters
+    ----------
+    exhibit_luma : ndarray
+        The whole exhibit's luma.
+    label : str
+        The exhibit's name in the propositions ("Exhibit 1", a file name).
+    mark : dict
+        The examination's report (``detected``, ``registered``, ``geometry``).
+    threshold : float
+        The examination's false-alarm threshold.
+    work_id, work_record : str, dict or None
+        The work the exhibit is compared with (named by the mark's payload,
+        else matched by fingerprint) and its signed record (for the fingerprint).
+    owner : str or None
+        The owner's name, for the propositions.
+    reference_luma : ndarray, optional
+        The registered picture (the published marked file or a reduced
+        reference); without it the record's fingerprint is used.
+    reference : str
+        What ``reference_luma`` is.
+    reference_scale : float
+        Reference pixels per registered-picture pixel (below 1 for a reduced reference).
+    robustness : dict, optional
+        The case's robustness battery of the registered file.
+    """
+    if work_id is None:
+        content = {"basis": "none", "limited_to_fingerprint": False, "corresponds": None,
+                   "statistic": None, "registration": None, "null": None, "log10_lr": 0.0,
+                   "reason": "no registered work is named by a mark or matched by fingerprint"}
+    else:
+        content = content_line(exhibit_luma, reference_luma=reference_luma, reference=reference,
+                               reference_scale=reference_scale,
+                               work_fingerprint=(work_record or {}).get("fingerprint"))
+    detected = bool(mark.get("detected"))
+    content["agreement_with_mark"] = agreement(content, mark.get("geometry") if detected else None)
+    mismatch = bool(detected and content.get("corresponds") is False)
+    evaluation = opinion.evaluate(exhibit=label, work_id=work_id, owner=owner, detected=detected,
+                                  threshold=threshold, content=content,
+                                  agreement=content["agreement_with_mark"], robustness=robustness)
+    evaluation["finding"] = opinion.finding_words(
+        detected=detected, work_id=mark.get("work_id") if detected else None,
+        content_mismatch=mismatch, limited=bool(content.get("limited_to_fingerprint")),
+        inconclusive=content.get("basis") not in (None, "none") and content.get("corresponds") is None)
+    return {"content": content, "content_mismatch": mismatch, "evaluation": evaluation}

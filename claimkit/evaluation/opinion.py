@@ -1,0 +1,162 @@
+"""The evaluative opinion for one exhibit: propositions, a likelihood ratio per line, the words.
+
+Two lines of evidence are weighed apart and then, where that is sound, together:
+
+* the **mark line**: the event "the owner's mark naming work W was found"
+  (or not). Under Hp its probability is the rate at which marked copies in
+  the robustness battery were found (the case's own battery of the registered
+  file where it was run, else the project's measured battery); under Hd it is
+  at most the detection threshold, the false-alarm bound's level, which holds
+  over the choice of key for any picture that never carried the mark. That
+  denominator assumes nobody *transplanted* the mark into another picture:
+  the mark can be estimated from published copies and added to any picture,
+  so on its own the mark line cannot tell derivation from a transplant.
+* the **content line** (:mod:`claimkit.content`): whether the picture itself
+  corresponds to the registered work, with its own measured null.
+
+They are combined (the product of the ratios) only where they are
+independent and consistent: the content line never reads the mark, their
+randomness differs (keys against pictures), and their geometries agree. A mark
+found in a picture that does not correspond to the work is a content mismatch:
+no derivation is claimed and the reported value is the content line's.
+"""
+
+from __future__ import annotations
+
+from claimkit.evaluation import lr
+
+__all__ = ["MARK_BATTERY_MEASURED", "SCALE_NAME", "evaluate", "finding_words"]
+
+SCALE_NAME = ("ENFSI Guideline for Evaluative Reporting in Forensic Science (2015), "
+              "table of verbal equivalents")
+
+#: The project's own measurement of the mark line under Hp, used where no battery was run
+#: on the registered file: copies found with the right work at P_fa <= 1e-9 in
+#: benchmarks/bench_robustness.py (mark format 2, eight pictures, the full battery).
+MARK_BATTERY_MEASURED = {"detected": 198, "trials": 200,
+                         "source": "benchmarks/bench_robustness.py (mark format 2, eight pictures)"}
+
+
+def _battery(robustness: dict | None) -> dict:
+    rows = [r for r in ((robustness or {}).get("rows") or []) if r.get("attack") != "none"]
+    if rows:
+        k = sum(1 for r in rows if r.get("detected") and r.get("same_payload") is not False)
+        return {"detected": k, "trials": len(rows),
+                "source": "robustness battery of the registered marked file in this case"}
+    return dict(MARK_BATTERY_MEASURED)
+
+
+def finding_words(*, detected: bool, work_id: str | None, content_mismatch: bool,
+                  limited: bool, inconclusive: bool = False) -> str:
+    """The investigative finding, in words (what was observed, not what it means)."""
+    if not detected:
+        return "No mark of this owner was found."
+    named = f" naming work {work_id}" if work_id else ""
+    if inconclusive:
+        return (f"The owner's mark{named} was found. The picture content could not be compared "
+                "with the registered work, which has too little structure for it, so a "
+                "transplanted mark cannot be excluded; no derivation from the work is claimed.")
+    if content_mismatch:
+        return (f"The owner's mark{named} was found, but the picture does not correspond to the "
+                "registered work, consistent with a transplanted mark"
+                + (" (the comparison was limited to the work record's perceptual fingerprint)"
+                   if limited else "") + ". No derivation from the work is claimed.")
+    return f"The owner's mark{named} was found."
+
+
+def evaluate(*, exhibit: str, work_id: str | None, owner: str | None, detected: bool,
+             threshold: float, content: dict | None, agreement: dict | None,
+             robustness: dict | None = None) -> dict:
+    """The evaluation block of a finding (JSON-ready).
+
+    Parameters
+    ----------
+    exhibit : str
+        How the exhibit is named in the propositions ("Exhibit 1", a file name).
+    work_id, owner : str or None
+        The work the mark or the fingerprint points to, and its owner.
+    detected, threshold : bool, float
+        The mark examination's outcome and its false-alarm threshold.
+    content : dict or None
+        :func:`claimkit.content.assess.content_line`'s result.
+    agreement : dict or None
+        :func:`claimkit.content.assess.agreement`'s result.
+    robustness : dict or None
+        The case's robustness battery of the registered file, if run.
+    """
+    if work_id is None:
+        # No work named by a mark or matched by appearance: nothing to state propositions about.
+        return {"propositions": None,
+                "log10_lr": {"mark": None, "content": None, "combined": None},
+                "lines": {}, "combination": "not evaluated: no registered work is named by a "
+                "mark or matched by appearance", "reported_log10_lr": None,
+                "cap_log10": lr.CAP_LOG10,
+                "verbal": "Not evaluated: no registered work is named by a mark or matched by "
+                          "appearance, so there are no source-level propositions to weigh.",
+                "scale": SCALE_NAME, "derivation_claimed": False}
+    w = work_id
+    who = owner or "the owner"
+    hp = f"{exhibit} derives from work {w} of {who}"
+    hd = f"{exhibit} derives from a picture that is not work {w}"
+    bat = _battery(robustness)
+    mark_lr = lr.log10_lr_detection(detected, bat["detected"], bat["trials"], threshold)
+    lines = {"mark": {
+        "event": "mark found" if detected else "mark not found",
+        "log10_lr": round(mark_lr, 3),
+        "under_hp": bat,
+        "under_hd": f"at most the threshold {threshold:g} (false-alarm bound, over the choice of key)",
+        "assumes": "no mark was transplanted from a published copy into another picture",
+    }}
+    has_content = bool(content) and content.get("corresponds") is not None
+    inconclusive = bool(content) and content.get("basis") not in (None, "none") \
+        and content.get("corresponds") is None
+    mismatch = bool(detected and has_content and content["corresponds"] is False)
+    if has_content:
+        lines["content"] = {
+            "event": ("picture corresponds to the work" if content["corresponds"]
+                      else "picture does not correspond to the work"),
+            "basis": content["basis"], "limited_to_fingerprint": content["limited_to_fingerprint"],
+            "log10_lr": content["log10_lr"],
+        }
+    agree = (agreement or {}).get("agree")
+    combined = None
+    if mismatch:
+        why = ("not combined: the mark was found in a picture that does not correspond to the "
+               "work, which a transplanted mark explains; the content line is reported")
+        reported = content["log10_lr"]
+    elif inconclusive:
+        why = ("not combined: the content line was inconclusive (the registered picture has too "
+               "little structure to register); the mark line alone is reported, with its "
+               "assumption, and a transplanted mark cannot be excluded")
+        reported = mark_lr
+    elif not has_content:
+        why = ("not combined: no content line (neither the registered picture nor its "
+               "fingerprint was at hand); the mark line alone is reported, with its assumption")
+        reported = mark_lr
+    elif detected and agree is False:
+        why = ("not combined: the two lines read different geometries; the weaker line is "
+               "reported and the disagreement is shown")
+        reported = min(mark_lr, content["log10_lr"])
+    else:
+        combined = lr.combine([mark_lr, content["log10_lr"]])
+        why = ("combined: the content line does not use the mark's key, payload or geometry, "
+               "the mark's chance is over keys and the content's over pictures"
+               + (", and the two geometries agree" if agree else ""))
+        reported = combined
+    reported = lr.cap(reported)
+    return {
+        "propositions": {"Hp": hp, "Hd": hd, "level": "source"},
+        "log10_lr": {"mark": lines["mark"]["log10_lr"],
+                     "content": lines.get("content", {}).get("log10_lr"),
+                     "combined": None if combined is None else round(combined, 3)},
+        "lines": lines,
+        "combination": why,
+        "reported_log10_lr": round(reported, 3),
+        "cap_log10": lr.CAP_LOG10,
+        "verbal": lr.verbal(reported, "the proposition that " + hp, "the proposition that " + hd),
+        "scale": SCALE_NAME,
+        # Derivation is claimed only where the picture itself was found to correspond (or no
+        # picture could be compared at all); an inconclusive content line claims nothing.
+        "derivation_claimed": bool(detected and not mismatch and reported > 0 and not inconclusive
+                                   and (not has_content or content["corresponds"])),
+    }

@@ -1,0 +1,144 @@
+"""The content line: transplanted marks are caught, genuine copies agree with the mark.
+
+Held out from the calibration (benchmarks/bench_content.py): the pictures used
+here (coffee, chelsea and the tests' sky are not in the calibration set).
+"""
+# ruff: noqa: F811 - the shared fixture is imported, then requested by name
+
+from __future__ import annotations
+
+import json
+import shutil
+import subprocess
+
+import numpy as np
+import pytest
+from engine_helpers import mark, transplant_mark
+from PIL import Image
+from skimage import data
+from test_case_fixtures import built_case  # noqa: F401 - the shared fixture
+
+from claimkit import stress
+from claimkit.case.store import open_case
+from claimkit.cli import main
+from claimkit.content.assess import (
+    ROTATION_TOLERANCE_DEG,
+    SCALE_TOLERANCE,
+    calibration,
+    content_line,
+)
+from claimkit.imageio import to_luma
+from claimkit.mark import detect
+from claimkit.mark.fingerprint import perceptual_fingerprint
+
+pytestmark = pytest.mark.slow
+
+
+@pytest.fixture(scope="module")
+def published():
+    coffee = data.coffee()
+    big = np.asarray(Image.fromarray(coffee).resize((1200, 800), Image.Resampling.BICUBIC))
+    return mark(big)
+
+
+def test_calibration_is_measured_and_separates():
+    cal = calibration()
+    assert cal["measured"]["by"].startswith("benchmarks/bench_content.py")
+    assert cal["null"]["count"] == len(cal["null"]["samples"]) >= 100
+    assert max(cal["null"]["samples"]) < cal["threshold"]
+    assert "coffee" not in cal["pictures"] and "chelsea" not in cal["pictures"]
+
+
+@pytest.mark.parametrize("host", ["chelsea", "rocket"])
+def test_transplanted_mark_is_detected_but_the_picture_does_not_correspond(published, host):
+    # The attacker's forgery (numpy only): the detector does find the owner's mark ...
+    forged = transplant_mark(published, getattr(data, host)())
+    found = detect.examine_luma(to_luma(forged), bytes(range(32)))
+    assert found.detected
+    # ... and the content line, which never reads the mark, says it is another picture.
+    c = content_line(to_luma(forged), reference_luma=to_luma(published))
+    assert c["corresponds"] is False and c["log10_lr"] < 0
+    assert c["statistic"]["value"] <= max(calibration()["null"]["samples"])
+    # Limited to the fingerprint (no reference picture), the same verdict, said to be limited.
+    f = content_line(to_luma(forged), work_fingerprint=perceptual_fingerprint(to_luma(published)))
+    assert f["limited_to_fingerprint"] and f["corresponds"] is False
+
+
+@pytest.mark.parametrize("name", ["jpeg 30", "rotate 17", "mirror", "crop 25 %", "resize 0.5"])
+def test_genuine_copy_corresponds_and_reads_the_true_geometry(published, name):
+    attack = next(a for a in stress.battery() if a.name == name)
+    copy = attack.apply(published)
+    c = content_line(to_luma(copy), reference_luma=to_luma(published))
+    assert c["corresponds"] and c["log10_lr"] > 1
+    g = c["registration"]["geometry"]
+    truth = attack.truth(published.shape[:2], copy.shape[:2])
+    assert abs((g["rotation_deg"] - truth["rotation_deg"] + 180) % 360 - 180) <= ROTATION_TOLERANCE_DEG
+    assert abs(g["scale"] / truth["scale"] - 1) <= SCALE_TOLERANCE
+    assert g["flipped"] == truth["flipped"]
+
+
+def test_case_findings_carry_both_lines(built_case):
+    case = open_case(built_case.case)
+    for e in ("exhibit-1", "exhibit-2"):
+        f = case.finding(e)
+        assert f["content_mismatch"] is False and f["content"]["corresponds"]
+        assert f["content"]["agreement_with_mark"]["agree"]
+        ev = f["evaluation"]
+        assert ev["derivation_claimed"] and ev["log10_lr"]["combined"] is not None
+        assert ev["propositions"]["Hp"].startswith(f"Exhibit {e.split('-')[1]} derives from work")
+        assert f["alignment"]["how"] == "content line"
+    forged = case.finding("exhibit-4")
+    assert forged["result"]["detected"] and forged["result"]["work_id"] == built_case.work_id
+    assert forged["content_mismatch"] is True
+    ev = forged["evaluation"]
+    assert not ev["derivation_claimed"] and ev["log10_lr"]["combined"] is None
+    assert ev["reported_log10_lr"] < 0 and "transplanted" in ev["finding"]
+    assert forged["alignment"]["aligned"] is False
+
+
+def test_report_json_warnings_and_dossier_text(built_case, tmp_path, monkeypatch, capsys):
+    if shutil.which("pdftotext") is None or shutil.which("pdfimages") is None:
+        pytest.skip("poppler-utils not installed")
+    work = tmp_path / "case"
+    shutil.copytree(built_case.case, work)
+    monkeypatch.setenv("CLAIMKIT_PASSPHRASE", "harwick-bay-casework-tests")
+    assert main(["--home", str(built_case.home), "report", str(work), "--json"]) == 0
+    rep = json.loads(capsys.readouterr().out.strip().splitlines()[-1])
+    codes = {(w["code"], w["exhibit"]) for w in rep["warnings"]}
+    assert codes == {("content-mismatch", "exhibit-4"), ("registered-after-found", "exhibit-4")}
+    assert all(set(w) == {"code", "exhibit", "text"} for w in rep["warnings"])
+    assert rep["summary"]["derived"] == ["exhibit-1", "exhibit-2"]
+    pdf = work / "report" / "dossier.pdf"
+    # poppler's pdftotext reads the words as a reader's copy would.
+    text = subprocess.run(["pdftotext", str(pdf), "-"], capture_output=True, text=True,
+                          check=True).stdout
+    flat = " ".join(text.split())
+    assert "Hp, Exhibit 1 derives from work" in flat and "Hd, Exhibit 1 derives from a picture" in flat
+    assert "provide extremely strong support for the proposition that Exhibit 1 derives" in flat
+    assert "consistent with a transplanted mark" in flat and "registered-after-found" in flat
+    assert "ENFSI Guideline for Evaluative Reporting in Forensic Science (2015)" in flat
+    assert "10^-12" in flat and "1e-12" not in flat and "(10^12)" not in flat
+    assert "Figure 1." in flat and "Exhibit 4 as found" in flat
+    page1 = subprocess.run(["pdftotext", "-f", "1", "-l", "1", str(pdf), "-"],
+                           capture_output=True, text=True, check=True).stdout
+    assert "Registered work" in page1 and "Exhibit 1 as found" in page1
+    # poppler's pdfimages: page 1 holds the registered work and the first exhibit, in colour.
+    rows = subprocess.run(["pdfimages", "-list", str(pdf)], capture_output=True, text=True,
+                          check=True).stdout.splitlines()[2:]
+    first = [r.split() for r in rows if r.split()[0] == "1"]
+    assert len(first) >= 2 and all(r[5] == "rgb" for r in first)
+
+
+def test_featureless_work_is_inconclusive_never_a_mismatch():
+    # A clear sky gives no keypoints that repeat: a failure to register its copy says nothing,
+    # so the genuine copy is not flagged, and no derivation is claimed either.
+    from engine_helpers import sky
+
+    from claimkit.evaluation.opinion import evaluate
+
+    published = mark(sky())
+    c = content_line(to_luma(stress.jpeg(published, 50)), reference_luma=to_luma(published))
+    assert c["corresponds"] is None and c["log10_lr"] == 0.0 and "inconclusive" in c["reason"]
+    ev = evaluate(exhibit="Exhibit 1", work_id="W-1", owner=None, detected=True, threshold=1e-9,
+                  content=c, agreement=None)
+    assert not ev["derivation_claimed"] and "cannot be excluded" in ev["combination"]

@@ -1,0 +1,133 @@
+"""Likelihood-ratio arithmetic against scipy.stats, the ENFSI verbal scale, the timeline."""
+
+from __future__ import annotations
+
+import math
+
+import pytest
+from scipy import stats
+
+from claimkit.evaluation import lr, opinion, timeline
+
+
+@pytest.mark.parametrize(("k", "n"), [(0, 1), (0, 30), (3, 20), (17, 20), (198, 200), (0, 1326)])
+def test_clopper_pearson_bounds_match_scipy_beta_quantiles(k, n):
+    # Clopper & Pearson (1934): the one-sided bounds are Beta quantiles,
+    # upper = Beta(0.95; k+1, n-k), lower = Beta(0.05; k, n-k+1) (scipy.stats.beta.ppf).
+    up = 1.0 if k == n else stats.beta.ppf(0.95, k + 1, n - k)
+    lo = 0.0 if k == 0 else stats.beta.ppf(0.05, k, n - k + 1)
+    assert lr.binomial_upper(k, n) == pytest.approx(up, rel=1e-9, abs=1e-12)
+    assert lr.binomial_lower(k, n) == pytest.approx(lo, rel=1e-9, abs=1e-12)
+    # and the upper bound is the p at which seeing k or fewer has probability 5 % (scipy.stats.binom)
+    if k < n:
+        assert stats.binom.cdf(k, n, up) == pytest.approx(0.05, rel=1e-6)
+
+
+def test_tail_ratio_against_scipy():
+    hp = [5, 9, 12, 30, 40, 55, 80, 120, 300, 1000]
+    hd = [0, 1, 1, 2, 2, 3, 3, 4, 5, 6] * 10
+    # observed 40 >= threshold 10: P(S >= 10 | Hp) = 8/10, lower-bounded; P(S >= 10 | Hd) = 0/100,
+    # upper-bounded (scipy.stats.beta.ppf gives both Clopper-Pearson limits).
+    want = math.log10(stats.beta.ppf(0.05, 8, 3)) - math.log10(stats.beta.ppf(0.95, 1, 100))
+    assert lr.log10_lr_decision(40, hp, hd, threshold=10) == pytest.approx(want, rel=1e-9)
+    assert lr.log10_lr_decision(1000, hp, hd, threshold=10) == pytest.approx(want, rel=1e-9)
+    # below the threshold: the event "S < 10": Hp 2/10 (upper bound), Hd 100/100 (lower bound)
+    want = math.log10(stats.beta.ppf(0.95, 3, 8)) - math.log10(stats.beta.ppf(0.05, 100, 1))
+    assert lr.log10_lr_decision(3, hp, hd, threshold=10) == pytest.approx(want, rel=1e-9)
+    assert want < 0
+
+
+def test_detection_ratio_and_cap():
+    # 198 of 200 battery copies found, threshold 1e-9: lower bound / 1e-9, capped at 10^6.
+    raw = math.log10(stats.beta.ppf(0.05, 198, 3)) + 9
+    assert raw > lr.CAP_LOG10
+    assert lr.log10_lr_detection(True, 198, 200, 1e-9) == lr.CAP_LOG10
+    # threshold 0.01: below the cap
+    want = math.log10(stats.beta.ppf(0.05, 198, 3)) + 2
+    assert lr.log10_lr_detection(True, 198, 200, 0.01) == pytest.approx(want, rel=1e-9)
+    # not found: at most 1
+    miss = stats.beta.ppf(0.95, 3, 198)
+    assert lr.log10_lr_detection(False, 198, 200, 1e-9) == pytest.approx(math.log10(miss), rel=1e-6)
+    assert lr.combine([5.0, 2.6]) == lr.CAP_LOG10
+    assert lr.combine([-5.0, -2.6]) == -lr.CAP_LOG10
+    assert lr.combine([1.0, -0.5]) == pytest.approx(0.5)
+
+
+# ENFSI Guideline for Evaluative Reporting in Forensic Science (2015), table of verbal
+# equivalents: 1 "do not support one proposition over the other"; 2-10 weak; 10-100 moderate;
+# 100-1000 moderately strong; 1000-10,000 strong; 10,000-1,000,000 very strong;
+# 1,000,000 and above extremely strong.
+@pytest.mark.parametrize(("value", "words"), [
+    (1, "do not support one proposition over the other"), (1.5, "do not support"),
+    (2, "weak support"), (9.9, "weak support"), (10, "moderate support"),
+    (99, "moderate support"), (100, "moderately strong support"), (999, "moderately strong"),
+    (1000, "provide strong support"), (9999, "provide strong support"),
+    (10000, "very strong support"), (999999, "very strong support"),
+    (1e6, "extremely strong support"), (1e9, "extremely strong support"),
+])
+def test_verbal_scale_is_the_enfsi_table(value, words):
+    text = lr.verbal(math.log10(value), "Hp", "Hd")
+    assert words in text
+    if value >= 2:
+        assert text.endswith("for Hp rather than Hd.")
+    # below 1 the same band, for the alternative
+    if value >= 2:
+        assert lr.verbal(-math.log10(value), "Hp", "Hd").endswith("for Hd rather than Hp.")
+        assert words in lr.verbal(-math.log10(value), "Hp", "Hd")
+
+
+def _content(corresponds, log10_lr, limited=False):
+    return {"corresponds": corresponds, "log10_lr": log10_lr, "basis": "registered marked file",
+            "limited_to_fingerprint": limited}
+
+
+def test_opinion_combines_only_consistent_lines():
+    ok = opinion.evaluate(exhibit="Exhibit 1", work_id="W-1", owner="Ilse Marrow", detected=True,
+                          threshold=1e-9, content=_content(True, 2.6), agreement={"agree": True})
+    assert ok["log10_lr"]["combined"] == lr.CAP_LOG10 and ok["derivation_claimed"]
+    assert "extremely strong support for the proposition that Exhibit 1 derives" in ok["verbal"]
+    bad = opinion.evaluate(exhibit="Exhibit 2", work_id="W-1", owner="Ilse Marrow", detected=True,
+                           threshold=1e-9, content=_content(False, -1.2), agreement=None)
+    assert bad["log10_lr"]["combined"] is None and not bad["derivation_claimed"]
+    assert bad["reported_log10_lr"] == -1.2 and "rather than the proposition that Exhibit 2 derives" \
+        in bad["verbal"]
+    assert "transplanted" in bad["combination"]
+    assert "transplanted" in opinion.finding_words(detected=True, work_id="W-1",
+                                                   content_mismatch=True, limited=False)
+    odd = opinion.evaluate(exhibit="Exhibit 3", work_id="W-1", owner=None, detected=True,
+                           threshold=1e-9, content=_content(True, 2.6), agreement={"agree": False})
+    assert odd["log10_lr"]["combined"] is None and odd["reported_log10_lr"] == 2.6
+
+
+def _works(stamped=True, day="2026-11-20"):
+    return [{"work_id": "W-1", "registered": {"time": f"{day}T09:00:00Z", "time_source": "system clock"},
+             "timestamps": [{"gen_time": f"{day}T09:01:00Z", "tsa": "Test TSA", "token_id": "T-1"}]
+             if stamped else [], "capture": {"DateTimeOriginal": "2026:10:02 08:15:00"}}]
+
+
+def _exhibit(found):
+    return [{"exhibit_id": "E01", "label": "Exhibit 1",
+             "found": {"when": f"{found}, shop page", "time_source": "stated by Ilse Marrow"},
+             "taken_in": {"time": "2026-12-01T10:00:00Z", "time_source": "system clock"}}]
+
+
+def test_timeline_in_order_has_no_warning():
+    t = timeline.build_timeline(_works(), _exhibit("2026-11-28"), {"E01": "W-1"})
+    assert t["warnings"] == []
+    days = [e["day"] for e in t["events"]]
+    assert days == sorted(days)
+    assert [e["source"] for e in t["events"]][:3] == ["file metadata", "system clock",
+                                                       "timestamp authority (Test TSA)"]
+
+
+def test_timeline_found_before_registration_warns():
+    t = timeline.build_timeline(_works(day="2026-12-01"), _exhibit("2026-11-28"), {"E01": "W-1"})
+    assert [w["code"] for w in t["warnings"]] == ["registered-after-found"]
+    assert t["warnings"][0]["exhibit"] == "E01" and "2026-11-28" in t["warnings"][0]["text"]
+
+
+def test_timeline_not_timestamped_and_mismatch():
+    t = timeline.build_timeline(_works(stamped=False), _exhibit("2026-11-28"), {"E01": "W-1"},
+                                {"E01": True})
+    assert sorted(w["code"] for w in t["warnings"]) == ["content-mismatch", "not-timestamped"]
+    assert "priority" in t["priority"]
