@@ -67,7 +67,10 @@ def test_luma_plane_keeps_the_exif_orientation_and_the_window(tmp_path, orientat
     rgb = read_picture(f)
     assert y.pixels.shape == rgb.pixels.shape[:2]          # turned like the RGB reading
     assert np.sqrt(np.mean((y.pixels - to_luma(rgb.pixels)) ** 2)) < RMS_BOUND
-    win = lambda hw: (hw[0] // 4, hw[1] // 3, hw[0] // 2, hw[1] // 2)
+
+    def win(hw):
+        return (hw[0] // 4, hw[1] // 3, hw[0] // 2, hw[1] // 2)
+
     part = read_picture(f, method=LUMA_FROM_JPEG_Y, region=win)
     r0, c0, h, w = win(y.pixels.shape)
     np.testing.assert_array_equal(part.pixels, y.pixels[r0:r0 + h, c0:c0 + w])
