@@ -118,6 +118,10 @@ def test_every_command_speaks_the_vocabulary(tmp_path, monkeypatch, capsys, loca
     run("verify", ["verify", str(tmp_path / "b.zip"), "--json"])
     run("scan", ["scan", str(tmp_path / "found"), "--json", "--workers", "1"], code=1)
     run("case withdraw", ["case", "withdraw", str(case), "1", "--reason", "licensed", "--json"])
+    monkeypatch.setenv("XDG_RUNTIME_DIR", str(tmp_path))      # the session file's folder
+    session = run("unlock", ["unlock", "--for", "5m", "--json"])[0]
+    monkeypatch.setenv(session["variable"], session["session"])
+    run("lock", ["lock", "--json"])
     # Every field of the vocabulary but those of commands not run here is in use.
     unused = set(VOCAB["fields"]) - seen - set(VOCAB.get("not_run_here", []))
     assert not unused, f"listed but never printed: {sorted(unused)}"
