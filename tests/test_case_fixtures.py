@@ -90,7 +90,8 @@ def _build(tmp_path_factory) -> BuiltCase:
         from claimkit.workflow import mark_file
 
         with Profile.open(home, PASS.encode()) as p:
-            rep = mark_file(p, original, published)
+            # Format 3 (written on request): the case exercises its disclosure and re-run.
+            rep = mark_file(p, original, published, mark_format=3)
             reply = make_test_tsa(root / "tsa", "Casework Test TSA")
             req = p.stamp_request([rep["work_id"]])
             p.stamp_attach(reply(req.tsq), (root / "tsa" / "ca.pem").read_bytes())

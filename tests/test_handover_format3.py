@@ -26,7 +26,7 @@ def _mark_until_two_families(profile, tmp_path) -> list[tuple]:
     for name in ("coffee", "chelsea", "rocket", "sky"):
         src = tmp_path / f"{name}.png"
         Image.fromarray(photos()[name]).save(src)
-        rep = workflow.mark_file(profile, src, tmp_path / f"{name}-marked.png")
+        rep = workflow.mark_file(profile, src, tmp_path / f"{name}-marked.png", mark_format=3)
         work = profile.work(rep["work_id"])
         assert work.record["mark_params"]["format"] == "claimkit-mark/3"
         by_family.setdefault(format3_family_of(secret, work.serial),
@@ -69,7 +69,7 @@ def test_second_owners_format3_disclosure_finds_nothing(profile, tmp_path):
     try:
         src = tmp_path / "second.png"
         Image.fromarray(photos()["chelsea"]).save(src)
-        rep = workflow.mark_file(second, src, tmp_path / "second-marked.png")
+        rep = workflow.mark_file(second, src, tmp_path / "second-marked.png", mark_format=3)
         out = tmp_path / "second-disclosure"
         second.disclose(rep["work_id"], out)
         chk = check_disclosure(out)

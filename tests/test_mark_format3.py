@@ -147,7 +147,7 @@ def test_disclosure_keys_hold_one_family_only():
 
 
 def test_format_records_state_what_an_expert_needs():
-    rec = formats.CURRENT.as_record()
+    rec = formats.WRITABLE[3].as_record()
     assert rec["format"] == format3.NAME == formats.READABLE[0].name
     assert rec["families"] == format3.FAMILIES and rec["macro_cell_tiles"] == format3.MACRO
     assert {f.name for f in formats.READABLE} == {"claimkit-mark/1", "claimkit-mark/2", "claimkit-mark/3"}
@@ -301,7 +301,7 @@ def test_a_format3_disclosure_holds_one_family_committed_to_and_reads_its_work(p
 
     src = tmp_path / "cup.png"
     Image.fromarray(photos()["coffee"]).save(src)
-    rep = workflow.mark_file(profile, src, tmp_path / "cup-m.png")
+    rep = workflow.mark_file(profile, src, tmp_path / "cup-m.png", mark_format=3)
     work = profile.work(rep["work_id"])
     assert work.record["mark_params"]["format"] == format3.NAME
     assert work.record["mark_params"]["families"] == format3.FAMILIES
@@ -322,7 +322,8 @@ def test_a_format3_disclosure_holds_one_family_committed_to_and_reads_its_work(p
 
 
 def test_mark_format_2_on_request_is_recorded_and_read_as_format_2(profile, tmp_path):
-    """``mark --format 2`` writes the owner-level tiled pattern, records it, and the owner reads it."""
+    """``mark --format 2`` (the default) writes the owner-level tiled pattern, records it, and the
+    owner reads it."""
     from PIL import Image
 
     from claimkit import workflow

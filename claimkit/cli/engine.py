@@ -171,9 +171,9 @@ def register(sub, common) -> None:
     p.add_argument("--strength", type=float, default=1.0,
                    help="multiplier on the default strength (default 1.0)")
     p.add_argument("--format", dest="mark_format", type=int, choices=(2, 3), default=None,
-                   metavar="N", help="mark format written: 3 (keyed per tile and family; the "
-                                     "default) or 2 (one tiled pattern per owner); every format "
-                                     "is read")
+                   metavar="N", help="mark format written: 2 (one tiled pattern per owner; the "
+                                     "default) or 3 (keyed per tile and family, resists estimation "
+                                     "attacks, weaker on small turned copies); every format is read")
     p.add_argument("--max-pixels", type=int, default=None, metavar="N",
                    help="refuse images with more pixels (decompression-bomb guard)")
     p.add_argument("--workers", type=int, default=None, help="parallel workers for batches")
