@@ -201,7 +201,13 @@ def _spread_positions(rng: np.random.Generator, n: int, count: int) -> np.ndarra
     return np.asarray(out, dtype=np.int64)
 
 
-@lru_cache(maxsize=2 * FAMILIES + 2)
+# Every family of the fine and of the coarse component (mark.scales derives the coarse
+# seeds) stays expanded across examinations, with room for a second key set (a decoy or a
+# disclosure): a cache smaller than the families examined at once is re-filled every time.
+KEY_CACHE = 4 * FAMILIES + 4
+
+
+@lru_cache(maxsize=KEY_CACHE)
 def family_pattern(seed: bytes, tile: int = TILE) -> FamilyPattern:
     """Expand a 32-byte family seed (Philox streams, as :func:`claimkit.mark.pattern.key_pattern`)."""
     if len(seed) != 32:
@@ -299,7 +305,7 @@ OFFSETS = [(a, b) for a in range(MACRO) for b in range(MACRO)]
 _TABLES = np.stack([_class_table(o) for o in OFFSETS])      # (K^2 offsets, K^2 tiles)
 
 
-@lru_cache(maxsize=FAMILIES + 2)
+@lru_cache(maxsize=KEY_CACHE)
 def _pilot_kernels(seed: bytes, tile: int = TILE) -> tuple[np.ndarray, np.ndarray]:
     """The family's pilot kernels ``Q_c = C_c w P`` transformed over the class torus, and ``|w P|^2``.
 
@@ -402,8 +408,14 @@ def score_families_direct(spec: np.ndarray, families: Mapping[int, bytes]) -> di
 
 def decode_family(spec: np.ndarray, seed: bytes, offset: tuple[int, int], *,
                   payload_check: Callable[[np.ndarray], bool] | None,
-                  known_bits: np.ndarray | None) -> tuple[np.ndarray, bool, float | None, np.ndarray]:
-    """Recovered message of one family at one offset, decoded; full-template score if the payload checks."""
+                  known_bits: np.ndarray | None,
+                  decode: bool = True) -> tuple[np.ndarray | None, bool, float | None, np.ndarray]:
+    """Recovered message of one family at one offset, decoded; full-template score if the payload checks.
+
+    ``decode=False`` returns the recovered message only (bits None): the
+    examination skips the Viterbi decoder where the pilot score is too low
+    for any payload to reach the threshold (see ``detect.DECODE_MIN_Z3``).
+    """
     n = spec.shape[-1]
     fam = family_pattern(seed, n)
     idx, partner = claim_frequencies(n)
@@ -415,6 +427,8 @@ def decode_family(spec: np.ndarray, seed: bytes, offset: tuple[int, int], *,
     full[idx] = half
     full[partner] = np.conj(half)
     rec = np.real(np.fft.ifft2(full.reshape(n, n)))
+    if not decode:
+        return None, False, None, rec
     soft = rec[fam.code_pos[:, 0], fam.code_pos[:, 1]]
     bits = CODE.decode(soft, PAYLOAD_BITS, known=known_bits)
     if payload_check is None or not payload_check(bits):
@@ -427,11 +441,17 @@ def decode_family(spec: np.ndarray, seed: bytes, offset: tuple[int, int], *,
     return bits, True, z_full, rec
 
 
-def reference_message(seed: bytes, bits: np.ndarray,
+def reference_message(seed: bytes, bits: np.ndarray | None,
                       tile: int = TILE) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Spot positions, signs and the template (spots of peak 1) of a family's message for ``bits``."""
+    """Spot positions, signs and the template (spots of peak 1) of a family's message for ``bits``.
+
+    ``bits=None`` (nothing decoded): the pilots only, the code spots at zero.
+    """
     fam = family_pattern(seed, tile)
-    code = 2.0 * CODE.encode(np.asarray(bits, dtype=np.uint8)).astype(np.float64) - 1.0
+    if bits is None:
+        code = np.zeros(len(fam.code_pos))
+    else:
+        code = 2.0 * CODE.encode(np.asarray(bits, dtype=np.uint8)).astype(np.float64) - 1.0
     pos = np.concatenate([fam.pilot_pos, fam.code_pos])
     sign = np.concatenate([fam.pilot_sign.astype(np.float64), code])
     ref = np.real(np.fft.ifft2(np.fft.fft2(_spots(pos, sign, tile)) * spot_spectrum(tile, SPOT_SIGMA)))

@@ -75,6 +75,10 @@ def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
                         threshold=params["threshold"], decoys=params["decoys"])
     stored = finding["result"]
     got = {**f.to_json(), **finding_words(f)}
+    if not (isinstance(seed, MarkKeys) and seed.sync is not None):
+        # A disclosure of a format-1/2 work holds no format-3 sync seed, which the
+        # owner's examination also read: its score cannot be re-derived here.
+        got.pop("score_sync", None)
     diffs = []
     if _partial(seed) and not stored.get("detected") and not f.detected:
         # Nothing claimed, and the disclosure holds some of format 3's families only:
