@@ -61,7 +61,7 @@ def test_sound_bundle_with_pins_and_disclosure_passes_every_check(built_case, ca
     assert {"manifest signature", "file hashes", "custody log", "custody of exhibits",
             "signer key", "timestamp authority", f"disclosure {built_case.work_id}",
             "exhibit-1 re-run", "exhibit-2 re-run", "exhibit-3 re-run", "exhibit-4 re-run",
-            "dossier data", "figures",
+            "dossier data", "figures", f"reference {built_case.work_id}",
             "HTML dossier", "PDF signature", "PDF content",
             f"robustness {built_case.work_id}"} <= names
     work = [c for c in checks if c["check"] == f"work {built_case.work_id}"]

@@ -4,9 +4,11 @@ For each exhibit (after re-checking its SHA-256): the blind examination with
 the owner's key and a decoy-key control (the same search under
 :data:`DEFAULT_DECOYS` random keys, the null distribution the observed score
 is set against); the registered work it names (by the payload's work ID, or
-else by the perceptual fingerprint); where the registered file is at hand,
-the alignment of the copy to it (SSIM after alignment, crop box, difference
-map); and the robustness battery of the registered marked file, once per work.
+else by the perceptual fingerprint); where the registered file is at hand, a
+reduced-resolution reference of it (:mod:`claimkit.case.reference`), which the
+content line and the alignment of the copy (SSIM after alignment, crop box,
+difference map) use; and the robustness battery of the registered marked file,
+once per work.
 
 Numbers go to ``findings/EXX.json`` (canonical JSON) and arrays to
 ``findings/EXX.npz``; the dossier reads both and computes nothing of its own.
@@ -24,6 +26,7 @@ import numpy as np
 
 from claimkit import __version__, workflow
 from claimkit.case import layout
+from claimkit.case import reference as reduced_reference
 from claimkit.case.align import align
 from claimkit.case.documents import FindingDoc
 from claimkit.case.store import Case, Exhibit, checked_exhibit_path
@@ -92,15 +95,19 @@ def alignment_geometry(content: dict) -> dict | None:
 
 def weigh_lines(luma: np.ndarray, *, exhibit_id: str, rep: dict, threshold: float,
                 match: dict | None, work_record: dict | None, owner: str | None,
-                reference_luma: np.ndarray | None, reference_kind: str | None,
+                reference_luma: np.ndarray | None, reference: dict | None,
                 robustness: dict | None, label: str | None = None) -> dict:
-    """The content line and the evaluation of one exhibit (shared with ``verify``'s re-run)."""
-    what = {"marked": "registered marked file (as published)",
-            "original": "registered original file"}.get(reference_kind or "", "reference")
+    """The content line and the evaluation of one exhibit (shared with ``verify``'s re-run).
+
+    ``reference`` is the finding's description of ``reference_luma`` (its kind, and
+    for a reduced reference its scale to the registered picture).
+    """
     return jsonable(weigh(luma, label=label or layout.exhibit_label(exhibit_id), mark=rep,
                           threshold=threshold,
                           work_id=(match or {}).get("work_id"), work_record=work_record,
-                          owner=owner, reference_luma=reference_luma, reference=what,
+                          owner=owner, reference_luma=reference_luma,
+                          reference=reduced_reference.describe(reference),
+                          reference_scale=reduced_reference.scale_of(reference),
                           robustness=robustness))
 
 
@@ -219,9 +226,10 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
         found = find_reference(case, work.record, list(search or []))
         if found is not None:
             ref_path, kind = found
-            reference = {"file": ref_path.relative_to(case.root).as_posix(), "kind": kind,
-                         "sha256": sha256_file(ref_path)}
-            ref_luma = to_luma(read_picture(ref_path).pixels)
+            # Copies are compared with a reduced-resolution reference, never the master
+            # itself, so that the bundle can re-run the comparison without the master.
+            reference, ref_luma = reduced_reference.make_reduced(case.root, work.work_id,
+                                                                 ref_path, kind)
             if kind == "marked" and not robustness_wanted:
                 robustness = {"status": "not run", "reason": "skipped at the examiner's request"}
             elif kind == "marked":
@@ -235,14 +243,15 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
                          "reason": "the registered file was not at hand (give --originals)"}
     lines = weigh_lines(luma, exhibit_id=ex.exhibit_id, rep=rep, threshold=threshold, match=match,
                         work_record=None if work is None else work.record, owner=profile.owner,
-                        reference_luma=ref_luma, reference_kind=kind, robustness=robustness)
+                        reference_luma=ref_luma, reference=reference, robustness=robustness)
     if ref_luma is not None:
         geom = alignment_geometry(lines["content"])
         if geom is None:
             alignment = {"aligned": False, "reason": "the content line did not find the registered "
                          "picture in the copy, so there is nothing to lay over it"}
         else:
-            al = align(ref_luma, luma, geom)
+            al = align(ref_luma, luma, geom,
+                       reference_scale=reduced_reference.scale_of(reference))
             alignment = al.numbers
             arrays.update(aligned=al.aligned, difference=al.difference, mask=al.mask)
     npz = case.arrays_path(ex.exhibit_id)

@@ -9,7 +9,9 @@ serves the case (which writes exhibits, findings and references), the dossier
     case.json                     title, case ID, owner (canonical JSON)
     exhibits/E01-NAME.EXT         the disputed file, byte for byte, read-only
     exhibits/E01.json             its intake record
-    references/SHA256.EXT         the registered file a copy is aligned to (by hash)
+    references/SHA256.EXT         a registered file (marked or master) by its hash
+    references/reduced-SHA256.png its reduced-resolution reference, what copies are compared
+                                  with (the master goes into a bundle only on request)
     findings/E01.json, E01.npz    the examination: numbers, arrays
     captures/cap-*.warc.gz|json   web captures: the WARC, its record, snapshots, token
     captures/warc-*               a crawler's WARC file that exhibits were taken from
@@ -170,7 +172,12 @@ def inside(root: Path, rel: object, folder: str) -> str | None:
 
 
 def references_used(root: Path) -> dict[str, str]:
-    """Reference files the findings align to: relative path -> kind ("marked", "original")."""
+    """Reference files the findings use: relative path -> kind.
+
+    Kinds: "reduced" (the reduced-resolution reference copies are compared with),
+    "marked" (the registered marked file) and "original" (the unmarked master),
+    the last two also when a reduced reference was made from them.
+    """
     import json
 
     out = {}
@@ -179,17 +186,23 @@ def references_used(root: Path) -> dict[str, str]:
             ref = json.loads(p.read_bytes()).get("reference") or {}
         except (OSError, ValueError, AttributeError):
             continue
+        if not isinstance(ref, dict):
+            continue
         if isinstance(ref.get("file"), str):
             out[ref["file"]] = ref.get("kind", "original")
+        src = ref.get("made_from")
+        if isinstance(src, dict) and isinstance(src.get("file"), str):
+            out[src["file"]] = src.get("kind", "original")
     return out
 
 
 def bundle_files(root: Path, *, include_original: bool = False) -> list[str]:
     """Relative paths of every file that goes into the bundle (sorted; no links, no hidden).
 
-    Of ``references/`` only the files a finding aligns to go in, and an unmarked
-    master only with ``include_original``: the published marked file is what the
-    other side may see; the master is the owner's to give or keep.
+    Of ``references/`` only the files a finding uses go in (the reduced
+    reference and the registered marked file), and an unmarked master only
+    with ``include_original``: the published marked file is what the other
+    side may see; the master is the owner's to give or keep.
 
     Raises
     ------
@@ -212,7 +225,8 @@ def bundle_files(root: Path, *, include_original: bool = False) -> list[str]:
                 if not q.is_file():
                     continue
                 if part == REFERENCES and (rel.as_posix() not in used or (
-                        used[rel.as_posix()] != "marked" and not include_original)):
+                        used[rel.as_posix()] not in ("marked", "reduced")
+                        and not include_original)):
                     continue
                 out.append(rel.as_posix())
     return sorted(out)

@@ -102,6 +102,7 @@ def cmd_case_withdraw(args) -> int:
 def cmd_case_examine(args) -> int:
     from claimkit.case.examine import DEFAULT_DECOYS, examine_case
     from claimkit.case.store import open_case
+    from claimkit.words import verdict
 
     case = open_case(args.dir)
     search = [Path(p) for p in (args.originals or [])]
@@ -121,10 +122,10 @@ def cmd_case_examine(args) -> int:
         if r["detected"] and doc["content_mismatch"]:
             line = f"{ex.exhibit_id}: {doc['evaluation']['finding']}"
         elif r["detected"]:
-            line = (f"{ex.exhibit_id}: MARK FOUND, work {r.get('work_id')}; false-alarm bound "
+            line = (f"{ex.exhibit_id}: {verdict(r)}; false-alarm bound "
                     f"{r['false_alarm_text']}; {r['geometry_text']}")
         else:
-            line = f"{ex.exhibit_id}: no mark of this owner found"
+            line = f"{ex.exhibit_id}: {verdict(r)}"
         al = doc.get("alignment") or {}
         if al.get("aligned"):
             line += f"; SSIM after alignment {al['ssim']:.3f}"

@@ -28,6 +28,7 @@ from claimkit import __version__
 from claimkit.case import layout
 from claimkit.case.documents import DossierDataDoc, ManifestDoc
 from claimkit.case.layout import DATA, HANDOVER, HTML, MANIFEST, MANIFEST_SIG, PDF, PUBLIC_KEY
+from claimkit.case.reference import scale_of
 from claimkit.case.store import Case, checked_exhibit_path
 from claimkit.dossier import figures
 from claimkit.dossier.data import build_data
@@ -77,7 +78,9 @@ def draw_figures(root: Path, data: dict) -> dict[str, bytes]:
             al = r["alignment"]
             ref = to_luma(read_picture(root / r["reference"]["file"]).pixels).astype(np.float64)
             s = al["work_scale"]
-            ref = rescale(ref, s, anti_aliasing=True, preserve_range=True) if s < 1 else ref
+            # work_scale is per registered-picture pixel; the file may be a reduced reference.
+            k = s / scale_of(r["reference"])
+            ref = rescale(ref, k, anti_aliasing=True, preserve_range=True) if k < 1 - 1e-9 else ref
             box = [v * s for v in al["crop_box_px"]]
             out[names["aligned"]] = figures.png_bytes(figures.aligned_figure(
                 ref, a["aligned"], a["difference"], a["mask"], box))
@@ -93,8 +96,9 @@ def withheld_references(root: Path, listed: list[str]) -> list[dict]:
         rel = f"{layout.REFERENCES}/{p.name}"
         if rel in listed or not p.is_file() or p.is_symlink() or p.name.startswith("."):
             continue
-        why = ("an unmarked master a finding aligns to; claimkit report --include-original "
-               "adds it" if rel in used else "no finding aligns to it")
+        why = ("an unmarked master; the findings compare with a reduced-resolution reference "
+               "made from it, and claimkit report --include-original adds it" if rel in used
+               else "no finding uses it")
         out.append({"path": rel, "sha256": sha256_file(p), "why": why})
     return out
 
