@@ -9,6 +9,7 @@ hash-chained log; a disclosure is a choice, says what it reveals, and is logged.
 
 from __future__ import annotations
 
+import io
 import json
 import shutil
 import zipfile
@@ -138,6 +139,16 @@ def test_no_key_material_no_absolute_path_no_master(two_cases, built_case):
                         and "payload_tag" not in d["payload"] for d in docs)
     manifest = json.loads(files["manifest.json"])
     assert manifest["key_material"] == "withheld"
+    # Nor the key's spot pattern: the prescribed and recovered messages (with the published
+    # file, they give the carrier's phases) stay out, arrays and figure, named by hash.
+    with zipfile.ZipFile(two_cases["bundle"]) as zf:
+        for rel in zf.namelist():
+            if rel.endswith(".npz"):
+                with np.load(io.BytesIO(zf.read(rel))) as arr:
+                    assert not {"reference", "recovered"} & set(arr.files), rel
+            assert not rel.endswith(("-message.png", "-message.npz")), rel
+    withheld = {w["path"] for w in manifest["withheld"]}
+    assert {f"findings/exhibit-{i}-message.npz" for i in (1, 2, 3, 4)} <= withheld
     # The unmarked master (the studio original) is not among the bundle's files.
     master = (built_case.studio / "morning-cup.png").read_bytes()
     assert all(master not in data for data in files.values())
@@ -198,6 +209,9 @@ def test_disclose_says_what_it_reveals_and_logs_it(two_cases, built_case, tmp_pa
         doc = json.loads(zf.read(f"handover/disclosures/{built_case.work_id}/disclosure.json"))
         assert doc["keys"]["seeds"]["detection"] == two_cases["seed"].hex()
         assert json.loads(zf.read("manifest.json"))["key_material"] == "disclosed"
+        # With the keys go the messages they prescribe, and their figure.
+        names = set(zf.namelist())
+        assert {"findings/exhibit-1-message.npz", "report/figures/exhibit-1-message.png"} <= names
 
 
 def test_export_disclose_refuses_a_report_built_without_keys(two_cases, tmp_path, capsys):

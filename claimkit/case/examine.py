@@ -212,9 +212,11 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
     if rep["sha256"] != ex.sha256:
         raise CheckFailed(f"{ex.exhibit_id}: stored copy changed during the examination", path=path)
     match = match_work(profile, rep, luma)
-    arrays = {"surface": finding.surface.astype(np.float32),
-              "recovered": finding.recovered.astype(np.float32),
-              "reference": finding.reference.astype(np.float32)}
+    arrays = {"surface": finding.surface.astype(np.float32)}
+    # The prescribed message is the key's spot pattern and the recovered one shows it too:
+    # kept apart, so that a bundle without key material leaves them out.
+    message = {"recovered": finding.recovered.astype(np.float32),
+               "reference": finding.reference.astype(np.float32)}
     alignment = None
     robustness = None
     reference = None
@@ -255,9 +257,11 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
             alignment = al.numbers
             arrays.update(aligned=al.aligned, difference=al.difference, mask=al.mask)
     npz = case.arrays_path(ex.exhibit_id)
-    tmp = npz.with_name(f".{npz.name}.part.npz")
-    np.savez_compressed(tmp, **arrays)
-    os.replace(tmp, npz)
+    keyed = case.root / layout.message_arrays_file(ex.exhibit_id)
+    for dest, content in ((npz, arrays), (keyed, message)):
+        tmp = dest.with_name(f".{dest.name}.part.npz")
+        np.savez_compressed(tmp, **content)
+        os.replace(tmp, dest)
     doc = {
         "type": FINDING_TYPE,
         "exhibit_id": ex.exhibit_id,
@@ -274,6 +278,8 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
         "robustness": robustness,
         **lines,
         "arrays": {"file": npz.relative_to(case.root).as_posix(), "sha256": sha256_file(npz)},
+        "message_arrays": {"file": layout.message_arrays_file(ex.exhibit_id),
+                           "sha256": sha256_file(keyed)},
     }
     data = FindingDoc.from_json(doc).write(case.finding_path(ex.exhibit_id))
     profile.log_action("exhibit examined",

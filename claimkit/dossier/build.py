@@ -45,6 +45,7 @@ from claimkit.software import versions
 __all__ = [
     "build_report",
     "draw_figures",
+    "message_arrays",
     "write_manifest",
 ]
 
@@ -65,8 +66,10 @@ def draw_figures(root: Path, data: dict) -> dict[str, bytes]:
         finding = json.loads((root / layout.finding_file(r["exhibit_id"])).read_bytes())
         with np.load(root / finding["arrays"]["file"]) as arr:
             a = {k: arr[k] for k in arr.files}
-        out[names["message"]] = figures.png_bytes(figures.message_figure(a["recovered"],
-                                                                         a["reference"]))
+        if "message" in names:      # drawn only where key material is disclosed
+            a.update(message_arrays(root, finding) or {})
+            out[names["message"]] = figures.png_bytes(figures.message_figure(a["recovered"],
+                                                                             a["reference"]))
         out[names["surface"]] = figures.png_bytes(figures.surface_figure(a["surface"]))
         out[names["decoys"]] = figures.png_bytes(figures.decoy_figure(finding["decoy_scores"],
                                                                       r["score_pilot"]))
@@ -87,11 +90,31 @@ def draw_figures(root: Path, data: dict) -> dict[str, bytes]:
     return out
 
 
+def message_arrays(root: Path, finding: dict) -> dict | None:
+    """A finding's recovered and prescribed message, where they are at hand (None if not).
+
+    Findings store them apart (``message_arrays``), left out of a bundle without key
+    material; findings of claimkit 0.3.0.dev0 and before kept them with the other arrays.
+    """
+    m = finding.get("message_arrays")
+    p = root / m["file"] if isinstance(m, dict) and isinstance(m.get("file"), str) else \
+        root / finding["arrays"]["file"]
+    if not p.is_file():
+        return None
+    with np.load(p) as arr:
+        got = {k: arr[k] for k in ("recovered", "reference") if k in arr.files}
+    return got if len(got) == 2 else None
+
+
 def withheld_references(root: Path, listed: list[str]) -> list[dict]:
-    """Files of the case's ``references/`` that the bundle leaves out, by hash, with why."""
+    """Files the bundle leaves out, by hash, with why: masters and message arrays."""
+    out = [{"path": rel, "sha256": sha256_file(root / rel),
+            "why": "drawn from the owner's key (the prescribed message); in the bundle only "
+                   "with the key disclosure: claimkit report --disclose"}
+           for rel in sorted(layout.message_arrays(root))
+           if rel not in listed and (root / rel).is_file()]
     used = layout.references_used(root)
     folder = root / layout.REFERENCES
-    out = []
     for p in sorted(folder.iterdir()) if folder.is_dir() else []:
         rel = f"{layout.REFERENCES}/{p.name}"
         if rel in listed or not p.is_file() or p.is_symlink() or p.name.startswith("."):
@@ -106,7 +129,8 @@ def withheld_references(root: Path, listed: list[str]) -> list[dict]:
 def write_manifest(root: Path, profile, case_id: str, *, key_material: str = "withheld",
                    include_original: bool = False) -> dict:
     """``manifest.json`` (every bundle file with SHA-256 and size) and its signature."""
-    names = layout.bundle_files(root, include_original=include_original)
+    names = layout.bundle_files(root, include_original=include_original,
+                                include_message=key_material == "disclosed")
     files = [{"path": rel, "sha256": sha256_file(root / rel), "size": (root / rel).stat().st_size}
              for rel in names]
     doc = {"type": MANIFEST_TYPE, "case_id": case_id, "created": {"time": utc_now(),

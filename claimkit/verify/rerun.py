@@ -16,6 +16,7 @@ from claimkit.case import layout
 from claimkit.case import reference as reduced_reference
 from claimkit.case.align import align
 from claimkit.case.examine import alignment_geometry, decoy_summary, jsonable, weigh_lines
+from claimkit.dossier.build import message_arrays
 from claimkit.imageio import read_picture, to_luma
 from claimkit.mark import payload
 from claimkit.stress import run_battery
@@ -70,12 +71,17 @@ def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
     diffs += differences(finding["decoy_summary"], decoy_summary(f.decoy_scores, f.z_pilot),
                          "decoy_summary")
     with np.load(root / finding["arrays"]["file"]) as arr:
-        for name in ("surface", "recovered", "reference"):
-            a = arr[name]
-            b = getattr(f, name)
-            if a.shape != b.shape or not np.allclose(a, b, rtol=1e-4, atol=1e-4):
-                diffs.append(f"arrays.{name}: differs from the re-run")
         stored_arrays = {k: arr[k] for k in arr.files}
+    # The message arrays travel only with key material; without them their numbers
+    # (message PSNR) are still compared above.
+    stored_arrays.update(message_arrays(root, finding) or {})
+    for name in ("surface", "recovered", "reference"):
+        if name not in stored_arrays:
+            continue
+        a = stored_arrays[name]
+        b = getattr(f, name)
+        if a.shape != b.shape or not np.allclose(a, b, rtol=1e-4, atol=1e-4):
+            diffs.append(f"arrays.{name}: differs from the re-run")
     luma = to_luma(pic.pixels)
     reference = finding.get("reference") or {}
     ref = root / reference.get("file", "")
