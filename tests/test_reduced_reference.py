@@ -1,10 +1,12 @@
 """The reduced-resolution reference: what a bundle compares exhibits with instead of the master.
 
 A case whose only registered file at hand is the unmarked master (no published marked
-file): the bundle must hold no master (searched by SHA-256, by bytes and by decoded
-pixels), yet ``verify`` must re-run the content line and the alignment from the reduced
-reference, and a reference that was tampered with, or swapped for another picture and
-re-signed, must fail named.
+file). By default no reference is made from it (beside the published file it would give
+away the mark): the content line falls back to the record's fingerprint, and the bundle
+re-runs. With ``--reference-from-master`` the bundle must still hold no master (searched
+by SHA-256, by bytes and by decoded pixels), ``verify`` must re-run the content line and
+the alignment from the reduced reference, and a reference that was tampered with, or
+swapped for another picture and re-signed, must fail named.
 """
 # ruff: noqa: F811 - the shared fixture is imported, then requested by name
 
@@ -48,13 +50,32 @@ def master_only(built_case, tmp_path_factory):
         assert main(["case", "new", str(case), "--title", "Master-only check", *h]) == 0
         assert main(["case", "add", str(case), str(built_case.copies[0]), "--source",
                      "https://tidewater-home-goods.example/products/mug", *h]) == 0
-        assert main(["case", "examine", str(case), "--originals", str(masters), "--decoys", "2",
-                     "--no-robustness", *h]) == 0
+        examine = ["case", "examine", str(case), "--originals", str(masters), "--decoys", "2",
+                   "--no-robustness", *h]
+        assert main(examine) == 0
+        assert main(["report", str(case), *h]) == 0
+        plain = base / "plain.zip"
+        assert main(["case", "export", str(case), "--out", str(plain), *h]) == 0
+        plain_finding = json.loads((case / layout.finding_file("exhibit-1")).read_bytes())
+        # The owner chooses to make a reference from the master after all.
+        assert main([*examine, "--reference-from-master"]) == 0
         assert main(["report", str(case), *h]) == 0
         bundle = base / "bundle.zip"
         assert main(["case", "export", str(case), "--out", str(bundle), *h]) == 0
-    return {"base": base, "home": home, "case": case, "bundle": bundle,
-            "master": masters / "morning-cup.png"}
+    return {"base": base, "home": home, "case": case, "bundle": bundle, "plain": plain,
+            "plain_finding": plain_finding, "master": masters / "morning-cup.png"}
+
+
+def test_by_default_no_reference_is_made_from_the_master(master_only, built_case):
+    from claimkit.case.examine import MASTER_ONLY
+
+    f = master_only["plain_finding"]
+    assert f["reference"] is None and f["alignment"] == {"aligned": False, "reason": MASTER_ONLY}
+    assert f["content"]["limited_to_fingerprint"] is True and f["content"]["corresponds"]
+    with zipfile.ZipFile(master_only["plain"]) as zf:
+        assert not [n for n in zf.namelist() if n.startswith("references/")]
+    rep = verify_bundle(master_only["plain"], disclosure=built_case.disclosure)
+    assert not rep.failures, rep.failures
 
 
 def test_reduced_size_rules():
@@ -93,8 +114,8 @@ def test_default_bundle_holds_no_master(master_only):
     assert ref["file"] in members
     manifest = json.loads(members["manifest.json"])
     assert manifest["include_original"] is False
-    assert [w["sha256"] for w in manifest["withheld"]] == [_sha(master)]
-    assert {w["path"] for w in manifest["withheld"]} == {ref["made_from"]["file"]}
+    kept = [w for w in manifest["withheld"] if w["path"].startswith("references/")]
+    assert [(w["path"], w["sha256"]) for w in kept] == [(ref["made_from"]["file"], _sha(master))]
 
 
 def test_verify_re_runs_the_content_line_and_alignment_from_the_reference(master_only,

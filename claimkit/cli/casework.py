@@ -137,7 +137,8 @@ def cmd_case_examine(args) -> int:
     with _profile(args) as p:
         examine_case(case, p, decoys=DEFAULT_DECOYS if args.decoys is None else args.decoys,
                      search=search, progress=progress, workers=args.workers,
-                     robustness=not args.no_robustness)
+                     robustness=not args.no_robustness,
+                     reference_from_master=args.reference_from_master)
     return 0
 
 
@@ -319,6 +320,10 @@ def register(sub, common) -> None:
                    help="worker processes for the decoy control (default 1)")
     p.add_argument("--no-robustness", action="store_true",
                    help="skip the robustness battery on the registered marked file")
+    p.add_argument("--reference-from-master", action="store_true",
+                   help="when only the unmarked master is at hand, compare copies with a "
+                        "reduced reference made from it (it goes into the bundle, and beside "
+                        "the published file it gives away much of the mark)")
     p.add_argument("--json", action="store_true", help="JSON output, one object per line")
     p.set_defaults(func=cmd_case_examine)
 
