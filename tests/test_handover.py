@@ -353,3 +353,26 @@ def test_pdf_text_tolerance():
     ok, why = pdf_texts_agree(base, _pdf("Exhibit 1: SSIM 0.9875 after alignment, log10 P -23.41"))
     assert not ok and "0.9875" in why
     assert not pdf_texts_agree(base, _pdf("Exhibit 2: SSIM 0.9871 after alignment, log10 P -23.41"))[0]
+
+
+def test_report_refuses_arrays_that_hold_the_key_pattern(two_cases, tmp_path, capsys):
+    """A case examined before the message arrays were kept apart: no default bundle of it."""
+    from claimkit.evidence.storage import sha256_file
+
+    c1 = tmp_path / "c1"
+    shutil.copytree(two_cases["c1"], c1)
+    fpath = c1 / "findings" / "exhibit-1.json"
+    f = json.loads(fpath.read_bytes())
+    npz = c1 / f["arrays"]["file"]
+    with np.load(npz) as a, np.load(c1 / f.pop("message_arrays")["file"]) as m:
+        old = {**{k: a[k] for k in a.files}, **{k: m[k] for k in m.files}}
+    npz.chmod(0o644)
+    np.savez_compressed(npz, **old)
+    f["arrays"]["sha256"] = sha256_file(npz)
+    fpath.chmod(0o644)
+    fpath.write_bytes(canonical_json(f) + b"\n")
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setenv("CLAIMKIT_PASSPHRASE", PASS)
+        assert main(["report", str(c1), "--home", str(two_cases["home"])]) == 2
+    err = capsys.readouterr().err
+    assert "hold the key's message pattern" in err and err.startswith("claimkit: error: ")

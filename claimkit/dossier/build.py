@@ -145,7 +145,7 @@ def write_manifest(root: Path, profile, case_id: str, *, key_material: str = "wi
     return doc
 
 
-def _check_examined(case: Case) -> None:
+def _check_examined(case: Case, *, disclose: bool = False) -> None:
     exhibits = case.exhibits()
     if not exhibits:
         raise InputError("the case has no exhibits (claimkit case add)", path=case.root)
@@ -164,6 +164,14 @@ def _check_examined(case: Case) -> None:
         if not arrays.is_file() or sha256_file(arrays) != f["arrays"]["sha256"]:
             raise CheckFailed(f"the arrays of {ex.exhibit_id} are missing or altered; "
                               "examine again", path=arrays)
+        if not disclose and not f.get("message_arrays"):
+            # Examined by claimkit 0.3.0.dev0 or before: the key's message pattern is in the
+            # arrays that travel; a bundle without key material must not carry it.
+            with np.load(arrays) as a:
+                if "reference" in a.files:
+                    raise InputError(f"the arrays of {ex.exhibit_id} hold the key's message "
+                                     "pattern (examined by an earlier claimkit): run claimkit "
+                                     "case examine again, or report with --disclose", path=arrays)
 
 
 def matched_works(case: Case) -> list[str]:
@@ -230,7 +238,7 @@ def build_report(case: Case, profile, *, out_pdf: Path | None = None,
     CheckFailed
         When an exhibit or finding changed since it was stored.
     """
-    _check_examined(case)
+    _check_examined(case, disclose=disclose)
     root = case.root
     _handover(case, profile, disclose=disclose)
     shutil.rmtree(root / layout.REPORT, ignore_errors=True)
