@@ -317,6 +317,10 @@ def test_folder_with_a_link_out_is_refused(built_case, tmp_path):
     ("findings/exhibit-1.json", "arrays", {"file": "../../outside.npz", "sha256": "0" * 64}),
     ("findings/exhibit-1.json", "reference", {"file": "/etc/hostname", "kind": "marked",
                                          "sha256": "0" * 64}),
+    ("findings/exhibit-1.json", "message_arrays", {"file": "../../outside.npz",
+                                              "sha256": "0" * 64}),
+    ("findings/exhibit-1.json", "reference", {"file": "references/x.png", "kind": "reduced",
+                                         "made_from": {"file": "/etc/hostname"}}),
     ("exhibits/exhibit-1.json", "file", "exhibits/../../../etc/hostname"),
     ("exhibits/exhibit-1.json", "exhibit_id", "../exhibit-1"),
 ])

@@ -58,6 +58,10 @@ def path_audit(root: Path, exhibits: list[dict], findings: dict) -> list[str]:
         why = layout.inside(root, (f.get("arrays") or {}).get("file"), layout.FINDINGS)
         if why:
             bad.append(f"{i}: finding arrays path {why}")
+        if f.get("message_arrays") is not None:
+            why = layout.inside(root, (f["message_arrays"] or {}).get("file"), layout.FINDINGS)
+            if why:
+                bad.append(f"{i}: finding message arrays path {why}")
         ref = f.get("reference")
         if ref:
             made = ref.get("made_from") if isinstance(ref.get("made_from"), dict) else {}
