@@ -132,6 +132,10 @@ def test_every_command_speaks_the_vocabulary(tmp_path, monkeypatch, capsys, loca
                summary=True)[-1]
     assert told["files_read"] == 1 and told["claimed"] == 1 and told["files_unreadable"] == 1
     run("case withdraw", ["case", "withdraw", str(case), "1", "--reason", "licensed", "--json"])
+    monkeypatch.setenv("XDG_RUNTIME_DIR", str(tmp_path))      # the session file's folder
+    session = run("unlock", ["unlock", "--for", "5m", "--json"])[0]
+    monkeypatch.setenv(session["variable"], session["session"])
+    run("lock", ["lock", "--json"])
     # Every field of the vocabulary but those of commands not run here is in use.
     unused = set(VOCAB["fields"]) - seen - set(VOCAB.get("not_run_here", []))
     assert not unused, f"listed but never printed: {sorted(unused)}"

@@ -5,7 +5,7 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
-from claimkit.cli.common import home_dir, passphrase, print_json
+from claimkit.cli.common import open_profile, print_json
 from claimkit.errors import CheckFailed, InputError
 
 CAUTION = ("Technical evidence, not legal advice. Consult counsel; the rules on evidence, "
@@ -15,16 +15,10 @@ CAUTION = ("Technical evidence, not legal advice. Consult counsel; the rules on 
 # Each command imports the library modules it runs when it runs, so that `claimkit --help`
 # starts in about 0.2 s rather than the 3 s that importing the whole library takes.
 
-def _profile(args):
-    from claimkit.evidence.profile import Profile
-
-    return Profile.open(home_dir(args), passphrase())
-
-
 def cmd_case_new(args) -> int:
     from claimkit.case.store import new_case
 
-    with _profile(args) as p:
+    with open_profile(args) as p:
         case = new_case(args.dir, args.title, p)
     if args.json:
         print_json({"case": str(case.root), "case_id": case.case_id, "title": case.title})
@@ -37,7 +31,7 @@ def cmd_case_add(args) -> int:
     from claimkit.case.store import add_exhibit, open_case
 
     case = open_case(args.dir)
-    with _profile(args) as p:
+    with open_profile(args) as p:
         out = []
         for f in args.files:
             ex = add_exhibit(case, f, source=args.source, found=args.found, by=args.by,
@@ -64,7 +58,7 @@ def cmd_case_capture(args) -> int:
     case = open_case(args.dir)
     opts = FetchOptions(timeout=args.timeout, max_bytes=args.max_bytes,
                         max_redirects=args.max_redirects, ca_file=args.ca_file)
-    with _profile(args) as p:
+    with open_profile(args) as p:
         res = capture_pages(case, args.urls, p, tsa_url=args.tsa_url, tsa_cert=args.tsa_cert,
                             options=opts, snapshot=not args.no_snapshot)
     if args.json:
@@ -87,7 +81,7 @@ def cmd_case_withdraw(args) -> int:
     from claimkit.case.store import open_case, withdraw_exhibit
 
     case = open_case(args.dir)
-    with _profile(args) as p:
+    with open_profile(args) as p:
         rec = withdraw_exhibit(case, args.exhibit, reason=args.reason, by=args.by, profile=p)
     if args.json:
         print_json({"case": str(case.root), "exhibit_id": rec["exhibit_id"],
@@ -134,7 +128,7 @@ def cmd_case_examine(args) -> int:
             line += f"; decoys: {d['at_or_above_observed']} of {d['count']} reached the score"
         print(line)
 
-    with _profile(args) as p:
+    with open_profile(args) as p:
         examine_case(case, p, decoys=DEFAULT_DECOYS if args.decoys is None else args.decoys,
                      search=search, progress=progress, workers=args.workers,
                      robustness=not args.no_robustness,
@@ -147,7 +141,7 @@ def cmd_case_export(args) -> int:
     from claimkit.case.store import open_case
 
     case = open_case(args.dir)
-    with _profile(args) as p:
+    with open_profile(args) as p:
         rep = export_bundle(case, args.out, p, force=args.force, disclose=args.disclose)
     if args.json:
         print_json(rep)
@@ -170,7 +164,7 @@ def cmd_report(args) -> int:
             raise InputError("already exists; use --force to replace it", path=out)
         if not (out.parent if str(out.parent) else Path(".")).is_dir():
             raise InputError(f"folder {out.parent} does not exist", path=out)
-    with _profile(args) as p:
+    with open_profile(args) as p:
         if args.disclose:
             from claimkit.dossier.build import matched_works
             from claimkit.evidence.disclose import what_it_reveals

@@ -5,21 +5,14 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
-from claimkit.cli.common import home_dir, passphrase, print_json
+from claimkit.cli.common import open_profile, print_json
 from claimkit.cli.rights import add_rights_options
 from claimkit.cli.scale import mark_many
 from claimkit.errors import InputError
-from claimkit.mark import detect
-from claimkit.mark.pattern import MARK_FORMAT
+from claimkit.mark.stats import DEFAULT_THRESHOLD
 
 # Each command imports the library modules it runs when it runs, so that `claimkit --help`
 # starts in about 0.2 s rather than the 3 s that importing the whole library takes.
-
-def _open_profile(args):
-    from claimkit.evidence.profile import Profile
-
-    return Profile.open(home_dir(args), passphrase())
-
 
 def cmd_mark(args) -> int:
     from claimkit import workflow
@@ -29,7 +22,7 @@ def cmd_mark(args) -> int:
     inputs = [Path(p) for p in args.inputs]
     out = Path(args.out)
     batch = len(inputs) > 1 or any(p.is_dir() for p in inputs)
-    with _open_profile(args) as profile:
+    with open_profile(args) as profile:
         rights = rights_from_args(args, load_rights(profile.home, profile.owner))
         if batch:
             return mark_many(profile, inputs, out, force=args.force, jpeg_quality=args.quality,
@@ -64,6 +57,7 @@ def _metadata_lines(rep: dict) -> None:
 
 
 def _verdict_line(rep: dict) -> str:
+    from claimkit.mark.pattern import MARK_FORMAT
     from claimkit.words import verdict
 
     if not rep["detected"]:
@@ -124,7 +118,7 @@ def cmd_examine(args) -> int:
 
     threshold = workflow.check_threshold(args.threshold)
     bad = 0
-    with _open_profile(args) as profile:
+    with open_profile(args) as profile:
         for f in args.files:
             try:
                 rep, finding = workflow.examine_file(profile, f, threshold=threshold,
@@ -184,7 +178,7 @@ def register(sub, common) -> None:
     e.add_argument("files", nargs="+", metavar="FILE", help="copies to examine (a bad one is "
                    "reported and the others examined; exit 2 at the end)")
     e.add_argument("--json", action="store_true", help="one JSON object per line, per file, in order")
-    e.add_argument("--threshold", type=float, default=detect.DEFAULT_THRESHOLD,
+    e.add_argument("--threshold", type=float, default=DEFAULT_THRESHOLD,
                    help="largest false-alarm bound called 'detected' (default 1e-9)")
     e.add_argument("--decoys", type=int, default=0, metavar="N",
                    help="also examine under N random decoy keys (control)")

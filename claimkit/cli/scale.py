@@ -21,8 +21,8 @@ import json
 import sys
 from pathlib import Path
 
-from claimkit.cli.common import home_dir, passphrase, print_json
-from claimkit.mark.detect import DEFAULT_THRESHOLD
+from claimkit.cli.common import open_profile, print_json
+from claimkit.mark.stats import DEFAULT_THRESHOLD
 
 EXIT_OK, EXIT_SOME_FAILED, EXIT_BAD_INPUT, EXIT_INTERRUPTED = 0, 1, 2, 130
 
@@ -181,9 +181,8 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False, **kw
 
 
 def cmd_scan(args) -> int:
-    from claimkit.evidence.profile import Profile  # start-up time, as above
 
-    with Profile.open(home_dir(args), passphrase()) as profile:
+    with open_profile(args) as profile:
         return scan_folders(
             profile, [Path(d) for d in args.folders], json_lines=args.json,
             report=Path(args.report) if args.report else None,
