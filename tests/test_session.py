@@ -111,6 +111,29 @@ def test_lock_ends_one_session_or_all(profile):
     assert session.end_all() == 1 and not b.file.exists()
 
 
+def test_ended_sessions_are_swept_by_the_next_command(profile, runtime, monkeypatch):
+    fp = profile.public_key_fingerprint
+    short = session.start(profile._need_secrets(), profile=fp, lifetime=30, now=3_000_000.0)
+    long = session.start(profile._need_secrets(), profile=fp, lifetime=600, now=3_000_000.0)
+    assert session.sweep(now=3_000_029.0) == 0 and short.file.exists()
+    assert session.unlock(long.token, profile=fp, now=3_000_031.0)   # a use sweeps the rest
+    assert not short.file.exists() and long.file.exists()
+    # A passphrase command sweeps too (the variable is not set): the long one has ended by now.
+    doc = json.loads(long.file.read_bytes())
+    doc["expires"] = 1.0          # unreadable by the key now, but its expiry is what is swept on
+    long.file.write_text(json.dumps(doc))
+    assert main(["works", "show", "W-0000-000001"]) == 2        # opens the public part only
+    assert long.file.exists()
+    assert main(["disclose", "W-0000-000001", "--out", str(runtime / "d")]) == 2
+    assert not long.file.exists()
+    # Someone else's folder in its place is refused for sessions, and ignored by the sweep.
+    folder = runtime / f"claimkit-{os.getuid()}"
+    folder.chmod(0o755)
+    assert session.sweep() == 0
+    with pytest.raises(ProfileError, match="not a private folder"):
+        profile.unlock(60)
+
+
 def test_lifetimes(profile):
     assert [session.parse_lifetime(t) for t in ("90", "90s", "20m", "2h", " 12h ")] == \
         [90, 90, 1200, 7200, 43200]

@@ -42,11 +42,13 @@ def open_profile(args):
     refused rather than falling back to ``$CLAIMKIT_PASSPHRASE``, so that the
     lifetime the user chose is the one that holds.
     """
+    from claimkit.evidence import session
     from claimkit.evidence.profile import Profile
 
     token = os.environ.get(SESSION_ENV)
     if token:
         return Profile.open_session(home_dir(args), token)
+    session.sweep()          # ended sessions' files go at the next command that opens the keys
     return Profile.open(home_dir(args), passphrase())
 
 

@@ -103,7 +103,9 @@ def _with_lines(profile, rep: dict, path: Path, threshold: float, folders: list[
     from claimkit.case.examine import match_work, weigh_lines
     from claimkit.imageio import read_picture, to_luma
 
-    luma = to_luma(read_picture(path).pixels)
+    # The copy read as the examination read it (the luma plane of a colour JPEG), as
+    # `case examine` and `verify` read an exhibit for these lines: one reading for all three.
+    luma = to_luma(read_picture(path, method=rep.get("examination_method")).pixels)
     match = match_work(profile, rep, luma)
     record = None if match is None else profile.work(match["work_id"]).record
     ref_luma, reference = None, None

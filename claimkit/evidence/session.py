@@ -90,6 +90,14 @@ def parse_lifetime(text: str) -> int:
     return seconds
 
 
+def _folder_path() -> Path:
+    base = os.environ.get("XDG_RUNTIME_DIR") or ""
+    if not base or not os.path.isdir(base):
+        base = "/dev/shm" if os.path.isdir("/dev/shm") and os.access("/dev/shm", os.W_OK) else \
+            tempfile.gettempdir()
+    return Path(base) / f"claimkit-{os.getuid()}"
+
+
 def runtime_folder() -> Path:
     """The per-user folder for session files, made with mode 0700 if missing.
 
@@ -98,11 +106,7 @@ def runtime_folder() -> Path:
     is not a real folder of this user with mode 0700 is refused: another user
     could read or plant session files there.
     """
-    base = os.environ.get("XDG_RUNTIME_DIR") or ""
-    if not base or not os.path.isdir(base):
-        base = "/dev/shm" if os.path.isdir("/dev/shm") and os.access("/dev/shm", os.W_OK) else \
-            tempfile.gettempdir()
-    folder = Path(base) / f"claimkit-{os.getuid()}"
+    folder = _folder_path()
     try:
         folder.mkdir(mode=0o700)
     except FileExistsError:
@@ -138,7 +142,9 @@ def start(secrets: Secrets, *, profile: str, lifetime: int = DEFAULT_LIFETIME,
     header = {"format": FORMAT, "profile": profile, "created": round(now, 3), "expires": expires,
               "cipher": {"name": "AES-256-GCM", "nonce": _b64(nonce)}}
     ciphertext = AESGCM(key).encrypt(nonce, secrets_plaintext(secrets), canonical_json(header))
-    path = runtime_folder() / f"{sid}.session"
+    folder = runtime_folder()
+    sweep(folder, now)
+    path = folder / f"{sid}.session"
     # O_EXCL: a fresh random name, never an existing file or a planted link.
     fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_NOFOLLOW", 0), 0o600)
     with os.fdopen(fd, "wb") as f:
@@ -167,6 +173,7 @@ def unlock(token: str, *, profile: str, now: float | None = None) -> Secrets:
     """
     path, key = _parse(token)
     now = time.time() if now is None else float(now)
+    sweep(path.parent, now, keep=path)    # this one is judged below, with its own message
     try:
         fd = os.open(path, os.O_RDONLY | getattr(os, "O_NOFOLLOW", 0))
         with os.fdopen(fd, "rb") as f:
@@ -206,6 +213,39 @@ def end(token: str) -> bool:
     except FileNotFoundError:
         return False
     return True
+
+
+def sweep(folder: Path | None = None, now: float | None = None, *,
+          keep: Path | None = None) -> int:
+    """Delete every session file in the user's folder whose session has ended; how many.
+
+    The expiry is read from the file's header without the key (it is not
+    secret; the cipher authenticates it). Run by ``unlock``, by every use of a
+    session and by :func:`claimkit.cli.common.open_profile`, so that a file
+    outlives its session only until the next such command (or the logout that
+    empties a tmpfs runtime folder). A file that cannot be read is left alone.
+    """
+    if folder is None:
+        if not os.path.lexists(_folder_path()):   # sessions never used here: nothing to make
+            return 0
+        try:
+            folder = runtime_folder()    # the ownership and mode checks
+        except ProfileError:             # not ours to clean; a session would be refused there
+            return 0
+    now = time.time() if now is None else float(now)
+    n = 0
+    for p in folder.glob("*.session"):
+        if p == keep:
+            continue
+        try:
+            expires = float(json.loads(p.read_bytes())["expires"])
+        except (OSError, ValueError, KeyError, TypeError, UnicodeDecodeError):
+            continue
+        if now >= expires:
+            with contextlib.suppress(FileNotFoundError):
+                p.unlink()
+                n += 1
+    return n
 
 
 def end_all() -> int:
