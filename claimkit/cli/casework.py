@@ -96,6 +96,7 @@ def cmd_case_withdraw(args) -> int:
 def cmd_case_examine(args) -> int:
     from claimkit.case.examine import DEFAULT_DECOYS, examine_case
     from claimkit.case.store import open_case
+    from claimkit.words import verdict
 
     case = open_case(args.dir)
     search = [Path(p) for p in (args.originals or [])]
@@ -115,10 +116,10 @@ def cmd_case_examine(args) -> int:
         if r["detected"] and doc["content_mismatch"]:
             line = f"{ex.exhibit_id}: {doc['evaluation']['finding']}"
         elif r["detected"]:
-            line = (f"{ex.exhibit_id}: MARK FOUND, work {r.get('work_id')}; false-alarm bound "
+            line = (f"{ex.exhibit_id}: {verdict(r)}; false-alarm bound "
                     f"{r['false_alarm_text']}; {r['geometry_text']}")
         else:
-            line = f"{ex.exhibit_id}: no mark of this owner found"
+            line = f"{ex.exhibit_id}: {verdict(r)}"
         al = doc.get("alignment") or {}
         if al.get("aligned"):
             line += f"; SSIM after alignment {al['ssim']:.3f}"
@@ -130,7 +131,8 @@ def cmd_case_examine(args) -> int:
     with open_profile(args) as p:
         examine_case(case, p, decoys=DEFAULT_DECOYS if args.decoys is None else args.decoys,
                      search=search, progress=progress, workers=args.workers,
-                     robustness=not args.no_robustness)
+                     robustness=not args.no_robustness,
+                     reference_from_master=args.reference_from_master)
     return 0
 
 
@@ -312,6 +314,10 @@ def register(sub, common) -> None:
                    help="worker processes for the decoy control (default 1)")
     p.add_argument("--no-robustness", action="store_true",
                    help="skip the robustness battery on the registered marked file")
+    p.add_argument("--reference-from-master", action="store_true",
+                   help="when only the unmarked master is at hand, compare copies with a "
+                        "reduced reference made from it (it goes into the bundle, and beside "
+                        "the published file it gives away much of the mark)")
     p.add_argument("--json", action="store_true", help="JSON output, one object per line")
     p.set_defaults(func=cmd_case_examine)
 

@@ -58,15 +58,15 @@ def _metadata_lines(rep: dict) -> None:
 
 def _verdict_line(rep: dict) -> str:
     from claimkit.mark.pattern import MARK_FORMAT
+    from claimkit.words import verdict
 
     if not rep["detected"]:
-        return (f"{rep['file']}: no mark of this owner found "
+        return (f"{rep['file']}: {verdict(rep)} "
                 f"(best score {rep['score_pilot']:.1f}; false-alarm bound {rep['false_alarm_text']})")
-    who = rep["work_id"] or "an unreadable payload"
-    reg = "" if rep.get("registered") else " (not in this registry)"
+    older = ""
     if rep.get("mark_format") not in (None, MARK_FORMAT):
-        reg += f" (marked in the older format {rep['mark_format']})"
-    return (f"{rep['file']}: MARK FOUND, work {who}{reg}; chance of this without the mark "
+        older = f" (marked in the older format {rep['mark_format']})"
+    return (f"{rep['file']}: {verdict(rep)}{older}; false-alarm bound "
             f"{rep['false_alarm_text']}; {rep['geometry_text']}; "
             f"message PSNR {rep['message_psnr_db']:.1f} dB")
 
@@ -101,15 +101,15 @@ def _with_lines(profile, rep: dict, path: Path, threshold: float, folders: list[
     luma = to_luma(read_picture(path, method=rep.get("examination_method")).pixels)
     match = match_work(profile, rep, luma)
     record = None if match is None else profile.work(match["work_id"]).record
-    ref_luma, kind = None, None
+    ref_luma, reference = None, None
     if record is not None and folders:
         found = _registered_file(record, folders)
         if found is not None:
-            ref_luma, kind = to_luma(read_picture(found[0]).pixels), found[1]
-            rep["reference"] = {"file": str(found[0]), "kind": kind}
+            ref_luma = to_luma(read_picture(found[0]).pixels)
+            reference = rep["reference"] = {"file": str(found[0]), "kind": found[1]}
     lines = weigh_lines(luma, exhibit_id=path.name, rep=rep, threshold=threshold, match=match,
                         work_record=record, owner=profile.owner, reference_luma=ref_luma,
-                        reference_kind=kind, robustness=None, label=f"The file {path.name}")
+                        reference=reference, robustness=None, label=f"The file {path.name}")
     rep["match"] = match
     rep.update(lines)
     return rep
