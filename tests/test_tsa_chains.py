@@ -117,7 +117,7 @@ def _resign(d: Path, name: str) -> None:
     from cryptography.hazmat.primitives.asymmetric import ec
 
     cert = ax509.Certificate.load(pem.unarmor(bad.read_bytes())[2])
-    resp = timestamp._Response.load((d / name).read_bytes())
+    resp = timestamp._response_class().load((d / name).read_bytes())
     token = resp["time_stamp_token"]
     sd = token["content"]
     sd["certificates"] = cms.CertificateSet(

@@ -34,10 +34,13 @@ C. Adams et al., "Time-Stamp Protocol (TSP)", RFC 3161, 2001, section 2.3.
 from __future__ import annotations
 
 from datetime import datetime
+from typing import TYPE_CHECKING
 
-from asn1crypto import x509 as asn1_x509
-from cryptography import x509
 from cryptography.hazmat.primitives.serialization import Encoding
+
+if TYPE_CHECKING:   # loaded where a path is validated (see timestamp.py for why)
+    from asn1crypto import x509 as asn1_x509
+    from cryptography import x509
 
 __all__ = ["PathRefused", "tsa_path"]
 
@@ -47,6 +50,8 @@ class PathRefused(Exception):
 
 
 def _asn1(cert: x509.Certificate) -> asn1_x509.Certificate:
+    from asn1crypto import x509 as asn1_x509
+
     return asn1_x509.Certificate.load(cert.public_bytes(Encoding.DER))
 
 
@@ -132,6 +137,7 @@ def tsa_path(signer: x509.Certificate, pool: list[x509.Certificate],
     # are about a tenth of a second of start-up that commands without tokens need not pay.
     import asyncio
 
+    from cryptography import x509
     from pyhanko_certvalidator.authority import CertTrustAnchor, TrustQualifiers
     from pyhanko_certvalidator.errors import (
         PathBuildingError,

@@ -38,10 +38,9 @@ import hashlib
 import os
 from dataclasses import dataclass
 from datetime import datetime
+from functools import lru_cache
+from typing import TYPE_CHECKING
 
-from asn1crypto import cms, core, tsp
-from asn1crypto import x509 as asn1_x509
-from cryptography import x509
 from cryptography.exceptions import InvalidSignature, UnsupportedAlgorithm
 from cryptography.hazmat.primitives import hashes
 from cryptography.hazmat.primitives.asymmetric import ec, ed25519, padding, rsa
@@ -49,6 +48,13 @@ from cryptography.hazmat.primitives.serialization import Encoding
 
 from claimkit.errors import CheckFailed, InputError
 from claimkit.evidence import certpath
+
+if TYPE_CHECKING:
+    # asn1crypto's ASN.1 classes and cryptography's X.509 load where a request is built or a
+    # token read: together a few hundredths of a second that commands without tokens (opening
+    # a profile to examine a copy) need not pay at start-up.
+    from asn1crypto import cms
+    from cryptography import x509
 
 __all__ = [
     "TokenInfo",
@@ -86,12 +92,17 @@ class TokenInfo:
         return self.gen_time.strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
-class _Response(core.Sequence):
+@lru_cache(maxsize=1)
+def _response_class():
     """TimeStampResp with the token optional, as RFC 3161 section 2.4.2 has it
     (asn1crypto's own class requires the token, so a refusal would not parse)."""
+    from asn1crypto import cms, core, tsp
 
-    _fields = [("status", tsp.PKIStatusInfo),  # noqa: RUF012 - asn1crypto API
-               ("time_stamp_token", cms.ContentInfo, {"optional": True})]
+    class _Response(core.Sequence):
+        _fields = [("status", tsp.PKIStatusInfo),  # noqa: RUF012 - asn1crypto API
+                   ("time_stamp_token", cms.ContentInfo, {"optional": True})]
+
+    return _Response
 
 
 class _Refused(Exception):
@@ -111,6 +122,8 @@ def build_request(digest: bytes, *, nonce: int | None = None,
     """
     if len(digest) != _HASHES[hash_algorithm].digest_size:
         raise ValueError(f"digest length {len(digest)} does not fit {hash_algorithm}")
+    from asn1crypto import tsp
+
     if nonce is None:
         nonce = int.from_bytes(os.urandom(8), "big") | 1 << 63  # full 64 bits, never 0
     req = tsp.TimeStampReq({
@@ -125,6 +138,8 @@ def build_request(digest: bytes, *, nonce: int | None = None,
 
 def parse_request(der: bytes) -> tuple[bytes, str, int | None]:
     """(digest, hash algorithm, nonce) of a DER TimeStampReq."""
+    from asn1crypto import tsp
+
     req = tsp.TimeStampReq.load(der)
     mi = req["message_imprint"]
     return (mi["hashed_message"].native, mi["hash_algorithm"]["algorithm"].native,
@@ -154,6 +169,8 @@ def send_request(url: str, tsq: bytes, *, timeout: float = 30.0) -> bytes:
 
 def load_certificates(data: bytes, *, path: object = None) -> list[x509.Certificate]:
     """Certificates from PEM (one or more) or DER bytes."""
+    from cryptography import x509
+
     try:
         if b"-----BEGIN" in data:
             certs = x509.load_pem_x509_certificates(data)
@@ -208,8 +225,10 @@ _DER = Encoding.DER
 
 def token_from_response(tsr: bytes) -> bytes:
     """The DER token (ContentInfo) from a TimeStampResp, after checking its status."""
+    from asn1crypto import core
+
     try:
-        resp = _Response.load(tsr)
+        resp = _response_class().load(tsr)
         status = resp["status"]["status"].native
         text = resp["status"]["status_string"].native
         fail = resp["status"]["fail_info"].native
@@ -228,6 +247,8 @@ def token_from_response(tsr: bytes) -> bytes:
 
 def token_imprint(token_der: bytes) -> tuple[bytes, str, int | None]:
     """(digest, hash algorithm, nonce) the token claims, without checking anything else."""
+    from asn1crypto import cms
+
     tst = cms.ContentInfo.load(token_der)["content"]["encap_content_info"]["content"].parsed
     mi = tst["message_imprint"]
     return (mi["hashed_message"].native, mi["hash_algorithm"]["algorithm"].native,
@@ -236,6 +257,10 @@ def token_imprint(token_der: bytes) -> tuple[bytes, str, int | None]:
 
 def _check(token_der: bytes, digest: bytes, nonce: int | None,
            trusted: list[x509.Certificate], hash_algorithm: str) -> TokenInfo:
+    from asn1crypto import cms, tsp
+    from asn1crypto import x509 as asn1_x509
+    from cryptography import x509
+
     try:
         info = cms.ContentInfo.load(token_der)
         if info["content_type"].native != "signed_data":
