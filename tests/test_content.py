@@ -59,9 +59,22 @@ def test_transplanted_mark_is_detected_but_the_picture_does_not_correspond(publi
     c = content_line(to_luma(forged), reference_luma=to_luma(published))
     assert c["corresponds"] is False and c["log10_lr"] < 0
     assert c["statistic"]["value"] <= max(calibration()["null"]["samples"])
-    # Limited to the fingerprint (no reference picture), the same verdict, said to be limited.
+    # Limited to the fingerprint (no reference picture): never "corresponds"; "does not" only
+    # beyond every distance a genuine copy reached, else it says it cannot decide.
     f = content_line(to_luma(forged), work_fingerprint=perceptual_fingerprint(to_luma(published)))
-    assert f["limited_to_fingerprint"] and f["corresponds"] is False
+    widest = max(calibration()["fingerprint"]["genuine"]["samples"])
+    assert f["limited_to_fingerprint"] and f["corresponds"] is not True
+    if f["statistic"]["value"] <= widest:
+        assert f["corresponds"] is None and "cannot decide" in f["reason"]
+
+
+def test_fingerprint_alone_never_flags_a_turned_genuine_copy(published):
+    # A quarter turn moves the whole-picture fingerprint as far as another picture does: with
+    # only the record's fingerprint the line must not call the genuine copy a mismatch.
+    turned = stress.rotate_crop(published, 90)
+    f = content_line(to_luma(turned), work_fingerprint=perceptual_fingerprint(to_luma(published)))
+    assert f["statistic"]["value"] > f["statistic"]["threshold"]
+    assert f["corresponds"] is None and f["log10_lr"] == 0.0
 
 
 @pytest.mark.parametrize("name", ["jpeg 30", "rotate 17", "mirror", "crop 25 %", "resize 0.5"])
@@ -138,7 +151,7 @@ def test_featureless_work_is_inconclusive_never_a_mismatch():
 
     published = mark(sky())
     c = content_line(to_luma(stress.jpeg(published, 50)), reference_luma=to_luma(published))
-    assert c["corresponds"] is None and c["log10_lr"] == 0.0 and "inconclusive" in c["reason"]
+    assert c["corresponds"] is None and c["log10_lr"] == 0.0 and "too little texture" in c["reason"]
     ev = evaluate(exhibit="Exhibit 1", work_id="W-1", owner=None, detected=True, threshold=1e-9,
                   content=c, agreement=None)
     assert not ev["derivation_claimed"] and "cannot be excluded" in ev["combination"]

@@ -58,6 +58,13 @@ __all__ = [
 
 #: Longer side, in pixels, each picture is reduced to before keypoints are found.
 WORK_SIDE = 640
+#: A smaller picture is enlarged to this longer side first: ORB's 31-pixel patches and its
+#: eight-level pyramid leave no keypoints in a picture of 100 pixels (a 10 % web copy).
+MIN_WORK_SIDE = 256
+#: Luma is stretched so that these percentiles span 0..1 before keypoints are found: FAST's
+#: threshold is absolute, so a low-contrast picture (haze, a soft texture) otherwise keeps
+#: a few dozen keypoints; measured on generated soft textures, 70 -> 2000 keypoints.
+STRETCH_PERCENTILES = (1.0, 99.0)
 #: Keypoints kept per picture (the strongest by Harris response).
 KEYPOINTS = 2000
 #: FAST threshold (luma on a 0..1 scale); lower finds keypoints in flat pictures.
@@ -94,9 +101,16 @@ def _work(luma: np.ndarray) -> tuple[np.ndarray, float]:
     top = float(a.max()) if a.size else 1.0
     a = a / (255.0 if top > 1.0 else 1.0)
     s = min(1.0, WORK_SIDE / max(a.shape))
-    if s < 1.0:
-        a = rescale(a, s, anti_aliasing=True, preserve_range=True)
+    if max(a.shape) < MIN_WORK_SIDE:
+        s = MIN_WORK_SIDE / max(a.shape)
+    if s != 1.0:
+        a = rescale(a, s, anti_aliasing=s < 1.0, preserve_range=True, order=1)
     return np.clip(a, 0.0, 1.0), s
+
+
+def _stretch(a: np.ndarray) -> np.ndarray:
+    lo, hi = np.percentile(a, STRETCH_PERCENTILES)
+    return np.clip((a - lo) / max(float(hi - lo), 1e-3), 0.0, 1.0)
 
 
 def features(luma: np.ndarray, *, mirrored: bool = False) -> Features:
@@ -117,7 +131,11 @@ def features(luma: np.ndarray, *, mirrored: bool = False) -> Features:
     """
     work, s = _work(luma)
     shape = (int(np.asarray(luma).shape[0]), int(np.asarray(luma).shape[1]))
-    img = work[:, ::-1] if mirrored else work
+    return _describe(work, s, shape, mirrored)
+
+
+def _describe(work: np.ndarray, s: float, shape: tuple[int, int], mirrored: bool) -> Features:
+    img = _stretch(work[:, ::-1] if mirrored else work)
     orb = ORB(n_keypoints=KEYPOINTS, fast_threshold=FAST_THRESHOLD)
     try:
         orb.detect_and_extract(img)
@@ -131,6 +149,18 @@ def features(luma: np.ndarray, *, mirrored: bool = False) -> Features:
         x = (img.shape[1] - 1) - x
     xy = np.stack([x, rc[:, 0]], axis=1) / s if len(rc) else np.zeros((0, 2))
     return Features(xy, desc, shape, s, work)
+
+
+def reduced(reference: Features, side: int) -> Features:
+    """The reference described again at a longer side of ``side`` working pixels.
+
+    A copy much smaller than the reference's working size (a web copy at 10 to
+    25 %) is matched against the reference at its own size as well: ORB's
+    pyramid spans a factor of 3.6, not of 10.
+    """
+    f = side / max(reference.work.shape)
+    work = np.clip(rescale(reference.work, f, anti_aliasing=True, preserve_range=True), 0.0, 1.0)
+    return _describe(work, reference.scale * f, reference.shape, False)
 
 
 def describe_linear(m: np.ndarray) -> dict:
@@ -257,10 +287,15 @@ def register(reference: Features, exhibit: Features, exhibit_mirrored: Features)
     reports, so the two can be compared directly.
     """
     best = None
-    for feats, how in ((exhibit, "as is"), (exhibit_mirrored, "mirrored")):
-        mat, n, res = _fit(reference, feats, how == "mirrored")
-        if mat is not None and (best is None or n > best[1]):
-            best = (mat, n, res, how)
+    refs = [reference]
+    side = max(exhibit.work.shape)
+    if 2 * side <= max(reference.work.shape):
+        refs.append(reduced(reference, side))
+    for rf in refs:
+        for feats, how in ((exhibit, "as is"), (exhibit_mirrored, "mirrored")):
+            mat, n, res = _fit(rf, feats, how == "mirrored")
+            if mat is not None and (best is None or n > best[1]):
+                best = (mat, n, res, how)
     out: dict = {"method": "ORB keypoints, RANSAC similarity", "work_side_px": WORK_SIDE,
                  "residual_limit_px": RESIDUAL_PX, "ransac_seed": RANSAC_SEED,
                  "reference_keypoints": len(reference.xy),

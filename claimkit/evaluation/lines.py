@@ -63,5 +63,6 @@ def weigh(exhibit_luma: np.ndarray, *, label: str, mark: dict, threshold: float,
     evaluation["finding"] = opinion.finding_words(
         detected=detected, work_id=mark.get("work_id") if detected else None,
         content_mismatch=mismatch, limited=bool(content.get("limited_to_fingerprint")),
-        inconclusive=content.get("basis") not in (None, "none") and content.get("corresponds") is None)
+        inconclusive=content.get("basis") not in (None, "none") and content.get("corresponds") is None,
+        cannot_decide=content.get("cannot_decide"))
     return {"content": content, "content_mismatch": mismatch, "evaluation": evaluation}
