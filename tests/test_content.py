@@ -77,7 +77,39 @@ def test_fingerprint_alone_never_flags_a_turned_genuine_copy(published):
     assert f["corresponds"] is None and f["log10_lr"] == 0.0
 
 
-@pytest.mark.parametrize("name", ["jpeg 30", "rotate 17", "mirror", "crop 25 %", "resize 0.5"])
+def test_packed_hamming_matcher_gives_scikit_images_pairs():
+    # Reference: skimage.feature.match_descriptors (scikit-image 0.26), the same rule unpacked.
+    from skimage.feature import match_descriptors
+
+    from claimkit.content import register as reg
+
+    a, b = to_luma(data.coffee()), to_luma(data.coffee()[40:300, 60:520])
+    fa, fb, fr = reg.features(a), reg.features(b), reg.features(to_luma(data.rocket()))
+    for d1, d2 in ((fb.descriptors, fa.descriptors), (fr.descriptors, fa.descriptors)):
+        want = match_descriptors(d1, d2, metric="hamming", cross_check=True, max_ratio=reg.MAX_RATIO)
+        assert np.array_equal(reg.match(d1, d2), want)
+
+
+def test_transplant_from_a_featureless_work_is_still_flagged():
+    # A sky registers to nothing, not even itself; the host photo does register to itself, and
+    # a copy of a sky does not gain corners: the line says "does not correspond", and why.
+    from engine_helpers import sky
+
+    forged = transplant_mark(mark(sky()), data.rocket())
+    c = content_line(to_luma(forged), reference_luma=to_luma(mark(sky())))
+    assert c["corresponds"] is False and "lacks" in c["reason"]
+    assert c["self_checks"]["work_inliers"] < c["self_checks"]["needed"] <= \
+        c["self_checks"]["exhibit_inliers"]
+
+
+def test_featureless_exhibit_cannot_decide_and_says_why(published):
+    flat = np.clip(np.random.default_rng(3).normal(128, 2, (300, 400)), 0, 255)
+    c = content_line(flat, reference_luma=to_luma(published))
+    assert c["corresponds"] is None and "exhibit has too little usable structure" in c["reason"]
+
+
+@pytest.mark.parametrize("name", ["jpeg 30", "rotate 17", "mirror", "crop 25 %", "resize 0.5",
+                                  "downscale 10 % jpeg 85"])
 def test_genuine_copy_corresponds_and_reads_the_true_geometry(published, name):
     attack = next(a for a in stress.battery() if a.name == name)
     copy = attack.apply(published)

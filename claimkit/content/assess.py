@@ -52,7 +52,7 @@ SCALE_TOLERANCE = 0.05
 ABLE_FACTOR = 3
 
 
-def self_check(luma: np.ndarray) -> int:
+def self_check(luma: np.ndarray, *, stretch: bool = True) -> int:
     """Inliers of a picture against an edited copy of itself (70 %, turned 10 degrees).
 
     The turned copy is cut to its inner part (13 % off each side), so no filled
@@ -67,8 +67,8 @@ def self_check(luma: np.ndarray) -> int:
     edited = edited[round(0.13 * h): h - round(0.13 * h), round(0.13 * w): w - round(0.13 * w)]
     if min(edited.shape) < 16:
         return 0
-    return int(reg.register(reg.features(pic), reg.features(edited),
-                            reg.features(edited, mirrored=True))["inliers"])
+    return int(reg.register(reg.features(pic, stretch=stretch), reg.features(edited, stretch=stretch),
+                            reg.features(edited, mirrored=True, stretch=stretch))["inliers"])
 
 
 def _decide(value: int, threshold: int, reference_luma: np.ndarray,
@@ -78,9 +78,11 @@ def _decide(value: int, threshold: int, reference_luma: np.ndarray,
     At or above the threshold the exhibit corresponds. Below it, "does not
     correspond" is said only where a failure to register means something:
     both pictures have structure that registers to itself, or the exhibit has
-    such structure and the work has none (a copy does not gain corners and
-    edges the work lacks, unless something was drawn over it). Otherwise the
-    line cannot decide, and says which picture lacks the structure.
+    such structure in absolute contrast (without the stretch, which would
+    turn compression blocks and noise in a flat copy into corners) and the
+    work has none (a copy does not gain edges the work lacks, unless something
+    was drawn over it). Otherwise the line cannot decide, and says which
+    picture lacks the structure.
     """
     if value >= threshold:
         return True, None, None
@@ -90,19 +92,24 @@ def _decide(value: int, threshold: int, reference_luma: np.ndarray,
               "edit": "scaled to 70 %, turned 10 degrees, 13 % cut from each side"}
     against = (f"against an edited copy of itself the registered work reached {work_able} "
                f"matching points and the exhibit {exhibit_able}, {need} needed")
-    if exhibit_able < need and work_able < need:
-        return None, checks, ("the content line cannot decide: the work has too little texture ("
-                              + against + "), so a failure to register the exhibit says "
-                              "nothing about it")
-    if exhibit_able < need:
+    if work_able >= need and exhibit_able >= need:
+        return False, checks, None
+    if work_able >= need:
         return None, checks, ("the content line cannot decide: the exhibit has too little usable "
                               "structure (too small, blurred or noisy; " + against + "), so a "
                               "failure to register it says nothing about it")
-    if work_able < need:
-        return False, checks, ("the exhibit has structure (corners, edges) that the registered "
-                               "work lacks (" + against + "); a copy of the work would not, "
-                               "unless something was drawn over it")
-    return False, checks, None
+    checks["exhibit_inliers_unstretched"] = self_check(exhibit_luma, stretch=False)
+    checks["work_inliers_unstretched"] = self_check(reference_luma, stretch=False)
+    if checks["exhibit_inliers_unstretched"] >= need > checks["work_inliers_unstretched"]:
+        return False, checks, (
+            "the exhibit has structure (corners, edges) that the registered work lacks (in "
+            f"absolute contrast, against an edited copy of itself the exhibit reached "
+            f"{checks['exhibit_inliers_unstretched']} matching points and the work "
+            f"{checks['work_inliers_unstretched']}, {need} needed); a copy of the work would "
+            "not, unless something was drawn over it")
+    return None, checks, ("the content line cannot decide: the work has too little texture ("
+                          + against + "), so a failure to register the exhibit says nothing "
+                          "about it")
 
 
 @lru_cache(maxsize=1)
@@ -181,7 +188,7 @@ def content_line(exhibit_luma: np.ndarray, *, reference_luma: np.ndarray | None 
         if corresponds is None:
             out["log10_lr"] = 0.0
             out["cannot_decide"] = ("the work has too little texture"
-                                    if checks["work_inliers"] < checks["needed"] else
+                                    if "work_inliers_unstretched" in checks else
                                     "the exhibit has too little usable structure "
                                     "(too small, blurred or noisy)")
         return out

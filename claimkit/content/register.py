@@ -115,7 +115,7 @@ def _stretch(a: np.ndarray) -> np.ndarray:
     return np.clip((a - lo) / max(float(hi - lo), 1e-3), 0.0, 1.0)
 
 
-def features(luma: np.ndarray, *, mirrored: bool = False) -> Features:
+def features(luma: np.ndarray, *, mirrored: bool = False, stretch: bool = True) -> Features:
     """ORB keypoints and descriptors of a picture (or of its left-right mirror image).
 
     Parameters
@@ -126,6 +126,11 @@ def features(luma: np.ndarray, *, mirrored: bool = False) -> Features:
         Describe the mirrored picture; the keypoints are returned in the
         coordinates of the picture as given (``x -> W - 1 - x``), so that a
         transform fitted to them includes the mirroring.
+    stretch : bool
+        Stretch the luma's contrast first (:data:`STRETCH_PERCENTILES`), as
+        the registration does; False keeps FAST's threshold absolute (about 5
+        grey levels), which compression blocks and noise in a flat picture do
+        not reach.
 
     Returns
     -------
@@ -133,11 +138,14 @@ def features(luma: np.ndarray, *, mirrored: bool = False) -> Features:
     """
     work, s = _work(luma)
     shape = (int(np.asarray(luma).shape[0]), int(np.asarray(luma).shape[1]))
-    return _describe(work, s, shape, mirrored)
+    return _describe(work, s, shape, mirrored, stretch)
 
 
-def _describe(work: np.ndarray, s: float, shape: tuple[int, int], mirrored: bool) -> Features:
-    img = _stretch(work[:, ::-1] if mirrored else work)
+def _describe(work: np.ndarray, s: float, shape: tuple[int, int], mirrored: bool,
+              stretch: bool = True) -> Features:
+    img = work[:, ::-1] if mirrored else work
+    if stretch:
+        img = _stretch(img)
     orb = ORB(n_keypoints=KEYPOINTS, fast_threshold=FAST_THRESHOLD)
     try:
         orb.detect_and_extract(img)
