@@ -52,14 +52,20 @@ from claimkit.errors import AlreadyExists, InputError
 from claimkit.evidence.storage import atomic_write
 
 __all__ = [
+    "CURRENT_EXAMINATION_METHOD",
     "DEFAULT_MAX_PIXELS",
+    "EXAMINATION_METHODS",
+    "LUMA_FROM_JPEG_Y",
+    "LUMA_FROM_RGB",
     "MIN_SIDE",
     "Picture",
     "add_luma_delta",
+    "canvas_like",
     "read_picture",
     "resolve_max_pixels",
     "to_luma",
     "write_picture",
+    "write_picture_keeping_bytes",
 ]
 
 #: Default limit on width × height, a guard against decompression bombs
@@ -116,6 +122,18 @@ _FORMAT_BY_SUFFIX = {
 # File signatures, used only to tell "damaged image" from "not an image".
 _MAGIC = (b"\xff\xd8\xff", b"\x89PNG\r\n\x1a\n", b"II*\x00", b"MM\x00*", b"GIF8", b"RIFF")
 
+# Examination methods: how a file's pixels become the luma the detector reads. Each finding
+# records its method and ``verify`` re-runs it by that method; a finding that records none
+# was made by the first. A new way of reading is a new name, never a change to an old one.
+LUMA_FROM_RGB = "rgb-luma-1"
+"""Decode to RGB (or grey), then BT.601 luma in float32 (:func:`to_luma`)."""
+LUMA_FROM_JPEG_Y = "jpeg-y-1"
+"""A colour JPEG is decoded straight to its luma plane (libjpeg's Y of YCbCr, read without
+the chroma planes); every other file as :data:`LUMA_FROM_RGB`."""
+EXAMINATION_METHODS = (LUMA_FROM_RGB, LUMA_FROM_JPEG_Y)
+CURRENT_EXAMINATION_METHOD = LUMA_FROM_JPEG_Y
+
+
 # Pillow's own bomb check reads a process-wide setting during Image.open; we
 # apply our own (configurable) limit instead, so the setting is lifted for
 # the duration of the open, under a lock so that threads do not race on it.
@@ -167,6 +185,9 @@ class Picture:
     dpi : tuple of float or None
         Resolution in pixels per inch as Pillow reads it (JFIF, PNG pHYs,
         TIFF or EXIF), None where the file states none.
+    examination_method : str or None
+        The examination method the pixels were read for
+        (:data:`EXAMINATION_METHODS`); None for a picture read whole, as is.
     """
 
     path: Path
@@ -183,6 +204,7 @@ class Picture:
     region: tuple[int, int, int, int] | None = None
     dpi: tuple[float, float] | None = None
     full_size: tuple[int, int] | None = field(default=None, repr=False)   # (height, width) with a region
+    examination_method: str | None = None
     overview: np.ndarray | None = field(default=None, repr=False)   # whole picture, box-reduced
     overview_step: int = 1
 
@@ -218,7 +240,7 @@ def resolve_max_pixels(max_pixels: int | None = None) -> int:
 def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
                  region: Callable[[tuple[int, int]], tuple[int, int, int, int]] | None = None,
                  overview: Callable[[tuple[int, int]], int] | None = None,
-                 ) -> Picture:
+                 method: str | None = None, data: bytes | None = None) -> Picture:
     """Decode a photo into an upright array plus the metadata to carry over.
 
     Parameters
@@ -239,7 +261,17 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
     overview : callable, optional
         With ``region``: given the upright ``(height, width)``, a whole-number
         step; the whole picture, box-reduced by that step from the same
-        decoded image, goes to ``Picture.overview``.
+        decoded image, goes to ``Picture.overview`` (grey, like ``pixels``,
+        when ``method`` decodes luma only).
+    method : str, optional
+        Read the pixels an examination method reads (:data:`EXAMINATION_METHODS`):
+        with :data:`LUMA_FROM_JPEG_Y` a colour JPEG is decoded to its luma
+        plane only (grey ``uint8``; EXIF orientation applied as always), which
+        skips the chroma planes, their upsampling and the colour conversion.
+        ``Picture.examination_method`` records it.
+    data : bytes, optional
+        The file's bytes when the caller holds them already (a file it has just
+        written): they are decoded and hashed instead of reading ``path`` again.
 
     Returns
     -------
@@ -253,8 +285,12 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
         point). The message names the cause; ``.path`` names the file.
     """
     path = Path(path)
+    if method is not None and method not in EXAMINATION_METHODS:
+        raise InputError(f"unknown examination method {method!r}; this version knows "
+                         f"{', '.join(EXAMINATION_METHODS)}", path=path)
     limit = resolve_max_pixels(max_pixels)
-    data = _read_bytes(path)
+    if data is None:
+        data = _read_bytes(path)
     digest = hashlib.sha256(data).hexdigest()
     try:
         with _PIL_LIMIT_LOCK, warnings.catch_warnings():
@@ -287,6 +323,11 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
             # Image.open leaves the first frame selected.
             notes.append(f"{frames} frames; the first frame was used")
         fmt = im.format or "unknown"
+        if method == LUMA_FROM_JPEG_Y and fmt == "JPEG":
+            # libjpeg then emits the Y plane of a YCbCr file (ITU-T T.871: the same BT.601
+            # weights as to_luma, taken before chroma subsampling) and never decodes
+            # chroma. Pillow changes only a colour ("RGB" raw mode) file; CMYK stays.
+            im.draft("L", None)
         rawmode = _rawmode(im)  # the tile list is gone once the pixels are loaded
         # Pillow holds 16-bit colour only at 8 bits; tifffile reads it whole.
         full = None
@@ -369,6 +410,7 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
         region=None if region is None else tuple(int(v) for v in box),
         dpi=dpi,
         full_size=full_size,
+        examination_method=method,
         overview=small,
         overview_step=step,
     )
@@ -666,6 +708,27 @@ def write_picture(
 ) -> T | None:
     """Encode ``pixels`` to ``path`` atomically, with ``like``'s metadata.
 
+    As :func:`write_picture_keeping_bytes`, without keeping the bytes.
+    """
+    return write_picture_keeping_bytes(path, pixels, like=like, quality=quality, force=force,
+                                       finish=finish)[0]
+
+
+def write_picture_keeping_bytes(
+    path: str | os.PathLike,
+    pixels: np.ndarray,
+    *,
+    like: Picture,
+    quality: int = 95,
+    force: bool = False,
+    finish: Callable[[Path, Staged], T] | None = None,
+) -> tuple[T | None, bytes]:
+    """Encode ``pixels`` to ``path`` atomically, with ``like``'s metadata; keep the bytes.
+
+    Returns ``finish``'s result and the exact bytes now in ``path`` (after
+    ``finish``), so that a caller can hash or decode them without reading
+    the file again.
+
     Parameters
     ----------
     path : str or path-like
@@ -725,7 +788,7 @@ def write_picture(
             result = finish(file, staged)
             payload = file.read_bytes()
     _atomic_write(path, payload, force=force)
-    return result
+    return result, payload
 
 
 @dataclass
@@ -827,7 +890,8 @@ def _encode(
         stacked = np.dstack([pixels, alpha])
         im = Image.fromarray(np.ascontiguousarray(stacked), "RGBA" if colour else "LA")
     else:
-        im = Image.fromarray(np.ascontiguousarray(pixels), "RGB" if colour else "L")
+        shared = _rgbx_image(pixels) if fmt == "JPEG" else None
+        im = shared or Image.fromarray(np.ascontiguousarray(pixels), "RGB" if colour else "L")
     if fmt == "WEBP" and im.mode == "L":
         im = im.convert("RGB")  # WebP has no grey mode
     if fmt == "WEBP" and im.mode == "LA":
@@ -868,6 +932,37 @@ def _encode(
     buf = io.BytesIO()
     im.save(buf, format=fmt, **kw)
     return buf.getvalue()
+
+
+def canvas_like(pixels: np.ndarray) -> np.ndarray:
+    """An empty array for pixels like ``pixels``; for 8-bit colour, laid out as Pillow holds RGB.
+
+    Pillow keeps an RGB picture as 4 bytes a pixel (RGBX). An ``(H, W, 3)``
+    view of an ``(H, W, 4)`` buffer is that layout, so the JPEG encoder reads
+    it in place (:func:`_rgbx_image`) instead of copying the whole picture
+    into Pillow first; NumPy works on the view as on any array.
+    """
+    if pixels.ndim == 3 and pixels.shape[2] == 3 and pixels.dtype == np.uint8:
+        return np.empty(pixels.shape[:2] + (4,), dtype=np.uint8)[..., :3]
+    return np.empty_like(pixels)
+
+
+def _rgbx_image(pixels: np.ndarray) -> Image.Image | None:
+    """A Pillow RGBX image on the memory of a :func:`canvas_like` view, else None.
+
+    ``Image.frombuffer`` maps an RGBX buffer without copying; the JPEG
+    encoder ignores the fourth byte, and the file is byte for byte the one
+    written from an RGB copy (checked in ``tests/test_marking_buffers.py``).
+    """
+    base = pixels.base
+    if not (pixels.dtype == np.uint8 and pixels.ndim == 3 and isinstance(base, np.ndarray)):
+        return None
+    h, w = pixels.shape[:2]
+    if (base.shape != (h, w, 4) or base.dtype != np.uint8 or not base.flags.c_contiguous
+            or pixels.strides != base.strides
+            or pixels.__array_interface__["data"][0] != base.__array_interface__["data"][0]):
+        return None
+    return Image.frombuffer("RGBX", (w, h), base, "raw", "RGBX", 0, 1)
 
 
 def _icc_fits(icc: bytes, *, grey: bool) -> bool:

@@ -8,6 +8,7 @@ profile for keys and registration, and leaves all numerics to
 
 from __future__ import annotations
 
+import hashlib
 import hmac
 import os
 from collections.abc import Callable
@@ -25,13 +26,16 @@ from claimkit.evidence.rights import load_rights
 from claimkit.evidence.storage import fsync_dir, sha256_file
 from claimkit.filemeta import INSTALL_HINT, Carried, Rights, carry_metadata, exiftool_available
 from claimkit.imageio import (
+    CURRENT_EXAMINATION_METHOD,
+    LUMA_FROM_RGB,
     Picture,
     add_luma_delta,
+    canvas_like,
     check_output_path,
     output_format,
     read_picture,
     to_luma,
-    write_picture,
+    write_picture_keeping_bytes,
 )
 from claimkit.mark import detect, embed, pattern, payload, quality, scales
 from claimkit.mark.detect import Finding
@@ -204,7 +208,7 @@ def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, stre
     starts = range(0, pixels.shape[0], _MARK_BAND_ROWS)
     ends = [min(pixels.shape[0], r0 + _MARK_BAND_ROWS) for r0 in starts]
     luma = np.empty(pixels.shape[:2], dtype=np.float32)
-    marked = np.empty_like(pixels)
+    marked = canvas_like(pixels)      # the encoder reads it in place (no copy into Pillow)
     threads = band_threads()
     with _helpers(threads if threads > 1 else 0, "claimkit-band") as pool:
         list(pool.map(_luma_band, repeat(pixels), repeat(luma), starts, ends))
@@ -221,14 +225,16 @@ def mark_picture(pic: Picture, out: Path, seed: bytes, bits: np.ndarray, *, stre
         job = pool.submit(_write_marked, out, marked, pic, jpeg_quality=jpeg_quality,
                           force=force, max_pixels=max_pixels, peak=peak, metadata=metadata)
         try:
-            ssim_value, sampled = quality.ssim(pixels, marked, grey=to_luma)
+            ssim_est = quality.ssim_estimate(pixels, marked, grey=to_luma)
         except BaseException:
             _discard_written(job, out)
             raise
         sha_marked, psnr_file, carried = job.result()
     del marked
-    measures["ssim"] = round(ssim_value, 5)
-    measures["ssim_sampled"] = sampled
+    measures["ssim"] = round(ssim_est.value, 5)
+    measures["ssim_sampled"] = ssim_est.sampled
+    se = ssim_est.standard_error        # None: the whole picture was measured
+    measures["ssim_standard_error"] = None if se is None else float(f"{se:.2g}")
     if psnr_file is not None:
         measures["psnr_db_file"] = round(psnr_file, 3)
     return {
@@ -270,13 +276,13 @@ def _write_marked(out: Path, marked: np.ndarray, pic: Picture, *, jpeg_quality: 
                                   work_id=metadata.work_id, registry=metadata.registry,
                                   copy_icc=staged.icc_fits and not staged.icc_embedded,
                                   reasons=staged.reasons)
-    carried = write_picture(out, marked, like=pic, quality=jpeg_quality, force=force,
-                            finish=finish)
+    carried, data = write_picture_keeping_bytes(out, marked, like=pic, quality=jpeg_quality,
+                                                force=force, finish=finish)
     try:
         if out.suffix.lower() not in (".jpg", ".jpeg", ".webp"):
-            return sha256_file(out), None, carried
-        # One read: the picture carries the hash of the very bytes it was decoded from.
-        back = read_picture(out, max_pixels=max_pixels)
+            return hashlib.sha256(data).hexdigest(), None, carried
+        # The bytes just written, decoded and hashed once from memory (not read back from disk).
+        back = read_picture(out, max_pixels=max_pixels, data=data)
         written = back.pixels
         if written.dtype != pic.pixels.dtype:
             # A 16-bit photo written as an 8-bit JPEG: compare on the original's scale.
@@ -510,17 +516,20 @@ def examine_file(profile, path: str | os.PathLike, *, threshold: float = detect.
     return report_for(path, pic, finding, profile), finding
 
 
-def read_for_examination(path: str | os.PathLike, *, max_pixels: int | None = None) -> Picture:
+def read_for_examination(path: str | os.PathLike, *, max_pixels: int | None = None,
+                         method: str = CURRENT_EXAMINATION_METHOD) -> Picture:
     """Read a copy for :func:`examine_picture`: only the window the detector reads is converted.
 
     Large photos are examined on a central window (``detect.MAX_EXAMINE_PIXELS``);
     copying the rest of a 24-megapixel picture out of the decoder would cost
     about half as much as decoding it. The window holds the pixels ``read_picture``
-    gives there; the coarse views come from the whole picture box-reduced by the
-    decoder (``Picture.overview``).
+    gives there for the examination ``method`` (a colour JPEG's luma plane
+    under the current method; see :data:`claimkit.imageio.EXAMINATION_METHODS`);
+    the coarse views come from the whole picture box-reduced by the decoder
+    (``Picture.overview``, luma too under that method).
     """
     return read_picture(path, max_pixels=max_pixels, region=detect.central_window,
-                        overview=scales.overview_step)
+                        overview=scales.overview_step, method=method)
 
 
 def report_for(path: Path, pic: Picture, finding: Finding, profile=None) -> dict:
@@ -531,6 +540,8 @@ def report_for(path: Path, pic: Picture, finding: Finding, profile=None) -> dict
     rep = {"file": str(path), "sha256": pic.sha256 or sha256_file(path),
            "width": pic.width, "height": pic.height}
     rep.update(finding.to_json())
+    # How the pixels became luma: verify re-runs an examination by this method.
+    rep["examination_method"] = pic.examination_method or LUMA_FROM_RGB
     rep["work_id"] = None
     rep["registered"] = False
     if finding.payload_valid and finding.payload_bits is not None:

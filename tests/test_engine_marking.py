@@ -157,7 +157,7 @@ def test_large_photo_read_through_its_examined_window_gives_the_same_finding(tmp
     from PIL import Image
 
     from claimkit import workflow
-    from claimkit.imageio import read_picture
+    from claimkit.imageio import CURRENT_EXAMINATION_METHOD, read_picture
 
     base = np.asarray(Image.fromarray(data.coffee()).resize((2400, 1800), Image.BICUBIC))
     upright = mark(base)
@@ -165,7 +165,9 @@ def test_large_photo_read_through_its_examined_window_gives_the_same_finding(tmp
     exif[0x0112] = 6          # EXIF 2.32 tag 0x0112: stored turned a quarter counter-clockwise
     path = tmp_path / "large.jpg"
     Image.fromarray(np.ascontiguousarray(np.rot90(upright, 1))).save(path, quality=85, exif=exif.tobytes())
-    whole, part = read_picture(path), workflow.read_for_examination(path)
+    # the whole picture read by the same examination method as the window
+    whole = read_picture(path, method=CURRENT_EXAMINATION_METHOD)
+    part = workflow.read_for_examination(path)
     assert part.region == detect.central_window(upright.shape[:2]) != (0, 0, *upright.shape[:2])
     a, b = workflow.examine_picture(whole, SEED), workflow.examine_picture(part, SEED)
     assert a.detected and a.to_json() == b.to_json()

@@ -270,3 +270,26 @@ def test_exiftool_ends_with_a_worker_that_ends_without_cleanup():
     stat = Path(f"/proc/{child_tool}/stat")
     # Gone, or a zombie waiting for init to reap it ("Z" in /proc/PID/stat, proc(5)).
     assert not stat.exists() or stat.read_text().split(") ")[1].startswith("Z")
+
+
+def test_exiftool_outlives_the_short_lived_thread_that_first_needed_it():
+    # mark writes (and runs exiftool) on a helper thread that ends with the file. Linux sends
+    # the parent-death signal when the thread that started a child ends (prctl(2)), so the
+    # tool must not be started from that thread: the next command would find it killed.
+    import threading
+    import time
+
+    from claimkit import filemeta
+
+    tool = filemeta._ExifTool()
+    try:
+        t = threading.Thread(target=tool.run, args=(["-ver"],))
+        t.start()
+        t.join()
+        first = tool._proc
+        time.sleep(0.5)                        # time for a signal to arrive
+        assert first is not None and first.poll() is None
+        out, _ = tool.run(["-ver"])
+        assert out.strip() and tool._proc is first     # the same process, not a new one
+    finally:
+        tool.close()

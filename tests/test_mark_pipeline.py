@@ -137,20 +137,38 @@ def test_squared_error_sum_is_exact_and_psnr_matches_scikit_image(dtype):
 def test_sampled_ssim_agrees_with_scikit_image_on_its_sample():
     a = big_photo(2100, 3000)            # 6.3 MP: above SAMPLE_ABOVE, so patches are used
     b = np.clip(a + RNG.normal(0, 2.0, a.shape), 0, 255).astype(np.uint8)
-    ours, sampled = quality.ssim(a, b, grey=to_luma)
-    assert sampled
-    # the documented sample: 24 patches from default_rng(0), row then column
-    rng = np.random.default_rng(0)
+    est = quality.ssim_estimate(a, b, grey=to_luma)
+    assert est.sampled and quality.ssim(a, b, grey=to_luma) == (est.value, True)
+    # the documented sample: one patch per cell of a 4 x 2 grid (4 along the long side)
+    corners = quality.sample_patches(a.shape[:2])
+    assert list(est.patches) == corners and len(corners) == 8
+    assert len({(r * 2 // a.shape[0], c * 4 // a.shape[1]) for r, c in corners}) == 8
     ref = []
-    for _ in range(24):
-        r = int(rng.integers(0, a.shape[0] - quality.PATCH))
-        c = int(rng.integers(0, a.shape[1] - quality.PATCH))
+    for r, c in corners:
         win = (slice(r, r + quality.PATCH), slice(c, c + quality.PATCH))
         # skimage.metrics.structural_similarity with the Wang et al. settings
         ref.append(metrics.structural_similarity(
             to_luma(a[win]).astype(np.float64), to_luma(b[win]).astype(np.float64),
             data_range=255, gaussian_weights=True, sigma=1.5, use_sample_covariance=False))
-    assert ours == pytest.approx(float(np.mean(ref)), abs=1e-5)
+    assert est.value == pytest.approx(float(np.mean(ref)), abs=1e-5)
+    assert est.standard_error == pytest.approx(np.std(ref, ddof=1) / np.sqrt(8), rel=1e-3)
+
+
+def test_sampled_ssim_estimates_the_whole_picture_within_its_stated_error(monkeypatch):
+    """Against scikit-image's SSIM of the whole picture (patches and threshold scaled down)."""
+    monkeypatch.setattr(quality, "PATCH", 128)
+    monkeypatch.setattr(quality, "SAMPLE_ABOVE", 400_000)
+    a = big_photo(700, 1000)
+    rng = np.random.default_rng(5)
+    for sigma in (1.0, 3.0):
+        b = np.clip(a + rng.normal(0, sigma, a.shape), 0, 255).astype(np.uint8)
+        est = quality.ssim_estimate(a, b, grey=to_luma)
+        whole = metrics.structural_similarity(
+            to_luma(a).astype(np.float64), to_luma(b).astype(np.float64),
+            data_range=255, gaussian_weights=True, sigma=1.5, use_sample_covariance=False)
+        assert est.sampled and 0 < est.standard_error < 0.05
+        # stated tolerance: three standard errors (plus float32 rounding)
+        assert abs(est.value - whole) < 3 * est.standard_error + 1e-4, (est, whole)
 
 
 # ------------------------------------------------------------------ the file-level path
@@ -212,7 +230,7 @@ def test_a_failure_while_measuring_leaves_no_marked_file(tmp_path, monkeypatch):
     def broken(*args, **kwargs):
         raise RuntimeError("measurement failed")
 
-    monkeypatch.setattr(workflow.quality, "ssim", broken)
+    monkeypatch.setattr(workflow.quality, "ssim_estimate", broken)
     with pytest.raises(RuntimeError, match="measurement failed"):
         workflow.mark_picture(pic, out, SEED, payload())
     assert not out.exists()

@@ -31,7 +31,7 @@ from claimkit.errors import CheckFailed, InputError
 from claimkit.evaluation.lines import weigh
 from claimkit.evidence.custodylog import utc_now
 from claimkit.evidence.storage import sha256_file, sha256_hex
-from claimkit.imageio import read_picture, to_luma
+from claimkit.imageio import CURRENT_EXAMINATION_METHOD, read_picture, to_luma
 from claimkit.mark import detect, payload
 from claimkit.mark.fingerprint import MATCH_DISTANCE, perceptual_fingerprint
 from claimkit.stress import run_battery
@@ -195,7 +195,7 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
     """Examine one exhibit; write ``findings/EXX.json`` and ``.npz``; return the finding."""
     robustness_wanted = robustness
     path = checked_exhibit_path(case, ex)
-    pic = read_picture(path)
+    pic = read_picture(path, method=CURRENT_EXAMINATION_METHOD)
     luma = to_luma(pic.pixels)
     finding = workflow.examine_picture(pic, profile.detection_seed, owner_tag=profile.owner_tag,
                                        payload_check=workflow.owner_payload_check(profile),
@@ -255,7 +255,8 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
         "exhibit_sha256": ex.sha256,
         "examined": {"time": utc_now(), "time_source": "system clock",
                      "software": f"claimkit {__version__}", "threshold": threshold,
-                     "decoys": decoys, "decoy_seed": DECOY_SEED},
+                     "decoys": decoys, "decoy_seed": DECOY_SEED,
+                     "examination_method": pic.examination_method},
         "result": jsonable(rep),
         "decoy_scores": [round(float(v), 4) for v in finding.decoy_scores],
         "decoy_summary": decoy_summary(finding.decoy_scores, finding.z_pilot),

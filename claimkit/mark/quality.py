@@ -16,6 +16,8 @@ References
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 from scipy import ndimage
 
@@ -84,25 +86,91 @@ def _ssim_map_mean(x: np.ndarray, y: np.ndarray, data_range: float) -> float:
     return float(s[pad:-pad, pad:-pad].astype(np.float64).mean())
 
 
+# Sampled SSIM: one PATCH x PATCH patch in each cell of a grid of SAMPLE_GRID cells
+# (long side x short side), at a seeded random place inside its cell. Spread over the
+# whole picture, 8 patches give the mean within a few 1e-4 on marked photos (whose
+# change is shaped to a local SSIM target), at a third of the cost of 24 random ones.
+SAMPLE_GRID = (4, 2)
+
+
+@dataclass(frozen=True)
+class SsimEstimate:
+    """Mean SSIM and how it was obtained.
+
+    Attributes
+    ----------
+    value : float
+        Mean SSIM (of the whole picture, or of the sampled patches).
+    sampled : bool
+        Whether ``value`` is the mean of sampled patches.
+    standard_error : float or None
+        With sampling, the standard error of ``value`` as an estimate of the
+        whole picture's mean: the patches' sample standard deviation over
+        the square root of their number (one patch per cell of a grid, so
+        this overstates the error where the picture's parts differ); None
+        when the whole picture was measured.
+    patches : tuple of tuple of int
+        ``(row, col)`` of each patch's top-left corner (empty when whole).
+    """
+
+    value: float
+    sampled: bool
+    standard_error: float | None = None
+    patches: tuple[tuple[int, int], ...] = ()
+
+
 def ssim(a: np.ndarray, b: np.ndarray, *, data_range: float = 255.0, grey=None,
          rng: np.random.Generator | None = None) -> tuple[float, bool]:
     """Mean SSIM of two images and whether it was estimated from sampled patches.
 
+    See :func:`ssim_estimate`, which also gives the sampling error.
+    """
+    est = ssim_estimate(a, b, data_range=data_range, grey=grey, rng=rng)
+    return est.value, est.sampled
+
+
+def sample_patches(shape: tuple[int, int], rng: np.random.Generator | None = None,
+                   ) -> list[tuple[int, int]]:
+    """Top-left corners of the sampled SSIM patches of a picture of ``shape``.
+
+    One ``PATCH x PATCH`` patch per cell of a :data:`SAMPLE_GRID` grid (more
+    cells along the longer side), row by row, each placed by ``rng``
+    (default ``np.random.default_rng(0)``, so the sample repeats) anywhere
+    that keeps it inside the picture and starting inside its cell.
+    """
+    rng = rng or np.random.default_rng(0)
+    h, w = shape
+    long_cells, short_cells = SAMPLE_GRID
+    rows, cols = (short_cells, long_cells) if w >= h else (long_cells, short_cells)
+    corners = []
+    for i in range(rows):
+        for j in range(cols):
+            r_lo, r_hi = i * h // rows, (i + 1) * h // rows
+            c_lo, c_hi = j * w // cols, (j + 1) * w // cols
+            r = min(int(rng.integers(r_lo, r_hi)), h - PATCH)
+            c = min(int(rng.integers(c_lo, c_hi)), w - PATCH)
+            corners.append((r, c))
+    return corners
+
+
+def ssim_estimate(a: np.ndarray, b: np.ndarray, *, data_range: float = 255.0, grey=None,
+                  rng: np.random.Generator | None = None) -> SsimEstimate:
+    """Mean SSIM of two images, from sampled patches on large pictures, with its error.
+
     ``grey`` (optional) turns a picture or a patch of it into a grey float
     image (e.g. luma of RGB); it is applied to patches only when sampling, so
     large photos are never converted whole. Pictures above ``SAMPLE_ABOVE``
-    pixels are measured on 24 random ``PATCH x PATCH`` patches (a seeded
-    generator, so the result repeats).
+    pixels are measured on the patches of :func:`sample_patches` and the
+    standard error of that estimate is given.
     """
     grey = grey or (lambda z: np.asarray(z, dtype=np.float32))
     h, w = np.shape(a)[:2]
     if h * w <= SAMPLE_ABOVE or min(h, w) < 2 * PATCH:
-        return _ssim_map_mean(grey(a), grey(b), data_range), False
-    rng = rng or np.random.default_rng(0)
+        return SsimEstimate(_ssim_map_mean(grey(a), grey(b), data_range), False)
+    corners = sample_patches((h, w), rng)
     vals = []
-    for _ in range(24):
-        r = int(rng.integers(0, h - PATCH))
-        c = int(rng.integers(0, w - PATCH))
+    for r, c in corners:
         win = (slice(r, r + PATCH), slice(c, c + PATCH))
         vals.append(_ssim_map_mean(grey(a[win]), grey(b[win]), data_range))
-    return float(np.mean(vals)), True
+    se = float(np.std(vals, ddof=1) / np.sqrt(len(vals)))
+    return SsimEstimate(float(np.mean(vals)), True, se, tuple(corners))

@@ -15,7 +15,7 @@ from claimkit import __version__
 from claimkit.case import layout
 from claimkit.case.align import align
 from claimkit.case.examine import alignment_geometry, decoy_summary, jsonable, weigh_lines
-from claimkit.imageio import read_picture, to_luma
+from claimkit.imageio import LUMA_FROM_RGB, read_picture, to_luma
 from claimkit.mark import payload
 from claimkit.stress import run_battery
 from claimkit.verify.compare import differences
@@ -47,8 +47,9 @@ def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
         g = np.asarray(got, dtype=np.uint8)
         return any(np.array_equal(g, w) for w in wanted)
 
-    pic = read_picture(root / ex["file"])
     params = finding["examined"]
+    # By the method the finding records; one made before methods were recorded read RGB.
+    pic = read_picture(root / ex["file"], method=params.get("examination_method") or LUMA_FROM_RGB)
     owner_tag = payload.unpack(wanted[0])["owner_tag"]   # the same for all of one owner's works
     f = examine_picture(pic, seed, owner_tag=owner_tag, payload_check=check,
                         threshold=params["threshold"], decoys=params["decoys"])
