@@ -6,10 +6,14 @@ using only the two pictures: oriented FAST keypoints with rotated BRIEF
 descriptors (ORB) [1]_ on both, mutual nearest-neighbour matching in Hamming
 distance, and a similarity transform (rotation, uniform scale, translation)
 fitted to the matches by RANSAC [2]_. ORB's descriptors are not mirror
-invariant, so the mirrored exhibit is registered as well and the better of
-the two readings is kept; the statistic is therefore the same maximum over
-both readings for every pair of pictures, related or not, which is what the
-measured null (:mod:`claimkit.content.calibration`) counts.
+invariant, so the mirrored exhibit is registered as well; a copy of half the
+reference's working size or less (a web copy) is also matched against the
+reference reduced to its size, and the best reading is kept. The statistic is
+therefore the same maximum over the same readings for every pair of pictures,
+related or not, which is what the measured null (``calibration.json``,
+written by ``benchmarks/bench_content.py``) counts. Before keypoints are
+found, each picture's luma is stretched between its 1st and 99th percentiles
+(FAST's threshold is absolute) and a picture under 256 pixels is enlarged.
 
 The statistic is the number of RANSAC inliers: matched keypoint pairs that the
 fitted transform maps to within :data:`RESIDUAL_PX` working pixels of each
