@@ -260,14 +260,14 @@ def test_edited_content_line_and_opinion_are_caught_by_the_re_run(built_case, tm
     f = json.loads(p.read_bytes())
     value = f["content"]["statistic"]["value"]
     f["content"]["statistic"]["value"] = value + 40
-    f["evaluation"]["reported_log10_lr"] = 6.0
+    f["evaluation"]["reported_log10_lr"] = 2.5      # stored 6 (the cap)
     p.write_bytes(canonical_json(f) + b"\n")
     _resign(work, built_case.home)
     rep = verify_bundle(work, robustness=False, disclosure=built_case.disclosure)
     text = _failed(rep)
     assert "exhibit-1 re-run" in {c["check"] for c in rep.failures}, text
     assert f"content.statistic.value: stored {value + 40}, reproduced {value}" in text
-    assert "evaluation.reported_log10_lr: stored 6.0" in text
+    assert "evaluation.reported_log10_lr: stored 2.5" in text
 
 
 def test_exit_code_and_error_line(built_case, tmp_path, capsys):
