@@ -235,7 +235,7 @@ class BatchSummary:
 
     def as_dict(self) -> dict:
         return {"marked": self.marked, "already_done": self.skipped, "restored": self.restored,
-                "failed": len(self.failures), "not_started": self.not_started,
+                "files_failed": len(self.failures), "not_started": self.not_started,
                 "stopped": self.stopped, "seconds": round(self.seconds, 2)}
 
 

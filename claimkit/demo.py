@@ -27,6 +27,7 @@ from PIL import Image
 from skimage import data
 from skimage.transform import rescale
 
+from claimkit import words
 from claimkit.case.bundle import export_bundle
 from claimkit.case.examine import examine_case
 from claimkit.case.store import add_exhibit, new_case
@@ -236,8 +237,8 @@ def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None =
         for f in findings:
             r = f["result"]
             al = f.get("alignment") or {}
-            say(f"   {f['exhibit_id']}: {'MARK FOUND' if r['detected'] else 'no mark found'}"
-                f", work {r.get('work_id')}, false-alarm bound {r['false_alarm_text']}"
+            say(f"   {f['exhibit_id']}: {words.verdict(r)}, false-alarm bound "
+                f"{r['false_alarm_text']}"
                 + (f", SSIM after alignment {al['ssim']:.3f}" if al.get("aligned") else ""))
         built = build_report(case, profile)
         say(f"6. dossier: {built['pdf']} (PAdES-signed) and {built['html']}")

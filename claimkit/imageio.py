@@ -44,7 +44,6 @@ from pathlib import Path
 from typing import TypeVar
 
 import numpy as np
-import tifffile
 from PIL import Image, UnidentifiedImageError
 from PIL.PngImagePlugin import PngInfo
 
@@ -611,6 +610,8 @@ def _is_16bit_multichannel_tiff(im: Image.Image) -> bool:
 
 def _read_tiff16(data: bytes) -> tuple[np.ndarray, np.ndarray | None] | None:
     """Full-precision 16-bit colour TIFF through tifffile; None if it cannot."""
+    import tifffile  # loaded only for such files: most commands never need it
+
     try:
         with tifffile.TiffFile(io.BytesIO(data)) as tif:
             page = tif.pages[0]
@@ -1001,6 +1002,8 @@ def _encode_tiff16(pixels: np.ndarray, alpha: np.ndarray | None, like: Picture) 
             value = exif.get(tag)
             if isinstance(value, str) and value:
                 extratags.append((tag, "s", 0, value, True))
+    import tifffile
+
     buf = io.BytesIO()
     tifffile.imwrite(
         buf,

@@ -95,8 +95,8 @@ class ScanSummary:
     report: str | None = None
 
     def as_dict(self) -> dict:
-        return {"summary": True, "files_read": self.read, "claimed": self.claimed,
-                "claimed_registered": self.registered, "unreadable": len(self.unreadable),
+        return {"files_read": self.read, "claimed": self.claimed,
+                "claimed_registered": self.registered, "files_unreadable": len(self.unreadable),
                 "added_to_case": self.added_to_case, "not_started": self.not_started,
                 "passed_over": self.passed_over,
                 "seconds": round(self.seconds, 2),

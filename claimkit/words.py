@@ -15,11 +15,25 @@ from __future__ import annotations
 
 import math
 
-__all__ = ["FLOOR_LOG10", "geometry", "probability"]
+__all__ = ["FLOOR_LOG10", "MARK_FOUND", "NO_MARK", "geometry", "probability", "verdict"]
 
 #: Below this the words stop at "below 10^-12": smaller numbers tell a reader nothing more
 #: and rest ever harder on the model; the exact bound stays in the JSON (log10).
 FLOOR_LOG10 = -12
+
+
+#: The verdict of an examination, in the same words in every command (``examine``, ``scan``,
+#: ``case examine``, the demo): the mark was found, or it was not.
+MARK_FOUND = "MARK FOUND"
+NO_MARK = "no mark of this owner found"
+
+
+def verdict(rep: dict) -> str:
+    """An examination's verdict: "MARK FOUND, work W-..." (qualified) or :data:`NO_MARK`."""
+    if not rep.get("detected"):
+        return NO_MARK
+    who = f"work {rep['work_id']}" if rep.get("work_id") else "payload unreadable"
+    return f"{MARK_FOUND}, {who}" + ("" if rep.get("registered") else " (not in this registry)")
 
 
 def probability(log10p: float) -> str:

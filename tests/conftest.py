@@ -38,6 +38,7 @@ def _no_real_home(tmp_path, monkeypatch):
     (an empty folder, so "no profile" still applies) unless a test sets it otherwise."""
     monkeypatch.setenv("CLAIMKIT_HOME", str(tmp_path / "no-profile-home"))
     monkeypatch.delenv("CLAIMKIT_PASSPHRASE", raising=False)
+    monkeypatch.delenv("CLAIMKIT_SESSION", raising=False)     # a session of the user's shell
 
 
 @pytest.fixture

@@ -85,7 +85,9 @@ def test_dossier_lists_the_collection_facts(site, reported):
     # of TSA accuracy and rounding either way).
     cap = data["collection"]["captures"][0]
     assert -1.0 <= cap["clock_vs_token_s"] <= 60
-    assert "of the last of them" in flat and "BEFORE" not in flat
+    # "N s after the last of them", or "within a second of the last of them" (the template's
+    # two wordings for a token at or after the records; which one depends on the load).
+    assert "the last of them" in flat and "BEFORE" not in flat
 
 
 def test_verify_checks_each_exhibit_against_its_warc_record_and_the_token(reported, capsys):

@@ -77,7 +77,7 @@ def test_scan_finds_every_marked_image_in_a_wget_warc(site, shop_owner, wget_war
     # The human lines name the URL and the capture date too.
     code, out, _ = _run(capsys, "scan", wget_warc, "--workers", "1")
     line = next(x for x in out.splitlines() if site.url("/img/mug.jpg") + " " in x)
-    assert line.startswith("CLAIMED") and expected[site.url("/img/mug.jpg")] in line
+    assert line.startswith("MARK FOUND") and expected[site.url("/img/mug.jpg")] in line
 
 
 def test_scan_case_takes_warc_images_in_with_their_record(site, shop_owner, wget_warc, capsys,

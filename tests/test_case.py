@@ -162,8 +162,13 @@ def test_alignment_recovers_the_crop_and_measures_similarity(built_case):
     assert turned["aligned"] and turned["rotation_deg"] == pytest.approx(4.0, abs=0.3)
     assert turned["scale"] == pytest.approx(0.8, abs=0.01) and turned["ssim"] > 0.85
     ref = case.finding("exhibit-1")["reference"]
-    assert ref["kind"] == "marked"
-    assert ref["sha256"] == _sha(built_case.studio / "morning-cup-web.jpg")
+    # Compared with a reduced-resolution reference (long side 1024 px) of the published file.
+    assert ref["kind"] == "reduced" and ref["made_from"]["kind"] == "marked"
+    assert ref["made_from"]["sha256"] == _sha(built_case.studio / "morning-cup-web.jpg")
+    assert ref["sha256"] == _sha(built_case.case / ref["file"])
+    with Image.open(built_case.case / ref["file"]) as im:
+        assert max(im.size) == 1024 and im.size == tuple(ref["size"])
+        assert ref["scale"] == pytest.approx(1024 / max(W, H))
 
 
 def test_alignment_ssim_matches_skimage_on_the_stored_arrays(built_case):
@@ -179,8 +184,9 @@ def test_alignment_ssim_matches_skimage_on_the_stored_arrays(built_case):
     with np.load(built_case.case / f["arrays"]["file"]) as a:
         aligned, mask = a["aligned"].astype(float), a["mask"]
     ref = to_luma(read_picture(built_case.case / f["reference"]["file"]).pixels).astype(float)
-    s = f["alignment"]["work_scale"]
-    ref = rescale(ref, s, anti_aliasing=True, preserve_range=True) if s < 1 else ref
+    # work_scale is per registered-picture pixel; the file is already reduced by "scale".
+    s = f["alignment"]["work_scale"] / f["reference"]["scale"]
+    ref = rescale(ref, s, anti_aliasing=True, preserve_range=True) if s < 1 - 1e-9 else ref
     _, smap = structural_similarity(ref, aligned, data_range=255.0, full=True)
     inner = ndimage.binary_erosion(mask, iterations=4)
     # The stored copy is rounded to 8 bits, so allow a little.

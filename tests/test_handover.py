@@ -9,6 +9,7 @@ hash-chained log; a disclosure is a choice, says what it reveals, and is logged.
 
 from __future__ import annotations
 
+import io
 import json
 import shutil
 import zipfile
@@ -138,6 +139,16 @@ def test_no_key_material_no_absolute_path_no_master(two_cases, built_case):
                         and "payload_tag" not in d["payload"] for d in docs)
     manifest = json.loads(files["manifest.json"])
     assert manifest["key_material"] == "withheld"
+    # Nor the key's spot pattern: the prescribed and recovered messages (with the published
+    # file, they give the carrier's phases) stay out, arrays and figure, named by hash.
+    with zipfile.ZipFile(two_cases["bundle"]) as zf:
+        for rel in zf.namelist():
+            if rel.endswith(".npz"):
+                with np.load(io.BytesIO(zf.read(rel))) as arr:
+                    assert not {"reference", "recovered"} & set(arr.files), rel
+            assert not rel.endswith(("-message.png", "-message.npz")), rel
+    withheld = {w["path"] for w in manifest["withheld"]}
+    assert {f"findings/exhibit-{i}-message.npz" for i in (1, 2, 3, 4)} <= withheld
     # The unmarked master (the studio original) is not among the bundle's files.
     master = (built_case.studio / "morning-cup.png").read_bytes()
     assert all(master not in data for data in files.values())
@@ -198,6 +209,9 @@ def test_disclose_says_what_it_reveals_and_logs_it(two_cases, built_case, tmp_pa
         doc = json.loads(zf.read(f"handover/disclosures/{built_case.work_id}/disclosure.json"))
         assert doc["keys"]["seeds"]["detection"] == two_cases["seed"].hex()
         assert json.loads(zf.read("manifest.json"))["key_material"] == "disclosed"
+        # With the keys go the messages they prescribe, and their figure.
+        names = set(zf.namelist())
+        assert {"findings/exhibit-1-message.npz", "report/figures/exhibit-1-message.png"} <= names
 
 
 def test_export_disclose_refuses_a_report_built_without_keys(two_cases, tmp_path, capsys):
@@ -339,3 +353,26 @@ def test_pdf_text_tolerance():
     ok, why = pdf_texts_agree(base, _pdf("Exhibit 1: SSIM 0.9875 after alignment, log10 P -23.41"))
     assert not ok and "0.9875" in why
     assert not pdf_texts_agree(base, _pdf("Exhibit 2: SSIM 0.9871 after alignment, log10 P -23.41"))[0]
+
+
+def test_report_refuses_arrays_that_hold_the_key_pattern(two_cases, tmp_path, capsys):
+    """A case examined before the message arrays were kept apart: no default bundle of it."""
+    from claimkit.evidence.storage import sha256_file
+
+    c1 = tmp_path / "c1"
+    shutil.copytree(two_cases["c1"], c1)
+    fpath = c1 / "findings" / "exhibit-1.json"
+    f = json.loads(fpath.read_bytes())
+    npz = c1 / f["arrays"]["file"]
+    with np.load(npz) as a, np.load(c1 / f.pop("message_arrays")["file"]) as m:
+        old = {**{k: a[k] for k in a.files}, **{k: m[k] for k in m.files}}
+    npz.chmod(0o644)
+    np.savez_compressed(npz, **old)
+    f["arrays"]["sha256"] = sha256_file(npz)
+    fpath.chmod(0o644)
+    fpath.write_bytes(canonical_json(f) + b"\n")
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setenv("CLAIMKIT_PASSPHRASE", PASS)
+        assert main(["report", str(c1), "--home", str(two_cases["home"])]) == 2
+    err = capsys.readouterr().err
+    assert "hold the key's message pattern" in err and err.startswith("claimkit: error: ")

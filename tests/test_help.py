@@ -26,3 +26,20 @@ def test_every_command_and_option_has_help():
             if not action.help or action.help == argparse.SUPPRESS:
                 missing.append(f"{path} {'/'.join(action.option_strings) or action.dest}")
     assert not missing, missing
+
+
+def test_the_parser_and_the_profile_listing_load_no_numerics(tmp_path, profile_home):
+    # Start-up of one-shot commands (benchmarks/bench_startup.py measures it): building the
+    # parser, and a command that only reads the registry, must not import NumPy or SciPy
+    # (a module-level import of the numeric core in a command module would bring both back).
+    import subprocess
+    import sys
+
+    probe = ("import sys; from claimkit.cli import build_parser, main; build_parser(); "
+             "code = main(sys.argv[1:]) if sys.argv[1:] else 0; "
+             "heavy = sorted(m for m in ('numpy', 'scipy', 'PIL') if m in sys.modules); "
+             "print(code, heavy, file=sys.stderr)")
+    for argv in ([], ["works"]):
+        out = subprocess.run([sys.executable, "-c", probe, *argv], capture_output=True, text=True,
+                             check=False, cwd=tmp_path)
+        assert out.stderr.strip().splitlines()[-1:] == ["0 []"], (argv, out.stderr[-2000:])

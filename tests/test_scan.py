@@ -75,9 +75,9 @@ def test_scan_claims_the_marked_copies_and_names_their_works(profile, finds, tmp
     assert by["cat.jpg"]["detected"] is False and by["cat.jpg"]["work_id"] is None
     assert "broken.jpg" in by["broken.jpg"]["error"]["message"]
     assert [by[n]["status"] for n in names] == ["not-found", "claimed", "unreadable", "claimed"]
-    summary = json.loads(err.strip().splitlines()[0])
-    assert summary["summary"] and summary["files_read"] == 3 and summary["claimed"] == 2
-    assert summary["unreadable"] == 1 and summary["passed_over"] == 1    # page.html
+    summary = json.loads(err.strip().splitlines()[0])["summary"]
+    assert summary["files_read"] == 3 and summary["claimed"] == 2
+    assert summary["files_unreadable"] == 1 and summary["passed_over"] == 1    # page.html
     assert "claimkit: error: " in err and "broken.jpg" in err
     # The CSV has the same files, in the same order, with the same verdicts.
     with report.open(newline="") as fh:
@@ -225,5 +225,5 @@ def test_ctrl_c_keeps_the_report_of_the_files_done(profile, finds, tmp_path, mon
     assert len(rows) == 2
     with report.open(newline="") as fh:
         assert [r["file"] for r in csv.DictReader(fh)] == [r["file"] for r in rows]
-    summary = next(json.loads(x) for x in cap.err.splitlines() if x.startswith("{"))
+    summary = next(json.loads(x) for x in cap.err.splitlines() if x.startswith("{"))["summary"]
     assert summary["files_read"] == 2 and summary["not_started"] == 2

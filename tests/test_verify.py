@@ -61,7 +61,7 @@ def test_sound_bundle_with_pins_and_disclosure_passes_every_check(built_case, ca
     assert {"manifest signature", "file hashes", "custody log", "custody of exhibits",
             "signer key", "timestamp authority", f"disclosure {built_case.work_id}",
             "exhibit-1 re-run", "exhibit-2 re-run", "exhibit-3 re-run", "exhibit-4 re-run",
-            "dossier data", "figures",
+            "dossier data", "figures", f"reference {built_case.work_id}",
             "HTML dossier", "PDF signature", "PDF content",
             f"robustness {built_case.work_id}"} <= names
     work = [c for c in checks if c["check"] == f"work {built_case.work_id}"]
@@ -334,6 +334,10 @@ def test_folder_with_a_link_out_is_refused(built_case, tmp_path):
     ("findings/exhibit-1.json", "arrays", {"file": "../../outside.npz", "sha256": "0" * 64}),
     ("findings/exhibit-1.json", "reference", {"file": "/etc/hostname", "kind": "marked",
                                          "sha256": "0" * 64}),
+    ("findings/exhibit-1.json", "message_arrays", {"file": "../../outside.npz",
+                                              "sha256": "0" * 64}),
+    ("findings/exhibit-1.json", "reference", {"file": "references/x.png", "kind": "reduced",
+                                         "made_from": {"file": "/etc/hostname"}}),
     ("exhibits/exhibit-1.json", "file", "exhibits/../../../etc/hostname"),
     ("exhibits/exhibit-1.json", "exhibit_id", "../exhibit-1"),
 ])

@@ -44,13 +44,23 @@ def check_object(command: str, obj: dict) -> None:
         assert " " not in obj["status"]
 
 
-def run_json(capsys, command: str, argv: list[str], *, code: int = 0) -> list[dict]:
+def run_json(capsys, command: str, argv: list[str], *, code: int = 0,
+             summary: bool = False) -> list[dict]:
+    """Run a command; check every JSON object on stdout, and with ``summary`` the summary
+    object on stderr (its one line of JSON, beside the human ``claimkit: error:`` lines)
+    and every field inside it. Returns the stdout rows, then the summary object."""
     assert main(argv) == code, (argv, capsys.readouterr().err)
     cap = capsys.readouterr()
     rows = [json.loads(line) for line in cap.out.splitlines() if line.strip()]
     assert rows, f"{command} printed no JSON"
     for row in rows:
         check_object(command, row)
+    if summary:
+        told = [json.loads(x) for x in cap.err.splitlines() if x.startswith("{")]
+        assert len(told) == 1 and list(told[0]) == ["summary"], (command, cap.err)
+        check_object(f"{command} (stderr)", told[0])
+        check_object(f"{command} (stderr summary)", told[0]["summary"])
+        rows.append(told[0]["summary"])
     return rows
 
 
@@ -85,8 +95,10 @@ def test_every_command_speaks_the_vocabulary(tmp_path, monkeypatch, capsys, loca
     run("rights show", ["rights", "show", "--json"])
     marked = tmp_path / "web" / "cup.jpg"
     mark = run("mark", ["mark", str(shoot / "cup.png"), "--out", str(marked), "--json"])[0]
-    run("mark (folder)", ["mark", str(shoot), "--out", str(tmp_path / "marked"), "--json",
-                          "--workers", "1"])
+    told = run("mark (folder)", ["mark", str(shoot), "--out", str(tmp_path / "marked"), "--json",
+                                 "--workers", "1"], summary=True)[-1]
+    assert told["inputs"] == 2 and told["marked"] + told["already_done"] == 2
+    assert told["files_failed"] == 0
     run("works", ["works", "--json"])
     run("works show", ["works", "show", mark["work_id"], "--json"])
     tsq = tmp_path / "s.tsq"
@@ -116,8 +128,14 @@ def test_every_command_speaks_the_vocabulary(tmp_path, monkeypatch, capsys, loca
                    str(tmp_path / "d.pdf")])
     run("case export", ["case", "export", str(case), "--out", str(tmp_path / "b.zip"), "--json"])
     run("verify", ["verify", str(tmp_path / "b.zip"), "--json"])
-    run("scan", ["scan", str(tmp_path / "found"), "--json", "--workers", "1"], code=1)
+    told = run("scan", ["scan", str(tmp_path / "found"), "--json", "--workers", "1"], code=1,
+               summary=True)[-1]
+    assert told["files_read"] == 1 and told["claimed"] == 1 and told["files_unreadable"] == 1
     run("case withdraw", ["case", "withdraw", str(case), "1", "--reason", "licensed", "--json"])
+    monkeypatch.setenv("XDG_RUNTIME_DIR", str(tmp_path))      # the session file's folder
+    session = run("unlock", ["unlock", "--for", "5m", "--json"])[0]
+    monkeypatch.setenv(session["variable"], session["session"])
+    run("lock", ["lock", "--json"])
     # Every field of the vocabulary but those of commands not run here is in use.
     unused = set(VOCAB["fields"]) - seen - set(VOCAB.get("not_run_here", []))
     assert not unused, f"listed but never printed: {sorted(unused)}"

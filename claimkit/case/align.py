@@ -104,13 +104,19 @@ def _measure(ref: np.ndarray, aligned: np.ndarray, mask: np.ndarray) -> tuple[fl
     return float(smap[inner].mean()), inner
 
 
-def align(reference_luma: np.ndarray, copy_luma: np.ndarray, geometry: dict | None) -> Alignment:
+def align(reference_luma: np.ndarray, copy_luma: np.ndarray, geometry: dict | None, *,
+          reference_scale: float = 1.0) -> Alignment:
     """Align ``copy_luma`` to ``reference_luma`` and measure their similarity.
 
     Parameters
     ----------
     reference_luma, copy_luma : ndarray
         Luma on a 0..255 scale (see :func:`claimkit.imageio.to_luma`).
+    reference_scale : float
+        Reference pixels per pixel of the registered picture: 1 for the
+        registered file itself, below 1 for a reduced-resolution reference
+        (:mod:`claimkit.case.reference`). Geometries come in, and the numbers go
+        out (``work_scale``, ``crop_box_px``), in registered-picture pixels.
     geometry : dict or None
         A geometry (``matrix``: the original-to-copy linear map in (x, y) with
         y pointing down). With a ``source`` (the content line's registration)
@@ -124,11 +130,13 @@ def align(reference_luma: np.ndarray, copy_luma: np.ndarray, geometry: dict | No
     """
     ref_full = np.asarray(reference_luma, dtype=np.float64)
     copy = np.asarray(copy_luma, dtype=np.float64)
+    r = float(reference_scale)
     s = _work_scale(ref_full.shape)
     ref = rescale(ref_full, s, anti_aliasing=True, preserve_range=True) if s < 1 else ref_full
+    registered_shape = (round(ref_full.shape[0] / r), round(ref_full.shape[1] / r))
     if geometry and geometry.get("level"):
         # Found at a coarse view: the matrix is against the original's coarse level.
-        geometry = scales.relative_to_original(geometry, ref_full.shape[:2])
+        geometry = scales.relative_to_original(geometry, registered_shape)
     if geometry and geometry.get("matrix") and geometry.get("source"):
         # A geometry from picture content is unambiguous: one reading only.
         candidates = [(str(geometry["source"]), np.asarray(geometry["matrix"], dtype=float))]
@@ -137,14 +145,14 @@ def align(reference_luma: np.ndarray, copy_luma: np.ndarray, geometry: dict | No
         # A lattice looks the same turned by 180 degrees; try both readings.
         candidates = [("mark geometry", m), ("mark geometry, turned 180 degrees", -m)]
     else:
-        rw = copy.shape[1] / ref_full.shape[1]
-        rh = copy.shape[0] / ref_full.shape[0]
+        rw = copy.shape[1] / registered_shape[1]
+        rh = copy.shape[0] / registered_shape[0]
         candidates = [(f"assumed scale {k:.4g}", np.eye(2) * k) for k in sorted({1.0, rw, rh})]
     ref_half = rescale(ref, 0.5, anti_aliasing=True, preserve_range=True)
     copy_half = rescale(copy, 0.5, anti_aliasing=True, preserve_range=True)
     best = None
     for how, m in candidates:
-        lin = m / s                      # working-reference coordinates -> copy coordinates
+        lin = m / (s * r)                # working-reference coordinates -> copy coordinates
         try:
             # Coarse translation at half the working resolution (the masked search is the
             # slow step); y = lin x + t at full scale is y/2 = lin (x/2) + t/2 at half scale.
@@ -174,14 +182,14 @@ def align(reference_luma: np.ndarray, copy_luma: np.ndarray, geometry: dict | No
     if best is None:
         empty = np.zeros(ref.shape, np.uint8)
         return Alignment({"aligned": False, "reason": "the copy and the original share no area",
-                          "work_scale": round(s, 6)}, empty, empty, np.zeros(ref.shape, bool))
+                          "work_scale": round(s * r, 6)}, empty, empty, np.zeros(ref.shape, bool))
     score, how, m, lin, t, aligned, mask, inner = best
     diff = np.where(mask, np.abs(ref - aligned), 0.0)
     # The copy's corners in original pixels: what part of the original it shows.
     h, w = copy.shape
     corners = np.array([[0, 0], [w, 0], [0, h], [w, h]], dtype=float)
-    foot = (corners - t) @ np.linalg.inv(lin).T / s
-    H, W = ref_full.shape
+    foot = (corners - t) @ np.linalg.inv(lin).T / (s * r)
+    H, W = registered_shape
     x0, y0 = np.clip(foot.min(axis=0), 0, [W, H])
     x1, y1 = np.clip(foot.max(axis=0), 0, [W, H])
     shared = float(mask.mean())
@@ -193,7 +201,7 @@ def align(reference_luma: np.ndarray, copy_luma: np.ndarray, geometry: dict | No
     numbers = {
         "aligned": True,
         "how": how,
-        "work_scale": round(s, 6),
+        "work_scale": round(s * r, 6),      # working pixels per registered-picture pixel
         "work_size": [int(ref.shape[1]), int(ref.shape[0])],
         "rotation_deg": round(-angle, 2),
         "scale": round(float(np.sqrt(abs(np.linalg.det(m)))), 4),

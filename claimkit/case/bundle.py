@@ -56,7 +56,8 @@ def export_bundle(case: Case, out: str | os.PathLike, profile=None, *, force: bo
     if disclose and key_material != "disclosed":
         raise InputError("the report was built without key material: run claimkit report "
                          "with --disclose first", path=root)
-    present = bundle_files(root, include_original=bool(manifest.get("include_original")))
+    present = bundle_files(root, include_original=bool(manifest.get("include_original")),
+                           include_message=key_material == "disclosed")
     changed = [rel for rel in present if rel not in listed or sha256_file(root / rel) != listed[rel]]
     changed += [rel for rel in listed if rel not in present]
     if changed:

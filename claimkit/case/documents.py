@@ -226,7 +226,8 @@ class FindingDoc(Document):
     KIND: ClassVar[str] = "finding"
     # Findings stored before the content line (claimkit 0.2) lack these three: they are
     # written back without them, so such a finding still round-trips to the byte.
-    OMIT_NONE: ClassVar[tuple[str, ...]] = ("content", "content_mismatch", "evaluation")
+    OMIT_NONE: ClassVar[tuple[str, ...]] = ("content", "content_mismatch", "evaluation",
+                                            "message_arrays")
     exhibit_id: str
     exhibit_sha256: str
     examined: dict
@@ -241,6 +242,7 @@ class FindingDoc(Document):
     content: dict | None = None            # the content line (claimkit.content)
     content_mismatch: bool | None = None   # a mark in a picture that does not show its work
     evaluation: dict | None = None         # propositions, likelihood ratios, verbal scale
+    message_arrays: dict | None = None     # recovered/prescribed message (keyed; older: in arrays)
 
 
 @dataclass

@@ -4,9 +4,11 @@ For each exhibit (after re-checking its SHA-256): the blind examination with
 the owner's key and a decoy-key control (the same search under
 :data:`DEFAULT_DECOYS` random keys, the null distribution the observed score
 is set against); the registered work it names (by the payload's work ID, or
-else by the perceptual fingerprint); where the registered file is at hand,
-the alignment of the copy to it (SSIM after alignment, crop box, difference
-map); and the robustness battery of the registered marked file, once per work.
+else by the perceptual fingerprint); where the registered file is at hand, a
+reduced-resolution reference of it (:mod:`claimkit.case.reference`), which the
+content line and the alignment of the copy (SSIM after alignment, crop box,
+difference map) use; and the robustness battery of the registered marked file,
+once per work.
 
 Numbers go to ``findings/EXX.json`` (canonical JSON) and arrays to
 ``findings/EXX.npz``; the dossier reads both and computes nothing of its own.
@@ -24,6 +26,7 @@ import numpy as np
 
 from claimkit import __version__, workflow
 from claimkit.case import layout
+from claimkit.case import reference as reduced_reference
 from claimkit.case.align import align
 from claimkit.case.documents import FindingDoc
 from claimkit.case.store import Case, Exhibit, checked_exhibit_path
@@ -40,6 +43,7 @@ __all__ = [
     "DECOY_SEED",
     "DEFAULT_DECOYS",
     "FINDING_TYPE",
+    "MASTER_ONLY",
     "decoy_summary",
     "examine_case",
     "examine_exhibit",
@@ -50,6 +54,10 @@ __all__ = [
 ]
 
 FINDING_TYPE = FindingDoc.type_name()
+#: Why nothing was aligned when only the unmarked master was at hand.
+MASTER_ONLY = ("only the unmarked master was at hand: a reference made from it would, beside "
+               "the published marked file, give away the mark; give the published marked file "
+               "with --originals (or examine with --reference-from-master)")
 DEFAULT_DECOYS = 64     # random keys in the decoy control; each costs about one pilot search
 DECOY_SEED = 0          # fixed, so that anyone re-running the control gets the same keys
 
@@ -92,15 +100,19 @@ def alignment_geometry(content: dict) -> dict | None:
 
 def weigh_lines(luma: np.ndarray, *, exhibit_id: str, rep: dict, threshold: float,
                 match: dict | None, work_record: dict | None, owner: str | None,
-                reference_luma: np.ndarray | None, reference_kind: str | None,
+                reference_luma: np.ndarray | None, reference: dict | None,
                 robustness: dict | None, label: str | None = None) -> dict:
-    """The content line and the evaluation of one exhibit (shared with ``verify``'s re-run)."""
-    what = {"marked": "registered marked file (as published)",
-            "original": "registered original file"}.get(reference_kind or "", "reference")
+    """The content line and the evaluation of one exhibit (shared with ``verify``'s re-run).
+
+    ``reference`` is the finding's description of ``reference_luma`` (its kind, and
+    for a reduced reference its scale to the registered picture).
+    """
     return jsonable(weigh(luma, label=label or layout.exhibit_label(exhibit_id), mark=rep,
                           threshold=threshold,
                           work_id=(match or {}).get("work_id"), work_record=work_record,
-                          owner=owner, reference_luma=reference_luma, reference=what,
+                          owner=owner, reference_luma=reference_luma,
+                          reference=reduced_reference.describe(reference),
+                          reference_scale=reduced_reference.scale_of(reference),
                           robustness=robustness))
 
 
@@ -143,7 +155,8 @@ def find_reference(case: Case, work_record: dict, search: list[Path]) -> tuple[P
                 if p.stat().st_size > 512 << 20:
                     continue
                 digest = sha256_file(p)
-                if digest in wanted and wanted[digest] not in found:
+                if digest in wanted and wanted[digest] not in found and not (
+                        wanted[digest] == "original" and "marked" in found):
                     refs.mkdir(exist_ok=True)
                     dest = case.root / layout.reference_file(digest, p.suffix)
                     if not dest.exists():
@@ -191,8 +204,17 @@ def jsonable(obj):
 def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_DECOYS,
                     search: list[Path] | None = None, threshold: float = detect.DEFAULT_THRESHOLD,
                     robustness_cache: dict | None = None, workers: int = 1,
-                    robustness: bool = True) -> dict:
-    """Examine one exhibit; write ``findings/EXX.json`` and ``.npz``; return the finding."""
+                    robustness: bool = True, reference_from_master: bool = False) -> dict:
+    """Examine one exhibit; write ``findings/EXX.json`` and ``.npz``; return the finding.
+
+    The content line and the alignment compare the exhibit with a reduced-resolution
+    reference of the registered marked file. When only the unmarked master is at hand,
+    no reference is made unless ``reference_from_master``: the published marked file
+    less a reduced master is the mark itself at that resolution (measured on the demo's
+    photo: an estimate correlated 0.85 with the true mark, and subtracting it halved the
+    examination's score), so such a reference helps whoever holds the bundle strip or
+    copy the mark. The content line then falls back to the record's fingerprint.
+    """
     robustness_wanted = robustness
     path = checked_exhibit_path(case, ex)
     pic = read_picture(path, method=CURRENT_EXAMINATION_METHOD)
@@ -205,9 +227,11 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
     if rep["sha256"] != ex.sha256:
         raise CheckFailed(f"{ex.exhibit_id}: stored copy changed during the examination", path=path)
     match = match_work(profile, rep, luma)
-    arrays = {"surface": finding.surface.astype(np.float32),
-              "recovered": finding.recovered.astype(np.float32),
-              "reference": finding.reference.astype(np.float32)}
+    arrays = {"surface": finding.surface.astype(np.float32)}
+    # The prescribed message is the key's spot pattern and the recovered one shows it too:
+    # kept apart, so that a bundle without key material leaves them out.
+    message = {"recovered": finding.recovered.astype(np.float32),
+               "reference": finding.reference.astype(np.float32)}
     alignment = None
     robustness = None
     reference = None
@@ -217,11 +241,18 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
     if match is not None:
         work = profile.work(match["work_id"])
         found = find_reference(case, work.record, list(search or []))
+        if found is not None and found[1] == "original" and not reference_from_master:
+            found = None
+            alignment = {"aligned": False, "reason": MASTER_ONLY}
+        elif found is None:
+            alignment = {"aligned": False,
+                         "reason": "the registered file was not at hand (give --originals)"}
         if found is not None:
             ref_path, kind = found
-            reference = {"file": ref_path.relative_to(case.root).as_posix(), "kind": kind,
-                         "sha256": sha256_file(ref_path)}
-            ref_luma = to_luma(read_picture(ref_path).pixels)
+            # Copies are compared with a reduced-resolution reference, never the master
+            # itself, so that the bundle can re-run the comparison without the master.
+            reference, ref_luma = reduced_reference.make_reduced(case.root, work.work_id,
+                                                                 ref_path, kind)
             if kind == "marked" and not robustness_wanted:
                 robustness = {"status": "not run", "reason": "skipped at the examiner's request"}
             elif kind == "marked":
@@ -229,26 +260,25 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
                 if match["work_id"] not in cache:
                     cache[match["work_id"]] = _robustness(profile, match["work_id"], ref_path)
                 robustness = cache[match["work_id"]]
-        else:
-            reference = None
-            alignment = {"aligned": False,
-                         "reason": "the registered file was not at hand (give --originals)"}
     lines = weigh_lines(luma, exhibit_id=ex.exhibit_id, rep=rep, threshold=threshold, match=match,
                         work_record=None if work is None else work.record, owner=profile.owner,
-                        reference_luma=ref_luma, reference_kind=kind, robustness=robustness)
+                        reference_luma=ref_luma, reference=reference, robustness=robustness)
     if ref_luma is not None:
         geom = alignment_geometry(lines["content"])
         if geom is None:
             alignment = {"aligned": False, "reason": "the content line did not find the registered "
                          "picture in the copy, so there is nothing to lay over it"}
         else:
-            al = align(ref_luma, luma, geom)
+            al = align(ref_luma, luma, geom,
+                       reference_scale=reduced_reference.scale_of(reference))
             alignment = al.numbers
             arrays.update(aligned=al.aligned, difference=al.difference, mask=al.mask)
     npz = case.arrays_path(ex.exhibit_id)
-    tmp = npz.with_name(f".{npz.name}.part.npz")
-    np.savez_compressed(tmp, **arrays)
-    os.replace(tmp, npz)
+    keyed = case.root / layout.message_arrays_file(ex.exhibit_id)
+    for dest, content in ((npz, arrays), (keyed, message)):
+        tmp = dest.with_name(f".{dest.name}.part.npz")
+        np.savez_compressed(tmp, **content)
+        os.replace(tmp, dest)
     doc = {
         "type": FINDING_TYPE,
         "exhibit_id": ex.exhibit_id,
@@ -266,6 +296,8 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
         "robustness": robustness,
         **lines,
         "arrays": {"file": npz.relative_to(case.root).as_posix(), "sha256": sha256_file(npz)},
+        "message_arrays": {"file": layout.message_arrays_file(ex.exhibit_id),
+                           "sha256": sha256_file(keyed)},
     }
     data = FindingDoc.from_json(doc).write(case.finding_path(ex.exhibit_id))
     profile.log_action("exhibit examined",
@@ -279,7 +311,8 @@ def examine_exhibit(case: Case, ex: Exhibit, profile, *, decoys: int = DEFAULT_D
 
 def examine_case(case: Case, profile, *, decoys: int = DEFAULT_DECOYS,
                  search: list[Path] | None = None, threshold: float = detect.DEFAULT_THRESHOLD,
-                 workers: int = 1, progress=None, robustness: bool = True) -> list[dict]:
+                 workers: int = 1, progress=None, robustness: bool = True,
+                 reference_from_master: bool = False) -> list[dict]:
     """Examine every exhibit of the case (in order); returns the findings."""
     exhibits = case.exhibits()
     if not exhibits:
@@ -292,7 +325,8 @@ def examine_case(case: Case, profile, *, decoys: int = DEFAULT_DECOYS,
             continue     # withdrawn from the claims: kept in the record, not examined again
         doc = examine_exhibit(case, ex, profile, decoys=decoys, search=search,
                               threshold=threshold, robustness_cache=cache, workers=workers,
-                              robustness=robustness)
+                              robustness=robustness,
+                              reference_from_master=reference_from_master)
         if progress is not None:
             progress(ex, doc)
         out.append(doc)

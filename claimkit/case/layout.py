@@ -9,8 +9,12 @@ serves the case (which writes exhibits, findings and references), the dossier
     case.json                     title, case ID, owner (canonical JSON)
     exhibits/E01-NAME.EXT         the disputed file, byte for byte, read-only
     exhibits/E01.json             its intake record
-    references/SHA256.EXT         the registered file a copy is aligned to (by hash)
+    references/SHA256.EXT         a registered file (marked or master) by its hash
+    references/reduced-SHA256.png its reduced-resolution reference, what copies are compared
+                                  with (the master goes into a bundle only on request)
     findings/E01.json, E01.npz    the examination: numbers, arrays
+    findings/E01-message.npz      the recovered and the prescribed message: drawn from the key,
+                                  so in a bundle only with the key disclosure (report --disclose)
     captures/cap-*.warc.gz|json   web captures: the WARC, its record, snapshots, token
     captures/warc-*               a crawler's WARC file that exhibits were taken from
     handover/public-key.pem       the owner's public key
@@ -68,6 +72,8 @@ __all__ = [
     "finding_file",
     "inside",
     "intake_record",
+    "message_arrays",
+    "message_arrays_file",
     "reference_file",
     "references_used",
     "unsafe_name",
@@ -154,6 +160,16 @@ def reference_file(sha256: str, suffix: str) -> str:
     return f"{REFERENCES}/{sha256}{suffix.lower()}"
 
 
+def message_arrays_file(exhibit_id: str) -> str:
+    """The message arrays of a finding (``.npz``): recovered and prescribed message.
+
+    The prescribed message is the key's spot pattern; set beside a published marked
+    file it lets anyone estimate the key's carrier, so these go into a bundle only
+    with key material.
+    """
+    return f"{FINDINGS}/{exhibit_id}-message.npz"
+
+
 def figure_file(exhibit_id: str, kind: str) -> str:
     """A figure of the dossier (``kind``: thumbnail, message, surface, decoys, aligned)."""
     return f"{FIGURES}/{exhibit_id}-{kind}.png"
@@ -170,7 +186,12 @@ def inside(root: Path, rel: object, folder: str) -> str | None:
 
 
 def references_used(root: Path) -> dict[str, str]:
-    """Reference files the findings align to: relative path -> kind ("marked", "original")."""
+    """Reference files the findings use: relative path -> kind.
+
+    Kinds: "reduced" (the reduced-resolution reference copies are compared with),
+    "marked" (the registered marked file) and "original" (the unmarked master),
+    the last two also when a reduced reference was made from them.
+    """
     import json
 
     out = {}
@@ -179,17 +200,40 @@ def references_used(root: Path) -> dict[str, str]:
             ref = json.loads(p.read_bytes()).get("reference") or {}
         except (OSError, ValueError, AttributeError):
             continue
+        if not isinstance(ref, dict):
+            continue
         if isinstance(ref.get("file"), str):
             out[ref["file"]] = ref.get("kind", "original")
+        src = ref.get("made_from")
+        if isinstance(src, dict) and isinstance(src.get("file"), str):
+            out[src["file"]] = src.get("kind", "original")
     return out
 
 
-def bundle_files(root: Path, *, include_original: bool = False) -> list[str]:
+def message_arrays(root: Path) -> set[str]:
+    """The message-array files the findings name (see :func:`message_arrays_file`)."""
+    import json
+
+    out = set()
+    for p in sorted((root / FINDINGS).glob("*.json")):
+        try:
+            m = json.loads(p.read_bytes()).get("message_arrays") or {}
+        except (OSError, ValueError, AttributeError):
+            continue
+        if isinstance(m, dict) and isinstance(m.get("file"), str):
+            out.add(m["file"])
+    return out
+
+
+def bundle_files(root: Path, *, include_original: bool = False,
+                 include_message: bool = False) -> list[str]:
     """Relative paths of every file that goes into the bundle (sorted; no links, no hidden).
 
-    Of ``references/`` only the files a finding aligns to go in, and an unmarked
-    master only with ``include_original``: the published marked file is what the
-    other side may see; the master is the owner's to give or keep.
+    Of ``references/`` only the files a finding uses go in (the reduced
+    reference and the registered marked file), and an unmarked master only
+    with ``include_original``: the published marked file is what the other
+    side may see; the master is the owner's to give or keep. The message arrays
+    (:func:`message_arrays_file`) go in only with ``include_message`` (with key material).
 
     Raises
     ------
@@ -197,6 +241,7 @@ def bundle_files(root: Path, *, include_original: bool = False) -> list[str]:
         When the folder holds a symbolic link: bundles never do.
     """
     used = references_used(root)
+    keyed = set() if include_message else message_arrays(root)
     out = []
     for part in BUNDLE_PARTS:
         p = root / part
@@ -212,7 +257,10 @@ def bundle_files(root: Path, *, include_original: bool = False) -> list[str]:
                 if not q.is_file():
                     continue
                 if part == REFERENCES and (rel.as_posix() not in used or (
-                        used[rel.as_posix()] != "marked" and not include_original)):
+                        used[rel.as_posix()] not in ("marked", "reduced")
+                        and not include_original)):
+                    continue
+                if rel.as_posix() in keyed:
                     continue
                 out.append(rel.as_posix())
     return sorted(out)

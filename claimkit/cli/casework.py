@@ -5,7 +5,7 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
-from claimkit.cli.common import home_dir, passphrase, print_json
+from claimkit.cli.common import open_profile, print_json
 from claimkit.errors import CheckFailed, InputError
 
 CAUTION = ("Technical evidence, not legal advice. Consult counsel; the rules on evidence, "
@@ -15,16 +15,10 @@ CAUTION = ("Technical evidence, not legal advice. Consult counsel; the rules on 
 # Each command imports the library modules it runs when it runs, so that `claimkit --help`
 # starts in about 0.2 s rather than the 3 s that importing the whole library takes.
 
-def _profile(args):
-    from claimkit.evidence.profile import Profile
-
-    return Profile.open(home_dir(args), passphrase())
-
-
 def cmd_case_new(args) -> int:
     from claimkit.case.store import new_case
 
-    with _profile(args) as p:
+    with open_profile(args) as p:
         case = new_case(args.dir, args.title, p)
     if args.json:
         print_json({"case": str(case.root), "case_id": case.case_id, "title": case.title})
@@ -37,7 +31,7 @@ def cmd_case_add(args) -> int:
     from claimkit.case.store import add_exhibit, open_case
 
     case = open_case(args.dir)
-    with _profile(args) as p:
+    with open_profile(args) as p:
         out = []
         for f in args.files:
             ex = add_exhibit(case, f, source=args.source, found=args.found, by=args.by,
@@ -64,7 +58,7 @@ def cmd_case_capture(args) -> int:
     case = open_case(args.dir)
     opts = FetchOptions(timeout=args.timeout, max_bytes=args.max_bytes,
                         max_redirects=args.max_redirects, ca_file=args.ca_file)
-    with _profile(args) as p:
+    with open_profile(args) as p:
         res = capture_pages(case, args.urls, p, tsa_url=args.tsa_url, tsa_cert=args.tsa_cert,
                             options=opts, snapshot=not args.no_snapshot)
     if args.json:
@@ -87,7 +81,7 @@ def cmd_case_withdraw(args) -> int:
     from claimkit.case.store import open_case, withdraw_exhibit
 
     case = open_case(args.dir)
-    with _profile(args) as p:
+    with open_profile(args) as p:
         rec = withdraw_exhibit(case, args.exhibit, reason=args.reason, by=args.by, profile=p)
     if args.json:
         print_json({"case": str(case.root), "exhibit_id": rec["exhibit_id"],
@@ -102,6 +96,7 @@ def cmd_case_withdraw(args) -> int:
 def cmd_case_examine(args) -> int:
     from claimkit.case.examine import DEFAULT_DECOYS, examine_case
     from claimkit.case.store import open_case
+    from claimkit.words import verdict
 
     case = open_case(args.dir)
     search = [Path(p) for p in (args.originals or [])]
@@ -121,10 +116,10 @@ def cmd_case_examine(args) -> int:
         if r["detected"] and doc["content_mismatch"]:
             line = f"{ex.exhibit_id}: {doc['evaluation']['finding']}"
         elif r["detected"]:
-            line = (f"{ex.exhibit_id}: MARK FOUND, work {r.get('work_id')}; false-alarm bound "
+            line = (f"{ex.exhibit_id}: {verdict(r)}; false-alarm bound "
                     f"{r['false_alarm_text']}; {r['geometry_text']}")
         else:
-            line = f"{ex.exhibit_id}: no mark of this owner found"
+            line = f"{ex.exhibit_id}: {verdict(r)}"
         al = doc.get("alignment") or {}
         if al.get("aligned"):
             line += f"; SSIM after alignment {al['ssim']:.3f}"
@@ -133,10 +128,11 @@ def cmd_case_examine(args) -> int:
             line += f"; decoys: {d['at_or_above_observed']} of {d['count']} reached the score"
         print(line)
 
-    with _profile(args) as p:
+    with open_profile(args) as p:
         examine_case(case, p, decoys=DEFAULT_DECOYS if args.decoys is None else args.decoys,
                      search=search, progress=progress, workers=args.workers,
-                     robustness=not args.no_robustness)
+                     robustness=not args.no_robustness,
+                     reference_from_master=args.reference_from_master)
     return 0
 
 
@@ -145,7 +141,7 @@ def cmd_case_export(args) -> int:
     from claimkit.case.store import open_case
 
     case = open_case(args.dir)
-    with _profile(args) as p:
+    with open_profile(args) as p:
         rep = export_bundle(case, args.out, p, force=args.force, disclose=args.disclose)
     if args.json:
         print_json(rep)
@@ -168,7 +164,7 @@ def cmd_report(args) -> int:
             raise InputError("already exists; use --force to replace it", path=out)
         if not (out.parent if str(out.parent) else Path(".")).is_dir():
             raise InputError(f"folder {out.parent} does not exist", path=out)
-    with _profile(args) as p:
+    with open_profile(args) as p:
         if args.disclose:
             from claimkit.dossier.build import matched_works
             from claimkit.evidence.disclose import what_it_reveals
@@ -318,6 +314,10 @@ def register(sub, common) -> None:
                    help="worker processes for the decoy control (default 1)")
     p.add_argument("--no-robustness", action="store_true",
                    help="skip the robustness battery on the registered marked file")
+    p.add_argument("--reference-from-master", action="store_true",
+                   help="when only the unmarked master is at hand, compare copies with a "
+                        "reduced reference made from it (it goes into the bundle, and beside "
+                        "the published file it gives away much of the mark)")
     p.add_argument("--json", action="store_true", help="JSON output, one object per line")
     p.set_defaults(func=cmd_case_examine)
 

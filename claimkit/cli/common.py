@@ -32,6 +32,26 @@ def passphrase(*, confirm: bool = False) -> bytes:
     return first.encode("utf-8")
 
 
+SESSION_ENV = "CLAIMKIT_SESSION"   # claimkit.evidence.session.SESSION_ENV, without importing it
+
+
+def open_profile(args):
+    """The profile with its secrets: by the session in ``$CLAIMKIT_SESSION``, else the passphrase.
+
+    A session, once set, is used alone: when it has ended the command is
+    refused rather than falling back to ``$CLAIMKIT_PASSPHRASE``, so that the
+    lifetime the user chose is the one that holds.
+    """
+    from claimkit.evidence import session
+    from claimkit.evidence.profile import Profile
+
+    token = os.environ.get(SESSION_ENV)
+    if token:
+        return Profile.open_session(home_dir(args), token)
+    session.sweep()          # ended sessions' files go at the next command that opens the keys
+    return Profile.open(home_dir(args), passphrase())
+
+
 def print_json(obj) -> None:
     """One JSON object on one line (the contract for ``--json``)."""
     sys.stdout.write(json.dumps(obj, sort_keys=True, ensure_ascii=False, allow_nan=False) + "\n")

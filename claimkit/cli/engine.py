@@ -5,21 +5,14 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
-from claimkit.cli.common import home_dir, passphrase, print_json
+from claimkit.cli.common import open_profile, print_json
 from claimkit.cli.rights import add_rights_options
 from claimkit.cli.scale import mark_many
 from claimkit.errors import InputError
-from claimkit.mark import detect
-from claimkit.mark.pattern import MARK_FORMAT
+from claimkit.mark.stats import DEFAULT_THRESHOLD
 
 # Each command imports the library modules it runs when it runs, so that `claimkit --help`
 # starts in about 0.2 s rather than the 3 s that importing the whole library takes.
-
-def _open_profile(args):
-    from claimkit.evidence.profile import Profile
-
-    return Profile.open(home_dir(args), passphrase())
-
 
 def cmd_mark(args) -> int:
     from claimkit import workflow
@@ -29,7 +22,7 @@ def cmd_mark(args) -> int:
     inputs = [Path(p) for p in args.inputs]
     out = Path(args.out)
     batch = len(inputs) > 1 or any(p.is_dir() for p in inputs)
-    with _open_profile(args) as profile:
+    with open_profile(args) as profile:
         rights = rights_from_args(args, load_rights(profile.home, profile.owner))
         if batch:
             return mark_many(profile, inputs, out, force=args.force, jpeg_quality=args.quality,
@@ -64,14 +57,16 @@ def _metadata_lines(rep: dict) -> None:
 
 
 def _verdict_line(rep: dict) -> str:
+    from claimkit.mark.pattern import MARK_FORMAT
+    from claimkit.words import verdict
+
     if not rep["detected"]:
-        return (f"{rep['file']}: no mark of this owner found "
+        return (f"{rep['file']}: {verdict(rep)} "
                 f"(best score {rep['score_pilot']:.1f}; false-alarm bound {rep['false_alarm_text']})")
-    who = rep["work_id"] or "an unreadable payload"
-    reg = "" if rep.get("registered") else " (not in this registry)"
+    older = ""
     if rep.get("mark_format") not in (None, MARK_FORMAT):
-        reg += f" (marked in the older format {rep['mark_format']})"
-    return (f"{rep['file']}: MARK FOUND, work {who}{reg}; chance of this without the mark "
+        older = f" (marked in the older format {rep['mark_format']})"
+    return (f"{rep['file']}: {verdict(rep)}{older}; false-alarm bound "
             f"{rep['false_alarm_text']}; {rep['geometry_text']}; "
             f"message PSNR {rep['message_psnr_db']:.1f} dB")
 
@@ -101,18 +96,20 @@ def _with_lines(profile, rep: dict, path: Path, threshold: float, folders: list[
     from claimkit.case.examine import match_work, weigh_lines
     from claimkit.imageio import read_picture, to_luma
 
-    luma = to_luma(read_picture(path).pixels)
+    # The copy read as the examination read it (the luma plane of a colour JPEG), as
+    # `case examine` and `verify` read an exhibit for these lines: one reading for all three.
+    luma = to_luma(read_picture(path, method=rep.get("examination_method")).pixels)
     match = match_work(profile, rep, luma)
     record = None if match is None else profile.work(match["work_id"]).record
-    ref_luma, kind = None, None
+    ref_luma, reference = None, None
     if record is not None and folders:
         found = _registered_file(record, folders)
         if found is not None:
-            ref_luma, kind = to_luma(read_picture(found[0]).pixels), found[1]
-            rep["reference"] = {"file": str(found[0]), "kind": kind}
+            ref_luma = to_luma(read_picture(found[0]).pixels)
+            reference = rep["reference"] = {"file": str(found[0]), "kind": found[1]}
     lines = weigh_lines(luma, exhibit_id=path.name, rep=rep, threshold=threshold, match=match,
                         work_record=record, owner=profile.owner, reference_luma=ref_luma,
-                        reference_kind=kind, robustness=None, label=f"The file {path.name}")
+                        reference=reference, robustness=None, label=f"The file {path.name}")
     rep["match"] = match
     rep.update(lines)
     return rep
@@ -123,7 +120,7 @@ def cmd_examine(args) -> int:
 
     threshold = workflow.check_threshold(args.threshold)
     bad = 0
-    with _open_profile(args) as profile:
+    with open_profile(args) as profile:
         for f in args.files:
             try:
                 rep, finding = workflow.examine_file(profile, f, threshold=threshold,
@@ -183,7 +180,7 @@ def register(sub, common) -> None:
     e.add_argument("files", nargs="+", metavar="FILE", help="copies to examine (a bad one is "
                    "reported and the others examined; exit 2 at the end)")
     e.add_argument("--json", action="store_true", help="one JSON object per line, per file, in order")
-    e.add_argument("--threshold", type=float, default=detect.DEFAULT_THRESHOLD,
+    e.add_argument("--threshold", type=float, default=DEFAULT_THRESHOLD,
                    help="largest false-alarm bound called 'detected' (default 1e-9)")
     e.add_argument("--decoys", type=int, default=0, metavar="N",
                    help="also examine under N random decoy keys (control)")

@@ -4,9 +4,12 @@ from __future__ import annotations
 
 import argparse
 import base64
+import os
+import sys
+import time
 from pathlib import Path
 
-from claimkit.cli.common import home_dir, passphrase, print_json
+from claimkit.cli.common import SESSION_ENV, home_dir, open_profile, passphrase, print_json
 from claimkit.errors import CheckFailed, InputError
 
 CAUTION = "Technical evidence, not legal advice; rely on counsel and the local law."
@@ -18,10 +21,9 @@ CAUTION = "Technical evidence, not legal advice; rely on counsel and the local l
 def _open(args, *, secrets: bool):
     from claimkit.evidence.profile import Profile
 
-    home = home_dir(args)
     if secrets:
-        return Profile.open(home, passphrase())
-    return Profile.open_public(home)
+        return open_profile(args)
+    return Profile.open_public(home_dir(args))
 
 
 def _work_id(profile, text: str) -> str:
@@ -59,6 +61,53 @@ def cmd_init(args) -> int:
         print("Keep the passphrase safe: without it the keys cannot be recovered. "
               "Publish the key fingerprint somewhere you control.")
     return 0
+
+
+# --------------------------------------------------------------------------- unlock, lock
+
+def cmd_unlock(args) -> int:
+    """Stretch the passphrase once; print the session variable for the shell to hold."""
+    import shlex
+
+    from claimkit.evidence.profile import Profile
+    from claimkit.evidence.session import parse_lifetime
+
+    lifetime = parse_lifetime(args.lifetime)
+    with Profile.open(home_dir(args), passphrase()) as p:
+        s = p.unlock(lifetime)
+        owner = p.owner
+    until = _utc(s.expires)
+    if args.json:
+        print_json({"variable": SESSION_ENV, "session": s.token, "expires": until,
+                    "session_file": str(s.file), "public_key_sha256": s.profile})
+    else:
+        print(f"export {SESSION_ENV}={shlex.quote(s.token)}")
+        print(f"claimkit: profile of {owner} unlocked until {until} ({lifetime} s) for the commands "
+              f"of the shell that holds {SESSION_ENV}; end it sooner with: "
+              'eval "$(claimkit lock)"', file=sys.stderr)
+    return 0
+
+
+def cmd_lock(args) -> int:
+    """End the session named by ``$CLAIMKIT_SESSION`` (or, with ``--all``, every session)."""
+    from claimkit.evidence import session
+
+    token = os.environ.get(SESSION_ENV)
+    if args.all:
+        ended = session.end_all()
+    else:
+        ended = int(session.end(token)) if token else 0
+    if args.json:
+        print_json({"sessions_ended": ended, "variable": SESSION_ENV})
+    else:
+        print(f"unset {SESSION_ENV}")
+        print(f"claimkit: {ended or 'no'} session{'' if ended == 1 else 's'} ended",
+              file=sys.stderr)
+    return 0
+
+
+def _utc(t: float) -> str:
+    return time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(t))
 
 
 # --------------------------------------------------------------------------- works
@@ -280,6 +329,25 @@ def register(sub, common) -> None:
     p = add(sub, "init", "create the owner profile (Ed25519 key, marking secret, registry)",
             cmd_init)
     p.add_argument("--owner", required=True, metavar="NAME", help="the owner's name")
+    json_opt(p)
+
+    p = add(sub, "unlock", "open the profile once and keep it open for a while (a session)",
+            cmd_unlock, formatter_class=argparse.RawDescriptionHelpFormatter,
+            epilog=f"Stretches the passphrase once and prints a line that sets {SESSION_ENV};\n"
+                   "commands run where it is set skip the passphrase until the session ends:\n\n"
+                   '  eval "$(claimkit unlock --for 30m)"\n'
+                   "  claimkit examine ...; claimkit case examine ...\n"
+                   '  eval "$(claimkit lock)"\n\n'
+                   "The session key exists only in that variable. The secrets are sealed under\n"
+                   "it in a file of the user's runtime folder, deleted when the session ends;\n"
+                   "the passphrase-sealed key file is not changed.")
+    p.add_argument("--for", dest="lifetime", default="1h", metavar="TIME",
+                   help="how long the session lasts: 90s, 20m, 2h (default 1h, at most 12h)")
+    json_opt(p)
+
+    p = add(sub, "lock", "end the session this shell holds (prints the line that unsets it)",
+            cmd_lock)
+    p.add_argument("--all", action="store_true", help="end every session of this user")
     json_opt(p)
 
     p = add(sub, "works", "list registered works (or: works show ID)", cmd_works)

@@ -21,9 +21,9 @@ def add_rights_options(p, *, for_mark: bool) -> None:
     what = "for this run (default: the profile's, see claimkit rights show)" if for_mark else ""
     for _name, flag, metavar, help_ in _FIELDS:
         p.add_argument(flag, metavar=metavar, default=None, help=f"{help_} {what}".strip())
-    p.add_argument("--data-mining", choices=sorted(DATA_MINING), default=None,
-                   help="IPTC Data Mining property (plus:DataMining, PLUS vocabulary) "
-                        + what)
+    p.add_argument("--data-mining", choices=sorted(DATA_MINING), default=None, metavar="TERM",
+                   help="IPTC Data Mining property (plus:DataMining, PLUS vocabulary), one of "
+                        + ", ".join(sorted(DATA_MINING)) + " " + what)
     if for_mark:
         p.add_argument("--replace-rights", action="store_true",
                        help="overwrite rights fields the original already holds (default: "

@@ -21,8 +21,8 @@ import json
 import sys
 from pathlib import Path
 
-from claimkit.cli.common import home_dir, passphrase, print_json
-from claimkit.mark.detect import DEFAULT_THRESHOLD
+from claimkit.cli.common import open_profile, print_json
+from claimkit.mark.stats import DEFAULT_THRESHOLD
 
 EXIT_OK, EXIT_SOME_FAILED, EXIT_BAD_INPUT, EXIT_INTERRUPTED = 0, 1, 2, 130
 
@@ -83,7 +83,7 @@ def mark_many(profile, inputs: list[Path], out: Path, *, json_lines: bool = Fals
         line += f", {s.not_started} not started"
     line += f" ({s.total} inputs, {s.seconds:.1f} s, {rate:.2f} files/s)"
     if json_lines:    # stdout stays one object per file; the summary goes to stderr
-        print(json.dumps({"summary": True, "inputs": s.total, **s.as_dict()}, sort_keys=True),
+        print(json.dumps({"summary": {"inputs": s.total, **s.as_dict()}}, sort_keys=True),
               file=err, flush=True)
     else:
         print(line, flush=True)
@@ -120,14 +120,16 @@ def _where(rep: dict) -> str:
 
 
 def _scan_line(rep: dict) -> str:
+    """One line per file, its verdict in a first column (the words of :func:`words.verdict`)."""
+    from claimkit.words import MARK_FOUND, verdict
+
     if "error" in rep:
-        return f"unreadable  {rep['error']}"
+        return f"{'unreadable':<12}{rep['error']}"
     if not rep.get("detected"):
-        return f"-           {_where(rep)}"
-    who = rep.get("work_id") or "payload unreadable"
-    reg = "" if rep.get("registered") else " (not in this registry)"
+        return f"{'-':<12}{_where(rep)}"
+    said = verdict(rep).removeprefix(MARK_FOUND + ", ")
     geom = rep.get("geometry_text") or ""
-    return (f"CLAIMED     {_where(rep)}: {who}{reg}; false-alarm bound "
+    return (f"{MARK_FOUND:<12}{_where(rep)}: {said}; false-alarm bound "
             f"{rep.get('false_alarm_text', rep.get('false_alarm_probability'))}; {geom}")
 
 
@@ -143,10 +145,11 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False, **kw
             **kw)
     err = sys.stderr
     if json_lines:
-        print(json.dumps(s.as_dict(), sort_keys=True), file=err, flush=True)
+        print(json.dumps({"summary": s.as_dict()}, sort_keys=True), file=err, flush=True)
     else:
         rate = s.read / s.seconds if s.seconds > 0 else 0.0
-        line = (f"{s.read} files read, {s.claimed} claimed ({s.registered} in this registry), "
+        line = (f"{s.read} files read, mark found in {s.claimed} ({s.registered} in this "
+                f"registry), "
                 f"{len(s.unreadable)} unreadable")
         if s.added_to_case:
             line += f", {s.added_to_case} added to the case"
@@ -178,9 +181,8 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False, **kw
 
 
 def cmd_scan(args) -> int:
-    from claimkit.evidence.profile import Profile  # start-up time, as above
 
-    with Profile.open(home_dir(args), passphrase()) as profile:
+    with open_profile(args) as profile:
         return scan_folders(
             profile, [Path(d) for d in args.folders], json_lines=args.json,
             report=Path(args.report) if args.report else None,

@@ -4,9 +4,9 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from claimkit.cli.common import home_dir, passphrase, print_json
+from claimkit.cli.common import open_profile, print_json
 from claimkit.errors import InputError
-from claimkit.mark import detect
+from claimkit.mark.stats import DEFAULT_THRESHOLD
 from claimkit.words import probability
 
 # Each command imports the library modules it runs when it runs, so that `claimkit --help`
@@ -27,7 +27,6 @@ def _table_line(r: dict) -> str:
 
 def cmd_stress(args) -> int:
     from claimkit import workflow
-    from claimkit.evidence.profile import Profile
     from claimkit.evidence.storage import atomic_write
     from claimkit.imageio import read_picture
     from claimkit.stress import plot_png, run_battery, summary
@@ -47,7 +46,7 @@ def cmd_stress(args) -> int:
         h, w = pic.pixels.shape[:2]
         raise InputError(f"image is {w}x{h} pixels; the battery needs at least "
                          f"{workflow.MIN_MARK_SIDE} pixels on each side", path=marked)
-    with Profile.open(home_dir(args), passphrase()) as profile:
+    with open_profile(args) as profile:
         seed = profile.detection_seed
         check = workflow.owner_payload_check(profile)
     if not args.json:
@@ -89,7 +88,7 @@ def register(sub, common) -> None:
     p.add_argument("--plot", metavar="FILE.png", help="also draw the results as a PNG")
     p.add_argument("--force", action="store_true", help="replace an existing plot")
     p.add_argument("--quick", action="store_true", help="a shorter battery (one or two of each kind)")
-    p.add_argument("--threshold", type=float, default=detect.DEFAULT_THRESHOLD,
+    p.add_argument("--threshold", type=float, default=DEFAULT_THRESHOLD,
                    help="largest false-alarm bound called 'found' (default 1e-9)")
     p.add_argument("--workers", type=int, default=1, metavar="N", help="threads for the transforms")
     p.add_argument("--max-pixels", type=int, default=None, metavar="N",

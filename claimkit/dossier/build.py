@@ -28,6 +28,7 @@ from claimkit import __version__
 from claimkit.case import layout
 from claimkit.case.documents import DossierDataDoc, ManifestDoc
 from claimkit.case.layout import DATA, HANDOVER, HTML, MANIFEST, MANIFEST_SIG, PDF, PUBLIC_KEY
+from claimkit.case.reference import scale_of
 from claimkit.case.store import Case, checked_exhibit_path
 from claimkit.dossier import figures
 from claimkit.dossier.data import build_data
@@ -44,6 +45,7 @@ from claimkit.software import versions
 __all__ = [
     "build_report",
     "draw_figures",
+    "message_arrays",
     "write_manifest",
 ]
 
@@ -64,8 +66,10 @@ def draw_figures(root: Path, data: dict) -> dict[str, bytes]:
         finding = json.loads((root / layout.finding_file(r["exhibit_id"])).read_bytes())
         with np.load(root / finding["arrays"]["file"]) as arr:
             a = {k: arr[k] for k in arr.files}
-        out[names["message"]] = figures.png_bytes(figures.message_figure(a["recovered"],
-                                                                         a["reference"]))
+        if "message" in names:      # drawn only where key material is disclosed
+            a.update(message_arrays(root, finding) or {})
+            out[names["message"]] = figures.png_bytes(figures.message_figure(a["recovered"],
+                                                                             a["reference"]))
         out[names["surface"]] = figures.png_bytes(figures.surface_figure(a["surface"]))
         out[names["decoys"]] = figures.png_bytes(figures.decoy_figure(finding["decoy_scores"],
                                                                       r["score_pilot"]))
@@ -77,24 +81,47 @@ def draw_figures(root: Path, data: dict) -> dict[str, bytes]:
             al = r["alignment"]
             ref = to_luma(read_picture(root / r["reference"]["file"]).pixels).astype(np.float64)
             s = al["work_scale"]
-            ref = rescale(ref, s, anti_aliasing=True, preserve_range=True) if s < 1 else ref
+            # work_scale is per registered-picture pixel; the file may be a reduced reference.
+            k = s / scale_of(r["reference"])
+            ref = rescale(ref, k, anti_aliasing=True, preserve_range=True) if k < 1 - 1e-9 else ref
             box = [v * s for v in al["crop_box_px"]]
             out[names["aligned"]] = figures.png_bytes(figures.aligned_figure(
                 ref, a["aligned"], a["difference"], a["mask"], box))
     return out
 
 
+def message_arrays(root: Path, finding: dict) -> dict | None:
+    """A finding's recovered and prescribed message, where they are at hand (None if not).
+
+    Findings store them apart (``message_arrays``), left out of a bundle without key
+    material; findings of claimkit 0.3.0.dev0 and before kept them with the other arrays.
+    """
+    m = finding.get("message_arrays")
+    p = root / m["file"] if isinstance(m, dict) and isinstance(m.get("file"), str) else \
+        root / finding["arrays"]["file"]
+    if not p.is_file():
+        return None
+    with np.load(p) as arr:
+        got = {k: arr[k] for k in ("recovered", "reference") if k in arr.files}
+    return got if len(got) == 2 else None
+
+
 def withheld_references(root: Path, listed: list[str]) -> list[dict]:
-    """Files of the case's ``references/`` that the bundle leaves out, by hash, with why."""
+    """Files the bundle leaves out, by hash, with why: masters and message arrays."""
+    out = [{"path": rel, "sha256": sha256_file(root / rel),
+            "why": "drawn from the owner's key (the prescribed message); in the bundle only "
+                   "with the key disclosure: claimkit report --disclose"}
+           for rel in sorted(layout.message_arrays(root))
+           if rel not in listed and (root / rel).is_file()]
     used = layout.references_used(root)
     folder = root / layout.REFERENCES
-    out = []
     for p in sorted(folder.iterdir()) if folder.is_dir() else []:
         rel = f"{layout.REFERENCES}/{p.name}"
         if rel in listed or not p.is_file() or p.is_symlink() or p.name.startswith("."):
             continue
-        why = ("an unmarked master a finding aligns to; claimkit report --include-original "
-               "adds it" if rel in used else "no finding aligns to it")
+        why = ("an unmarked master; the findings compare with a reduced-resolution reference "
+               "made from it, and claimkit report --include-original adds it" if rel in used
+               else "no finding uses it")
         out.append({"path": rel, "sha256": sha256_file(p), "why": why})
     return out
 
@@ -102,7 +129,8 @@ def withheld_references(root: Path, listed: list[str]) -> list[dict]:
 def write_manifest(root: Path, profile, case_id: str, *, key_material: str = "withheld",
                    include_original: bool = False) -> dict:
     """``manifest.json`` (every bundle file with SHA-256 and size) and its signature."""
-    names = layout.bundle_files(root, include_original=include_original)
+    names = layout.bundle_files(root, include_original=include_original,
+                                include_message=key_material == "disclosed")
     files = [{"path": rel, "sha256": sha256_file(root / rel), "size": (root / rel).stat().st_size}
              for rel in names]
     doc = {"type": MANIFEST_TYPE, "case_id": case_id, "created": {"time": utc_now(),
@@ -117,7 +145,7 @@ def write_manifest(root: Path, profile, case_id: str, *, key_material: str = "wi
     return doc
 
 
-def _check_examined(case: Case) -> None:
+def _check_examined(case: Case, *, disclose: bool = False) -> None:
     exhibits = case.exhibits()
     if not exhibits:
         raise InputError("the case has no exhibits (claimkit case add)", path=case.root)
@@ -136,6 +164,14 @@ def _check_examined(case: Case) -> None:
         if not arrays.is_file() or sha256_file(arrays) != f["arrays"]["sha256"]:
             raise CheckFailed(f"the arrays of {ex.exhibit_id} are missing or altered; "
                               "examine again", path=arrays)
+        if not disclose and not f.get("message_arrays"):
+            # Examined by claimkit 0.3.0.dev0 or before: the key's message pattern is in the
+            # arrays that travel; a bundle without key material must not carry it.
+            with np.load(arrays) as a:
+                if "reference" in a.files:
+                    raise InputError(f"the arrays of {ex.exhibit_id} hold the key's message "
+                                     "pattern (examined by an earlier claimkit): run claimkit "
+                                     "case examine again, or report with --disclose", path=arrays)
 
 
 def matched_works(case: Case) -> list[str]:
@@ -202,7 +238,7 @@ def build_report(case: Case, profile, *, out_pdf: Path | None = None,
     CheckFailed
         When an exhibit or finding changed since it was stored.
     """
-    _check_examined(case)
+    _check_examined(case, disclose=disclose)
     root = case.root
     _handover(case, profile, disclose=disclose)
     shutil.rmtree(root / layout.REPORT, ignore_errors=True)

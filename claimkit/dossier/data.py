@@ -342,17 +342,19 @@ def build_data(root: str | Path) -> dict:
         "custody": _custody(root, case["case_id"], work_ids),
         "software_made_with": _software(root),
         "collection": collection_data(root, exhibits),
-        "figures": {r["exhibit_id"]: _figure_names(r) for r in results},
+        # The message figure draws the key's spot pattern: only beside disclosed key material.
+        "figures": {r["exhibit_id"]: _figure_names(
+            r, message=any(w["key_material"]["disclosed"] for w in works)) for r in results},
     }
     canonical_json(data)   # refuse anything that could not be stored
     return data
 
 
-def _figure_names(r: dict) -> dict:
+def _figure_names(r: dict, *, message: bool) -> dict:
     e = r["exhibit_id"]
     kinds = ["thumbnail"]
     if r.get("examined"):
-        kinds += ["message", "surface", "decoys"]
+        kinds += (["message"] if message else []) + ["surface", "decoys"]
         if r.get("reference"):
             kinds.append("registered")
         if (r.get("alignment") or {}).get("aligned"):

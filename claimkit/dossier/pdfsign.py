@@ -20,7 +20,7 @@ from __future__ import annotations
 import datetime as dt
 import io
 import logging
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 from asn1crypto import algos
 from asn1crypto import x509 as ax509
@@ -29,6 +29,8 @@ from cryptography.hazmat.primitives import hashes
 from cryptography.hazmat.primitives.asymmetric import ec, ed25519
 from cryptography.hazmat.primitives.serialization import Encoding
 from cryptography.x509.oid import NameOID
+
+from claimkit.errors import Outcome
 
 __all__ = [
     "FIELD_NAME",
@@ -123,17 +125,12 @@ def _ed25519_ok(key: ed25519.Ed25519PublicKey, signature: bytes, data: bytes) ->
 
 
 @dataclass
-class PdfSignatureCheck:
+class PdfSignatureCheck(Outcome):
     """What :func:`check_pdf_signature` found; ``problems`` empty means it holds."""
 
     signer: str | None = None
     signed_at: str | None = None
     whole_file: bool = False
-    problems: list[str] = field(default_factory=list)
-
-    @property
-    def ok(self) -> bool:
-        return not self.problems
 
 
 def check_pdf_signature(pdf: bytes, owner_public_key: ed25519.Ed25519PublicKey) -> PdfSignatureCheck:

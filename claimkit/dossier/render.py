@@ -20,6 +20,7 @@ import jinja2
 
 from claimkit import words
 from claimkit.case import layout
+from claimkit.case.reference import describe
 from claimkit.errors import InputError
 from claimkit.evaluation.lr import verbal
 
@@ -52,18 +53,17 @@ def _day(iso: str) -> str:
 
 
 def _chance(log10p: float) -> str:
-    """A probability as a power of ten whose minus sign survives copying ("10^-12").
+    """A probability in :func:`claimkit.words.probability`'s words, with a plain reading.
 
     The markup turns ``10^-12`` into a superscript in the PDF and the HTML; in
-    plain text it stays ``10^-12``. Never "1e-12" (loses its meaning when read
-    aloud) and never "(10^12)" (loses its sign).
+    plain text it stays ``10^-12``, so its minus sign survives copying.
     """
-    if log10p < -12:
-        return "below 10^-12 (less than one in a million million)"
+    said = words.probability(log10p)
+    if not math.isfinite(log10p) or log10p < words.FLOOR_LOG10:
+        return f"{said} (less than one in a million million)"
     if log10p <= -3:
-        n = math.floor(-log10p)
-        return f"below 10^-{n} (less than 1 in a 1 followed by {n} zeros)"
-    return f"about {10 ** log10p:.2g}"
+        return f"{said} (less than 1 in a 1 followed by {math.floor(-log10p)} zeros)"
+    return f"about {said}"
 
 
 def _power(log10v: float | None) -> str:
@@ -255,7 +255,7 @@ def _pair(data: dict, exhibit_id: str) -> list[tuple[str, str]]:
     r = next(x for x in data["results"] if x["exhibit_id"] == exhibit_id)
     wid = (r.get("match") or {}).get("work_id") or r.get("work_id")
     if r.get("reference"):
-        left = f"Registered work {wid}: the {r['reference']['kind']} file on record"
+        left = f"Registered work {wid}: the {describe(r['reference'])}"
     elif wid:
         left = f"Registered work {wid}: its file was not at hand, so it is not shown"
     else:

@@ -75,12 +75,8 @@ def seal(secrets: Secrets, passphrase: bytes) -> bytes:
         "kdf": {"name": "scrypt", **params, "salt": _b64(salt)},
         "cipher": {"name": "AES-256-GCM", "nonce": _b64(nonce)},
     }
-    plaintext = canonical_json({
-        "signing_seed_ed25519": secrets.signing_seed.hex(),
-        "marking_secret": secrets.marking_secret.hex(),
-    })
     ciphertext = AESGCM(_kek(passphrase, salt, params)).encrypt(
-        nonce, plaintext, canonical_json(header))
+        nonce, secrets_plaintext(secrets), canonical_json(header))
     return canonical_json({**header, "ciphertext": _b64(ciphertext)}) + b"\n"
 
 
@@ -110,6 +106,19 @@ def unseal(blob: bytes, passphrase: bytes, *, path: object = None) -> Secrets:
             nonce, ciphertext, canonical_json(header))
     except InvalidTag:
         raise ProfileError("wrong passphrase (or the key file was altered)", path=path) from None
+    return secrets_from_plaintext(plaintext)
+
+
+def secrets_plaintext(secrets: Secrets) -> bytes:
+    """The secrets as the bytes that are sealed (here and in a session, :mod:`.session`)."""
+    return canonical_json({
+        "signing_seed_ed25519": secrets.signing_seed.hex(),
+        "marking_secret": secrets.marking_secret.hex(),
+    })
+
+
+def secrets_from_plaintext(plaintext: bytes) -> Secrets:
+    """The inverse of :func:`secrets_plaintext` (after the cipher's tag has been checked)."""
     inner = json.loads(plaintext)
     return Secrets(bytes.fromhex(inner["signing_seed_ed25519"]),
                    bytes.fromhex(inner["marking_secret"]))

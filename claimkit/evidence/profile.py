@@ -25,7 +25,7 @@ from pathlib import Path
 
 from claimkit import __version__
 from claimkit.errors import InputError, ProfileError
-from claimkit.evidence import custodylog, outbox, signing
+from claimkit.evidence import custodylog, outbox, session, signing
 from claimkit.evidence.canonical import canonical_json
 from claimkit.evidence.checks import AuditReport, WorkStatus, audit_profile, check_work
 from claimkit.evidence.disclose import write_disclosure
@@ -195,12 +195,42 @@ class Profile:
         except OSError:
             raise ProfileError("sealed key file missing", path=home / SECRETS_FILE) from None
         secrets = unseal(blob, passphrase, path=home / SECRETS_FILE)
+        return cls._with_secrets(home, owner_doc, public_pem, secrets)
+
+    @classmethod
+    def open_session(cls, home: Path, token: str) -> Profile:
+        """Open the profile with the secrets of a live session (:mod:`.session`), no passphrase.
+
+        Raises
+        ------
+        ProfileError
+            No profile; the session ended (expired or locked), is for another
+            profile, or its key does not open its file.
+        """
+        home = Path(home)
+        owner_doc, public_pem = cls._load_public(home)
+        secrets = session.unlock(token, profile=owner_doc["public_key_sha256"])
+        return cls._with_secrets(home, owner_doc, public_pem, secrets)
+
+    @classmethod
+    def _with_secrets(cls, home: Path, owner_doc: dict, public_pem: bytes,
+                      secrets: Secrets) -> Profile:
         derived = signing.raw_public(signing.private_from_seed(secrets.signing_seed).public_key())
         if signing.fingerprint(derived) != owner_doc["public_key_sha256"]:
             raise ProfileError("sealed key does not match the public key", path=home)
         profile = cls(home, owner_doc, public_pem, secrets)
         profile.flush_log()  # finish what an interrupted run left behind
         return profile
+
+    def unlock(self, lifetime: int = session.DEFAULT_LIFETIME) -> session.Session:
+        """Start a session that opens this profile for ``lifetime`` seconds without the passphrase.
+
+        The secrets are sealed again under a new random key that only the
+        returned :class:`~claimkit.evidence.session.Session` holds (its
+        ``token``); ``secrets.sealed`` is not touched.
+        """
+        return session.start(self._need_secrets(), profile=self.public_key_fingerprint,
+                             lifetime=lifetime)
 
     @classmethod
     def open_public(cls, home: Path) -> Profile:

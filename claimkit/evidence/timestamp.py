@@ -36,8 +36,6 @@ from __future__ import annotations
 
 import hashlib
 import os
-import urllib.error
-import urllib.request
 from dataclasses import dataclass
 from datetime import datetime
 
@@ -135,6 +133,10 @@ def parse_request(der: bytes) -> tuple[bytes, str, int | None]:
 
 def send_request(url: str, tsq: bytes, *, timeout: float = 30.0) -> bytes:
     """POST a request to a TSA over HTTP (RFC 3161 section 3.4); returns the response bytes."""
+    # urllib.request (with http.client, email and ssl) loads only for a command that sends.
+    import urllib.error
+    import urllib.request
+
     request = urllib.request.Request(url, data=tsq, method="POST", headers={
         "Content-Type": "application/timestamp-query",
         "Accept": "application/timestamp-reply"})

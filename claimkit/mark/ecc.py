@@ -63,6 +63,14 @@ class ConvCode:
         self._prev = states[self._order].reshape(2, -1, 2)
         self._target = np.stack([self.next[b][self._order[b]].reshape(-1, 2)[:, 0] for b in (0, 1)])
         self._signs = 2.0 * self.out - 1.0   # +1 for a coded 1
+        # Per next state: the input bit that leads to it (the register's newest bit) and its
+        # two previous states, lower first: the whole trellis step in a few array operations.
+        self._bit = np.empty(self.nstates, dtype=np.int64)
+        self._from = np.empty((2, self.nstates), dtype=np.int64)
+        for b in (0, 1):
+            self._bit[self._target[b]] = b
+            self._from[:, self._target[b]] = self._prev[b].T
+        self._not_bit = (self._bit != 0, self._bit != 1)   # states an input bit cannot reach
 
     def __repr__(self) -> str:
         """``ConvCode(...)`` with the code in words."""
@@ -110,39 +118,36 @@ class ConvCode:
             The maximum-likelihood payload bits under Gaussian noise.
         """
         soft = np.asarray(soft, dtype=np.float64).reshape(-1, self.rate_inv)
+        steps = soft.shape[0]
+        first, second = self._from
+        # The branch correlations of every step (the same products and sums as the step by
+        # step ``self._signs @ soft[t]``), gathered once for the two ways into each state.
+        branch = np.stack([self._signs @ soft[t] for t in range(steps)])   # (steps, 2, states)
+        into_first = branch[:, self._bit, first]
+        into_second = branch[:, self._bit, second]
+        finite = bool(np.isfinite(soft).all())
         metric = np.full(self.nstates, -np.inf)
         metric[0] = 0.0
-        steps = soft.shape[0]
-        back = np.zeros((steps, self.nstates), dtype=np.int64)  # (prev_state << 1) | bit
-        rows = np.arange(self.nstates // 2)
+        took_second = np.empty((steps, self.nstates), dtype=bool)
         for t in range(steps):
-            cand = metric[None, :] + self._signs @ soft[t]  # (2, nstates): per input bit and state
-            new = np.full(self.nstates, -np.inf)
-            choice = np.zeros(self.nstates, dtype=np.int64)
-            allowed: tuple[int, ...]
-            if t >= n_bits:
-                allowed = (0,)
+            a = metric.take(first)
+            a += into_first[t]
+            b = metric.take(second)
+            b += into_second[t]
+            # The better entry; on a tie the first (lower) previous state, as argmax keeps.
+            pick = np.greater(b, a, out=took_second[t])
+            metric = np.where(pick, b, a)
+            if not finite:         # a NaN correlation closes the states it reaches
+                metric[np.isnan(a) | np.isnan(b)] = -np.inf
+            if t >= n_bits:        # the zero tail
+                metric[self._not_bit[0]] = -np.inf
             elif known is not None and known[t] >= 0:
-                allowed = (int(known[t]),)
-            else:
-                allowed = (0, 1)
-            for b in allowed:
-                # Each next state is reached from exactly two previous states per bit.
-                vals = cand[b][self._order[b]].reshape(-1, 2)
-                pick = np.argmax(vals, axis=1)
-                best = vals[rows, pick]
-                targets = self._target[b]
-                better = best > new[targets]
-                new[targets[better]] = best[better]
-                choice[targets[better]] = (self._prev[b][rows, pick][better] << 1) | b
-            metric = new
-            back[t] = choice
+                metric[self._not_bit[int(known[t])]] = -np.inf
         state = 0  # zero-terminated
         bits = np.zeros(steps, dtype=np.uint8)
         for t in range(steps - 1, -1, -1):
-            c = back[t, state]
-            bits[t] = c & 1
-            state = c >> 1
+            bits[t] = self._bit[state]
+            state = int(self._from[int(took_second[t, state]), state])
         return bits[:n_bits]
 
     def free_distance(self, depth: int = 64) -> int:

@@ -62,12 +62,14 @@ import hashlib
 import hmac
 import math
 from dataclasses import dataclass, field, replace
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-from scipy import sparse
 
 from claimkit.mark import detect, embed, pattern, stats
+
+if TYPE_CHECKING:   # scipy.sparse loads when a resampling matrix is first built
+    from scipy import sparse
 
 COARSE_SIDE = 384        # short side of the coarse level, level pixels (three periods of TILE)
 COARSE_SHARE = 0.5       # fraction of the mean squared change given to the coarse component
@@ -182,6 +184,10 @@ def resample_matrix(n_out: int, n_in: int, span: float | None = None) -> sparse.
     covers: an input decimated from a length not divisible by the step
     covers a fraction of its last pixel.
     """
+    # Imported here: scipy.sparse adds tens of milliseconds to every command's start-up,
+    # and an examination that claims at full size never builds a coarse view.
+    from scipy import sparse
+
     scale = (n_in if span is None else span) / n_out
     support = 2.0 * max(1.0, scale)
     centre = (np.arange(n_out) + 0.5) * scale - 0.5

@@ -31,6 +31,9 @@ from __future__ import annotations
 import math
 
 LN10 = math.log(10.0)
+# Largest false-alarm bound called "detected" by default. It lives here, in a module that
+# needs no NumPy or SciPy, so that the command line can show it without loading either.
+DEFAULT_THRESHOLD = 1e-9
 FLOOR_LOG10 = -300.0   # JSON cannot carry smaller floats; the log10 is reported too
 
 

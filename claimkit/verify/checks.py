@@ -9,7 +9,7 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
-from claimkit.case import layout
+from claimkit.case import layout, reference
 from claimkit.case.documents import ManifestDoc
 from claimkit.case.layout import (
     CUSTODY_COPY,
@@ -28,10 +28,12 @@ from claimkit.evidence.storage import sha256_file
 from claimkit.mark import payload
 from claimkit.verify.policy import Policy
 from claimkit.verify.report import VerifyReport
+from claimkit.verify.rerun import work_record
 from claimkit.verify.trust import check_tsa
 
 __all__ = [
     "check_custody",
+    "check_references",
     "check_disclosures",
     "check_exhibit",
     "check_manifest",
@@ -56,10 +58,18 @@ def path_audit(root: Path, exhibits: list[dict], findings: dict) -> list[str]:
         why = layout.inside(root, (f.get("arrays") or {}).get("file"), layout.FINDINGS)
         if why:
             bad.append(f"{i}: finding arrays path {why}")
-        if f.get("reference"):
-            why = layout.inside(root, f["reference"].get("file"), layout.REFERENCES)
+        if f.get("message_arrays") is not None:
+            why = layout.inside(root, (f["message_arrays"] or {}).get("file"), layout.FINDINGS)
             if why:
-                bad.append(f"{i}: finding reference path {why}")
+                bad.append(f"{i}: finding message arrays path {why}")
+        ref = f.get("reference")
+        if ref:
+            made = ref.get("made_from") if isinstance(ref.get("made_from"), dict) else {}
+            for what, rel in (("reference", ref.get("file")),
+                              ("reference source", made.get("file", ""))):
+                why = layout.inside(root, rel, layout.REFERENCES) if rel != "" else None
+                if why:
+                    bad.append(f"{i}: finding {what} path {why}")
     folder = root / DISCLOSURES
     if folder.is_dir():
         for d in sorted(folder.iterdir()):
@@ -134,6 +144,26 @@ def _keys_of(chk) -> tuple:
     return (chk.detection_seed, bits, chk)
 
 
+def _disclosure_row(d: Path, name: str, fp: str, roots, rep: VerifyReport, *, foreign: str,
+                    passed, more=None) -> tuple:
+    """Check one disclosure folder, compare its key with the bundle's, add one row.
+
+    ``more(chk, d)`` adds problems particular to the caller; ``passed(chk)`` words a
+    pass. Returns (the check or None when unreadable, whether it passed).
+    """
+    try:
+        chk = check_disclosure(d, tsa_roots=roots)
+    except InputError as exc:
+        rep.add(name, False, exc.message)
+        return None, False
+    probs = list(chk.problems)
+    if chk.public_key_sha256 != fp:
+        probs.append(foreign)
+    probs += more(chk, d) if more is not None else []
+    rep.add(name, not probs, "; ".join(probs) if probs else passed(chk))
+    return chk, not probs
+
+
 def check_disclosures(root: Path, fp: str, rep: VerifyReport,
                       policy: Policy | None = None) -> dict:
     """Each work's evidence in the bundle, and the key disclosures wherever they came from.
@@ -149,21 +179,17 @@ def check_disclosures(root: Path, fp: str, rep: VerifyReport,
     tsas: set[str] = set()
     folder = root / DISCLOSURES
     for d in sorted(folder.iterdir()) if folder.is_dir() else []:
-        try:
-            chk = check_disclosure(d, tsa_roots=roots)
-        except InputError as exc:
-            rep.add(f"work {d.name}", False, exc.message)
+        chk, ok = _disclosure_row(
+            d, f"work {d.name}", fp, roots, rep,
+            foreign="its public key is not the bundle's (key replaced)",
+            passed=lambda c: f"record signature{', key commitment' if c.keys_included else ''} "
+            f"and {len(c.timestamps)} timestamp token(s) verified"
+            + ("" if roots is not None else " (against the TSA certificate in the bundle)"))
+        if chk is None:
             continue
-        probs = list(chk.problems)
-        if chk.public_key_sha256 != fp:
-            probs.append("its public key is not the bundle's (key replaced)")
-        rep.add(f"work {d.name}", not probs, "; ".join(probs) if probs else
-                f"record signature{', key commitment' if chk.keys_included else ''} and "
-                f"{len(chk.timestamps)} timestamp token(s) verified"
-                + ("" if roots is not None else " (against the TSA certificate in the bundle)"))
         tsas.update(t.get("tsa") or "?" for t in chk.timestamps)
         records[chk.work_id or d.name] = (d / "work-record.json").read_bytes()
-        if not probs and chk.keys_included:
+        if ok and chk.keys_included:
             out[chk.work_id] = _keys_of(chk)
     check_tsa(tsas, policy, rep)
     if policy.disclosure is not None:
@@ -180,25 +206,21 @@ def _check_delivered(path: Path, fp: str, records: dict, roots, out: dict,
         sorted(d for d in path.iterdir() if d.is_dir() and (d / "disclosure.json").is_file())
     if not folders:
         raise InputError("holds no disclosure.json", path=path)
-    for d in folders:
-        try:
-            chk = check_disclosure(d, tsa_roots=roots)
-        except InputError as exc:
-            rep.add(f"disclosure {d.name}", False, exc.message)
-            continue
-        probs = list(chk.problems)
-        if chk.public_key_sha256 != fp:
-            probs.append("signed by another key than the bundle's")
-        if not chk.keys_included:
-            probs.append("holds no key material")
+    def against_bundle(chk, d: Path) -> list[str]:
+        probs = [] if chk.keys_included else ["holds no key material"]
         if chk.work_id not in records:
             probs.append(f"its work {chk.work_id} is not in the bundle")
         elif (d / "work-record.json").read_bytes() != records[chk.work_id]:
             probs.append("its work record differs from the bundle's")
-        rep.add(f"disclosure {d.name}", not probs, "; ".join(probs) if probs else
-                f"delivered separately; key material for {chk.work_id} ({chk.mark_format}) "
-                "matches the record's key commitment")
-        if not probs:
+        return probs
+
+    for d in folders:
+        chk, ok = _disclosure_row(
+            d, f"disclosure {d.name}", fp, roots, rep,
+            foreign="signed by another key than the bundle's", more=against_bundle,
+            passed=lambda c: f"delivered separately; key material for {c.work_id} "
+            f"({c.mark_format}) matches the record's key commitment")
+        if ok:
             out[chk.work_id] = _keys_of(chk)
 
 
@@ -277,3 +299,27 @@ def check_exhibit(root: Path, ex: dict, finding: dict | None, listed: set[str],
         rep.add(f"{i} finding", False, "the finding is for other bytes than the exhibit")
         return False
     return True
+
+
+def check_references(root: Path, findings: dict, rep: VerifyReport) -> None:
+    """Each reduced-resolution reference the findings use, tied to its signed work record.
+
+    Needs no key: see :func:`claimkit.case.reference.tie_problems` for what is checked.
+    A finding made before reduced references compared with the registered file itself;
+    the manifest's hashes cover it.
+    """
+    seen: dict[str, list[str]] = {}
+    for i, f in sorted(findings.items()):
+        ref = f.get("reference")
+        if not isinstance(ref, dict) or ref.get("kind") != reference.REDUCED:
+            continue
+        seen.setdefault(str(ref.get("file")), []).append(i)
+        if len(seen[str(ref.get("file"))]) > 1:
+            continue
+        probs = reference.tie_problems(root, ref, work_record(root, ref.get("work_id")))
+        rep.add(f"reference {ref.get('work_id')}", not probs, "; ".join(probs) if probs else
+                f"{ref['file']}: {reference.describe(ref)}, made from the file whose SHA-256 "
+                "the signed work record holds, and it shows the registered picture "
+                "(fingerprint)" + (", made again from it and equal within the tolerance"
+                                   if (root / str(reference.registered_file(ref))).is_file()
+                                   else ""))

@@ -13,8 +13,10 @@ import numpy as np
 
 from claimkit import __version__
 from claimkit.case import layout
+from claimkit.case import reference as reduced_reference
 from claimkit.case.align import align
 from claimkit.case.examine import alignment_geometry, decoy_summary, jsonable, weigh_lines
+from claimkit.dossier.build import message_arrays
 from claimkit.imageio import LUMA_FROM_RGB, read_picture, to_luma
 from claimkit.mark import payload
 from claimkit.stress import run_battery
@@ -22,7 +24,7 @@ from claimkit.verify.compare import differences
 from claimkit.verify.report import SKIPPED, VerifyReport
 from claimkit.workflow import examine_picture, expected_payload_check, finding_words
 
-__all__ = ["rerun_examination", "rerun_robustness"]
+__all__ = ["rerun_examination", "rerun_robustness", "work_record"]
 
 
 def _name_versions(diffs: list[str], made_with: str | None) -> None:
@@ -70,17 +72,23 @@ def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
     diffs += differences(finding["decoy_summary"], decoy_summary(f.decoy_scores, f.z_pilot),
                          "decoy_summary")
     with np.load(root / finding["arrays"]["file"]) as arr:
-        for name in ("surface", "recovered", "reference"):
-            a = arr[name]
-            b = getattr(f, name)
-            if a.shape != b.shape or not np.allclose(a, b, rtol=1e-4, atol=1e-4):
-                diffs.append(f"arrays.{name}: differs from the re-run")
         stored_arrays = {k: arr[k] for k in arr.files}
+    # The message arrays travel only with key material; without them their numbers
+    # (message PSNR) are still compared above.
+    stored_arrays.update(message_arrays(root, finding) or {})
+    for name in ("surface", "recovered", "reference"):
+        if name not in stored_arrays:
+            continue
+        a = stored_arrays[name]
+        b = getattr(f, name)
+        if a.shape != b.shape or not np.allclose(a, b, rtol=1e-4, atol=1e-4):
+            diffs.append(f"arrays.{name}: differs from the re-run")
     luma = to_luma(pic.pixels)
     reference = finding.get("reference") or {}
     ref = root / reference.get("file", "")
-    # The unmarked master may be withheld from the bundle (report --include-original adds it);
-    # the published marked file never is.
+    # Findings compare with a reduced-resolution reference, always in the bundle. Older ones
+    # compared with the registered file itself: the published marked file is in the bundle,
+    # the unmarked master only with report --include-original.
     withheld = bool(reference) and not ref.is_file() and reference.get("kind") != "marked"
     ref_luma = to_luma(read_picture(ref).pixels) if reference and not withheld else None
     lines = None
@@ -94,9 +102,9 @@ def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
         mark = {**got, "work_id": stored.get("work_id"), "registered": stored.get("registered")}
         lines = weigh_lines(luma, exhibit_id=i, rep=mark, threshold=params["threshold"],
                             match=finding.get("match"),
-                            work_record=_work_record(root, (finding.get("match") or {}).get("work_id")),
+                            work_record=work_record(root, (finding.get("match") or {}).get("work_id")),
                             owner=_owner(root), reference_luma=ref_luma,
-                            reference_kind=(finding.get("reference") or {}).get("kind"),
+                            reference=finding.get("reference"),
                             robustness=finding.get("robustness"))
         for k in ("content", "content_mismatch", "evaluation"):
             diffs += differences(finding.get(k), lines[k], k)
@@ -107,7 +115,8 @@ def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
                 status=SKIPPED)
     elif al and al.get("aligned") and ref_luma is not None:
         geom = alignment_geometry(lines["content"]) if lines else (f.geometry or None)
-        again = align(ref_luma, luma, geom)
+        again = align(ref_luma, luma, geom,
+                      reference_scale=reduced_reference.scale_of(finding.get("reference")))
         diffs += differences(al, again.numbers, "alignment")
         if "difference" in stored_arrays and not np.array_equal(stored_arrays["difference"],
                                                                again.difference):
@@ -119,7 +128,7 @@ def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
             "number reproduced")
 
 
-def _work_record(root: Path, work_id: str | None) -> dict | None:
+def work_record(root: Path, work_id: str | None) -> dict | None:
     """The signed work record from the bundle's disclosure of ``work_id`` (checked earlier)."""
     if not work_id:
         return None
@@ -154,7 +163,7 @@ def rerun_robustness(root: Path, findings: dict, keys: dict, rep: VerifyReport) 
             rep.add(f"robustness {wid}", False, "no verified disclosure of this work")
             continue
         seed, bits, _ = keys[wid]
-        pic = read_picture(root / f["reference"]["file"])
+        pic = read_picture(root / str(reduced_reference.registered_file(f["reference"])))
         rows = run_battery(pic.pixels, seed, expected_payload_check(bits), quick=True)
         again = jsonable(rows)
         stored = rob.get("rows") or []

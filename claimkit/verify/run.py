@@ -21,6 +21,9 @@ and the verdict is "all passed" or not. Checks, in order:
    through every line, and that every exhibit's intake and examination are
    logged with the right hashes;
 6. each exhibit against its intake record; each finding against its exhibit;
+   each reduced-resolution reference against its signed work record (by the
+   hash of the file it was made from, its size and its fingerprint), and made
+   again where that file is in the bundle;
 7. each exhibit taken from the web against the payload of its WARC record,
    each WARC file against its recorded SHA-256 and its RFC 3161 token
    (:mod:`.collection`);
@@ -48,6 +51,7 @@ from claimkit.verify.checks import (
     check_disclosures,
     check_exhibit,
     check_manifest,
+    check_references,
     path_audit,
 )
 from claimkit.verify.collection import check_collection
@@ -144,6 +148,7 @@ def _verify_unpacked(root: Path, files: list[str], policy: Policy, rep: VerifyRe
                 "for --no-rerun to check integrity only)", status=NOT_DONE)
         rerun = robustness = False
     check_custody(root, pub, exhibits, findings, rep)
+    check_references(root, findings, rep)
     for ex in exhibits:
         i = ex["exhibit_id"]
         f = findings.get(i)
