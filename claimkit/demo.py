@@ -53,7 +53,7 @@ SCENARIO = {
              "original_name": "harwick-morning-cup.png",
              "published_name": "harwick-morning-cup-web.jpg"},
     "tsa": "Harwick Bay Demo TSA (test only)",
-    "case_title": "Tidewater Home Goods: unlicensed product-page photos",
+    "case_title": "Tidewater Home Goods: product-page photos",
     "copies": [
         {"name": "tidewater-mug-listing.jpg",
          "source": "https://tidewater-home-goods.example/products/harbour-mug",

@@ -131,3 +131,13 @@ def test_timeline_not_timestamped_and_mismatch():
                                 {"E01": True})
     assert sorted(w["code"] for w in t["warnings"]) == ["content-mismatch", "not-timestamped"]
     assert "priority" in t["priority"]
+
+
+def test_timeline_same_day_says_the_order_is_not_known():
+    # Found on the day of registration, stated to the day only: no warning (not an earlier
+    # day), but the dossier must not imply an order it cannot know.
+    t = timeline.build_timeline(_works(day="2026-11-28"), _exhibit("2026-11-28"), {"E01": "W-1"})
+    assert t["warnings"] == []
+    assert len(t["notes"]) == 1 and "Exhibit 1 found is dated to the day only (2026-11-28)" \
+        in t["notes"][0] and "work W-1 registered" in t["notes"][0]
+    assert timeline.build_timeline(_works(), _exhibit("2026-11-28"), {"E01": "W-1"})["notes"] == []

@@ -253,6 +253,23 @@ def test_edited_finding_is_caught_even_when_the_owner_re_signs(built_case, tmp_p
     assert "examined with claimkit 0.0.9 and re-run with claimkit " in _failed(rep)
 
 
+def test_edited_content_line_and_opinion_are_caught_by_the_re_run(built_case, tmp_path):
+    """The content line's statistic and the reported likelihood ratio are re-derived, not read."""
+    work = _unpack(built_case.bundle, tmp_path / "w")
+    p = work / "findings" / "exhibit-1.json"
+    f = json.loads(p.read_bytes())
+    value = f["content"]["statistic"]["value"]
+    f["content"]["statistic"]["value"] = value + 40
+    f["evaluation"]["reported_log10_lr"] = 2.5      # stored 6 (the cap)
+    p.write_bytes(canonical_json(f) + b"\n")
+    _resign(work, built_case.home)
+    rep = verify_bundle(work, robustness=False, disclosure=built_case.disclosure)
+    text = _failed(rep)
+    assert "exhibit-1 re-run" in {c["check"] for c in rep.failures}, text
+    assert f"content.statistic.value: stored {value + 40}, reproduced {value}" in text
+    assert "evaluation.reported_log10_lr: stored 2.5" in text
+
+
 def test_exit_code_and_error_line(built_case, tmp_path, capsys):
     work = _unpack(built_case.bundle, tmp_path / "w")
     (work / "exhibits" / "exhibit-3.json").write_bytes(b"{}")

@@ -45,22 +45,71 @@ ROTATION_TOLERANCE_DEG = 3.0
 #: battery's tolerance), so genuine copies agree and a 180 degree or mirrored
 #: misreading does not.
 SCALE_TOLERANCE = 0.05
-#: Before "does not correspond" is said, the registered picture must register to an edited
-#: copy of itself (scaled to 70 % and turned 10 degrees) with at least this many times the
-#: threshold: a featureless picture (a clear sky) gives no keypoints that repeat, and then
-#: a failure to register says nothing about the exhibit.
+#: Before "does not correspond" is said, each picture must register to an edited copy of
+#: itself (scaled to 70 % and turned 10 degrees) with at least this many times the
+#: threshold. A featureless work (a clear sky) gives no keypoints that repeat, nor does a
+#: copy too small, blurred or noisy for them; then a failure to register says nothing.
 ABLE_FACTOR = 3
 
 
-def self_check(reference_luma: np.ndarray) -> int:
-    """Inliers of the registered picture against an edited copy of itself (70 %, turned 10 degrees)."""
+def self_check(luma: np.ndarray, *, stretch: bool = True) -> int:
+    """Inliers of a picture against an edited copy of itself (70 %, turned 10 degrees).
+
+    The turned copy is cut to its inner part (13 % off each side), so no filled
+    corner adds edges of its own or dilutes the contrast the keypoints see.
+    """
     from skimage.transform import rescale, rotate
 
-    ref = np.asarray(reference_luma, dtype=np.float64)
-    edited = rotate(rescale(ref, 0.7, anti_aliasing=True, preserve_range=True), 10.0,
-                    resize=True, preserve_range=True, order=1)
-    return int(reg.register(reg.features(ref), reg.features(edited),
-                            reg.features(edited, mirrored=True))["inliers"])
+    pic = np.asarray(luma, dtype=np.float64)
+    edited = rotate(rescale(pic, 0.7, anti_aliasing=True, preserve_range=True), 10.0,
+                    resize=False, preserve_range=True, order=1)
+    h, w = edited.shape
+    edited = edited[round(0.13 * h): h - round(0.13 * h), round(0.13 * w): w - round(0.13 * w)]
+    if min(edited.shape) < 16:
+        return 0
+    return int(reg.register(reg.features(pic, stretch=stretch), reg.features(edited, stretch=stretch),
+                            reg.features(edited, mirrored=True, stretch=stretch))["inliers"])
+
+
+def _decide(value: int, threshold: int, reference_luma: np.ndarray,
+            exhibit_luma: np.ndarray) -> tuple[bool | None, dict | None, str | None]:
+    """``corresponds``, the self-checks made and, where undecided or asymmetric, the reason.
+
+    At or above the threshold the exhibit corresponds. Below it, "does not
+    correspond" is said only where a failure to register means something:
+    both pictures have structure that registers to itself, or the exhibit has
+    such structure in absolute contrast (without the stretch, which would
+    turn compression blocks and noise in a flat copy into corners) and the
+    work has none (a copy does not gain edges the work lacks, unless something
+    was drawn over it). Otherwise the line cannot decide, and says which
+    picture lacks the structure.
+    """
+    if value >= threshold:
+        return True, None, None
+    need = ABLE_FACTOR * threshold
+    work_able, exhibit_able = self_check(reference_luma), self_check(exhibit_luma)
+    checks = {"work_inliers": work_able, "exhibit_inliers": exhibit_able, "needed": need,
+              "edit": "scaled to 70 %, turned 10 degrees, 13 % cut from each side"}
+    against = (f"against an edited copy of itself the registered work reached {work_able} "
+               f"matching points and the exhibit {exhibit_able}, {need} needed")
+    if work_able >= need and exhibit_able >= need:
+        return False, checks, None
+    if work_able >= need:
+        return None, checks, ("the content line cannot decide: the exhibit has too little usable "
+                              "structure (too small, blurred or noisy; " + against + "), so a "
+                              "failure to register it says nothing about it")
+    checks["exhibit_inliers_unstretched"] = self_check(exhibit_luma, stretch=False)
+    checks["work_inliers_unstretched"] = self_check(reference_luma, stretch=False)
+    if checks["exhibit_inliers_unstretched"] >= need > checks["work_inliers_unstretched"]:
+        return False, checks, (
+            "the exhibit has structure (corners, edges) that the registered work lacks (in "
+            f"absolute contrast, against an edited copy of itself the exhibit reached "
+            f"{checks['exhibit_inliers_unstretched']} matching points and the work "
+            f"{checks['work_inliers_unstretched']}, {need} needed); a copy of the work would "
+            "not, unless something was drawn over it")
+    return None, checks, ("the content line cannot decide: the work has too little texture ("
+                          + against + "), so a failure to register the exhibit says nothing "
+                          "about it")
 
 
 @lru_cache(maxsize=1)
@@ -118,12 +167,7 @@ def content_line(exhibit_luma: np.ndarray, *, reference_luma: np.ndarray | None 
             g["matrix"] = [[round(v * reference_scale, 6) for v in row] for row in g["matrix"]]
         threshold = int(cal["threshold"])
         value = int(res["inliers"])
-        corresponds: bool | None = value >= threshold
-        able = None
-        if not corresponds:
-            able = self_check(reference_luma)
-            if able < ABLE_FACTOR * threshold:
-                corresponds = None
+        corresponds, checks, reason = _decide(value, threshold, reference_luma, exhibit_luma)
         out = {
             "basis": reference, "limited_to_fingerprint": False,
             "statistic": {"name": "RANSAC inliers", "value": value, "threshold": threshold,
@@ -137,35 +181,51 @@ def content_line(exhibit_luma: np.ndarray, *, reference_luma: np.ndarray | None 
             "log10_lr": round(lr.log10_lr_decision(value, cal["genuine"]["samples"],
                                                cal["null"]["samples"], threshold=threshold), 3),
         }
-        if able is not None:
-            out["reference_self_check"] = {"inliers": able, "needed": ABLE_FACTOR * threshold}
+        if checks is not None:
+            out["self_checks"] = checks
+        if reason is not None:
+            out["reason"] = reason
         if corresponds is None:
             out["log10_lr"] = 0.0
-            out["reason"] = ("inconclusive: the registered picture has too little structure for "
-                             f"the content line (against an edited copy of itself it reached "
-                             f"{able} matching points, {ABLE_FACTOR * threshold} needed), so a "
-                             "failure to register the exhibit says nothing about it")
+            out["cannot_decide"] = ("the work has too little texture"
+                                    if "work_inliers_unstretched" in checks else
+                                    "the exhibit has too little usable structure "
+                                    "(too small, blurred or noisy)")
         return out
     if work_fingerprint:
         fcal = cal["fingerprint"]
         d = fp.fingerprint_distance(fp.perceptual_fingerprint(exhibit_luma), work_fingerprint)
         limit = int(fp.MATCH_DISTANCE)
+        widest = max(fcal["genuine"]["samples"])
         # Closer is a smaller distance: the tail arithmetic takes the negated distance.
         log10_lr = lr.log10_lr_decision(-d, [-v for v in fcal["genuine"]["samples"]],
                                     [-v for v in fcal["null"]["samples"]], threshold=-limit)
-        return {
+        # A 128-bit summary of the whole picture moves as much under a turn or a crop as
+        # under a change of picture: genuine copies reached ``widest`` bits, unrelated
+        # pictures came closer than that. Between the limit and ``widest`` it cannot decide.
+        fp_corresponds: bool | None = True if d <= limit else (False if d > widest else None)
+        out = {
             "basis": "perceptual fingerprint of the work record",
             "limited_to_fingerprint": True,
             "statistic": {"name": "fingerprint distance (bits of 128)", "value": int(d),
-                          "threshold": limit, "higher_means": "less alike"},
-            "corresponds": d <= limit,
+                          "threshold": limit, "higher_means": "less alike",
+                          "genuine_copies_reached": widest},
+            "corresponds": fp_corresponds,
             "registration": None,
             "null": _null_summary(fcal["null"]["samples"], limit, higher_is_closer=False),
             "genuine": {"count": len(fcal["genuine"]["samples"]),
                         "reaching_threshold": sum(1 for v in fcal["genuine"]["samples"]
                                                   if v <= limit)},
-            "log10_lr": round(log10_lr, 3),
+            "log10_lr": round(log10_lr, 3) if fp_corresponds is not None else 0.0,
         }
+        if fp_corresponds is None:
+            out["cannot_decide"] = ("the registered picture was not at hand and the work "
+                                    "record's fingerprint alone cannot tell a turned or cropped "
+                                    "copy from another picture")
+            out["reason"] = (f"the content line cannot decide: the exhibit's fingerprint is {d} "
+                             f"bits from the work's, above the match limit {limit} but within "
+                             f"the {widest} bits genuine copies reached in the calibration")
+        return out
     return {"basis": "none", "limited_to_fingerprint": False, "corresponds": None,
             "statistic": None, "registration": None, "null": None, "log10_lr": 0.0,
             "reason": "neither the registered picture nor its fingerprint was at hand"}

@@ -193,7 +193,10 @@ def _content_parameters() -> dict:
     cal = assess.calibration()
     return {
         "keypoints": f"ORB, {register.KEYPOINTS} per picture at {register.WORK_SIDE} px on the "
-                     "longer side; the exhibit also mirrored",
+                     f"longer side (a smaller picture enlarged to {register.MIN_WORK_SIDE} px), "
+                     "luma stretched between its 1st and 99th percentiles; the exhibit also "
+                     "mirrored, and a copy of half the working size or less also matched "
+                     "against the work reduced to its size",
         "fit": f"RANSAC similarity, inliers within {register.RESIDUAL_PX} px, "
                f"{register.RANSAC_TRIALS} samples, seed {register.RANSAC_SEED}",
         "threshold_inliers": cal["threshold"],
@@ -201,6 +204,9 @@ def _content_parameters() -> dict:
         "null_pairs": cal["null"]["count"], "null_max_inliers": max(cal["null"]["samples"]),
         "genuine_copies": cal["genuine"]["count"],
         "genuine_below_threshold": sum(1 for v in cal["genuine"]["samples"] if v < cal["threshold"]),
+        "genuine_below_attacks": sorted({r["attack"] for r in cal.get("genuine_below_threshold", [])}),
+        "able_inliers": assess.ABLE_FACTOR * cal["threshold"],
+        "fingerprint_genuine_max_bits": max(cal["fingerprint"]["genuine"]["samples"]),
         "second_view_inliers": cal["same_scene_second_view"]["inliers"],
         "fingerprint_null_min_bits": min(cal["fingerprint"]["null"]["samples"]),
         "calibration": cal["measured"]["by"],
@@ -329,7 +335,7 @@ def build_data(root: str | Path) -> dict:
                                 if (r.get("evaluation") or {}).get("derivation_claimed")],
                     "content_mismatch": [r["exhibit_id"] for r in results
                                          if r.get("content_mismatch")]},
-        "timeline": {"events": tl["events"], "priority": tl["priority"]},
+        "timeline": {"events": tl["events"], "priority": tl["priority"], "notes": tl["notes"]},
         "warnings": tl["warnings"],
         "method": {"engine": _engine_parameters(), "content": _content_parameters(),
                    "mark": works[0]["mark_params"] if works else {},

@@ -208,8 +208,13 @@ def tables(data: dict, name: str, arg: str | None) -> tuple[list[str], list[list
             lg = ev.get("log10_lr") or {}
             if not ev:
                 continue
-            rows.append([r["label"], _power(lg.get("mark")), _power(lg.get("content")),
-                         _power(lg.get("combined")), _power(ev.get("reported_log10_lr")),
+            top = ev.get("cap_log10")
+
+            def capped(v, top=top):
+                # A value at the cap is the cap, not a measurement: say so beside it.
+                return _power(v) + (" (the cap)" if v is not None and top and abs(v) >= top else "")
+            rows.append([r["label"], capped(lg.get("mark")), capped(lg.get("content")),
+                         capped(lg.get("combined")), capped(ev.get("reported_log10_lr")),
                          "not evaluated" if ev.get("reported_log10_lr") is None
                          else verbal(ev["reported_log10_lr"], "Hp", "Hd")])
         return ["Exhibit", "LR, mark line", "LR, content line", "LR, combined", "LR reported",

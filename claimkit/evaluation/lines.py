@@ -11,6 +11,7 @@ import numpy as np
 
 from claimkit.content.assess import agreement, content_line
 from claimkit.evaluation import opinion
+from claimkit.mark import scales
 
 __all__ = ["weigh"]
 
@@ -55,7 +56,14 @@ def weigh(exhibit_luma: np.ndarray, *, label: str, mark: dict, threshold: float,
                                reference_scale=reference_scale,
                                work_fingerprint=(work_record or {}).get("fingerprint"))
     detected = bool(mark.get("detected"))
-    content["agreement_with_mark"] = agreement(content, mark.get("geometry") if detected else None)
+    geometry = mark.get("geometry") if detected else None
+    if geometry and "level" in geometry and reference_luma is not None:
+        # Found at a coarse view: its scale is against the registered picture's coarse level;
+        # the content line's is against the picture itself.
+        h, w = np.shape(reference_luma)[:2]
+        geometry = scales.relative_to_original(
+            geometry, (round(h / reference_scale), round(w / reference_scale)))
+    content["agreement_with_mark"] = agreement(content, geometry)
     mismatch = bool(detected and content.get("corresponds") is False)
     evaluation = opinion.evaluate(exhibit=label, work_id=work_id, owner=owner, detected=detected,
                                   threshold=threshold, content=content,
@@ -63,5 +71,6 @@ def weigh(exhibit_luma: np.ndarray, *, label: str, mark: dict, threshold: float,
     evaluation["finding"] = opinion.finding_words(
         detected=detected, work_id=mark.get("work_id") if detected else None,
         content_mismatch=mismatch, limited=bool(content.get("limited_to_fingerprint")),
-        inconclusive=content.get("basis") not in (None, "none") and content.get("corresponds") is None)
+        inconclusive=content.get("basis") not in (None, "none") and content.get("corresponds") is None,
+        cannot_decide=content.get("cannot_decide"))
     return {"content": content, "content_mismatch": mismatch, "evaluation": evaluation}

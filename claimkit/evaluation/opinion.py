@@ -47,15 +47,17 @@ def _battery(robustness: dict | None) -> dict:
 
 
 def finding_words(*, detected: bool, work_id: str | None, content_mismatch: bool,
-                  limited: bool, inconclusive: bool = False) -> str:
+                  limited: bool, inconclusive: bool = False,
+                  cannot_decide: str | None = None) -> str:
     """The investigative finding, in words (what was observed, not what it means)."""
     if not detected:
         return "No mark of this owner was found."
     named = f" naming work {work_id}" if work_id else ""
     if inconclusive:
-        return (f"The owner's mark{named} was found. The picture content could not be compared "
-                "with the registered work, which has too little structure for it, so a "
-                "transplanted mark cannot be excluded; no derivation from the work is claimed.")
+        why = cannot_decide or "the work has too little texture"
+        return (f"The owner's mark{named} was found. The content line cannot decide whether the "
+                f"picture corresponds to the registered work: {why}. A transplanted mark "
+                "cannot be excluded, so no derivation from the work is claimed.")
     if content_mismatch:
         return (f"The owner's mark{named} was found, but the picture does not correspond to the "
                 "registered work, consistent with a transplanted mark"
@@ -125,9 +127,10 @@ def evaluate(*, exhibit: str, work_id: str | None, owner: str | None, detected: 
                "work, which a transplanted mark explains; the content line is reported")
         reported = content["log10_lr"]
     elif inconclusive:
-        why = ("not combined: the content line was inconclusive (the registered picture has too "
-               "little structure to register); the mark line alone is reported, with its "
-               "assumption, and a transplanted mark cannot be excluded")
+        why = ("not combined: the content line cannot decide ("
+               + (content.get("cannot_decide") or "the work has too little texture")
+               + "); the mark line alone is reported, with its assumption, and a transplanted "
+               "mark cannot be excluded")
         reported = mark_lr
     elif not has_content:
         why = ("not combined: no content line (neither the registered picture nor its "

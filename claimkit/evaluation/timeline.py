@@ -133,7 +133,25 @@ def build_timeline(works: list[dict], exhibits: list[dict], matches: dict[str, s
                 f"{label}: work {wid} has no timestamp token; nothing independent fixes when its "
                 "record existed (its registration time is from the owner's system clock).")})
     events.sort(key=lambda e: (e["day"] is None, e["day"] or "", e["time"] or ""))
-    return {"events": events, "warnings": warnings, "priority": PRIORITY_STATEMENT}
+    return {"events": events, "warnings": warnings, "priority": PRIORITY_STATEMENT,
+            "notes": _same_day_notes(events)}
+
+
+_CLOCK = re.compile(r"\d{4}-\d{2}-\d{2}[T ]\d{2}:\d{2}")
+
+
+def _same_day_notes(events: list[dict]) -> list[str]:
+    """Where an event dated to the day only shares its day with timed events: order unknown."""
+    notes = []
+    for day in sorted({e["day"] for e in events if e["day"]}):
+        same = [e for e in events if e["day"] == day]
+        loose = [e["what"] for e in same if not _CLOCK.search(e["time"] or "")]
+        timed = [e["what"] for e in same if _CLOCK.search(e["time"] or "")]
+        if loose and timed:
+            notes.append(f"{' and '.join(loose)} {'is' if len(loose) == 1 else 'are'} dated to the "
+                         f"day only ({day}): on that day the order against {', '.join(timed)} is "
+                         "not known, and the table lists the day-only dates first.")
+    return notes
 
 
 def _iso(d: date | None) -> str | None:
