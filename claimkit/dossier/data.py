@@ -202,6 +202,7 @@ def _content_parameters() -> dict:
         "threshold_inliers": cal["threshold"],
         "threshold_rule": cal["threshold_rule"],
         "null_pairs": cal["null"]["count"], "null_max_inliers": max(cal["null"]["samples"]),
+        "calibration_pictures": len(cal["pictures"]),
         "genuine_copies": cal["genuine"]["count"],
         "genuine_below_threshold": sum(1 for v in cal["genuine"]["samples"] if v < cal["threshold"]),
         "genuine_below_attacks": sorted({r["attack"] for r in cal.get("genuine_below_threshold", [])}),
