@@ -42,7 +42,7 @@ from claimkit.imageio import add_luma_delta, to_luma
 from claimkit.mark import format3, scales
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-from tests.engine_helpers import landscape, sky
+from tests.engine_helpers import add, fold_estimate, landscape, psnr, residual, sky, tiled
 
 SEED = bytes(range(32))
 KEYS = format3.MarkKeys(legacy=SEED, sync=bytes(range(32, 64)),
@@ -65,49 +65,7 @@ def mark(rgb: np.ndarray, serial: int, fmt: int) -> np.ndarray:
     return add_luma_delta(rgb, scales.multiscale_delta(to_luma(rgb), keys, payload(serial)))
 
 
-# ---------------------------------------------------------------- the attacker (numpy only)
-
-def _luma(a: np.ndarray) -> np.ndarray:
-    a = a.astype(np.float64)
-    return 0.299 * a[..., 0] + 0.587 * a[..., 1] + 0.114 * a[..., 2]
-
-
-def _box(a: np.ndarray, k: int) -> np.ndarray:
-    p = k // 2
-    x = np.pad(a, p, mode="reflect")
-    c = np.pad(np.cumsum(np.cumsum(x, 0), 1), ((1, 0), (1, 0)))
-    return (c[k:, k:] - c[:-k, k:] - c[k:, :-k] + c[:-k, :-k]) / (k * k)
-
-
-def residual(a: np.ndarray) -> np.ndarray:
-    r = _luma(a)
-    return r - _box(r, 5)
-
-
-def fold_estimate(a: np.ndarray, period: int) -> np.ndarray:
-    r = residual(a)
-    acc, cnt = np.zeros((period, period)), np.zeros((period, period))
-    for r0 in range(0, r.shape[0], period):
-        for c0 in range(0, r.shape[1], period):
-            blk = r[r0:r0 + period, c0:c0 + period]
-            acc[:blk.shape[0], :blk.shape[1]] += blk
-            cnt[:blk.shape[0], :blk.shape[1]] += 1
-    e = acc / np.maximum(cnt, 1)
-    return e - e.mean()
-
-
-def tiled(e: np.ndarray, shape) -> np.ndarray:
-    p = e.shape[0]
-    return np.tile(e, (-(-shape[0] // p), -(-shape[1] // p)))[:shape[0], :shape[1]]
-
-
-def add(a: np.ndarray, d: np.ndarray) -> np.ndarray:
-    return np.clip(np.rint(a.astype(np.float64) + d[..., None]), 0, 255).astype(np.uint8)
-
-
-def psnr(a: np.ndarray, b: np.ndarray) -> float:
-    return float(10 * np.log10(255.0 ** 2 / max(np.mean((a.astype(float) - b.astype(float)) ** 2),
-                                                1e-12)))
+# The attacker (numpy only, no claimkit code) is tests/engine_helpers.py's, shared with the tests.
 
 
 # ---------------------------------------------------------------- pictures

@@ -170,3 +170,53 @@ def transplant_mark(marked: np.ndarray, host: np.ndarray, *, gain: float = 1.5,
     big = np.tile(est, (-(-H // est.shape[0]), -(-W // est.shape[1])))[:H, :W]
     out = host[..., :3].astype(np.float64) + gain * big[..., None]
     return np.clip(out, 0, 255).round().astype(np.uint8)
+
+
+# ---------------------------------------------------------------- the estimation attacker (numpy only)
+# Shared by tests/test_mark_format3.py and benchmarks/bench_estimation.py: the attacker knows the
+# published method, not the key, and uses no claimkit code.
+
+def _luma(a: np.ndarray) -> np.ndarray:
+    a = a.astype(np.float64)
+    return 0.299 * a[..., 0] + 0.587 * a[..., 1] + 0.114 * a[..., 2]
+
+
+def _box(a: np.ndarray, k: int) -> np.ndarray:
+    p = k // 2
+    x = np.pad(a, p, mode="reflect")
+    c = np.pad(np.cumsum(np.cumsum(x, 0), 1), ((1, 0), (1, 0)))
+    return (c[k:, k:] - c[:-k, k:] - c[k:, :-k] + c[:-k, :-k]) / (k * k)
+
+
+def residual(a: np.ndarray) -> np.ndarray:
+    """The high-pass residual an attacker estimates from: luma minus its 5 x 5 box mean."""
+    r = _luma(a)
+    return r - _box(r, 5)
+
+
+def fold_estimate(a: np.ndarray, period: int) -> np.ndarray:
+    """High-pass residual averaged over every period (origin at the file's (0, 0))."""
+    r = residual(a)
+    acc, cnt = np.zeros((period, period)), np.zeros((period, period))
+    for r0 in range(0, r.shape[0], period):
+        for c0 in range(0, r.shape[1], period):
+            blk = r[r0:r0 + period, c0:c0 + period]
+            acc[:blk.shape[0], :blk.shape[1]] += blk
+            cnt[:blk.shape[0], :blk.shape[1]] += 1
+    e = acc / np.maximum(cnt, 1)
+    return e - e.mean()
+
+
+def tiled(e: np.ndarray, shape) -> np.ndarray:
+    p = e.shape[0]
+    return np.tile(e, (-(-shape[0] // p), -(-shape[1] // p)))[:shape[0], :shape[1]]
+
+
+def add(a: np.ndarray, d: np.ndarray) -> np.ndarray:
+    """A luma pattern added to all three channels, rounded and clipped as a saved file would be."""
+    return np.clip(np.rint(a.astype(np.float64) + d[..., None]), 0, 255).astype(np.uint8)
+
+
+def psnr(a: np.ndarray, b: np.ndarray) -> float:
+    return float(10 * np.log10(255.0 ** 2 / max(np.mean((a.astype(float) - b.astype(float)) ** 2),
+                                                1e-12)))

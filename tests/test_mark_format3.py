@@ -22,7 +22,7 @@ from claimkit.evidence import keys as prof
 from claimkit.imageio import add_luma_delta, to_luma
 from claimkit.mark import detect, embed, format3, formats
 from claimkit.mark.format3 import EmbedKeys, MarkKeys
-from tests.engine_helpers import SEED, payload, photos
+from tests.engine_helpers import SEED, add, fold_estimate, payload, photos, psnr, residual, tiled
 from tests.test_evidence_vectors import _hkdf_sha256
 
 SECRET = bytes(range(7, 39))
@@ -46,53 +46,13 @@ def claimed(rgb: np.ndarray, serial: int, keys: MarkKeys = ALL):
 
 # ---------------------------------------------------------------- the attacker (numpy only)
 
-def _box(a: np.ndarray, k: int) -> np.ndarray:
-    p = k // 2
-    x = np.pad(a, p, mode="reflect")
-    c = np.pad(np.cumsum(np.cumsum(x, 0), 1), ((1, 0), (1, 0)))
-    return (c[k:, k:] - c[:-k, k:] - c[k:, :-k] + c[:-k, :-k]) / (k * k)
-
-
-def _luma(a: np.ndarray) -> np.ndarray:
-    a = a.astype(np.float64)
-    return 0.299 * a[..., 0] + 0.587 * a[..., 1] + 0.114 * a[..., 2]
-
-
-def fold_estimate(a: np.ndarray, period: int) -> np.ndarray:
-    """High-pass residual averaged over every period (origin at the file's (0, 0))."""
-    r = _luma(a)
-    r = r - _box(r, 5)
-    acc, cnt = np.zeros((period, period)), np.zeros((period, period))
-    for r0 in range(0, r.shape[0], period):
-        for c0 in range(0, r.shape[1], period):
-            blk = r[r0:r0 + period, c0:c0 + period]
-            acc[:blk.shape[0], :blk.shape[1]] += blk
-            cnt[:blk.shape[0], :blk.shape[1]] += 1
-    e = acc / np.maximum(cnt, 1)
-    return e - e.mean()
-
-
-def tiled(e: np.ndarray, shape) -> np.ndarray:
-    p = e.shape[0]
-    return np.tile(e, (-(-shape[0] // p), -(-shape[1] // p)))[:shape[0], :shape[1]]
-
-
-def add(a: np.ndarray, d: np.ndarray) -> np.ndarray:
-    return np.clip(np.rint(a.astype(np.float64) + d[..., None]), 0, 255).astype(np.uint8)
-
-
-def psnr(a: np.ndarray, b: np.ndarray) -> float:
-    return float(10 * np.log10(255.0 ** 2 / np.mean((a.astype(float) - b.astype(float)) ** 2)))
-
-
 def pca_removal(a: np.ndarray, period: int, components: int, gain: float) -> np.ndarray:
     """Tile-pair / principal-component attack: what tiles share beyond their mean, removed tile by tile.
 
     A mark that only flips the sign of one pattern per tile is rank one across
     the tiles and lands in the first principal component.
     """
-    r = _luma(a)
-    r = r - _box(r, 5)
+    r = residual(a)
     h, w = (r.shape[0] // period) * period, (r.shape[1] // period) * period
     tiles = r[:h, :w].reshape(h // period, period, w // period, period).transpose(0, 2, 1, 3)
     x = tiles.reshape(-1, period * period)
