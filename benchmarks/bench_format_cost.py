@@ -32,16 +32,13 @@ from skimage import data
 
 from claimkit import workflow
 from claimkit.imageio import add_luma_delta, to_luma
-from claimkit.mark import detect, format3, scales
+from claimkit.mark import detect, scales
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-from tests.engine_helpers import landscape
-
-SEED = bytes(range(32))
-KEYS = format3.MarkKeys(legacy=SEED, sync=bytes(range(32, 64)),
-                        families={f: bytes([f]) * 32 for f in range(format3.FAMILIES)})
-EMBED = format3.EmbedKeys(sync=KEYS.sync, family=5, family_seed=KEYS.families[5])
-BITS = np.random.default_rng(1000).integers(0, 2, 64).astype(np.uint8)
+from tests.engine_helpers import BENCH_BITS as BITS
+from tests.engine_helpers import BENCH_EMBED3 as EMBED
+from tests.engine_helpers import BENCH_KEYS as KEYS
+from tests.engine_helpers import SEED, landscape
 
 
 def jpeg_file(rgb: np.ndarray, folder: Path, name: str) -> Path:

@@ -28,18 +28,18 @@ from skimage import data, metrics
 
 from claimkit import stress
 from claimkit.imageio import add_luma_delta, to_luma
-from claimkit.mark import format3, scales, stats
+from claimkit.mark import scales, stats
 from claimkit.mark.formats import CURRENT
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-from tests.engine_helpers import sky  # the tests' smooth sky, the same picture
+from tests.engine_helpers import BENCH_BITS as BITS
+from tests.engine_helpers import BENCH_EMBED3 as EMBED
+from tests.engine_helpers import BENCH_KEYS as KEYS
+from tests.engine_helpers import (
+    SEED,
+    sky,  # the tests' smooth sky, the same picture
+)
 
-SEED = bytes(range(32))
-# Format 3 keys as the evidence layer would derive them (any 32-byte values do for a benchmark).
-KEYS = format3.MarkKeys(legacy=SEED, sync=bytes(range(32, 64)),
-                        families={f: bytes([f]) * 32 for f in range(format3.FAMILIES)})
-EMBED = format3.EmbedKeys(sync=KEYS.sync, family=5, family_seed=KEYS.families[5])
-BITS = np.random.default_rng(1000).integers(0, 2, 64).astype(np.uint8)
 # Extracted-message PSNRs reported for the phase-dispersion method, by the battery row
 # closest to the attack they name (strengths unknown).
 PUBLISHED = {"blur 1": 25.02, "contrast 0.6": 26.19, "jpeg 50": 24.62, "crop 25 %": 27.33,

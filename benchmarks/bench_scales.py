@@ -33,23 +33,19 @@ from skimage import data, metrics
 from skimage.transform import rescale
 
 from claimkit.imageio import add_luma_delta, to_luma
-from claimkit.mark import format3, scales, stats
+from claimkit.mark import scales, stats
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-from tests.engine_helpers import lanczos, landscape, sky
+from tests.engine_helpers import BENCH_BITS as BITS
+from tests.engine_helpers import BENCH_EMBED3, SEED, lanczos, landscape, sky
+from tests.engine_helpers import BENCH_KEYS as KEYS  # the examiner holds every format's keys
 
-SEED = bytes(range(32))
-# The examiner holds the keys of every format (any 32-byte values do for a benchmark).
-KEYS = format3.MarkKeys(legacy=SEED, sync=bytes(range(32, 64)),
-                        families={f: bytes([f]) * 32 for f in range(format3.FAMILIES)})
-BITS = np.random.default_rng(1000).integers(0, 2, 64).astype(np.uint8)
 FORMAT = {"n": 3}
 
 
 def mark_scales(rgb: np.ndarray) -> np.ndarray:
     """Both components, in the format asked for (``--format``)."""
-    keys = SEED if FORMAT["n"] == 2 else format3.EmbedKeys(sync=KEYS.sync, family=5,
-                                                          family_seed=KEYS.families[5])
+    keys = SEED if FORMAT["n"] == 2 else BENCH_EMBED3
     return add_luma_delta(rgb, scales.multiscale_delta(to_luma(rgb), keys, BITS))
 
 

@@ -9,10 +9,17 @@ from PIL import Image, ImageEnhance, ImageFilter
 from skimage import data
 
 from claimkit.imageio import add_luma_delta, to_luma
+from claimkit.mark import format3
 from claimkit.mark.embed import mark_delta
 
 SEED = bytes(range(32))
 OTHER_SEED = bytes(range(100, 132))
+# The benchmarks' fixed keys (any 32-byte values do): the examiner holds every format's keys, and a
+# format-3 work is written in family 5. BENCH_BITS is the payload they mark and check.
+BENCH_KEYS = format3.MarkKeys(legacy=SEED, sync=bytes(range(32, 64)),
+                              families={f: bytes([f]) * 32 for f in range(format3.FAMILIES)})
+BENCH_EMBED3 = format3.EmbedKeys(sync=BENCH_KEYS.sync, family=5, family_seed=BENCH_KEYS.families[5])
+BENCH_BITS = np.random.default_rng(1000).integers(0, 2, 64).astype(np.uint8)
 
 
 def payload(n: int = 0) -> np.ndarray:
