@@ -31,17 +31,8 @@ import sys
 import tempfile
 from pathlib import Path
 
-# A whole process, with its CPU time (RUSAGE_CHILDREN of this small wrapper holds only it).
-WRAP = r"""
-import json, resource, subprocess, sys, time
-t = time.perf_counter()
-out = subprocess.run(sys.argv[1:], capture_output=True)
-wall = time.perf_counter() - t
-if out.returncode not in (0, 1):
-    sys.exit(out.stderr.decode()[-2000:])
-ru = resource.getrusage(resource.RUSAGE_CHILDREN)
-print(json.dumps({"seconds": wall, "cpu_seconds": ru.ru_utime + ru.ru_stime}))
-"""
+# One whole-process timer for both benchmarks (its peak memory is not used here).
+from bench_engine import WRAP
 
 
 def run(argv: list[str], env: dict) -> dict:
