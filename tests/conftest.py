@@ -39,6 +39,10 @@ def _no_real_home(tmp_path, monkeypatch):
     monkeypatch.setenv("CLAIMKIT_HOME", str(tmp_path / "no-profile-home"))
     monkeypatch.delenv("CLAIMKIT_PASSPHRASE", raising=False)
     monkeypatch.delenv("CLAIMKIT_SESSION", raising=False)     # a session of the user's shell
+    # Session files go to the test's own runtime folder, never the machine's /dev/shm.
+    runtime = tmp_path / "runtime"
+    runtime.mkdir(mode=0o700)
+    monkeypatch.setenv("XDG_RUNTIME_DIR", str(runtime))
 
 
 @pytest.fixture
