@@ -43,3 +43,15 @@ def test_the_parser_and_the_profile_listing_load_no_numerics(tmp_path, profile_h
         out = subprocess.run([sys.executable, "-c", probe, *argv], capture_output=True, text=True,
                              check=False, cwd=tmp_path)
         assert out.stderr.strip().splitlines()[-1:] == ["0 []"], (argv, out.stderr[-2000:])
+
+
+def test_every_help_page_fits_a_60_column_terminal(monkeypatch):
+    # argparse wraps what it formats to $COLUMNS - 2; hand-formatted epilogs
+    # (RawDescriptionHelpFormatter) are not wrapped, so they must be written to fit.
+    monkeypatch.setenv("COLUMNS", "60")
+    wide = []
+    for path, parser in _walk(build_parser(), "claimkit"):
+        for line in parser.format_help().splitlines():
+            if len(line) > 60:
+                wide.append(f"{path}: {line}")
+    assert not wide, "\n".join(wide)
