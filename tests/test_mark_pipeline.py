@@ -289,3 +289,13 @@ def test_one_core_marks_the_same_pixels_in_place(tmp_path, monkeypatch):
     assert seen and max(seen) == started          # no helper thread was started
     assert one == two
     assert (tmp_path / "one.png").read_bytes() == (tmp_path / "two.png").read_bytes()
+
+
+def test_ssim_window_means_are_scipys_gaussian_filter_inside_the_border():
+    # Reference: scipy.ndimage.gaussian_filter (sigma 1.5, truncate 3.5, float64), whose
+    # reflected borders lie in the 5 pixels the mean SSIM leaves out.
+    z = (RNG.random((67, 93)) * 255).astype(np.float32)
+    ref = ndimage.gaussian_filter(z.astype(np.float64), 1.5, truncate=3.5, mode="reflect")
+    got = quality._window_mean_valid(z)
+    assert got.dtype == np.float32 and got.shape == (57, 83)
+    assert np.allclose(got, ref[5:-5, 5:-5], rtol=0, atol=2e-4)   # float32 sums of 0..255
