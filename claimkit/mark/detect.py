@@ -614,7 +614,7 @@ def sync_hypotheses(tile: int = TILE) -> int:
 
 # Format 3's keyed synchronisation search. The lattice search reads the autocorrelation,
 # which is quadratic in the mark's periodic part; format 3 keeps only its synchronisation
-# component periodic (45 % of the energy), and on small, busy copies (a 450 x 300 photo
+# component periodic (35 % of the energy), and on small, busy copies (a 450 x 300 photo
 # turned 45 degrees, a 512-px microscope slide shrunk and turned) its lattice sank among
 # the noise maxima of the coarse grid. Correlating with the known synchronisation
 # pattern is linear in its amplitude: at the right similarity it scored 10 to 20 on those
