@@ -36,7 +36,9 @@ So instead of picking peaks we score whole lattice hypotheses:
    unwarped hypothesis covers exactly, and runners-up far weaker than a
    clear winner).
 
-The key is never used here, and the number of hypotheses the detector counts
+The key is never used here (format 3's keyed search, :mod:`claimkit.mark.detect`, scores the
+coarse hypotheses of :func:`similarities` with its synchronisation key and counts them all),
+and the number of hypotheses the detector counts
 is fixed in advance (at most ``LATTICE_CANDIDATES`` lattices, counted whether
 or not they are found), so the statistics of :mod:`claimkit.mark.stats` stay
 valid whatever the search finds. The eight symmetries of the square
