@@ -45,6 +45,18 @@ def test_the_parser_and_the_profile_listing_load_no_numerics(tmp_path, profile_h
         assert out.stderr.strip().splitlines()[-1:] == ["0 []"], (argv, out.stderr[-2000:])
 
 
+def test_every_help_page_fits_a_60_column_terminal(monkeypatch):
+    # argparse wraps what it formats to $COLUMNS - 2; hand-formatted epilogs
+    # (RawDescriptionHelpFormatter) are not wrapped, so they must be written to fit.
+    monkeypatch.setenv("COLUMNS", "60")
+    wide = []
+    for path, parser in _walk(build_parser(), "claimkit"):
+        for line in parser.format_help().splitlines():
+            if len(line) > 60:
+                wide.append(f"{path}: {line}")
+    assert not wide, "\n".join(wide)
+
+
 def test_the_command_line_loads_numpy_parts_it_never_uses_only_when_used():
     # SciPy's array-API layer reads every public numpy name at import, which would load
     # numpy.f2py and numpy.testing (and with them unittest and charset_normalizer) in every
