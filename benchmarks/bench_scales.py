@@ -16,6 +16,10 @@
    scikit-image's ``rescale``; printed: PSNR and SSIM of each marked photo
    (``skimage.metrics``) and the share of copies claimed.
 
+Every copy is examined as the owner's examination does it: the decoder keeps to the owner
+tag's 16 bits, and where it finds no valid payload the best of the owner's allocated payloads
+(here 1000, the marked one among them) is scored (``mark.payload.PayloadList``).
+
 Nothing is asserted; the README quotes these figures.
 """
 
@@ -33,7 +37,7 @@ from skimage import data, metrics
 from skimage.transform import rescale
 
 from claimkit.imageio import add_luma_delta, to_luma
-from claimkit.mark import scales, stats
+from claimkit.mark import payload, scales, stats
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from tests.engine_helpers import BENCH_BITS as BITS
@@ -41,6 +45,13 @@ from tests.engine_helpers import BENCH_EMBED3, SEED, lanczos, landscape, sky
 from tests.engine_helpers import BENCH_KEYS as KEYS  # the examiner holds every format's keys
 
 FORMAT = {"n": 3}
+# The owner tag's bits, known to the decoder, and the owner's allocated payloads (the marked
+# one and 999 others with the same owner tag).
+KNOWN = np.full(64, -1, dtype=np.int64)
+KNOWN[:16] = BITS[:16]
+_OTHERS = np.random.default_rng(1001).integers(0, 2, (999, 64)).astype(np.uint8)
+_OTHERS[:, :16] = BITS[:16]
+ALLOCATED = payload.PayloadList(np.concatenate([_OTHERS[:500], BITS[None], _OTHERS[500:]]))
 
 
 def mark_scales(rgb: np.ndarray) -> np.ndarray:
@@ -51,6 +62,11 @@ def mark_scales(rgb: np.ndarray) -> np.ndarray:
 
 def check(bits) -> bool:
     return bool(np.array_equal(np.asarray(bits), BITS))
+
+
+def examine(copy: np.ndarray):
+    return scales.examine(to_luma(copy), KEYS, payload_check=check, known_bits=KNOWN,
+                          payload_candidates=ALLOCATED)
 
 
 def jpeg(a: np.ndarray, q: int) -> np.ndarray:
@@ -88,7 +104,7 @@ def held_out() -> dict[str, np.ndarray]:
 
 def row(name: str, copy: np.ndarray, truth: float, original_shape) -> None:
     t = time.perf_counter()
-    f = scales.examine(to_luma(copy), KEYS, payload_check=check)
+    f = examine(copy)
     dt = time.perf_counter() - t
     ok = f.detected and check(f.payload_bits)
     view = (f.geometry.get("level") or {}).get("view", "native") if f.detected else "-"
@@ -136,7 +152,7 @@ def held_out_copies() -> None:
         ssim = metrics.structural_similarity(rgb, mk, channel_axis=2, data_range=255)
         line = f"  {name:16s} {rgb.shape[1]}x{rgb.shape[0]}  PSNR {psnr:5.2f}  SSIM {ssim:.4f} |"
         for kind, make in kinds.items():
-            f = scales.examine(to_luma(make(mk, 0.25)), KEYS, payload_check=check)
+            f = examine(make(mk, 0.25))
             ok = f.detected and check(f.payload_bits)
             counts[kind] += ok
             line += f" {'Y' if ok else 'n'} {f.log10_false_alarm:7.1f}"
