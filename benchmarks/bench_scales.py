@@ -37,21 +37,18 @@ from skimage import data, metrics
 from skimage.transform import rescale
 
 from claimkit.imageio import add_luma_delta, to_luma
-from claimkit.mark import payload, scales, stats
+from claimkit.mark import scales, stats
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from tests.engine_helpers import BENCH_BITS as BITS
-from tests.engine_helpers import BENCH_EMBED3, SEED, lanczos, landscape, sky
+from tests.engine_helpers import BENCH_EMBED3, SEED, BenchPayloads, lanczos, landscape, sky
 from tests.engine_helpers import BENCH_KEYS as KEYS  # the examiner holds every format's keys
 
 FORMAT = {"n": 3}
-# The owner tag's bits, known to the decoder, and the owner's allocated payloads (the marked
-# one and 999 others with the same owner tag).
-KNOWN = np.full(64, -1, dtype=np.int64)
-KNOWN[:16] = BITS[:16]
-_OTHERS = np.random.default_rng(1001).integers(0, 2, (999, 64)).astype(np.uint8)
-_OTHERS[:, :16] = BITS[:16]
-ALLOCATED = payload.PayloadList(np.concatenate([_OTHERS[:500], BITS[None], _OTHERS[500:]]))
+WRONG = [0]   # copies claimed with another allocated payload than the marked one
+# The owner's examination: the owner tag's bits known to the decoder, the allocated payloads
+# listed (the marked one and the 999 serials around it).
+LISTED = BenchPayloads()
 
 
 def mark_scales(rgb: np.ndarray) -> np.ndarray:
@@ -61,12 +58,13 @@ def mark_scales(rgb: np.ndarray) -> np.ndarray:
 
 
 def check(bits) -> bool:
-    return bool(np.array_equal(np.asarray(bits), BITS))
+    """The marked payload (what a copy must be claimed with)."""
+    return bits is not None and bool(np.array_equal(np.asarray(bits), BITS))
 
 
 def examine(copy: np.ndarray):
-    return scales.examine(to_luma(copy), KEYS, payload_check=check, known_bits=KNOWN,
-                          payload_candidates=ALLOCATED)
+    return scales.examine(to_luma(copy), KEYS, payload_check=LISTED, known_bits=LISTED.known,
+                          payload_candidates=LISTED.candidates)
 
 
 def jpeg(a: np.ndarray, q: int) -> np.ndarray:
@@ -107,6 +105,7 @@ def row(name: str, copy: np.ndarray, truth: float, original_shape) -> None:
     f = examine(copy)
     dt = time.perf_counter() - t
     ok = f.detected and check(f.payload_bits)
+    WRONG[0] += bool(f.detected and f.payload_valid and not ok)
     view = (f.geometry.get("level") or {}).get("view", "native") if f.detected else "-"
     est = scales.relative_to_original(f.geometry, original_shape).get("scale") if f.detected else None
     print(f"  {name:28s} {copy.shape[1]:>5d}x{copy.shape[0]:<5d} {'claimed' if ok else 'NOT found':9s} "
@@ -154,6 +153,7 @@ def held_out_copies() -> None:
         for kind, make in kinds.items():
             f = examine(make(mk, 0.25))
             ok = f.detected and check(f.payload_bits)
+            WRONG[0] += bool(f.detected and f.payload_valid and not ok)
             counts[kind] += ok
             line += f" {'Y' if ok else 'n'} {f.log10_false_alarm:7.1f}"
         print(line, flush=True)
@@ -175,6 +175,7 @@ def main() -> None:
         return
     print("held-out photos, copies at 25 % of the width (columns: Lanczos, Lanczos + JPEG 85, rescale)")
     held_out_copies()
+    print(f"copies claimed with a wrong work: {WRONG[0]}")
 
 
 if __name__ == "__main__":

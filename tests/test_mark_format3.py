@@ -396,9 +396,15 @@ def _jpeg(a: np.ndarray, q: int) -> np.ndarray:
 
 
 def _listed(serial: int, n: int = 200):
-    """The owner's allocated payloads 1..n (the marked one among them) and a check accepting them."""
-    allocated = np.stack([payload(s) for s in range(1, n + 1)])
-    assert np.array_equal(allocated[serial - 1], payload(serial))
+    """The owner's allocated payloads, as the owner's check lists them: the marked work's and
+    the ``n - 1`` serials around it with their keyed tags (the nearest codewords a wrong pick
+    could land on), and a check accepting every one of them."""
+    from claimkit.mark import payload as pl
+
+    mine = payload(serial)
+    owner, s0 = pl.unpack(mine)["owner_tag"], pl.unpack(mine)["serial"]
+    allocated = np.stack([mine if s == s0 else pl.pack(owner, s, prof.derive_payload_tag(SECRET, owner, s))
+                          for s in range(s0 - n // 2, s0 + n - n // 2)])
     return PayloadList(allocated), lambda b: bool(np.any(np.all(allocated == np.asarray(b), axis=1)))
 
 
@@ -417,6 +423,27 @@ def test_web_copies_the_decoder_cannot_read_are_claimed_from_the_owners_list(mas
         assert f.detected and f.payload_valid and f.log10_false_alarm <= -9
         assert np.array_equal(f.payload_bits, payload(serial)) and f.mark_format == format3.NAME
         assert f.payload_space == 2 ** 24 and f.hypotheses == 3 * detect.format3_hypotheses()
+
+
+def test_the_owners_list_never_names_the_wrong_work(master):
+    """Copies at the edge of what the coarse component carries (20 % and 15 % of the width, JPEG
+    85; 20 % cropped to 4:5, JPEG 75): each is either claimed with the marked work or with none,
+    never with one of the neighbouring serials the list holds (the confusion guard of
+    mark.payload.PayloadList)."""
+    serial, mk = master
+    listed, check = _listed(serial, 400)
+    named = 0
+    for width, crop, q in ((300, False, 85), (225, False, 85), (300, True, 75), (375, True, 75)):
+        small = lanczos(mk, (width, round(width * 2 / 3)))
+        if crop:
+            h = small.shape[0]
+            c0 = (small.shape[1] - round(h * 4 / 5)) // 2
+            small = np.ascontiguousarray(small[:, c0:c0 + round(h * 4 / 5)])
+        f = scales.examine(to_luma(_jpeg(small, q)), ALL, payload_check=check, payload_candidates=listed)
+        if f.payload_valid:
+            named += 1
+            assert np.array_equal(f.payload_bits, payload(serial)), (width, crop, q)
+    assert named >= 2
 
 
 def test_fold_removal_at_the_level_keeps_the_coarse_claim(master):

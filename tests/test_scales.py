@@ -255,11 +255,21 @@ def test_payload_list_encodes_as_the_encoder_and_picks_the_listed_codeword():
     listed = PayloadList(bits)
     for code in (ecc.RATE_HALF, ecc.RATE_THIRD):
         assert np.array_equal(code.encode_many(bits[:20]), np.stack([code.encode(b) for b in bits[:20]]))
-        # Readings of payload 123 at one standard deviation of noise per coded bit: the
-        # codeword that matches best is the listed one, 11 errors in 100 coded bits or not.
-        soft = (2.0 * code.encode(bits[123]) - 1.0) + rng.normal(0.0, 1.0, code.coded_length(64))
-        assert np.array_equal(listed.best(soft, code), bits[123])
-    assert PayloadList(np.zeros((0, 64), dtype=np.uint8)).best(np.ones(144), ecc.RATE_HALF) is None
+        # Readings of payload 123 at amplitude 0.8 and unit noise (about one coded bit in five
+        # read wrong, beyond the Viterbi decoder), 96 pilots read alike: the listed payload.
+        n = code.coded_length(64)
+        soft = 0.8 * (2.0 * code.encode(bits[123]) - 1.0) + rng.normal(0.0, 1.0, n)
+        pilots = 0.8 + rng.normal(0.0, 1.0, 96)
+        assert np.array_equal(listed.best(soft, code, pilots), bits[123])
+        # The same readings at a third of the amplitude: the pick may be the right one, but
+        # other listed payloads stay too likely, and no work is named.
+        weak = 0.25 * (2.0 * code.encode(bits[123]) - 1.0) + rng.normal(0.0, 1.0, n)
+        assert listed.best(weak, code, 0.25 + rng.normal(0.0, 1.0, 96)) is None
+    assert PayloadList(np.zeros((0, 64), dtype=np.uint8)).best(np.ones(144), ecc.RATE_HALF,
+                                                                np.ones(96)) is None
+    # One listed payload (a disclosure holder's): nothing to confuse it with.
+    assert np.array_equal(PayloadList(bits[:1]).best(-np.ones(144), ecc.RATE_HALF, -np.ones(96)),
+                          bits[0])
     again = pickle.loads(pickle.dumps(listed))
     assert np.array_equal(again.bits, bits) and not again._signs
     with pytest.raises(ValueError):

@@ -475,7 +475,8 @@ def _decode_at(prep, patterns, ramps, g, d, ph, shift, payload_check, known_bits
         soft = rec[pos[:, 0], pos[:, 1]]
         bits = pattern.fmt.code.decode(soft, PAYLOAD_BITS, known=known_bits)
         if payload_check is not None and not payload_check(bits) and candidates is not None:
-            listed = candidates.best(soft, pattern.fmt.code)
+            pp = (pattern.pilot_pos + shift) % n
+            listed = candidates.best(soft, pattern.fmt.code, rec[pp[:, 0], pp[:, 1]] * pattern.pilot_sign)
             bits = bits if listed is None or not payload_check(listed) else listed
         if payload_check is None or not payload_check(bits):
             first = first or (pattern, bits)

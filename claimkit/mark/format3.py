@@ -451,7 +451,8 @@ def decode_family(spec: np.ndarray, seed: bytes, offset: tuple[int, int], *,
     if payload_check is None:
         return bits, False, None, rec
     if not payload_check(bits):
-        listed = None if candidates is None else candidates.best(soft, CODE)
+        pilots = rec[fam.pilot_pos[:, 0], fam.pilot_pos[:, 1]] * fam.pilot_sign
+        listed = None if candidates is None else candidates.best(soft, CODE, pilots)
         if listed is None or not payload_check(listed):
             return bits, False, None, rec
         bits = listed
