@@ -37,6 +37,7 @@ from tests.engine_helpers import BENCH_EMBED3 as EMBED
 from tests.engine_helpers import BENCH_KEYS as KEYS
 from tests.engine_helpers import (
     SEED,
+    BenchPayloads,
     sky,  # the tests' smooth sky, the same picture
 )
 
@@ -65,9 +66,9 @@ def main() -> None:
     args = ap.parse_args()
     embed_keys = EMBED if args.format == 3 else SEED
 
-    def check(bits) -> bool:
-        return bool(np.array_equal(np.asarray(bits), BITS))
-
+    # The owner's payload check, with the allocated payloads listed for the decoder (as
+    # `claimkit stress` examines: workflow.owner_payload_check).
+    check = BenchPayloads()
     rows: dict[str, list[dict]] = {}
     t0 = time.perf_counter()
     print(f"mark format claimkit-mark/{args.format}, default strength")

@@ -288,6 +288,7 @@ def run_attack(attack: Attack, pixels: np.ndarray, seed: bytes, payload_check, *
         return _too_small(attack, copy, truth)
     finding = scales.examine(to_luma(copy), seed, payload_check=payload_check,
                              payload_space=payload.PAYLOAD_SPACE, threshold=threshold,
+                             payload_candidates=getattr(payload_check, "candidates", None),
                              workers=workers)
     seconds = time.perf_counter() - start
     # A finding at a coarse view is stated against the original's coarse level;

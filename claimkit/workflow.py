@@ -11,9 +11,9 @@ from __future__ import annotations
 import hashlib
 import hmac
 import os
-from collections.abc import Callable
 from concurrent.futures import Executor, Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
+from functools import lru_cache
 from itertools import repeat
 from pathlib import Path
 
@@ -472,6 +472,7 @@ class PayloadChecker:
 
     owner_tag: int
     tag_key: bytes = field(repr=False)
+    serials: int = 0    # serials 1..serials allocated so far: the payloads listed for decoding
 
     def __call__(self, bits) -> bool:
         p = payload.unpack(bits)
@@ -480,16 +481,54 @@ class PayloadChecker:
         want = derive_payload_tag(self.tag_key, self.owner_tag, p["serial"])
         return hmac.compare_digest(want.to_bytes(3, "big"), p["tag"].to_bytes(3, "big"))
 
+    @property
+    def candidates(self) -> payload.PayloadList:
+        """The payloads of every allocated serial (:class:`claimkit.mark.payload.PayloadList`)."""
+        return _allocated_payloads(self.owner_tag, self.tag_key, self.serials)
+
+
+# Serials listed for decoding at most (the most recent ones beyond): 100 000 payloads and their
+# codewords take about 20 MB and a second to derive; older serials are left to the decoder.
+MAX_LISTED = 100_000
+
+
+@lru_cache(maxsize=2)
+def _allocated_payloads(owner_tag: int, tag_key: bytes, serials: int) -> payload.PayloadList:
+    """Payload bits of serials 1..``serials`` (the last ``MAX_LISTED`` of them), field by field."""
+    first = max(1, serials - MAX_LISTED + 1)
+    serial = np.arange(first, serials + 1, dtype=np.int64)
+    tag = np.asarray([derive_payload_tag(tag_key, owner_tag, int(s)) for s in serial], dtype=np.int64)
+    cols = []
+    for (_, width), value in zip(payload.FIELDS, (np.full_like(serial, owner_tag), serial, tag),
+                                 strict=True):
+        cols.append((value[:, None] >> np.arange(width - 1, -1, -1)[None, :]) & 1)
+    return payload.PayloadList(np.concatenate(cols, axis=1).astype(np.uint8))
+
 
 def owner_payload_check(profile) -> PayloadChecker:
-    """The payload check of an open profile (needs its secrets)."""
-    return PayloadChecker(profile.owner_tag, profile.payload_tag_key())
+    """The payload check of an open profile (needs its secrets), listing its allocated serials."""
+    return PayloadChecker(profile.owner_tag, profile.payload_tag_key(),
+                          int(profile.registry.meta("next_serial")) - 1)
 
 
-def expected_payload_check(bits: np.ndarray) -> Callable[[np.ndarray], bool]:
+@dataclass(frozen=True)
+class ExpectedPayload:
     """For an expert holding a disclosure: valid only if it is the disclosed work's payload."""
-    want = np.asarray(bits, dtype=np.uint8)
-    return lambda got: bool(np.array_equal(np.asarray(got, dtype=np.uint8), want))
+
+    bits: tuple[int, ...]
+
+    def __call__(self, got) -> bool:
+        return tuple(int(b) for b in np.asarray(got, dtype=np.uint8)) == self.bits
+
+    @property
+    def candidates(self) -> payload.PayloadList:
+        """The disclosed payload, the only one listed."""
+        return payload.PayloadList(np.asarray([self.bits], dtype=np.uint8))
+
+
+def expected_payload_check(bits: np.ndarray) -> ExpectedPayload:
+    """For an expert holding a disclosure: valid only if it is the disclosed work's payload."""
+    return ExpectedPayload(tuple(int(b) for b in np.asarray(bits, dtype=np.uint8)))
 
 
 def known_owner_bits(owner_tag: int) -> np.ndarray:
@@ -532,6 +571,7 @@ def examine_picture(pic: Picture, seed: bytes | MarkKeys, *, owner_tag: int | No
         window, seed, overview=overview, step=step, shape=shape, payload_check=payload_check,
         payload_space=payload.PAYLOAD_SPACE,
         known_bits=None if owner_tag is None else known_owner_bits(owner_tag),
+        payload_candidates=getattr(payload_check, "candidates", None),
         threshold=threshold, decoys=decoys, workers=workers, offset=(r0, c0))
     g = finding.geometry
     if g and "level" not in g:   # found at native resolution, in the window

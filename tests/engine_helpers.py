@@ -8,8 +8,10 @@ import numpy as np
 from PIL import Image, ImageEnhance, ImageFilter
 from skimage import data
 
+from claimkit.evidence.keys import derive_payload_tag
 from claimkit.imageio import add_luma_delta, to_luma
 from claimkit.mark import format3
+from claimkit.mark import payload as pl
 from claimkit.mark.embed import mark_delta
 
 SEED = bytes(range(32))
@@ -20,6 +22,27 @@ BENCH_KEYS = format3.MarkKeys(legacy=SEED, sync=bytes(range(32, 64)),
                               families={f: bytes([f]) * 32 for f in range(format3.FAMILIES)})
 BENCH_EMBED3 = format3.EmbedKeys(sync=BENCH_KEYS.sync, family=5, family_seed=BENCH_KEYS.families[5])
 BENCH_BITS = np.random.default_rng(1000).integers(0, 2, 64).astype(np.uint8)
+
+
+class BenchPayloads:
+    """The benchmarks' payload check, as the owner's (``workflow.PayloadChecker``) works.
+
+    Valid: BENCH_BITS and the 999 serials around its serial, each with a keyed
+    tag; ``candidates`` lists them all for the decoder (``mark.payload.PayloadList``),
+    so that a wrong pick among close serials would pass the check and show as
+    a claim of the wrong work. ``known`` holds the owner tag's bits.
+    """
+
+    def __init__(self) -> None:
+        owner, serial = pl.unpack(BENCH_BITS)["owner_tag"], pl.unpack(BENCH_BITS)["serial"]
+        rows = [BENCH_BITS if s == serial else pl.pack(owner, s, derive_payload_tag(bytes(32), owner, s))
+                for s in range(serial - 500, serial + 500)]
+        self.candidates = pl.PayloadList(np.stack(rows))
+        self.known = np.full(64, -1, dtype=np.int64)
+        self.known[:16] = BENCH_BITS[:16]
+
+    def __call__(self, bits) -> bool:
+        return bool(np.any(np.all(self.candidates.bits == np.asarray(bits, dtype=np.uint8), axis=1)))
 
 
 def payload(n: int = 0) -> np.ndarray:

@@ -14,15 +14,30 @@ from __future__ import annotations
 
 import hashlib
 import hmac
+import io
 
 import numpy as np
 import pytest
+from PIL import Image
+from skimage import data
 
 from claimkit.evidence import keys as prof
 from claimkit.imageio import add_luma_delta, to_luma
-from claimkit.mark import detect, embed, format3, formats, geometry
+from claimkit.mark import detect, embed, format3, formats, geometry, scales
 from claimkit.mark.format3 import EmbedKeys, MarkKeys
-from tests.engine_helpers import SEED, add, fold_estimate, payload, photos, psnr, residual, tiled
+from claimkit.mark.payload import PayloadList
+from tests.engine_helpers import (
+    SEED,
+    add,
+    fold_estimate,
+    lanczos,
+    landscape,
+    payload,
+    photos,
+    psnr,
+    residual,
+    tiled,
+)
 from tests.test_evidence_vectors import _hkdf_sha256
 
 SECRET = bytes(range(7, 39))
@@ -341,9 +356,6 @@ def test_mark_format_2_on_request_is_recorded_and_read_as_format_2(profile, tmp_
 @pytest.fixture(scope="module")
 def master():
     """A 1000 x 1500 generated landscape marked in format 3 with both components, and its serial."""
-    from claimkit.mark import scales
-    from tests.engine_helpers import landscape
-
     serial = 77
     rgb = landscape(1000, 1500, seed=41)
     return serial, add_luma_delta(rgb, scales.multiscale_delta(to_luma(rgb), embed_keys(serial),
@@ -354,9 +366,6 @@ def test_format3_web_copy_is_claimed_at_the_coarse_scale_with_its_family(master)
     """A 25 % copy (Pillow's Lanczos, then scikit-image's rescale) has lost the fine mark; the
     coarse component, format 3 at the level, names the work and its family."""
     from skimage.transform import rescale
-
-    from claimkit.mark import scales
-    from tests.engine_helpers import lanczos
 
     serial, mk = master
     bits = payload(serial)
@@ -373,30 +382,23 @@ def test_format3_web_copy_is_claimed_at_the_coarse_scale_with_its_family(master)
 
 def test_a_fold_of_the_web_copy_at_the_level_keeps_the_claim_off_other_photos(master):
     """The keyless fold at the coarse level (the copy reduced to 384 px, residual averaged over
-    128 px) gives the coarse sync only: added to an unrelated photo at 38 dB, no claim."""
-    from claimkit.mark import scales
-    from tests.engine_helpers import lanczos
-
+    128 px) gives the coarse sync only: added to an unrelated photo at 38 dB, no claim, not even
+    for an examiner holding the owner's list of allocated payloads."""
     serial, mk = master
     small = lanczos(mk, (576, 384))          # the attacker's own reduction, to the level
     est = fold_estimate(small, 128)
     unrelated = lanczos(photos()["rocket"], (576, 384))
     d = tiled(est, unrelated.shape[:2])
     g = np.sqrt(255.0 ** 2 / 10 ** (38.0 / 10) / np.mean(d ** 2))
-    bits = payload(serial)
-    f = scales.examine(to_luma(add(unrelated, g * d)), ALL,
-                       payload_check=lambda b: np.array_equal(b, bits))
+    listed, check = _listed(serial)
+    f = scales.examine(to_luma(add(unrelated, g * d)), ALL, payload_check=check,
+                       payload_candidates=listed)
     assert not f.detected and f.payload_bits is None
 
 
 def test_null_calibration_at_every_scale_with_format3_keys():
     """Unmarked pictures large enough for the coarse views, under random owner keys: no claim at
     any scale, and the bound (counting both tests and the three scales) stays conservative."""
-    from skimage import data
-
-    from claimkit.mark import scales
-    from tests.engine_helpers import landscape
-
     rng = np.random.default_rng(57)
     pvals = []
     for pic in (landscape(700, 1050, seed=43), np.stack([np.tile(data.brick(), (2, 2))] * 3, -1)):
@@ -407,6 +409,112 @@ def test_null_calibration_at_every_scale_with_format3_keys():
                             families={f: rng.bytes(32) for f in range(format3.FAMILIES)})
             f = scales.examine(luma, keys, payload_check=lambda b: False, prepared=prep)
             assert not f.detected and not f.removal_suspected
+            pvals.append(f.false_alarm_probability)
+    format3.family_pattern.cache_clear()
+    format3._pilot_kernels.cache_clear()
+    pvals = np.asarray(pvals)
+    for p in (0.25, 0.5):
+        assert np.mean(pvals <= p) <= p + 1e-9, p
+
+
+def _jpeg(a: np.ndarray, q: int) -> np.ndarray:
+    buf = io.BytesIO()
+    Image.fromarray(a).save(buf, "JPEG", quality=q, subsampling=2)
+    return np.asarray(Image.open(buf))
+
+
+def _listed(serial: int, n: int = 200):
+    """The owner's allocated payloads, as the owner's check lists them: the marked work's and
+    the ``n - 1`` serials around it with their keyed tags (the nearest codewords a wrong pick
+    could land on), and a check accepting every one of them."""
+    from claimkit.mark import payload as pl
+
+    mine = payload(serial)
+    owner, s0 = pl.unpack(mine)["owner_tag"], pl.unpack(mine)["serial"]
+    allocated = np.stack([mine if s == s0 else pl.pack(owner, s, prof.derive_payload_tag(SECRET, owner, s))
+                          for s in range(s0 - n // 2, s0 + n - n // 2)])
+    return PayloadList(allocated), lambda b: bool(np.any(np.all(allocated == np.asarray(b), axis=1)))
+
+
+def test_web_copies_the_decoder_cannot_read_are_claimed_from_the_owners_list(master):
+    """A 25 % copy saved at JPEG 75, and one cropped to 4:5 and saved at JPEG 85 (Pillow's
+    Lanczos and codec): the Viterbi decoder alone finds no valid payload in either (the mark
+    is found, the work is not); the best match among the owner's allocated payloads is the
+    marked work, claimed at P_fa <= 1e-9 with the bound counting every valid payload."""
+    serial, mk = master
+    listed, check = _listed(serial)
+    small = lanczos(mk, (375, 250))
+    for copy in (_jpeg(small, 75), _jpeg(np.ascontiguousarray(small[:, 87:287]), 85)):
+        alone = scales.examine(to_luma(copy), ALL, payload_check=check)
+        assert not alone.payload_valid
+        f = scales.examine(to_luma(copy), ALL, payload_check=check, payload_candidates=listed)
+        assert f.detected and f.payload_valid and f.log10_false_alarm <= -9
+        assert np.array_equal(f.payload_bits, payload(serial)) and f.mark_format == format3.NAME
+        assert f.payload_space == 2 ** 24 and f.hypotheses == 3 * detect.format3_hypotheses()
+
+
+def test_the_owners_list_never_names_the_wrong_work(master):
+    """Copies at the edge of what the coarse component carries (20 % and 15 % of the width, JPEG
+    85; 20 % cropped to 4:5, JPEG 75): each is either claimed with the marked work or with none,
+    never with one of the neighbouring serials the list holds (the confusion guard of
+    mark.payload.PayloadList)."""
+    serial, mk = master
+    listed, check = _listed(serial, 400)
+    named = 0
+    for width, crop, q in ((300, False, 85), (225, False, 85), (300, True, 75), (375, True, 75)):
+        small = lanczos(mk, (width, round(width * 2 / 3)))
+        if crop:
+            h = small.shape[0]
+            c0 = (small.shape[1] - round(h * 4 / 5)) // 2
+            small = np.ascontiguousarray(small[:, c0:c0 + round(h * 4 / 5)])
+        f = scales.examine(to_luma(_jpeg(small, q)), ALL, payload_check=check, payload_candidates=listed)
+        if f.payload_valid:
+            named += 1
+            assert np.array_equal(f.payload_bits, payload(serial)), (width, crop, q)
+    assert named >= 2
+
+
+def test_fold_removal_at_the_level_keeps_the_coarse_claim(master):
+    """Voloshynovskiy et al. 2001 at the coarse level: the attacker reduces the marked photo to
+    the level (a 38 % web copy, 576 x 384, Pillow), folds its residual over the tile (128) and
+    the macro-cell (512), and subtracts the estimate with gains swept; wherever the attacked
+    copy stays at or above 38 dB against the copy, the claim stays."""
+    serial, mk = master
+    listed, check = _listed(serial)
+    copy = lanczos(mk, (576, 384))
+    tried = 0
+    for period in (128, 512):
+        est = fold_estimate(copy, period)
+        for g in (0.25, 0.5, 1.0):   # at 2 the 128-px fold is already below 38 dB here
+            attacked = add(copy, -g * tiled(est, copy.shape[:2]))
+            if psnr(copy, attacked) < 38.0:
+                continue
+            tried += 1
+            f = scales.examine(to_luma(attacked), ALL, payload_check=check, payload_candidates=listed)
+            assert f.detected and np.array_equal(f.payload_bits, payload(serial)), (period, g)
+    assert tried >= 4
+
+
+def test_null_calibration_with_the_owners_payload_list():
+    """Unmarked pictures and web copies of them, under random owner keys, examined with a list
+    of 500 allocated payloads: every examination scores the listed payload that matches best,
+    none is claimed, and the bound (2**24 payloads counted) stays conservative."""
+    rng = np.random.default_rng(58)
+    allocated = rng.integers(0, 2, (500, 64)).astype(np.uint8)
+    listed = PayloadList(allocated)
+    check = lambda b: bool(np.any(np.all(allocated == np.asarray(b), axis=1)))  # noqa: E731
+    pics = [landscape(700, 1050, seed=44), data.hubble_deep_field()]
+    pics += [_jpeg(lanczos(p, (p.shape[1] // 4, p.shape[0] // 4)), 85) for p in pics]
+    pvals = []
+    for pic in pics:
+        luma = to_luma(pic)
+        prep = scales.prepare(luma)
+        for _ in range(4):
+            keys = MarkKeys(legacy=rng.bytes(32), sync=rng.bytes(32),
+                            families={f: rng.bytes(32) for f in range(format3.FAMILIES)})
+            f = scales.examine(luma, keys, payload_check=check, payload_candidates=listed,
+                               prepared=prep)
+            assert not f.detected
             pvals.append(f.false_alarm_probability)
     format3.family_pattern.cache_clear()
     format3._pilot_kernels.cache_clear()

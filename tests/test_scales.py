@@ -239,3 +239,57 @@ def test_null_calibration_over_every_scale():
     pvals = np.asarray(pvals)
     for p in (0.01, 0.05, 0.2):
         assert np.mean(pvals <= p) <= p, p
+
+
+# ------------------------------------------------------------------ the owner's payload list
+
+
+def test_payload_list_encodes_as_the_encoder_and_picks_the_listed_codeword():
+    import pickle
+
+    from claimkit.mark import ecc
+    from claimkit.mark.payload import PayloadList
+
+    rng = np.random.default_rng(3)
+    bits = rng.integers(0, 2, (300, 64)).astype(np.uint8)
+    listed = PayloadList(bits)
+    for code in (ecc.RATE_HALF, ecc.RATE_THIRD):
+        assert np.array_equal(code.encode_many(bits[:20]), np.stack([code.encode(b) for b in bits[:20]]))
+        # Readings of payload 123 at amplitude 0.8 and unit noise (about one coded bit in five
+        # read wrong, beyond the Viterbi decoder), 96 pilots read alike: the listed payload.
+        n = code.coded_length(64)
+        soft = 0.8 * (2.0 * code.encode(bits[123]) - 1.0) + rng.normal(0.0, 1.0, n)
+        pilots = 0.8 + rng.normal(0.0, 1.0, 96)
+        assert np.array_equal(listed.best(soft, code, pilots), bits[123])
+        # The same readings at a third of the amplitude: the pick may be the right one, but
+        # other listed payloads stay too likely, and no work is named.
+        weak = 0.25 * (2.0 * code.encode(bits[123]) - 1.0) + rng.normal(0.0, 1.0, n)
+        assert listed.best(weak, code, 0.25 + rng.normal(0.0, 1.0, 96)) is None
+    assert PayloadList(np.zeros((0, 64), dtype=np.uint8)).best(np.ones(144), ecc.RATE_HALF,
+                                                                np.ones(96)) is None
+    # One listed payload (a disclosure holder's): nothing to confuse it with.
+    assert np.array_equal(PayloadList(bits[:1]).best(-np.ones(144), ecc.RATE_HALF, -np.ones(96)),
+                          bits[0])
+    again = pickle.loads(pickle.dumps(listed))
+    assert np.array_equal(again.bits, bits) and not again._signs
+    with pytest.raises(ValueError):
+        PayloadList(np.zeros((2, 63), dtype=np.uint8))
+
+
+def test_the_owners_check_lists_every_allocated_serial(monkeypatch):
+    from claimkit import workflow
+    from claimkit.mark import payload as pl
+
+    check = workflow.PayloadChecker(0x1234, bytes(range(32)), 7)
+    listed = check.candidates
+    assert len(listed) == 7 and all(check(b) for b in listed.bits)
+    assert [pl.unpack(b)["serial"] for b in listed.bits] == list(range(1, 8))
+    assert not check(np.bitwise_xor(listed.bits[0], np.eye(64, dtype=np.uint8)[63]))
+    # Past MAX_LISTED, the most recent serials are listed.
+    monkeypatch.setattr(workflow, "MAX_LISTED", 3)
+    assert [pl.unpack(b)["serial"] for b in workflow.PayloadChecker(0x1234, bytes(32), 5).candidates.bits] \
+        == [3, 4, 5]
+    # A disclosure holder lists the disclosed payload only.
+    one = workflow.expected_payload_check(listed.bits[4])
+    assert one(listed.bits[4]) and not one(listed.bits[3])
+    assert len(one.candidates) == 1 and np.array_equal(one.candidates.bits[0], listed.bits[4])

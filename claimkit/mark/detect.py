@@ -47,6 +47,7 @@ from claimkit.mark.pattern import (
     message_template,
     spot_signs,
 )
+from claimkit.mark.payload import PayloadList
 
 PREFILTER = 9                 # local-mean window of the whitening prefilter, pixels
 NORM_WINDOW = 9               # window of the local standard-deviation normalisation
@@ -489,11 +490,13 @@ def _recovered(prep, pattern, ramps, g, d, ph) -> np.ndarray:
     return np.real(np.fft.ifft2(rec_ft))
 
 
-def _decode_at(prep, patterns, ramps, g, d, ph, shift, payload_check, known_bits):
+def _decode_at(prep, patterns, ramps, g, d, ph, shift, payload_check, known_bits, candidates=None):
     """Decode one placement with each readable format's code in turn; the first valid payload wins.
 
     All formats share the carrier and the spot shape, so the recovered map is
     the same for each; only the code spots' positions and the code differ.
+    A payload the decoder does not find may still be the best match in
+    ``candidates`` (:class:`claimkit.mark.payload.PayloadList`).
     """
     n = patterns[0].tile
     weight = patterns[0].spot_ft * patterns[0].band
@@ -501,7 +504,12 @@ def _decode_at(prep, patterns, ramps, g, d, ph, shift, payload_check, known_bits
     first = None
     for pattern in patterns:
         pos = (pattern.code_pos + shift) % n
-        bits = pattern.fmt.code.decode(rec[pos[:, 0], pos[:, 1]], PAYLOAD_BITS, known=known_bits)
+        soft = rec[pos[:, 0], pos[:, 1]]
+        bits = pattern.fmt.code.decode(soft, PAYLOAD_BITS, known=known_bits)
+        if payload_check is not None and not payload_check(bits) and candidates is not None:
+            pp = (pattern.pilot_pos + shift) % n
+            listed = candidates.best(soft, pattern.fmt.code, rec[pp[:, 0], pp[:, 1]] * pattern.pilot_sign)
+            bits = bits if listed is None or not payload_check(listed) else listed
         if payload_check is None or not payload_check(bits):
             first = first or (pattern, bits)
             continue
@@ -576,7 +584,8 @@ def _top(surf: np.ndarray, count: int):
         yield float(flat[idx]), (int(g), int(d), int(ph), np.array([r, c]))
 
 
-def _read_legacy(prep, seed, ramps, payload_check, known_bits, payload_space) -> _Outcome:
+def _read_legacy(prep, seed, ramps, payload_check, known_bits, payload_space,
+                 candidates=None) -> _Outcome:
     """Formats 1 and 2: pilot search over every placement, decode the best few."""
     patterns = [key_pattern(seed, fmt=f) for f in READABLE]
     n = patterns[0].tile
@@ -588,7 +597,7 @@ def _read_legacy(prep, seed, ramps, payload_check, known_bits, payload_space) ->
     best = None
     for z_pilot, (g, d, ph, shift) in _top(surf, DECODE_TRIES):
         pattern, bits, valid, z_full, rec = _decode_at(prep, patterns, ramps, g, d, ph, shift,
-                                                       payload_check, known_bits)
+                                                       payload_check, known_bits, candidates)
         lp = stats.log10_false_alarm(z_pilot=z_pilot, z_full=z_full, hypotheses=h,
                                      payload_space=counted)
         if best is None or lp < best[0]:
@@ -771,7 +780,7 @@ def format3_hypotheses() -> int:
 
 
 def _read_format3(prep, keys: format3.MarkKeys, ramps, payload_check, known_bits,
-                  payload_space, origin) -> tuple[_Outcome | None, float, _Prepared]:
+                  payload_space, origin, candidates=None) -> tuple[_Outcome | None, float, _Prepared]:
     """Format 3: align with the sync pattern, then score every family at every macro offset.
 
     Returns the claim's outcome (None without family seeds), the best
@@ -814,7 +823,7 @@ def _read_format3(prep, keys: format3.MarkKeys, ramps, payload_check, known_bits
         offset = format3.OFFSETS[k]
         bits, valid, z_full, rec = format3.decode_family(
             spec, keys.families[fam], offset, payload_check=payload_check,
-            known_bits=known_bits, decode=float(z[k]) >= DECODE_MIN_Z3)
+            known_bits=known_bits, decode=float(z[k]) >= DECODE_MIN_Z3, candidates=candidates)
         lp = stats.log10_false_alarm(z_pilot=float(z[k]), z_full=z_full, hypotheses=h,
                                      payload_space=payload_space)
         if best is None or lp < best.lp:
@@ -835,7 +844,8 @@ def examine_luma(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
                  threshold: float = DEFAULT_THRESHOLD, decoys: int = 0,
                  decoy_seed: int = 0, workers: int = 1,
                  prepared: _Prepared | None = None,
-                 offset: tuple[int, int] = (0, 0)) -> Finding:
+                 offset: tuple[int, int] = (0, 0),
+                 payload_candidates: PayloadList | None = None) -> Finding:
     """Examine one copy's luma for the mark of ``seed``.
 
     Parameters
@@ -860,6 +870,11 @@ def examine_luma(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
     offset : (int, int)
         Row and column of ``luma[0, 0]`` in the file (when ``luma`` is a
         window of it): format 3 also tries the file's own grid.
+    payload_candidates : PayloadList, optional
+        Payloads the examiner knows to be valid (the owner's allocated
+        serials, or a disclosed work's payload): where the decoder finds no
+        valid payload, the listed one that matches best is scored. Each must
+        pass ``payload_check``; the bound counts ``payload_space`` as before.
 
     Returns
     -------
@@ -881,7 +896,7 @@ def examine_luma(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
     z_sync = None
     if keys.legacy is not None:
         outcomes.append(_read_legacy(prep, keys.legacy, ramps, payload_check, known_bits,
-                                     payload_space))
+                                     payload_space, payload_candidates))
     # A claim in formats 1-2 that stands with the format-3 test counted at its worst
     # (bound 1) needs no format-3 reading: the count of tests is the same either way.
     legacy_claims = bool(outcomes) and stats.log10_best_of(
@@ -890,7 +905,7 @@ def examine_luma(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
         # Where the picture's pixel (0, 0) falls in the examined window's frame.
         origin = (-(offset[0] + prep.window[0]), -(offset[1] + prep.window[1]))
         claim, z_sync, grown = _read_format3(prep, keys, ramps, payload_check, known_bits,
-                                             payload_space, origin)
+                                             payload_space, origin, payload_candidates)
         if claim is not None:
             claim.prep = grown
             outcomes.append(claim)

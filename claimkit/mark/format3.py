@@ -66,6 +66,7 @@ from claimkit.mark.pattern import (
     _upper_half,
     spot_spectrum,
 )
+from claimkit.mark.payload import PayloadList
 
 NAME = "claimkit-mark/3"
 MACRO = 4                 # tiles per side of the macro-cell (16 independent carriers per family)
@@ -235,13 +236,15 @@ def _unit(e: np.ndarray) -> np.ndarray:
     return e / e.std()
 
 
-def macro_tile(keys: EmbedKeys, payload_bits: np.ndarray, tile: int = TILE) -> np.ndarray:
+def macro_tile(keys: EmbedKeys, payload_bits: np.ndarray, tile: int = TILE, *,
+               sync_share: float = SYNC_SHARE) -> np.ndarray:
     """One macro-period (``MACRO * tile`` square) of the format-3 mark at unit RMS (float32).
 
     Block ``(i, j)`` (the picture's tile ``(i, j)`` modulo ``MACRO``) holds
     ``a_s S + a_c E_c`` with ``S`` the synchronisation tile, ``E_c`` the
     claim tile of class ``c = ((i + o_r) mod MACRO, (j + o_c) mod MACRO)``
-    and ``a_s^2 = SYNC_SHARE``, ``a_s^2 + a_c^2 = 1``.
+    and ``a_s^2 = sync_share``, ``a_s^2 + a_c^2 = 1`` (the coarse component
+    of :mod:`claimkit.mark.scales` gives its synchronisation less).
     """
     sp = sync_pattern(keys.sync, tile)
     fam = family_pattern(keys.family_seed, tile)
@@ -251,7 +254,7 @@ def macro_tile(keys: EmbedKeys, payload_bits: np.ndarray, tile: int = TILE) -> n
     code = 2.0 * CODE.encode(np.asarray(payload_bits, dtype=np.uint8)).astype(np.float64) - 1.0
     msg_ft = np.fft.fft2(_spots(np.concatenate([fam.pilot_pos, fam.code_pos]),
                                 np.concatenate([fam.pilot_sign.astype(np.float64), code]), tile)) * spot_ft
-    a_s, a_c = np.sqrt(SYNC_SHARE), np.sqrt(1.0 - SYNC_SHARE)
+    a_s, a_c = np.sqrt(sync_share), np.sqrt(1.0 - sync_share)
     carriers = fam.carriers()
     out = np.empty((MACRO * tile, MACRO * tile), dtype=np.float64)
     for i in range(MACRO):
@@ -419,12 +422,16 @@ def score_families_direct(spec: np.ndarray, families: Mapping[int, bytes]) -> di
 def decode_family(spec: np.ndarray, seed: bytes, offset: tuple[int, int], *,
                   payload_check: Callable[[np.ndarray], bool] | None,
                   known_bits: np.ndarray | None,
-                  decode: bool = True) -> tuple[np.ndarray | None, bool, float | None, np.ndarray]:
+                  decode: bool = True,
+                  candidates: PayloadList | None = None,
+                  ) -> tuple[np.ndarray | None, bool, float | None, np.ndarray]:
     """Recovered message of one family at one offset, decoded; full-template score if the payload checks.
 
     ``decode=False`` returns the recovered message only (bits None): the
     examination skips the Viterbi decoder where the pilot score is too low
     for any payload to reach the threshold (see ``detect.DECODE_MIN_Z3``).
+    Where the decoder's payload does not check, the best match in
+    ``candidates`` is tried (:class:`claimkit.mark.payload.PayloadList`).
     """
     n = spec.shape[-1]
     fam = family_pattern(seed, n)
@@ -441,8 +448,14 @@ def decode_family(spec: np.ndarray, seed: bytes, offset: tuple[int, int], *,
         return None, False, None, rec
     soft = rec[fam.code_pos[:, 0], fam.code_pos[:, 1]]
     bits = CODE.decode(soft, PAYLOAD_BITS, known=known_bits)
-    if payload_check is None or not payload_check(bits):
+    if payload_check is None:
         return bits, False, None, rec
+    if not payload_check(bits):
+        pilots = rec[fam.pilot_pos[:, 0], fam.pilot_pos[:, 1]] * fam.pilot_sign
+        listed = None if candidates is None else candidates.best(soft, CODE, pilots)
+        if listed is None or not payload_check(listed):
+            return bits, False, None, rec
+        bits = listed
     pos, sign, _ = reference_message(seed, bits, n)
     q = (np.fft.fft2(_spots(pos, sign, n)).ravel()[idx]) * sp
     power = (y.real ** 2 + y.imag ** 2).sum(axis=0)

@@ -83,6 +83,7 @@ SSIM_C1 = (0.01 * 255.0) ** 2   # SSIM's luminance constant for 8-bit data (Wang
 COARSE_LABEL = b"claimkit/mark/coarse-level/v1"   # derivation label of the coarse seed
 COARSE_GUARD = 11         # level pixels over which the coarse mask takes the weakest variance
 MIN_COARSE_FACTOR = 1.6  # a picture gets a coarse component when its short side is this times COARSE_SIDE
+COARSE_SYNC_SHARE = 0.25  # share of the format-3 coarse period in its synchronisation (see _period)
 
 
 # ---------------------------------------------------------------- levels
@@ -158,8 +159,10 @@ def _period(keys, payload_bits: np.ndarray) -> np.ndarray:
     if isinstance(keys, (bytes, bytearray)):
         pat = pattern.key_pattern(bytes(keys))
         return pattern.mark_tile(pat, pat.codeword(np.asarray(payload_bits, dtype=np.uint8)))
-    # Format 3: the macro-cell of its synchronisation and claim components.
-    return embed.period(keys, np.asarray(payload_bits, dtype=np.uint8))
+    # Format 3: the macro-cell of its synchronisation and claim components, the synchronisation
+    # with the coarse component's own (smaller) share.
+    return format3.macro_tile(keys, np.asarray(payload_bits, dtype=np.uint8),
+                              sync_share=COARSE_SYNC_SHARE)
 
 
 # ---------------------------------------------------------------- resampling
@@ -298,7 +301,8 @@ def coarse_plan(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
                 fine_allowance: tuple[np.ndarray, int] | None = None,
                 share: float = COARSE_SHARE, strength: float = 1.0,
                 local_ssim: float = embed.DEFAULT_LOCAL_SSIM,
-                psnr_db: float = embed.DEFAULT_PSNR_DB) -> CoarsePlan | None:
+                psnr_db: float = embed.DEFAULT_PSNR_DB,
+                budget: float | None = None) -> CoarsePlan | None:
     """The coarse component for a picture, or None when the picture is too small to need one.
 
     Parameters
@@ -315,6 +319,10 @@ def coarse_plan(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
         SSIM allowance) the coarse component gets.
     strength, local_ssim, psnr_db
         As for :func:`claimkit.mark.embed.mark_delta`.
+    budget : float, optional
+        Cap on the coarse change's mean square (default: ``share`` of what
+        ``psnr_db`` allows; :func:`scales_plan` gives it what the fine
+        component leaves).
     """
     shape = (int(np.shape(luma)[0]), int(np.shape(luma)[1]))
     if not has_coarse(shape) or share <= 0:
@@ -327,7 +335,7 @@ def coarse_plan(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
     # The picture's own SSIM allowance, averaged over each level pixel's footprint.
     native2 = np.maximum(resample(amp * amp, level.shape), 0.0)   # cubic kernels overshoot
     amp_c = coarse_mask(small, native2, level.factor, share=share, local_ssim=local_ssim,
-                        psnr_db=psnr_db)
+                        psnr_db=psnr_db, budget=budget)
     tile = _period(coarse_keys(seed), payload_bits)
     delta = embed.apply_tiled(amp_c, tile * np.float32(strength))
     cols = resample_matrix(shape[1], level.shape[1]).astype(np.float32)
@@ -344,7 +352,8 @@ def flat_weight(factor: float) -> float:
 
 def coarse_mask(small: np.ndarray, native2: np.ndarray, factor: float, *, share: float = COARSE_SHARE,
                 local_ssim: float = embed.DEFAULT_LOCAL_SSIM,
-                psnr_db: float = embed.DEFAULT_PSNR_DB) -> np.ndarray:
+                psnr_db: float = embed.DEFAULT_PSNR_DB,
+                budget: float | None = None) -> np.ndarray:
     """Amplitude of the coarse component at the level (float32).
 
     The least of three allowances:
@@ -361,7 +370,8 @@ def coarse_mask(small: np.ndarray, native2: np.ndarray, factor: float, *, share:
       (mu1^2 + mu2^2 + C1)`` loses about ``d^2 / (2 mu^2 + C1)``, which
       matters in dark areas.
 
-    A water level then caps the mean square at ``share`` of what ``psnr_db`` allows.
+    A water level then caps the mean square at ``budget`` (default ``share``
+    of what ``psnr_db`` allows).
     """
     from scipy import ndimage
 
@@ -379,7 +389,8 @@ def coarse_mask(small: np.ndarray, native2: np.ndarray, factor: float, *, share:
     structure2 = native2 / max(window_fraction(factor), 1e-3)
     luminance2 = k * (2.0 * m * m + SSIM_C1)
     amp2 = np.minimum(level2, share * np.minimum(structure2, luminance2))
-    budget = share * 255.0 ** 2 / 10 ** (psnr_db / 10.0)
+    if budget is None:
+        budget = share * 255.0 ** 2 / 10 ** (psnr_db / 10.0)
     if float(amp2.mean()) > budget:
         np.minimum(amp2, embed._water_level(amp2, budget), out=amp2)
     return np.sqrt(amp2).astype(np.float32)
@@ -392,7 +403,10 @@ def scales_plan(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
     """The fine and coarse components of a picture's mark, sharing one budget.
 
     The fine component gets ``1 - share`` of the mean squared change and of
-    each window's SSIM allowance, the coarse one ``share``; a picture too
+    each window's SSIM allowance, the coarse one ``share`` of each window's
+    allowance and whatever part of the mean squared change the fine one
+    leaves (at least ``share``: on a picture with large smooth areas the fine
+    mask stays below its cap, and the sum keeps to ``psnr_db``); a picture too
     small for a coarse level gets the fine mark alone at full strength.
     """
     shape = np.shape(luma)
@@ -402,9 +416,12 @@ def scales_plan(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
                                           executor=executor), None)
     fine = embed.mark_plan(luma, seed, payload_bits, strength=strength * math.sqrt(1.0 - share),
                            local_ssim=local_ssim, psnr_db=psnr_db, executor=executor)
-    # The fine plan's mask is at full allowance (the strength scales its period).
+    # The fine plan's mask is at full allowance (the strength scales its period), so the
+    # fine change's mean square is (1 - share) mean(amp^2); the coarse gets the rest.
+    total = 255.0 ** 2 / 10 ** (psnr_db / 10.0)
     coarse = coarse_plan(luma, seed, payload_bits, fine_allowance=(fine.amp, fine.step),
-                         share=share, strength=strength, local_ssim=local_ssim, psnr_db=psnr_db)
+                         share=share, strength=strength, local_ssim=local_ssim, psnr_db=psnr_db,
+                         budget=total - (1.0 - share) * float(np.mean(np.square(fine.amp))))
     return ScalesPlan(fine, coarse)
 
 
