@@ -332,10 +332,10 @@ def broad_section(quick: bool) -> dict:
         "settings": {"side_px": broad.BROAD_SIDE, "smooth_px": broad.SMOOTH,
                      "min_overlap": broad.MIN_OVERLAP, "min_pixels": broad.MIN_PIXELS},
         "refute_below": below,
-        "refute_rule": "half the lowest value any genuine copy reached (the copy compared at its "
-                       "true geometry and at every corner of the mark's tolerance, "
-                       f"{MARK_ROTATION_TOLERANCE_DEG} degrees and {MARK_SCALE_TOLERANCE:.0%} "
-                       "in scale, the lowest kept)",
+        "refute_rule": "half the lowest value any genuine copy reached, each copy compared at its "
+                       "true geometry and at every corner of the mark's tolerance "
+                       f"({MARK_ROTATION_TOLERANCE_DEG} degrees, {MARK_SCALE_TOLERANCE:.0%} "
+                       "in scale) and the lowest of these kept",
         "genuine": {"count": len(gv), "samples": [round(v, 4) for v in gv],
                     "not_comparable": sum(1 for r in gen if r["value"] is None),
                     "lowest": sorted((r for r in gen if r["value"] is not None),
