@@ -513,22 +513,23 @@ def owner_payload_check(profile) -> PayloadChecker:
 
 @dataclass(frozen=True)
 class ExpectedPayload:
-    """For an expert holding a disclosure: valid only if it is the disclosed work's payload."""
+    """For an expert holding disclosures: valid only if it is a disclosed work's payload."""
 
-    bits: tuple[int, ...]
+    payloads: tuple[tuple[int, ...], ...]
 
     def __call__(self, got) -> bool:
-        return tuple(int(b) for b in np.asarray(got, dtype=np.uint8)) == self.bits
+        return tuple(int(b) for b in np.asarray(got, dtype=np.uint8)) in self.payloads
 
     @property
     def candidates(self) -> payload.PayloadList:
-        """The disclosed payload, the only one listed."""
-        return payload.PayloadList(np.asarray([self.bits], dtype=np.uint8))
+        """The disclosed payloads, the only ones listed."""
+        return payload.PayloadList(np.asarray(self.payloads, dtype=np.uint8))
 
 
-def expected_payload_check(bits: np.ndarray) -> ExpectedPayload:
-    """For an expert holding a disclosure: valid only if it is the disclosed work's payload."""
-    return ExpectedPayload(tuple(int(b) for b in np.asarray(bits, dtype=np.uint8)))
+def expected_payload_check(*bits: np.ndarray) -> ExpectedPayload:
+    """For an expert holding disclosures: valid only if it is one of the disclosed works' payloads."""
+    return ExpectedPayload(tuple(tuple(int(b) for b in np.asarray(one, dtype=np.uint8))
+                                 for one in bits))
 
 
 def known_owner_bits(owner_tag: int) -> np.ndarray:
