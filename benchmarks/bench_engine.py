@@ -127,7 +127,7 @@ orig_read_picture = workflow.read_picture
 def read_picture(*a, **k):
     return timed(next(reads), orig_read_picture)(*a, **k)
 workflow.read_picture = read_picture
-workflow.to_luma = timed("luma (BT.601, full size)", workflow.to_luma)
+workflow._luma_band = timed("luma (BT.601, full size, bands)", workflow._luma_band)
 workflow.perceptual_fingerprint = timed("perceptual fingerprint", workflow.perceptual_fingerprint)
 class Proxy:
     # the module, with some functions replaced (only as workflow sees them)
@@ -137,16 +137,15 @@ class Proxy:
     def __getattr__(self, name):
         return getattr(self._module, name)
 
-q = workflow.quality
-workflow.embed = Proxy(workflow.embed, mark_plan=timed(
-    "mask (SSIM-derived, half size) + key pattern", workflow.embed.mark_plan))
-workflow.add_luma_delta = timed("add change to R,G,B (band by band)", workflow.add_luma_delta)
+workflow.scales = Proxy(workflow.scales, scales_plan=timed(
+    "plan: mask, coarse component, key pattern", workflow.scales.scales_plan))
+workflow.add_luma_delta = timed("add change to R,G,B (bands)", workflow.add_luma_delta)
+workflow._squared_error = timed("squared errors (marked bands + file as written)",
+                                workflow._squared_error)
 workflow.write_picture_keeping_bytes = timed("encode JPEG q95 4:4:4 + exiftool + atomic write",
                                              workflow.write_picture_keeping_bytes)
-workflow.quality = Proxy(
-    q, squared_error_sum=timed("PSNR of the marked pixels (exact sum)", q.squared_error_sum),
-    psnr=timed("PSNR of the file as written", q.psnr),
-    ssim_estimate=timed("SSIM (8 patches of 512x512)", q.ssim_estimate))
+workflow.quality = Proxy(workflow.quality, ssim_estimate=timed(
+    "SSIM (8 patches of 512x512, luma included)", workflow.quality.ssim_estimate))
 best = None
 for i in range(3):
     spent.clear()

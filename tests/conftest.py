@@ -33,12 +33,17 @@ TEST_OWNER = "Ilse Marrow"
 
 
 @pytest.fixture(autouse=True)
-def _no_real_home(tmp_path, monkeypatch):
+def _no_real_home(tmp_path, tmp_path_factory, monkeypatch):
     """Keep every test away from the real ~/.claimkit: CLAIMKIT_HOME points into tmp_path
     (an empty folder, so "no profile" still applies) unless a test sets it otherwise."""
     monkeypatch.setenv("CLAIMKIT_HOME", str(tmp_path / "no-profile-home"))
     monkeypatch.delenv("CLAIMKIT_PASSPHRASE", raising=False)
     monkeypatch.delenv("CLAIMKIT_SESSION", raising=False)     # a session of the user's shell
+    # Session files go to the test's own runtime folder (beside tmp_path, not in it:
+    # tests list tmp_path), never the machine's /dev/shm.
+    runtime = tmp_path_factory.mktemp("runtime")
+    runtime.chmod(0o700)
+    monkeypatch.setenv("XDG_RUNTIME_DIR", str(runtime))
 
 
 @pytest.fixture

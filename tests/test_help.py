@@ -43,3 +43,34 @@ def test_the_parser_and_the_profile_listing_load_no_numerics(tmp_path, profile_h
         out = subprocess.run([sys.executable, "-c", probe, *argv], capture_output=True, text=True,
                              check=False, cwd=tmp_path)
         assert out.stderr.strip().splitlines()[-1:] == ["0 []"], (argv, out.stderr[-2000:])
+
+
+def test_every_help_page_fits_a_60_column_terminal(monkeypatch):
+    # argparse wraps what it formats to $COLUMNS - 2; hand-formatted epilogs
+    # (RawDescriptionHelpFormatter) are not wrapped, so they must be written to fit.
+    monkeypatch.setenv("COLUMNS", "60")
+    wide = []
+    for path, parser in _walk(build_parser(), "claimkit"):
+        for line in parser.format_help().splitlines():
+            if len(line) > 60:
+                wide.append(f"{path}: {line}")
+    assert not wide, "\n".join(wide)
+
+
+def test_the_command_line_loads_numpy_parts_it_never_uses_only_when_used():
+    # SciPy's array-API layer reads every public numpy name at import, which would load
+    # numpy.f2py and numpy.testing (and with them unittest and charset_normalizer) in every
+    # examining command. The entry point defers them; using one still loads all of it.
+    import subprocess
+    import sys
+
+    probe = (
+        "import sys; from claimkit.cli import defer_unused_numpy_parts, DEFERRED_NUMPY_PARTS; "
+        "defer_unused_numpy_parts(); import scipy.fft, scipy.ndimage, scipy.sparse; "
+        "assert 'numpy' in sys.modules; "
+        "loaded = sorted(m for m in ('unittest', 'numpy.f2py.crackfortran', "
+        "'numpy.testing._private.utils', 'numpy.polynomial.polynomial') if m in sys.modules); "
+        "import numpy; numpy.testing.assert_equal(numpy.polynomial.Polynomial([1, 2])(3), 7); "
+        "print(loaded, 'unittest' in sys.modules, len(DEFERRED_NUMPY_PARTS))")
+    out = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, check=False)
+    assert out.stdout.split() == ["[]", "True", "3"], out.stderr[-2000:]

@@ -22,7 +22,7 @@ from skimage.transform import resize
 
 from claimkit import workflow
 from claimkit.errors import InputError
-from claimkit.imageio import add_luma_delta, read_picture, to_luma
+from claimkit.imageio import add_luma_delta, canvas_like, padded_rows, read_picture, to_luma
 from claimkit.mark import embed, fingerprint, quality, scales
 from claimkit.mark.pattern import TILE
 from tests.engine_helpers import SEED, payload
@@ -48,6 +48,9 @@ def test_luma_is_the_one_pass_einsum_bit_for_bit_on_every_8bit_colour():
     weights = np.array([0.299, 0.587, 0.114], dtype=np.float32)
     ref = np.einsum("ijk,k->ij", cube, weights, dtype=np.float32)
     assert np.array_equal(to_luma(cube), ref)
+    wide = canvas_like(cube)             # RGBX rows, as pictures read from JPEGs are held
+    wide[...] = cube
+    assert np.array_equal(to_luma(wide), ref)
     c16 = RNG.integers(0, 65536, (301, 777, 3), dtype=np.uint16)
     ref16 = np.einsum("ijk,k->ij", c16, weights, dtype=np.float32) / np.float32(257)
     assert np.array_equal(to_luma(c16), ref16)
@@ -67,6 +70,20 @@ def test_add_luma_delta_is_the_per_sample_formula(dtype):
     assert add_luma_delta(px, delta, out=out) is out and np.array_equal(out, ref)
     grey = px[..., 0]
     assert np.array_equal(add_luma_delta(grey, delta), ref[..., 0])
+    if dtype == np.uint8:
+        # whole RGBX rows (pictures read from JPEGs, the marking canvas): the same bytes,
+        # the padding byte given back its value, so sums over whole rows stay those of RGB
+        src, dst = canvas_like(px), canvas_like(px)
+        src[...] = px
+        src.base[..., 3] = RNG.integers(0, 256, px.shape[:2], dtype=np.uint8)
+        assert padded_rows(src[5:17]) is not None and padded_rows(px) is None
+        add_luma_delta(src[:100], delta[:100], out=dst[:100])
+        add_luma_delta(src[100:], delta[100:], out=dst[100:])
+        assert np.array_equal(dst, ref)
+        assert np.array_equal(dst.base[..., 3], src.base[..., 3])
+        sse = sum(int(v) ** 2 for v in (ref.astype(np.int64) - px).ravel())
+        assert quality.squared_error_sum(padded_rows(src), padded_rows(dst)) == sse
+        assert quality.squared_error_sum(src, dst) == sse      # strided views too
 
 
 # ------------------------------------------------------------------ mask and change
@@ -272,3 +289,13 @@ def test_one_core_marks_the_same_pixels_in_place(tmp_path, monkeypatch):
     assert seen and max(seen) == started          # no helper thread was started
     assert one == two
     assert (tmp_path / "one.png").read_bytes() == (tmp_path / "two.png").read_bytes()
+
+
+def test_ssim_window_means_are_scipys_gaussian_filter_inside_the_border():
+    # Reference: scipy.ndimage.gaussian_filter (sigma 1.5, truncate 3.5, float64), whose
+    # reflected borders lie in the 5 pixels the mean SSIM leaves out.
+    z = (RNG.random((67, 93)) * 255).astype(np.float32)
+    ref = ndimage.gaussian_filter(z.astype(np.float64), 1.5, truncate=3.5, mode="reflect")
+    got = quality._window_mean_valid(z)
+    assert got.dtype == np.float32 and got.shape == (57, 83)
+    assert np.allclose(got, ref[5:-5, 5:-5], rtol=0, atol=2e-4)   # float32 sums of 0..255

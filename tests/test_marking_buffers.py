@@ -74,3 +74,38 @@ def test_the_kept_bytes_are_the_file_on_disk(tmp_path):
     back = read_picture(out, data=kept)
     assert back.sha256 == hashlib.sha256(kept).hexdigest() == ref
     np.testing.assert_array_equal(back.pixels, read_picture(out).pixels)
+
+
+@pytest.mark.parametrize("orientation", range(1, 9))
+def test_jpeg_decoded_into_numpy_memory_is_pillows_decode(tmp_path, orientation):
+    # Reference: Pillow's own decode into its own memory, turned by ImageOps.exif_transpose
+    # (Pillow's reading of EXIF 2.32 tag 0x0112), copied out with np.asarray.
+    from PIL import ImageOps
+
+    from claimkit.imageio import LUMA_FROM_JPEG_Y, padded_rows
+
+    exif = Image.Exif()
+    exif[0x0112] = orientation
+    src = tmp_path / "turned.jpg"
+    Image.fromarray(data.astronaut()[:301, :457]).save(src, quality=90, exif=exif.tobytes())
+    pic = read_picture(src)
+    want = np.asarray(ImageOps.exif_transpose(Image.open(src)))
+    assert np.array_equal(pic.pixels, want)
+    wide = padded_rows(pic.pixels)            # kept on 4 bytes a pixel, even when turned
+    assert wide is not None and (wide[..., 3] == 255).all()
+    grey = read_picture(src, method=LUMA_FROM_JPEG_Y)
+    with Image.open(src) as im:
+        im.draft("L", None)
+        want_y = np.asarray(ImageOps.exif_transpose(im))
+    assert grey.pixels.flags.c_contiguous and np.array_equal(grey.pixels, want_y)
+
+
+def test_decoding_into_numpy_memory_keeps_the_truncation_error(tmp_path):
+    from claimkit.errors import InputError
+
+    src = tmp_path / "whole.jpg"
+    Image.fromarray(data.astronaut()).save(src, quality=90)
+    cut = tmp_path / "cut.jpg"
+    cut.write_bytes(src.read_bytes()[:30_000])
+    with pytest.raises(InputError, match="truncated"):
+        read_picture(cut)

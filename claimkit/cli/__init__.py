@@ -129,5 +129,54 @@ def main(argv: list[str] | None = None) -> int:
     return int(code or 0)
 
 
+# Parts of NumPy that no command uses, but that SciPy's array-API layer loads at import
+# (its copy of the numpy namespace reads every public name, submodules included):
+# numpy.f2py (with charset_normalizer), numpy.testing (with unittest) and numpy.polynomial
+# cost about 0.15 s of CPU in every command that examines (benchmarks/bench_startup.py).
+# Not numpy.ma: NumPy's own np.unique reads it, and a module loaded on first use must
+# not be first used from two threads at once (Python 3.11's LazyLoader takes no lock).
+DEFERRED_NUMPY_PARTS = ("numpy.f2py", "numpy.testing", "numpy.polynomial")
+
+
+class _DeferredParts:
+    """An import finder that hands the :data:`DEFERRED_NUMPY_PARTS` to ``LazyLoader``.
+
+    The standard library's ``importlib.util.LazyLoader``: importing one of
+    these parts gives the module object at once, and its code runs on the
+    first attribute read, so anything that does use one gets the whole
+    module. The other finders still locate the module; this one only wraps
+    their loader.
+    """
+
+    def find_spec(self, name, path=None, target=None):
+        if name not in DEFERRED_NUMPY_PARTS:
+            return None
+        import importlib.util
+
+        for finder in sys.meta_path:
+            if finder is self or not hasattr(finder, "find_spec"):
+                continue
+            spec = finder.find_spec(name, path, target)
+            if spec is not None:
+                if spec.loader is not None and hasattr(spec.loader, "exec_module"):
+                    spec.loader = importlib.util.LazyLoader(spec.loader)
+                return spec
+        return None
+
+
+def defer_unused_numpy_parts() -> None:
+    """Load the :data:`DEFERRED_NUMPY_PARTS` when first used instead of at import.
+
+    Installed by the command-line entry point only (not by the library, nor
+    for tests that call :func:`main`); parts already loaded stay as they are.
+    NumPy itself is not imported here: commands that need no NumPy still
+    start without it.
+    """
+    if not any(isinstance(f, _DeferredParts) for f in sys.meta_path):
+        sys.meta_path.insert(0, _DeferredParts())
+
+
 def run() -> None:  # pragma: no cover - console entry point
+    if len(sys.argv) > 1 and sys.argv[1] not in ("-h", "--help", "--version"):
+        defer_unused_numpy_parts()
     sys.exit(main())

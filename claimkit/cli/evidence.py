@@ -331,16 +331,18 @@ def register(sub, common) -> None:
     p.add_argument("--owner", required=True, metavar="NAME", help="the owner's name")
     json_opt(p)
 
-    p = add(sub, "unlock", "open the profile once and keep it open for a while (a session)",
+    p = add(sub, "unlock", "open the profile once, keep it open a while (a session)",
             cmd_unlock, formatter_class=argparse.RawDescriptionHelpFormatter,
-            epilog=f"Stretches the passphrase once and prints a line that sets {SESSION_ENV};\n"
-                   "commands run where it is set skip the passphrase until the session ends:\n\n"
+            epilog="Stretches the passphrase once and prints a line that sets\n"
+                   f"{SESSION_ENV}; commands run where it is set skip the\n"
+                   "passphrase until the session ends:\n\n"
                    '  eval "$(claimkit unlock --for 30m)"\n'
                    "  claimkit examine ...; claimkit case examine ...\n"
                    '  eval "$(claimkit lock)"\n\n'
-                   "The session key exists only in that variable. The secrets are sealed under\n"
-                   "it in a file of the user's runtime folder, deleted when the session ends;\n"
-                   "the passphrase-sealed key file is not changed.")
+                   "The session key exists only in that variable. The secrets\n"
+                   "are sealed under it in a file of the user's runtime\n"
+                   "folder, deleted when the session ends; the\n"
+                   "passphrase-sealed key file is not changed.")
     p.add_argument("--for", dest="lifetime", default="1h", metavar="TIME",
                    help="how long the session lasts: 90s, 20m, 2h (default 1h, at most 12h)")
     json_opt(p)
@@ -384,7 +386,7 @@ def register(sub, common) -> None:
     json_opt(q)
 
     p = add(sub, "disclose", "write what an independent expert needs to re-check one work",
-            cmd_disclose, formatter_class=argparse.RawDescriptionHelpFormatter,
+            cmd_disclose,
             epilog="Reveals the key material of the work's mark format (formats 1 and 2: the "
                    "owner-level detection seed, which finds every format-1/2 work of the "
                    "owner), the work's payload tag and commitment opening, the public key and "
