@@ -453,6 +453,30 @@ def test_web_copies_the_decoder_cannot_read_are_claimed_from_the_owners_list(mas
         assert f.payload_space == 2 ** 24 and f.hypotheses == 3 * detect.format3_hypotheses()
 
 
+def test_a_disclosure_holder_re_runs_a_claim_the_owners_list_made(master, tmp_path):
+    """A 25 % JPEG 75 web copy that only the list names: the owner's examination (the list of
+    allocated payloads) and a disclosure holder's re-run (that work's family and sync seeds, its
+    payload listed by workflow.expected_payload_check, as verify's re-run builds its check) reach
+    the same finding; with a check that lists nothing the holder would find the mark but no work."""
+    from claimkit import workflow
+    from claimkit.imageio import read_picture
+
+    serial, mk = master
+    listed, _ = _listed(serial)
+    Image.fromarray(lanczos(mk, (375, 250))).save(tmp_path / "web.jpg", quality=75)
+    pic = read_picture(tmp_path / "web.jpg")
+    bits = payload(serial)
+    owner = workflow.examine_picture(pic, ALL, payload_check=workflow.expected_payload_check(*listed.bits))
+    k = prof.format3_keys(SECRET, serial=serial)
+    held = MarkKeys(legacy=ALL.legacy, sync=k["sync"], families={k["family"]: k["families"][k["family"]]})
+    again = workflow.examine_picture(pic, held, payload_check=workflow.expected_payload_check(bits))
+    bare = workflow.examine_picture(pic, held, payload_check=lambda b: bool(np.array_equal(b, bits)))
+    assert owner.detected and np.array_equal(owner.payload_bits, bits)
+    for key in ("detected", "payload_bits", "log10_false_alarm", "z_pilot", "z_full", "mark_family"):
+        assert getattr(again, key) == getattr(owner, key), key
+    assert not bare.payload_valid
+
+
 def test_the_owners_list_never_names_the_wrong_work(master):
     """Copies at the edge of what the coarse component carries (20 % and 15 % of the width, JPEG
     85; 20 % cropped to 4:5, JPEG 75): each is either claimed with the marked work or with none,
