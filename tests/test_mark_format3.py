@@ -325,8 +325,9 @@ def test_a_format3_disclosure_holds_one_family_committed_to_and_reads_its_work(p
 
 
 def test_mark_format_2_on_request_is_recorded_and_read_as_format_2(profile, tmp_path):
-    """``mark --format 2`` (the default) writes the owner-level tiled pattern, records it, and the
-    owner reads it."""
+    """``mark --format 2`` writes the owner-level tiled pattern, records it, and the owner reads it;
+    ``mark`` without ``--format`` writes format 3 (the default since format 2's tile proved removable
+    and transplantable by a keyless fold)."""
     from PIL import Image
 
     from claimkit import workflow
@@ -342,6 +343,11 @@ def test_mark_format_2_on_request_is_recorded_and_read_as_format_2(profile, tmp_
     found, _ = workflow.examine_file(profile, tmp_path / "cat-2.png")
     assert found["detected"] and found["mark_format"] == "claimkit-mark/2"
     assert found["work_id"] == rep["work_id"]
+    # The default, through the command line as an owner types it.
+    assert main(["--home", str(profile.home), "mark", str(src), "--out", str(tmp_path / "cat-d.png"),
+                 "--json"]) == 0
+    default = [w for w in profile.works() if w.record["mark_params"]["format"] == format3.NAME]
+    assert len(default) == 1 and formats.DEFAULT_WRITTEN == 3
     with pytest.raises(InputError, match="cannot be written"):
         workflow.mark_file(profile, src, tmp_path / "cat-5.png", mark_format=5)
     assert not (tmp_path / "cat-5.png").exists()

@@ -173,9 +173,10 @@ def register(sub, common) -> None:
     p.add_argument("--strength", type=float, default=1.0,
                    help="multiplier on the default strength (default 1.0)")
     p.add_argument("--format", dest="mark_format", type=int, choices=(2, 3), default=None,
-                   metavar="N", help="mark format written: 2 (one tiled pattern per owner; the "
-                                     "default) or 3 (keyed per tile and family, resists estimation "
-                                     "attacks, weaker on small turned copies); every format is read")
+                   metavar="N", help="mark format written: 3 (the default: keyed per tile and family, "
+                                     "resists estimation and copy attacks) or 2 (one tiled pattern "
+                                     "per owner: a little more robust to heavy attacks, but a "
+                                     "keyless fold removes and transplants it); every format is read")
     p.add_argument("--max-pixels", type=int, default=None, metavar="N",
                    help="refuse images with more pixels (decompression-bomb guard)")
     p.add_argument("--workers", type=int, default=None, help="parallel workers for batches")
