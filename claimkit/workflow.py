@@ -515,24 +515,21 @@ def owner_payload_check(profile) -> PayloadChecker:
 class ExpectedPayload:
     """For an expert holding disclosures: valid only if it is a disclosed work's payload."""
 
-    rows: tuple[tuple[int, ...], ...]
+    payloads: tuple[tuple[int, ...], ...]
 
     def __call__(self, got) -> bool:
-        return tuple(int(b) for b in np.asarray(got, dtype=np.uint8)) in self.rows
+        return tuple(int(b) for b in np.asarray(got, dtype=np.uint8)) in self.payloads
 
     @property
     def candidates(self) -> payload.PayloadList:
-        """The disclosed payloads, the only ones listed (as the owner's check lists its own)."""
-        return payload.PayloadList(np.asarray(self.rows, dtype=np.uint8))
+        """The disclosed payloads, the only ones listed."""
+        return payload.PayloadList(np.asarray(self.payloads, dtype=np.uint8))
 
 
-def expected_payload_check(*payloads: np.ndarray) -> ExpectedPayload:
-    """For an expert holding the disclosure of these works: valid only for their payloads.
-
-    It lists them for the decoder too, so that an examination the owner made
-    with the list of allocated payloads re-runs to the same finding.
-    """
-    return ExpectedPayload(tuple(tuple(int(b) for b in np.asarray(p, dtype=np.uint8)) for p in payloads))
+def expected_payload_check(*bits: np.ndarray) -> ExpectedPayload:
+    """For an expert holding disclosures: valid only if it is one of the disclosed works' payloads."""
+    return ExpectedPayload(tuple(tuple(int(b) for b in np.asarray(one, dtype=np.uint8))
+                                 for one in bits))
 
 
 def known_owner_bits(owner_tag: int) -> np.ndarray:

@@ -6,7 +6,7 @@ import io
 
 import numpy as np
 from PIL import Image, ImageEnhance, ImageFilter
-from skimage import data
+from skimage import data, draw, filters
 
 from claimkit.evidence.keys import derive_payload_tag
 from claimkit.imageio import add_luma_delta, to_luma
@@ -55,6 +55,29 @@ def sky(h: int = 480, w: int = 640) -> np.ndarray:
     y = np.linspace(0, 1, h)[:, None]
     base = np.stack([90 + 60 * y, 140 + 50 * y, 220 + 20 * y], axis=-1) * np.ones((1, w, 1))
     return np.clip(base + rng.normal(0, 1.2, base.shape), 0, 255).astype(np.uint8)
+
+
+def generated(seed: int) -> np.ndarray:
+    """A smooth random colour texture with random shapes over it (no two seeds alike)."""
+    rng = np.random.default_rng(seed)
+    h, w = 420, 560
+    base = np.stack([filters.gaussian(rng.normal(size=(h, w)), sigma=rng.uniform(4, 20))
+                     for _ in range(3)], axis=-1)
+    base = (base - base.min()) / (np.ptp(base) + 1e-9)
+    img = (base * 200 + 30).astype(np.uint8)
+    shapes, _ = draw.random_shapes((h, w), max_shapes=12, min_size=20, max_size=120,
+                                   rng=int(rng.integers(1 << 30)), channel_axis=-1)
+    mask = shapes.min(axis=-1) < 255
+    img[mask] = (0.6 * img[mask] + 0.4 * shapes[mask]).astype(np.uint8)
+    return img
+
+
+def soft(seed: int, h: int = 480, w: int = 640) -> np.ndarray:
+    """A soft colour texture without edges (smoothed noise, sigma 30 px): few corners for ORB."""
+    rng = np.random.default_rng(seed)
+    base = np.stack([filters.gaussian(rng.normal(size=(h, w)), sigma=30) for _ in range(3)], -1)
+    base = (base - base.min()) / (np.ptp(base) + 1e-9)
+    return (base * 120 + 60).astype(np.uint8)
 
 
 def photos() -> dict[str, np.ndarray]:

@@ -187,3 +187,77 @@ def test_featureless_work_is_inconclusive_never_a_mismatch():
     ev = evaluate(exhibit="Exhibit 1", work_id="W-1", owner=None, detected=True, threshold=1e-9,
                   content=c, agreement=None)
     assert not ev["derivation_claimed"] and "cannot be excluded" in ev["combination"]
+
+
+def test_masked_correlation_is_pearsons_over_the_shared_pixels():
+    # Reference: numpy's corrcoef (Pearson's r) over the pixels both pictures cover, at shifts
+    # where they overlap wholly and in part.
+    from scipy import ndimage
+
+    from claimkit.content.broad import masked_ncc
+
+    rng = np.random.default_rng(5)
+    fixed = ndimage.gaussian_filter(rng.normal(size=(30, 40)), 2)
+    moving = ndimage.gaussian_filter(rng.normal(size=(12, 17)), 2)
+    mask = np.ones_like(moving, bool)
+    mask[0, :3] = False
+    ncc, n = masked_ncc(fixed, np.ones_like(fixed, bool), moving, mask, min_overlap=20)
+    rr, cc = np.nonzero(mask)
+    for dy, dx in [(0, 0), (5, 9), (-4, 30), (25, -6)]:
+        ok = (rr + dy >= 0) & (rr + dy < 30) & (cc + dx >= 0) & (cc + dx < 40)
+        want = np.corrcoef(fixed[rr[ok] + dy, cc[ok] + dx], moving[rr[ok], cc[ok]])[0, 1]
+        i, j = dy + moving.shape[0] - 1, dx + moving.shape[1] - 1
+        assert n[i, j] == ok.sum() and ncc[i, j] == pytest.approx(want, abs=1e-9)
+
+
+def _weigh_examined(copy: np.ndarray, reference: np.ndarray) -> dict:
+    from claimkit.evaluation.lines import weigh
+
+    f = detect.examine_luma(to_luma(copy), bytes(range(32)))
+    assert f.detected
+    return weigh(to_luma(copy), label="Exhibit 9", mark={"detected": True, "geometry": f.geometry,
+                                                         "work_id": "W-1"},
+                 threshold=1e-9, work_id="W-1", work_record=None, owner=None,
+                 reference_luma=to_luma(reference))
+
+
+def test_transplant_onto_a_cornerless_host_is_flagged_by_its_layout(published):
+    # The attacker (numpy only) adds the mark to a soft, cornerless picture: the keypoints
+    # cannot decide, but placed as the mark reads it the host shares none of the work's layout.
+    from engine_helpers import soft
+
+    w = _weigh_examined(transplant_mark(published, soft(0, *published.shape[:2])), published)
+    c, ev = w["content"], w["evaluation"]
+    assert c["corresponds"] is None and c["layout_with_mark"]["uses_mark_geometry"]
+    assert c["layout_with_mark"]["refutes"] and w["content_mismatch"]
+    assert not ev["derivation_claimed"] and ev["reported_log10_lr"] < 0
+    assert ev["log10_lr"]["combined"] is None and "transplanted" in ev["finding"]
+
+
+def test_genuine_sky_copy_keeps_its_layout_and_is_not_flagged():
+    # A clear sky reduced to 70 %: no keypoints to decide by, the same broad layout at the
+    # mark's geometry; not flagged, nothing derived, and the opinion names its assumption.
+    from engine_helpers import sky
+
+    pub = mark(sky())
+    w = _weigh_examined(stress.resize(pub, 0.7), pub)
+    assert w["content"]["corresponds"] is None
+    lay = w["content"]["layout_with_mark"]
+    assert lay["value"] > 0.95 and not lay["refutes"] and not w["content_mismatch"]
+    assert not w["evaluation"]["derivation_claimed"]
+    assert w["evaluation"]["verbal"].startswith("Only on the assumption that no mark was transplanted")
+
+
+def test_whole_residual_transplant_keeps_points_but_not_the_layout():
+    # The strongest copy attack (numpy only): the marked file's whole fine-detail residual added
+    # to a picture of soft colour and flat shapes. Enough of the work's detail survives for the
+    # points to pass the threshold; its broad layout does not, and the line says so.
+    from engine_helpers import generated, soft
+
+    work = mark(soft(5))
+    c = content_line(to_luma(transplant_mark(work, generated(998), tile=None)),
+                     reference_luma=to_luma(work))
+    assert c["statistic"]["value"] >= c["statistic"]["threshold"]
+    assert c["corresponds"] is False and c["layout"]["refutes"]
+    assert not c["layout"]["uses_mark_geometry"] and c["log10_lr"] < 0
+    assert "lifted residual" in c["reason"]

@@ -545,3 +545,28 @@ def test_null_calibration_with_the_owners_payload_list():
     pvals = np.asarray(pvals)
     for p in (0.25, 0.5):
         assert np.mean(pvals <= p) <= p + 1e-9, p
+
+
+def test_an_examination_reruns_to_the_same_numbers_whatever_payloads_the_examiner_lists(master):
+    """The owner lists every allocated serial, an expert holding a disclosure lists the disclosed
+    work only: a claim made through the list, and every number of an examination that claims
+    nothing (an unmarked picture; a copy too small to claim), must come out the same for both
+    (`verify` re-runs findings with a disclosure). Before the fix, an owner's list pick that did
+    not claim was reported on an unmarked exhibit and the expert's re-run differed."""
+    from claimkit import workflow
+
+    serial, mk = master
+    listed, check = _listed(serial)
+    mine = workflow.expected_payload_check(payload(serial))
+    small = lanczos(mk, (375, 250))
+    copies = {"25 % JPEG 75": _jpeg(small, 75), "10 % JPEG 85": _jpeg(lanczos(mk, (150, 100)), 85),
+              "unmarked": _jpeg(landscape(250, 375, seed=91), 85)}
+    for name, copy in copies.items():
+        luma = to_luma(copy)
+        owner = scales.examine(luma, ALL, payload_check=check, payload_candidates=listed)
+        expert = scales.examine(luma, ALL, payload_check=mine, payload_candidates=mine.candidates)
+        assert owner.detected == (name == "25 % JPEG 75"), name
+        assert owner.to_json() == expert.to_json(), name
+        if not owner.detected:
+            plain = scales.examine(luma, ALL, payload_check=check)
+            assert owner.to_json() == plain.to_json(), name

@@ -24,6 +24,7 @@ from importlib import resources
 
 import numpy as np
 
+from claimkit.content import broad
 from claimkit.content import register as reg
 from claimkit.evaluation import lr
 from claimkit.mark import fingerprint as fp
@@ -34,6 +35,7 @@ __all__ = [
     "agreement",
     "calibration",
     "content_line",
+    "layout_check",
 ]
 
 #: The two geometries agree when the turns differ by at most this (degrees) ...
@@ -168,6 +170,19 @@ def content_line(exhibit_luma: np.ndarray, *, reference_luma: np.ndarray | None 
         threshold = int(cal["threshold"])
         value = int(res["inliers"])
         corresponds, checks, reason = _decide(value, threshold, reference_luma, exhibit_luma)
+        layout = None
+        if corresponds:
+            # Points can match the work's fine detail alone (its residual lifted from a published
+            # copy and added to another picture, mark included): the layout must match too.
+            g = res["geometry"]
+            layout = layout_check(reference_luma, exhibit_luma,
+                                  np.asarray(g["matrix"]) / reference_scale,
+                                  uses_mark_geometry=False)
+            if layout["refutes"]:
+                corresponds = False
+                reason = (f"{value} matching points fit one transformation, but " + layout["reason"]
+                          + "; the work's fine detail without its layout is what a picture "
+                          "carrying a lifted residual of the work, mark included, shows")
         out = {
             "basis": reference, "limited_to_fingerprint": False,
             "statistic": {"name": "RANSAC inliers", "value": value, "threshold": threshold,
@@ -181,6 +196,10 @@ def content_line(exhibit_luma: np.ndarray, *, reference_luma: np.ndarray | None 
             "log10_lr": round(lr.log10_lr_decision(value, cal["genuine"]["samples"],
                                                cal["null"]["samples"], threshold=threshold), 3),
         }
+        if layout is not None:
+            out["layout"] = layout
+            if layout["refutes"]:
+                out["log10_lr"] = layout["log10_lr"]
         if checks is not None:
             out["self_checks"] = checks
         if reason is not None:
@@ -251,3 +270,82 @@ def agreement(content: dict, mark_geometry: dict | None) -> dict:
             "scale_difference": None if scale is None else round(scale, 4),
             "same_mirroring": same_flip,
             "tolerances": {"rotation_deg": ROTATION_TOLERANCE_DEG, "scale": SCALE_TOLERANCE}}
+
+
+def layout_check(reference_luma: np.ndarray, exhibit_luma: np.ndarray, linear, *,
+                 uses_mark_geometry: bool) -> dict:
+    """The exhibit's broad layout against the work's, placed by a given turn, scale and mirroring.
+
+    Two uses, said in the result:
+
+    * with the content line's own geometry (``uses_mark_geometry=False``),
+      before "corresponds" is said: matching points can come from the work's
+      fine detail alone, lifted from a published copy and added to another
+      picture together with the mark (the strongest copy attack); such a
+      picture keeps the points but not the work's broad layout;
+    * with the mark's geometry, where the content line cannot decide (too few
+      corners in the work or the exhibit): then it is a consistency check
+      between the lines, not the content line's independent statistic, and it
+      is never combined with the mark line.
+
+    Either way it only refutes (``refutes``: the correlation lies below every
+    genuine copy measured, by the calibration's margin); a high value does not
+    show that the exhibit is the work (two skies share a layout).
+
+    Parameters
+    ----------
+    reference_luma, exhibit_luma : ndarray
+        The registered picture (or its reduced reference) and the exhibit.
+    linear : array_like
+        2 x 2 map from ``reference_luma`` pixels to exhibit pixels, (x, y).
+    uses_mark_geometry : bool
+        Whether ``linear`` is the mark's reading.
+
+    Returns
+    -------
+    dict
+        ``uses_mark_geometry``, ``value``, ``refute_below``, ``refutes``,
+        ``genuine`` and ``null`` (counts from the calibration), ``log10_lr``
+        (of the event "below" or "not below"; 0 where nothing was compared)
+        and ``reason`` in words.
+    """
+    cal = calibration()["broad"]
+    res = broad.broad_correlation(reference_luma, exhibit_luma, np.asarray(linear, dtype=np.float64))
+    below = float(cal["refute_below"])
+    gen, nul = cal["genuine"]["samples"], cal["null"]["samples"]
+    placed = "placed as the mark reads it" if uses_mark_geometry else \
+        "placed as the matching points place it"
+    out = {"what": ("the exhibit placed by the mark's turn, scale and mirroring (the shift "
+                    "searched), its broad layout compared with the work's: a consistency check "
+                    "between the lines, not the content line's own statistic")
+           if uses_mark_geometry else
+           ("the exhibit placed by the content line's own turn, scale and mirroring (the shift "
+            "searched), its broad layout compared with the work's"),
+           "uses_mark_geometry": uses_mark_geometry, **res, "refute_below": below,
+           "genuine": {"count": len(gen), "lowest": min(gen),
+                       "below": sum(1 for v in gen if v < below)},
+           "null": {"count": len(nul), "below": sum(1 for v in nul if v < below),
+                    "highest": max(nul)},
+           "refutes": False, "log10_lr": 0.0}
+    v = res["value"]
+    if v is None:
+        which = ("the work" if res["work_flat"] else "the exhibit" if res["exhibit_flat"]
+                 else "neither picture lies within the other, so no placement")
+        out["reason"] = (f"{placed}, the broad layouts could not be compared ({which} has no "
+                         "broad structure to compare)")
+        return out
+    out["refutes"] = bool(v < below)
+    out["log10_lr"] = round(lr.log10_lr_decision(v, gen, nul, threshold=below), 3)
+    if out["refutes"] and res["exhibit_flat"]:
+        out["reason"] = (f"{placed}, the exhibit is flat (less than a grey level of broad "
+                         "variation) where the work's broad layout spreads over ten grey levels "
+                         "or more, which no genuine copy measured lost")
+    elif out["refutes"]:
+        out["reason"] = (f"{placed}, the exhibit shares none of the work's broad layout: "
+                         f"correlation {v:.2f}, where every one of the {len(gen)} genuine copies "
+                         f"measured reached {min(gen):.2f} or more (limit {below:.2f})")
+    else:
+        out["reason"] = (f"{placed}, the exhibit's broad layout correlates {v:.2f} with the "
+                         f"work's (limit {below:.2f}); unrelated pictures reached up to "
+                         f"{max(nul):.2f}, so this alone does not show that the exhibit is the work")
+    return out

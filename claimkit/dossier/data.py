@@ -18,7 +18,7 @@ from claimkit.capture.evidence import collection_data
 from claimkit.case import layout
 from claimkit.case.documents import CaseDoc, DossierDataDoc, ExhibitDoc, FindingDoc, WithdrawalDoc
 from claimkit.case.layout import CUSTODY_COPY, CUSTODY_COPY_V1, DISCLOSURES, PUBLIC_KEY, SOFTWARE
-from claimkit.content import assess, register
+from claimkit.content import assess, broad, register
 from claimkit.evaluation import lr
 from claimkit.evaluation.timeline import build_timeline
 from claimkit.evidence import signing
@@ -213,6 +213,14 @@ def _content_parameters() -> dict:
         "calibration": cal["measured"]["by"],
         "geometry_tolerance": f"turn {assess.ROTATION_TOLERANCE_DEG} degrees, scale "
                               f"{100 * assess.SCALE_TOLERANCE:g} %, same mirroring",
+        "layout_side_px": broad.BROAD_SIDE,
+        "layout_min_overlap": f"{100 * broad.MIN_OVERLAP:g} %",
+        "layout_refute_below": cal["broad"]["refute_below"],
+        "layout_rule": cal["broad"]["refute_rule"],
+        "layout_genuine": cal["broad"]["genuine"]["count"],
+        "layout_genuine_lowest": min(cal["broad"]["genuine"]["samples"]),
+        "layout_null": cal["broad"]["null"]["count"],
+        "layout_null_below": cal["broad"]["null"]["below_refute"],
         "lr_cap": f"10^{lr.CAP_LOG10:g} either way",
         "rate_bounds": f"one-sided {100 * lr.CONFIDENCE:g} % Clopper-Pearson",
     }
@@ -273,7 +281,8 @@ def _timeline(works: list[dict], exhibits: list[dict], results: list[dict]) -> d
     tl = build_timeline(works, labelled, matches, mismatches)
     for r in results:
         c = r.get("content") or {}
-        if r.get("detected") and c.get("basis") not in (None, "none") and c.get("corresponds") is None:
+        if r.get("detected") and c.get("basis") not in (None, "none") and c.get("corresponds") is None \
+                and not r.get("content_mismatch"):
             tl["warnings"].append({"code": "content-inconclusive", "exhibit": r["exhibit_id"],
                                    "text": f"{r['label']}: "
                                            f"{c.get('reason', 'the content line was inconclusive')}; "

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from claimkit.content.assess import agreement, content_line
+from claimkit.content.assess import agreement, content_line, layout_check
 from claimkit.evaluation import opinion
 from claimkit.mark import scales
 
@@ -64,13 +64,23 @@ def weigh(exhibit_luma: np.ndarray, *, label: str, mark: dict, threshold: float,
         geometry = scales.relative_to_original(
             geometry, (round(h / reference_scale), round(w / reference_scale)))
     content["agreement_with_mark"] = agreement(content, geometry)
-    mismatch = bool(detected and content.get("corresponds") is False)
+    if detected and content.get("corresponds") is None and reference_luma is not None \
+            and geometry and geometry.get("matrix"):
+        # The content line cannot decide alone; the mark's geometry can still be checked
+        # against the work's broad layout (a consistency check, refuting only).
+        content["layout_with_mark"] = layout_check(
+            reference_luma, exhibit_luma, np.asarray(geometry["matrix"]) / reference_scale,
+            uses_mark_geometry=True)
+    refuted = bool((content.get("layout_with_mark") or {}).get("refutes"))
+    mismatch = bool(detected and (content.get("corresponds") is False or refuted))
     evaluation = opinion.evaluate(exhibit=label, work_id=work_id, owner=owner, detected=detected,
                                   threshold=threshold, content=content,
                                   agreement=content["agreement_with_mark"], robustness=robustness)
     evaluation["finding"] = opinion.finding_words(
         detected=detected, work_id=mark.get("work_id") if detected else None,
         content_mismatch=mismatch, limited=bool(content.get("limited_to_fingerprint")),
-        inconclusive=content.get("basis") not in (None, "none") and content.get("corresponds") is None,
-        cannot_decide=content.get("cannot_decide"))
+        inconclusive=content.get("basis") not in (None, "none") and content.get("corresponds") is None
+        and not refuted,
+        cannot_decide=content.get("cannot_decide"),
+        layout_reason=content["layout_with_mark"]["reason"] if refuted else None)
     return {"content": content, "content_mismatch": mismatch, "evaluation": evaluation}

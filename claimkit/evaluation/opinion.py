@@ -48,11 +48,16 @@ def _battery(robustness: dict | None) -> dict:
 
 def finding_words(*, detected: bool, work_id: str | None, content_mismatch: bool,
                   limited: bool, inconclusive: bool = False,
-                  cannot_decide: str | None = None) -> str:
+                  cannot_decide: str | None = None, layout_reason: str | None = None) -> str:
     """The investigative finding, in words (what was observed, not what it means)."""
     if not detected:
         return "No mark of this owner was found."
     named = f" naming work {work_id}" if work_id else ""
+    if content_mismatch and layout_reason:
+        return (f"The owner's mark{named} was found, but the picture does not correspond to the "
+                f"registered work: {layout_reason}. This is consistent with a transplanted mark. "
+                "The content line's keypoints could not decide alone; this check uses the "
+                "mark's geometry. No derivation from the work is claimed.")
     if inconclusive:
         why = cannot_decide or "the work has too little texture"
         return (f"The owner's mark{named} was found. The content line cannot decide whether the "
@@ -110,9 +115,11 @@ def evaluate(*, exhibit: str, work_id: str | None, owner: str | None, detected: 
         "assumes": "no mark was transplanted from a published copy into another picture",
     }}
     has_content = bool(content) and content.get("corresponds") is not None
+    layout = (content or {}).get("layout_with_mark") or {}
+    refuted = bool(detected and layout.get("refutes"))
     inconclusive = bool(content) and content.get("basis") not in (None, "none") \
-        and content.get("corresponds") is None
-    mismatch = bool(detected and has_content and content["corresponds"] is False)
+        and content.get("corresponds") is None and not refuted
+    mismatch = bool(detected and has_content and content["corresponds"] is False) or refuted
     if has_content:
         lines["content"] = {
             "event": ("picture corresponds to the work" if content["corresponds"]
@@ -120,9 +127,21 @@ def evaluate(*, exhibit: str, work_id: str | None, owner: str | None, detected: 
             "basis": content["basis"], "limited_to_fingerprint": content["limited_to_fingerprint"],
             "log10_lr": content["log10_lr"],
         }
+    if refuted:
+        lines["layout"] = {
+            "event": "placed by the mark's geometry, the picture shares none of the work's "
+                     "broad layout",
+            "uses_mark_geometry": True, "log10_lr": layout["log10_lr"],
+        }
     agree = (agreement or {}).get("agree")
     combined = None
-    if mismatch:
+    if refuted:
+        why = ("not combined: the content line's keypoints could not decide, and placed by the "
+               "mark's geometry the picture shares none of the work's broad layout, which a "
+               "transplanted mark explains; that consistency check uses the mark's geometry, so "
+               "it is reported alone and the mark line is not multiplied in")
+        reported = layout["log10_lr"]
+    elif mismatch:
         why = ("not combined: the mark was found in a picture that does not correspond to the "
                "work, which a transplanted mark explains; the content line is reported")
         reported = content["log10_lr"]
@@ -147,16 +166,24 @@ def evaluate(*, exhibit: str, work_id: str | None, owner: str | None, detected: 
                + (", and the two geometries agree" if agree else ""))
         reported = combined
     reported = lr.cap(reported)
+    words = lr.verbal(reported, "the proposition that " + hp, "the proposition that " + hd)
+    if detected and not mismatch and (inconclusive or not has_content) and reported > 0:
+        # The mark line's ratio holds only if nobody transplanted the mark, which nothing here
+        # could check: said in the sentence itself, so that it cannot be quoted without it.
+        words = ("Only on the assumption that no mark was transplanted from a published copy "
+                 "into another picture, which the content line could not check here: the "
+                 + words[len("The "):])
     return {
         "propositions": {"Hp": hp, "Hd": hd, "level": "source"},
         "log10_lr": {"mark": lines["mark"]["log10_lr"],
                      "content": lines.get("content", {}).get("log10_lr"),
+                     **({"layout": lines["layout"]["log10_lr"]} if "layout" in lines else {}),
                      "combined": None if combined is None else round(combined, 3)},
         "lines": lines,
         "combination": why,
         "reported_log10_lr": round(reported, 3),
         "cap_log10": lr.CAP_LOG10,
-        "verbal": lr.verbal(reported, "the proposition that " + hp, "the proposition that " + hd),
+        "verbal": words,
         "scale": SCALE_NAME,
         # Derivation is claimed only where the picture itself was found to correspond (or no
         # picture could be compared at all); an inconclusive content line claims nothing.

@@ -490,35 +490,42 @@ def _recovered(prep, pattern, ramps, g, d, ph) -> np.ndarray:
     return np.real(np.fft.ifft2(rec_ft))
 
 
-def _decode_at(prep, patterns, ramps, g, d, ph, shift, payload_check, known_bits, candidates=None):
+def _decode_at(prep, patterns, ramps, g, d, ph, shift, payload_check, known_bits, candidates=None,
+               accept_listed=None):
     """Decode one placement with each readable format's code in turn; the first valid payload wins.
 
     All formats share the carrier and the spot shape, so the recovered map is
     the same for each; only the code spots' positions and the code differ.
     A payload the decoder does not find may still be the best match in
-    ``candidates`` (:class:`claimkit.mark.payload.PayloadList`).
+    ``candidates`` (:class:`claimkit.mark.payload.PayloadList`); such a pick is
+    kept only where ``accept_listed(z_full)`` holds (see :func:`_read_legacy`).
     """
     n = patterns[0].tile
     weight = patterns[0].spot_ft * patterns[0].band
     rec = _recovered(prep, patterns[0], ramps, g, d, ph)
+
+    def z_full_of(pattern, bits, shift):
+        allpos, allsign = spot_signs(pattern, pattern.codeword(bits))
+        q_ft = _delta_ft(allpos, allsign, n)
+        sigma = np.sqrt(np.sum(np.abs(prep.spectra[g][d] * weight * q_ft) ** 2)) / n ** 2
+        p = (allpos + shift) % n
+        return float(np.sum(allsign * rec[p[:, 0], p[:, 1]]) / sigma)
+
     first = None
     for pattern in patterns:
         pos = (pattern.code_pos + shift) % n
         soft = rec[pos[:, 0], pos[:, 1]]
         bits = pattern.fmt.code.decode(soft, PAYLOAD_BITS, known=known_bits)
-        if payload_check is not None and not payload_check(bits) and candidates is not None:
+        if payload_check is not None and payload_check(bits):
+            return pattern, bits, True, z_full_of(pattern, bits, shift), rec
+        if payload_check is not None and candidates is not None:
             pp = (pattern.pilot_pos + shift) % n
             listed = candidates.best(soft, pattern.fmt.code, rec[pp[:, 0], pp[:, 1]] * pattern.pilot_sign)
-            bits = bits if listed is None or not payload_check(listed) else listed
-        if payload_check is None or not payload_check(bits):
-            first = first or (pattern, bits)
-            continue
-        allpos, allsign = spot_signs(pattern, pattern.codeword(bits))
-        q_ft = _delta_ft(allpos, allsign, n)
-        sigma = np.sqrt(np.sum(np.abs(prep.spectra[g][d] * weight * q_ft) ** 2)) / n ** 2
-        p = (allpos + shift) % n
-        z_full = float(np.sum(allsign * rec[p[:, 0], p[:, 1]]) / sigma)
-        return pattern, bits, True, z_full, rec
+            if listed is not None and payload_check(listed):
+                z_full = z_full_of(pattern, listed, shift)
+                if accept_listed is None or accept_listed(z_full):
+                    return pattern, listed, True, z_full, rec
+        first = first or (pattern, bits)
     return first[0], first[1], False, None, rec
 
 
@@ -584,8 +591,21 @@ def _top(surf: np.ndarray, count: int):
         yield float(flat[idx]), (int(g), int(d), int(ph), np.array([r, c]))
 
 
+def _listed_level(threshold: float) -> float:
+    """The log10 bound a payload picked from a list must reach to be kept: a claim's.
+
+    Which payloads an examiner lists depends on who examines (the owner lists
+    every allocated serial, a disclosure holder the disclosed works), so a
+    listed pick is kept only where it makes a claim on its own (counted as the
+    best of the ``TESTS`` tests). Below that nothing read through a list is
+    reported, and every holder of the keys re-runs an examination without a
+    claim to the same numbers.
+    """
+    return float(np.log10(threshold)) - float(np.log10(TESTS))
+
+
 def _read_legacy(prep, seed, ramps, payload_check, known_bits, payload_space,
-                 candidates=None) -> _Outcome:
+                 candidates=None, threshold: float = 1.0) -> _Outcome:
     """Formats 1 and 2: pilot search over every placement, decode the best few."""
     patterns = [key_pattern(seed, fmt=f) for f in READABLE]
     n = patterns[0].tile
@@ -595,11 +615,15 @@ def _read_legacy(prep, seed, ramps, payload_check, known_bits, payload_space,
     counted = payloads_counted(payload_space)
     h = hypotheses(n)
     best = None
+    level = _listed_level(threshold)
     for z_pilot, (g, d, ph, shift) in _top(surf, DECODE_TRIES):
-        pattern, bits, valid, z_full, rec = _decode_at(prep, patterns, ramps, g, d, ph, shift,
-                                                       payload_check, known_bits, candidates)
-        lp = stats.log10_false_alarm(z_pilot=z_pilot, z_full=z_full, hypotheses=h,
-                                     payload_space=counted)
+        def bound(z_full, z_pilot=z_pilot):
+            return stats.log10_false_alarm(z_pilot=z_pilot, z_full=z_full, hypotheses=h,
+                                           payload_space=counted)
+        pattern, bits, valid, z_full, rec = _decode_at(
+            prep, patterns, ramps, g, d, ph, shift, payload_check, known_bits, candidates,
+            accept_listed=lambda z: bound(z) <= level)
+        lp = bound(z_full)
         if best is None or lp < best[0]:
             best = (lp, (g, d, ph, shift), pattern, bits, valid, z_full, z_pilot, rec)
     assert best is not None     # ``_top`` yields at least one placement
@@ -780,8 +804,8 @@ def format3_hypotheses() -> int:
 
 
 def _read_format3(prep, keys: format3.MarkKeys, ramps, payload_check, known_bits,
-                  payload_space, origin,
-                  candidates=None) -> tuple[_Outcome | None, float, _Prepared]:
+                  payload_space, origin, candidates=None,
+                  threshold: float = 1.0) -> tuple[_Outcome | None, float, _Prepared]:
     """Format 3: align with the sync pattern, then score every family at every macro offset.
 
     Returns the claim's outcome (None without family seeds), the best
@@ -822,11 +846,14 @@ def _read_format3(prep, keys: format3.MarkKeys, ramps, payload_check, known_bits
         fam, z = max(((f, v) for f, v in scores.items()), key=lambda fv: float(fv[1].max()))
         k = int(np.argmax(z))
         offset = format3.OFFSETS[k]
+        def bound(z_full, z_pilot=float(z[k])):
+            return stats.log10_false_alarm(z_pilot=z_pilot, z_full=z_full, hypotheses=h,
+                                           payload_space=payload_space)
         bits, valid, z_full, rec = format3.decode_family(
             spec, keys.families[fam], offset, payload_check=payload_check,
-            known_bits=known_bits, decode=float(z[k]) >= DECODE_MIN_Z3, candidates=candidates)
-        lp = stats.log10_false_alarm(z_pilot=float(z[k]), z_full=z_full, hypotheses=h,
-                                     payload_space=payload_space)
+            known_bits=known_bits, decode=float(z[k]) >= DECODE_MIN_Z3, candidates=candidates,
+            accept_listed=lambda zf: bound(zf) <= _listed_level(threshold))
+        lp = bound(z_full)
         if best is None or lp < best.lp:
             pos, _, ref = format3.reference_message(keys.families[fam], bits, n)
             best = _Outcome(lp=lp, z_pilot=float(z[k]), z_full=z_full,
@@ -897,7 +924,7 @@ def examine_luma(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
     z_sync = None
     if keys.legacy is not None:
         outcomes.append(_read_legacy(prep, keys.legacy, ramps, payload_check, known_bits,
-                                     payload_space, payload_candidates))
+                                     payload_space, payload_candidates, threshold))
     # A claim in formats 1-2 that stands with the format-3 test counted at its worst
     # (bound 1) needs no format-3 reading: the count of tests is the same either way.
     legacy_claims = bool(outcomes) and stats.log10_best_of(
@@ -906,7 +933,8 @@ def examine_luma(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
         # Where the picture's pixel (0, 0) falls in the examined window's frame.
         origin = (-(offset[0] + prep.window[0]), -(offset[1] + prep.window[1]))
         claim, z_sync, grown = _read_format3(prep, keys, ramps, payload_check, known_bits,
-                                             payload_space, origin, payload_candidates)
+                                             payload_space, origin, payload_candidates,
+                                             threshold)
         if claim is not None:
             claim.prep = grown
             outcomes.append(claim)

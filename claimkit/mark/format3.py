@@ -424,6 +424,7 @@ def decode_family(spec: np.ndarray, seed: bytes, offset: tuple[int, int], *,
                   known_bits: np.ndarray | None,
                   decode: bool = True,
                   candidates: PayloadList | None = None,
+                  accept_listed: Callable[[float], bool] | None = None,
                   ) -> tuple[np.ndarray | None, bool, float | None, np.ndarray]:
     """Recovered message of one family at one offset, decoded; full-template score if the payload checks.
 
@@ -431,7 +432,8 @@ def decode_family(spec: np.ndarray, seed: bytes, offset: tuple[int, int], *,
     examination skips the Viterbi decoder where the pilot score is too low
     for any payload to reach the threshold (see ``detect.DECODE_MIN_Z3``).
     Where the decoder's payload does not check, the best match in
-    ``candidates`` is tried (:class:`claimkit.mark.payload.PayloadList`).
+    ``candidates`` is tried (:class:`claimkit.mark.payload.PayloadList`), and
+    kept only where ``accept_listed(z_full)`` holds.
     """
     n = spec.shape[-1]
     fam = family_pattern(seed, n)
@@ -450,18 +452,23 @@ def decode_family(spec: np.ndarray, seed: bytes, offset: tuple[int, int], *,
     bits = CODE.decode(soft, PAYLOAD_BITS, known=known_bits)
     if payload_check is None:
         return bits, False, None, rec
-    if not payload_check(bits):
-        pilots = rec[fam.pilot_pos[:, 0], fam.pilot_pos[:, 1]] * fam.pilot_sign
-        listed = None if candidates is None else candidates.best(soft, CODE, pilots)
-        if listed is None or not payload_check(listed):
-            return bits, False, None, rec
-        bits = listed
-    pos, sign, _ = reference_message(seed, bits, n)
-    q = (np.fft.fft2(_spots(pos, sign, n)).ravel()[idx]) * sp
-    power = (y.real ** 2 + y.imag ** 2).sum(axis=0)
-    sigma = np.sqrt(2.0 * float(np.sum(power * np.abs(q) ** 2))) / n ** 2
-    z_full = float(np.sum(sign * rec[pos[:, 0], pos[:, 1]]) / sigma)
-    return bits, True, z_full, rec
+
+    def z_full_of(bits):
+        pos, sign, _ = reference_message(seed, bits, n)
+        q = (np.fft.fft2(_spots(pos, sign, n)).ravel()[idx]) * sp
+        power = (y.real ** 2 + y.imag ** 2).sum(axis=0)
+        sigma = np.sqrt(2.0 * float(np.sum(power * np.abs(q) ** 2))) / n ** 2
+        return float(np.sum(sign * rec[pos[:, 0], pos[:, 1]]) / sigma)
+
+    if payload_check(bits):
+        return bits, True, z_full_of(bits), rec
+    pilots = rec[fam.pilot_pos[:, 0], fam.pilot_pos[:, 1]] * fam.pilot_sign
+    listed = None if candidates is None else candidates.best(soft, CODE, pilots)
+    if listed is not None and payload_check(listed):
+        z_full = z_full_of(listed)
+        if accept_listed is None or accept_listed(z_full):
+            return listed, True, z_full, rec
+    return bits, False, None, rec
 
 
 def reference_message(seed: bytes, bits: np.ndarray | None,

@@ -64,9 +64,10 @@ def rerun_examination(root: Path, ex: dict, finding: dict, keys: dict,
         return
     seed = _merged_keys([k for k, _, _ in keys.values()])
     wanted = [bits for _, bits, _ in keys.values()]
-    # The disclosed payloads, listed for the decoder as the owner's examination listed its own.
+    # The disclosed payloads are the check and the list the decoder may pick from
+    # (the owner's examination listed every allocated serial; a pick from a list
+    # counts only where it makes a claim, so both re-run to the same numbers).
     check = expected_payload_check(*wanted)
-
     params = finding["examined"]
     # By the method the finding records; one made before methods were recorded read RGB.
     pic = read_picture(root / ex["file"], method=params.get("examination_method") or LUMA_FROM_RGB)
