@@ -20,7 +20,7 @@ import pytest
 
 from claimkit.evidence import keys as prof
 from claimkit.imageio import add_luma_delta, to_luma
-from claimkit.mark import detect, embed, format3, formats
+from claimkit.mark import detect, embed, format3, formats, geometry
 from claimkit.mark.format3 import EmbedKeys, MarkKeys
 from tests.engine_helpers import SEED, add, fold_estimate, payload, photos, psnr, residual, tiled
 from tests.test_evidence_vectors import _hkdf_sha256
@@ -136,6 +136,12 @@ def test_format3_copy_is_claimed_with_its_family_and_a_disclosure_reads_only_its
     # The bound counts both tests and every format-3 hypothesis.
     assert f.counting["tests"] == detect.TESTS == 2
     assert f.counting["format_3"]["hypotheses"] == detect.format3_hypotheses()
+    # The synchronisation's own bound (removal_suspected) counts every geometry the keyed
+    # search chose among, as if each had been searched in full.
+    assert f.counting["format_3"]["sync_geometries"] == detect.SYNC_GEOMETRIES == (
+        detect.GEOMETRIES + geometry.SIMILARITY_CANDIDATES + geometry.ASPECT_CANDIDATES)
+    assert f.counting["format_3"]["sync_hypotheses"] == (
+        detect.SYNC_GEOMETRIES * detect.DIHEDRAL * len(detect.PHASES) * 128 * 128)
     own = prof.format3_keys(SECRET, serial=serial)
     g = claimed(marked, serial, MarkKeys(sync=own["sync"], families=own["families"]))
     assert g.detected and g.payload_valid and g.z_full == pytest.approx(f.z_full, rel=1e-4)
@@ -160,6 +166,28 @@ def test_formats_1_and_2_still_read_with_the_owner_keys():
 # ---------------------------------------------------------------- estimation attacks
 
 GAINS = (1.0, 2.0, 3.0)
+
+
+def test_a_small_busy_copy_turned_is_found_by_the_keyed_synchronisation_search(monkeypatch):
+    """A 450 x 300 photo of fur turned 45 degrees (Pillow's bicubic rotate, inner rectangle cut:
+    254 x 169 px): the lattice of the synchronisation is too faint for the keyless search, the
+    keyed search (correlation with the known pattern) finds it and the claim names the work."""
+    from PIL import Image
+
+    serial = 3
+    marked = mark3(photos()["chelsea"], serial)
+    h, w = marked.shape[:2]
+    a = np.radians(45.0)
+    f = min(w / (w * np.cos(a) + h * np.sin(a)), h / (w * np.sin(a) + h * np.cos(a)))
+    ch, cw = int(h * f), int(w * f)
+    turned = np.asarray(Image.fromarray(marked).rotate(45.0, resample=Image.BICUBIC))
+    copy = turned[(h - ch) // 2:(h - ch) // 2 + ch, (w - cw) // 2:(w - cw) // 2 + cw]
+    found = claimed(copy, serial)
+    assert found.detected and found.payload_valid
+    assert found.mark_family == prof.format3_family_of(SECRET, serial)
+    assert found.geometry["resampled"] and abs(abs(found.geometry["rotation_deg"]) - 45.0) < 0.5
+    monkeypatch.setattr(detect, "KEYED_PICKS", 0)      # the keyless lattices only
+    assert not claimed(copy, serial).detected
 
 
 def test_fold_removal_from_the_photo_itself_or_a_portfolio_keeps_the_claim(portfolio):

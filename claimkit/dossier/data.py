@@ -229,6 +229,9 @@ def _engine_parameters() -> dict:
         "geometries_tried": detect.GEOMETRIES, "quarter_turns_and_mirrors": detect.DIHEDRAL,
         "subpixel_phases": len(detect.PHASES), "hypotheses": detect.hypotheses(),
         "format3_hypotheses": detect.format3_hypotheses(),
+        # The synchronisation's own count (removal_suspected only): every geometry format 3's
+        # keyed search chose among.
+        "format3_sync_hypotheses": detect.sync_hypotheses(),
         "bound": "P_fa <= 2 x H x exp(-z^2/2) (sub-Gaussian tail, union over hypotheses)",
         "examination": _examination(),
     }

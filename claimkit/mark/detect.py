@@ -30,7 +30,7 @@ References
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from functools import lru_cache
 
 import numpy as np
@@ -356,6 +356,13 @@ class _Prepared:
     lattices: list[geometry.Lattice | None]
     window: tuple[int, int, int, int]   # row, col, height, width of the examined window
     macro_folds: list[np.ndarray] = field(default_factory=list)   # per geometry: format 3's macro-period fold
+    # For format 3's keyed synchronisation search (see _keyed_geometries): the
+    # whitened window, the best similarity hypotheses of the coarse lattice
+    # grid and the window reduced by two. None where no lattice is searched.
+    whitened: np.ndarray | None = None
+    similarities: np.ndarray | None = None
+    reduced: tuple[np.ndarray, ...] = ()    # the central window reduced by each of KEYED_REDUCTIONS
+    macro: int = 1
 
 
 def central_window(shape: tuple[int, int], max_pixels: int = MAX_EXAMINE_PIXELS):
@@ -392,18 +399,7 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1,
     macro_folds: list = []
 
     def add(f, transform, lattice, mf):
-        # Single precision from here on: the folds sum thousands of pixels, and
-        # float32 keeps ~7 digits of scores read to 4 (half the memory traffic of
-        # complex128 in every transform and product of the search).
-        s = sfft.fft2(np.asarray(f, dtype=np.float32), workers=workers)
-        # The eight variants' spectra are the fold's, permuted and turned in
-        # phase (_variant_spectra), and so are their weights: |S| is all the
-        # weight reads, and the 5 x 5 average and the quantile do not change
-        # under those permutations. One transform and one weight instead of
-        # eight: the same spectra to float32 rounding.
-        s *= spectral_weight(s[None])[0]
-        idx, phase = _variant_spectra(tile)
-        spectra.append(s.ravel()[idx] * phase)
+        spectra.append(_fold_spectra(f, tile, workers))
         transforms.append(transform)
         found.append(lattice)
         macro_folds.append(np.asarray(mf, dtype=np.float32))
@@ -411,7 +407,8 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1,
     mf = fold(x, tile * macro)
     add(mf.reshape(macro, tile, macro, tile).sum(axis=(0, 2)), None, None, mf)
     half = np.array([wh, ww], dtype=float) / 2
-    for lat in geometry.find_lattices(x, tile, workers=workers) if lattices else ():
+    acf = geometry.lag_map(x, workers=workers) if lattices and geometry.searchable(x.shape, tile) else None
+    for lat in geometry.find_lattices(x, tile, workers=workers, acf=acf) if acf is not None else ():
         t = lat.transform(tile)
         # A lattice that is the identity to within a fifth of a pixel across the
         # window adds nothing to the unwarped fold: skip the costly resampling.
@@ -425,7 +422,42 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1,
         else:
             tf, mf = fold_resampled(x, t, tile, macro=macro)
             add(tf, t, lat, mf)
-    return _Prepared(spectra, transforms, found, win, macro_folds)
+    sims: np.ndarray | None = None
+    reduced: tuple[np.ndarray, ...] = ()
+    if acf is not None:
+        sims = geometry.similarities(acf, tile)
+        reduced = tuple(_reduce(_central(x, KEYED_WINDOW * r), r) for r in KEYED_REDUCTIONS)
+    return _Prepared(spectra, transforms, found, win, macro_folds, whitened=x, similarities=sims,
+                     reduced=reduced, macro=macro)
+
+
+def _fold_spectra(f: np.ndarray, tile: int, workers: int = 1) -> np.ndarray:
+    """The weighted spectra (8, T, T) complex64 of a fold's eight quarter-turn/mirror variants."""
+    # Single precision from here on: the folds sum thousands of pixels, and
+    # float32 keeps ~7 digits of scores read to 4 (half the memory traffic of
+    # complex128 in every transform and product of the search).
+    s = sfft.fft2(np.asarray(f, dtype=np.float32), workers=workers)
+    # The eight variants' spectra are the fold's, permuted and turned in
+    # phase (_variant_spectra), and so are their weights: |S| is all the
+    # weight reads, and the 5 x 5 average and the quantile do not change
+    # under those permutations. One transform and one weight instead of
+    # eight: the same spectra to float32 rounding.
+    s *= spectral_weight(s[None])[0]
+    idx, phase = _variant_spectra(tile)
+    return s.ravel()[idx] * phase
+
+
+def _central(x: np.ndarray, side: int) -> np.ndarray:
+    """The central part of ``x``, at most ``side`` pixels each way."""
+    h, w = x.shape
+    sh, sw = min(h, side), min(w, side)
+    return x[(h - sh) // 2:(h - sh) // 2 + sh, (w - sw) // 2:(w - sw) // 2 + sw]
+
+
+def _reduce(x: np.ndarray, r: int) -> np.ndarray:
+    """Mean of each ``r x r`` block (float32)."""
+    h, w = (x.shape[0] // r) * r, (x.shape[1] // r) * r
+    return np.asarray(x[:h, :w], dtype=np.float32).reshape(h // r, r, w // r, r).mean(axis=(1, 3))
 
 
 def _surfaces(prep: _Prepared, pattern: KeyPattern, ramps: np.ndarray):
@@ -533,6 +565,7 @@ class _Outcome:
     hypotheses: int
     payloads: int
     family: int | None = None
+    prep: _Prepared | None = None   # the geometries ``placement`` indexes, when not the examination's
 
 
 def _top(surf: np.ndarray, count: int):
@@ -569,8 +602,166 @@ def _read_legacy(prep, seed, ramps, payload_check, known_bits, payload_space) ->
 
 
 def sync_hypotheses(tile: int = TILE) -> int:
-    """Placements of the synchronisation search (the pilot search of formats 1 and 2)."""
-    return hypotheses(tile)
+    """Placements of the synchronisation search: the pilot search of formats 1 and 2, over more geometries.
+
+    Besides the unwarped fold and the lattices, the keyed search
+    (:func:`_keyed_geometries`) chooses among ``SIMILARITY_CANDIDATES``
+    similarities with the synchronisation key: all of them are counted, as
+    if each had been searched in full.
+    """
+    return SYNC_GEOMETRIES * DIHEDRAL * len(PHASES) * tile * tile
+
+
+# Format 3's keyed synchronisation search. The lattice search reads the autocorrelation,
+# which is quadratic in the mark's periodic part; format 3 keeps only its synchronisation
+# component periodic (35 % of the energy), and on small, busy copies (a 450 x 300 photo
+# turned 45 degrees, a 512-px microscope slide shrunk and turned) its lattice sank among
+# the noise maxima of the coarse grid. Correlating with the known synchronisation
+# pattern is linear in its amplitude: at the right similarity it scored 10 to 20 on those
+# copies. So the best SIMILARITY_CANDIDATES similarities of the coarse grid are each
+# scored by that correlation on a cheap fold (the central KEYED_WINDOW px, reduced by two,
+# folded at half the tile: the synchronisation keeps 90 % of its power below a quarter of
+# the sampling rate), and the best KEYED_PICKS become geometries of format 3's search.
+# The choice uses the sync key only: the claim (family keys, independent of it) is still
+# tested at DECODE_TRIES + 1 placements, so its bound does not change; the sync's own bound
+# (removal_suspected) counts every candidate (sync_hypotheses).
+KEYED_WINDOW = 192      # side of the reduced window the keyed search reads
+# Copies enlarged by more than KEYED_ENLARGED are read reduced by 4 (their synchronisation sits at
+# low frequencies, and a period spans more pixels), the others by 2.
+KEYED_REDUCTIONS = (2, 4)
+KEYED_ENLARGED = 1.4
+KEYED_BATCH = 32
+KEYED_OVERSAMPLE = 4
+KEYED_PICKS = 2
+KEYED_SKIP_Z = 8.0     # a synchronisation this clear is found already: no keyed search
+# A pick is kept only where its synchronisation scores this much on the full fold: on
+# unmarked pictures (textures, text, a slide; 42 picks under random keys) the picks scored
+# 4.1 to 5.2, on marked copies that needed the search 7.2 to 27. (Dropping a pick never
+# touches a bound: the claim's placements are counted whether tried or not.)
+KEYED_ACCEPT_Z = 5.5
+SYNC_GEOMETRIES = GEOMETRIES + geometry.SIMILARITY_CANDIDATES + geometry.ASPECT_CANDIDATES
+
+
+@lru_cache(maxsize=8)
+def _half_kernel(seed: bytes) -> tuple[np.ndarray, np.ndarray]:
+    """The synchronisation's pilot kernel on the half-size tile (frequencies below n/4) and its power."""
+    sp = format3.sync_pattern(seed)
+    n, h = sp.tile, sp.tile // 2
+    full = (sp.spot_ft * sp.band * sp.carrier_phase * _delta_ft(*spot_signs(sp, None), n))
+    k = np.fft.fftfreq(h, 1.0 / h).astype(int)          # -h/2 .. h/2-1
+    keep = np.abs(k) < h // 2
+    sub = np.zeros((h, h), dtype=np.complex128)
+    rows, cols = np.ix_(np.flatnonzero(keep), np.flatnonzero(keep))
+    sub[rows, cols] = full[np.ix_(k[keep] % n, k[keep] % n)]
+    kern = np.conj(sub).astype(np.complex64)
+    power = (np.abs(sub) ** 2).ravel()
+    for arr in (kern, power):
+        arr.setflags(write=False)
+    return kern, power
+
+
+def _keyed_geometries(prep: _Prepared, seed: bytes) -> list[np.ndarray]:
+    """The similarities (original -> copy) that best match the synchronisation pattern, best first.
+
+    A candidate ``t``'s fold on the half-size tile (``h`` = T/2 bins of two
+    original pixels) of the window reduced by ``r`` has the transform
+    ``F(k) = sum_y x(y) exp(-2 pi i (r/2) (t^-T k / h) . y)`` over the
+    reduced window's pixels ``y``: the window's own spectrum at those
+    frequencies. It is read off one transform of the window, zero-padded
+    ``KEYED_OVERSAMPLE`` times, at the nearest frequency (a phase error of
+    at most pi / 4 at the window's edge: this chooses among candidates, no
+    score rests on it). Each is weighted by its smoothed power (as
+    :func:`spectral_weight`, without the floor) and correlated with the
+    synchronisation's pilots in all eight quarter-turn/mirror variants at
+    every shift.
+    """
+    if prep.similarities is None or not len(prep.similarities) or not prep.reduced:
+        return []
+    sims = prep.similarities
+    scale = np.sqrt(np.abs(np.linalg.det(sims)))
+    z = np.full(len(sims), -np.inf, dtype=np.float32)
+    for r, x in zip(KEYED_REDUCTIONS, prep.reduced, strict=True):
+        sel = np.flatnonzero((scale > KEYED_ENLARGED) == (r == KEYED_REDUCTIONS[-1]))
+        if len(sel) and min(x.shape) >= 16:
+            z[sel] = _keyed_scores(x, sims[sel] * (2.0 / r), seed)
+    best = np.argsort(z)[::-1][:KEYED_PICKS]
+    return [sims[i] for i in best if np.isfinite(z[i])]
+
+
+def _keyed_scores(x: np.ndarray, transforms: np.ndarray, seed: bytes) -> np.ndarray:
+    """Best synchronisation score of each transform (original/2 -> ``x``) on the half-size tile."""
+    h = TILE // 2
+    kern, power, idx_half, phase_half, power_v = _keyed_tables(seed)
+    pad = sfft.next_fast_len(KEYED_OVERSAMPLE * max(x.shape))
+    spec_x = sfft.fft2(x - np.float32(x.mean()), s=(pad, pad)).astype(np.complex64).ravel()
+    k = np.fft.fftfreq(h, 1.0 / h)
+    kk = np.stack(np.meshgrid(k, k, indexing="ij")).reshape(2, -1).astype(np.float32)   # (2, h*h)
+    inv_t = np.transpose(np.linalg.inv(transforms), (0, 2, 1)).astype(np.float32)      # t^-T
+    inv_t *= np.float32(pad / h)
+    z = np.empty(len(inv_t), dtype=np.float32)
+    for start in range(0, len(inv_t), KEYED_BATCH):
+        part = inv_t[start:start + KEYED_BATCH]
+        c = len(part)
+        xi = np.rint(part @ kk).astype(np.int32)                         # (c, 2, h*h) bins
+        xi %= pad
+        flat = xi[:, 0] * pad + xi[:, 1]
+        spec = spec_x.take(flat).reshape(c, h, h)
+        p2 = spec.real * spec.real + spec.imag * spec.imag
+        w = np.maximum(ndimage.uniform_filter(p2, (1, SMOOTH, SMOOTH), mode="wrap"), p2)
+        w += 1e-12
+        spec /= w
+        p2 /= w * w                                                      # |weighted spectrum|^2
+        # Each variant's sigma: its squared spectrum is a permutation of this one's.
+        sigma = np.sqrt(np.einsum("cj,jv->cv", p2.reshape(c, -1), power_v)) / h ** 2   # (c, 8)
+        v = spec.reshape(c, -1)[:, idx_half] * phase_half                 # (c, 8, h, h/2+1)
+        v *= kern
+        corr = sfft.irfft2(v, s=(h, h), overwrite_x=True).reshape(c, DIHEDRAL, -1)
+        z[start:start + c] = (corr.max(axis=2) / np.maximum(sigma, 1e-30)).max(axis=1)
+    return z
+
+
+@lru_cache(maxsize=8)
+def _keyed_tables(seed: bytes):
+    """The keyed search's fixed arrays: kernel and variant maps on the half-spectrum, and key powers.
+
+    Returns the pilot kernel (h, h/2+1), its power (h*h,), the flat indices
+    and phases of the eight variants on the half-spectrum (8, h, h/2+1),
+    and the key power seen through each variant's permutation (h*h, 8).
+    """
+    h = TILE // 2
+    kern, power = _half_kernel(seed)
+    idx, phase = _variant_spectra(h)
+    half = h // 2 + 1
+    power_v = np.zeros((h * h, DIHEDRAL), dtype=np.float32)
+    for v in range(DIHEDRAL):
+        np.add.at(power_v[:, v], idx[v].ravel(), power)      # sum_k |S[D k]|^2 P[k]
+    out = (np.ascontiguousarray(kern[:, :half]), power, np.ascontiguousarray(idx[:, :, :half]),
+           np.ascontiguousarray(phase[:, :, :half]), power_v)
+    for arr in out:
+        arr.setflags(write=False)
+    return out
+
+
+def _tile_fold(x: np.ndarray, transform: np.ndarray, tile: int) -> np.ndarray:
+    """:func:`fold_resampled` at the tile only."""
+    f = fold_resampled(x, transform, tile)
+    assert isinstance(f, np.ndarray)
+    return f
+
+
+def _with_geometries(prep: _Prepared, transforms: list[np.ndarray]) -> _Prepared:
+    """``prep`` with more geometries folded (the whitened window's folds through ``transforms``)."""
+    assert prep.whitened is not None
+    spectra, folds = list(prep.spectra), list(prep.macro_folds)
+    n = prep.spectra[0].shape[-1]
+    for t in transforms:
+        folded = fold_resampled(prep.whitened, t, n, macro=prep.macro)
+        tf, mf = (folded, folded) if isinstance(folded, np.ndarray) else folded
+        spectra.append(_fold_spectra(tf, n))
+        folds.append(np.asarray(mf, dtype=np.float32))
+    return replace(prep, spectra=spectra, macro_folds=folds,
+                   transforms=list(prep.transforms) + list(transforms),
+                   lattices=list(prep.lattices) + [None] * len(transforms))
 
 
 def format3_hypotheses() -> int:
@@ -580,20 +771,33 @@ def format3_hypotheses() -> int:
 
 
 def _read_format3(prep, keys: format3.MarkKeys, ramps, payload_check, known_bits,
-                  payload_space, origin) -> tuple[_Outcome | None, float]:
+                  payload_space, origin) -> tuple[_Outcome | None, float, _Prepared]:
     """Format 3: align with the sync pattern, then score every family at every macro offset.
 
-    Returns the claim's outcome (None without family seeds) and the best
-    synchronisation score.
+    Returns the claim's outcome (None without family seeds), the best
+    synchronisation score and ``prep`` with the geometries the keyed search
+    added (placements index them).
     """
+    assert keys.sync is not None
     sp = format3.sync_pattern(keys.sync)
     n = sp.tile
     surf = _surfaces(prep, sp, ramps)
+    if float(surf.max()) < KEYED_SKIP_Z and prep.whitened is not None:
+        # Each pick is folded at the tile first (a quarter of the macro fold's cost);
+        # only a pick whose synchronisation stands out is folded at the macro-period and
+        # offered to the claim's placements.
+        extra = [t for t in _keyed_geometries(prep, keys.sync)
+                 if float(_surfaces(replace(prep, spectra=[_fold_spectra(
+                     _tile_fold(prep.whitened, t, n), n)]), sp, ramps).max()) >= KEYED_ACCEPT_Z]
+        if extra:
+            grown = _with_geometries(prep, extra)
+            more = _surfaces(replace(grown, spectra=grown.spectra[len(prep.spectra):]), sp, ramps)
+            prep, surf = grown, np.concatenate([surf, more])
     h = format3_hypotheses()
     best = None
     z_sync = float(surf.max())
     if not keys.families:
-        return None, z_sync
+        return None, z_sync, prep
     placements = [p for _, p in _top(surf, DECODE_TRIES)]
     # The file's own grid (unwarped, as is, origin where the picture's is):
     # tried too, so that stripping the synchronisation component (an
@@ -621,7 +825,7 @@ def _read_format3(prep, keys: format3.MarkKeys, ramps, payload_check, known_bits
                             fmt=format3.NAME, placement=(g, d, ph, shift), surface=surf[g, d, ph],
                             message=_message_fit(rec, pos, ref, sp.spot_ft), hypotheses=h,
                             payloads=payload_space, family=fam)
-    return best, z_sync
+    return best, z_sync, prep
 
 
 def examine_luma(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
@@ -678,12 +882,17 @@ def examine_luma(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
     if keys.legacy is not None:
         outcomes.append(_read_legacy(prep, keys.legacy, ramps, payload_check, known_bits,
                                      payload_space))
-    if keys.sync is not None:
+    # A claim in formats 1-2 that stands with the format-3 test counted at its worst
+    # (bound 1) needs no format-3 reading: the count of tests is the same either way.
+    legacy_claims = bool(outcomes) and stats.log10_best_of(
+        bounds=[outcomes[0].lp] + [0.0] * (TESTS - 1)) <= np.log10(threshold)
+    if keys.sync is not None and not legacy_claims:
         # Where the picture's pixel (0, 0) falls in the examined window's frame.
         origin = (-(offset[0] + prep.window[0]), -(offset[1] + prep.window[1]))
-        claim, z_sync = _read_format3(prep, keys, ramps, payload_check, known_bits, payload_space,
-                                      origin)
+        claim, z_sync, grown = _read_format3(prep, keys, ramps, payload_check, known_bits,
+                                             payload_space, origin)
         if claim is not None:
+            claim.prep = grown
             outcomes.append(claim)
     if not outcomes:
         raise ValueError("no detection key given")
@@ -703,7 +912,7 @@ def examine_luma(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
     removal = bool(sync_lp is not None and sync_lp <= np.log10(threshold) and not detected)
     g, d, ph, shift = best.placement
     psnr, psnr_raw, psnr_zero, rec, rec_raw, ref = best.message
-    geom = describe_geometry(prep, g, d, PHASES[ph], shift, n) if detected else {}
+    geom = describe_geometry(best.prep or prep, g, d, PHASES[ph], shift, n) if detected else {}
     decoy_scores = decoy_control(prep, decoys, decoy_seed) if decoys else []
     counting = {
         "tests": TESTS,
@@ -712,6 +921,7 @@ def examine_luma(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
             "phases": len(PHASES), "shifts": n * n, "payloads": payloads_counted(payload_space)},
         "format_3": {
             "hypotheses": format3_hypotheses(), "placements": DECODE_TRIES + 1,
+            "sync_hypotheses": sync_hypotheses(n), "sync_geometries": SYNC_GEOMETRIES,
             "families": format3.FAMILIES, "macro_offsets": format3.MACRO ** 2,
             "payloads": payload_space},
     }

@@ -72,7 +72,7 @@ MACRO = 4                 # tiles per side of the macro-cell (16 independent car
 FAMILIES = 16             # keyed families of works, each with its own carriers and spots
 SYNC_SPOTS = 192          # signed spots of the synchronisation message (all fixed by the sync seed)
 CLAIM_PILOTS = 96          # pilot spots of a family's message (fixed by the family seed)
-SYNC_SHARE = 0.45         # share of the mark's energy in the synchronisation component
+SYNC_SHARE = 0.35         # share of the mark's energy in the synchronisation component
 CODE = ecc.RATE_HALF      # the payload's code (as format 2)
 
 # Streams of a family seed: 2 and 3 spot positions and pilot signs, 4 the macro

@@ -36,7 +36,9 @@ So instead of picking peaks we score whole lattice hypotheses:
    unwarped hypothesis covers exactly, and runners-up far weaker than a
    clear winner).
 
-The key is never used here, and the number of hypotheses the detector counts
+The key is never used here (format 3's keyed search, :mod:`claimkit.mark.detect`, scores the
+coarse hypotheses of :func:`similarities` with its synchronisation key and counts them all),
+and the number of hypotheses the detector counts
 is fixed in advance (at most ``LATTICE_CANDIDATES`` lattices, counted whether
 or not they are found), so the statistics of :mod:`claimkit.mark.stats` stay
 valid whatever the search finds. The eight symmetries of the square
@@ -74,6 +76,12 @@ LAG_MAX = 512              # largest lag used (the zero padding is this wide)
 SCALE_RANGE = (0.45, 2.8)
 ASPECT_RANGE = 0.1         # aspect changes along the picture's axes: up to +-10 %
 LATTICE_CANDIDATES = 2     # fixed number of lattice hypotheses (counted in the statistics)
+# Similarity hypotheses of the coarse grid handed to a keyed search (format 3's
+# synchronisation, see claimkit.mark.detect): on small, busy copies the mark's lattice is too
+# faint to win the keyless ranking, but it stayed among the 320 best coarse maxima on every
+# copy measured, where a correlation with the known pattern picks it out.
+SIMILARITY_CANDIDATES = 384
+ASPECT_CANDIDATES = 64     # ... and of the grid of squeezed copies
 
 MIN_OVERLAP = 0.05         # lags where the window overlaps itself less than this are not used
 FLATTEN_WINDOW = 15        # frequencies averaged to estimate the picture's own power
@@ -710,7 +718,7 @@ def _plausible(basis: np.ndarray, tile: int) -> bool:
 
 
 def find_lattices(x: np.ndarray, tile: int, *, workers: int = 1,
-                  candidates: int = LATTICE_CANDIDATES) -> list[Lattice]:
+                  candidates: int = LATTICE_CANDIDATES, acf: _Acf | None = None) -> list[Lattice]:
     """The ``candidates`` lattices most likely to be the mark's, best first.
 
     Parameters
@@ -724,6 +732,8 @@ def find_lattices(x: np.ndarray, tile: int, *, workers: int = 1,
     candidates : int
         How many lattices to return at most; the detector counts exactly
         this many geometric hypotheses, found or not.
+    acf : _Acf, optional
+        :func:`lag_map` of ``x``, when the caller has it already.
 
     Returns
     -------
@@ -733,9 +743,10 @@ def find_lattices(x: np.ndarray, tile: int, *, workers: int = 1,
         the original grid itself (the detector's unwarped hypothesis covers
         it), and when the others are far weaker than the best.
     """
-    if min(x.shape) < 2 * SCALE_RANGE[0] * tile:
+    if not searchable(x.shape, tile):
         return []
-    acf = lag_map(x, workers=workers)
+    if acf is None:
+        acf = lag_map(x, workers=workers)
     r_min = SCALE_RANGE[0] * tile * (1 - ASPECT_RANGE) * 0.9
     rough: list[Lattice] = []
     for _, basis in _coarse(acf, tile, SIMILARITY_GRID) + _coarse(acf, tile, ASPECT_GRID):
@@ -758,6 +769,30 @@ def find_lattices(x: np.ndarray, tile: int, *, workers: int = 1,
         if best is not None:
             rough.append(best)
     return [_canonical(lat, tile) for lat in _worth_trying(_distinct(rough), x.shape, tile)[:candidates]]
+
+
+def searchable(shape: tuple[int, int], tile: int) -> bool:
+    """Whether a copy this size can hold two periods at the smallest scale searched."""
+    return min(shape) >= 2 * SCALE_RANGE[0] * tile
+
+
+def similarities(acf: _Acf, tile: int, count: int = SIMILARITY_CANDIDATES) -> np.ndarray:
+    """The best hypotheses of the coarse grids, as maps original -> copy (K, 2, 2).
+
+    ``count`` similarities and ``ASPECT_CANDIDATES`` squeezed lattices (at
+    most ``count + ASPECT_CANDIDATES`` in all).
+
+    No refinement: the grid's steps (0.4 % in scale, 0.23 degrees) are
+    within what a correlation with the mark's own pattern tolerates on the
+    copies where this matters (small ones), and refining faint lattices on
+    the autocorrelation moves them off as often as on. Best first; fewer
+    when the copy is too small for the grid.
+    """
+    found = _coarse(acf, tile, SIMILARITY_GRID[:4] + (count,))
+    found += _coarse(acf, tile, ASPECT_GRID[:4] + (ASPECT_CANDIDATES,))
+    if not found:
+        return np.zeros((0, 2, 2))
+    return np.stack([basis / float(tile) for _, basis in found])
 
 
 def _signed_permutations() -> tuple[np.ndarray, ...]:
