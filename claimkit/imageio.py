@@ -441,7 +441,10 @@ def _own_memory(im: Image.Image, fmt: str) -> np.ndarray | None:
     if fmt not in ("JPEG", "MPO") or im.mode not in ("RGB", "L") or len(im.tile) != 1:
         return None
     w, h = im.size
-    buf = np.empty((h, w, 4) if im.mode == "RGB" else (h, w), dtype=np.uint8)
+    # Zeroed, as Pillow's own new image memory is: a decode that stops early without an
+    # error (ImageFile.LOAD_TRUNCATED_IMAGES set by a program using claimkit) leaves the
+    # same zeros, never leftover memory. Fresh pages come zeroed anyway, so it costs nothing.
+    buf = np.zeros((h, w, 4) if im.mode == "RGB" else (h, w), dtype=np.uint8)
     try:
         im.im = Image.core.map_buffer(buf, im.size, "raw", 0, (im.mode, 0, 1))
     except (AttributeError, TypeError, ValueError):
