@@ -405,20 +405,30 @@ def test_a_fold_of_the_web_copy_at_the_level_keeps_the_claim_off_other_photos(ma
 def test_null_calibration_at_every_scale_with_format3_keys():
     """Unmarked pictures large enough for the coarse views, under random owner keys: no claim at
     any scale, and the bound (counting both tests and the three scales) stays conservative."""
-    rng = np.random.default_rng(57)
-    pvals = []
-    for pic in (landscape(700, 1050, seed=43), np.stack([np.tile(data.brick(), (2, 2))] * 3, -1)):
+    pics = (landscape(700, 1050, seed=43), np.stack([np.tile(data.brick(), (2, 2))] * 3, -1))
+    found = _null_findings(pics, np.random.default_rng(57), payload_check=lambda b: False)
+    assert not any(f.detected or f.removal_suspected for f in found)
+    _assert_conservative(found)
+
+
+def _null_findings(pics, rng: np.random.Generator, **kwargs) -> list:
+    """Each unmarked picture examined at every scale under 4 random owner keys (every format)."""
+    found = []
+    for pic in pics:
         luma = to_luma(pic)
         prep = scales.prepare(luma)
         for _ in range(4):
             keys = MarkKeys(legacy=rng.bytes(32), sync=rng.bytes(32),
                             families={f: rng.bytes(32) for f in range(format3.FAMILIES)})
-            f = scales.examine(luma, keys, payload_check=lambda b: False, prepared=prep)
-            assert not f.detected and not f.removal_suspected
-            pvals.append(f.false_alarm_probability)
+            found.append(scales.examine(luma, keys, prepared=prep, **kwargs))
     format3.family_pattern.cache_clear()
     format3._pilot_kernels.cache_clear()
-    pvals = np.asarray(pvals)
+    return found
+
+
+def _assert_conservative(found: list) -> None:
+    """The bound is conservative: at most a fraction p of the null findings fall at or below p."""
+    pvals = np.asarray([f.false_alarm_probability for f in found])
     for p in (0.25, 0.5):
         assert np.mean(pvals <= p) <= p + 1e-9, p
 
@@ -535,22 +545,9 @@ def test_null_calibration_with_the_owners_payload_list():
     check = lambda b: bool(np.any(np.all(allocated == np.asarray(b), axis=1)))  # noqa: E731
     pics = [landscape(700, 1050, seed=44), data.hubble_deep_field()]
     pics += [_jpeg(lanczos(p, (p.shape[1] // 4, p.shape[0] // 4)), 85) for p in pics]
-    pvals = []
-    for pic in pics:
-        luma = to_luma(pic)
-        prep = scales.prepare(luma)
-        for _ in range(4):
-            keys = MarkKeys(legacy=rng.bytes(32), sync=rng.bytes(32),
-                            families={f: rng.bytes(32) for f in range(format3.FAMILIES)})
-            f = scales.examine(luma, keys, payload_check=check, payload_candidates=listed,
-                               prepared=prep)
-            assert not f.detected
-            pvals.append(f.false_alarm_probability)
-    format3.family_pattern.cache_clear()
-    format3._pilot_kernels.cache_clear()
-    pvals = np.asarray(pvals)
-    for p in (0.25, 0.5):
-        assert np.mean(pvals <= p) <= p + 1e-9, p
+    found = _null_findings(pics, rng, payload_check=check, payload_candidates=listed)
+    assert not any(f.detected for f in found)
+    _assert_conservative(found)
 
 
 def test_an_examination_reruns_to_the_same_numbers_whatever_payloads_the_examiner_lists(master):
