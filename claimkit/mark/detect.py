@@ -828,6 +828,7 @@ def _read_format3(prep, keys: format3.MarkKeys, ramps, payload_check, known_bits
             more = _surfaces(replace(grown, spectra=grown.spectra[len(prep.spectra):]), sp, ramps)
             prep, surf = grown, np.concatenate([surf, more])
     h = format3_hypotheses()
+    level = _listed_level(threshold)
     best = None
     z_sync = float(surf.max())
     if not keys.families:
@@ -852,7 +853,7 @@ def _read_format3(prep, keys: format3.MarkKeys, ramps, payload_check, known_bits
         bits, valid, z_full, rec = format3.decode_family(
             spec, keys.families[fam], offset, payload_check=payload_check,
             known_bits=known_bits, decode=float(z[k]) >= DECODE_MIN_Z3, candidates=candidates,
-            accept_listed=lambda zf: bound(zf) <= _listed_level(threshold))
+            accept_listed=lambda zf: bound(zf) <= level)
         lp = bound(z_full)
         if best is None or lp < best.lp:
             pos, _, ref = format3.reference_message(keys.families[fam], bits, n)
