@@ -361,20 +361,18 @@ def test_not_a_zip_is_bad_input(tmp_path, capsys):
 
 
 def test_a_finding_is_re_run_by_the_examination_method_it_records(built_case, tmp_path):
-    """A finding made by the JPEG luma-plane reading, relabelled as an RGB reading (or, as
-    before methods were recorded, as none), is re-run by RGB and no longer reproduces."""
-    for label in ("rgb-luma-1", None):
-        work = _unpack(built_case.bundle, tmp_path / f"w-{label}")
-        p = work / "findings" / "exhibit-1.json"
-        f = json.loads(p.read_bytes())
-        assert f["examined"]["examination_method"] == "jpeg-y-1"
-        assert f["result"]["examination_method"] == "jpeg-y-1"
-        if label is None:
-            del f["examined"]["examination_method"]
-        else:
-            f["examined"]["examination_method"] = label
-        p.write_bytes(canonical_json(f) + b"\n")
-        _resign(work, built_case.home)
-        rep = verify_bundle(work, robustness=False, disclosure=built_case.disclosure)
-        rerun = [c for c in rep.failures if c["check"] == "exhibit-1 re-run"]
-        assert rerun and "score_pilot: stored" in rerun[0]["detail"], _failed(rep)
+    """A finding made by the JPEG luma-plane reading, stripped of its method (as findings were
+    before methods were recorded), is re-run by the RGB reading those findings were made by and
+    no longer reproduces. (That the recorded method is re-run as recorded is what the sound
+    bundle's passing re-run shows; one full verify here keeps the suite's time.)"""
+    work = _unpack(built_case.bundle, tmp_path / "w")
+    p = work / "findings" / "exhibit-1.json"
+    f = json.loads(p.read_bytes())
+    assert f["examined"]["examination_method"] == "jpeg-y-1"
+    assert f["result"]["examination_method"] == "jpeg-y-1"
+    del f["examined"]["examination_method"]
+    p.write_bytes(canonical_json(f) + b"\n")
+    _resign(work, built_case.home)
+    rep = verify_bundle(work, robustness=False, disclosure=built_case.disclosure)
+    rerun = [c for c in rep.failures if c["check"] == "exhibit-1 re-run"]
+    assert rerun and "score_pilot: stored" in rerun[0]["detail"], _failed(rep)
