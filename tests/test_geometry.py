@@ -17,11 +17,13 @@ from scipy import ndimage
 from skimage import data
 from skimage import transform as sktf
 
-from claimkit.imageio import to_luma
-from claimkit.mark import detect, geometry
+from claimkit.evidence import keys
+from claimkit.imageio import add_luma_delta, to_luma
+from claimkit.mark import detect, geometry, scales
+from claimkit.mark.format3 import EmbedKeys
 from claimkit.mark.pattern import TILE, key_pattern
 from claimkit.stress import jpeg, resize, rotate_crop
-from tests.engine_helpers import SEED, mark, payload, photos
+from tests.engine_helpers import SEED, lanczos, landscape, mark, noise, payload, photos
 
 ROTATION_TOL_DEG = 0.1   # much tighter than the 0.5 degrees the issue asks of the whole examination
 SCALE_TOL = 0.003        # likewise (the issue asks 2 %)
@@ -346,3 +348,27 @@ def test_untouched_copy_is_never_resampled_whatever_the_key():
     for _ in range(5):
         prep = detect.prepare(to_luma(mark(pic, rng.bytes(32))))
         assert prep.transforms == [None]
+
+
+def test_fit_a_little_off_the_copys_own_grid_is_the_grid():
+    # Issue 16: on an untouched copy of a grainy picture the least-squares fit
+    # lands a few 1e-4 off the copy's own grid, up to a pixel of drift across
+    # the window, and the copy was resampled for nothing. The grid itself
+    # scores at least as well on the autocorrelation, so no lattice is left to
+    # resample. Control: the same copy resized by 0.5 % (Pillow's Lanczos)
+    # keeps a fitted lattice at that scale (there the grid scores lower).
+    k = keys.format3_keys(bytes(range(1, 33)), serial=1)
+    marking = EmbedKeys(sync=k["sync"], family=k["family"], family_seed=k["families"][k["family"]])
+    pic = noise(lanczos(landscape(600, 800, seed=5), (1600, 1200)), 4)
+    marked = jpeg(add_luma_delta(pic, scales.multiscale_delta(to_luma(pic), marking, payload(0))),
+                  95, 0)
+    x = detect.whiten(to_luma(marked))
+    acf = geometry.lag_map(x)
+    fitted = geometry._refine(acf, TILE * np.eye(2), geometry.SCALE_RANGE[0] * TILE * 0.81)[0]
+    assert np.abs(fitted / TILE - np.eye(2)).max() > 5e-5       # the fit is off the grid
+    assert geometry.find_lattices(x, TILE, acf=acf) == []
+    assert detect.prepare(to_luma(marked)).transforms == [None]
+    bigger = lanczos(marked, (1608, 1206))
+    near = [lat.transform(TILE) for lat in geometry.find_lattices(detect.whiten(to_luma(bigger)), TILE)
+            if np.abs(lat.transform(TILE) - np.eye(2)).max() < 0.01]
+    assert near and np.allclose(np.diag(near[0]), 1.005, atol=5e-4)
