@@ -28,12 +28,25 @@ MARK_FOUND = "MARK FOUND"
 NO_MARK = "no mark of this owner found"
 
 
-def verdict(rep: dict) -> str:
-    """An examination's verdict: "MARK FOUND, work W-..." (qualified) or :data:`NO_MARK`."""
+def verdict(rep: dict, evaluation: dict | None = None, *, mismatch: bool | None = None) -> str:
+    """An examination's verdict: "MARK FOUND, work W-..." (qualified) or :data:`NO_MARK`.
+
+    Where the examination was evaluated (``evaluation``, by default ``rep["evaluation"]``) and
+    derivation from the named work is not claimed, the verdict says so in the same line, so
+    that "MARK FOUND" is never read alone as a claim: the content line found that the picture
+    does not correspond to the work (``mismatch``, by default ``rep["content_mismatch"]``), or
+    it could not decide.
+    """
     if not rep.get("detected"):
         return NO_MARK
     who = f"work {rep['work_id']}" if rep.get("work_id") else "payload unreadable"
-    return f"{MARK_FOUND}, {who}" + ("" if rep.get("registered") else " (not in this registry)")
+    said = f"{MARK_FOUND}, {who}" + ("" if rep.get("registered") else " (not in this registry)")
+    ev = rep.get("evaluation") if evaluation is None else evaluation
+    if not ev or ev.get("propositions") is None or ev.get("derivation_claimed"):
+        return said
+    if rep.get("content_mismatch") if mismatch is None else mismatch:
+        return said + ", but the picture does not correspond to it: no derivation claimed"
+    return said + "; the content line could not check the picture: no derivation claimed"
 
 
 def probability(log10p: float) -> str:

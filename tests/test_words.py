@@ -39,3 +39,19 @@ def test_geometry_words_long_and_short():
     assert words.geometry({}, short=True) == "not found"
     assert words.geometry({"rotation_deg": 0.0, "scale": 1.0, "aspect": 1.0, "flipped": False}) \
         == "no rotation, scaling or mirroring"
+
+
+def test_a_found_mark_whose_derivation_is_not_claimed_says_so_in_the_verdict():
+    """"MARK FOUND" is never printed alone where the evaluation withheld the derivation claim."""
+    from claimkit.words import MARK_FOUND, NO_MARK, verdict
+
+    rep = {"detected": True, "work_id": "W-X-000001", "registered": True}
+    claimed = {"propositions": {"Hp": "..."}, "derivation_claimed": True}
+    withheld = {"propositions": {"Hp": "..."}, "derivation_claimed": False}
+    assert verdict(rep) == f"{MARK_FOUND}, work W-X-000001"
+    assert verdict(rep, claimed) == f"{MARK_FOUND}, work W-X-000001"
+    assert verdict({**rep, "evaluation": withheld, "content_mismatch": True}).endswith(
+        ", but the picture does not correspond to it: no derivation claimed")
+    assert verdict(rep, withheld, mismatch=False).endswith(
+        "; the content line could not check the picture: no derivation claimed")
+    assert verdict({"detected": False}, withheld) == NO_MARK

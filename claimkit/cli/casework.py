@@ -116,7 +116,7 @@ def cmd_case_examine(args) -> int:
         if r["detected"] and doc["content_mismatch"]:
             line = f"{ex.exhibit_id}: {doc['evaluation']['finding']}"
         elif r["detected"]:
-            line = (f"{ex.exhibit_id}: {verdict(r)}; false-alarm bound "
+            line = (f"{ex.exhibit_id}: {verdict(r, doc['evaluation'])}; false-alarm bound "
                     f"{r['false_alarm_text']}; {r['geometry_text']}")
         else:
             line = f"{ex.exhibit_id}: {verdict(r)}"

@@ -143,11 +143,13 @@ def cmd_examine(args) -> int:
                 continue
             if args.decoys:
                 rep["decoy_scores"] = [round(v, 3) for v in finding.decoy_scores]
-            if args.json:
+            if args.json or rep["detected"]:
                 # The content line and the evaluation: against the registered file where
-                # --originals holds it, else against the work record's fingerprint.
+                # --originals holds it, else against the work record's fingerprint. The words
+                # need them too: a found mark whose derivation is not claimed says so.
                 rep = _with_lines(profile, rep, Path(f), threshold,
                                   [Path(d) for d in args.originals or []])
+            if args.json:
                 print_json(rep)
             else:
                 print(_verdict_line(rep))
