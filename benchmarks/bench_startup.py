@@ -12,6 +12,11 @@ child), the median over interleaved rounds, all in this one run:
   the production cost, N = 2**17) and with an unlocked session
   (``claimkit unlock``: no scrypt).
 
+The photo carries no mark (every scale is examined). claimkit is byte-compiled
+first (``compileall``, here and in ``--before DIR``), as an installed wheel is:
+where ``PYTHONDONTWRITEBYTECODE`` is set, a checkout would compile every claimkit
+module from source in every process.
+
 ``--before DIR`` also runs the same ``claimkit`` commands from another checkout
 (``git worktree add DIR COMMIT``) through ``PYTHONPATH``, interleaved with
 these, so that before and after are measured in the same run. Last, one
@@ -64,11 +69,17 @@ def main() -> None:
     ap.add_argument("--megapixels", type=float, default=1.6)
     ap.add_argument("--before", type=Path, help="a checkout of the commit to compare with")
     args = ap.parse_args()
+    import compileall
+
     from PIL import Image
     from skimage import data
 
+    import claimkit
     from claimkit.evidence.profile import Profile
 
+    compileall.compile_dir(Path(claimkit.__file__).parent, quiet=1)
+    if args.before:
+        compileall.compile_dir(args.before / "claimkit", quiet=1)
     with tempfile.TemporaryDirectory() as tmp:
         work = Path(tmp)
         home = work / "home"
