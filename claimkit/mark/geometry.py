@@ -717,8 +717,35 @@ def _plausible(basis: np.ndarray, tile: int) -> bool:
     return bool(lo * 0.97 <= s <= hi * 1.03 and sv[0] / sv[1] <= squeeze)
 
 
+@dataclass(frozen=True)
+class Coarse:
+    """The best hypotheses of the coarse grids, best first: (score, basis) pairs.
+
+    ``similar`` from the grid of similarities, ``squeezed`` from the grid of
+    squeezed copies. :func:`find_lattices` refines the first few of each,
+    :func:`similarities` hands more of them to a keyed search: one pass over
+    the grids serves both.
+    """
+
+    similar: list[tuple[float, np.ndarray]]
+    squeezed: list[tuple[float, np.ndarray]]
+
+
+def coarse_search(acf: _Acf, tile: int, similar: int = 0, squeezed: int = 0) -> Coarse:
+    """Score the coarse grids once, keeping at least ``similar`` and ``squeezed`` hypotheses of each.
+
+    The lattice search keeps the best ``SIMILARITY_GRID[4]`` and
+    ``ASPECT_GRID[4]``; a keyed search asks for more. The best few are the
+    same whatever is kept (the local maxima of each score surface, best
+    first).
+    """
+    return Coarse(_coarse(acf, tile, SIMILARITY_GRID[:4] + (max(similar, SIMILARITY_GRID[4]),)),
+                  _coarse(acf, tile, ASPECT_GRID[:4] + (max(squeezed, ASPECT_GRID[4]),)))
+
+
 def find_lattices(x: np.ndarray, tile: int, *, workers: int = 1,
-                  candidates: int = LATTICE_CANDIDATES, acf: _Acf | None = None) -> list[Lattice]:
+                  candidates: int = LATTICE_CANDIDATES, acf: _Acf | None = None,
+                  coarse: Coarse | None = None) -> list[Lattice]:
     """The ``candidates`` lattices most likely to be the mark's, best first.
 
     Parameters
@@ -734,6 +761,8 @@ def find_lattices(x: np.ndarray, tile: int, *, workers: int = 1,
         this many geometric hypotheses, found or not.
     acf : _Acf, optional
         :func:`lag_map` of ``x``, when the caller has it already.
+    coarse : Coarse, optional
+        :func:`coarse_search` of ``acf``, when the caller has it already.
 
     Returns
     -------
@@ -748,8 +777,10 @@ def find_lattices(x: np.ndarray, tile: int, *, workers: int = 1,
     if acf is None:
         acf = lag_map(x, workers=workers)
     r_min = SCALE_RANGE[0] * tile * (1 - ASPECT_RANGE) * 0.9
+    if coarse is None:
+        coarse = coarse_search(acf, tile)
     rough: list[Lattice] = []
-    for _, basis in _coarse(acf, tile, SIMILARITY_GRID) + _coarse(acf, tile, ASPECT_GRID):
+    for _, basis in coarse.similar[:SIMILARITY_GRID[4]] + coarse.squeezed[:ASPECT_GRID[4]]:
         # Where the lattice is faint the wide search can land on noise: refine
         # both starting points and keep the one whose lattice scores better.
         best = None
@@ -776,7 +807,8 @@ def searchable(shape: tuple[int, int], tile: int) -> bool:
     return min(shape) >= 2 * SCALE_RANGE[0] * tile
 
 
-def similarities(acf: _Acf, tile: int, count: int = SIMILARITY_CANDIDATES) -> np.ndarray:
+def similarities(acf: _Acf, tile: int, count: int = SIMILARITY_CANDIDATES,
+                 coarse: Coarse | None = None) -> np.ndarray:
     """The best hypotheses of the coarse grids, as maps original -> copy (K, 2, 2).
 
     ``count`` similarities and ``ASPECT_CANDIDATES`` squeezed lattices (at
@@ -786,10 +818,13 @@ def similarities(acf: _Acf, tile: int, count: int = SIMILARITY_CANDIDATES) -> np
     within what a correlation with the mark's own pattern tolerates on the
     copies where this matters (small ones), and refining faint lattices on
     the autocorrelation moves them off as often as on. Best first; fewer
-    when the copy is too small for the grid.
+    when the copy is too small for the grid. ``coarse``: the
+    :func:`coarse_search` of ``acf`` (keeping at least ``count`` and
+    ``ASPECT_CANDIDATES``), when the caller has it already.
     """
-    found = _coarse(acf, tile, SIMILARITY_GRID[:4] + (count,))
-    found += _coarse(acf, tile, ASPECT_GRID[:4] + (ASPECT_CANDIDATES,))
+    if coarse is None:
+        coarse = coarse_search(acf, tile, count, ASPECT_CANDIDATES)
+    found = coarse.similar[:count] + coarse.squeezed[:ASPECT_CANDIDATES]
     if not found:
         return np.zeros((0, 2, 2))
     return np.stack([basis / float(tile) for _, basis in found])
