@@ -375,9 +375,12 @@ def _coarse(acf: _Acf, tile: int, grid) -> list[tuple[float, np.ndarray]]:
     def peaks(score, a, lattice_aspect):
         # Hypotheses with almost no lags inside the window say nothing; keep
         # the local maxima of the score surface (the angle is circular).
-        for ki, pj, val in _top_maxima(score, keep):
-            period = np.exp(rho[ki + k_lo])
-            best.append((val, _basis(period, phi[pj], a, lattice_aspect)))
+        found = _top_maxima(score, keep)
+        if not found:
+            return
+        ki, pj, val = (np.array(v) for v in zip(*found, strict=True))
+        bases = _bases(np.exp(rho[ki + k_lo]), phi[pj], a, lattice_aspect)
+        best.extend(zip(val.tolist(), bases, strict=True))
 
     def comb_sum(g, v, log_n, arg_n, period):
         """Sum of shifted rows and columns of ``g`` (scores) and ``v`` (variances) over a comb.
@@ -533,11 +536,19 @@ def _basis(period: float, theta: float, aspect: float = 1.0, lattice_aspect: flo
     Columns, in (row, col) pixels: the images of the original's +row step and
     +col step.
     """
+    return _bases(np.array([period]), np.array([theta]), aspect, lattice_aspect)[0]
+
+
+def _bases(period: np.ndarray, theta: np.ndarray, aspect: float = 1.0,
+           lattice_aspect: float = 1.0) -> np.ndarray:
+    """:func:`_basis` of many (period, theta) pairs at once, (K, 2, 2)."""
     c, s = np.cos(theta), np.sin(theta)
-    squeeze = np.diag([1.0, aspect])
-    col_step = squeeze @ np.array([s, c]) * period * lattice_aspect
-    row_step = squeeze @ np.array([c, -s]) * period
-    return np.stack([row_step, col_step], axis=1)
+    out = np.empty((len(theta), 2, 2))
+    out[:, 0, 0] = c * period
+    out[:, 1, 0] = aspect * -s * period
+    out[:, 0, 1] = s * period * lattice_aspect
+    out[:, 1, 1] = aspect * c * period * lattice_aspect
+    return out
 
 
 # ---------------------------------------------------------------- refinement and scoring
