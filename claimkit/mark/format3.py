@@ -349,7 +349,7 @@ def score_families(spec: np.ndarray, families: Mapping[int, bytes]) -> dict[int,
     """
     n = spec.shape[-1]
     idx, _ = claim_frequencies(n)
-    y = spec.reshape(MACRO, MACRO, -1)[:, :, idx]
+    y = np.take(spec.reshape(MACRO, MACRO, -1), idx, axis=2)   # (take: indexing's gather, 2.5x faster)
     power = (y.real ** 2 + y.imag ** 2).sum(axis=(0, 1)).astype(np.float64)
     yt = _class_dft(y).reshape(MACRO * MACRO, -1)
     names = tuple(families)
@@ -440,7 +440,7 @@ def decode_family(spec: np.ndarray, seed: bytes, offset: tuple[int, int], *,
     idx, partner = claim_frequencies(n)
     table = _class_table(offset)
     sp = spot_spectrum(n, SPOT_SIGMA).ravel()[idx]
-    y = spec.reshape(MACRO * MACRO, -1)[:, idx]
+    y = np.take(spec.reshape(MACRO * MACRO, -1), idx, axis=1)
     half = (y * np.conj(fam.phases[table])).sum(axis=0) * sp
     full = np.zeros(n * n, dtype=np.complex128)
     full[idx] = half

@@ -376,9 +376,12 @@ def _coarse(acf: _Acf, tile: int, grid) -> list[tuple[float, np.ndarray]]:
     def peaks(score, a, lattice_aspect):
         # Hypotheses with almost no lags inside the window say nothing; keep
         # the local maxima of the score surface (the angle is circular).
-        for ki, pj, val in _top_maxima(score, keep):
-            period = np.exp(rho[ki + k_lo])
-            best.append((val, _basis(period, phi[pj], a, lattice_aspect)))
+        found = _top_maxima(score, keep)
+        if not found:
+            return
+        ki, pj, val = (np.array(v) for v in zip(*found, strict=True))
+        bases = _bases(np.exp(rho[ki + k_lo]), phi[pj], a, lattice_aspect)
+        best.extend(zip(val.tolist(), bases, strict=True))
 
     def comb_sum(g, v, log_n, arg_n, period):
         """Sum of shifted rows and columns of ``g`` (scores) and ``v`` (variances) over a comb.
@@ -534,11 +537,19 @@ def _basis(period: float, theta: float, aspect: float = 1.0, lattice_aspect: flo
     Columns, in (row, col) pixels: the images of the original's +row step and
     +col step.
     """
+    return _bases(np.array([period]), np.array([theta]), aspect, lattice_aspect)[0]
+
+
+def _bases(period: np.ndarray, theta: np.ndarray, aspect: float = 1.0,
+           lattice_aspect: float = 1.0) -> np.ndarray:
+    """:func:`_basis` of many (period, theta) pairs at once, (K, 2, 2)."""
     c, s = np.cos(theta), np.sin(theta)
-    squeeze = np.diag([1.0, aspect])
-    col_step = squeeze @ np.array([s, c]) * period * lattice_aspect
-    row_step = squeeze @ np.array([c, -s]) * period
-    return np.stack([row_step, col_step], axis=1)
+    out = np.empty((len(theta), 2, 2))
+    out[:, 0, 0] = c * period
+    out[:, 1, 0] = aspect * -s * period
+    out[:, 0, 1] = s * period * lattice_aspect
+    out[:, 1, 1] = aspect * c * period * lattice_aspect
+    return out
 
 
 # ---------------------------------------------------------------- refinement and scoring
@@ -718,8 +729,35 @@ def _plausible(basis: np.ndarray, tile: int) -> bool:
     return bool(lo * 0.97 <= s <= hi * 1.03 and sv[0] / sv[1] <= squeeze)
 
 
+@dataclass(frozen=True)
+class Coarse:
+    """The best hypotheses of the coarse grids, best first: (score, basis) pairs.
+
+    ``similar`` from the grid of similarities, ``squeezed`` from the grid of
+    squeezed copies. :func:`find_lattices` refines the first few of each,
+    :func:`similarities` hands more of them to a keyed search: one pass over
+    the grids serves both.
+    """
+
+    similar: list[tuple[float, np.ndarray]]
+    squeezed: list[tuple[float, np.ndarray]]
+
+
+def coarse_search(acf: _Acf, tile: int, similar: int = 0, squeezed: int = 0) -> Coarse:
+    """Score the coarse grids once, keeping at least ``similar`` and ``squeezed`` hypotheses of each.
+
+    The lattice search keeps the best ``SIMILARITY_GRID[4]`` and
+    ``ASPECT_GRID[4]``; a keyed search asks for more. The best few are the
+    same whatever is kept (the local maxima of each score surface, best
+    first).
+    """
+    return Coarse(_coarse(acf, tile, SIMILARITY_GRID[:4] + (max(similar, SIMILARITY_GRID[4]),)),
+                  _coarse(acf, tile, ASPECT_GRID[:4] + (max(squeezed, ASPECT_GRID[4]),)))
+
+
 def find_lattices(x: np.ndarray, tile: int, *, workers: int = 1,
-                  candidates: int = LATTICE_CANDIDATES, acf: _Acf | None = None) -> list[Lattice]:
+                  candidates: int = LATTICE_CANDIDATES, acf: _Acf | None = None,
+                  coarse: Coarse | None = None) -> list[Lattice]:
     """The ``candidates`` lattices most likely to be the mark's, best first.
 
     Parameters
@@ -735,6 +773,8 @@ def find_lattices(x: np.ndarray, tile: int, *, workers: int = 1,
         this many geometric hypotheses, found or not.
     acf : _Acf, optional
         :func:`lag_map` of ``x``, when the caller has it already.
+    coarse : Coarse, optional
+        :func:`coarse_search` of ``acf``, when the caller has it already.
 
     Returns
     -------
@@ -749,8 +789,10 @@ def find_lattices(x: np.ndarray, tile: int, *, workers: int = 1,
     if acf is None:
         acf = lag_map(x, workers=workers)
     r_min = SCALE_RANGE[0] * tile * (1 - ASPECT_RANGE) * 0.9
+    if coarse is None:
+        coarse = coarse_search(acf, tile)
     rough: list[Lattice] = []
-    for _, basis in _coarse(acf, tile, SIMILARITY_GRID) + _coarse(acf, tile, ASPECT_GRID):
+    for _, basis in coarse.similar[:SIMILARITY_GRID[4]] + coarse.squeezed[:ASPECT_GRID[4]]:
         # Where the lattice is faint the wide search can land on noise: refine
         # both starting points and keep the one whose lattice scores better.
         best = None
@@ -777,7 +819,8 @@ def searchable(shape: tuple[int, int], tile: int) -> bool:
     return min(shape) >= 2 * SCALE_RANGE[0] * tile
 
 
-def similarities(acf: _Acf, tile: int, count: int = SIMILARITY_CANDIDATES) -> np.ndarray:
+def similarities(acf: _Acf, tile: int, count: int = SIMILARITY_CANDIDATES,
+                 coarse: Coarse | None = None) -> np.ndarray:
     """The best hypotheses of the coarse grids, as maps original -> copy (K, 2, 2).
 
     ``count`` similarities and ``ASPECT_CANDIDATES`` squeezed lattices (at
@@ -787,10 +830,13 @@ def similarities(acf: _Acf, tile: int, count: int = SIMILARITY_CANDIDATES) -> np
     within what a correlation with the mark's own pattern tolerates on the
     copies where this matters (small ones), and refining faint lattices on
     the autocorrelation moves them off as often as on. Best first; fewer
-    when the copy is too small for the grid.
+    when the copy is too small for the grid. ``coarse``: the
+    :func:`coarse_search` of ``acf`` (keeping at least ``count`` and
+    ``ASPECT_CANDIDATES``), when the caller has it already.
     """
-    found = _coarse(acf, tile, SIMILARITY_GRID[:4] + (count,))
-    found += _coarse(acf, tile, ASPECT_GRID[:4] + (ASPECT_CANDIDATES,))
+    if coarse is None:
+        coarse = coarse_search(acf, tile, count, ASPECT_CANDIDATES)
+    found = coarse.similar[:count] + coarse.squeezed[:ASPECT_CANDIDATES]
     if not found:
         return np.zeros((0, 2, 2))
     return np.stack([basis / float(tile) for _, basis in found])
