@@ -447,21 +447,23 @@ def growth_child(src: str, home: str) -> None:
     from claimkit.mark import payload
 
     with Profile.open(Path(home), b"bench") as prof:
-        seed, checker = prof.detection_seed, workflow.owner_payload_check(prof)
+        # The default format (3): serial 1's own keys to mark, every key to examine.
+        seed, keys = workflow.embed_keys(prof, 1), workflow.mark_keys(prof)
+        checker = workflow.owner_payload_check(prof)
         bits = [int(b) for b in payload.pack(prof.owner_tag, 1, prof.payload_tag(1))]
     p = Path(src)
     # Warm up on a small picture: imports and key tables are not what is measured.
     warm = p.with_name("warm.png")
     Image.fromarray(make_picture(0, 256, 256, _sources())).save(warm)
     batch.mark_task(str(warm), str(p.with_name(".warm.png")), seed, bits, 1.0, 95, None)
-    scan.scan_task(str(warm), seed, checker, 1e-9, None)
+    scan.scan_task(str(warm), keys, checker, 1e-9, None)
     base = _high_water_mb()
     staged = p.with_name(".staged.jpg")
     t = time.perf_counter()
     res = batch.mark_task(str(p), str(staged), seed, bits, 1.0, 95, None)
     t_mark = time.perf_counter() - t
     t = time.perf_counter()
-    rep = scan.scan_task(str(staged), seed, checker, 1e-9, None)
+    rep = scan.scan_task(str(staged), keys, checker, 1e-9, None)
     t_exam = time.perf_counter() - t
     peak = _high_water_mb()
     print(json.dumps({"mark": t_mark, "examine": t_exam, "peak_mb": peak, "base_mb": base,
