@@ -241,6 +241,36 @@ def test_null_calibration_over_every_scale():
         assert np.mean(pvals <= p) <= p, p
 
 
+
+def test_the_synchronisation_findings_do_not_depend_on_the_families_held():
+    """An unmarked photo examined by the owner (all 16 format-3 families) and by the holder of
+    one work's disclosure (its family): verify re-runs the owner's examination with the
+    disclosure and compares ``score_sync`` and ``removal_suspected`` (claimkit.verify.rerun).
+    Which scale reports the scores follows the best bound, which moves with the families held
+    (with these keys the owner's best is the long-side view, the holder's the native one); the
+    synchronisation's findings are the best over every scale, for both."""
+    from claimkit.mark import format3
+
+    luma = to_luma(data.chelsea())
+    rng = np.random.default_rng(0)
+    owner = format3.MarkKeys(legacy=rng.bytes(32), sync=rng.bytes(32),
+                             families={f: rng.bytes(32) for f in range(format3.FAMILIES)})
+    holder = format3.MarkKeys(legacy=owner.legacy, sync=owner.sync, families={0: owner.families[0]})
+    prep = scales.prepare(luma)
+    found = {who: scales.examine(luma, keys, payload_check=lambda b: False, prepared=prep)
+             for who, keys in (("owner", owner), ("holder", holder))}
+    assert not found["owner"].detected and not found["holder"].detected
+    # The views' own findings: the owner's bounds differ by view, the holder's do not here.
+    views = [detect.examine_luma(luma, owner if name == "native" else scales.coarse_keys(owner),
+                                 threshold=detect.DEFAULT_THRESHOLD / 3, prepared=prep.get(name),
+                                 payload_check=lambda b: False) for name in scales.SCALES]
+    assert min(v.log10_false_alarm for v in views) < views[0].log10_false_alarm
+    best_sync = max(v.z_sync for v in views if v.z_sync is not None)
+    for f in found.values():
+        assert f.to_json()["score_sync"] == round(best_sync, 4)
+        assert f.removal_suspected == any(v.removal_suspected for v in views)
+
+
 # ------------------------------------------------------------------ the owner's payload list
 
 

@@ -554,12 +554,16 @@ def examine(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
         ``hypotheses`` counts the placements of every scale searched,
         ``scales_searched`` says how many scales; a finding made at a coarse
         view has ``geometry["level"]`` (see :func:`relative_to_original`).
+        Without a claim, ``z_sync`` is the best synchronisation score of
+        every view and ``removal_suspected`` holds if it does at any view.
     """
     if prepared is None:
         prepared = PreparedScales(luma, overview=overview, step=step, shape=shape, workers=workers)
     shape = prepared.shape
     n = len(SCALES)
     best = None
+    syncs: list[float] = []     # every view's synchronisation score (format 3)
+    removal = False
     for name in SCALES:
         prep = prepared.get(name)
         if prep is None:     # a view too small to examine (still counted in n)
@@ -571,6 +575,9 @@ def examine(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
         # Each scale is tested at threshold / n: the union bound over the n scales.
         f = detect.examine_luma(luma, key, threshold=threshold / n, workers=workers,
                                 prepared=prep, **extra, **kwargs)
+        if f.z_sync is not None:
+            syncs.append(f.z_sync)
+        removal = removal or f.removal_suspected
         if best is None or f.log10_false_alarm < best[1].log10_false_alarm:
             best = (name, f)
         if f.detected:
@@ -579,6 +586,12 @@ def examine(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
             break
     assert best is not None, "the native view is always examined"
     name, f = best
+    if not f.detected:
+        # Which view reports the scores depends on the format-3 family seeds held (the best
+        # family moves each view's bound), the synchronisation's findings do not: the best
+        # over every view (all are examined when none claims), so that every holder of the
+        # sync seed re-runs them to the same numbers (verify compares them).
+        f = replace(f, z_sync=max(syncs) if syncs else None, removal_suspected=removal)
     geom = dict(f.geometry)
     if geom and name != "native":
         geom = _view_geometry(geom, shape, prepared.view_shapes[name], name)
