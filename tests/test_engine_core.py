@@ -121,8 +121,9 @@ def test_false_alarm_arithmetic_by_hand():
     # Format 1-2 search: 3 geometries x 8 variants x 4 phases x 128^2 shifts.
     assert h == 3 * 8 * 4 * 128 * 128 == stats.legacy_hypotheses(geometries=3, dihedral=8, phases=4,
                                                                   tile=128)
-    # Format 3's claim: (3 sync placements + the file's own grid) x 16 families x 4^2 offsets.
-    assert detect.format3_hypotheses() == 4 * 16 * 16
+    # Format 3's claim: (3 sync placements + the file's own grid at up to 3 geometries)
+    # x 16 families x 4^2 offsets.
+    assert detect.format3_hypotheses() == 6 * 16 * 16
     # The best of two tests pays a factor two.
     assert stats.log10_best_of(bounds=[-20.0, -5.0]) == pytest.approx(math.log10(2) - 20.0)
     assert stats.as_probability(-5000.0) > 0.0

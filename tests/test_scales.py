@@ -97,6 +97,14 @@ def test_levels_follow_the_picture_size():
     assert scales.coarse_level((1080, 720)).shape == (576, 384)
     assert scales.view_shape((720, 576), "long side") == (384, 307)
     assert not scales.has_coarse((300, 451)) and scales.has_coarse((872, 1000))
+    # Wider than 13:8: the long side is fitted (a 680 x 1700 panorama, 25 % of it 170 px high).
+    assert scales.coarse_level((680, 1700)).shape == (250, 624)
+    assert scales.has_coarse((500, 1500)) and not scales.has_coarse((500, 900))
+    # The view of a copy of a 3:2 picture whose rounding made it 1.502 wide keeps the short side.
+    assert scales.view_shape((225, 338), "short side") == (384, 577)
+    # Beside it, the side the copy's rounding leaves uncertain is read a pixel shorter and longer.
+    assert scales.stretched_shapes((214, 320)) == [(384, 573), (384, 575)]
+    assert scales.stretched_shapes((170, 425)) == [(249, 624), (251, 624)]
     assert scales.coarse_seed(SEED) != SEED and scales.coarse_seed(SEED) == scales.coarse_seed(SEED)
     assert scales.coarse_seed(SEED) != scales.coarse_seed(OTHER_SEED)
 

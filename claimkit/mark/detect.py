@@ -58,6 +58,10 @@ DIHEDRAL = 8
 DEFAULT_THRESHOLD = stats.DEFAULT_THRESHOLD
 DEFAULT_PAYLOAD_SPACE = 2 ** 24   # valid payloads per owner: one per work serial
 DECODE_TRIES = 3
+# Format 3's claim is also tried on the file's own grid, at most at this many geometries:
+# the unwarped fold, and the two stretches of a coarse view (claimkit.mark.scales: the
+# level's size is known only to the rounding of the copy's). All counted in its bound.
+OWN_PLACEMENTS = 3
 # Format 3's claim is decoded (soft Viterbi) only where its best pilot score reaches this.
 # Below it no payload can bring the bound near any usable threshold (a claim at 1e-9
 # needs a full-template score near 9.7, about 6 on the 96 pilots), and on unmarked
@@ -380,6 +384,9 @@ class _Prepared:
     similarities: np.ndarray | None = None
     reduced: tuple[np.ndarray, ...] = ()    # the central window reduced by each of KEYED_REDUCTIONS
     macro: int = 1
+    # Geometries at which format 3's claim is also tried on the file's own grid (at most
+    # OWN_PLACEMENTS): the unwarped fold, and a coarse view's stretches (mark.scales).
+    own: tuple[int, ...] = (0,)
 
     def macro_fold(self, g: int) -> np.ndarray:
         """Geometry ``g`` folded at format 3's macro-period (float32), folded on first need.
@@ -715,7 +722,7 @@ def sync_hypotheses(tile: int = TILE) -> int:
 # folded at half the tile: the synchronisation keeps 90 % of its power below a quarter of
 # the sampling rate), and the best KEYED_PICKS become geometries of format 3's search.
 # The choice uses the sync key only: the claim (family keys, independent of it) is still
-# tested at DECODE_TRIES + 1 placements, so its bound does not change; the sync's own bound
+# tested at DECODE_TRIES + OWN_PLACEMENTS placements, so its bound does not change; the sync's own bound
 # (removal_suspected) counts every candidate (sync_hypotheses).
 KEYED_WINDOW = 192      # side of the reduced window the keyed search reads
 # Copies enlarged by more than KEYED_ENLARGED are read reduced by 4 (their synchronisation sits at
@@ -843,9 +850,29 @@ def _tile_fold(x: np.ndarray, transform: np.ndarray, tile: int) -> np.ndarray:
     return f
 
 
+def with_views(prep: _Prepared, views: list[np.ndarray], transforms: list[np.ndarray]) -> _Prepared:
+    """``prep`` with more geometries, each the unwarped fold of another resampling of the same copy.
+
+    ``views[i]`` is the copy resampled so that ``transforms[i]`` maps it to
+    ``prep``'s own view (reported as that geometry's transform); each is
+    whitened and folded as :func:`prepare` folds the unwarped view. Its
+    grid origin is the view's (pixel (0, 0)). Its macro fold is stored under
+    its transform (a new dict: ``prep``'s own folds stay those of its window).
+    """
+    spectra, folds = list(prep.spectra), dict(prep.macro_folds)
+    n = prep.spectra[0].shape[-1]
+    for v, t in zip(views, transforms, strict=True):
+        mf = fold(whiten(v), n * prep.macro)
+        spectra.append(_fold_spectra(mf.reshape(prep.macro, n, prep.macro, n).sum(axis=(0, 2)), n))
+        folds[np.asarray(t, dtype=float).tobytes()] = np.asarray(mf, dtype=np.float32)
+    return replace(prep, spectra=spectra, macro_folds=folds,
+                   transforms=list(prep.transforms) + list(transforms),
+                   lattices=list(prep.lattices) + [None] * len(views))
+
+
 def format3_hypotheses() -> int:
     """Hypotheses of format 3's claim test (see :func:`claimkit.mark.stats.format3_hypotheses`)."""
-    return stats.format3_hypotheses(placements=DECODE_TRIES + 1, families=format3.FAMILIES,
+    return stats.format3_hypotheses(placements=DECODE_TRIES + OWN_PLACEMENTS, families=format3.FAMILIES,
                                     macro=format3.MACRO)
 
 
@@ -887,9 +914,11 @@ def _read_format3(prep, keys: format3.MarkKeys, ramps, payload_check, known_bits
     # The file's own grid (unwarped, as is, origin where the picture's is):
     # tried too, so that stripping the synchronisation component (an
     # adversary can estimate it) does not take the claim with it.
-    own = (0, 0, 0, np.asarray(origin, dtype=int) % n)
-    if not any(q[:3] == own[:3] and np.array_equal(q[3], own[3]) for q in placements):
-        placements.append(own)
+    assert len(prep.own) <= OWN_PLACEMENTS
+    for g_own in prep.own:
+        own = (g_own, 0, 0, np.asarray(origin, dtype=int) % n)
+        if not any(q[:3] == own[:3] and np.array_equal(q[3], own[3]) for q in placements):
+            placements.append(own)
     for g, d, ph, shift in placements:
         spec = format3.aligned_tiles(prep.macro_fold(g), d, shift, ramps[ph], n)
         spec *= spectral_weight(spec.sum(axis=0)[None])[0].astype(np.float32)
@@ -1017,7 +1046,7 @@ def examine_luma(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
             "hypotheses": hypotheses(n), "geometries": GEOMETRIES, "dihedral": DIHEDRAL,
             "phases": len(PHASES), "shifts": n * n, "payloads": payloads_counted(payload_space)},
         "format_3": {
-            "hypotheses": format3_hypotheses(), "placements": DECODE_TRIES + 1,
+            "hypotheses": format3_hypotheses(), "placements": DECODE_TRIES + OWN_PLACEMENTS,
             "sync_hypotheses": sync_hypotheses(n), "sync_geometries": SYNC_GEOMETRIES,
             "families": format3.FAMILIES, "macro_offsets": format3.MACRO ** 2,
             "payloads": payload_space},

@@ -7,7 +7,8 @@ or aliased the band it lives in, and the lattice search stops there. A
 
 So the mark has a second, *coarse* component whose period is tied to the
 picture's size rather than to its pixels. The picture is reduced (in
-thought) to a *level* whose short side is ``COARSE_SIDE`` pixels; the same
+thought) to a *level* whose short side is ``COARSE_SIDE`` pixels (or whose
+long side is ``COARSE_LONG``, for a picture wider than 13:8); the same
 kind of mark is computed on that level (its own SSIM-derived mask, a full
 period of ``TILE`` level pixels); the level's change is interpolated back to
 the picture's size with a smooth kernel and added to the fine change. Any
@@ -17,8 +18,10 @@ again, the copy shows the coarse period at ``TILE`` pixels, at the original
 grid origin, whatever the copy's size was. The detector therefore examines
 a copy at three scales (``SCALES``): at its own resolution (the fine
 component, the lattice search covering scales 0.45 to 2.8), and reduced (or
-enlarged) so that its short side, or its long side, is ``COARSE_SIDE`` (the
-coarse component; the long side serves a copy cropped across the original's
+enlarged) to its level, or so that its long side is ``COARSE_SIDE`` (the
+coarse component; the level view is also read at two neighbouring sizes,
+:func:`stretched_shapes`, since a copy's rounded size gives the level's only
+to a pixel or two; the long side serves a copy cropped across the original's
 long side, such as a 4:5 portrait of a landscape; the same lattice search
 covers other crops and turns). The bound counts all three: ``hypotheses`` is
 three times a single examination's, and ``scales_searched`` says so.
@@ -31,7 +34,8 @@ its strength; the coarse component gets ``share`` of the mean squared change
 change that varies within a window (:func:`window_fraction`) and SSIM's
 luminance term, which a slowly varying change moves in dark areas. At the level
 itself, where a downscaled copy shows it and the fine component is gone, it may
-use the SSIM rule's full allowance, except on smooth areas
+use the SSIM rule's allowance for a local SSIM of ``LEVEL_SSIM`` on textured
+areas, and the rule of the fine mark's target on smooth ones, less still
 (:func:`flat_weight`): the coarse change of a large master varies over ten
 pixels or more, where the eye is more sensitive than to the one-pixel spots of
 the fine mark, and near edges the weakest variance around is used, so that no
@@ -72,7 +76,13 @@ if TYPE_CHECKING:   # scipy.sparse loads when a resampling matrix is first built
     from scipy import sparse
 
 COARSE_SIDE = 384        # short side of the coarse level, level pixels (three periods of TILE)
-COARSE_SHARE = 0.5       # fraction of the mean squared change given to the coarse component
+COARSE_LONG = 624        # the level's long side at most (a picture wider than 13:8 is fitted to it)
+# Fraction of the mean squared change (and of each window's SSIM allowance at full size) given
+# to the coarse component. 0.7 (from 0.5), with LEVEL_SSIM 0.97 (from 0.988), the level of wide
+# pictures (COARSE_LONG) and the stretched views, took the 25 % JPEG copies of the tuning pictures
+# from 33 to 45 of 48 claimed (bench_scales --tuning); 0.8 lost two full-size attacks on the
+# 1-2 MP pictures of the stress battery (a 0.9 aspect change, shrink + turn + JPEG 70), 0.7 none.
+COARSE_SHARE = 0.7
 # Weight of the SSIM constant in the coarse mask, i.e. how strong the coarse
 # change may be on smooth areas, by the level's factor: the coarse spots span
 # 1 / factor pixels of the picture, and the larger they are, the more visible
@@ -82,8 +92,12 @@ COARSE_FLAT = ((0.1, 0.15), (1.0, 1.0))
 SSIM_C1 = (0.01 * 255.0) ** 2   # SSIM's luminance constant for 8-bit data (Wang et al. 2004)
 COARSE_LABEL = b"claimkit/mark/coarse-level/v1"   # derivation label of the coarse seed
 COARSE_GUARD = 11         # level pixels over which the coarse mask takes the weakest variance
-MIN_COARSE_FACTOR = 1.6  # a picture gets a coarse component when its short side is this times COARSE_SIDE
-COARSE_SYNC_SHARE = 0.25  # share of the format-3 coarse period in its synchronisation (see _period)
+MIN_COARSE_FACTOR = 1.6  # a picture gets a coarse component when it is this times its level or larger
+COARSE_SYNC_SHARE = 0.15  # share of the format-3 coarse period in its synchronisation (see _period)
+# Local SSIM the coarse change may cost the level (a downscaled copy) on textured areas; smooth
+# areas keep the fine mark's target (embed.DEFAULT_LOCAL_SSIM) times flat_weight, so a plain sky
+# gets no more than before (raising that too showed a soft mottling on the tests' sky).
+LEVEL_SSIM = 0.97
 
 
 # ---------------------------------------------------------------- levels
@@ -104,21 +118,27 @@ class Level:
     factor: float
 
 
-def coarse_level(shape: tuple[int, int], side: int | None = None) -> Level:
-    """The coarse level of a picture of ``shape``: short side ``side``, the aspect kept.
+def coarse_level(shape: tuple[int, int]) -> Level:
+    """The coarse level of a picture of ``shape``: fitted in ``COARSE_SIDE x COARSE_LONG``, the aspect kept.
 
-    The same rule serves embedding (on the original) and examination (on a
-    copy): a copy that is the whole original, scaled, reduces to the same
-    level, so its coarse period falls on the level's grid again.
+    The short side is ``COARSE_SIDE`` unless the picture is wider than
+    ``COARSE_LONG / COARSE_SIDE`` (13:8), when the long side is ``COARSE_LONG``:
+    a wide picture's level is then no longer than that, so that its small
+    copies (25 % of a 700 x 1700 picture is 175 px high) still hold most of the
+    level's band. The ratio 13:8 lies between the usual aspects (3:2 and 16:10
+    below it, 5:3 and 16:9 above), so that the rounding of a copy's size does
+    not move it to the other rule. The same rule serves embedding (on the original) and
+    examination (on a copy): a copy that is the whole original, scaled, reduces
+    to the same level, so its coarse period falls on the level's grid again.
     """
     h, w = int(shape[0]), int(shape[1])
-    f = (side or COARSE_SIDE) / min(h, w)
+    f = min(COARSE_SIDE / min(h, w), COARSE_LONG / max(h, w))
     return Level((max(1, round(h * f)), max(1, round(w * f))), f)
 
 
 def has_coarse(shape: tuple[int, int]) -> bool:
-    """Whether a picture of ``shape`` gets a coarse component when marked."""
-    return min(shape) >= MIN_COARSE_FACTOR * COARSE_SIDE
+    """Whether a picture of ``shape`` gets a coarse component when marked (``MIN_COARSE_FACTOR``)."""
+    return coarse_level(shape).factor * MIN_COARSE_FACTOR <= 1.0
 
 
 def coarse_seed(seed: bytes) -> bytes:
@@ -359,9 +379,10 @@ def coarse_mask(small: np.ndarray, native2: np.ndarray, factor: float, *, share:
     The least of three allowances:
 
     * at the level (what a downscaled copy shows, where the fine component
-      is gone): the SSIM rule of :func:`claimkit.mark.embed.perceptual_mask`
-      with the constant ``C2`` weighted by :func:`flat_weight` (smooth areas
-      fainter: there the coarse change would show as a soft mottling);
+      is gone): the SSIM rule of :func:`claimkit.mark.embed.perceptual_mask`,
+      ``a^2 <= (1/LEVEL_SSIM - 1) 2 s^2 + (1/q - 1) w C2`` with ``q`` the
+      fine mark's target and ``w`` :func:`flat_weight` (smooth areas fainter:
+      there the coarse change would show as a soft mottling);
     * at the picture's size, structure, ``share`` of the fine allowance:
       ``native2`` (the fine allowance squared, averaged per level pixel) over
       :func:`window_fraction`;
@@ -385,7 +406,7 @@ def coarse_mask(small: np.ndarray, native2: np.ndarray, factor: float, *, share:
     # spread of one spot after interpolation.
     var = ndimage.minimum_filter(var, size=COARSE_GUARD)
     k = 1.0 / local_ssim - 1.0
-    level2 = k * (2.0 * var + flat_weight(factor) * embed.SSIM_C2)
+    level2 = (1.0 / LEVEL_SSIM - 1.0) * 2.0 * var + k * flat_weight(factor) * embed.SSIM_C2
     structure2 = native2 / max(window_fraction(factor), 1e-3)
     luminance2 = k * (2.0 * m * m + SSIM_C1)
     amp2 = np.minimum(level2, share * np.minimum(structure2, luminance2))
@@ -444,9 +465,16 @@ SCALES = ("native", "short side", "long side")
 
 
 def view_shape(shape: tuple[int, int], view: str) -> tuple[int, int]:
-    """Size of a copy of ``shape`` reduced to one coarse view (``short side`` or ``long side``)."""
+    """Size of a copy of ``shape`` reduced to one coarse view.
+
+    ``short side``: the copy fitted to its coarse level (:func:`coarse_level`:
+    short side ``COARSE_SIDE``, or long side ``COARSE_LONG`` for a copy wider
+    than 3:2); ``long side``: the long side ``COARSE_SIDE``.
+    """
+    if view == "short side":
+        return coarse_level(shape).shape
     h, w = int(shape[0]), int(shape[1])
-    f = COARSE_SIDE / (min(h, w) if view == "short side" else max(h, w))
+    f = COARSE_SIDE / max(h, w)
     return max(1, round(h * f)), max(1, round(w * f))
 
 
@@ -493,20 +521,63 @@ class PreparedScales:
         self.view_shapes.update({v: view_shape(self.shape, v) for v in SCALES[1:]})
         self._done: dict = {}
 
+    def _reduced(self, shape: tuple[int, int]) -> np.ndarray:
+        """The whole copy resampled to ``shape`` (from its overview, made once)."""
+        if self.overview is None:
+            self.step = overview_step(self.shape)
+            self.overview = decimate(self.luma, self.step)
+        return resample(self.overview, shape, span=(self.shape[0] / self.step, self.shape[1] / self.step))
+
     def get(self, name: str):
         """The prepared view ``name`` (computed once), or None when too small to examine."""
         if name not in self._done:
-            if name == "native":
-                x = self.luma
+            x = self.luma if name == "native" else self._reduced(self.view_shapes[name])
+            if min(x.shape) < detect.MIN_SIDE:
+                self._done[name] = None
             else:
-                if self.overview is None:
-                    self.step = overview_step(self.shape)
-                    self.overview = decimate(self.luma, self.step)
-                x = resample(self.overview, self.view_shapes[name],
-                             span=(self.shape[0] / self.step, self.shape[1] / self.step))
-            self._done[name] = None if min(x.shape) < detect.MIN_SIDE else \
-                detect.prepare(x, workers=self.workers, lattices=name == "native")
+                prep = detect.prepare(x, workers=self.workers, lattices=name == "native")
+                if name == "short side":
+                    # The view at its two other sizes (stretched_shapes): each one's fold is
+                    # at the level's grid if the level has its size, and the level maps onto
+                    # this view by the ratio of the sizes. Format 3 tries its claim on each
+                    # at the file's own grid.
+                    shapes = stretched_shapes(self.shape)
+                    maps = [np.diag([x.shape[0] / s[0], x.shape[1] / s[1]]) for s in shapes]
+                    prep = detect.with_views(prep, [self._reduced(s) for s in shapes], maps)
+                    prep = replace(prep, own=tuple(range(len(prep.spectra))))
+                self._done[name] = prep
         return self._done[name]
+
+
+def stretched_shapes(shape: tuple[int, int]) -> list[tuple[int, int]]:
+    """The two other sizes of the ``short side`` view read beside it (for a copy of ``shape``).
+
+    A whole copy reduces to its level exactly only if the view has the level's
+    size, and the view's size is the copy's, rounded: one side of the view is
+    the level's (``COARSE_SIDE`` or ``COARSE_LONG``), the other is known only to
+    within the rounding of the copy's aspect, a relative error up to ``e =
+    0.5 / h + 0.5 / w`` (0.4 %, two level pixels across a 25 % copy of a
+    1.5-megapixel photo: the coarse spots, one level pixel wide, are then
+    misplaced by up to two at the far edge; reading the view at the level's
+    size raised the bound of such copies from 1e-27 to 1e-36). That side is
+    therefore also read ``max(1, round(2 e L / 3))`` pixels shorter and longer.
+    Each is a geometry of the view, within the count of geometries
+    (``detect.GEOMETRIES``), and format 3's claim is tried on each at the
+    file's own grid (``detect.OWN_PLACEMENTS``).
+    """
+    h, w = int(shape[0]), int(shape[1])
+    vh, vw = coarse_level(shape).shape
+    # The side fitted to COARSE_SIDE (the short one) or to COARSE_LONG is exact.
+    short = 0 if h <= w else 1
+    axis = 1 - short if min(vh, vw) == COARSE_SIDE else short
+    side = (vh, vw)[axis]
+    k = max(1, round(2.0 * (0.5 / h + 0.5 / w) * side / 3.0))
+    out = []
+    for d in (-k, k):
+        s = [vh, vw]
+        s[axis] = side + d
+        out.append((s[0], s[1]))
+    return out
 
 
 def prepare(luma: np.ndarray, *, overview: np.ndarray | None = None, step: int = 1,
