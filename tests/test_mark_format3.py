@@ -574,3 +574,22 @@ def test_an_examination_reruns_to_the_same_numbers_whatever_payloads_the_examine
         if not owner.detected:
             plain = scales.examine(luma, ALL, payload_check=check)
             assert owner.to_json() == plain.to_json(), name
+
+
+def test_a_copy_whose_rounded_size_misses_the_level_is_read_at_a_neighbouring_size():
+    """A 25 % copy (Pillow's Lanczos) of a 1280 x 854 photo is 320 x 214: its level view is 574 px
+    long, the original's level 576 (scales.coarse_level). The view is also read at 573 and 575 px
+    (scales.stretched_shapes); the claim is made at 575, one pixel from the level, so the
+    geometry reports that stretch (574 / 575) rather than the view as it is."""
+    serial = 78
+    rgb = landscape(854, 1280, seed=5)
+    mk = add_luma_delta(rgb, scales.multiscale_delta(to_luma(rgb), embed_keys(serial), payload(serial)))
+    _, check = _listed(serial)
+    copy = lanczos(mk, (320, 214))
+    assert scales.view_shape(copy.shape[:2], "short side") == (384, 574)
+    assert scales.coarse_level(rgb.shape[:2]).shape == (384, 576)
+    f = scales.examine(to_luma(copy), ALL, payload_check=check)
+    assert f.detected and f.payload_valid and np.array_equal(f.payload_bits, payload(serial))
+    assert f.geometry["level"]["view"] == "short side"
+    assert f.geometry["aspect"] == pytest.approx(574 / 575, abs=2e-4)
+    assert f.counting["format_3"]["placements"] == detect.DECODE_TRIES + detect.OWN_PLACEMENTS
