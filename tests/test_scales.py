@@ -293,3 +293,45 @@ def test_the_owners_check_lists_every_allocated_serial(monkeypatch):
     one = workflow.expected_payload_check(listed.bits[4])
     assert one(listed.bits[4]) and not one(listed.bits[3])
     assert len(one.candidates) == 1 and np.array_equal(one.candidates.bits[0], listed.bits[4])
+
+
+# ------------------------------------------------------------------ re-runs by a disclosure holder
+
+
+def test_a_copy_without_a_claim_re_runs_to_the_same_sync_findings_with_fewer_keys():
+    """Verify re-runs an unmarked exhibit with a disclosure (the sync seed and one family):
+    the synchronisation score it reports must not depend on the keys it does not hold.
+
+    Unmarked: scikit-image's ``chelsea``. Under these keys the owner's lowest bound is at
+    a coarse view, the disclosure's at none (every view's bound is 1), which once made
+    the two report different views' synchronisation scores.
+    """
+    from claimkit.mark import format3
+
+    luma = to_luma(data.chelsea())
+    rng = np.random.default_rng(0)
+    legacy, sync = rng.bytes(32), rng.bytes(32)
+    families = {i: rng.bytes(32) for i in range(format3.FAMILIES)}
+    owner = format3.MarkKeys(legacy=legacy, sync=sync, families=families)
+    disclosed = format3.MarkKeys(legacy=None, sync=sync, families={0: families[0]})
+    prep = scales.prepare(luma)
+    # What made this picture and these keys a case: the owner's views rank differently
+    # from the disclosure's.
+    views = [detect.examine_luma(luma, owner if name == "native" else scales.coarse_keys(owner),
+                                 threshold=detect.DEFAULT_THRESHOLD / 3, prepared=prep.get(name))
+             for name in scales.SCALES]
+    bounds = [v.log10_false_alarm for v in views]
+    assert int(np.argmin(bounds)) != 0 and not any(v.detected for v in views)
+
+    f_owner = scales.examine(luma, owner, prepared=prep)
+    f_disclosed = scales.examine(luma, disclosed, prepared=prep)
+    assert not f_owner.detected and not f_disclosed.detected
+    for name in ("z_sync", "removal_suspected", "counting", "scales_searched"):
+        assert getattr(f_owner, name) == getattr(f_disclosed, name), name
+    # The decision and the bound are the lowest view's, as before.
+    assert f_owner.log10_false_alarm == min(0.0, min(bounds) + math.log10(3))
+    # The same numbers again in this process, after other examinations, without the
+    # prepared views and with two transform threads.
+    again = scales.examine(luma, owner, workers=2)
+    assert again.to_json() == f_owner.to_json()
+    assert np.array_equal(again.surface, f_owner.surface)

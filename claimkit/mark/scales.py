@@ -560,6 +560,7 @@ def examine(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
     shape = prepared.shape
     n = len(SCALES)
     best = None
+    seen = []
     for name in SCALES:
         prep = prepared.get(name)
         if prep is None:     # a view too small to examine (still counted in n)
@@ -571,6 +572,7 @@ def examine(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
         # Each scale is tested at threshold / n: the union bound over the n scales.
         f = detect.examine_luma(luma, key, threshold=threshold / n, workers=workers,
                                 prepared=prep, **extra, **kwargs)
+        seen.append((name, f))
         if best is None or f.log10_false_alarm < best[1].log10_false_alarm:
             best = (name, f)
         if f.detected:
@@ -579,10 +581,20 @@ def examine(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
             break
     assert best is not None, "the native view is always examined"
     name, f = best
+    lp = f.log10_false_alarm
+    if not f.detected:
+        # Nothing claimed: which view's bound is lowest depends on keys a disclosure
+        # holder may not hold (format 3's other families, the seed of formats 1-2). The
+        # view reported is chosen by the sync seed alone, so that every holder of it
+        # re-runs the same synchronisation findings: the one whose synchronisation
+        # suspects a removal (the highest score of those), else the native view.
+        # The bound is still the lowest view's.
+        flagged = [v for v in seen if v[1].removal_suspected]
+        name, f = max(flagged, key=lambda v: v[1].z_sync or 0.0) if flagged else seen[0]
     geom = dict(f.geometry)
     if geom and name != "native":
         geom = _view_geometry(geom, shape, prepared.view_shapes[name], name)
-    return replace(f, log10_false_alarm=min(0.0, f.log10_false_alarm + math.log10(n)),
+    return replace(f, log10_false_alarm=min(0.0, lp + math.log10(n)),
                    hypotheses=f.hypotheses * n, scales_searched=n, geometry=geom,
                    counting={**f.counting, "scales": n} if f.counting else {})
 
