@@ -554,6 +554,9 @@ def examine(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
         ``hypotheses`` counts the placements of every scale searched,
         ``scales_searched`` says how many scales; a finding made at a coarse
         view has ``geometry["level"]`` (see :func:`relative_to_original`).
+        Without a claim, the bound is the lowest view's and the rest is the
+        native view's (or a view whose synchronisation suspects a removal):
+        what every holder of the sync seed re-runs alike.
     """
     if prepared is None:
         prepared = PreparedScales(luma, overview=overview, step=step, shape=shape, workers=workers)
