@@ -625,16 +625,16 @@ def examine(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
         ``hypotheses`` counts the placements of every scale searched,
         ``scales_searched`` says how many scales; a finding made at a coarse
         view has ``geometry["level"]`` (see :func:`relative_to_original`).
-        Without a claim, ``z_sync`` is the best synchronisation score of
-        every view and ``removal_suspected`` holds if it does at any view.
+        Without a claim, the bound is the lowest view's and the rest is the
+        native view's (or a view whose synchronisation suspects a removal):
+        what every holder of the sync seed re-runs alike.
     """
     if prepared is None:
         prepared = PreparedScales(luma, overview=overview, step=step, shape=shape, workers=workers)
     shape = prepared.shape
     n = len(SCALES)
     best = None
-    syncs: list[float] = []     # every view's synchronisation score (format 3)
-    removal = False
+    seen = []
     for name in SCALES:
         prep = prepared.get(name)
         if prep is None:     # a view too small to examine (still counted in n)
@@ -646,9 +646,7 @@ def examine(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
         # Each scale is tested at threshold / n: the union bound over the n scales.
         f = detect.examine_luma(luma, key, threshold=threshold / n, workers=workers,
                                 prepared=prep, **extra, **kwargs)
-        if f.z_sync is not None:
-            syncs.append(f.z_sync)
-        removal = removal or f.removal_suspected
+        seen.append((name, f))
         if best is None or f.log10_false_alarm < best[1].log10_false_alarm:
             best = (name, f)
         if f.detected:
@@ -657,16 +655,20 @@ def examine(luma: np.ndarray, seed: bytes | format3.MarkKeys, *,
             break
     assert best is not None, "the native view is always examined"
     name, f = best
+    lp = f.log10_false_alarm
     if not f.detected:
-        # Which view reports the scores depends on the format-3 family seeds held (the best
-        # family moves each view's bound), the synchronisation's findings do not: the best
-        # over every view (all are examined when none claims), so that every holder of the
-        # sync seed re-runs them to the same numbers (verify compares them).
-        f = replace(f, z_sync=max(syncs) if syncs else None, removal_suspected=removal)
+        # Nothing claimed: which view's bound is lowest depends on keys a disclosure
+        # holder may not hold (format 3's other families, the seed of formats 1-2). The
+        # view reported is chosen by the sync seed alone, so that every holder of it
+        # re-runs the same synchronisation findings: the one whose synchronisation
+        # suspects a removal (the highest score of those), else the native view.
+        # The bound is still the lowest view's.
+        flagged = [v for v in seen if v[1].removal_suspected]
+        name, f = max(flagged, key=lambda v: v[1].z_sync or 0.0) if flagged else seen[0]
     geom = dict(f.geometry)
     if geom and name != "native":
         geom = _view_geometry(geom, shape, prepared.view_shapes[name], name)
-    return replace(f, log10_false_alarm=min(0.0, f.log10_false_alarm + math.log10(n)),
+    return replace(f, log10_false_alarm=min(0.0, lp + math.log10(n)),
                    hypotheses=f.hypotheses * n, scales_searched=n, geometry=geom,
                    counting={**f.counting, "scales": n} if f.counting else {})
 
