@@ -52,7 +52,11 @@ from claimkit.mark.fingerprint import fingerprint_distance, perceptual_fingerpri
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "tests"))
-from engine_helpers import generated  # noqa: E402 - the tests' helpers, on the path just above
+from engine_helpers import (  # noqa: E402 - the tests' helpers, on the path just above
+    generated,
+    mark,
+    transplant_mark,
+)
 
 
 def _rgb(a: np.ndarray) -> np.ndarray:
@@ -358,6 +362,115 @@ def broad_threshold(genuine: list[float]) -> float:
     return round(0.5 * min(genuine), 3)
 
 
+def _coarse_one(args: tuple[str, bool]) -> dict:
+    """The coarse reading (``register.register_coarse``) on the null pairs and genuine rows of
+    picture ``k``: the same pairs as :func:`_null_one` and the same rows as :func:`_genuine_one`."""
+    k, quick = args
+    pics = calibration_pictures(quick)
+    v = pics[k]
+    refs = [to_luma(rv) for r, rv in pics.items() if r != k]
+    unrelated = [reg.register_coarse(rl, to_luma(img))["inliers"]
+                 for img in (v, _jpeg_turn(v), _small(v)) for rl in refs]
+    lu = to_luma(v)
+    w = lu.shape[1]
+    left, right = lu[:, : int(0.45 * w)], lu[:, int(0.55 * w):]
+    same_owner = []
+    if min(left.shape) >= 32:
+        n = min(left.shape[1], right.shape[1])
+        corr = float(np.corrcoef(left[:, :n].ravel(), right[:, ::-1][:, :n].ravel())[0, 1])
+        if corr <= MIRROR_IMAGE_CORRELATION:
+            same_owner.append(reg.register_coarse(left, right)["inliers"])
+    # The mark itself must not make the coarse reading match: picture k marked, its whole
+    # fine-detail residual (the strongest copy attack, numpy only) added to every other picture.
+    marked = mark(v)
+    transplanted = [reg.register_coarse(to_luma(marked),
+                                        to_luma(transplant_mark(marked, rv, tile=None)))["inliers"]
+                    for r, rv in pics.items() if r != k]
+    return {"picture": k, "unrelated": unrelated, "same_owner": same_owner,
+            "transplanted": transplanted}
+
+
+def _coarse_genuine_one(args: tuple[str, bool]) -> list[dict]:
+    k, quick = args
+    rgb = calibration_pictures(quick)[k]
+    half = to_luma(np.asarray(Image.fromarray(rgb).resize(
+        (max(16, rgb.shape[1] // 2), max(16, rgb.shape[0] // 2)), Image.Resampling.LANCZOS)))
+    refs = {"full": to_luma(rgb), "half": half}
+    rows = []
+    for att in genuine_attacks(quick):
+        lu = to_luma(att.apply(rgb))
+        if min(lu.shape) < 16:
+            continue
+        for rname, rl in refs.items():
+            rows.append({"picture": k, "attack": att.name, "reference": rname,
+                         "inliers": reg.register_coarse(rl, lu)["inliers"]})
+    return rows
+
+
+def coarse_section(doc: dict, quick: bool) -> dict:
+    """The coarse reading's null and genuine samples, its threshold, and the counts of the event
+    the content line decides by: either reading at or above its threshold."""
+    t0 = time.perf_counter()
+    pics = calibration_pictures(quick)
+    photos, made = (4, 1) if quick else (GENUINE_PHOTOS, GENUINE_GENERATED)
+    names = [k for k in pics if not k.startswith("generated")][:photos] + \
+        [k for k in pics if k.startswith("generated")][:made]
+    with ProcessPoolExecutor(2) as pool:
+        gen_futs = [pool.submit(_coarse_genuine_one, (k, quick)) for k in names]
+        parts = list(pool.map(_coarse_one, [(k, quick) for k in pics]))
+        rows = [r for f in gen_futs for r in f.result()]
+    unrelated = [v for p in parts for v in p["unrelated"]]
+    same_owner = [v for p in parts for v in p["same_owner"]]
+    transplanted = sorted(v for p in parts for v in p["transplanted"])
+    null = np.array(sorted(unrelated + same_owner))
+    threshold = max(_threshold(null), _threshold(np.array(transplanted)))
+    fine_t = int(doc["threshold"])
+    # Genuine rows below the fine threshold are listed with their names; every other row
+    # reached it. So the count of rows that either reading decides is exact.
+    below = {(r["picture"], r["attack"], r["reference"]) for r in doc["genuine_below_threshold"]}
+    coarse_of = {(r["picture"], r["attack"], r["reference"]): r["inliers"] for r in rows}
+    rescued = [{"picture": key[0], "attack": key[1], "reference": key[2],
+                "coarse_inliers": coarse_of[key]}
+               for key in sorted(below) if coarse_of.get(key, 0) >= threshold]
+    fine_null_k = sum(1 for v in doc["null"]["samples"] if v >= fine_t)
+    coarse_null_k = int((null >= threshold).sum())
+    gen_n = int(doc["genuine"]["count"])
+    return {
+        "statistic": "RANSAC inliers of claimkit.content.register.register_coarse",
+        "settings": {"side_px": reg.COARSE_SIDE, "keypoints": reg.KEYPOINTS,
+                     "smooth_px": reg.COARSE_SMOOTH,
+                     "residual_px": reg.RESIDUAL_PX, "ransac_trials": reg.RANSAC_TRIALS,
+                     "ransac_seed": reg.RANSAC_SEED, "max_ratio": reg.MAX_RATIO},
+        "threshold": threshold,
+        "threshold_rule": "the fine reading's rule (1.5 times the largest null count, rounded "
+                          "up, and at least 8) on the coarse reading's own null, and on the "
+                          "transplanted marks",
+        "transplanted": {"count": len(transplanted), "samples": transplanted,
+                         "what": "each calibration picture marked (tests/engine_helpers.mark), "
+                                 "its whole fine-detail residual added to every other picture "
+                                 "(transplant_mark, tile=None), against the marked picture"},
+        "null": {"count": int(null.size), "samples": [int(v) for v in null],
+                 "unrelated_pairs": len(unrelated), "same_owner_pairs": len(same_owner),
+                 "what": "the same pairs as the fine reading's null"},
+        "genuine": {"count": len(rows), "samples": sorted(int(r["inliers"]) for r in rows),
+                    "what": "the same rows as the fine reading's genuine battery"},
+        "either": {
+            "what": "the event the content line decides by: the fine reading at or above its "
+                    "threshold, or the coarse reading at or above its own",
+            "null_count": int(null.size),
+            "null_reaching_at_most": min(int(null.size), fine_null_k + coarse_null_k),
+            "null_bound": "the sum of the pairs either reading took over its threshold (the "
+                          "fine reading's samples are stored sorted, not by pair)",
+            "genuine_count": gen_n,
+            "genuine_reaching": gen_n - len(below) + len(rescued),
+            "genuine_rescued_by_coarse": rescued},
+        "measured": {"by": "benchmarks/bench_content.py --coarse-only"
+                     + (" --quick" if quick else ""),
+                     "software": f"claimkit {__version__}", "skimage": skimage.__version__,
+                     "seconds": round(time.perf_counter() - t0)},
+    }
+
+
 def main() -> None:
     ap = argparse.ArgumentParser()
     ap.add_argument("--out", default=str(ROOT / "claimkit" / "content" / "calibration.json"))
@@ -366,6 +479,8 @@ def main() -> None:
                     help="re-measure only the fingerprint distances, into the existing file")
     ap.add_argument("--broad-only", action="store_true",
                     help="measure only the broad-structure statistic, into the existing file")
+    ap.add_argument("--coarse-only", action="store_true",
+                    help="measure only the coarse reading, into the existing file")
     ap.add_argument("--reclassify", action="store_true",
                     help="apply the mirror-image rule to the existing file (see reclassify)")
     args = ap.parse_args()
@@ -383,6 +498,15 @@ def main() -> None:
               "genuine", b["genuine"]["count"], "lowest", b["genuine"]["lowest"][:3],
               "null", b["null"]["count"], "below", b["null"]["below_refute"],
               "null max", b["null"]["samples"][-1] if b["null"]["samples"] else None)
+        return
+    if args.coarse_only:
+        doc = json.loads(Path(args.out).read_text())
+        doc["coarse"] = coarse_section(doc, args.quick)
+        Path(args.out).write_text(json.dumps(doc, indent=1, sort_keys=True) + "\n")
+        c = doc["coarse"]
+        print(json.dumps({k: c[k] for k in ("threshold", "either", "measured")}, indent=1),
+              "null max", c["null"]["samples"][-1], "genuine below",
+              sum(1 for v in c["genuine"]["samples"] if v < c["threshold"]))
         return
     if args.fingerprint_only:
         doc = json.loads(Path(args.out).read_text())

@@ -99,6 +99,56 @@ def test_opinion_combines_only_consistent_lines():
     assert odd["log10_lr"]["combined"] is None and odd["reported_log10_lr"] == 2.6
 
 
+def test_decision_counts_ratio_against_scipy():
+    # A rule on two readings: its counts, not one statistic's samples. Reached: Hp 265 of 272
+    # (Clopper-Pearson lower, scipy.stats.beta.ppf), Hd at most 1 of 1278 (upper).
+    want = math.log10(stats.beta.ppf(0.05, 265, 8)) - math.log10(stats.beta.ppf(0.95, 2, 1277))
+    assert lr.log10_lr_counts(True, 265, 272, 1, 1278) == pytest.approx(want, rel=1e-9)
+    # not reached: Hp 7 of 272 (upper), Hd 1277 of 1278 (lower)
+    want = math.log10(stats.beta.ppf(0.95, 8, 265)) - math.log10(stats.beta.ppf(0.05, 1277, 2))
+    assert lr.log10_lr_counts(False, 265, 272, 1, 1278) == pytest.approx(want, rel=1e-9)
+
+
+@pytest.mark.parametrize(("fmt", "found"), [("claimkit-mark/3", 233), ("claimkit-mark/2", 235),
+                                            ("claimkit-mark/1", 233), (None, 233)])
+def test_mark_line_uses_the_measured_rate_of_the_findings_format(fmt, found):
+    # The robustness battery's rate under Hp for the format the finding rests on (format 1 and
+    # an unknown format: the lowest rate measured); threshold 0.01 keeps it below the cap.
+    ev = opinion.evaluate(exhibit="Exhibit 1", work_id="W-1", owner=None, detected=True,
+                          threshold=0.01, content=_content(True, 2.6), agreement={"agree": True},
+                          mark_format=fmt)
+    assert ev["lines"]["mark"]["under_hp"]["detected"] == found
+    assert ev["lines"]["mark"]["under_hp"]["trials"] == 264
+    want = math.log10(stats.beta.ppf(0.05, found, 264 - found + 1)) + 2
+    assert ev["log10_lr"]["mark"] == pytest.approx(want, abs=1e-3)
+    # a case's own battery of the registered file comes first, whatever the format
+    rows = [{"attack": "none", "detected": True}] + [{"attack": f"a{i}", "detected": i < 9,
+                                                      "same_payload": True} for i in range(10)]
+    ev = opinion.evaluate(exhibit="Exhibit 1", work_id="W-1", owner=None, detected=True,
+                          threshold=0.01, content=_content(True, 2.6), agreement={"agree": True},
+                          robustness={"rows": rows}, mark_format=fmt)
+    assert (ev["lines"]["mark"]["under_hp"]["detected"], ev["lines"]["mark"]["under_hp"]["trials"]) \
+        == (9, 10)
+
+
+def test_no_opinion_where_the_content_line_cannot_check_the_mark():
+    # The mark found, the content line undecided (or absent): the mark alone cannot exclude a
+    # transplanted mark, so no ratio is reported as the opinion and no derivation is claimed;
+    # the mark line's own ratio stays listed.
+    for content in ({**_content(None, 0.0), "cannot_decide": "the work has too little texture"},
+                    {"basis": "none", "corresponds": None, "log10_lr": 0.0,
+                     "limited_to_fingerprint": False}):
+        ev = opinion.evaluate(exhibit="Exhibit 1", work_id="W-1", owner=None, detected=True,
+                              threshold=1e-9, content=content, agreement=None)
+        assert ev["reported_log10_lr"] is None and not ev["derivation_claimed"]
+        assert ev["verbal"].startswith("No opinion on the propositions is given")
+        assert "support" not in ev["verbal"] and ev["log10_lr"]["mark"] == lr.CAP_LOG10
+    # not found, undecided: the mark line's "not found" is reported (it favours Hd or nothing)
+    ev = opinion.evaluate(exhibit="Exhibit 1", work_id="W-1", owner=None, detected=False,
+                          threshold=1e-9, content=_content(None, 0.0), agreement=None)
+    assert ev["reported_log10_lr"] is not None and ev["reported_log10_lr"] <= 0
+
+
 def _works(stamped=True, day="2026-11-20"):
     return [{"work_id": "W-1", "registered": {"time": f"{day}T09:00:00Z", "time_source": "system clock"},
              "timestamps": [{"gen_time": f"{day}T09:01:00Z", "tsa": "Test TSA", "token_id": "T-1"}]

@@ -73,12 +73,12 @@ def self_check(luma: np.ndarray, *, stretch: bool = True) -> int:
                             reg.features(edited, mirrored=True, stretch=stretch))["inliers"])
 
 
-def _decide(value: int, threshold: int, reference_luma: np.ndarray,
+def _decide(hit: bool, threshold: int, reference_luma: np.ndarray,
             exhibit_luma: np.ndarray) -> tuple[bool | None, dict | None, str | None]:
     """``corresponds``, the self-checks made and, where undecided or asymmetric, the reason.
 
-    At or above the threshold the exhibit corresponds. Below it, "does not
-    correspond" is said only where a failure to register means something:
+    Where a reading reached its threshold (``hit``) the exhibit corresponds.
+    Otherwise "does not correspond" is said only where a failure to register means something:
     both pictures have structure that registers to itself in absolute
     contrast (without the stretch, which would turn compression blocks and
     noise in a smooth copy into corners), or the exhibit has such structure
@@ -86,7 +86,7 @@ def _decide(value: int, threshold: int, reference_luma: np.ndarray,
     was drawn over it). Otherwise the line cannot decide, and says which
     picture lacks the structure.
     """
-    if value >= threshold:
+    if hit:
         return True, None, None
     need = ABLE_FACTOR * threshold
     # Absolute contrast (no stretch): stretched, the blocks and noise of a compressed copy of
@@ -127,6 +127,27 @@ def _null_summary(samples: list, threshold: float, *, higher_is_closer: bool) ->
             "rate_upper_95": round(lr.binomial_upper(k, n), 6)}
 
 
+def _either(cal: dict) -> dict:
+    """Counts of the event the content line decides by: a reading at or above its threshold.
+
+    Without a coarse reading in the calibration, the fine reading's own counts. With it, the
+    null count is at most the sum of the pairs each reading took over its threshold (stated
+    as such, which moves the ratio towards 1), and the genuine count is exact (``either``).
+    """
+    t = int(cal["threshold"])
+    c = cal.get("coarse")
+    if not c:
+        return {"null": {"count": cal["null"]["count"],
+                         "reaching_threshold": sum(1 for v in cal["null"]["samples"] if v >= t)},
+                "genuine": {"count": cal["genuine"]["count"],
+                            "reaching_threshold": sum(1 for v in cal["genuine"]["samples"]
+                                                      if v >= t)}}
+    e = c["either"]
+    return {"null": {"count": e["null_count"], "reaching_threshold": e["null_reaching_at_most"],
+                     "counted": "at most: " + e["null_bound"]},
+            "genuine": {"count": e["genuine_count"], "reaching_threshold": e["genuine_reaching"]}}
+
+
 def content_line(exhibit_luma: np.ndarray, *, reference_luma: np.ndarray | None = None,
                  reference: str = "registered marked file", reference_scale: float = 1.0,
                  work_fingerprint: str | None = None) -> dict:
@@ -163,13 +184,31 @@ def content_line(exhibit_luma: np.ndarray, *, reference_luma: np.ndarray | None 
         ex = reg.features(exhibit_luma)
         exm = reg.features(exhibit_luma, mirrored=True)
         res = reg.register(ref, ex, exm)
+        threshold = int(cal["threshold"])
+        value = int(res["inliers"])
+        statistic = {"name": "RANSAC inliers", "value": value, "threshold": threshold,
+                     "higher_means": "closer correspondence", "reading": "fine"}
+        coarse_cal = cal.get("coarse")
+        if value < threshold and coarse_cal:
+            # The coarse reading, with its own measured null and threshold (register_coarse).
+            coarse = reg.register_coarse(reference_luma, exhibit_luma)
+            reached = int(coarse["inliers"]) >= int(coarse_cal["threshold"])
+            statistic["coarse"] = {"value": int(coarse["inliers"]),
+                                   "threshold": int(coarse_cal["threshold"]),
+                                   "side_px": reg.COARSE_SIDE}
+            if reached:
+                res = coarse
+                statistic = {"name": f"RANSAC inliers, coarse reading ({reg.COARSE_SIDE} px)",
+                             "value": int(coarse["inliers"]),
+                             "threshold": int(coarse_cal["threshold"]),
+                             "higher_means": "closer correspondence", "reading": "coarse",
+                             "fine": {"value": value, "threshold": threshold}}
         if res.get("matched") and reference_scale != 1.0:
             g = res["geometry"]
             g["scale"] = round(g["scale"] * reference_scale, 5)
             g["matrix"] = [[round(v * reference_scale, 6) for v in row] for row in g["matrix"]]
-        threshold = int(cal["threshold"])
-        value = int(res["inliers"])
-        corresponds, checks, reason = _decide(value, threshold, reference_luma, exhibit_luma)
+        hit = statistic["value"] >= statistic["threshold"]
+        corresponds, checks, reason = _decide(hit, threshold, reference_luma, exhibit_luma)
         layout = None
         if corresponds:
             # Points can match the work's fine detail alone (its residual lifted from a published
@@ -180,21 +219,26 @@ def content_line(exhibit_luma: np.ndarray, *, reference_luma: np.ndarray | None 
                                   uses_mark_geometry=False)
             if layout["refutes"]:
                 corresponds = False
-                reason = (f"{value} matching points fit one transformation, but " + layout["reason"]
-                          + "; the work's fine detail without its layout is what a picture "
-                          "carrying a lifted residual of the work, mark included, shows")
+                reason = (f"{statistic['value']} matching points fit one transformation, but "
+                          + layout["reason"] + "; the work's fine detail without its layout is "
+                          "what a picture carrying a lifted residual of the work, mark "
+                          "included, shows")
+        either = _either(cal)
         out = {
             "basis": reference, "limited_to_fingerprint": False,
-            "statistic": {"name": "RANSAC inliers", "value": value, "threshold": threshold,
-                          "higher_means": "closer correspondence"},
+            "statistic": statistic,
             "corresponds": corresponds,
             "registration": res,
-            "null": _null_summary(cal["null"]["samples"], threshold, higher_is_closer=True),
-            "genuine": {"count": cal["genuine"]["count"],
-                        "reaching_threshold": sum(1 for v in cal["genuine"]["samples"]
-                                                  if v >= threshold)},
-            "log10_lr": round(lr.log10_lr_decision(value, cal["genuine"]["samples"],
-                                               cal["null"]["samples"], threshold=threshold), 3),
+            "null": {**either["null"],
+                     "rate_upper_95": round(lr.binomial_upper(either["null"]["reaching_threshold"],
+                                                              either["null"]["count"]), 6),
+                     "highest": max(cal["null"]["samples"]) if statistic["reading"] == "fine"
+                     else max(cal["coarse"]["null"]["samples"])},
+            "genuine": either["genuine"],
+            "log10_lr": round(lr.log10_lr_counts(hit, either["genuine"]["reaching_threshold"],
+                                                 either["genuine"]["count"],
+                                                 either["null"]["reaching_threshold"],
+                                                 either["null"]["count"]), 3),
         }
         if layout is not None:
             out["layout"] = layout
@@ -310,11 +354,21 @@ def layout_check(reference_luma: np.ndarray, exhibit_luma: np.ndarray, linear, *
         and ``reason`` in words.
     """
     cal = calibration()["broad"]
-    res = broad.broad_correlation(reference_luma, exhibit_luma, np.asarray(linear, dtype=np.float64))
+    lin = np.asarray(linear, dtype=np.float64)
+    res = broad.broad_correlation(reference_luma, exhibit_luma, lin)
+    if uses_mark_geometry and res["value"] is None and not res["work_flat"] \
+            and not res["exhibit_flat"]:
+        # No shift covers 90 % of the smaller picture (the shapes differ): the shifts covering
+        # half of it are searched, which can only raise the highest correlation.
+        res = broad.broad_correlation(reference_luma, exhibit_luma, lin,
+                                      min_overlap=broad.FALLBACK_OVERLAP)
     below = float(cal["refute_below"])
     gen, nul = cal["genuine"]["samples"], cal["null"]["samples"]
     placed = "placed as the mark reads it" if uses_mark_geometry else \
         "placed as the matching points place it"
+    if res["min_overlap"] != broad.MIN_OVERLAP:
+        placed += (f" (no placement covers {100 * broad.MIN_OVERLAP:g} % of the smaller picture, "
+                   f"so placements covering {100 * res['min_overlap']:g} % were searched)")
     out = {"what": ("the exhibit placed by the mark's turn, scale and mirroring (the shift "
                     "searched), its broad layout compared with the work's: a consistency check "
                     "between the lines, not the content line's own statistic")
@@ -328,15 +382,15 @@ def layout_check(reference_luma: np.ndarray, exhibit_luma: np.ndarray, linear, *
                     "highest": max(nul)},
            "refutes": False, "log10_lr": 0.0}
     v = res["value"]
+    if v is not None:
+        out["refutes"] = bool(v < below)
+        out["log10_lr"] = round(lr.log10_lr_decision(v, gen, nul, threshold=below), 3)
     if v is None:
-        which = ("the work" if res["work_flat"] else "the exhibit" if res["exhibit_flat"]
-                 else "neither picture lies within the other, so no placement")
-        out["reason"] = (f"{placed}, the broad layouts could not be compared ({which} has no "
-                         "broad structure to compare)")
-        return out
-    out["refutes"] = bool(v < below)
-    out["log10_lr"] = round(lr.log10_lr_decision(v, gen, nul, threshold=below), 3)
-    if out["refutes"] and res["exhibit_flat"]:
+        which = ("the work has no broad structure to compare" if res["work_flat"] else
+                 "the exhibit has no broad structure to compare" if res["exhibit_flat"]
+                 else "no placement overlaps enough")
+        out["reason"] = f"{placed}, the broad layouts could not be compared ({which})"
+    elif out["refutes"] and res["exhibit_flat"]:
         out["reason"] = (f"{placed}, the exhibit is flat (less than a grey level of broad "
                          "variation) where the work's broad layout spreads over ten grey levels "
                          "or more, which no genuine copy measured lost")

@@ -36,7 +36,8 @@ from scipy import ndimage
 from scipy.signal import fftconvolve
 from skimage.transform import rescale
 
-__all__ = ["BROAD_SIDE", "MIN_OVERLAP", "MIN_PIXELS", "broad_correlation", "masked_ncc"]
+__all__ = ["BROAD_SIDE", "FALLBACK_OVERLAP", "MIN_OVERLAP", "MIN_PIXELS", "broad_correlation",
+           "masked_ncc"]
 
 #: Longer side, in pixels, the registered picture is reduced to; one pixel there spans
 #: 1/64 of the picture, far coarser than JPEG blocks, noise or a 2-pixel blur.
@@ -47,6 +48,11 @@ SMOOTH = 1.0
 #: Shifts where the two pictures overlap by less than this share of the smaller one are
 #: not considered: a correlation over a sliver rests on a handful of pixels.
 MIN_OVERLAP = 0.9
+#: Where no shift reaches :data:`MIN_OVERLAP` (the two pictures' shapes differ, as a 500 x 500
+#: work and a 600 x 450 exhibit at the same scale do), the caller may search the shifts covering
+#: at least this share instead (``layout_check`` does at the mark's geometry, and says so).
+#: Searching more shifts can only raise the highest correlation: it refutes less readily.
+FALLBACK_OVERLAP = 0.5
 #: ... and by less than this many grid pixels (a quarter of the picture at 64 x 48 is 768):
 #: a web-sized exhibit placed as a tiny part of the work would otherwise be compared over a
 #: few dozen pixels, where a high correlation is cheap.
@@ -115,7 +121,7 @@ def _reduce(luma: np.ndarray, factor: float) -> np.ndarray:
 
 
 def broad_correlation(reference_luma: np.ndarray, exhibit_luma: np.ndarray,
-                      linear: np.ndarray | list) -> dict:
+                      linear: np.ndarray | list, *, min_overlap: float = MIN_OVERLAP) -> dict:
     """Highest correlation of the two broad layouts over translations, at a given linear map.
 
     Parameters
@@ -125,6 +131,9 @@ def broad_correlation(reference_luma: np.ndarray, exhibit_luma: np.ndarray,
     linear : array_like
         2 x 2 map from reference pixels to exhibit pixels in (x, y), y down:
         the turn, scale, aspect and mirroring; the translation is searched.
+    min_overlap : float
+        Share of the smaller picture a searched shift must cover
+        (:data:`MIN_OVERLAP`, or :data:`FALLBACK_OVERLAP` where no shift reaches it).
 
     Returns
     -------
@@ -170,7 +179,7 @@ def broad_correlation(reference_luma: np.ndarray, exhibit_luma: np.ndarray,
     smaller = min(int(ref_mask.sum()), int(inside.sum()))
     work_flat = bool(np.std(ref) < FLAT)
     exhibit_flat = bool(inside.sum() < 2 or np.std(warped[inside]) < FLAT)
-    out = {"side_px": BROAD_SIDE, "min_overlap": MIN_OVERLAP, "work_flat": work_flat,
+    out = {"side_px": BROAD_SIDE, "min_overlap": min_overlap, "work_flat": work_flat,
            "exhibit_flat": exhibit_flat, "value": None, "shift_px": None, "overlap": None}
     if smaller < MIN_PIXELS or work_flat:
         return out
@@ -179,7 +188,7 @@ def broad_correlation(reference_luma: np.ndarray, exhibit_luma: np.ndarray,
             out.update(value=0.0, overlap=None)
         return out
     ncc, n = masked_ncc(ref, ref_mask, warped, inside,
-                        min_overlap=max(MIN_PIXELS, int(np.ceil(MIN_OVERLAP * smaller))))
+                        min_overlap=max(MIN_PIXELS, int(np.ceil(min_overlap * smaller))))
     if not np.isfinite(ncc).any():
         return out
     i, j = np.unravel_index(int(np.nanargmax(ncc)), ncc.shape)

@@ -50,6 +50,7 @@ from skimage.metrics import structural_similarity
 from skimage.transform import SimilarityTransform, rescale
 
 __all__ = [
+    "COARSE_SIDE",
     "KEYPOINTS",
     "RANSAC_SEED",
     "RESIDUAL_PX",
@@ -60,10 +61,22 @@ __all__ = [
     "match",
     "reduced",
     "register",
+    "register_coarse",
 ]
 
 #: Longer side, in pixels, each picture is reduced to before keypoints are found.
 WORK_SIDE = 640
+#: Longer side of the coarse reading (:func:`register_coarse`), consulted where the reading at
+#: :data:`WORK_SIDE` falls short: a soft texture's structure spans tens of pixels at 640, beyond
+#: ORB's 31-pixel patches over its 3.6-fold pyramid, and JPEG or noise then replace the few
+#: corners it has; at 128 pixels the same structure is a few pixels across and the noise is
+#: averaged away (measured on a soft texture: JPEG 75 from 5 to 90 points, noise 8 from 0 to 59).
+COARSE_SIDE = 128
+#: Gaussian smoothing (pixels at :data:`COARSE_SIDE`) before the coarse reading's stretch: what
+#: little of a mark's fine pattern survives the reduction would otherwise be stretched into
+#: corners on a featureless picture (measured on a clear sky: 0 keypoints unmarked, 19 points
+#: matched between the marked file and its JPEG 75 copy without smoothing, none with it).
+COARSE_SMOOTH = 1.0
 #: A smaller picture is enlarged to this longer side first: ORB's 31-pixel patches and its
 #: eight-level pyramid leave no keypoints in a picture of 100 pixels (a 10 % web copy).
 MIN_WORK_SIDE = 256
@@ -100,15 +113,16 @@ class Features:
     work: np.ndarray          # the luma at working size, 0..1, for the similarity measure
 
 
-def _work(luma: np.ndarray) -> tuple[np.ndarray, float]:
+def _work(luma: np.ndarray, side: int = WORK_SIDE,
+          min_side: int = MIN_WORK_SIDE) -> tuple[np.ndarray, float]:
     a = np.asarray(luma, dtype=np.float64)
     if a.ndim != 2 or min(a.shape) < 16:
         raise ValueError(f"luma must be 2-D and at least 16 px a side, got {a.shape}")
     top = float(a.max()) if a.size else 1.0
     a = a / (255.0 if top > 1.0 else 1.0)
-    s = min(1.0, WORK_SIDE / max(a.shape))
-    if max(a.shape) < MIN_WORK_SIDE:
-        s = MIN_WORK_SIDE / max(a.shape)
+    s = min(1.0, side / max(a.shape))
+    if max(a.shape) < min_side:
+        s = min_side / max(a.shape)
     if s != 1.0:
         a = rescale(a, s, anti_aliasing=s < 1.0, preserve_range=True, order=1)
     return np.clip(a, 0.0, 1.0), s
@@ -119,7 +133,8 @@ def _stretch(a: np.ndarray) -> np.ndarray:
     return np.clip((a - lo) / max(float(hi - lo), 1e-3), 0.0, 1.0)
 
 
-def features(luma: np.ndarray, *, mirrored: bool = False, stretch: bool = True) -> Features:
+def features(luma: np.ndarray, *, mirrored: bool = False, stretch: bool = True,
+             coarse: bool = False) -> Features:
     """ORB keypoints and descriptors of a picture (or of its left-right mirror image).
 
     Parameters
@@ -135,12 +150,18 @@ def features(luma: np.ndarray, *, mirrored: bool = False, stretch: bool = True) 
         the registration does; False keeps FAST's threshold absolute (about 5
         grey levels), which compression blocks and noise in a flat picture do
         not reach.
+    coarse : bool
+        Describe the picture at :data:`COARSE_SIDE` pixels on its longer side
+        (reduced, or enlarged if smaller) and smoothed by :data:`COARSE_SMOOTH`,
+        for :func:`register_coarse`.
 
     Returns
     -------
     Features
     """
-    work, s = _work(luma)
+    work, s = _work(luma, COARSE_SIDE, COARSE_SIDE) if coarse else _work(luma)
+    if coarse:
+        work = ndimage.gaussian_filter(work, COARSE_SMOOTH)
     shape = (int(np.asarray(luma).shape[0]), int(np.asarray(luma).shape[1]))
     return _describe(work, s, shape, mirrored, stretch)
 
@@ -336,17 +357,36 @@ def register(reference: Features, exhibit: Features, exhibit_mirrored: Features)
     inverse, reference -> exhibit, the direction the mark's examination
     reports, so the two can be compared directly.
     """
-    best = None
     refs = [reference]
     side = max(exhibit.work.shape)
     if 2 * side <= max(reference.work.shape):
         refs.append(reduced(reference, side))
+    return _result(refs, exhibit, exhibit_mirrored, "ORB keypoints, RANSAC similarity",
+                   WORK_SIDE)
+
+
+def register_coarse(reference_luma: np.ndarray, exhibit_luma: np.ndarray) -> dict:
+    """The coarse reading: both pictures at :data:`COARSE_SIDE` pixels, otherwise as :func:`register`.
+
+    Its statistic has its own measured null and threshold (``calibration.json``,
+    ``coarse``); the content line consults it where :func:`register` falls short.
+    """
+    exh = np.asarray(exhibit_luma)
+    return _result([features(reference_luma, coarse=True)], features(exh, coarse=True),
+                   features(exh, mirrored=True, coarse=True),
+                   f"ORB keypoints at {COARSE_SIDE} px, RANSAC similarity", COARSE_SIDE)
+
+
+def _result(refs: list[Features], exhibit: Features, exhibit_mirrored: Features, method: str,
+            side: int) -> dict:
+    reference = refs[0]
+    best = None
     for rf in refs:
         for feats, how in ((exhibit, "as is"), (exhibit_mirrored, "mirrored")):
             mat, n, res = _fit(rf, feats, how == "mirrored")
             if mat is not None and (best is None or n > best[1]):
                 best = (mat, n, res, how)
-    out: dict = {"method": "ORB keypoints, RANSAC similarity", "work_side_px": WORK_SIDE,
+    out: dict = {"method": method, "work_side_px": side,
                  "residual_limit_px": RESIDUAL_PX, "ransac_seed": RANSAC_SEED,
                  "reference_keypoints": len(reference.xy),
                  "exhibit_keypoints": len(exhibit.xy)}

@@ -207,6 +207,13 @@ def _content_parameters() -> dict:
         "genuine_below_threshold": sum(1 for v in cal["genuine"]["samples"] if v < cal["threshold"]),
         "genuine_below_attacks": sorted({r["attack"] for r in cal.get("genuine_below_threshold", [])}),
         "able_inliers": assess.ABLE_FACTOR * cal["threshold"],
+        "coarse": None if "coarse" not in cal else {
+            "side_px": register.COARSE_SIDE, "threshold_inliers": cal["coarse"]["threshold"],
+            "null_pairs": cal["coarse"]["null"]["count"],
+            "null_max_inliers": max(cal["coarse"]["null"]["samples"]),
+            "either_null_at_most": cal["coarse"]["either"]["null_reaching_at_most"],
+            "either_genuine": cal["coarse"]["either"]["genuine_reaching"],
+            "genuine_copies": cal["coarse"]["either"]["genuine_count"]},
         "fingerprint_genuine_max_bits": max(cal["fingerprint"]["genuine"]["samples"]),
         "second_view_inliers": cal["same_scene_second_view"]["inliers"],
         "fingerprint_null_min_bits": min(cal["fingerprint"]["null"]["samples"]),

@@ -213,9 +213,13 @@ def tables(data: dict, name: str, arg: str | None) -> tuple[list[str], list[list
             def capped(v, top=top):
                 # A value at the cap is the cap, not a measurement: say so beside it.
                 return _power(v) + (" (the cap)" if v is not None and top and abs(v) >= top else "")
+            withheld = ev.get("reported_log10_lr") is None and ev.get("propositions")
             rows.append([r["label"], capped(lg.get("mark")), capped(lg.get("content")),
-                         capped(lg.get("combined")), capped(ev.get("reported_log10_lr")),
-                         "not evaluated" if ev.get("reported_log10_lr") is None
+                         capped(lg.get("combined")),
+                         "none (no opinion given)" if withheld else capped(ev.get("reported_log10_lr")),
+                         "no opinion given: the content line could not check the mark line's "
+                         "assumption" if withheld else "not evaluated"
+                         if ev.get("reported_log10_lr") is None
                          else verbal(ev["reported_log10_lr"], "Hp", "Hd")])
         return ["Exhibit", "LR, mark line", "LR, content line", "LR, combined", "LR reported",
                 "Verbal equivalent (ENFSI 2015)"], rows or [["(none)", "", "", "", "", ""]]

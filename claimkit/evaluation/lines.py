@@ -73,9 +73,13 @@ def weigh(exhibit_luma: np.ndarray, *, label: str, mark: dict, threshold: float,
             uses_mark_geometry=True)
     refuted = bool((content.get("layout_with_mark") or {}).get("refutes"))
     mismatch = bool(detected and (content.get("corresponds") is False or refuted))
+    # The format the mark line rests on: the one read where the mark was found, else the work's.
+    mark_format = (mark.get("mark_format") if detected else None) or \
+        ((work_record or {}).get("mark_params") or {}).get("format")
     evaluation = opinion.evaluate(exhibit=label, work_id=work_id, owner=owner, detected=detected,
                                   threshold=threshold, content=content,
-                                  agreement=content["agreement_with_mark"], robustness=robustness)
+                                  agreement=content["agreement_with_mark"], robustness=robustness,
+                                  mark_format=mark_format)
     evaluation["finding"] = opinion.finding_words(
         detected=detected, work_id=mark.get("work_id") if detected else None,
         content_mismatch=mismatch, limited=bool(content.get("limited_to_fingerprint")),

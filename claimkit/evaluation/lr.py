@@ -37,6 +37,7 @@ __all__ = [
     "binomial_upper",
     "cap",
     "combine",
+    "log10_lr_counts",
     "log10_lr_decision",
     "log10_lr_detection",
     "verbal",
@@ -163,6 +164,19 @@ def log10_lr_decision(observed: float, hp_samples: Sequence[float], hd_samples: 
         k1 = sum(1 for v in hp if v < threshold)
         k2 = sum(1 for v in hd if v < threshold)
     return cap(_ratio((k1, len(hp)), (k2, len(hd))))
+
+
+def log10_lr_counts(reached: bool, hp_reaching: int, hp_count: int, hd_reaching: int,
+                    hd_count: int) -> float:
+    """log10 LR of a decision given the counts that reached it under each proposition.
+
+    As :func:`log10_lr_decision`, for a decision whose counts are known but not as one
+    statistic's samples (a rule on two statistics): the event is "reached" or "not reached",
+    and each frequency is bounded as the module says.
+    """
+    if reached:
+        return cap(_ratio((hp_reaching, hp_count), (hd_reaching, hd_count)))
+    return cap(_ratio((hp_count - hp_reaching, hp_count), (hd_count - hd_reaching, hd_count)))
 
 
 def log10_lr_detection(found: bool, detected: int, trials: int, threshold: float) -> float:
