@@ -191,3 +191,12 @@ def test_timeline_same_day_says_the_order_is_not_known():
     assert len(t["notes"]) == 1 and "Exhibit 1 found is dated to the day only (2026-11-28)" \
         in t["notes"][0] and "work W-1 registered" in t["notes"][0]
     assert timeline.build_timeline(_works(), _exhibit("2026-11-28"), {"E01": "W-1"})["notes"] == []
+
+
+def test_a_label_that_opens_a_sentence_reads_in_lower_case_inside_the_opinion():
+    """`examine` labels a file "The file x.jpg": Hp opens with it, the opinion quotes it mid-sentence."""
+    ev = opinion.evaluate(exhibit="The file x.jpg", work_id="W-1", owner=None, detected=True,
+                          threshold=1e-9, content=_content(True, 2.6), agreement={"agree": True})
+    assert ev["propositions"]["Hp"].startswith("The file x.jpg derives")
+    assert "the proposition that the file x.jpg derives from work W-1" in ev["verbal"]
+    assert "The file" not in ev["verbal"][1:]

@@ -46,6 +46,11 @@ MARK_BATTERY_MEASURED = {
 }
 
 
+def _inline(sentence: str) -> str:
+    """``sentence`` as it reads inside another: a leading "The " in lower case."""
+    return "the " + sentence[4:] if sentence.startswith("The ") else sentence
+
+
 def _battery(robustness: dict | None, mark_format: str | None = None) -> dict:
     rows = [r for r in ((robustness or {}).get("rows") or []) if r.get("attack") != "none"]
     if rows:
@@ -210,7 +215,9 @@ def evaluate(*, exhibit: str, work_id: str | None, owner: str | None, detected: 
                  "which nothing here could check.")
     else:
         reported = lr.cap(reported)
-        words = lr.verbal(reported, "the proposition that " + hp, "the proposition that " + hd)
+        # A label that opens a sentence ("The file x.jpg") reads in lower case inside one.
+        words = lr.verbal(reported, "the proposition that " + _inline(hp),
+                          "the proposition that " + _inline(hd))
     return {
         "propositions": {"Hp": hp, "Hd": hd, "level": "source"},
         "log10_lr": {"mark": lines["mark"]["log10_lr"],
