@@ -120,3 +120,23 @@ def test_quiet_and_json_keep_stdout_clean(profile_home, inbox):
                          check=False)
     for line in res.stdout.splitlines():
         json.loads(line)
+
+
+def test_log_lines_go_to_the_stderr_of_the_moment(monkeypatch):
+    """A caller that swaps and closes sys.stderr (pytest's capture does) leaves no handler
+    writing to the closed stream: each record goes to the stderr current when it is logged."""
+    import io
+    import logging
+
+    from claimkit.cli import setup_logging
+
+    first, second = io.StringIO(), io.StringIO()
+    monkeypatch.setattr(sys, "stderr", first)
+    setup_logging(True)
+    try:
+        monkeypatch.setattr(sys, "stderr", second)
+        first.close()
+        logging.getLogger("claimkit.test").warning("after the swap")
+        assert second.getvalue() == "claimkit: claimkit.test: after the swap\n"
+    finally:
+        setup_logging(False)

@@ -50,7 +50,19 @@ def setup_logging(verbose: bool) -> None:
     for h in list(root.handlers):
         if getattr(h, "_claimkit", False):
             root.removeHandler(h)
-    handler = logging.StreamHandler(sys.stderr)
+    class _Stderr(logging.StreamHandler):
+        # The stderr of the moment, not the one at set-up: a caller that swaps sys.stderr
+        # (a test's capture, a shell embedding main()) and closes it later must not leave a
+        # handler writing to a closed stream ("--- Logging error ---").
+        @property  # type: ignore[override]
+        def stream(self):
+            return sys.stderr
+
+        @stream.setter
+        def stream(self, value) -> None:
+            pass
+
+    handler = _Stderr()
     handler._claimkit = True  # type: ignore[attr-defined]
     handler.setFormatter(logging.Formatter("claimkit: %(name)s: %(message)s"))
     root.addHandler(handler)
