@@ -7,6 +7,9 @@
 - ``local_tsa``: a throwaway CA and RFC 3161 time-stamping authority made with
   the ``openssl`` command; ``local_tsa.reply(tsq_bytes)`` answers a request
   with ``openssl ts -reply``. ``make_tsa(name)`` makes further, independent ones.
+- ``demo_run``: ``claimkit demo`` run once per test session on a smaller picture; what it
+  left and what it said. ``test_demo`` checks them; ``test_readme`` then runs the README's
+  everyday lines in the same folder (they only add to it).
 
 Key derivation is lowered for speed: ``CLAIMKIT_TEST_FAST_KDF=1`` is set for
 the whole test session (scrypt N = 2**10 instead of 2**17), also for the
@@ -230,3 +233,36 @@ def make_tsa(tmp_path):
         return make_local_tsa(tmp_path / f"tsa-extra-{count[0]}", name, **kw)
 
     return factory
+
+
+@dataclass
+class DemoRun:
+    folder: Path          # the demo's folder, ``<root>/demo-out``
+    out: dict             # what ``run_demo`` returned
+    lines: list[str]      # what it said, line by line
+    scenario: dict
+
+
+_DEMO: dict[str, DemoRun] = {}
+
+
+@pytest.fixture
+def demo_run(tmp_path_factory) -> DemoRun:
+    """The demo, run once per session (a relative folder, as in the README's first command)."""
+    if shutil.which("openssl") is None:
+        pytest.skip("openssl command not installed")
+    if "demo" not in _DEMO:
+        import copy
+
+        from claimkit.demo import SCENARIO, run_demo
+
+        root = tmp_path_factory.mktemp("demo")
+        sc = copy.deepcopy(SCENARIO)
+        sc["work"]["upscale"] = 1.5        # the real demo uses 3; the steps are the same
+        lines: list[str] = []
+        with pytest.MonkeyPatch.context() as mp:
+            mp.chdir(root)
+            out = run_demo(Path("demo-out"), echo=lines.append, scenario=sc, decoys=8,
+                           robustness=False)   # the battery itself is covered by the case tests
+        _DEMO["demo"] = DemoRun(root / "demo-out", out, lines, sc)
+    return _DEMO["demo"]

@@ -4,7 +4,6 @@
 from __future__ import annotations
 
 import hashlib
-import json
 import os
 import stat
 
@@ -193,16 +192,9 @@ def test_alignment_ssim_matches_skimage_on_the_stored_arrays(built_case):
     assert smap[inner].mean() == pytest.approx(f["alignment"]["ssim"], abs=0.01)
 
 
-def test_examine_json_lines(built_case, monkeypatch, capsys, tmp_path):
-    import shutil
-
-    work = tmp_path / "case"
-    shutil.copytree(built_case.case, work)
-    monkeypatch.setenv("CLAIMKIT_PASSPHRASE", "harwick-bay-casework-tests")
-    code = main(["--home", str(built_case.home), "case", "examine", str(work), "--decoys", "2",
-                 "--no-robustness", "--json"])
-    assert code == 0
-    rows = [json.loads(x) for x in capsys.readouterr().out.splitlines()]
+def test_examine_json_lines(built_case):
+    """`case examine --json` (as the session's case was examined): a JSON object per exhibit."""
+    rows = built_case.examine_rows
     assert [r["exhibit_id"] for r in rows] == ["exhibit-1", "exhibit-2", "exhibit-3", "exhibit-4"]
     assert [r["detected"] for r in rows] == [True, True, False, True]
     assert [r["content_mismatch"] for r in rows] == [False, False, False, True]

@@ -17,7 +17,10 @@ Other test modules import the ``built_case`` fixture from here.
 
 from __future__ import annotations
 
+import contextlib
 import copy
+import io
+import json
 import shutil
 from dataclasses import dataclass
 from datetime import datetime, timezone
@@ -49,6 +52,7 @@ class BuiltCase:
     tsa_roots: Path         # the test TSA's root certificate
     key_sha256: str         # the owner's key fingerprint, as the owner would tell it
     forged: Path            # the transplanted-mark forgery (exhibit 4)
+    examine_rows: list[dict]  # what `case examine --json` printed, a JSON object per line
 
 
 def _run(argv: list[str]) -> int:
@@ -124,8 +128,11 @@ def _build(tmp_path_factory) -> BuiltCase:
         assert _run(["case", "add", str(case), str(forged), "--source",
                      "https://tidewater-home-goods.example/products/rocket-poster",
                      "--found", "2025-06-01, poster listing", "--by", "Ilse Marrow", *h]) == 0
-        assert _run(["case", "examine", str(case), "--originals", str(studio),
-                     "--decoys", str(DECOYS), *h]) == 0
+        printed = io.StringIO()
+        with contextlib.redirect_stdout(printed):
+            assert _run(["case", "examine", str(case), "--originals", str(studio),
+                         "--decoys", str(DECOYS), "--json", *h]) == 0
+        rows = [json.loads(x) for x in printed.getvalue().splitlines()]
         assert _run(["report", str(case), *h]) == 0
         bundle = root / "bundle.zip"
         assert _run(["case", "export", str(case), "--out", str(bundle), *h]) == 0
@@ -135,4 +142,4 @@ def _build(tmp_path_factory) -> BuiltCase:
         with Profile.open(home, PASS.encode()) as p:
             fp = p.public_key_fingerprint
     return BuiltCase(root, home, case, studio, copies, unmarked, bundle, rep["work_id"], sc,
-                     disclosure.parent, root / "tsa" / "ca.pem", fp, forged)
+                     disclosure.parent, root / "tsa" / "ca.pem", fp, forged, rows)

@@ -2,11 +2,9 @@
 
 from __future__ import annotations
 
-import copy
 import json
 import shutil
 import subprocess
-from pathlib import Path
 
 import pytest
 
@@ -21,19 +19,11 @@ def test_sample_case_scenario_is_the_built_in_one():
     assert "astronaut" not in ALLOWED_PICTURES and "camera" not in ALLOWED_PICTURES
 
 
-def test_demo_runs_end_to_end(tmp_path, monkeypatch):
-    if shutil.which("openssl") is None:
-        pytest.skip("openssl command not installed")
-    monkeypatch.setenv("CLAIMKIT_TEST_FAST_KDF", "1")
-    sc = copy.deepcopy(SCENARIO)
-    sc["work"]["upscale"] = 1.5        # the real demo uses 3; the steps are the same
-    lines: list[str] = []
-    monkeypatch.chdir(tmp_path)   # a relative folder, as in the README's first command
-    out = run_demo(Path("demo"), echo=lines.append, scenario=sc, decoys=8,
-                   robustness=False)   # the battery itself is covered by the case tests
+def test_demo_runs_end_to_end(demo_run):
+    out = demo_run.out
     assert out["verified"], out["failed"]
     assert out["detected"] == ["exhibit-1", "exhibit-2"]
-    text = "\n".join(lines)
+    text = "\n".join(demo_run.lines)
     assert "Ilse Marrow" in text and "Harwick Bay Studio" in text and "Tidewater" in text
     assert "timestamp token" in text and "all" in text and "checks passed" in text
     if shutil.which("pdftotext"):
@@ -41,7 +31,7 @@ def test_demo_runs_end_to_end(tmp_path, monkeypatch):
                              check=True).stdout
         assert "Harwick Bay Demo TSA" in pdf and "Limitations" in pdf
     # The exhibit copies are exactly the shop's files.
-    data = json.loads((tmp_path / "demo" / "case-tidewater" / "report" / "dossier.json")
+    data = json.loads((demo_run.folder / "case-tidewater" / "report" / "dossier.json")
                       .read_bytes())
     assert [e["original_name"] for e in data["exhibits"]] == \
         [c["name"] for c in SCENARIO["copies"]]
@@ -54,4 +44,4 @@ def test_demo_runs_end_to_end(tmp_path, monkeypatch):
     # A second run into the same folder is refused rather than mixed in.
     from claimkit.errors import InputError
     with pytest.raises(InputError, match="not empty"):
-        run_demo(tmp_path / "demo", echo=None, scenario=sc, decoys=8)
+        run_demo(demo_run.folder, echo=None, scenario=demo_run.scenario, decoys=8)

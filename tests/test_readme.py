@@ -2,13 +2,12 @@
 
 The block is read from README.md itself (the first fenced block under
 "## Everyday use") and run by bash with ``set -e``, so a line that stops
-working fails this test. The demo runs on a smaller picture, as in
-``tests/test_demo.py``; every step is the same.
+working fails this test. The demo is the session's ``demo_run`` (a smaller
+picture, checked by ``tests/test_demo.py``; every step is the same): the lines only add to it.
 """
 
 from __future__ import annotations
 
-import copy
 import json
 import os
 import re
@@ -18,8 +17,6 @@ import sys
 from pathlib import Path
 
 import pytest
-
-from claimkit.demo import SCENARIO, run_demo
 
 pytestmark = pytest.mark.slow
 README = Path(__file__).resolve().parent.parent / "README.md"
@@ -33,25 +30,20 @@ def everyday_block() -> str:
     return m.group(1)
 
 
-def test_everyday_lines_run_as_written(tmp_path, monkeypatch):
+def test_everyday_lines_run_as_written(demo_run, tmp_path):
     if shutil.which("openssl") is None or shutil.which("exiftool") is None:
         pytest.skip("openssl and exiftool are needed")
-    monkeypatch.setenv("CLAIMKIT_TEST_FAST_KDF", "1")
-    sc = copy.deepcopy(SCENARIO)
-    sc["work"]["upscale"] = 1.0
-    monkeypatch.chdir(tmp_path)
-    out = run_demo(Path("demo-out"), echo=None, scenario=sc, decoys=4, robustness=False)
-    assert out["verified"]
+    assert demo_run.out["verified"]
     block = everyday_block()
     assert block.splitlines()[0].startswith("cd demo-out")
     env = {k: v for k, v in os.environ.items()
            if k not in ("CLAIMKIT_HOME", "CLAIMKIT_PASSPHRASE")}
     env["PATH"] = f"{Path(sys.executable).parent}{os.pathsep}{env.get('PATH', '')}"
     env["HOME"] = str(tmp_path)
-    res = subprocess.run(["bash", "-e", "-o", "pipefail", "-c", block], cwd=tmp_path, env=env,
-                         capture_output=True, text=True, timeout=900, check=False)
+    res = subprocess.run(["bash", "-e", "-o", "pipefail", "-c", block], cwd=demo_run.folder.parent,
+                         env=env, capture_output=True, text=True, timeout=900, check=False)
     assert res.returncode == 0, res.stderr[-3000:]
-    demo = tmp_path / "demo-out"
+    demo = demo_run.folder
     assert (demo / "my-profile").is_dir()
     assert (demo / "web" / "harwick-morning-cup.jpg").is_file()
     assert (demo / "case-17.zip").is_file() and (demo / "robustness.png").is_file()

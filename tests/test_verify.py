@@ -253,8 +253,15 @@ def test_edited_finding_is_caught_even_when_the_owner_re_signs(built_case, tmp_p
     assert "examined with claimkit 0.0.9 and re-run with claimkit " in _failed(rep)
 
 
-def test_edited_content_line_and_opinion_are_caught_by_the_re_run(built_case, tmp_path):
-    """The content line's statistic and the reported likelihood ratio are re-derived, not read."""
+def test_edited_content_line_and_a_stripped_method_are_caught_by_the_re_run(built_case, tmp_path):
+    """Two edits, one per exhibit, in one full verify (it keeps the suite's time; each re-run
+    is reported on its own line).
+
+    Exhibit 1: the content line's statistic and the reported likelihood ratio are re-derived,
+    not read. Exhibit 2: a finding made by the JPEG luma-plane reading, stripped of its method
+    (as findings were before methods were recorded), is re-run by the RGB reading those
+    findings were made by and no longer reproduces. (That the recorded method is re-run as
+    recorded is what the sound bundle's passing re-run shows.)"""
     work = _unpack(built_case.bundle, tmp_path / "w")
     p = work / "findings" / "exhibit-1.json"
     f = json.loads(p.read_bytes())
@@ -262,12 +269,21 @@ def test_edited_content_line_and_opinion_are_caught_by_the_re_run(built_case, tm
     f["content"]["statistic"]["value"] = value + 40
     f["evaluation"]["reported_log10_lr"] = 2.5      # stored 6 (the cap)
     p.write_bytes(canonical_json(f) + b"\n")
+    p = work / "findings" / "exhibit-2.json"
+    f = json.loads(p.read_bytes())
+    assert f["examined"]["examination_method"] == "jpeg-y-1"
+    assert f["result"]["examination_method"] == "jpeg-y-1"
+    del f["examined"]["examination_method"]
+    p.write_bytes(canonical_json(f) + b"\n")
     _resign(work, built_case.home)
     rep = verify_bundle(work, robustness=False, disclosure=built_case.disclosure)
     text = _failed(rep)
-    assert "exhibit-1 re-run" in {c["check"] for c in rep.failures}, text
-    assert f"content.statistic.value: stored {value + 40}, reproduced {value}" in text
-    assert "evaluation.reported_log10_lr: stored 2.5" in text
+    rerun = {c["check"]: c["detail"] for c in rep.failures
+             if c["check"].startswith("exhibit-") and c["check"].endswith(" re-run")}
+    assert set(rerun) == {"exhibit-1 re-run", "exhibit-2 re-run"}, text
+    assert f"content.statistic.value: stored {value + 40}, reproduced {value}" in rerun["exhibit-1 re-run"]
+    assert "evaluation.reported_log10_lr: stored 2.5" in rerun["exhibit-1 re-run"]
+    assert "score_pilot: stored" in rerun["exhibit-2 re-run"], text
 
 
 def test_exit_code_and_error_line(built_case, tmp_path, capsys):
@@ -358,21 +374,3 @@ def test_not_a_zip_is_bad_input(tmp_path, capsys):
     p.write_bytes(b"not a zip")
     assert main(["verify", str(p)]) == 2
     assert "not a readable zip file" in capsys.readouterr().err
-
-
-def test_a_finding_is_re_run_by_the_examination_method_it_records(built_case, tmp_path):
-    """A finding made by the JPEG luma-plane reading, stripped of its method (as findings were
-    before methods were recorded), is re-run by the RGB reading those findings were made by and
-    no longer reproduces. (That the recorded method is re-run as recorded is what the sound
-    bundle's passing re-run shows; one full verify here keeps the suite's time.)"""
-    work = _unpack(built_case.bundle, tmp_path / "w")
-    p = work / "findings" / "exhibit-1.json"
-    f = json.loads(p.read_bytes())
-    assert f["examined"]["examination_method"] == "jpeg-y-1"
-    assert f["result"]["examination_method"] == "jpeg-y-1"
-    del f["examined"]["examination_method"]
-    p.write_bytes(canonical_json(f) + b"\n")
-    _resign(work, built_case.home)
-    rep = verify_bundle(work, robustness=False, disclosure=built_case.disclosure)
-    rerun = [c for c in rep.failures if c["check"] == "exhibit-1 re-run"]
-    assert rerun and "score_pilot: stored" in rerun[0]["detail"], _failed(rep)
