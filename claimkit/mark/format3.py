@@ -466,35 +466,25 @@ def score_families_direct(spec: np.ndarray, families: Mapping[int, bytes]) -> di
 def decode_family(y: np.ndarray, seed: bytes, offset: tuple[int, int], *,
                   payload_check: Callable[[np.ndarray], bool] | None,
                   known_bits: np.ndarray | None,
-                  decode: bool = True,
                   candidates: PayloadList | None = None,
                   accept_listed: Callable[[float], bool] | None = None,
                   tile: int = TILE,
-                  ) -> tuple[np.ndarray | None, bool, float | None, np.ndarray]:
+                  ) -> tuple[np.ndarray, bool, float | None, np.ndarray]:
     """Recovered message of one family at one offset, decoded; full-template score if the payload checks.
 
     ``y``: the aligned tiles' weighted spectra at :func:`claim_frequencies`
-    (K^2, nf), as :func:`score_families` reads them.
-
-    ``decode=False`` returns the recovered message only (bits None): the
-    examination skips the Viterbi decoder where the pilot score is too low
-    for any payload to reach the threshold (see ``detect.DECODE_MIN_Z3``).
+    (K^2, nf), as :func:`score_families` reads them. (The examination calls
+    it only where the pilot score could lead to a claim, see
+    ``detect.DECODE_MIN_Z3``; elsewhere it reads :func:`recovered` alone.)
     Where the decoder's payload does not check, the best match in
     ``candidates`` is tried (:class:`claimkit.mark.payload.PayloadList`), and
     kept only where ``accept_listed(z_full)`` holds.
     """
     n = tile
     fam = family_pattern(seed, n)
-    idx, partner = claim_frequencies(n)
-    table = _class_table(offset)
+    idx, _ = claim_frequencies(n)
     sp = spot_spectrum(n, SPOT_SIGMA).ravel()[idx]
-    half = (y * np.conj(fam.phases[table])).sum(axis=0) * sp
-    full = np.zeros(n * n, dtype=np.complex128)
-    full[idx] = half
-    full[partner] = np.conj(half)
-    rec = np.real(np.fft.ifft2(full.reshape(n, n)))
-    if not decode:
-        return None, False, None, rec
+    rec = recovered(y, seed, offset, n)
     soft = rec[fam.code_pos[:, 0], fam.code_pos[:, 1]]
     bits = CODE.decode(soft, PAYLOAD_BITS, known=known_bits)
     if payload_check is None:
@@ -516,6 +506,19 @@ def decode_family(y: np.ndarray, seed: bytes, offset: tuple[int, int], *,
         if accept_listed is None or accept_listed(z_full):
             return listed, True, z_full, rec
     return bits, False, None, rec
+
+
+def recovered(y: np.ndarray, seed: bytes, offset: tuple[int, int], tile: int = TILE) -> np.ndarray:
+    """The recovered claim message (T, T) of one family at one macro offset (``y`` as in decode_family)."""
+    n = tile
+    fam = family_pattern(seed, n)
+    idx, partner = claim_frequencies(n)
+    sp = spot_spectrum(n, SPOT_SIGMA).ravel()[idx]
+    half = (y * np.conj(fam.phases[_class_table(offset)])).sum(axis=0) * sp
+    full = np.zeros(n * n, dtype=np.complex128)
+    full[idx] = half
+    full[partner] = np.conj(half)
+    return np.real(np.fft.ifft2(full.reshape(n, n)))
 
 
 def reference_message(seed: bytes, bits: np.ndarray | None,
