@@ -421,12 +421,16 @@ def _stacked_kernels(seeds: tuple[bytes, ...], tile: int = TILE) -> tuple[np.nda
 def _class_dft(a: np.ndarray) -> np.ndarray:
     """The 2-D DFT over the first two axes (the K x K class torus) of a (K, K, ...) complex array.
 
-    Written out as K^2 scaled sums per axis: NumPy's FFT along a short axis
-    with a long stride cost 26 ms for (4, 4, 16384); this costs about 2 ms.
+    Written out per axis: NumPy's FFT along a short axis with a long stride
+    cost 26 ms for (4, 4, 16384). For K = 4 (``MACRO``) as the radix-4
+    butterfly (sums, differences and exact turns by -i: 0.6 -> 0.15 ms for
+    the claim frequencies); otherwise as K^2 scaled sums per axis.
     """
+    a = np.asarray(a, dtype=np.complex64)
+    if a.shape[0] == 4:
+        return np.swapaxes(_dft4(np.swapaxes(_dft4(a), 0, 1)), 0, 1)
     k = a.shape[0]
     w = np.exp(-2j * np.pi * np.outer(np.arange(k), np.arange(k)) / k).astype(np.complex64)
-    a = np.asarray(a, dtype=np.complex64)
     rows = np.zeros_like(a)
     for m in range(k):
         for u in range(k):
@@ -436,6 +440,14 @@ def _class_dft(a: np.ndarray) -> np.ndarray:
         for v in range(k):
             out[:, m] += w[m, v] * rows[:, v]
     return out
+
+
+def _dft4(a: np.ndarray) -> np.ndarray:
+    """The 4-point DFT along the first axis (radix-4 butterfly)."""
+    s02, d02 = a[0] + a[2], a[0] - a[2]
+    s13, d13 = a[1] + a[3], a[1] - a[3]
+    d13 *= np.complex64(-1j)                  # exact: a swap of parts and a sign
+    return np.stack([s02 + s13, d02 + d13, s02 - s13, d02 - d13])
 
 
 def score_families_direct(spec: np.ndarray, families: Mapping[int, bytes]) -> dict[int, np.ndarray]:
