@@ -29,6 +29,7 @@ References
 
 from __future__ import annotations
 
+import threading
 from collections.abc import Callable
 from dataclasses import dataclass, field, replace
 from functools import lru_cache
@@ -499,15 +500,43 @@ def _reduce(x: np.ndarray, r: int) -> np.ndarray:
     return np.asarray(x[:h, :w], dtype=np.float32).reshape(h // r, r, w // r, r).mean(axis=(1, 3))
 
 
-def _surfaces(prep: _Prepared, pattern: KeyPattern, ramps: np.ndarray):
-    """Standardised pilot scores: array (G, 8, phases, T, T), float32."""
+# The pilot kernels of the last few patterns searched (see _pilot_filter), by id: each
+# entry holds its pattern, so no other object can take that id while it is kept.
+_FILTERS: dict[int, tuple[KeyPattern, np.ndarray, np.ndarray]] = {}
+_FILTERS_LOCK = threading.Lock()
+
+
+def _pilot_filter(pattern: KeyPattern) -> tuple[np.ndarray, np.ndarray]:
+    """The pilot search's kernel (T, T) complex64 and key power (T*T,) of ``pattern``, kept for reuse.
+
+    An examination searches the same few patterns (formats 1-2, the
+    synchronisation) at several views and picks: made once, not each time
+    (a transform of the pilots and products over the tile, ~0.5 ms).
+    """
+    with _FILTERS_LOCK:
+        hit = _FILTERS.get(id(pattern))
+    if hit is not None and hit[0] is pattern:
+        return hit[1], hit[2]
     n = pattern.tile
     weight = pattern.spot_ft * pattern.band
     pilot_ft = _delta_ft(*spot_signs(pattern, None), n)
     kern = (weight * np.conj(pattern.carrier_phase) * np.conj(pilot_ft)).astype(np.complex64)
+    key_power = (np.abs(weight * pilot_ft) ** 2).ravel()
+    for arr in (kern, key_power):
+        arr.setflags(write=False)
+    with _FILTERS_LOCK:
+        if len(_FILTERS) >= 8:
+            del _FILTERS[next(iter(_FILTERS))]
+        _FILTERS[id(pattern)] = (pattern, kern, key_power)
+    return kern, key_power
+
+
+def _surfaces(prep: _Prepared, pattern: KeyPattern, ramps: np.ndarray):
+    """Standardised pilot scores: array (G, 8, phases, T, T), float32."""
+    n = pattern.tile
+    kern, key_power = _pilot_filter(pattern)
     ramps = np.asarray(ramps, dtype=np.complex64)
     out = np.empty((len(prep.spectra), DIHEDRAL, len(ramps), n, n), dtype=np.float32)
-    key_power = (np.abs(weight * pilot_ft) ** 2).ravel()
     half = n // 2 + 1
     for g, s in enumerate(prep.spectra):
         # Exact standard deviation over the key (stats module): one per variant,
@@ -785,7 +814,7 @@ def _keyed_scores(x: np.ndarray, transforms: np.ndarray, seed: bytes) -> np.ndar
     h = TILE // 2
     kern_v, idx_half, power_v = _keyed_tables(seed)
     pad = sfft.next_fast_len(KEYED_OVERSAMPLE * max(x.shape))
-    spec_x = sfft.fft2(x - np.float32(x.mean()), s=(pad, pad)).astype(np.complex64).ravel()
+    spec_x = sfft.fft2(x - np.float32(x.mean()), s=(pad, pad)).astype(np.complex64, copy=False).ravel()
     k = np.fft.fftfreq(h, 1.0 / h)
     kk = np.stack(np.meshgrid(k, k, indexing="ij")).reshape(2, -1).astype(np.float32)   # (2, h*h)
     inv_t = np.transpose(np.linalg.inv(transforms), (0, 2, 1)).astype(np.float32)      # t^-T
