@@ -280,21 +280,61 @@ class ClaimResult:
     recovered: np.ndarray   # recovered claim message (T x T), aligned to the family's spots
 
 
-def aligned_tiles(macro_fold: np.ndarray, variant: int, shift, ramp: np.ndarray,
-                  tile: int = TILE) -> np.ndarray:
-    """Spectra (MACRO**2, T, T) of the macro fold's tiles, in the variant and at the origin the sync found.
+def aligned_spectra(macro_fold: np.ndarray, variant: int, shift, ramp: np.ndarray,
+                    tile: int = TILE) -> tuple[np.ndarray, np.ndarray]:
+    """The macro fold's tiles in the variant and at the origin the sync found, as spectra.
 
     ``shift`` is the integer grid origin and ``ramp`` the half-pixel phase of
     the placement (see :func:`claimkit.mark.detect._surfaces`): the fold's
-    pixel ``x + shift + phase`` holds the pattern's pixel ``x``.
+    pixel ``x + shift + phase`` holds the pattern's pixel ``x``. Returns the
+    tiles' spectra at :func:`claim_frequencies` (MACRO**2, nf), all a claim
+    reads, and the full spectrum (T, T) of the tiles' sum (for the spectral
+    weight), both complex64 and turned by ``ramp``.
+
+    The tiles are real: their half spectra (``rfft2``, half the work of a
+    complex transform) hold every frequency, one member of each Hermitian
+    pair as it is and the other conjugated.
     """
     f = np.rot90(macro_fold, variant) if variant < 4 else np.rot90(macro_fold.T, variant - 4)
     f = np.roll(f, (-int(shift[0]), -int(shift[1])), axis=(0, 1))
     k = f.shape[0] // tile
     blocks = f.reshape(k, tile, k, tile).transpose(0, 2, 1, 3).reshape(k * k, tile, tile)
-    spec = sfft.fft2(blocks.astype(np.float32), axes=(1, 2))
-    spec *= ramp[None]
-    return spec
+    half = sfft.rfft2(np.asarray(blocks, dtype=np.float32), axes=(1, 2))
+    at, flip = _half_places(tile, claim=True)
+    y = np.take(half.reshape(k * k, -1), at, axis=1)
+    y.imag[:, flip] *= -1
+    y *= at_claim_frequencies(ramp, tile)
+    at, flip = _half_places(tile)
+    total = np.take(half.sum(axis=0).ravel(), at)
+    total.imag[flip] *= -1
+    total = total.reshape(tile, tile) * ramp
+    return y, total
+
+
+@lru_cache(maxsize=4)
+def _half_places(tile: int, claim: bool = False) -> tuple[np.ndarray, np.ndarray]:
+    """Where the frequencies of a (T, T) spectrum sit in its ``rfft2`` half (T, T/2+1).
+
+    Every frequency in flat order, or ``claim``: those of :func:`claim_frequencies`.
+
+    Returns the flat indices into the half spectrum and whether the value
+    there is the conjugate (the frequency's Hermitian partner is stored).
+    """
+    half = tile // 2 + 1
+    flat = claim_frequencies(tile)[0] if claim else np.arange(tile * tile)
+    r, c = np.divmod(flat, tile)
+    flip = c >= half
+    r, c = np.where(flip, (-r) % tile, r), np.where(flip, (-c) % tile, c)
+    out = (r * half + c, flip)
+    for arr in out:
+        arr.setflags(write=False)
+    return out
+
+
+def at_claim_frequencies(a: np.ndarray, tile: int = TILE) -> np.ndarray:
+    """The values of ``a`` (..., T, T) at :func:`claim_frequencies`: (..., nf)."""
+    idx, _ = claim_frequencies(tile)
+    return np.take(a.reshape(*a.shape[:-2], tile * tile), idx, axis=-1)
 
 
 def _class_table(offset: tuple[int, int]) -> np.ndarray:
@@ -328,11 +368,11 @@ def _pilot_kernels(seed: bytes, tile: int = TILE) -> tuple[np.ndarray, np.ndarra
     return qt, power
 
 
-def score_families(spec: np.ndarray, families: Mapping[int, bytes]) -> dict[int, np.ndarray]:
+def score_families(y: np.ndarray, families: Mapping[int, bytes], tile: int = TILE) -> dict[int, np.ndarray]:
     """Pilot scores (z) of every family at every macro offset: dict family -> (K^2,) array, ``OFFSETS`` order.
 
-    ``spec`` are the aligned tile spectra (K^2, T, T) times the spectral
-    weight. The score of offset ``(a, b)`` sums, over the tiles ``t = (u,
+    ``y`` are the aligned tiles' spectra at :func:`claim_frequencies`
+    (K^2, nf), times the spectral weight. The score of offset ``(a, b)`` sums, over the tiles ``t = (u,
     v)``, the correlation of each tile with the carrier of its class
     ``c(t) = (u + a, v + b)`` times the family's pilot spots::
 
@@ -347,17 +387,17 @@ def score_families(spec: np.ndarray, families: Mapping[int, bytes]) -> dict[int,
     MACRO`` torus of classes, so it is computed through transforms over that
     torus: one product per (class frequency, frequency) and family.
     """
-    n = spec.shape[-1]
-    idx, _ = claim_frequencies(n)
-    y = np.take(spec.reshape(MACRO, MACRO, -1), idx, axis=2)   # (take: indexing's gather, 2.5x faster)
+    n = tile
+    y = y.reshape(MACRO, MACRO, -1)
     power = (y.real ** 2 + y.imag ** 2).sum(axis=(0, 1)).astype(np.float64)
     yt = _class_dft(y).reshape(MACRO * MACRO, -1)
     names = tuple(families)
-    qt, kpower = _stacked_kernels(tuple(families[f] for f in names), n)
-    # Every family at once (einsum's own loops, not BLAS calls that start threads:
-    # on a loaded two-core machine a threaded 16k-long dot product took 20 ms).
+    qc, kpower = _stacked_kernels(tuple(families[f] for f in names), n)
+    # Every family at once (einsum's and vecdot's own loops, not BLAS calls that
+    # start threads: on a loaded two-core machine a threaded 16k-long dot product
+    # took 20 ms). vecdot conjugates its first argument: qc holds the conjugates.
     sigma = np.sqrt(2.0 * np.einsum("fk,k->f", kpower, power)) / n ** 2
-    v = np.einsum("mk,fmk->fm", yt, qt).reshape(len(names), MACRO, MACRO)
+    v = np.vecdot(qc, yt[:, None, :]).T.reshape(len(names), MACRO, MACRO)
     c = np.fft.fft2(v, axes=(1, 2)) / (MACRO * MACRO)
     z = 2.0 * c.real.reshape(len(names), -1) / (n ** 2 * sigma[:, None])
     return {f: z[i] for i, f in enumerate(names)}
@@ -365,24 +405,32 @@ def score_families(spec: np.ndarray, families: Mapping[int, bytes]) -> dict[int,
 
 @lru_cache(maxsize=8)
 def _stacked_kernels(seeds: tuple[bytes, ...], tile: int = TILE) -> tuple[np.ndarray, np.ndarray]:
-    """:func:`_pilot_kernels` of several families stacked: (F, K^2, nf) and (F, nf), cached per key set."""
+    """:func:`_pilot_kernels` of several families, conjugated and stacked by class frequency.
+
+    Returns (K^2, F, nf) (the conjugates, for ``np.vecdot``) and (F, nf),
+    cached per key set.
+    """
     parts = [_pilot_kernels(s, tile) for s in seeds]
-    qt = np.stack([p[0] for p in parts])
+    qc = np.ascontiguousarray(np.conj(np.stack([p[0] for p in parts])).transpose(1, 0, 2))
     kpower = np.stack([p[1] for p in parts])
-    qt.setflags(write=False)
+    qc.setflags(write=False)
     kpower.setflags(write=False)
-    return qt, kpower
+    return qc, kpower
 
 
 def _class_dft(a: np.ndarray) -> np.ndarray:
     """The 2-D DFT over the first two axes (the K x K class torus) of a (K, K, ...) complex array.
 
-    Written out as K^2 scaled sums per axis: NumPy's FFT along a short axis
-    with a long stride cost 26 ms for (4, 4, 16384); this costs about 2 ms.
+    Written out per axis: NumPy's FFT along a short axis with a long stride
+    cost 26 ms for (4, 4, 16384). For K = 4 (``MACRO``) as the radix-4
+    butterfly (sums, differences and exact turns by -i: 0.6 -> 0.15 ms for
+    the claim frequencies); otherwise as K^2 scaled sums per axis.
     """
+    a = np.asarray(a, dtype=np.complex64)
+    if a.shape[0] == 4:
+        return np.swapaxes(_dft4(np.swapaxes(_dft4(a), 0, 1)), 0, 1)
     k = a.shape[0]
     w = np.exp(-2j * np.pi * np.outer(np.arange(k), np.arange(k)) / k).astype(np.complex64)
-    a = np.asarray(a, dtype=np.complex64)
     rows = np.zeros_like(a)
     for m in range(k):
         for u in range(k):
@@ -392,6 +440,14 @@ def _class_dft(a: np.ndarray) -> np.ndarray:
         for v in range(k):
             out[:, m] += w[m, v] * rows[:, v]
     return out
+
+
+def _dft4(a: np.ndarray) -> np.ndarray:
+    """The 4-point DFT along the first axis (radix-4 butterfly)."""
+    s02, d02 = a[0] + a[2], a[0] - a[2]
+    s13, d13 = a[1] + a[3], a[1] - a[3]
+    d13 *= np.complex64(-1j)                  # exact: a swap of parts and a sign
+    return np.stack([s02 + s13, d02 + d13, s02 - s13, d02 - d13])
 
 
 def score_families_direct(spec: np.ndarray, families: Mapping[int, bytes]) -> dict[int, np.ndarray]:
@@ -419,35 +475,28 @@ def score_families_direct(spec: np.ndarray, families: Mapping[int, bytes]) -> di
     return out
 
 
-def decode_family(spec: np.ndarray, seed: bytes, offset: tuple[int, int], *,
+def decode_family(y: np.ndarray, seed: bytes, offset: tuple[int, int], *,
                   payload_check: Callable[[np.ndarray], bool] | None,
                   known_bits: np.ndarray | None,
-                  decode: bool = True,
                   candidates: PayloadList | None = None,
                   accept_listed: Callable[[float], bool] | None = None,
-                  ) -> tuple[np.ndarray | None, bool, float | None, np.ndarray]:
+                  tile: int = TILE,
+                  ) -> tuple[np.ndarray, bool, float | None, np.ndarray]:
     """Recovered message of one family at one offset, decoded; full-template score if the payload checks.
 
-    ``decode=False`` returns the recovered message only (bits None): the
-    examination skips the Viterbi decoder where the pilot score is too low
-    for any payload to reach the threshold (see ``detect.DECODE_MIN_Z3``).
+    ``y``: the aligned tiles' weighted spectra at :func:`claim_frequencies`
+    (K^2, nf), as :func:`score_families` reads them. (The examination calls
+    it only where the pilot score could lead to a claim, see
+    ``detect.DECODE_MIN_Z3``; elsewhere it reads :func:`recovered` alone.)
     Where the decoder's payload does not check, the best match in
     ``candidates`` is tried (:class:`claimkit.mark.payload.PayloadList`), and
     kept only where ``accept_listed(z_full)`` holds.
     """
-    n = spec.shape[-1]
+    n = tile
     fam = family_pattern(seed, n)
-    idx, partner = claim_frequencies(n)
-    table = _class_table(offset)
+    idx, _ = claim_frequencies(n)
     sp = spot_spectrum(n, SPOT_SIGMA).ravel()[idx]
-    y = np.take(spec.reshape(MACRO * MACRO, -1), idx, axis=1)
-    half = (y * np.conj(fam.phases[table])).sum(axis=0) * sp
-    full = np.zeros(n * n, dtype=np.complex128)
-    full[idx] = half
-    full[partner] = np.conj(half)
-    rec = np.real(np.fft.ifft2(full.reshape(n, n)))
-    if not decode:
-        return None, False, None, rec
+    rec = recovered(y, seed, offset, n)
     soft = rec[fam.code_pos[:, 0], fam.code_pos[:, 1]]
     bits = CODE.decode(soft, PAYLOAD_BITS, known=known_bits)
     if payload_check is None:
@@ -469,6 +518,19 @@ def decode_family(spec: np.ndarray, seed: bytes, offset: tuple[int, int], *,
         if accept_listed is None or accept_listed(z_full):
             return listed, True, z_full, rec
     return bits, False, None, rec
+
+
+def recovered(y: np.ndarray, seed: bytes, offset: tuple[int, int], tile: int = TILE) -> np.ndarray:
+    """The recovered claim message (T, T) of one family at one macro offset (``y`` as in decode_family)."""
+    n = tile
+    fam = family_pattern(seed, n)
+    idx, partner = claim_frequencies(n)
+    sp = spot_spectrum(n, SPOT_SIGMA).ravel()[idx]
+    half = (y * np.conj(fam.phases[_class_table(offset)])).sum(axis=0) * sp
+    full = np.zeros(n * n, dtype=np.complex128)
+    full[idx] = half
+    full[partner] = np.conj(half)
+    return np.real(np.fft.ifft2(full.reshape(n, n)))
 
 
 def reference_message(seed: bytes, bits: np.ndarray | None,

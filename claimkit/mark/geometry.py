@@ -432,27 +432,34 @@ def _top_maxima(score: np.ndarray, keep: int, size: int = 7) -> list[tuple[int, 
     around it, rows clamped at the edges and columns circular: what comparing
     with ``ndimage.maximum_filter(mode=("nearest", "wrap"))`` finds, but only
     the highest values are looked at (the filter over the whole surface cost
-    more than the comb sums).
+    more than the comb sums). The candidates' blocks are compared a chunk at
+    a time, in the order of their values (a keyed search keeps hundreds of
+    maxima: one comparison per candidate in Python cost 18 ms for 384).
     """
-    w = score.shape[1]
+    h, w = score.shape
     flat = score.ravel()
     r = size // 2
+    offs = np.arange(-r, r + 1)
     count = min(flat.size, 32 * keep)
+    chunk = max(64, 2 * keep)
     while True:
         cand = np.argpartition(flat, flat.size - count)[flat.size - count:]
         cand = cand[np.argsort(flat[cand])[::-1]]
+        vals = flat[cand]
+        # Values are in decreasing order: the positive ones are a prefix.
+        positive = int(np.count_nonzero(vals > 0))
         out: list[tuple[int, int, float]] = []
-        for idx in cand:
-            val = float(flat[idx])
-            if val <= 0:
+        for c0 in range(0, positive, chunk):
+            part = cand[c0:min(positive, c0 + chunk)]
+            i, j = np.divmod(part, w)
+            rows = np.clip(i[:, None] + offs, 0, h - 1)      # clamped: repeated edge rows
+            cols = (j[:, None] + offs) % w
+            block = score[rows[:, :, None], cols[:, None, :]].max(axis=(1, 2))
+            at = np.flatnonzero(flat[part] >= block)
+            out.extend((int(i[a]), int(j[a]), float(flat[part[a]])) for a in at[:keep - len(out)])
+            if len(out) == keep:
                 return out
-            i, j = divmod(int(idx), w)
-            block = score[max(0, i - r):i + r + 1, np.arange(j - r, j + r + 1) % w]
-            if val >= block.max():
-                out.append((i, j, val))
-                if len(out) == keep:
-                    return out
-        if count == flat.size:
+        if positive < count or count == flat.size:
             return out
         count = min(flat.size, 8 * count)
 
