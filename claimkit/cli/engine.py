@@ -112,8 +112,11 @@ def _with_lines(profile, rep: dict, path: Path, threshold: float, folders: list[
     # (the examination's own decoding where it kept it: the same pixels).
     if whole is None:
         whole = read_picture(path, method=rep.get("examination_method")).pixels
-    luma = to_luma(whole)
-    match = match_work(profile, rep, luma)
+    # Without a reference picture only the perceptual fingerprint reads the copy, and it
+    # reads any real dtype (its cell sums are exact in float64 either way): a JPEG's 8-bit
+    # luma plane goes to it as it is, with no full-size float copy.
+    grey = whole if whole.ndim == 2 and str(whole.dtype) == "uint8" else to_luma(whole)
+    match = match_work(profile, rep, grey)
     record = None if match is None else profile.work(match["work_id"]).record
     ref_luma, reference = None, None
     if record is not None and folders:
@@ -121,6 +124,7 @@ def _with_lines(profile, rep: dict, path: Path, threshold: float, folders: list[
         if found is not None:
             ref_luma = to_luma(read_picture(found[0]).pixels)
             reference = rep["reference"] = {"file": str(found[0]), "kind": found[1]}
+    luma = grey if ref_luma is None else to_luma(whole)
     lines = weigh_lines(luma, exhibit_id=path.name, rep=rep, threshold=threshold, match=match,
                         work_record=record, owner=profile.owner, reference_luma=ref_luma,
                         reference=reference, robustness=None, label=f"The file {path.name}")
