@@ -437,22 +437,22 @@ def _top_maxima(score: np.ndarray, keep: int, size: int = 7) -> list[tuple[int, 
     w = score.shape[1]
     flat = score.ravel()
     r = size // 2
+    # Every value's block, read from one copy padded with the edge rows and wrapped columns
+    # (the candidates' blocks are then one gather, not a NumPy call each: ~8000 calls per
+    # 24 MP examination before). The same comparisons of the same values, so the same peaks.
+    padded = np.pad(np.pad(score, ((r, r), (0, 0)), mode="edge"), ((0, 0), (r, r)), mode="wrap")
+    blocks = np.lib.stride_tricks.sliding_window_view(padded, (size, size))
     count = min(flat.size, 32 * keep)
     while True:
         cand = np.argpartition(flat, flat.size - count)[flat.size - count:]
         cand = cand[np.argsort(flat[cand])[::-1]]
-        out: list[tuple[int, int, float]] = []
-        for idx in cand:
-            val = float(flat[idx])
-            if val <= 0:
-                return out
-            i, j = divmod(int(idx), w)
-            block = score[max(0, i - r):i + r + 1, np.arange(j - r, j + r + 1) % w]
-            if val >= block.max():
-                out.append((i, j, val))
-                if len(out) == keep:
-                    return out
-        if count == flat.size:
+        vals = flat[cand]
+        low = np.flatnonzero(vals <= 0)     # best first: from the first one on, none is positive
+        stop = int(low[0]) if low.size else cand.size
+        i, j = np.divmod(cand[:stop], w)
+        hits = np.flatnonzero(vals[:stop] >= blocks[i, j].max(axis=(1, 2)))[:keep]
+        out = [(int(i[k]), int(j[k]), float(vals[k])) for k in hits]
+        if len(out) == keep or stop < cand.size or count == flat.size:
             return out
         count = min(flat.size, 8 * count)
 
