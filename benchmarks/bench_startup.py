@@ -10,7 +10,10 @@ child), the median over interleaved rounds, all in this one run:
 - ``claimkit --help`` and ``claimkit works`` (no passphrase);
 - ``claimkit examine FILE`` opening the profile with the passphrase (scrypt at
   the production cost, N = 2**17) and with an unlocked session
-  (``claimkit unlock``: no scrypt).
+  (``claimkit unlock``: no scrypt);
+- ``claimkit examine`` in a session of a copy marked under the profile's own
+  key (the owner's case: found at the first scale, then the content line and
+  the opinion are weighed).
 
 The photo carries no mark (every scale is examined). claimkit is byte-compiled
 first (``compileall``, here and in ``--before DIR``), as an installed wheel is:
@@ -75,6 +78,7 @@ def main() -> None:
     from skimage import data
 
     import claimkit
+    from claimkit import workflow
     from claimkit.evidence.profile import Profile
 
     compileall.compile_dir(Path(claimkit.__file__).parent, quiet=1)
@@ -88,12 +92,14 @@ def main() -> None:
         env.update(CLAIMKIT_HOME=str(home), XDG_RUNTIME_DIR=str(work), OMP_NUM_THREADS="1")
         os.environ.pop("CLAIMKIT_TEST_FAST_KDF", None)
         os.environ["XDG_RUNTIME_DIR"] = str(work)    # the session file, as the commands see it
-        with Profile.create(home, "Bench Owner", b"bench") as p:   # production scrypt cost
-            session = p.unlock(3600) if hasattr(p, "unlock") else None
         w = round((args.megapixels * 1e6 * 1.5) ** 0.5)
         src = work / "photo.jpg"
         Image.fromarray(data.coffee()).resize((w, round(w / 1.5)), Image.BICUBIC).save(
             src, quality=92)
+        marked = work / "marked.jpg"
+        with Profile.create(home, "Bench Owner", b"bench") as p:   # production scrypt cost
+            session = p.unlock(3600) if hasattr(p, "unlock") else None
+            workflow.mark_file(p, src, marked)
         with_pass = dict(env, CLAIMKIT_PASSPHRASE="bench")
         py = sys.executable
         ck = [py, "-m", "claimkit"]
@@ -105,12 +111,16 @@ def main() -> None:
             "claimkit works": ([*ck, "works"], env),
             "claimkit examine (passphrase)": ([*ck, "examine", str(src)], with_pass),
         }
+        names = ["claimkit --help", "claimkit works", "claimkit examine (passphrase)"]
         if session is not None:
             rows["claimkit examine (session)"] = (
                 [*ck, "examine", str(src)], dict(env, CLAIMKIT_SESSION=session.token))
+            rows["claimkit examine marked copy (session)"] = (
+                [*ck, "examine", str(marked)], dict(env, CLAIMKIT_SESSION=session.token))
+            names += ["claimkit examine (session)", "claimkit examine marked copy (session)"]
         if args.before:
             before = dict(env, PYTHONPATH=str(args.before.resolve()))
-            for name in ("claimkit --help", "claimkit works", "claimkit examine (passphrase)"):
+            for name in names:
                 argv, e = rows[name]
                 rows[f"BEFORE {name}"] = (argv, {**e, "PYTHONPATH": before["PYTHONPATH"]})
         runs: dict[str, list[dict]] = collections.defaultdict(list)

@@ -181,6 +181,10 @@ class Picture:
         filter (``Image.reduce``), ``overview_step`` pixels to one, when asked
         for (``read_picture(overview=...)``); the examination of a large copy
         looks for the mark's coarse component there.
+    whole : ndarray or None
+        With a region and ``read_picture(keep_whole=True)``: the whole upright
+        picture as decoded, the pixels ``read_picture`` without a region gives
+        (None where the decoder's own memory was not used: read it again).
     dpi : tuple of float or None
         Resolution in pixels per inch as Pillow reads it (JFIF, PNG pHYs,
         TIFF or EXIF), None where the file states none.
@@ -206,6 +210,7 @@ class Picture:
     examination_method: str | None = None
     overview: np.ndarray | None = field(default=None, repr=False)   # whole picture, box-reduced
     overview_step: int = 1
+    whole: np.ndarray | None = field(default=None, repr=False)   # with a region, when kept
 
     @property
     def height(self) -> int:
@@ -239,7 +244,8 @@ def resolve_max_pixels(max_pixels: int | None = None) -> int:
 def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
                  region: Callable[[tuple[int, int]], tuple[int, int, int, int]] | None = None,
                  overview: Callable[[tuple[int, int]], int] | None = None,
-                 method: str | None = None, data: bytes | None = None) -> Picture:
+                 method: str | None = None, data: bytes | None = None,
+                 keep_whole: bool = False) -> Picture:
     """Decode a photo into an upright array plus the metadata to carry over.
 
     Parameters
@@ -271,6 +277,10 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
     data : bytes, optional
         The file's bytes when the caller holds them already (a file it has just
         written): they are decoded and hashed instead of reading ``path`` again.
+    keep_whole : bool
+        With ``region``: keep the whole decoded picture too (``Picture.whole``),
+        for a caller that needs it after the examination (``examine``'s content
+        line) without decoding the file a second time.
 
     Returns
     -------
@@ -317,6 +327,7 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
             )
         notes: list[str] = []
         small, step = None, 1   # the overview, when asked for
+        whole = None            # the whole decoded picture, when a region is read and it is kept
         frames = int(getattr(im, "n_frames", 1) or 1)
         if frames > 1:
             # Image.open leaves the first frame selected.
@@ -352,6 +363,7 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
                         box = region(upright_size)
                         stored = _stored_box(oriented, (height, width), box)
                         if own is not None:
+                            whole = own if keep_whole else None
                             own = own[stored[1]:stored[3], stored[0]:stored[2]]
                         else:
                             part = im.crop(stored)
@@ -392,6 +404,8 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
         small = np.ascontiguousarray(_upright(small, orientation))
     if alpha is not None:
         alpha = _upright(alpha, orientation)
+    if whole is not None:
+        whole = _compact(_upright(whole, orientation))
     if orientation in _TRANSPOSES:
         notes.append(f"EXIF orientation {orientation} applied to the pixels")
     full_size = None
@@ -420,6 +434,7 @@ def read_picture(path: str | os.PathLike, *, max_pixels: int | None = None,
         examination_method=method,
         overview=small,
         overview_step=step,
+        whole=whole,
     )
 
 

@@ -605,16 +605,22 @@ def examine_file(profile, path: str | os.PathLike, *, threshold: float = detect.
 
     Returns the JSON report (the ``examine --json`` contract) and the full finding.
     """
-    path = Path(path)
-    pic = read_for_examination(path, max_pixels=max_pixels)
+    return examine_read(profile, read_for_examination(path, max_pixels=max_pixels),
+                        threshold=threshold, decoys=decoys, workers=workers)
+
+
+def examine_read(profile, pic: Picture, *, threshold: float = detect.DEFAULT_THRESHOLD,
+                 decoys: int = 0, workers: int = 1) -> tuple[dict, Finding]:
+    """:func:`examine_file` of a copy already read by :func:`read_for_examination`."""
     finding = examine_picture(pic, mark_keys(profile), owner_tag=profile.owner_tag,
                               payload_check=owner_payload_check(profile),
                               threshold=threshold, decoys=decoys, workers=workers)
-    return report_for(path, pic, finding, profile), finding
+    return report_for(pic.path, pic, finding, profile), finding
 
 
 def read_for_examination(path: str | os.PathLike, *, max_pixels: int | None = None,
-                         method: str = CURRENT_EXAMINATION_METHOD) -> Picture:
+                         method: str = CURRENT_EXAMINATION_METHOD,
+                         keep_whole: bool = False) -> Picture:
     """Read a copy for :func:`examine_picture`: only the window the detector reads is converted.
 
     Large photos are examined on a central window (``detect.MAX_EXAMINE_PIXELS``);
@@ -623,10 +629,11 @@ def read_for_examination(path: str | os.PathLike, *, max_pixels: int | None = No
     gives there for the examination ``method`` (a colour JPEG's luma plane
     under the current method; see :data:`claimkit.imageio.EXAMINATION_METHODS`);
     the coarse views come from the whole picture box-reduced by the decoder
-    (``Picture.overview``, luma too under that method).
+    (``Picture.overview``, luma too under that method). ``keep_whole`` keeps the
+    whole decoded picture as well (``Picture.whole``), for the content line.
     """
     return read_picture(path, max_pixels=max_pixels, region=detect.central_window,
-                        overview=scales.overview_step, method=method)
+                        overview=scales.overview_step, method=method, keep_whole=keep_whole)
 
 
 def report_for(path: Path, pic: Picture, finding: Finding, profile=None) -> dict:

@@ -200,3 +200,20 @@ def test_a_label_that_opens_a_sentence_reads_in_lower_case_inside_the_opinion():
     assert ev["propositions"]["Hp"].startswith("The file x.jpg derives")
     assert "the proposition that the file x.jpg derives from work W-1" in ev["verbal"]
     assert "The file" not in ev["verbal"][1:]
+
+
+def test_the_bisection_stops_where_it_stands_still_with_the_same_bits():
+    # binomial_upper leaves its bisection once a step moves neither end (every later step
+    # would repeat it): the bits of the full 200 steps, checked here against that loop
+    # written out (and the bounds against scipy above).
+    def full_loop(k, n, confidence=lr.CONFIDENCE):
+        lo, hi = k / n, 1.0
+        for _ in range(200):
+            mid = 0.5 * (lo + hi)
+            lo, hi = (mid, hi) if lr._binom_cdf(k, n, mid) > 1.0 - confidence else (lo, mid)
+        return 0.5 * (lo + hi)
+
+    for n in (1, 7, 30, 189, 264, 1326):
+        for k in sorted({0, 1, n // 3, n // 2, n - 1}):
+            for confidence in (lr.CONFIDENCE, 0.99):
+                assert lr.binomial_upper(k, n, confidence) == full_loop(k, n, confidence), (k, n)

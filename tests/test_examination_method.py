@@ -168,3 +168,24 @@ def test_overview_of_the_luma_plane_is_the_reduced_whole_plane(tmp_path, orienta
     assert rgb.overview is not None and rgb.overview.shape[:2] == part.overview.shape
     d = part.overview.astype(np.float64) - to_luma(rgb.overview)
     assert np.sqrt(np.mean(d ** 2)) < RMS_BOUND
+
+
+@pytest.mark.parametrize("method,orientation", [(LUMA_FROM_JPEG_Y, 1), (LUMA_FROM_JPEG_Y, 6),
+                                                (LUMA_FROM_RGB, 8)])
+def test_the_whole_picture_kept_by_the_examination_read_is_a_whole_read(tmp_path, method,
+                                                                        orientation):
+    """``examine`` weighs its content line on the examination's own decoding (``keep_whole``):
+    the very pixels a second, whole read by the same method gives (which it no longer makes)."""
+    big = np.tile(data.rocket(), (5, 4, 1))[:2100, :2300]   # over the window size
+    f = tmp_path / "big.jpg"
+    exif = Image.Exif()
+    exif[0x0112] = orientation
+    _jpeg(big, f, quality=85, subsampling=2, exif=exif.tobytes())
+    part = read_for_examination(f, method=method, keep_whole=True)
+    whole = read_picture(f, method=method)
+    assert part.whole is not None and part.whole.dtype == whole.pixels.dtype
+    np.testing.assert_array_equal(part.whole, whole.pixels)
+    np.testing.assert_array_equal(to_luma(part.whole), to_luma(whole.pixels))
+    r0, c0, h, w = part.region
+    np.testing.assert_array_equal(part.pixels, whole.pixels[r0:r0 + h, c0:c0 + w])
+    assert read_for_examination(f, method=method).whole is None     # kept only when asked

@@ -172,3 +172,12 @@ def test_bad_luma_is_refused(bad):
 def test_bad_fingerprint_strings_are_refused(bad):
     with pytest.raises(ValueError):
         fingerprint_distance(bad, "00" * 16)
+
+
+def test_an_8_bit_luma_plane_gives_the_fingerprint_of_its_float_luma():
+    # `claimkit examine` hands a JPEG's 8-bit luma plane to the fingerprint as it is (no
+    # full-size float copy): the cell sums are exact in float64 either way, so the same bits.
+    for name in ("coffee", "rocket", "text"):
+        img = getattr(skimage.data, name)()
+        grey = np.asarray(Image.fromarray(img).convert("L"))      # Pillow's 8-bit luma
+        assert perceptual_fingerprint(grey) == perceptual_fingerprint(to_luma(grey))

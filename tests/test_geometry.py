@@ -372,3 +372,17 @@ def test_fit_a_little_off_the_copys_own_grid_is_the_grid():
     near = [lat.transform(TILE) for lat in geometry.find_lattices(detect.whiten(to_luma(bigger)), TILE)
             if np.abs(lat.transform(TILE) - np.eye(2)).max() < 0.01]
     assert near and np.allclose(np.diag(near[0]), 1.005, atol=5e-4)
+
+
+def test_top_maxima_on_surfaces_narrower_than_the_block():
+    # The blocks come from one padded copy (rows clamped, columns wrapped more than once when
+    # the surface is narrower than the block): the reference is still scipy's maximum_filter.
+    rng = np.random.default_rng(16)
+    for shape, keep in (((5, 4), 2), ((3, 40), 3), ((30, 6), 4), ((1, 9), 1)):
+        score = rng.normal(0, 1, shape)
+        mx = ndimage.maximum_filter(score, size=(7, 7), mode=("nearest", "wrap"))
+        where = np.argwhere((score == mx) & (score > 0))
+        vals = score[where[:, 0], where[:, 1]]
+        want = [tuple(where[i]) for i in np.argsort(vals)[::-1][:keep]]
+        got = [(i, j) for i, j, _ in geometry._top_maxima(score, keep)]
+        assert got == want, shape

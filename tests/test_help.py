@@ -74,3 +74,18 @@ def test_the_command_line_loads_numpy_parts_it_never_uses_only_when_used():
         "print(loaded, 'unittest' in sys.modules, len(DEFERRED_NUMPY_PARTS))")
     out = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, check=False)
     assert out.stdout.split() == ["[]", "True", "3"], out.stderr[-2000:]
+
+
+def test_examines_content_line_without_a_reference_loads_no_registration_code():
+    # `claimkit examine` weighs the content line on the work record's fingerprint unless
+    # --originals gives the registered file: scipy.signal and scikit-image's feature,
+    # registration and transform modules (about 0.6 s of CPU to import) load only when used.
+    import subprocess
+    import sys
+
+    probe = ("import sys; import claimkit.cli.engine, claimkit.case.examine; "
+             "print(sorted(m for m in ('scipy.signal', 'scipy.stats', 'skimage.feature', "
+             "'skimage.registration', 'skimage.transform', 'skimage.measure', 'skimage.metrics') "
+             "if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, check=False)
+    assert out.stdout.split() == ["[]"], out.stderr[-2000:]

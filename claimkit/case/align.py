@@ -30,9 +30,6 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy import ndimage
-from skimage.metrics import structural_similarity
-from skimage.registration import phase_cross_correlation
-from skimage.transform import rescale
 
 from claimkit.mark import scales
 
@@ -88,6 +85,8 @@ def _translation(ref: np.ndarray, copy: np.ndarray, lin: np.ndarray) -> np.ndarr
     bm = np.zeros((H, W), bool)
     b[:shape[0], :shape[1]] = canvas
     bm[:shape[0], :shape[1]] = cmask
+    from skimage.registration import phase_cross_correlation
+
     shift = phase_cross_correlation(a, b, reference_mask=am, moving_mask=bm,
                                     overlap_ratio=0.05)[0]
     # b shifted by ``shift`` (row, col) lines up with a: canvas pixel p sits at p + shift.
@@ -100,6 +99,8 @@ def _measure(ref: np.ndarray, aligned: np.ndarray, mask: np.ndarray) -> tuple[fl
     inner = ndimage.binary_erosion(mask, iterations=EDGE)
     if inner.sum() < 49:
         return float("nan"), inner
+    from skimage.metrics import structural_similarity
+
     _, smap = structural_similarity(ref, aligned, data_range=255.0, full=True)
     return float(smap[inner].mean()), inner
 
@@ -128,6 +129,11 @@ def align(reference_luma: np.ndarray, copy_luma: np.ndarray, geometry: dict | No
     -------
     Alignment
     """
+    # scikit-image is imported here, not with the module: `claimkit examine` imports the
+    # case examination (for its content line) and aligns nothing.
+    from skimage.registration import phase_cross_correlation
+    from skimage.transform import rescale
+
     ref_full = np.asarray(reference_luma, dtype=np.float64)
     copy = np.asarray(copy_luma, dtype=np.float64)
     r = float(reference_scale)

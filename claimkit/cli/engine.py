@@ -98,15 +98,25 @@ def _registered_file(record: dict, folders: list[Path]) -> tuple[Path, str] | No
     return None
 
 
-def _with_lines(profile, rep: dict, path: Path, threshold: float, folders: list[Path]) -> dict:
-    """Add ``content``, ``content_mismatch`` and ``evaluation`` to an ``examine --json`` line."""
+def _with_lines(profile, rep: dict, path: Path, threshold: float, folders: list[Path],
+                whole=None) -> dict:
+    """Add ``content``, ``content_mismatch`` and ``evaluation`` to an ``examine --json`` line.
+
+    ``whole``: the whole copy as the examination decoded it, when it was kept.
+    """
     from claimkit.case.examine import match_work, weigh_lines
     from claimkit.imageio import read_picture, to_luma
 
     # The copy read as the examination read it (the luma plane of a colour JPEG), as
-    # `case examine` and `verify` read an exhibit for these lines: one reading for all three.
-    luma = to_luma(read_picture(path, method=rep.get("examination_method")).pixels)
-    match = match_work(profile, rep, luma)
+    # `case examine` and `verify` read an exhibit for these lines: one reading for all three
+    # (the examination's own decoding where it kept it: the same pixels).
+    if whole is None:
+        whole = read_picture(path, method=rep.get("examination_method")).pixels
+    # Without a reference picture only the perceptual fingerprint reads the copy, and it
+    # reads any real dtype (its cell sums are exact in float64 either way): a JPEG's 8-bit
+    # luma plane goes to it as it is, with no full-size float copy.
+    grey = whole if whole.ndim == 2 and str(whole.dtype) == "uint8" else to_luma(whole)
+    match = match_work(profile, rep, grey)
     record = None if match is None else profile.work(match["work_id"]).record
     ref_luma, reference = None, None
     if record is not None and folders:
@@ -114,6 +124,7 @@ def _with_lines(profile, rep: dict, path: Path, threshold: float, folders: list[
         if found is not None:
             ref_luma = to_luma(read_picture(found[0]).pixels)
             reference = rep["reference"] = {"file": str(found[0]), "kind": found[1]}
+    luma = grey if ref_luma is None else to_luma(whole)
     lines = weigh_lines(luma, exhibit_id=path.name, rep=rep, threshold=threshold, match=match,
                         work_record=record, owner=profile.owner, reference_luma=ref_luma,
                         reference=reference, robustness=None, label=f"The file {path.name}")
@@ -130,9 +141,10 @@ def cmd_examine(args) -> int:
     with open_profile(args) as profile:
         for f in args.files:
             try:
-                rep, finding = workflow.examine_file(profile, f, threshold=threshold,
-                                                     decoys=args.decoys,
-                                                     max_pixels=args.max_pixels)
+                pic = workflow.read_for_examination(f, max_pixels=args.max_pixels,
+                                                    keep_whole=True)
+                rep, finding = workflow.examine_read(profile, pic, threshold=threshold,
+                                                     decoys=args.decoys)
             except InputError as exc:
                 # One bad file does not stop the others: a line now, exit 2 at the end.
                 bad += 1
@@ -148,7 +160,8 @@ def cmd_examine(args) -> int:
                 # --originals holds it, else against the work record's fingerprint. The words
                 # need them too: a found mark whose derivation is not claimed says so.
                 rep = _with_lines(profile, rep, Path(f), threshold,
-                                  [Path(d) for d in args.originals or []])
+                                  [Path(d) for d in args.originals or []], pic.whole)
+            del pic
             if args.json:
                 print_json(rep)
             else:

@@ -33,8 +33,6 @@ from __future__ import annotations
 
 import numpy as np
 from scipy import ndimage
-from scipy.signal import fftconvolve
-from skimage.transform import rescale
 
 __all__ = ["BROAD_SIDE", "FALLBACK_OVERLAP", "MIN_OVERLAP", "MIN_PIXELS", "broad_correlation",
            "masked_ncc"]
@@ -67,6 +65,7 @@ STRUCTURED = 10 * FLAT
 
 def _xcorr(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     """Full 2-D cross-correlation sum_x a(x) b(x - d) for every shift d (by FFT)."""
+    from scipy.signal import fftconvolve  # here: scipy.signal takes ~0.3 s to import
     return fftconvolve(a, b[::-1, ::-1], mode="full")
 
 
@@ -116,6 +115,8 @@ def _reduce(luma: np.ndarray, factor: float) -> np.ndarray:
     a = np.asarray(luma, dtype=np.float64)
     a = a / (255.0 if float(a.max(initial=0.0)) > 1.0 else 1.0)
     if factor != 1.0:
+        from skimage.transform import rescale
+
         a = rescale(a, factor, anti_aliasing=factor < 1.0, preserve_range=True, order=1)
     return ndimage.gaussian_filter(a, SMOOTH)
 

@@ -44,10 +44,10 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy import ndimage
-from skimage.feature import ORB
-from skimage.measure import ransac
-from skimage.metrics import structural_similarity
-from skimage.transform import SimilarityTransform, rescale
+
+# scikit-image's feature, measure, metrics and transform modules are imported where they
+# are used: `claimkit examine` imports this module for the content line, and without a
+# reference picture (the record's fingerprint alone) uses none of them.
 
 __all__ = [
     "COARSE_SIDE",
@@ -124,6 +124,8 @@ def _work(luma: np.ndarray, side: int = WORK_SIDE,
     if max(a.shape) < min_side:
         s = min_side / max(a.shape)
     if s != 1.0:
+        from skimage.transform import rescale
+
         a = rescale(a, s, anti_aliasing=s < 1.0, preserve_range=True, order=1)
     return np.clip(a, 0.0, 1.0), s
 
@@ -171,6 +173,8 @@ def _describe(work: np.ndarray, s: float, shape: tuple[int, int], mirrored: bool
     img = work[:, ::-1] if mirrored else work
     if stretch:
         img = _stretch(img)
+    from skimage.feature import ORB
+
     orb = ORB(n_keypoints=KEYPOINTS, fast_threshold=FAST_THRESHOLD)
     try:
         orb.detect_and_extract(img)
@@ -193,6 +197,8 @@ def reduced(reference: Features, side: int) -> Features:
     25 %) is matched against the reference at its own size as well: ORB's
     pyramid spans a factor of 3.6, not of 10.
     """
+    from skimage.transform import rescale
+
     f = side / max(reference.work.shape)
     work = np.clip(rescale(reference.work, f, anti_aliasing=True, preserve_range=True), 0.0, 1.0)
     return _describe(work, reference.scale * f, reference.shape, False)
@@ -270,6 +276,9 @@ def _fit(ref: Features, exh: Features, mirrored: bool) -> tuple[np.ndarray | Non
         flip = np.array([[-1.0, 0.0, exh.shape[1] - 1.0], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]])
     src = (exh.xy[pairs[:, 0]] @ flip[:2, :2].T) + flip[:2, 2]
     dst = ref.xy[pairs[:, 1]]
+    from skimage.measure import ransac
+    from skimage.transform import SimilarityTransform
+
     threshold = RESIDUAL_PX / ref.scale
 
     def plausible(model, *_):
@@ -323,6 +332,8 @@ def _similarity(ref: Features, exh: Features, mat: np.ndarray) -> tuple[float, n
     inner = ndimage.binary_erosion(mask, iterations=EDGE)
     if inner.sum() < 49 or min(h, w) < 7:
         return float("nan"), inner
+    from skimage.metrics import structural_similarity
+
     _, smap = structural_similarity(ref.work, aligned, data_range=1.0, full=True)
     return float(smap[inner].mean()), inner
 

@@ -91,8 +91,12 @@ def binomial_upper(k: int, n: int, confidence: float = CONFIDENCE) -> float:
     for _ in range(200):
         mid = 0.5 * (lo + hi)
         if _binom_cdf(k, n, mid) > alpha:
+            if mid == lo:     # nothing moves any more: every later step repeats this one
+                break
             lo = mid
         else:
+            if mid == hi:
+                break
             hi = mid
     return 0.5 * (lo + hi)
 

@@ -432,34 +432,27 @@ def _top_maxima(score: np.ndarray, keep: int, size: int = 7) -> list[tuple[int, 
     around it, rows clamped at the edges and columns circular: what comparing
     with ``ndimage.maximum_filter(mode=("nearest", "wrap"))`` finds, but only
     the highest values are looked at (the filter over the whole surface cost
-    more than the comb sums). The candidates' blocks are compared a chunk at
-    a time, in the order of their values (a keyed search keeps hundreds of
-    maxima: one comparison per candidate in Python cost 18 ms for 384).
+    more than the comb sums).
     """
-    h, w = score.shape
+    w = score.shape[1]
     flat = score.ravel()
     r = size // 2
-    offs = np.arange(-r, r + 1)
+    # Every value's block, read from one copy padded with the edge rows and wrapped columns
+    # (the candidates' blocks are then one gather, not a NumPy call each: ~8000 calls per
+    # 24 MP examination before). The same comparisons of the same values, so the same peaks.
+    padded = np.pad(np.pad(score, ((r, r), (0, 0)), mode="edge"), ((0, 0), (r, r)), mode="wrap")
+    blocks = np.lib.stride_tricks.sliding_window_view(padded, (size, size))
     count = min(flat.size, 32 * keep)
-    chunk = max(64, 2 * keep)
     while True:
         cand = np.argpartition(flat, flat.size - count)[flat.size - count:]
         cand = cand[np.argsort(flat[cand])[::-1]]
         vals = flat[cand]
-        # Values are in decreasing order: the positive ones are a prefix.
-        positive = int(np.count_nonzero(vals > 0))
-        out: list[tuple[int, int, float]] = []
-        for c0 in range(0, positive, chunk):
-            part = cand[c0:min(positive, c0 + chunk)]
-            i, j = np.divmod(part, w)
-            rows = np.clip(i[:, None] + offs, 0, h - 1)      # clamped: repeated edge rows
-            cols = (j[:, None] + offs) % w
-            block = score[rows[:, :, None], cols[:, None, :]].max(axis=(1, 2))
-            at = np.flatnonzero(flat[part] >= block)
-            out.extend((int(i[a]), int(j[a]), float(flat[part[a]])) for a in at[:keep - len(out)])
-            if len(out) == keep:
-                return out
-        if positive < count or count == flat.size:
+        low = np.flatnonzero(vals <= 0)     # best first: from the first one on, none is positive
+        stop = int(low[0]) if low.size else cand.size
+        i, j = np.divmod(cand[:stop], w)
+        hits = np.flatnonzero(vals[:stop] >= blocks[i, j].max(axis=(1, 2)))[:keep]
+        out = [(int(i[k]), int(j[k]), float(vals[k])) for k in hits]
+        if len(out) == keep or stop < cand.size or count == flat.size:
             return out
         count = min(flat.size, 8 * count)
 
