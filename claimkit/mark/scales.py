@@ -89,6 +89,11 @@ COARSE_SHARE = 0.7
 # a wide margin at full size, and a downscale keeps the coarse one only.
 COARSE_SHARE_BUSY = 0.85
 BUSY_RATIO = 2.0
+# ... and only where the fine mask is at the PSNR cap too (its mean square at least this share
+# of the budget): a 24 MP master with a third of sky has a coarse component that wants more
+# than it gets, but a fine one well below the cap, whose full-size crops (600 x 600, JPEG 60:
+# 1e-97 at 0.7) were lost at 0.85 with no gain on its web copies.
+FINE_AT_CAP = 0.98
 # Weight of the SSIM constant in the coarse mask, i.e. how strong the coarse
 # change may be on smooth areas, by the level's factor: the coarse spots span
 # 1 / factor pixels of the picture, and the larger they are, the more visible
@@ -500,8 +505,12 @@ def busy_share(allowance: LevelAllowance, fine_ms: float, total: float) -> float
     margin at full size (grass: a bound of 1e-274), while its coarse one,
     all a 25 % copy keeps, is drowned by the texture at the level. A picture
     with smooth areas is left as it was (its coarse component is held by
-    the level's own allowance, not by the budget).
+    the level's own allowance, not by the budget), and so is one whose fine
+    mask is below the PSNR cap (``FINE_AT_CAP``): a large master whose fine
+    component reads full-size crops.
     """
+    if fine_ms < FINE_AT_CAP * total:
+        return COARSE_SHARE
     want = float(allowance.wanted(COARSE_SHARE).mean())
     have = total - (1.0 - COARSE_SHARE) * fine_ms
     t = min(1.0, max(0.0, (want / max(have, 1e-12) - 1.0) / (BUSY_RATIO - 1.0)))
