@@ -108,6 +108,9 @@ def mark_parameters(strength: float, mark_format: int | None = None) -> dict:
                     f"{round(scales.MIN_COARSE_FACTOR * scales.COARSE_SIDE)} px",
             "short_side_px": scales.COARSE_SIDE,
             "energy_share": scales.COARSE_SHARE,
+            # Busy pictures whose coarse component is held by the PSNR budget give it more
+            # (scales.busy_share), up to this; the fine synchronisation keeps its energy.
+            "energy_share_busy_max": scales.COARSE_SHARE_BUSY,
             "seed_label": scales.COARSE_LABEL.decode(),
         },
         "strength": strength,

@@ -19,10 +19,22 @@ from scipy import ndimage
 from skimage import data, metrics
 from skimage.transform import rescale, resize
 
-from claimkit.imageio import to_luma
+from claimkit.imageio import add_luma_delta, to_luma
 from claimkit.mark import detect, embed, scales, stats
 from claimkit.mark.pattern import key_pattern
-from tests.engine_helpers import OTHER_SEED, SEED, lanczos, landscape, mark_scales, payload, sky
+from tests.engine_helpers import (
+    BENCH_BITS,
+    BENCH_EMBED3,
+    BENCH_KEYS,
+    OTHER_SEED,
+    SEED,
+    BenchPayloads,
+    lanczos,
+    landscape,
+    mark_scales,
+    payload,
+    sky,
+)
 
 BITS = payload()
 
@@ -176,6 +188,53 @@ def test_downscaled_copies_are_claimed(pictures, frac, how):
     assert not missed, missed
 
 
+def busy_texture(side: int = 680, seed: int = 34) -> np.ndarray:
+    """A grass-like texture from edge to edge (grey RGB): short, mostly upright strokes over grain."""
+    rng = np.random.default_rng(seed)
+    n = side * side // 25
+    y0, x0 = rng.uniform(0, side, (2, n))
+    ang, length = rng.normal(np.pi / 2, 0.4, n), rng.uniform(8, 30, n)
+    t = np.linspace(0.0, 1.0, 31)[None, :]
+    ys = np.rint(y0[:, None] - length[:, None] * t * np.sin(ang)[:, None]).astype(int)
+    xs = np.rint(x0[:, None] + length[:, None] * t * np.cos(ang)[:, None]).astype(int)
+    inside = (ys >= 0) & (ys < side) & (xs >= 0) & (xs < side)
+    img = rng.normal(90.0, 12.0, (side, side))
+    img[ys[inside], xs[inside]] = np.broadcast_to(rng.uniform(30, 220, n)[:, None], ys.shape)[inside]
+    img = ndimage.gaussian_filter(img, 0.7) + rng.normal(0.0, 1.5, img.shape)
+    img = img.mean() + 1.2 * (img - img.mean())
+    return np.repeat(np.clip(np.rint(img), 0, 255).astype(np.uint8)[..., None], 3, axis=2)
+
+
+def test_a_busy_texture_gives_the_coarse_component_more(pictures):
+    # Pictures with smooth areas keep the usual split; a texture held by the PSNR cap from
+    # edge to edge gives the coarse component more (the fine one has a wide margin at full
+    # size there), stays invisible, keeps the fine synchronisation's energy, and its small
+    # copies (Pillow Lanczos) read with a lower bound than under the usual split.
+    for name in ("landscape", "sky", "hubble"):
+        assert scales.scales_plan(to_luma(pictures[name][0]), SEED, BITS).share == scales.COARSE_SHARE
+    rgb = busy_texture()
+    luma = to_luma(rgb)
+    plan = scales.scales_plan(luma, BENCH_EMBED3, BENCH_BITS)
+    assert scales.COARSE_SHARE + 0.05 < plan.share <= scales.COARSE_SHARE_BUSY
+    mk = add_luma_delta(rgb, plan.rows(0, plan.shape[0]))
+    assert metrics.peak_signal_noise_ratio(rgb, mk, data_range=255) >= 42.0
+    assert metrics.structural_similarity(rgb, mk, channel_axis=2, data_range=255) >= 0.985
+    # The fine synchronisation's energy is what it is at COARSE_SHARE; the claim takes the cut.
+    assert scales.fine_sync_share(scales.COARSE_SHARE) is None
+    assert (1 - plan.share) * scales.fine_sync_share(plan.share) == pytest.approx(
+        (1 - scales.COARSE_SHARE) * scales.format3.SYNC_SHARE)
+    usual = scales.multiscale_delta(luma, BENCH_EMBED3, BENCH_BITS, share=scales.COARSE_SHARE)
+    listed = BenchPayloads()
+    bounds = []
+    for marked in (mk, add_luma_delta(rgb, usual)):
+        copy = lanczos(marked, (238, 238))      # 35 %
+        f = scales.examine(to_luma(copy), BENCH_KEYS, payload_check=listed, known_bits=listed.known,
+                           payload_candidates=listed.candidates)
+        assert f.payload_bits is None or np.array_equal(f.payload_bits, BENCH_BITS)
+        bounds.append(f.log10_false_alarm)
+    assert bounds[0] <= math.log10(1e-9) and bounds[0] < bounds[1] - 1.0, bounds
+
+
 def test_other_owner_finds_nothing_in_a_web_copy(pictures):
     _, mk = pictures["landscape"]
     copy = jpeg(lanczos(mk, (375, 250)), 85)
@@ -186,8 +245,14 @@ def test_other_owner_finds_nothing_in_a_web_copy(pictures):
 @pytest.mark.slow
 def test_24_megapixel_master_is_claimed_in_every_web_size():
     master = landscape(4000, 6000, seed=11)
-    mk = mark_scales(master)
-    del master
+    # Its fine mask is below the PSNR cap: the usual split (scales.busy_share), so that the
+    # fine component keeps reading full-size crops (this one was lost at a share of 0.85).
+    plan = scales.scales_plan(to_luma(master), SEED, BITS)
+    assert plan.share == scales.COARSE_SHARE
+    mk = add_luma_delta(master, plan.rows(0, plan.shape[0]))
+    del master, plan
+    f = examine(jpeg(np.ascontiguousarray(mk[1200:1800, 1000:1600]), 60))
+    assert claimed(f) and "level" not in f.geometry, f.log10_false_alarm
     for width in (2048, 1600, 1080, 800, 640):
         copy = jpeg(lanczos(mk, (width, round(4000 * width / 6000))), 85)
         f = examine(copy)

@@ -219,13 +219,17 @@ class MarkPlan:
                             out=sub)
 
 
-def period(keys: bytes | EmbedKeys, payload_bits: np.ndarray) -> np.ndarray:
+def period(keys: bytes | EmbedKeys, payload_bits: np.ndarray, *,
+           sync_share: float | None = None) -> np.ndarray:
     """One period of the mark at unit RMS, float32.
 
     ``keys`` is a format-3 :class:`~claimkit.mark.format3.EmbedKeys` (the
-    ``MACRO * TILE`` macro-cell) or, for format 2, the 32-byte seed (one tile).
+    ``MACRO * TILE`` macro-cell, its synchronisation at ``sync_share`` of the
+    energy, default the format's) or, for format 2, the 32-byte seed (one tile).
     """
     if isinstance(keys, EmbedKeys):
+        if sync_share is not None:
+            return macro_tile(keys, payload_bits, sync_share=sync_share)
         return macro_tile(keys, payload_bits)
     pattern: KeyPattern = key_pattern(keys)
     return np.asarray(mark_tile(pattern, pattern.codeword(payload_bits)), dtype=np.float32)
@@ -233,16 +237,20 @@ def period(keys: bytes | EmbedKeys, payload_bits: np.ndarray) -> np.ndarray:
 
 def mark_plan(luma: np.ndarray, seed: bytes | EmbedKeys, payload_bits: np.ndarray, *,
               strength: float = 1.0, local_ssim: float = DEFAULT_LOCAL_SSIM,
-              psnr_db: float = DEFAULT_PSNR_DB, executor: Executor | None = None) -> MarkPlan:
+              psnr_db: float = DEFAULT_PSNR_DB, executor: Executor | None = None,
+              mask: tuple[np.ndarray, int] | None = None,
+              sync_share: float | None = None) -> MarkPlan:
     """The mask and the period for ``payload_bits`` under ``seed`` (see :class:`MarkPlan`).
 
     Parameters are those of :func:`mark_delta`; ``executor`` (optional) lends
-    a thread to :func:`mask_samples`.
+    a thread to :func:`mask_samples`; ``mask`` is its result for ``luma``
+    when the caller has it already; ``sync_share`` is given to :func:`period`.
     """
-    e0 = period(seed, payload_bits)
+    e0 = period(seed, payload_bits, sync_share=sync_share)
     if strength != 1.0:
         e0 = e0 * np.float32(strength)
-    amp, step = mask_samples(luma, local_ssim=local_ssim, psnr_db=psnr_db, executor=executor)
+    amp, step = mask if mask is not None else mask_samples(
+        luma, local_ssim=local_ssim, psnr_db=psnr_db, executor=executor)
     h, w = np.shape(luma)
     t0, t1 = e0.shape
     if t0 != t1 or t0 % step:

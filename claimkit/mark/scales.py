@@ -83,6 +83,17 @@ COARSE_LONG = 624        # the level's long side at most (a picture wider than 1
 # from 33 to 45 of 48 claimed (bench_scales --tuning); 0.8 lost two full-size attacks on the
 # 1-2 MP pictures of the stress battery (a 0.9 aspect change, shrink + turn + JPEG 70), 0.7 none.
 COARSE_SHARE = 0.7
+# A picture whose coarse component wants more than its share of the PSNR budget (a busy
+# texture from edge to edge: grass, gravel) gives it more, up to COARSE_SHARE_BUSY, reached
+# where it wants BUSY_RATIO times what it gets (busy_share). There the fine component has
+# a wide margin at full size, and a downscale keeps the coarse one only.
+COARSE_SHARE_BUSY = 0.85
+BUSY_RATIO = 2.0
+# ... and only where the fine mask is at the PSNR cap too (its mean square at least this share
+# of the budget): a 24 MP master with a third of sky has a coarse component that wants more
+# than it gets, but a fine one well below the cap, whose full-size crops (600 x 600, JPEG 60:
+# 1e-97 at 0.7) were lost at 0.85 with no gain on its web copies.
+FINE_AT_CAP = 0.98
 # Weight of the SSIM constant in the coarse mask, i.e. how strong the coarse
 # change may be on smooth areas, by the level's factor: the coarse spots span
 # 1 / factor pixels of the picture, and the larger they are, the more visible
@@ -285,6 +296,7 @@ class ScalesPlan:
 
     fine: embed.MarkPlan
     coarse: CoarsePlan | None
+    share: float = 0.0     # the coarse component's share of the budget (0: none)
 
     @property
     def shape(self) -> tuple[int, int]:
@@ -322,7 +334,8 @@ def coarse_plan(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
                 share: float = COARSE_SHARE, strength: float = 1.0,
                 local_ssim: float = embed.DEFAULT_LOCAL_SSIM,
                 psnr_db: float = embed.DEFAULT_PSNR_DB,
-                budget: float | None = None) -> CoarsePlan | None:
+                budget: float | None = None,
+                allowance: LevelAllowance | None = None) -> CoarsePlan | None:
     """The coarse component for a picture, or None when the picture is too small to need one.
 
     Parameters
@@ -343,19 +356,19 @@ def coarse_plan(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
         Cap on the coarse change's mean square (default: ``share`` of what
         ``psnr_db`` allows; :func:`scales_plan` gives it what the fine
         component leaves).
+    allowance : LevelAllowance, optional
+        :func:`level_allowance` for this picture, when the caller has it already.
     """
     shape = (int(np.shape(luma)[0]), int(np.shape(luma)[1]))
     if not has_coarse(shape) or share <= 0:
         return None
-    level = coarse_level(shape)
-    small = resample(luma, level.shape)
-    if fine_allowance is None:
-        fine_allowance = embed.mask_samples(luma, local_ssim=local_ssim, psnr_db=psnr_db)
-    amp, _step = fine_allowance   # resampled whole: the step does not matter
-    # The picture's own SSIM allowance, averaged over each level pixel's footprint.
-    native2 = np.maximum(resample(amp * amp, level.shape), 0.0)   # cubic kernels overshoot
-    amp_c = coarse_mask(small, native2, level.factor, share=share, local_ssim=local_ssim,
-                        psnr_db=psnr_db, budget=budget)
+    if allowance is None:
+        if fine_allowance is None:
+            fine_allowance = embed.mask_samples(luma, local_ssim=local_ssim, psnr_db=psnr_db)
+        allowance = level_allowance(luma, fine_allowance, local_ssim=local_ssim)
+    level = allowance.level
+    amp_c = allowance.amplitude(share, budget if budget is not None
+                                else share * 255.0 ** 2 / 10 ** (psnr_db / 10.0))
     tile = _period(coarse_keys(seed), payload_bits)
     delta = embed.apply_tiled(amp_c, tile * np.float32(strength))
     cols = resample_matrix(shape[1], level.shape[1]).astype(np.float32)
@@ -368,6 +381,70 @@ def flat_weight(factor: float) -> float:
     """Weight of SSIM's constant in the coarse mask for a level ``factor`` (``COARSE_FLAT``)."""
     (f0, w0), (f1, w1) = COARSE_FLAT
     return float(np.interp(factor, (f0, f1), (w0, w1)))
+
+
+@dataclass(frozen=True)
+class LevelAllowance:
+    """What the coarse component may change at each level pixel, before the PSNR budget.
+
+    Attributes
+    ----------
+    level : Level
+    level2 : ndarray, level shape
+        Squared amplitude the level itself allows (what a downscaled copy shows).
+    native2 : ndarray, level shape
+        Squared amplitude the picture's size allows to the whole mark (SSIM's
+        structure and luminance terms); the coarse component gets ``share`` of it.
+    """
+
+    level: Level
+    level2: np.ndarray = field(repr=False)
+    native2: np.ndarray = field(repr=False)
+
+    def wanted(self, share: float) -> np.ndarray:
+        """Squared amplitude at ``share``, before the budget."""
+        return np.minimum(self.level2, share * self.native2)
+
+    def amplitude(self, share: float, budget: float) -> np.ndarray:
+        """The coarse amplitude at the level (float32): :meth:`wanted`, water-levelled to ``budget``."""
+        amp2 = self.wanted(share)
+        if float(amp2.mean()) > budget:
+            np.minimum(amp2, embed._water_level(amp2, budget), out=amp2)
+        return np.sqrt(amp2).astype(np.float32)
+
+
+def level_allowance(luma: np.ndarray, fine_allowance: tuple[np.ndarray, int], *,
+                    local_ssim: float = embed.DEFAULT_LOCAL_SSIM) -> LevelAllowance:
+    """The coarse component's allowances for a picture (see :func:`coarse_mask`).
+
+    ``fine_allowance`` is the fine mask at full strength (:func:`claimkit.mark.embed.mask_samples`).
+    """
+    level = coarse_level(np.shape(luma))
+    small = resample(luma, level.shape)
+    amp, _step = fine_allowance   # resampled whole: the step does not matter
+    # The picture's own SSIM allowance, averaged over each level pixel's footprint.
+    native2 = np.maximum(resample(amp * amp, level.shape), 0.0)   # cubic kernels overshoot
+    return _allowance(small, native2, level, local_ssim)
+
+
+def _allowance(small: np.ndarray, native2: np.ndarray, level: Level,
+               local_ssim: float) -> LevelAllowance:
+    from scipy import ndimage
+
+    x = np.asarray(small, dtype=np.float32)
+    m = ndimage.uniform_filter(x, embed.MASK_WINDOW)
+    var = np.maximum(ndimage.uniform_filter(x * x, embed.MASK_WINDOW) - m * m, 0.0)
+    # The weakest variance nearby: a window that straddles an edge (a horizon
+    # against the sky) is busy, but the smooth side of it is not, and there a
+    # coarse change of the busy side's strength shows as a pale halo (seen on a
+    # marked 24-megapixel landscape). The guard reaches past the window and the
+    # spread of one spot after interpolation.
+    var = ndimage.minimum_filter(var, size=COARSE_GUARD)
+    k = 1.0 / local_ssim - 1.0
+    level2 = (1.0 / LEVEL_SSIM - 1.0) * 2.0 * var + k * flat_weight(level.factor) * embed.SSIM_C2
+    structure2 = native2 / max(window_fraction(level.factor), 1e-3)
+    luminance2 = k * (2.0 * m * m + SSIM_C1)
+    return LevelAllowance(level, level2, np.minimum(structure2, luminance2))
 
 
 def coarse_mask(small: np.ndarray, native2: np.ndarray, factor: float, *, share: float = COARSE_SHARE,
@@ -394,31 +471,54 @@ def coarse_mask(small: np.ndarray, native2: np.ndarray, factor: float, *, share:
     A water level then caps the mean square at ``budget`` (default ``share``
     of what ``psnr_db`` allows).
     """
-    from scipy import ndimage
-
-    x = np.asarray(small, dtype=np.float32)
-    m = ndimage.uniform_filter(x, embed.MASK_WINDOW)
-    var = np.maximum(ndimage.uniform_filter(x * x, embed.MASK_WINDOW) - m * m, 0.0)
-    # The weakest variance nearby: a window that straddles an edge (a horizon
-    # against the sky) is busy, but the smooth side of it is not, and there a
-    # coarse change of the busy side's strength shows as a pale halo (seen on a
-    # marked 24-megapixel landscape). The guard reaches past the window and the
-    # spread of one spot after interpolation.
-    var = ndimage.minimum_filter(var, size=COARSE_GUARD)
-    k = 1.0 / local_ssim - 1.0
-    level2 = (1.0 / LEVEL_SSIM - 1.0) * 2.0 * var + k * flat_weight(factor) * embed.SSIM_C2
-    structure2 = native2 / max(window_fraction(factor), 1e-3)
-    luminance2 = k * (2.0 * m * m + SSIM_C1)
-    amp2 = np.minimum(level2, share * np.minimum(structure2, luminance2))
+    level = Level(tuple(np.shape(small)), factor)
     if budget is None:
         budget = share * 255.0 ** 2 / 10 ** (psnr_db / 10.0)
-    if float(amp2.mean()) > budget:
-        np.minimum(amp2, embed._water_level(amp2, budget), out=amp2)
-    return np.sqrt(amp2).astype(np.float32)
+    return _allowance(small, native2, level, local_ssim).amplitude(share, budget)
+
+
+def fine_sync_share(share: float) -> float | None:
+    """Format 3's synchronisation share in the fine component when the coarse one has ``share``.
+
+    None (the format's own, ``format3.SYNC_SHARE``) at ``COARSE_SHARE`` or
+    below; above it the fine component is fainter, and its synchronisation
+    keeps the energy it has at ``COARSE_SHARE``, the claim taking the cut:
+    the lattice search that finds a turned or stretched copy at full size
+    reads the synchronisation alone, and failed on busy textures given 0.9
+    with the usual split (aspect 0.9: bound 1e-461 at 0.7, nothing at 0.9),
+    while their claim has a wide margin.
+    """
+    if share <= COARSE_SHARE:
+        return None
+    return min(1.0, format3.SYNC_SHARE * (1.0 - COARSE_SHARE) / (1.0 - share))
+
+
+def busy_share(allowance: LevelAllowance, fine_ms: float, total: float) -> float:
+    """The coarse component's share for a picture: ``COARSE_SHARE``, more where it is budget-bound.
+
+    At ``COARSE_SHARE`` the coarse component would take ``want`` (the mean of
+    its allowance) and gets ``have`` (the PSNR budget ``total`` less the
+    fine component's part of its mean square ``fine_ms``). Where ``want /
+    have`` exceeds 1 (a busy texture from edge to edge, whose mask is at the
+    PSNR cap everywhere) the share rises linearly to ``COARSE_SHARE_BUSY``,
+    reached at ``BUSY_RATIO``. Such a picture's fine component keeps a wide
+    margin at full size (grass: a bound of 1e-274), while its coarse one,
+    all a 25 % copy keeps, is drowned by the texture at the level. A picture
+    with smooth areas is left as it was (its coarse component is held by
+    the level's own allowance, not by the budget), and so is one whose fine
+    mask is below the PSNR cap (``FINE_AT_CAP``): a large master whose fine
+    component reads full-size crops.
+    """
+    if fine_ms < FINE_AT_CAP * total:
+        return COARSE_SHARE
+    want = float(allowance.wanted(COARSE_SHARE).mean())
+    have = total - (1.0 - COARSE_SHARE) * fine_ms
+    t = min(1.0, max(0.0, (want / max(have, 1e-12) - 1.0) / (BUSY_RATIO - 1.0)))
+    return COARSE_SHARE + (COARSE_SHARE_BUSY - COARSE_SHARE) * t
 
 
 def scales_plan(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
-                share: float = COARSE_SHARE, strength: float = 1.0,
+                share: float | None = None, strength: float = 1.0,
                 local_ssim: float = embed.DEFAULT_LOCAL_SSIM,
                 psnr_db: float = embed.DEFAULT_PSNR_DB, executor=None) -> ScalesPlan:
     """The fine and coarse components of a picture's mark, sharing one budget.
@@ -429,25 +529,33 @@ def scales_plan(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
     leaves (at least ``share``: on a picture with large smooth areas the fine
     mask stays below its cap, and the sum keeps to ``psnr_db``); a picture too
     small for a coarse level gets the fine mark alone at full strength.
+    ``share`` defaults to :func:`busy_share` (``COARSE_SHARE``, more on a
+    budget-bound busy picture); the plan records the share it used.
     """
     shape = np.shape(luma)
-    if not has_coarse(shape) or share <= 0:
+    if not has_coarse(shape) or (share is not None and share <= 0):
         return ScalesPlan(embed.mark_plan(luma, seed, payload_bits, strength=strength,
                                           local_ssim=local_ssim, psnr_db=psnr_db,
                                           executor=executor), None)
-    fine = embed.mark_plan(luma, seed, payload_bits, strength=strength * math.sqrt(1.0 - share),
-                           local_ssim=local_ssim, psnr_db=psnr_db, executor=executor)
+    mask = embed.mask_samples(luma, local_ssim=local_ssim, psnr_db=psnr_db, executor=executor)
+    allowance = level_allowance(luma, mask, local_ssim=local_ssim)
     # The fine plan's mask is at full allowance (the strength scales its period), so the
     # fine change's mean square is (1 - share) mean(amp^2); the coarse gets the rest.
     total = 255.0 ** 2 / 10 ** (psnr_db / 10.0)
-    coarse = coarse_plan(luma, seed, payload_bits, fine_allowance=(fine.amp, fine.step),
-                         share=share, strength=strength, local_ssim=local_ssim, psnr_db=psnr_db,
-                         budget=total - (1.0 - share) * float(np.mean(np.square(fine.amp))))
-    return ScalesPlan(fine, coarse)
+    fine_ms = float(np.mean(np.square(mask[0])))
+    if share is None:
+        share = busy_share(allowance, fine_ms, total)
+    fine = embed.mark_plan(luma, seed, payload_bits, strength=strength * math.sqrt(1.0 - share),
+                           local_ssim=local_ssim, psnr_db=psnr_db, mask=mask,
+                           sync_share=fine_sync_share(share))
+    coarse = coarse_plan(luma, seed, payload_bits, share=share, strength=strength,
+                         local_ssim=local_ssim, psnr_db=psnr_db,
+                         budget=total - (1.0 - share) * fine_ms, allowance=allowance)
+    return ScalesPlan(fine, coarse, share)
 
 
 def multiscale_delta(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
-                     share: float = COARSE_SHARE, strength: float = 1.0) -> np.ndarray:
+                     share: float | None = None, strength: float = 1.0) -> np.ndarray:
     """The whole change (fine plus coarse) for a picture, at its size (float32)."""
     plan = scales_plan(luma, seed, payload_bits, share=share, strength=strength)
     return plan.rows(0, plan.shape[0])
