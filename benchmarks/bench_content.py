@@ -228,7 +228,7 @@ def _genuine_one(args: tuple[str, bool]) -> list[dict]:
     rgb = calibration_pictures(quick)[k]
     half = to_luma(np.asarray(Image.fromarray(rgb).resize(
         (max(16, rgb.shape[1] // 2), max(16, rgb.shape[0] // 2)), Image.Resampling.LANCZOS)))
-    refs = {"full": reg.features(to_luma(rgb)), "half": reg.features(half)}
+    refs = {"full": reg.features(to_luma(rgb)), "half": reg.features(half, registered_scale=0.5)}
     rows = []
     for att in genuine_attacks(quick):
         out = att.apply(rgb)

@@ -180,7 +180,7 @@ def content_line(exhibit_luma: np.ndarray, *, reference_luma: np.ndarray | None 
     """
     cal = calibration()
     if reference_luma is not None:
-        ref = reg.features(reference_luma)
+        ref = reg.features(reference_luma, registered_scale=reference_scale)
         ex = reg.features(exhibit_luma)
         exm = reg.features(exhibit_luma, mirrored=True)
         res = reg.register(ref, ex, exm)

@@ -90,6 +90,14 @@ COARSE_SMOOTH = 1.0
 #: clear sky marked and unmarked against its JPEG 90 copy: 112 and 0 points before, 0 and 0
 #: after (blur 2: 23 and 0 before; rotate 17: 544 and 352 before, 0 and 0 after); on a
 #: generated texture with shapes (JPEG 90) 631 and 320 before, 324 and 310 after.
+#: The smoothing is in pixels of the registered work (a picture reduced to the working size
+#: is smoothed by ``FINE_SMOOTH`` times the reduction; a reduced-resolution reference by its
+#: scale as well; an exhibit is taken at the work's scale), since the mark is tied to those:
+#: a copy cropped from a large picture and the picture itself are then smoothed alike, and
+#: ORB's pyramid can match them (measured: a 25 % crop of scikit-image's retina, 5 points
+#: with the smoothing in working pixels, 73 with it in the picture's). A picture enlarged to
+#: :data:`MIN_WORK_SIDE`, and the reference :func:`reduced` to its size, are smoothed by
+#: ``FINE_SMOOTH`` working pixels.
 FINE_SMOOTH = 3.0
 MAX_STRETCH_GAIN = 3.0
 #: A smaller picture is enlarged to this longer side first: ORB's 31-pixel patches and its
@@ -150,7 +158,7 @@ def _stretch(a: np.ndarray, max_gain: float | None = None) -> np.ndarray:
 
 
 def features(luma: np.ndarray, *, mirrored: bool = False, stretch: bool = True,
-             coarse: bool = False) -> Features:
+             coarse: bool = False, registered_scale: float = 1.0) -> Features:
     """ORB keypoints and descriptors of a picture (or of its left-right mirror image).
 
     Parameters
@@ -171,6 +179,11 @@ def features(luma: np.ndarray, *, mirrored: bool = False, stretch: bool = True,
         (reduced, or enlarged if smaller) and smoothed by :data:`COARSE_SMOOTH`,
         for :func:`register_coarse`; otherwise at :data:`WORK_SIDE`, smoothed
         by :data:`FINE_SMOOTH`, the stretch's gain capped at :data:`MAX_STRETCH_GAIN`.
+    registered_scale : float
+        Pixels of this picture per pixel of the registered work: 1 for an
+        exhibit (its scale is not known) and for the registered file, less for
+        a reduced-resolution reference. The fine reading's smoothing is
+        :data:`FINE_SMOOTH` pixels of the registered work.
 
     Returns
     -------
@@ -182,16 +195,18 @@ def features(luma: np.ndarray, *, mirrored: bool = False, stretch: bool = True,
         work = ndimage.gaussian_filter(work, COARSE_SMOOTH)
         return _describe(work, s, shape, mirrored, stretch, fine=False)
     work, s = _work(luma)
-    return _describe(work, s, shape, mirrored, stretch)
+    return _describe(work, s, shape, mirrored, stretch,
+                     smooth=FINE_SMOOTH * min(s * registered_scale, 1.0))
 
 
 def _describe(work: np.ndarray, s: float, shape: tuple[int, int], mirrored: bool,
-              stretch: bool = True, fine: bool = True) -> Features:
-    """Keypoints of ``work``; the fine reading smooths and caps the stretch first, and keeps
-    ``work`` itself (unsmoothed) for the similarity measure and :func:`reduced`."""
+              stretch: bool = True, fine: bool = True, smooth: float = FINE_SMOOTH) -> Features:
+    """Keypoints of ``work``; the fine reading smooths (``smooth`` working pixels) and caps
+    the stretch first, and keeps ``work`` itself (unsmoothed) for the similarity measure
+    and :func:`reduced`."""
     img = work[:, ::-1] if mirrored else work
     if fine:
-        img = ndimage.gaussian_filter(img, FINE_SMOOTH)
+        img = ndimage.gaussian_filter(img, smooth)
     if stretch:
         img = _stretch(img, MAX_STRETCH_GAIN if fine else None)
     orb = ORB(n_keypoints=KEYPOINTS, fast_threshold=FAST_THRESHOLD)
