@@ -49,7 +49,8 @@ def test_calibration_is_measured_and_separates():
     assert "coffee" not in cal["pictures"] and "chelsea" not in cal["pictures"]
     # the coarse reading: its own null over the same pairs, and the either-reading counts
     co = cal["coarse"]
-    assert co["null"]["count"] == len(co["null"]["samples"]) == cal["null"]["count"]
+    assert co["null"]["count"] == len(co["null"]["samples"]) >= cal["null"]["count"]
+    assert co["either"]["null_count"] == cal["null"]["count"]   # the pairs both readings measured
     assert max(co["null"]["samples"]) < co["threshold"]
     assert co["either"]["null_reaching_at_most"] == 0
     assert co["either"]["genuine_reaching"] >= cal["genuine"]["count"] - len(
@@ -258,19 +259,20 @@ def test_genuine_sky_copy_keeps_its_layout_and_is_not_flagged():
     assert w["evaluation"]["verbal"].startswith("No opinion on the propositions is given")
 
 
-def test_whole_residual_transplant_keeps_points_but_not_the_layout():
+def test_whole_residual_transplant_is_flagged_without_points_from_the_mark():
     # The strongest copy attack (numpy only): the marked file's whole fine-detail residual added
-    # to a picture of soft colour and flat shapes. Enough of the work's detail survives for the
-    # points to pass the threshold; its broad layout does not, and the line says so.
+    # to a picture of soft colour and flat shapes. The work is a soft texture, so its residual
+    # is mostly its mark: before the fine reading was smoothed, the lifted residual passed the
+    # threshold (the points were the mark's); now it makes none, and the work's broad layout,
+    # at the geometry the mark reads, is not the exhibit's: flagged, nothing derived.
     from engine_helpers import generated, soft
 
     work = mark(soft(5))
-    c = content_line(to_luma(transplant_mark(work, generated(998), tile=None)),
-                     reference_luma=to_luma(work))
-    assert c["statistic"]["value"] >= c["statistic"]["threshold"]
-    assert c["corresponds"] is False and c["layout"]["refutes"]
-    assert not c["layout"]["uses_mark_geometry"] and c["log10_lr"] < 0
-    assert "lifted residual" in c["reason"]
+    w = _weigh_examined(transplant_mark(work, generated(998), tile=None), work)
+    c = w["content"]
+    assert c["statistic"]["value"] < c["statistic"]["threshold"] and not c["corresponds"]
+    assert c["layout_with_mark"]["refutes"] and w["content_mismatch"]
+    assert not w["evaluation"]["derivation_claimed"]
 
 
 def test_transplant_onto_a_host_of_another_shape_is_placed_by_half_overlaps():
@@ -319,3 +321,30 @@ def test_coarse_reading_does_not_match_a_featureless_picture_on_its_mark():
     assert len(reg.features(to_luma(pub), coarse=True).xy) == 0
     got = reg.register_coarse(to_luma(pub), to_luma(stress.jpeg(pub, 75)))
     assert got["inliers"] < calibration()["coarse"]["threshold"]
+
+
+@pytest.mark.parametrize("picture,edit", [("sky", "jpeg 90"), ("sky", "rotate 17"),
+                                          ("soft", "jpeg 90")])
+def test_fine_reading_is_not_carried_by_the_mark(picture, edit):
+    # A featureless picture (the tests' clear sky; a soft texture whose luma spans 9 grey
+    # levels), marked and not, against its copy (Pillow's JPEG codec, Pillow's bicubic turn):
+    # the points the content line counts must come from the picture, so the mark may not move
+    # the count by more than a tenth of the threshold or of the count without it, nor change
+    # the decision. Before the smoothing and the capped stretch: sky JPEG 90 112 points
+    # marked and 0 unmarked, sky rotate 17 544 and 352, soft JPEG 90 101 and 6.
+    from engine_helpers import sky, soft
+
+    from claimkit.content import register as reg
+
+    plain = sky() if picture == "sky" else soft(5)
+    apply = next(a for a in stress.battery() if a.name == edit).apply
+    threshold = calibration()["threshold"]
+
+    def points(pic):
+        ref, copy = to_luma(pic), to_luma(apply(pic))
+        return reg.register(reg.features(ref), reg.features(copy),
+                            reg.features(copy, mirrored=True))["inliers"]
+
+    with_mark, without = points(mark(plain)), points(plain)
+    assert abs(with_mark - without) <= max(0.1 * threshold, 0.1 * without)
+    assert (with_mark >= threshold) == (without >= threshold)

@@ -194,7 +194,11 @@ def _content_parameters() -> dict:
     return {
         "keypoints": f"ORB, {register.KEYPOINTS} per picture at {register.WORK_SIDE} px on the "
                      f"longer side (a smaller picture enlarged to {register.MIN_WORK_SIDE} px), "
-                     "luma stretched between its 1st and 99th percentiles; the exhibit also "
+                     f"luma smoothed (Gaussian, {register.FINE_SMOOTH:g} px of the registered "
+                     "work) and stretched "
+                     "between its 1st and 99th percentiles by at most a factor of "
+                     f"{register.MAX_STRETCH_GAIN:g}, so that the mark's faint pattern makes "
+                     "no keypoints of its own; the exhibit also "
                      "mirrored, and a copy of half the working size or less also matched "
                      "against the work reduced to its size",
         "fit": f"RANSAC similarity, inliers within {register.RESIDUAL_PX} px, "
