@@ -39,14 +39,18 @@ __all__ = [
 ]
 
 #: The two geometries agree when the turns differ by at most this (degrees) ...
-ROTATION_TOLERANCE_DEG = 3.0
+ROTATION_TOLERANCE_DEG = 5.0
 #: ... the scales by at most this fraction, and both read the same mirroring.
-#: Both limits lie above the largest error either line showed on the stress
-#: battery where it matched (the content line: calibration.json,
-#: ``geometry_error_when_matched``; the mark: 0.5 degrees and 2 %, the stress
-#: battery's tolerance), so genuine copies agree and a 180 degree or mirrored
-#: misreading does not.
-SCALE_TOLERANCE = 0.05
+#: Both limits lie above the largest difference measured between the lines on
+#: genuine copies (the content line alone: calibration.json,
+#: ``geometry_error_when_matched``, 2.9 degrees and 1.7 %; the mark: 0.5 degrees
+#: and 2 %, the stress battery's tolerance; the two lines on the held-out
+#: copies of benchmarks/bench_content_heldout.py: at most 3.2 degrees, a 25 %
+#: crop registered by the coarse reading, and 5.5 %, the same crop, and 5.4 %
+#: for an aspect change of 0.9, which a similarity cannot fit), so genuine
+#: copies agree and a 180 degree or mirrored misreading does not. They were 3
+#: degrees and 5 % until the reading at 640 px was smoothed.
+SCALE_TOLERANCE = 0.08
 #: Before "does not correspond" is said, each picture must register to an edited copy of
 #: itself (scaled to 70 % and turned 10 degrees) with at least this many times the
 #: threshold. A featureless work (a clear sky) gives no keypoints that repeat, nor does a
