@@ -103,13 +103,18 @@ def mask_samples(luma: np.ndarray, *, local_ssim: float = DEFAULT_LOCAL_SSIM,
     amp2 *= 2.0
     amp2 += SSIM_C2
     amp2 *= 1.0 / local_ssim - 1.0
-    budget = 255.0 ** 2 / 10 ** (psnr_db / 10.0)
+    budget = psnr_budget(psnr_db)
     if float(amp2.mean()) > budget:
         if MASK_MODE == "scale":
             amp2 *= budget / float(amp2.mean())
         else:
             np.minimum(amp2, _water_level(amp2, budget), out=amp2)
     return np.sqrt(amp2, out=amp2), step
+
+
+def psnr_budget(psnr_db: float, share: float = 1.0) -> float:
+    """``share`` of the mean square change (grey levels squared) that ``psnr_db`` allows."""
+    return share * 255.0 ** 2 / 10 ** (psnr_db / 10.0)
 
 
 def _water_level(amp2: np.ndarray, budget: float) -> float:

@@ -367,8 +367,9 @@ def coarse_plan(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
             fine_allowance = embed.mask_samples(luma, local_ssim=local_ssim, psnr_db=psnr_db)
         allowance = level_allowance(luma, fine_allowance, local_ssim=local_ssim)
     level = allowance.level
-    amp_c = allowance.amplitude(share, budget if budget is not None
-                                else share * 255.0 ** 2 / 10 ** (psnr_db / 10.0))
+    if budget is None:
+        budget = embed.psnr_budget(psnr_db, share)
+    amp_c = allowance.amplitude(share, budget)
     tile = _period(coarse_keys(seed), payload_bits)
     delta = embed.apply_tiled(amp_c, tile * np.float32(strength))
     cols = resample_matrix(shape[1], level.shape[1]).astype(np.float32)
@@ -473,7 +474,7 @@ def coarse_mask(small: np.ndarray, native2: np.ndarray, factor: float, *, share:
     """
     level = Level(tuple(np.shape(small)), factor)
     if budget is None:
-        budget = share * 255.0 ** 2 / 10 ** (psnr_db / 10.0)
+        budget = embed.psnr_budget(psnr_db, share)
     return _allowance(small, native2, level, local_ssim).amplitude(share, budget)
 
 
@@ -541,7 +542,7 @@ def scales_plan(luma: np.ndarray, seed: bytes, payload_bits: np.ndarray, *,
     allowance = level_allowance(luma, mask, local_ssim=local_ssim)
     # The fine plan's mask is at full allowance (the strength scales its period), so the
     # fine change's mean square is (1 - share) mean(amp^2); the coarse gets the rest.
-    total = 255.0 ** 2 / 10 ** (psnr_db / 10.0)
+    total = embed.psnr_budget(psnr_db)
     fine_ms = float(np.mean(np.square(mask[0])))
     if share is None:
         share = busy_share(allowance, fine_ms, total)
