@@ -222,12 +222,17 @@ def _threshold(null: np.ndarray) -> int:
     return int(max(8, np.ceil(1.5 * int(null.max()) + 0.5)))
 
 
+def _half_reference(rgb: np.ndarray) -> np.ndarray:
+    """The genuine battery's half-size reference of a picture (Pillow's Lanczos), as luma."""
+    return to_luma(np.asarray(Image.fromarray(rgb).resize(
+        (max(16, rgb.shape[1] // 2), max(16, rgb.shape[0] // 2)), Image.Resampling.LANCZOS)))
+
+
 def _genuine_one(args: tuple[str, bool]) -> list[dict]:
     """Every genuine attack on picture ``k``, against the picture and a half-size reference."""
     k, quick = args
     rgb = calibration_pictures(quick)[k]
-    half = to_luma(np.asarray(Image.fromarray(rgb).resize(
-        (max(16, rgb.shape[1] // 2), max(16, rgb.shape[0] // 2)), Image.Resampling.LANCZOS)))
+    half = _half_reference(rgb)
     refs = {"full": reg.features(to_luma(rgb)), "half": reg.features(half, registered_scale=0.5)}
     rows = []
     for att in genuine_attacks(quick):
@@ -407,8 +412,7 @@ def _coarse_one(args: tuple[str, bool]) -> dict:
 def _coarse_genuine_one(args: tuple[str, bool]) -> list[dict]:
     k, quick = args
     rgb = calibration_pictures(quick)[k]
-    half = to_luma(np.asarray(Image.fromarray(rgb).resize(
-        (max(16, rgb.shape[1] // 2), max(16, rgb.shape[0] // 2)), Image.Resampling.LANCZOS)))
+    half = _half_reference(rgb)
     refs = {"full": to_luma(rgb), "half": half}
     rows = []
     for att in genuine_attacks(quick):
@@ -458,9 +462,7 @@ def _coarse_below(rows: list[dict], quick: bool) -> dict[tuple[str, str, str], i
     out = {}
     for r in rows:
         rgb = pics[r["picture"]]
-        ref = to_luma(rgb) if r["reference"] == "full" else to_luma(np.asarray(
-            Image.fromarray(rgb).resize((max(16, rgb.shape[1] // 2), max(16, rgb.shape[0] // 2)),
-                                        Image.Resampling.LANCZOS)))
+        ref = to_luma(rgb) if r["reference"] == "full" else _half_reference(rgb)
         lu = to_luma(attacks[r["attack"]].apply(rgb))
         out[(r["picture"], r["attack"], r["reference"])] = reg.register_coarse(ref, lu)["inliers"]
     return out
