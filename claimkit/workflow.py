@@ -21,6 +21,7 @@ import numpy as np
 
 from claimkit import __version__, words
 from claimkit.errors import InputError
+from claimkit.evidence.disclose import disclosed_keys
 from claimkit.evidence.keys import derive_payload_tag, work_id_for
 from claimkit.evidence.rights import load_rights
 from claimkit.evidence.storage import fsync_dir, sha256_file
@@ -127,6 +128,19 @@ def mark_keys(profile) -> MarkKeys:
 def disclosure_mark_keys(keys: dict, legacy: bytes | None = None) -> MarkKeys:
     """Detection keys from what a disclosure holds (evidence layer's ``format3_keys(serial=...)``)."""
     return MarkKeys(legacy=legacy, sync=keys.get("sync"), families=dict(keys.get("families", {})))
+
+
+def work_mark_keys(profile, work) -> MarkKeys:
+    """The detection keys a disclosure of ``work`` carries, built as ``verify`` builds them.
+
+    What the other side is to re-run from a disclosure (the robustness battery)
+    is run with these: a copy where the mark is missed reports the best of the
+    tests the keys allow, and with the owner's other families that number
+    would not re-run from the disclosure.
+    """
+    seeds = disclosed_keys(profile, work).seeds
+    f3 = profile.format3_disclosure_keys(work.serial) if "family" in seeds else {}
+    return disclosure_mark_keys(f3, legacy=seeds.get("detection"))
 
 
 def embed_keys(profile, serial: int, mark_format: int | None = None) -> bytes | EmbedKeys:

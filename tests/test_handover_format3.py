@@ -80,3 +80,27 @@ def test_second_owners_format3_disclosure_finds_nothing(profile, tmp_path):
             assert not f.detected and not f.payload_valid
     finally:
         second.close()
+
+
+@pytest.mark.parametrize("fmt", [3, 2])
+def test_the_case_battery_runs_with_the_keys_verify_re_runs_it_with(profile, tmp_path,
+                                                                     monkeypatch, fmt):
+    """The robustness battery of a case is re-run by verify from the work's disclosure. A copy
+    where the mark is missed reports the best bound the keys allow, so run with the owner's 16
+    families that number did not re-run from one family (seen: a missed row stored 10^-0.485,
+    re-run 1.0). The battery must get exactly the keys verify builds from the disclosure."""
+    from claimkit.case import examine as case_examine
+    from claimkit.verify.checks import _keys_of
+
+    src = tmp_path / "cup.png"
+    Image.fromarray(photos()["coffee"]).save(src)
+    rep = workflow.mark_file(profile, src, tmp_path / "cup-marked.png", mark_format=fmt)
+    out = tmp_path / "disclosure"
+    profile.disclose(rep["work_id"], out)
+    expected = _keys_of(check_disclosure(out))[0]
+    seen = []
+    monkeypatch.setattr(case_examine, "run_battery", lambda px, keys, *a, **k: seen.append(keys) or [])
+    case_examine._robustness(profile, rep["work_id"], tmp_path / "cup-marked.png")
+    assert seen == [expected]
+    if fmt == 3:
+        assert len(seen[0].families) == 1 and seen[0].legacy is None   # not the owner's 16

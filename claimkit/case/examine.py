@@ -177,11 +177,15 @@ def find_reference(case: Case, work_record: dict, search: list[Path]) -> tuple[P
 
 
 def _robustness(profile, work_id: str, ref_path: Path) -> dict:
-    """The stress battery on the registered marked file."""
+    """The stress battery on the registered marked file, with the keys its disclosure carries.
+
+    ``verify`` re-runs it from the disclosure: every number of a row, also the bound of a
+    copy where the mark is missed, must come from the keys the other side will hold.
+    """
     work = profile.work(work_id)
     bits = payload.pack(profile.owner_tag, work.serial, profile.payload_tag(work.serial))
     pic = read_picture(ref_path)
-    rows = run_battery(pic.pixels, workflow.mark_keys(profile),
+    rows = run_battery(pic.pixels, workflow.work_mark_keys(profile, work),
                        workflow.expected_payload_check(bits), quick=True)
     return {"status": "run", "on": "registered marked file", "rows": jsonable(rows)}
 
