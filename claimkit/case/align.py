@@ -143,17 +143,21 @@ def align(reference_luma: np.ndarray, copy_luma: np.ndarray, geometry: dict | No
     if geometry and geometry.get("level"):
         # Found at a coarse view: the matrix is against the original's coarse level.
         geometry = scales.relative_to_original(geometry, registered_shape)
+    rw = copy.shape[1] / registered_shape[1]
+    rh = copy.shape[0] / registered_shape[0]
+    assumed = [(f"assumed scale {k:.4g}", np.eye(2) * k) for k in sorted({1.0, rw, rh})]
     if geometry and geometry.get("matrix") and geometry.get("source"):
-        # A geometry from picture content is unambiguous: one reading only.
+        # A geometry from picture content is unambiguous, but read from smoothed keypoints it
+        # can be a tenth of a degree off (a pixel at the edge of a large picture): a plain
+        # resize, which the shapes suggest, is tried beside it, and the better overlay kept.
         candidates = [(str(geometry["source"]), np.asarray(geometry["matrix"], dtype=float))]
+        candidates += assumed
     elif geometry and geometry.get("matrix"):
         m = np.asarray(geometry["matrix"], dtype=float)
         # A lattice looks the same turned by 180 degrees; try both readings.
         candidates = [("mark geometry", m), ("mark geometry, turned 180 degrees", -m)]
     else:
-        rw = copy.shape[1] / registered_shape[1]
-        rh = copy.shape[0] / registered_shape[0]
-        candidates = [(f"assumed scale {k:.4g}", np.eye(2) * k) for k in sorted({1.0, rw, rh})]
+        candidates = assumed
     ref_half = rescale(ref, 0.5, anti_aliasing=True, preserve_range=True)
     copy_half = rescale(copy, 0.5, anti_aliasing=True, preserve_range=True)
     best = None
