@@ -331,18 +331,20 @@ def register(sub, common) -> None:
     p.add_argument("--owner", required=True, metavar="NAME", help="the owner's name")
     json_opt(p)
 
-    p = add(sub, "unlock", "open the profile once, keep it open a while (a session)",
+    p = add(sub, "unlock", "open the profile once, for a while (a session)",
             cmd_unlock, formatter_class=argparse.RawDescriptionHelpFormatter,
-            epilog="Stretches the passphrase once and prints a line that sets\n"
-                   f"{SESSION_ENV}; commands run where it is set skip the\n"
-                   "passphrase until the session ends:\n\n"
+            epilog="Stretches the passphrase once and prints a\n"
+                   f"line that sets {SESSION_ENV}; commands\n"
+                   "run where it is set skip the passphrase\n"
+                   "until the session ends:\n\n"
                    '  eval "$(claimkit unlock --for 30m)"\n'
-                   "  claimkit examine ...; claimkit case examine ...\n"
+                   "  claimkit examine ...\n"
                    '  eval "$(claimkit lock)"\n\n'
-                   "The session key exists only in that variable. The secrets\n"
-                   "are sealed under it in a file of the user's runtime\n"
-                   "folder, deleted when the session ends; the\n"
-                   "passphrase-sealed key file is not changed.")
+                   "The session key exists only in that variable.\n"
+                   "The secrets are sealed under it in a file of\n"
+                   "the user's runtime folder, deleted when the\n"
+                   "session ends; the passphrase-sealed key file\n"
+                   "is not changed.")
     p.add_argument("--for", dest="lifetime", default="1h", metavar="TIME",
                    help="how long the session lasts: 90s, 20m, 2h (default 1h, at most 12h)")
     json_opt(p)
