@@ -149,8 +149,9 @@ def _same_day_notes(events: list[dict]) -> list[str]:
         timed = [e["what"] for e in same if _CLOCK.search(e["time"] or "")]
         if loose and timed:
             notes.append(f"{' and '.join(loose)} {'is' if len(loose) == 1 else 'are'} dated to the "
-                         f"day only ({day}): on that day the order against {', '.join(timed)} is "
-                         "not known, and the table lists the day-only dates first.")
+                         f"day only ({day}). How {'it falls' if len(loose) == 1 else 'they fall'} "
+                         f"on that day against these timed events is not known: "
+                         f"{'; '.join(timed)}. The table lists the day-only dates first.")
     return notes
 
 
