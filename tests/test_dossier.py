@@ -66,6 +66,22 @@ def test_pdftotext_finds_every_section_and_the_numbers(built_case):
     assert "differ between jurisdictions" in text and "counsel" in text
     assert "does not show who took the photograph" in text
     assert "claimkit verify BUNDLE.zip" in text
+    # The method describes the format that marks now: format 3's claim does not repeat per tile
+    # (the sentence "the tile repeats over the whole picture" was true of formats 1 and 2 only).
+    eng = d["method"]["engine"]
+    assert (f"changes from tile to tile over a keyed {eng['current']['macro_cell_tiles']} x "
+            f"{eng['current']['macro_cell_tiles']} macro-cell") in text
+    assert f"one of {eng['current']['families']} keyed families" in text
+    assert "The tile repeats over the whole picture" not in text
+    # One definition per count: the method gives both searches' counts, and each format-3 result's
+    # count is the method's per-scale count times the scales it states (an expert redoes it).
+    assert f"{eng['hypotheses']} placements in all for formats 1 and 2" in text
+    assert f"{eng['format3_hypotheses']} hypotheses at each scale examined" in text
+    assert eng["format3_hypotheses"] == (eng["format3_placements"] * eng["current"]["families"]
+                                         * eng["current"]["macro_cell_tiles"] ** 2)
+    for r in d["results"]:
+        if r["detected"] and r["scales_searched"] > 1:
+            assert f"{r['hypotheses']} placements ({r['scales_searched']} scales examined" in text
     # The robustness table: one row per edit of the battery, as stored.
     rob = d["results"][0]["robustness"]
     if rob["status"] == "run":

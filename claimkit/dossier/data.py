@@ -242,12 +242,16 @@ def _engine_parameters() -> dict:
     return {
         "tile_px": formats.CURRENT.tile_px, "payload_bits": formats.CURRENT.payload_bits,
         "pilot_spots": formats.CURRENT.pilot_spots, "code_spots": formats.CURRENT.code_spots,
+        # The format that marks now, for the method's words (its record is in format_records).
+        "current": formats.CURRENT.as_record(),
         "formats_read": "; ".join(f.describe() for f in formats.READABLE),
         "format_records": [f.as_record() for f in formats.READABLE],
         "prefilter_px": detect.PREFILTER,
         "geometries_tried": detect.GEOMETRIES, "quarter_turns_and_mirrors": detect.DIHEDRAL,
         "subpixel_phases": len(detect.PHASES), "hypotheses": detect.hypotheses(),
         "format3_hypotheses": detect.format3_hypotheses(),
+        "format3_placements": detect.DECODE_TRIES + detect.OWN_PLACEMENTS,
+        "format3_best": detect.DECODE_TRIES, "format3_own": detect.OWN_PLACEMENTS,
         # The synchronisation's own count (removal_suspected only): every geometry format 3's
         # keyed search chose among.
         "format3_sync_hypotheses": detect.sync_hypotheses(),
@@ -269,6 +273,7 @@ def _result(ex: dict, f: dict | None) -> dict:
         "false_alarm_text": r["false_alarm_text"],
         "score_pilot": r["score_pilot"], "score_full": r["score_full"],
         "hypotheses": r["hypotheses"], "payload_space": r["payload_space"],
+        "scales_searched": r.get("scales_searched", 1),
         "payload_valid": r["payload_valid"], "work_id": r.get("work_id"),
         "registered": r.get("registered", False),
         "message_psnr_db": r["message_psnr_db"], "geometry": r["geometry"],

@@ -180,7 +180,7 @@ def tables(data: dict, name: str, arg: str | None) -> tuple[list[str], list[list
     if name == "parameters":
         eng = data["method"]["engine"]
         rows = [[k, str(v)] for k, v in sorted(eng.items())
-                if k not in ("format_records", "examination")]
+                if k not in ("format_records", "examination", "current")]
         rows += [[f"examination: {k}", str(v)] for k, v in sorted(eng["examination"].items())]
         for f in eng["format_records"]:
             rows += [[f"{f['format']}: {k}", str(v)] for k, v in sorted(f.items())
