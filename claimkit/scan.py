@@ -11,7 +11,7 @@ record's target URL and capture date (:mod:`claimkit.capture.warcintake`).
 Why the cost per file does not depend on the size of the registry: the mark
 carries its own work serial in the payload, checked by a keyed payload tag,
 so the examination under the owner's one key names the work; the registry is
-asked once per *claimed* file, by serial (an indexed look-up). Nothing is
+asked once per file with a mark found, by serial (an indexed look-up). Nothing is
 compared against every registered work.
 
 What travels to the workers: the 32-byte detection seed and a payload
@@ -83,7 +83,7 @@ def scan_task(path: str, seed, checker, threshold: float,
 @dataclass
 class ScanSummary:
     read: int = 0
-    claimed: int = 0
+    marks_found: int = 0
     registered: int = 0
     unreadable: list[str] = field(default_factory=list)
     added_to_case: int = 0
@@ -95,8 +95,8 @@ class ScanSummary:
     report: str | None = None
 
     def as_dict(self) -> dict:
-        return {"files_read": self.read, "claimed": self.claimed,
-                "claimed_registered": self.registered, "files_unreadable": len(self.unreadable),
+        return {"files_read": self.read, "marks_found": self.marks_found,
+                "marks_found_registered": self.registered, "files_unreadable": len(self.unreadable),
                 "added_to_case": self.added_to_case, "not_started": self.not_started,
                 "passed_over": self.passed_over,
                 "seconds": round(self.seconds, 2),
@@ -105,7 +105,7 @@ class ScanSummary:
 
 
 class _CaseAdder:
-    """Puts claimed copies into a case through the case layer."""
+    """Puts copies with a mark found into a case through the case layer."""
 
     def __init__(self, case_dir: Path, profile, notice, origins: dict | None = None):
         self.origins = origins or {}
@@ -115,7 +115,7 @@ class _CaseAdder:
 
     def __call__(self, path: Path, rep: dict) -> str | None:
         """Take ``path`` in; returns the exhibit id, or None (with a note) when it was not."""
-        note = f"claimed as {rep.get('work_id')} by claimkit scan"
+        note = f"claimkit scan found the mark naming {rep.get('work_id')}"
         try:
             origin = self.origins.get(path)
             if origin is not None:
@@ -197,7 +197,7 @@ def scan_folders(profile, folders: list[Path], *,
         Folders (walked recursively) or single files.
     on_row : callable, optional
         Called with each file's result, in a stable order: the ``examine
-        --json`` fields plus ``status`` (``claimed``, ``not found`` or
+        --json`` fields plus ``status`` (``mark-found``, ``not-found`` or
         ``unreadable``, the last with ``error``).
     on_notice : callable, optional
         Called with a one-line note (a copy not added to the case, a stop
@@ -205,12 +205,12 @@ def scan_folders(profile, folders: list[Path], *,
     report : Path, optional
         Also write a CSV with one row per file (columns :data:`CSV_COLUMNS`).
     case_dir : Path, optional
-        Take every claimed copy into this case (``claimkit case add``).
+        Take every copy with a mark found into this case (``claimkit case add``).
     engine, scheduler, workers : see :func:`claimkit.runner.make_engine`.
     progress : bool, optional
         Progress bar on stderr (default: when stderr is a terminal).
     threshold : float, optional
-        False-alarm bound at or below which a file is claimed (default 1e-9).
+        False-alarm bound at or below which a mark is found (default 1e-9).
 
     Returns
     -------
@@ -280,7 +280,7 @@ def scan_folders(profile, folders: list[Path], *,
         else:
             s.read += 1
             if rep.get("detected"):
-                s.claimed += 1
+                s.marks_found += 1
                 serial = rep.get("serial")
                 work = profile.work_by_payload(profile.owner_tag, serial) if serial else None
                 if work is not None:
@@ -293,7 +293,7 @@ def scan_folders(profile, folders: list[Path], *,
                         rep["exhibit_id"] = ex
                         s.added_to_case += 1
         if "status" not in rep:
-            rep["status"] = "claimed" if rep.get("detected") else "not-found"
+            rep["status"] = "mark-found" if rep.get("detected") else "not-found"
         if csv_out is not None:
             csv_out.add(rep)
         if on_row is not None:

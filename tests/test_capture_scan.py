@@ -67,7 +67,7 @@ def test_scan_finds_every_marked_image_in_a_wget_warc(site, shop_owner, wget_war
     code, out, err = _run(capsys, "scan", wget_warc, "--json", "--workers", "1")
     assert code == 0, err
     rows = [json.loads(x) for x in out.splitlines() if x.strip()]
-    claimed = {r["url"]: r for r in rows if r["status"] == "claimed"}
+    claimed = {r["url"]: r for r in rows if r["status"] == "mark-found"}
     assert set(claimed) == set(expected)
     for url, r in claimed.items():
         assert r["capture_date"] == expected[url] and r["file"] == str(wget_warc)
@@ -121,7 +121,7 @@ def test_scan_reads_claimkits_own_capture_plain_and_in_a_folder(site, shop_owner
     code, out, err = _run(capsys, "scan", crawl, "--json", "--workers", "1")
     assert code == 0, err
     rows = [json.loads(x) for x in out.splitlines() if x.strip()]
-    claimed = {r["url"] for r in rows if r["status"] == "claimed"}
+    claimed = {r["url"] for r in rows if r["status"] == "mark-found"}
     assert claimed == {site.url(p) for p in site.marked}
     assert all(r["file"] == str(plain) for r in rows)
 

@@ -74,16 +74,16 @@ def test_scan_claims_the_marked_copies_and_names_their_works(profile, finds, tmp
         assert set(by[name]["geometry"]) >= {"rotation_deg", "scale", "flipped", "shift_px"}
     assert by["cat.jpg"]["detected"] is False and by["cat.jpg"]["work_id"] is None
     assert "broken.jpg" in by["broken.jpg"]["error"]["message"]
-    assert [by[n]["status"] for n in names] == ["not-found", "claimed", "unreadable", "claimed"]
+    assert [by[n]["status"] for n in names] == ["not-found", "mark-found", "unreadable", "mark-found"]
     summary = json.loads(err.strip().splitlines()[0])["summary"]
-    assert summary["files_read"] == 3 and summary["claimed"] == 2
+    assert summary["files_read"] == 3 and summary["marks_found"] == 2
     assert summary["files_unreadable"] == 1 and summary["passed_over"] == 1    # page.html
     assert "claimkit: error: " in err and "broken.jpg" in err
     # The CSV has the same files, in the same order, with the same verdicts.
     with report.open(newline="") as fh:
         table = list(csv.DictReader(fh))
     assert [Path(r["file"]).name for r in table] == names
-    assert [r["status"] for r in table] == ["not-found", "claimed", "unreadable", "claimed"]
+    assert [r["status"] for r in table] == ["not-found", "mark-found", "unreadable", "mark-found"]
     assert table[1]["work_id"] == finds["rocket"]
     assert table[3]["sha256"] == sha256_file(finds["web"] / "shop" / "mug-listing.jpg")
 

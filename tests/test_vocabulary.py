@@ -130,7 +130,7 @@ def test_every_command_speaks_the_vocabulary(tmp_path, monkeypatch, capsys, loca
     run("verify", ["verify", str(tmp_path / "b.zip"), "--json"])
     told = run("scan", ["scan", str(tmp_path / "found"), "--json", "--workers", "1"], code=1,
                summary=True)[-1]
-    assert told["files_read"] == 1 and told["claimed"] == 1 and told["files_unreadable"] == 1
+    assert told["files_read"] == 1 and told["marks_found"] == 1 and told["files_unreadable"] == 1
     run("case withdraw", ["case", "withdraw", str(case), "1", "--reason", "licensed", "--json"])
     monkeypatch.setenv("XDG_RUNTIME_DIR", str(tmp_path))      # the session file's folder
     session = run("unlock", ["unlock", "--for", "5m", "--json"])[0]

@@ -10,7 +10,7 @@ disk space; 2 nothing could be marked because every input was bad input (or
 no image was found); 130 the run was interrupted (Ctrl-C): run the same
 command again to finish.
 
-Exit status of ``scan``: 0 when every file was read (claimed or not); 1 when
+Exit status of ``scan``: 0 when every file was read (mark found or not); 1 when
 some files could not be read (each listed); 2 when no file could be read or
 none was found; 130 when interrupted (the lines and report cover the files done).
 """
@@ -148,7 +148,7 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False, **kw
         print(json.dumps({"summary": s.as_dict()}, sort_keys=True), file=err, flush=True)
     else:
         rate = s.read / s.seconds if s.seconds > 0 else 0.0
-        line = (f"{s.read} files read, mark found in {s.claimed} ({s.registered} in this "
+        line = (f"{s.read} files read, mark found in {s.marks_found} ({s.registered} in this "
                 f"registry), "
                 f"{len(s.unreadable)} unreadable")
         if s.added_to_case:
@@ -161,9 +161,11 @@ def scan_folders(profile, folders: list[Path], *, json_lines: bool = False, **kw
         print(f"{line}; {s.seconds:.1f} s, {rate:.1f} files/s", flush=True)
         if s.report is not None:
             print(f"report: {s.report}", flush=True)
-        if s.claimed:
-            print("A claim rests on technical evidence, not legal advice; consult counsel "
-                  "before acting on it.", flush=True)
+        if s.marks_found:
+            print("A mark found is a lead, not yet a finding that the copy derives from the work: "
+                  "take it into a case, where the picture is compared with the registered work. "
+                  "Technical evidence, not legal advice; consult counsel before acting on it.",
+                  flush=True)
     if s.unreadable:
         print(f"claimkit: {len(s.unreadable)} file(s) could not be read:", file=err)
         for line in s.unreadable:
@@ -207,7 +209,7 @@ def register(sub, common) -> None:
                    help="one JSON object per file on stdout; the summary as JSON on stderr")
     p.add_argument("--report", metavar="FILE.csv", help="also write a CSV, one row per file")
     p.add_argument("--force", action="store_true", help="replace an existing --report file")
-    p.add_argument("--case", metavar="DIR", help="take every claimed copy into this case")
+    p.add_argument("--case", metavar="DIR", help="take every copy with a mark found into this case")
     p.add_argument("--threshold", type=float, default=DEFAULT_THRESHOLD,
                    help="largest false-alarm bound that counts as a claim (default 1e-9)")
     p.add_argument("--max-pixels", type=int, default=None, metavar="N",
