@@ -24,6 +24,12 @@ a fixed test key.
   given), or
   disagrees (says "does not correspond", or reads another geometry: shown as
   ``content-mismatch`` or ``lines-disagree``). Every disagreement is printed.
+  A disagreement counts as **shown** when the report shows a warning for it
+  (``evaluation.lines.content_warnings``, the rule the dossier writes its warnings by),
+  and as **silent** only when it shows none. Where the two lines read different
+  geometries, the opinion reports the weaker line and still claims derivation,
+  with the ``lines-disagree`` warning beside it: that is a disagreement shown
+  (the lead's decision), and the run says how many such claims there were.
 
 Nothing is asserted; the numbers are the issue's targets, measured.
 """
@@ -49,7 +55,7 @@ from engine_helpers import generated, mark, payload, sky, soft, transplant_mark
 
 from claimkit import stress
 from claimkit.content.assess import layout_check
-from claimkit.evaluation.lines import weigh
+from claimkit.evaluation.lines import content_warnings, weigh
 from claimkit.imageio import to_luma
 from claimkit.mark import detect, scales
 from claimkit.mark import payload as payload_mod
@@ -174,14 +180,15 @@ def run_picture(args: tuple[str, bool]) -> dict:
         lay = layout_check(ref, to_luma(copy), geom["matrix"], uses_mark_geometry=True)["value"] \
             if found else None
         ev = w["evaluation"]
+        codes = content_warnings(detected=found, content=c, content_mismatch=w["content_mismatch"])
         rows.append({"picture": name, "attack": att.name, "mark_found": found,
                      "outcome": outcome, "inliers": c["statistic"]["value"],
                      "corresponds": c["corresponds"], "agreement": ag,
                      "content_mismatch": w["content_mismatch"], "layout": lay,
                      "reading": c["statistic"].get("reading"),
                      "cannot_decide": c.get("cannot_decide"),
-                     "shown": None if not found else (not ev["derivation_claimed"]
-                                                      if outcome != "agrees" else True),
+                     "warnings": codes, "derivation_claimed": bool(ev["derivation_claimed"]),
+                     "shown": None if not found else (bool(codes) if outcome != "agrees" else True),
                      "seconds": round(time.perf_counter() - t0, 2)})
     return {"transplants": trans, "genuine": rows}
 
@@ -240,8 +247,11 @@ def main() -> None:
     print(f"\nGENUINE: mark found in {len(found)} of {len(rows)} copies; the content line agrees in "
           f"{agrees} ({100 * agrees / max(len(found), 1):.1f} % of all, "
           f"{100 * agrees / max(decided, 1):.1f} % of those it could decide); cannot decide "
-          f"{undecided}; disagrees {decided - agrees}; every non-agreement shown (no derivation "
-          f"claimed): {all(r['shown'] for r in found if r['outcome'] != 'agrees')}; content "
+          f"{undecided}; disagrees {decided - agrees} (silent, no warning shown: "
+          f"{sum(not r['shown'] for r in found if r['outcome'] != 'agrees')}; derivation claimed "
+          f"beside a lines-disagree warning: "
+          f"{sum(r['derivation_claimed'] and 'lines-disagree' in r['warnings'] for r in found)}); "
+          f"flagged content_mismatch: {sum(bool(r['content_mismatch']) for r in found)}; content "
           f"corresponds where the mark was not found: "
           f"{sum(bool(r['corresponds']) for r in rows if not r['mark_found'])} of "
           f"{sum(not r['mark_found'] for r in rows)}  ({time.perf_counter() - t0:.0f} s)")

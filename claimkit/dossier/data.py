@@ -20,6 +20,7 @@ from claimkit.case.documents import CaseDoc, DossierDataDoc, ExhibitDoc, Finding
 from claimkit.case.layout import CUSTODY_COPY, CUSTODY_COPY_V1, DISCLOSURES, PUBLIC_KEY, SOFTWARE
 from claimkit.content import assess, broad, register
 from claimkit.evaluation import lr
+from claimkit.evaluation.lines import content_warnings
 from claimkit.evaluation.timeline import build_timeline
 from claimkit.evidence import signing
 from claimkit.evidence.canonical import canonical_json
@@ -292,15 +293,16 @@ def _timeline(works: list[dict], exhibits: list[dict], results: list[dict]) -> d
     tl = build_timeline(works, labelled, matches, mismatches)
     for r in results:
         c = r.get("content") or {}
-        if r.get("detected") and c.get("basis") not in (None, "none") and c.get("corresponds") is None \
-                and not r.get("content_mismatch"):
+        codes = content_warnings(detected=bool(r.get("detected")), content=c,
+                                 content_mismatch=bool(r.get("content_mismatch")))
+        if "content-inconclusive" in codes:
             tl["warnings"].append({"code": "content-inconclusive", "exhibit": r["exhibit_id"],
                                    "text": f"{r['label']}: "
                                            f"{c.get('reason', 'the content line was inconclusive')}; "
                                            "a transplanted mark cannot be excluded, and no "
                                            "derivation is claimed."})
-        ag = ((r.get("content") or {}).get("agreement_with_mark") or {})
-        if ag.get("compared") and not ag.get("agree"):
+        ag = c.get("agreement_with_mark") or {}
+        if "lines-disagree" in codes:
             tl["warnings"].append({"code": "lines-disagree", "exhibit": r["exhibit_id"], "text": (
                 f"{r['label']}: the mark and the picture content read different geometries "
                 f"(turn {ag['rotation_difference_deg']} degrees apart, scale {ag['scale_difference']} "
