@@ -413,15 +413,15 @@ def _coarse_genuine_one(args: tuple[str, bool]) -> list[dict]:
     k, quick = args
     rgb = calibration_pictures(quick)[k]
     half = _half_reference(rgb)
-    refs = {"full": to_luma(rgb), "half": half}
+    refs = {"full": (to_luma(rgb), 1.0), "half": (half, 0.5)}
     rows = []
     for att in genuine_attacks(quick):
         lu = to_luma(att.apply(rgb))
         if min(lu.shape) < 16:
             continue
-        for rname, rl in refs.items():
+        for rname, (rl, rs) in refs.items():
             rows.append({"picture": k, "attack": att.name, "reference": rname,
-                         "inliers": reg.register_coarse(rl, lu)["inliers"]})
+                         "inliers": reg.register_coarse(rl, lu, rs)["inliers"]})
     return rows
 
 
@@ -462,9 +462,11 @@ def _coarse_below(rows: list[dict], quick: bool) -> dict[tuple[str, str, str], i
     out = {}
     for r in rows:
         rgb = pics[r["picture"]]
-        ref = to_luma(rgb) if r["reference"] == "full" else _half_reference(rgb)
+        full = r["reference"] == "full"
+        ref = to_luma(rgb) if full else _half_reference(rgb)
         lu = to_luma(attacks[r["attack"]].apply(rgb))
-        out[(r["picture"], r["attack"], r["reference"])] = reg.register_coarse(ref, lu)["inliers"]
+        out[(r["picture"], r["attack"], r["reference"])] = reg.register_coarse(
+            ref, lu, 1.0 if full else 0.5)["inliers"]
     return out
 
 
@@ -490,6 +492,9 @@ def coarse_section(doc: dict, quick: bool) -> dict:
         "statistic": "RANSAC inliers of claimkit.content.register.register_coarse",
         "settings": {"side_px": reg.COARSE_SIDE, "keypoints": reg.KEYPOINTS,
                      "smooth_px": reg.COARSE_SMOOTH,
+                     "smooth_rule": f"the larger of {reg.COARSE_SMOOTH} px at {reg.COARSE_SIDE} "
+                                    f"and {reg.FINE_SMOOTH} px of the registered work",
+                     "max_stretch_gain": reg.MAX_STRETCH_GAIN,
                      "residual_px": reg.RESIDUAL_PX, "ransac_trials": reg.RANSAC_TRIALS,
                      "ransac_seed": reg.RANSAC_SEED, "max_ratio": reg.MAX_RATIO},
         "threshold": threshold,

@@ -199,7 +199,7 @@ def content_line(exhibit_luma: np.ndarray, *, reference_luma: np.ndarray | None 
         coarse_cal = cal.get("coarse")
         if value < threshold and coarse_cal:
             # The coarse reading, with its own measured null and threshold (register_coarse).
-            coarse = reg.register_coarse(reference_luma, exhibit_luma)
+            coarse = reg.register_coarse(reference_luma, exhibit_luma, reference_scale)
             reached = int(coarse["inliers"]) >= int(coarse_cal["threshold"])
             statistic["coarse"] = {"value": int(coarse["inliers"]),
                                    "threshold": int(coarse_cal["threshold"]),

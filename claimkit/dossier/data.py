@@ -214,6 +214,9 @@ def _content_parameters() -> dict:
         "able_inliers": assess.ABLE_FACTOR * cal["threshold"],
         "coarse": None if "coarse" not in cal else {
             "side_px": register.COARSE_SIDE, "threshold_inliers": cal["coarse"]["threshold"],
+            "smooth": f"{register.COARSE_SMOOTH:g} px there or {register.FINE_SMOOTH:g} px of "
+                      "the registered work, whichever is more",
+            "max_gain": f"{register.MAX_STRETCH_GAIN:g}",
             "null_pairs": cal["coarse"]["null"]["count"],
             "null_max_inliers": max(cal["coarse"]["null"]["samples"]),
             "either_null_at_most": cal["coarse"]["either"]["null_reaching_at_most"],
