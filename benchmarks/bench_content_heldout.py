@@ -31,6 +31,11 @@ a fixed test key.
   with the ``lines-disagree`` warning beside it: that is a disagreement shown
   (the lead's decision), and the run says how many such claims there were.
 
+The layout at the mark's geometry, and the faint share beside it
+(``broad.faint_share``, consulted where the correlation does not refute), are
+measured on every genuine copy on which the mark was found, whether or not the
+content line consulted them: the genuine side of their limits, on held-out pictures.
+
 Nothing is asserted; the numbers are the issue's targets, measured.
 """
 
@@ -144,6 +149,7 @@ def _transplants(name: str, pub: np.ndarray, ref: np.ndarray, which: str) -> lis
         out.append({"set": which, "picture": name, "host": h, "claimed": True,
                     "inliers": c["statistic"]["value"], "reading": c["statistic"].get("reading"),
                     "corresponds": c["corresponds"], "layout": lay.get("value"),
+                    "faint": (lay.get("faint") or {}).get("value"),
                     "flagged": bool(w["content_mismatch"]),
                     "reported_log10_lr": w["evaluation"]["reported_log10_lr"],
                     "derived": bool(w["evaluation"]["derivation_claimed"])})
@@ -177,14 +183,16 @@ def run_picture(args: tuple[str, bool]) -> dict:
         # The layout at the mark's geometry on every copy found, not only where it is consulted:
         # the genuine side of the check's limit, measured with the mark's real readings.
         geom = scales.relative_to_original(m["geometry"], pub.shape[:2]) if found else None
-        lay = layout_check(ref, to_luma(copy), geom["matrix"], uses_mark_geometry=True)["value"] \
-            if found else None
+        lay_res = layout_check(ref, to_luma(copy), geom["matrix"], uses_mark_geometry=True) \
+            if found else {}
+        lay = lay_res.get("value")
         ev = w["evaluation"]
         codes = content_warnings(detected=found, content=c, content_mismatch=w["content_mismatch"])
         rows.append({"picture": name, "attack": att.name, "mark_found": found,
                      "outcome": outcome, "inliers": c["statistic"]["value"],
                      "corresponds": c["corresponds"], "agreement": ag,
                      "content_mismatch": w["content_mismatch"], "layout": lay,
+                     "faint": (lay_res.get("faint") or {}).get("value"),
                      "reading": c["statistic"].get("reading"),
                      "cannot_decide": c.get("cannot_decide"),
                      "warnings": codes, "derivation_claimed": bool(ev["derivation_claimed"]),
@@ -221,6 +229,10 @@ def main() -> None:
     print(f"layout at the mark's geometry, genuine copies found: {len(lays)} compared, lowest "
           f"{lays[:3]}; transplants: highest "
           f"{sorted(t['layout'] for t in trans if t.get('layout') is not None)[-3:]}")
+    fa = sorted(r["faint"] for r in found if r["faint"] is not None)
+    print(f"faint share at the mark's geometry, genuine copies found: {len(fa)} compared, "
+          f"highest {fa[-3:]}; transplants where it was measured: "
+          f"{sorted(t['faint'] for t in trans if t.get('faint') is not None)}")
     print(f"the coarse reading decided {sum(r['reading'] == 'coarse' for r in found)} genuine "
           "copies found")
     by_att: dict[str, dict[str, int]] = defaultdict(lambda: defaultdict(int))

@@ -56,6 +56,12 @@ def test_calibration_is_measured_and_separates():
     assert co["either"]["genuine_reaching"] >= cal["genuine"]["count"] - len(
         cal["genuine_below_threshold"])
     assert max(co["transplanted"]["samples"]) < co["threshold"]
+    # the faint share: measured where it runs (copies on which the mark was found), every
+    # genuine value at most half the limit (the project's margin)
+    fa = cal["faint"]
+    assert fa["genuine"]["mark_found"] < fa["genuine"]["copies"]
+    assert 2 * max(fa["genuine"]["samples"]) <= fa["refute_above"]
+    assert fa["null"]["above_refute"] > 0
 
 
 @pytest.mark.parametrize("host", ["chelsea", "rocket"])
@@ -291,6 +297,84 @@ def test_transplant_onto_a_host_of_another_shape_is_placed_by_half_overlaps():
     lay = layout_check(to_luma(work), to_luma(forged), np.eye(2), uses_mark_geometry=True)
     assert lay["min_overlap"] == 0.5 and "placements covering 50 %" in lay["reason"]
     assert lay["refutes"]
+
+
+def test_local_contrast_is_the_window_standard_deviation():
+    # Reference: numpy's standard deviation (ddof 0) over each 4 x 4 window, which
+    # scipy.ndimage.uniform_filter of size 4 places at rows and columns i - 2 .. i + 1.
+    from claimkit.content.broad import CONTRAST_WINDOW, _local_contrast
+
+    a = np.random.default_rng(3).random((20, 24))
+    got = _local_contrast(a, np.ones_like(a, bool))
+    h = CONTRAST_WINDOW // 2
+    for i, j in [(2, 2), (7, 11), (17, 21)]:
+        assert got[i, j] == pytest.approx(np.std(a[i - h: i + h, j - h: j + h]), abs=1e-9)
+
+
+def _ramp(h: int, w: int, seed: int = 4) -> np.ndarray:
+    """A diagonal colour ramp with faint noise (numpy only): a broad layout and no edges."""
+    y, x = np.mgrid[0:h, 0:w] / w
+    ramp = 0.6 * x + 0.4 * y
+    base = np.stack([70 + 90 * ramp, 60 + 60 * ramp, 120 - 40 * ramp], axis=-1)
+    return np.clip(base + np.random.default_rng(seed).normal(0, 1.5, base.shape), 0, 255
+                   ).astype(np.uint8)
+
+
+def test_faint_share_tells_a_flat_picture_from_a_copy():
+    # A work of strong edges (a ramp under a 16-px checkerboard of 40 grey levels), placed as it
+    # is: a JPEG 50 copy (Pillow) keeps its contrast; the bare ramp, whose broad layout is the
+    # work's (the checkerboard averages out at 64 px), shows it faint everywhere; a copy of a
+    # plain part of a work says nothing (it could be a copy of that part).
+    from claimkit.content.broad import broad_correlation, faint_share
+
+    h, w = 300, 400
+    yy, xx = np.mgrid[0:h, 0:w]
+    ramp = to_luma(_ramp(h, w))
+    work = ramp + 40 * (((yy // 16) + (xx // 16)) % 2) - 20
+    rgb = np.stack([np.clip(work, 0, 255).astype(np.uint8)] * 3, -1)
+    assert faint_share(work, to_luma(stress.jpeg(rgb, 50)), np.eye(2))["value"] < 0.05
+    assert faint_share(work, ramp, np.eye(2))["value"] > 0.95
+    assert broad_correlation(work, ramp, np.eye(2))["value"] > 0.9   # no help here
+    half = work.copy()
+    half[:, 200:] = ramp[:, 200:]
+    assert faint_share(half, ramp[:, 220:], np.eye(2))["value"] is None
+
+
+@pytest.fixture(scope="module")
+def published_cat():
+    chelsea = data.chelsea()
+    return mark(np.asarray(Image.fromarray(chelsea).resize((902, 600), Image.Resampling.BICUBIC)))
+
+
+def test_transplant_onto_a_ramp_is_flagged_by_its_faint_contrast(published_cat):
+    # The attacker (numpy only) adds the mark to a colour ramp: no keypoints to decide by, and
+    # the ramp's broad layout correlates with the work's well enough to pass the layout check;
+    # placed as the mark reads it, the ramp is faint wherever the work has edges or fur.
+    w = _weigh_examined(transplant_mark(published_cat, _ramp(450, 600, 3)), published_cat)
+    c, ev = w["content"], w["evaluation"]
+    lay = c["layout_with_mark"]
+    assert c["corresponds"] is None and lay["value"] >= lay["refute_below"]
+    assert lay["faint"]["value"] > lay["faint"]["refute_above"]
+    assert lay["faint"]["refutes"] and lay["refutes"] and w["content_mismatch"]
+    assert not ev["derivation_claimed"] and ev["reported_log10_lr"] < 0
+    assert "the exhibit is faint" in ev["finding"] and "strong edges or texture" in ev["finding"]
+
+
+@pytest.mark.parametrize("edit", ["blur 2", "contrast 0.6"])
+def test_genuine_blurred_or_faded_copy_is_not_refuted_by_its_contrast(published_cat, edit):
+    # A genuine copy placed by the mark's own reading keeps the work's strong contrast
+    # (Pillow's Gaussian blur; the battery's contrast 0.6): far under the faint share's limit.
+    from claimkit.content.assess import layout_check
+    from claimkit.mark import scales
+
+    copy = next(a for a in stress.battery() if a.name == edit).apply(published_cat)
+    f = detect.examine_luma(to_luma(copy), bytes(range(32)))
+    assert f.detected
+    g = scales.relative_to_original(f.geometry, published_cat.shape[:2])
+    lay = layout_check(to_luma(published_cat), to_luma(copy), np.asarray(g["matrix"]),
+                       uses_mark_geometry=True)
+    assert not lay["refutes"] and not lay["faint"]["refutes"]
+    assert lay["faint"]["value"] < 0.5 * lay["faint"]["refute_above"]
 
 
 def test_web_copy_corresponds_by_the_coarse_reading():

@@ -236,6 +236,13 @@ def _content_parameters() -> dict:
         "layout_genuine_lowest": min(cal["broad"]["genuine"]["samples"]),
         "layout_null": cal["broad"]["null"]["count"],
         "layout_null_below": cal["broad"]["null"]["below_refute"],
+        "faint": None if "faint" not in cal else {
+            "side_px": broad.CONTRAST_SIDE, "window_px": broad.CONTRAST_WINDOW,
+            "strong": f"{broad.STRONG_CONTRAST * 255:g}", "faint": f"{broad.FAINT_CONTRAST * 255:g}",
+            "min_strong": broad.MIN_STRONG, "refute_above": cal["faint"]["refute_above"],
+            "rule": cal["faint"]["refute_rule"], "genuine": cal["faint"]["genuine"]["count"],
+            "genuine_highest": max(cal["faint"]["genuine"]["samples"]),
+            "null": cal["faint"]["null"]["count"], "null_above": cal["faint"]["null"]["above_refute"]},
         "lr_cap": f"10^{lr.CAP_LOG10:g} either way",
         "rate_bounds": f"one-sided {100 * lr.CONFIDENCE:g} % Clopper-Pearson",
     }
