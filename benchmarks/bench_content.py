@@ -48,13 +48,18 @@ from claimkit import __version__, stress
 from claimkit.content import assess, broad
 from claimkit.content import register as reg
 from claimkit.imageio import to_luma
+from claimkit.mark import detect, scales
+from claimkit.mark import payload as payload_mod
 from claimkit.mark.fingerprint import fingerprint_distance, perceptual_fingerprint
+from claimkit.workflow import expected_payload_check
 
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "tests"))
 from engine_helpers import (  # noqa: E402 - the tests' helpers, on the path just above
+    SEED,
     generated,
     mark,
+    payload,
     transplant_mark,
 )
 
@@ -409,19 +414,110 @@ def _coarse_one(args: tuple[str, bool]) -> dict:
             "transplanted": transplanted}
 
 
+def _faint_one(args: tuple[str, bool]) -> dict:
+    """The faint share (``broad.faint_share``): picture ``k`` against every other work placed by
+    each of :data:`BROAD_NULL_MAPS`, and every copy of ``k`` marked on which the mark is found,
+    placed by the mark's own reading of its geometry (the check runs only there)."""
+    k, quick = args
+    pics = calibration_pictures(quick)
+    lu = to_luma(pics[k])
+    null = [{"work": r, "exhibit": k, "map": how,
+             "value": broad.faint_share(to_luma(rv), lu, lin)["value"]}
+            for r, rv in pics.items() if r != k for how, lin in BROAD_NULL_MAPS.items()]
+    pub = mark(pics[k], SEED, payload())
+    ref = to_luma(pub)
+    genuine = []
+    for att in faint_attacks():
+        copy = att.apply(pub)
+        row: dict = {"picture": k, "attack": att.name, "mark_found": False, "value": None}
+        if min(copy.shape[:2]) >= detect.MIN_SIDE:
+            f = scales.examine(to_luma(copy), SEED, payload_check=expected_payload_check(payload()),
+                               payload_space=payload_mod.PAYLOAD_SPACE)
+            if f.detected and f.payload_valid:
+                g = scales.relative_to_original(f.geometry, pub.shape[:2])
+                row.update(mark_found=True, value=broad.faint_share(ref, to_luma(copy),
+                                                                    g["matrix"])["value"])
+        genuine.append(row)
+    return {"null": null, "genuine": genuine}
+
+
+def faint_attacks() -> list[stress.Attack]:
+    """Every attack of the stress battery (signal and geometric) and an enlargement to 200 %."""
+    out = [a for a in stress.battery() if a.name != "none"]
+    out.append(stress.Attack("resize 2", "resize", {"factor": 2.0},
+                             lambda p: stress.resize(p, 2.0), scale=2.0))
+    return out
+
+
+def faint_threshold(genuine: list[float]) -> float:
+    # The project's margin: twice the highest share a genuine copy reached, and at least one
+    # half (a picture that is not the work shows most of the work's strong contrast faint).
+    return round(max(0.5, 2.0 * max(genuine)), 3)
+
+
+def faint_section(quick: bool) -> dict:
+    """The faint share's distributions and its refuting limit, on the population it runs on."""
+    t0 = time.perf_counter()
+    pics = calibration_pictures(quick)
+    with ProcessPoolExecutor(2) as pool:
+        parts = list(pool.map(_faint_one, [(k, quick) for k in pics]))
+    null = [r for p in parts for r in p["null"]]
+    gen = [r for p in parts for r in p["genuine"]]
+    found = [r for r in gen if r["mark_found"]]
+    gv = sorted(r["value"] for r in found if r["value"] is not None)
+    nv = sorted(r["value"] for r in null if r["value"] is not None)
+    above = faint_threshold(gv)
+    return {
+        "statistic": "lowest share, over the shifts, of the work's strong-contrast windows under "
+                     "the exhibit where the exhibit is faint, at a given turn, scale and mirroring "
+                     "(claimkit.content.broad.faint_share)",
+        "settings": {"side_px": broad.CONTRAST_SIDE, "window_px": broad.CONTRAST_WINDOW,
+                     "strong_grey_levels": round(broad.STRONG_CONTRAST * 255, 1),
+                     "faint_grey_levels": round(broad.FAINT_CONTRAST * 255, 1),
+                     "min_strong_windows": broad.MIN_STRONG,
+                     "min_overlap": broad.FALLBACK_OVERLAP},
+        "refute_above": above,
+        "refute_rule": "twice the highest share any genuine copy on which the mark was found "
+                       "reached, placed by the mark's own geometry, and at least 0.5",
+        "genuine": {"count": len(gv), "samples": [round(v, 4) for v in gv],
+                    "copies": len(gen), "mark_found": len(found),
+                    "not_comparable": len(found) - len(gv),
+                    "highest": sorted((r for r in found if r["value"] is not None),
+                                      key=lambda r: -r["value"])[:5],
+                    "what": "the population the check runs on: each calibration picture marked "
+                            "(tests/engine_helpers.mark), every attack of "
+                            "claimkit.stress.battery() and an enlargement to 200 %; the copies "
+                            "on which the mark examination (claimkit.mark.scales.examine) found "
+                            "the mark with the right payload, each placed by the geometry the "
+                            "mark read (the check runs only where the mark was found, and with "
+                            "that geometry); not comparable: some placement puts too few of the "
+                            "work's strong windows under the copy, where nothing is said"},
+        "null": {"count": len(nv), "samples": [round(v, 4) for v in nv],
+                 "not_comparable": sum(1 for r in null if r["value"] is None),
+                 "above_refute": sum(1 for v in nv if v > above),
+                 "maps": sorted(BROAD_NULL_MAPS),
+                 "what": "ordered pairs of distinct calibration pictures, the exhibit placed by "
+                         "each of the maps (the translation searched)"},
+        "measured": {"by": "benchmarks/bench_content.py --faint-only"
+                     + (" --quick" if quick else ""),
+                     "software": f"claimkit {__version__}", "skimage": skimage.__version__,
+                     "seconds": round(time.perf_counter() - t0)},
+    }
+
+
 def _coarse_genuine_one(args: tuple[str, bool]) -> list[dict]:
     k, quick = args
     rgb = calibration_pictures(quick)[k]
     half = _half_reference(rgb)
-    refs = {"full": to_luma(rgb), "half": half}
+    refs = {"full": (to_luma(rgb), 1.0), "half": (half, 0.5)}
     rows = []
     for att in genuine_attacks(quick):
         lu = to_luma(att.apply(rgb))
         if min(lu.shape) < 16:
             continue
-        for rname, rl in refs.items():
+        for rname, (rl, rs) in refs.items():
             rows.append({"picture": k, "attack": att.name, "reference": rname,
-                         "inliers": reg.register_coarse(rl, lu)["inliers"]})
+                         "inliers": reg.register_coarse(rl, lu, rs)["inliers"]})
     return rows
 
 
@@ -462,9 +558,11 @@ def _coarse_below(rows: list[dict], quick: bool) -> dict[tuple[str, str, str], i
     out = {}
     for r in rows:
         rgb = pics[r["picture"]]
-        ref = to_luma(rgb) if r["reference"] == "full" else _half_reference(rgb)
+        full = r["reference"] == "full"
+        ref = to_luma(rgb) if full else _half_reference(rgb)
         lu = to_luma(attacks[r["attack"]].apply(rgb))
-        out[(r["picture"], r["attack"], r["reference"])] = reg.register_coarse(ref, lu)["inliers"]
+        out[(r["picture"], r["attack"], r["reference"])] = reg.register_coarse(
+            ref, lu, 1.0 if full else 0.5)["inliers"]
     return out
 
 
@@ -490,6 +588,9 @@ def coarse_section(doc: dict, quick: bool) -> dict:
         "statistic": "RANSAC inliers of claimkit.content.register.register_coarse",
         "settings": {"side_px": reg.COARSE_SIDE, "keypoints": reg.KEYPOINTS,
                      "smooth_px": reg.COARSE_SMOOTH,
+                     "smooth_rule": f"the larger of {reg.COARSE_SMOOTH} px at {reg.COARSE_SIDE} "
+                                    f"and {reg.FINE_SMOOTH} px of the registered work",
+                     "max_stretch_gain": reg.MAX_STRETCH_GAIN,
                      "residual_px": reg.RESIDUAL_PX, "ransac_trials": reg.RANSAC_TRIALS,
                      "ransac_seed": reg.RANSAC_SEED, "max_ratio": reg.MAX_RATIO},
         "threshold": threshold,
@@ -521,6 +622,8 @@ def main() -> None:
                     help="re-measure only the fingerprint distances, into the existing file")
     ap.add_argument("--broad-only", action="store_true",
                     help="measure only the broad-structure statistic, into the existing file")
+    ap.add_argument("--faint-only", action="store_true",
+                    help="measure only the faint share (broad.faint_share), into the existing file")
     ap.add_argument("--coarse-only", action="store_true",
                     help="measure only the coarse reading, into the existing file")
     ap.add_argument("--reduced", action="store_true",
@@ -543,6 +646,15 @@ def main() -> None:
               "genuine", b["genuine"]["count"], "lowest", b["genuine"]["lowest"][:3],
               "null", b["null"]["count"], "below", b["null"]["below_refute"],
               "null max", b["null"]["samples"][-1] if b["null"]["samples"] else None)
+        return
+    if args.faint_only:
+        doc = json.loads(Path(args.out).read_text())
+        doc["faint"] = faint_section(args.quick)
+        Path(args.out).write_text(json.dumps(doc, indent=1, sort_keys=True) + "\n")
+        fa = doc["faint"]
+        print(json.dumps({k: fa[k] for k in ("refute_above", "measured")}), "genuine",
+              {k: fa["genuine"][k] for k in ("copies", "mark_found", "count", "highest")},
+              "null", fa["null"]["count"], "above", fa["null"]["above_refute"])
         return
     if args.coarse_only:
         doc = json.loads(Path(args.out).read_text())
@@ -625,7 +737,7 @@ def main() -> None:
     }
     old = json.loads(Path(args.out).read_text()) if Path(args.out).exists() else {}
     keep = {"broad": "claimkit.content.broad", "coarse": "register.register_coarse",
-            "fingerprint": "mark.fingerprint"}
+            "faint": "claimkit.content.broad.faint_share", "fingerprint": "mark.fingerprint"}
     for key in keep:
         # Neither reads the fine reading (broad.broad_correlation; the coarse reading has its
         # own keypoints at COARSE_SIDE): kept as measured; only the coarse section's counts of

@@ -24,6 +24,17 @@ a fixed test key.
   given), or
   disagrees (says "does not correspond", or reads another geometry: shown as
   ``content-mismatch`` or ``lines-disagree``). Every disagreement is printed.
+  A disagreement counts as **shown** when the report shows a warning for it
+  (``evaluation.lines.content_warnings``, the rule the dossier writes its warnings by),
+  and as **silent** only when it shows none. Where the two lines read different
+  geometries, the opinion reports the weaker line and still claims derivation,
+  with the ``lines-disagree`` warning beside it: that is a disagreement shown
+  (the lead's decision), and the run says how many such claims there were.
+
+The layout at the mark's geometry, and the faint share beside it
+(``broad.faint_share``, consulted where the correlation does not refute), are
+measured on every genuine copy on which the mark was found, whether or not the
+content line consulted them: the genuine side of their limits, on held-out pictures.
 
 Nothing is asserted; the numbers are the issue's targets, measured.
 """
@@ -49,7 +60,7 @@ from engine_helpers import generated, mark, payload, sky, soft, transplant_mark
 
 from claimkit import stress
 from claimkit.content.assess import layout_check
-from claimkit.evaluation.lines import weigh
+from claimkit.evaluation.lines import content_warnings, weigh
 from claimkit.imageio import to_luma
 from claimkit.mark import detect, scales
 from claimkit.mark import payload as payload_mod
@@ -138,6 +149,7 @@ def _transplants(name: str, pub: np.ndarray, ref: np.ndarray, which: str) -> lis
         out.append({"set": which, "picture": name, "host": h, "claimed": True,
                     "inliers": c["statistic"]["value"], "reading": c["statistic"].get("reading"),
                     "corresponds": c["corresponds"], "layout": lay.get("value"),
+                    "faint": (lay.get("faint") or {}).get("value"),
                     "flagged": bool(w["content_mismatch"]),
                     "reported_log10_lr": w["evaluation"]["reported_log10_lr"],
                     "derived": bool(w["evaluation"]["derivation_claimed"])})
@@ -171,17 +183,20 @@ def run_picture(args: tuple[str, bool]) -> dict:
         # The layout at the mark's geometry on every copy found, not only where it is consulted:
         # the genuine side of the check's limit, measured with the mark's real readings.
         geom = scales.relative_to_original(m["geometry"], pub.shape[:2]) if found else None
-        lay = layout_check(ref, to_luma(copy), geom["matrix"], uses_mark_geometry=True)["value"] \
-            if found else None
+        lay_res = layout_check(ref, to_luma(copy), geom["matrix"], uses_mark_geometry=True) \
+            if found else {}
+        lay = lay_res.get("value")
         ev = w["evaluation"]
+        codes = content_warnings(detected=found, content=c, content_mismatch=w["content_mismatch"])
         rows.append({"picture": name, "attack": att.name, "mark_found": found,
                      "outcome": outcome, "inliers": c["statistic"]["value"],
                      "corresponds": c["corresponds"], "agreement": ag,
                      "content_mismatch": w["content_mismatch"], "layout": lay,
+                     "faint": (lay_res.get("faint") or {}).get("value"),
                      "reading": c["statistic"].get("reading"),
                      "cannot_decide": c.get("cannot_decide"),
-                     "shown": None if not found else (not ev["derivation_claimed"]
-                                                      if outcome != "agrees" else True),
+                     "warnings": codes, "derivation_claimed": bool(ev["derivation_claimed"]),
+                     "shown": None if not found else (bool(codes) if outcome != "agrees" else True),
                      "seconds": round(time.perf_counter() - t0, 2)})
     return {"transplants": trans, "genuine": rows}
 
@@ -214,6 +229,10 @@ def main() -> None:
     print(f"layout at the mark's geometry, genuine copies found: {len(lays)} compared, lowest "
           f"{lays[:3]}; transplants: highest "
           f"{sorted(t['layout'] for t in trans if t.get('layout') is not None)[-3:]}")
+    fa = sorted(r["faint"] for r in found if r["faint"] is not None)
+    print(f"faint share at the mark's geometry, genuine copies found: {len(fa)} compared, "
+          f"highest {fa[-3:]}; transplants where it was measured: "
+          f"{sorted(t['faint'] for t in trans if t.get('faint') is not None)}")
     print(f"the coarse reading decided {sum(r['reading'] == 'coarse' for r in found)} genuine "
           "copies found")
     by_att: dict[str, dict[str, int]] = defaultdict(lambda: defaultdict(int))
@@ -240,8 +259,11 @@ def main() -> None:
     print(f"\nGENUINE: mark found in {len(found)} of {len(rows)} copies; the content line agrees in "
           f"{agrees} ({100 * agrees / max(len(found), 1):.1f} % of all, "
           f"{100 * agrees / max(decided, 1):.1f} % of those it could decide); cannot decide "
-          f"{undecided}; disagrees {decided - agrees}; every non-agreement shown (no derivation "
-          f"claimed): {all(r['shown'] for r in found if r['outcome'] != 'agrees')}; content "
+          f"{undecided}; disagrees {decided - agrees} (silent, no warning shown: "
+          f"{sum(not r['shown'] for r in found if r['outcome'] != 'agrees')}; derivation claimed "
+          f"beside a lines-disagree warning: "
+          f"{sum(r['derivation_claimed'] and 'lines-disagree' in r['warnings'] for r in found)}); "
+          f"flagged content_mismatch: {sum(bool(r['content_mismatch']) for r in found)}; content "
           f"corresponds where the mark was not found: "
           f"{sum(bool(r['corresponds']) for r in rows if not r['mark_found'])} of "
           f"{sum(not r['mark_found'] for r in rows)}  ({time.perf_counter() - t0:.0f} s)")

@@ -56,6 +56,12 @@ def test_calibration_is_measured_and_separates():
     assert co["either"]["genuine_reaching"] >= cal["genuine"]["count"] - len(
         cal["genuine_below_threshold"])
     assert max(co["transplanted"]["samples"]) < co["threshold"]
+    # the faint share: measured where it runs (copies on which the mark was found), every
+    # genuine value at most half the limit (the project's margin)
+    fa = cal["faint"]
+    assert fa["genuine"]["mark_found"] < fa["genuine"]["copies"]
+    assert 2 * max(fa["genuine"]["samples"]) <= fa["refute_above"]
+    assert fa["null"]["above_refute"] > 0
 
 
 @pytest.mark.parametrize("host", ["chelsea", "rocket"])
@@ -293,20 +299,106 @@ def test_transplant_onto_a_host_of_another_shape_is_placed_by_half_overlaps():
     assert lay["refutes"]
 
 
-def test_soft_texture_copy_corresponds_by_the_coarse_reading():
-    # A soft texture's JPEG 75 copy: too few corners repeat at 640 px (below the threshold);
-    # at 128 px its structure registers, with the coarse reading's own threshold, and its
-    # geometry is the true one (no turn, scale 1).
-    from engine_helpers import soft
+def test_local_contrast_is_the_window_standard_deviation():
+    # Reference: numpy's standard deviation (ddof 0) over each 4 x 4 window, which
+    # scipy.ndimage.uniform_filter of size 4 places at rows and columns i - 2 .. i + 1.
+    from claimkit.content.broad import CONTRAST_WINDOW, _local_contrast
 
-    work = mark(soft(5))
-    c = content_line(to_luma(stress.jpeg(work, 75)), reference_luma=to_luma(work))
+    a = np.random.default_rng(3).random((20, 24))
+    got = _local_contrast(a, np.ones_like(a, bool))
+    h = CONTRAST_WINDOW // 2
+    for i, j in [(2, 2), (7, 11), (17, 21)]:
+        assert got[i, j] == pytest.approx(np.std(a[i - h: i + h, j - h: j + h]), abs=1e-9)
+
+
+def _ramp(h: int, w: int, seed: int = 4) -> np.ndarray:
+    """A diagonal colour ramp with faint noise (numpy only): a broad layout and no edges."""
+    y, x = np.mgrid[0:h, 0:w] / w
+    ramp = 0.6 * x + 0.4 * y
+    base = np.stack([70 + 90 * ramp, 60 + 60 * ramp, 120 - 40 * ramp], axis=-1)
+    return np.clip(base + np.random.default_rng(seed).normal(0, 1.5, base.shape), 0, 255
+                   ).astype(np.uint8)
+
+
+def test_faint_share_tells_a_flat_picture_from_a_copy():
+    # A work of strong edges (a ramp under a 16-px checkerboard of 40 grey levels), placed as it
+    # is: a JPEG 50 copy (Pillow) keeps its contrast; the bare ramp, whose broad layout is the
+    # work's (the checkerboard averages out at 64 px), shows it faint everywhere; a copy of a
+    # plain part of a work says nothing (it could be a copy of that part).
+    from claimkit.content.broad import broad_correlation, faint_share
+
+    h, w = 300, 400
+    yy, xx = np.mgrid[0:h, 0:w]
+    ramp = to_luma(_ramp(h, w))
+    work = ramp + 40 * (((yy // 16) + (xx // 16)) % 2) - 20
+    rgb = np.stack([np.clip(work, 0, 255).astype(np.uint8)] * 3, -1)
+    assert faint_share(work, to_luma(stress.jpeg(rgb, 50)), np.eye(2))["value"] < 0.05
+    assert faint_share(work, ramp, np.eye(2))["value"] > 0.95
+    assert broad_correlation(work, ramp, np.eye(2))["value"] > 0.9   # no help here
+    half = work.copy()
+    half[:, 200:] = ramp[:, 200:]
+    assert faint_share(half, ramp[:, 220:], np.eye(2))["value"] is None
+
+
+@pytest.fixture(scope="module")
+def published_cat():
+    chelsea = data.chelsea()
+    return mark(np.asarray(Image.fromarray(chelsea).resize((902, 600), Image.Resampling.BICUBIC)))
+
+
+def test_transplant_onto_a_ramp_is_flagged_by_its_faint_contrast(published_cat):
+    # The attacker (numpy only) adds the mark to a colour ramp: no keypoints to decide by, and
+    # the ramp's broad layout correlates with the work's well enough to pass the layout check;
+    # placed as the mark reads it, the ramp is faint wherever the work has edges or fur.
+    w = _weigh_examined(transplant_mark(published_cat, _ramp(450, 600, 3)), published_cat)
+    c, ev = w["content"], w["evaluation"]
+    lay = c["layout_with_mark"]
+    assert c["corresponds"] is None and lay["value"] >= lay["refute_below"]
+    assert lay["faint"]["value"] > lay["faint"]["refute_above"]
+    assert lay["faint"]["refutes"] and lay["refutes"] and w["content_mismatch"]
+    assert not ev["derivation_claimed"] and ev["reported_log10_lr"] < 0
+    assert "the exhibit is faint" in ev["finding"] and "strong edges or texture" in ev["finding"]
+
+
+@pytest.mark.parametrize("edit", ["blur 2", "contrast 0.6"])
+def test_genuine_blurred_or_faded_copy_is_not_refuted_by_its_contrast(published_cat, edit):
+    # A genuine copy placed by the mark's own reading keeps the work's strong contrast
+    # (Pillow's Gaussian blur; the battery's contrast 0.6): far under the faint share's limit.
+    from claimkit.content.assess import layout_check
+    from claimkit.mark import scales
+
+    copy = next(a for a in stress.battery() if a.name == edit).apply(published_cat)
+    f = detect.examine_luma(to_luma(copy), bytes(range(32)))
+    assert f.detected
+    g = scales.relative_to_original(f.geometry, published_cat.shape[:2])
+    lay = layout_check(to_luma(published_cat), to_luma(copy), np.asarray(g["matrix"]),
+                       uses_mark_geometry=True)
+    assert not lay["refutes"] and not lay["faint"]["refutes"]
+    assert lay["faint"]["value"] < 0.5 * lay["faint"]["refute_above"]
+
+
+def test_web_copy_corresponds_by_the_coarse_reading():
+    # A 10 % web copy (the stress battery's Pillow Lanczos + JPEG 85) of scikit-image's Hubble
+    # deep field against a half-size reference: too few corners repeat at 640 px (12, threshold
+    # 13); at 128 px its structure registers, with the coarse reading's own threshold, at the
+    # true geometry. This is the calibration's own row (calibration.json, coarse.either): the
+    # count must be the one stored. (Until the coarse reading's stretch was capped, a soft
+    # texture's JPEG 75 copy registered here too, on points the mark made: now 0.)
+    rgb = data.hubble_deep_field()
+    half = Image.fromarray(rgb).resize((rgb.shape[1] // 2, rgb.shape[0] // 2),
+                                       Image.Resampling.LANCZOS)   # as bench_content.py makes it
+    copy = next(a for a in stress.battery() if a.name == "downscale 10 % jpeg 85").apply(rgb)
+    c = content_line(to_luma(copy), reference_luma=to_luma(np.asarray(half)), reference_scale=0.5)
     st = c["statistic"]
     assert st["reading"] == "coarse" and st["fine"]["value"] < st["fine"]["threshold"]
     assert st["value"] >= st["threshold"] == calibration()["coarse"]["threshold"]
+    stored = {(r["picture"], r["attack"], r["reference"]): r["coarse_inliers"]
+              for r in calibration()["coarse"]["either"]["genuine_rescued_by_coarse"]}
+    assert stored[("hubble_deep_field", "downscale 10 % jpeg 85", "half")] == st["value"]
     assert c["corresponds"] is True and c["log10_lr"] > 0
     g = c["registration"]["geometry"]
-    assert abs(g["rotation_deg"]) < ROTATION_TOLERANCE_DEG and abs(g["scale"] - 1) < SCALE_TOLERANCE
+    assert abs(g["rotation_deg"]) < ROTATION_TOLERANCE_DEG
+    assert abs(g["scale"] / (copy.shape[1] / rgb.shape[1]) - 1) < SCALE_TOLERANCE
 
 
 def test_coarse_reading_does_not_match_a_featureless_picture_on_its_mark():
@@ -323,25 +415,32 @@ def test_coarse_reading_does_not_match_a_featureless_picture_on_its_mark():
     assert got["inliers"] < calibration()["coarse"]["threshold"]
 
 
-@pytest.mark.parametrize("picture,edit", [("sky", "jpeg 90"), ("sky", "rotate 17"),
-                                          ("soft", "jpeg 90")])
-def test_fine_reading_is_not_carried_by_the_mark(picture, edit):
+@pytest.mark.parametrize("reading,picture,edit", [
+    ("fine", "sky", "jpeg 90"), ("fine", "sky", "rotate 17"), ("fine", "soft", "jpeg 90"),
+    ("coarse", "soft", "jpeg 90"), ("coarse", "soft", "contrast 0.6"),
+    ("coarse", "generated", "jpeg 90")])
+def test_readings_are_not_carried_by_the_mark(reading, picture, edit):
     # A featureless picture (the tests' clear sky; a soft texture whose luma spans 9 grey
-    # levels), marked and not, against its copy (Pillow's JPEG codec, Pillow's bicubic turn):
-    # the points the content line counts must come from the picture, so the mark may not move
-    # the count by more than a tenth of the threshold or of the count without it, nor change
-    # the decision. Before the smoothing and the capped stretch: sky JPEG 90 112 points
-    # marked and 0 unmarked, sky rotate 17 544 and 352, soft JPEG 90 101 and 6.
-    from engine_helpers import sky, soft
+    # levels), and a generated picture with shapes, marked and not, against its copy
+    # (Pillow's JPEG codec, Pillow's bicubic turn, claimkit.stress's contrast): the points each
+    # reading counts must come from the picture, so the mark may not move the count by more
+    # than a tenth of the threshold or of the count without it, nor change the decision.
+    # Before the smoothing and the capped stretch, at 640 px: sky JPEG 90 112 points marked
+    # and 0 unmarked, sky rotate 17 544 and 352, soft JPEG 90 101 and 6; at 128 px (smoothed
+    # 1 px there, stretch not capped): soft JPEG 90 106 and 34, contrast 0.6 360 and 21.
+    from engine_helpers import generated, sky, soft
 
     from claimkit.content import register as reg
 
-    plain = sky() if picture == "sky" else soft(5)
+    plain = {"sky": sky, "soft": lambda: soft(5), "generated": lambda: generated(100)}[picture]()
     apply = next(a for a in stress.battery() if a.name == edit).apply
-    threshold = calibration()["threshold"]
+    cal = calibration()
+    threshold = cal["threshold"] if reading == "fine" else cal["coarse"]["threshold"]
 
     def points(pic):
         ref, copy = to_luma(pic), to_luma(apply(pic))
+        if reading == "coarse":
+            return reg.register_coarse(ref, copy)["inliers"]
         return reg.register(reg.features(ref), reg.features(copy),
                             reg.features(copy, mirrored=True))["inliers"]
 

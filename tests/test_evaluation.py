@@ -99,6 +99,26 @@ def test_opinion_combines_only_consistent_lines():
     assert odd["log10_lr"]["combined"] is None and odd["reported_log10_lr"] == 2.6
 
 
+def test_a_disagreement_between_the_lines_is_always_warned_of():
+    # The lines reading different geometries: the weaker line is reported and derivation is
+    # still claimed, so the report must show `lines-disagree` beside it (bench_content_heldout.py
+    # counts a disagreement as silent only where no warning is shown).
+    from claimkit.evaluation.lines import content_warnings
+
+    odd = {**_content(True, 2.6),
+           "agreement_with_mark": {"compared": True, "agree": False}}
+    ev = opinion.evaluate(exhibit="Exhibit 3", work_id="W-1", owner=None, detected=True,
+                          threshold=1e-9, content=odd, agreement=odd["agreement_with_mark"])
+    assert ev["derivation_claimed"]
+    assert content_warnings(detected=True, content=odd, content_mismatch=False) == ["lines-disagree"]
+    same = {**odd, "agreement_with_mark": {"compared": True, "agree": True}}
+    assert content_warnings(detected=True, content=same, content_mismatch=False) == []
+    assert content_warnings(detected=True, content=_content(False, -1.2),
+                            content_mismatch=True) == ["content-mismatch"]
+    assert content_warnings(detected=True, content=_content(None, 0.0),
+                            content_mismatch=False) == ["content-inconclusive"]
+
+
 def test_decision_counts_ratio_against_scipy():
     # A rule on two readings: its counts, not one statistic's samples. Reached: Hp 265 of 272
     # (Clopper-Pearson lower, scipy.stats.beta.ppf), Hd at most 1 of 1278 (upper).

@@ -199,7 +199,7 @@ def content_line(exhibit_luma: np.ndarray, *, reference_luma: np.ndarray | None 
         coarse_cal = cal.get("coarse")
         if value < threshold and coarse_cal:
             # The coarse reading, with its own measured null and threshold (register_coarse).
-            coarse = reg.register_coarse(reference_luma, exhibit_luma)
+            coarse = reg.register_coarse(reference_luma, exhibit_luma, reference_scale)
             reached = int(coarse["inliers"]) >= int(coarse_cal["threshold"])
             statistic["coarse"] = {"value": int(coarse["inliers"]),
                                    "threshold": int(coarse_cal["threshold"]),
@@ -410,4 +410,46 @@ def layout_check(reference_luma: np.ndarray, exhibit_luma: np.ndarray, linear, *
         out["reason"] = (f"{placed}, the exhibit's broad layout correlates {v:.2f} with the "
                          f"work's (limit {below:.2f}); unrelated pictures reached up to "
                          f"{max(nul):.2f}, so this alone does not show that the exhibit is the work")
+    if uses_mark_geometry and not out["refutes"] and "faint" in calibration():
+        _faint_check(out, reference_luma, exhibit_luma, lin, placed)
     return out
+
+
+def _faint_check(out: dict, reference_luma: np.ndarray, exhibit_luma: np.ndarray,
+                 lin: np.ndarray, placed: str) -> None:
+    """Where the correlation does not refute, the local contrast may (:func:`broad.faint_share`).
+
+    A correlation says little between two smooth pictures (two ramps correlate) and nothing
+    on a flat one; an exhibit that is faint over most of the places where the work has strong
+    edges or texture is what a flat picture carrying a transplanted mark shows. The check runs
+    only where the mark was found and places the exhibit by the mark's geometry, so its limit
+    comes from genuine copies on which the mark was found, each placed by the mark's own
+    reading (``calibration.json``, ``faint``). It may only refute, never support.
+    """
+    cal = calibration()["faint"]
+    above = float(cal["refute_above"])
+    gen, nul = cal["genuine"]["samples"], cal["null"]["samples"]
+    f = broad.faint_share(reference_luma, exhibit_luma, lin)
+    out["faint"] = {**f, "refute_above": above,
+                    "genuine": {"count": len(gen), "highest": max(gen),
+                                "above": sum(1 for x in gen if x > above),
+                                "what": "genuine copies on which the mark was found"},
+                    "null": {"count": len(nul), "above": sum(1 for x in nul if x > above)},
+                    "refutes": False}
+    v = f["value"]
+    if v is None or v <= above:
+        return
+    # Closer is a smaller share: the tail arithmetic takes the negated share.
+    out["faint"]["refutes"] = out["refutes"] = True
+    out["log10_lr"] = round(lr.log10_lr_decision(-v, [-x for x in gen], [-x for x in nul],
+                                                 threshold=-above), 3)
+    out["event"] = ("placed by the mark's geometry, the picture is faint where the work has "
+                    "strong edges or texture")
+    out["reason"] = (f"{placed}, the exhibit is faint (local contrast under "
+                     f"{f['faint']:g} grey levels) over {100 * v:.0f} % of the places where the "
+                     f"work has strong edges or texture ({f['strong']:g} grey levels or more, in "
+                     f"windows of 1/{f['side_px'] // f['window_px']} of its longer side), at the "
+                     "placement most favourable to it among those covering half of the smaller "
+                     f"picture or more; none of the {len(gen)} genuine copies on which the mark "
+                     f"was found showed more than {100 * max(gen):.1f} % (limit "
+                     f"{100 * above:.0f} %)")

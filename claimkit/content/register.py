@@ -16,7 +16,8 @@ found, a picture under 256 pixels is enlarged, the luma is smoothed (Gaussian,
 3 pixels) and stretched between its 1st and 99th percentiles (FAST's threshold
 is absolute) by at most a factor of 3: the mark's faint, fine pattern would
 otherwise be stretched into corners of its own on a plain picture, and the two
-lines would not be independent (:data:`FINE_SMOOTH`).
+lines would not be independent (:data:`FINE_SMOOTH`). The coarse reading
+(:func:`register_coarse`, 128 pixels) is smoothed and capped the same way.
 
 The statistic is the number of RANSAC inliers: matched keypoint pairs that the
 fitted transform maps to within :data:`RESIDUAL_PX` working pixels of each
@@ -72,15 +73,18 @@ __all__ = [
 #: Longer side, in pixels, each picture is reduced to before keypoints are found.
 WORK_SIDE = 640
 #: Longer side of the coarse reading (:func:`register_coarse`), consulted where the reading at
-#: :data:`WORK_SIDE` falls short: a soft texture's structure spans tens of pixels at 640, beyond
-#: ORB's 31-pixel patches over its 3.6-fold pyramid, and JPEG or noise then replace the few
-#: corners it has; at 128 pixels the same structure is a few pixels across and the noise is
-#: averaged away (measured on a soft texture: JPEG 75 from 5 to 90 points, noise 8 from 0 to 59).
+#: :data:`WORK_SIDE` falls short: a small web copy's structure is a few pixels across at 128
+#: and compression is averaged away (measured: a 10 % copy of scikit-image's Hubble deep field
+#: against a half-size reference, 12 points at 640 px, 33 at 128).
 COARSE_SIDE = 128
-#: Gaussian smoothing (pixels at :data:`COARSE_SIDE`) before the coarse reading's stretch: what
-#: little of a mark's fine pattern survives the reduction would otherwise be stretched into
-#: corners on a featureless picture (measured on a clear sky: 0 keypoints unmarked, 19 points
-#: matched between the marked file and its JPEG 75 copy without smoothing, none with it).
+#: Least Gaussian smoothing (pixels at :data:`COARSE_SIDE`) before the coarse reading's stretch,
+#: which is capped at :data:`MAX_STRETCH_GAIN` as at 640 px; a picture is smoothed by this or by
+#: :data:`FINE_SMOOTH` pixels of the registered work, whichever is more. Before the cap, the
+#: stretch turned a soft texture's mark into corners its copies shared (a soft texture against
+#: its JPEG 90 copy: 106 points marked, 34 unmarked; contrast 0.6: 360 and 21; now 0 and 0),
+#: and such a copy "corresponded" on the mark: a soft texture is now one the content line
+#: cannot decide. Without the smoothing a marked clear sky matched its JPEG 75 copy on 19
+#: points.
 COARSE_SMOOTH = 1.0
 #: Gaussian smoothing (pixels at :data:`WORK_SIDE`) before the stretch, and the most the
 #: stretch may multiply contrast by: together they keep the mark out of the reading. The mark
@@ -194,23 +198,22 @@ def features(luma: np.ndarray, *, mirrored: bool = False, stretch: bool = True,
     shape = (int(np.asarray(luma).shape[0]), int(np.asarray(luma).shape[1]))
     if coarse:
         work, s = _work(luma, COARSE_SIDE, COARSE_SIDE)
-        work = ndimage.gaussian_filter(work, COARSE_SMOOTH)
-        return _describe(work, s, shape, mirrored, stretch, fine=False)
+        return _describe(work, s, shape, mirrored, stretch,
+                         smooth=max(COARSE_SMOOTH, FINE_SMOOTH * min(s * registered_scale, 1.0)))
     work, s = _work(luma)
     return _describe(work, s, shape, mirrored, stretch,
                      smooth=FINE_SMOOTH * min(s * registered_scale, 1.0))
 
 
 def _describe(work: np.ndarray, s: float, shape: tuple[int, int], mirrored: bool,
-              stretch: bool = True, fine: bool = True, smooth: float = FINE_SMOOTH) -> Features:
-    """Keypoints of ``work``; the fine reading smooths (``smooth`` working pixels) and caps
-    the stretch first, and keeps ``work`` itself (unsmoothed) for the similarity measure
+              stretch: bool = True, smooth: float = FINE_SMOOTH) -> Features:
+    """Keypoints of ``work``, smoothed (``smooth`` working pixels) and stretched with the
+    gain capped first; ``work`` itself (unsmoothed) is kept for the similarity measure
     and :func:`reduced`."""
     img = work[:, ::-1] if mirrored else work
-    if fine:
-        img = ndimage.gaussian_filter(img, smooth)
+    img = ndimage.gaussian_filter(img, smooth)
     if stretch:
-        img = _stretch(img, MAX_STRETCH_GAIN if fine else None)
+        img = _stretch(img, MAX_STRETCH_GAIN)
     from skimage.feature import ORB
 
     orb = ORB(n_keypoints=KEYPOINTS, fast_threshold=FAST_THRESHOLD)
@@ -414,14 +417,18 @@ def register(reference: Features, exhibit: Features, exhibit_mirrored: Features)
                    WORK_SIDE)
 
 
-def register_coarse(reference_luma: np.ndarray, exhibit_luma: np.ndarray) -> dict:
+def register_coarse(reference_luma: np.ndarray, exhibit_luma: np.ndarray,
+                    reference_scale: float = 1.0) -> dict:
     """The coarse reading: both pictures at :data:`COARSE_SIDE` pixels, otherwise as :func:`register`.
 
     Its statistic has its own measured null and threshold (``calibration.json``,
     ``coarse``); the content line consults it where :func:`register` falls short.
+    ``reference_scale``: pixels of the reference per pixel of the registered work
+    (:func:`features`' ``registered_scale``).
     """
     exh = np.asarray(exhibit_luma)
-    return _result([features(reference_luma, coarse=True)], features(exh, coarse=True),
+    return _result([features(reference_luma, coarse=True, registered_scale=reference_scale)],
+                   features(exh, coarse=True),
                    features(exh, mirrored=True, coarse=True),
                    f"ORB keypoints at {COARSE_SIDE} px, RANSAC similarity", COARSE_SIDE)
 

@@ -20,6 +20,7 @@ from claimkit.case.documents import CaseDoc, DossierDataDoc, ExhibitDoc, Finding
 from claimkit.case.layout import CUSTODY_COPY, CUSTODY_COPY_V1, DISCLOSURES, PUBLIC_KEY, SOFTWARE
 from claimkit.content import assess, broad, register
 from claimkit.evaluation import lr
+from claimkit.evaluation.lines import content_warnings
 from claimkit.evaluation.timeline import build_timeline
 from claimkit.evidence import signing
 from claimkit.evidence.canonical import canonical_json
@@ -213,6 +214,9 @@ def _content_parameters() -> dict:
         "able_inliers": assess.ABLE_FACTOR * cal["threshold"],
         "coarse": None if "coarse" not in cal else {
             "side_px": register.COARSE_SIDE, "threshold_inliers": cal["coarse"]["threshold"],
+            "smooth": f"{register.COARSE_SMOOTH:g} px there or {register.FINE_SMOOTH:g} px of "
+                      "the registered work, whichever is more",
+            "max_gain": f"{register.MAX_STRETCH_GAIN:g}",
             "null_pairs": cal["coarse"]["null"]["count"],
             "null_max_inliers": max(cal["coarse"]["null"]["samples"]),
             "either_null_at_most": cal["coarse"]["either"]["null_reaching_at_most"],
@@ -232,6 +236,13 @@ def _content_parameters() -> dict:
         "layout_genuine_lowest": min(cal["broad"]["genuine"]["samples"]),
         "layout_null": cal["broad"]["null"]["count"],
         "layout_null_below": cal["broad"]["null"]["below_refute"],
+        "faint": None if "faint" not in cal else {
+            "side_px": broad.CONTRAST_SIDE, "window_px": broad.CONTRAST_WINDOW,
+            "strong": f"{broad.STRONG_CONTRAST * 255:g}", "faint": f"{broad.FAINT_CONTRAST * 255:g}",
+            "min_strong": broad.MIN_STRONG, "refute_above": cal["faint"]["refute_above"],
+            "rule": cal["faint"]["refute_rule"], "genuine": cal["faint"]["genuine"]["count"],
+            "genuine_highest": max(cal["faint"]["genuine"]["samples"]),
+            "null": cal["faint"]["null"]["count"], "null_above": cal["faint"]["null"]["above_refute"]},
         "lr_cap": f"10^{lr.CAP_LOG10:g} either way",
         "rate_bounds": f"one-sided {100 * lr.CONFIDENCE:g} % Clopper-Pearson",
     }
@@ -297,15 +308,16 @@ def _timeline(works: list[dict], exhibits: list[dict], results: list[dict]) -> d
     tl = build_timeline(works, labelled, matches, mismatches)
     for r in results:
         c = r.get("content") or {}
-        if r.get("detected") and c.get("basis") not in (None, "none") and c.get("corresponds") is None \
-                and not r.get("content_mismatch"):
+        codes = content_warnings(detected=bool(r.get("detected")), content=c,
+                                 content_mismatch=bool(r.get("content_mismatch")))
+        if "content-inconclusive" in codes:
             tl["warnings"].append({"code": "content-inconclusive", "exhibit": r["exhibit_id"],
                                    "text": f"{r['label']}: "
                                            f"{c.get('reason', 'the content line was inconclusive')}; "
                                            "a transplanted mark cannot be excluded, and no "
                                            "derivation is claimed."})
-        ag = ((r.get("content") or {}).get("agreement_with_mark") or {})
-        if ag.get("compared") and not ag.get("agree"):
+        ag = c.get("agreement_with_mark") or {}
+        if "lines-disagree" in codes:
             tl["warnings"].append({"code": "lines-disagree", "exhibit": r["exhibit_id"], "text": (
                 f"{r['label']}: the mark and the picture content read different geometries "
                 f"(turn {ag['rotation_difference_deg']} degrees apart, scale {ag['scale_difference']} "

@@ -13,7 +13,7 @@ from claimkit.content.assess import agreement, content_line, layout_check
 from claimkit.evaluation import opinion
 from claimkit.mark import scales
 
-__all__ = ["weigh"]
+__all__ = ["content_warnings", "weigh"]
 
 
 def weigh(exhibit_luma: np.ndarray, *, label: str, mark: dict, threshold: float,
@@ -88,3 +88,23 @@ def weigh(exhibit_luma: np.ndarray, *, label: str, mark: dict, threshold: float,
         cannot_decide=content.get("cannot_decide"),
         layout_reason=content["layout_with_mark"]["reason"] if refuted else None)
     return {"content": content, "content_mismatch": mismatch, "evaluation": evaluation}
+
+
+def content_warnings(*, detected: bool, content: dict | None, content_mismatch: bool) -> list[str]:
+    """Codes of the warnings the report shows for one exhibit's content line.
+
+    ``content-mismatch`` (the mark found in a picture that does not correspond to the work),
+    ``content-inconclusive`` (the mark found, the content line could not decide) and
+    ``lines-disagree`` (the two lines read different geometries; the weaker line is reported).
+    The dossier writes their text (``claimkit.dossier.data``); ``bench_content_heldout.py``
+    counts a disagreement as shown when one of them is.
+    """
+    c = content or {}
+    codes = ["content-mismatch"] if content_mismatch else []
+    if detected and c.get("basis") not in (None, "none") and c.get("corresponds") is None \
+            and not content_mismatch:
+        codes.append("content-inconclusive")
+    ag = c.get("agreement_with_mark") or {}
+    if ag.get("compared") and not ag.get("agree"):
+        codes.append("lines-disagree")
+    return codes
