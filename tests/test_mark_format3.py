@@ -206,6 +206,18 @@ def test_a_small_busy_copy_turned_is_found_by_the_keyed_synchronisation_search(m
     assert not claimed(copy, serial).detected
 
 
+def test_above_a_megapixel_the_keyed_search_reads_the_lattice_searchs_own_hypotheses():
+    """Above ``KEYED_MAX_PIXELS`` the keyed search scores only the coarse hypotheses the lattice
+    search refines (448 below it); the synchronisation's bound counts all 448 either way."""
+    luma = to_luma(landscape(840, 1260, seed=5))          # 1.06 MP
+    assert luma.size > detect.KEYED_MAX_PIXELS
+    large = detect.prepare(luma)
+    assert large.similarities is not None and 0 < len(large.similarities) <= sum(detect.KEYED_LARGE) == 10
+    small = detect.prepare(luma[:700, :1000])
+    assert small.similarities is not None and len(small.similarities) == sum(detect.KEYED_CANDIDATES) == 448
+    assert detect.SYNC_GEOMETRIES == detect.GEOMETRIES + sum(detect.KEYED_CANDIDATES)
+
+
 def test_fold_removal_from_the_photo_itself_or_a_portfolio_keeps_the_claim(portfolio):
     """Voloshynovskiy et al. 2001: tile-period fold of the residual, subtracted with gains swept.
 

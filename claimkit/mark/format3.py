@@ -281,15 +281,14 @@ class ClaimResult:
 
 
 def aligned_spectra(macro_fold: np.ndarray, variant: int, shift, ramp: np.ndarray,
-                    tile: int = TILE) -> tuple[np.ndarray, np.ndarray]:
+                    tile: int = TILE) -> np.ndarray:
     """The macro fold's tiles in the variant and at the origin the sync found, as spectra.
 
     ``shift`` is the integer grid origin and ``ramp`` the half-pixel phase of
     the placement (see :func:`claimkit.mark.detect._surfaces`): the fold's
     pixel ``x + shift + phase`` holds the pattern's pixel ``x``. Returns the
     tiles' spectra at :func:`claim_frequencies` (MACRO**2, nf), all a claim
-    reads, and the full spectrum (T, T) of the tiles' sum (for the spectral
-    weight), both complex64 and turned by ``ramp``.
+    reads, complex64 and turned by ``ramp``.
 
     The tiles are real: their half spectra (``rfft2``, half the work of a
     complex transform) hold every frequency, one member of each Hermitian
@@ -300,28 +299,22 @@ def aligned_spectra(macro_fold: np.ndarray, variant: int, shift, ramp: np.ndarra
     k = f.shape[0] // tile
     blocks = f.reshape(k, tile, k, tile).transpose(0, 2, 1, 3).reshape(k * k, tile, tile)
     half = sfft.rfft2(np.asarray(blocks, dtype=np.float32), axes=(1, 2))
-    at, flip = _half_places(tile, claim=True)
+    at, flip = _half_places(tile)
     y = np.take(half.reshape(k * k, -1), at, axis=1)
     y.imag[:, flip] *= -1
     y *= at_claim_frequencies(ramp, tile)
-    at, flip = _half_places(tile)
-    total = np.take(half.sum(axis=0).ravel(), at)
-    total.imag[flip] *= -1
-    total = total.reshape(tile, tile) * ramp
-    return y, total
+    return y
 
 
 @lru_cache(maxsize=4)
-def _half_places(tile: int, claim: bool = False) -> tuple[np.ndarray, np.ndarray]:
-    """Where the frequencies of a (T, T) spectrum sit in its ``rfft2`` half (T, T/2+1).
-
-    Every frequency in flat order, or ``claim``: those of :func:`claim_frequencies`.
+def _half_places(tile: int) -> tuple[np.ndarray, np.ndarray]:
+    """Where the frequencies of :func:`claim_frequencies` sit in an ``rfft2`` half (T, T/2+1).
 
     Returns the flat indices into the half spectrum and whether the value
     there is the conjugate (the frequency's Hermitian partner is stored).
     """
     half = tile // 2 + 1
-    flat = claim_frequencies(tile)[0] if claim else np.arange(tile * tile)
+    flat = claim_frequencies(tile)[0]
     r, c = np.divmod(flat, tile)
     flip = c >= half
     r, c = np.where(flip, (-r) % tile, r), np.where(flip, (-c) % tile, c)

@@ -820,11 +820,11 @@ def searchable(shape: tuple[int, int], tile: int) -> bool:
 
 
 def similarities(acf: _Acf, tile: int, count: int = SIMILARITY_CANDIDATES,
-                 coarse: Coarse | None = None) -> np.ndarray:
+                 squeezed: int = ASPECT_CANDIDATES, coarse: Coarse | None = None) -> np.ndarray:
     """The best hypotheses of the coarse grids, as maps original -> copy (K, 2, 2).
 
-    ``count`` similarities and ``ASPECT_CANDIDATES`` squeezed lattices (at
-    most ``count + ASPECT_CANDIDATES`` in all).
+    ``count`` similarities and ``squeezed`` squeezed lattices (at most
+    ``count + squeezed`` in all).
 
     No refinement: the grid's steps (0.4 % in scale, 0.23 degrees) are
     within what a correlation with the mark's own pattern tolerates on the
@@ -832,11 +832,11 @@ def similarities(acf: _Acf, tile: int, count: int = SIMILARITY_CANDIDATES,
     the autocorrelation moves them off as often as on. Best first; fewer
     when the copy is too small for the grid. ``coarse``: the
     :func:`coarse_search` of ``acf`` (keeping at least ``count`` and
-    ``ASPECT_CANDIDATES``), when the caller has it already.
+    ``squeezed``), when the caller has it already.
     """
     if coarse is None:
-        coarse = coarse_search(acf, tile, count, ASPECT_CANDIDATES)
-    found = coarse.similar[:count] + coarse.squeezed[:ASPECT_CANDIDATES]
+        coarse = coarse_search(acf, tile, count, squeezed)
+    found = coarse.similar[:count] + coarse.squeezed[:squeezed]
     if not found:
         return np.zeros((0, 2, 2))
     return np.stack([basis / float(tile) for _, basis in found])
