@@ -22,7 +22,11 @@ and 20 *other* marked photos of the same owner (averaged estimates).
    and 42 dB PSNR against them. Printed: how many were claimed, i.e. the
    owner's mark was found at all (a payload that names no work, "MARK FOUND,
    work an unreadable payload", counts), and how many of those named one of
-   the owner's works.
+   the owner's works. Each copy that names a work is then weighed as a case
+   weighs it (``evaluation.lines.weigh``, the work's marked picture at hand
+   as the registered file): how many the content line flags
+   (``content_mismatch``) and how many are still reported as derived from the
+   work (issue 11: must be none).
 
 Every examination is claimkit's own (``scales.examine`` with the keys of every
 format, the bound counting every test and scale). Nothing is asserted.
@@ -38,6 +42,7 @@ from pathlib import Path
 import numpy as np
 from skimage import data
 
+from claimkit.evaluation import lines
 from claimkit.imageio import add_luma_delta, to_luma
 from claimkit.mark import format3, scales
 
@@ -86,13 +91,31 @@ def unrelated() -> list[np.ndarray]:
             landscape(700, 1000, seed=901), np.stack([data.brick()] * 3, -1)]
 
 
-def claimed(rgb: np.ndarray, serials) -> tuple[bool, bool]:
-    """(claimed with one of the works ``serials``, the owner's mark found at all)."""
+def examined(rgb: np.ndarray, serials) -> tuple[int | None, bool, dict]:
+    """(the serial among ``serials`` the claim names, or None; the owner's mark found at all;
+    the finding as ``examine --json`` gives it)."""
     wanted = [payload(s) for s in serials]
     f = scales.examine(to_luma(rgb), KEYS,
                        payload_check=lambda b: any(np.array_equal(b, w) for w in wanted))
-    ok = bool(f.detected and any(np.array_equal(np.asarray(f.payload_bits), w) for w in wanted))
-    return ok, bool(f.detected)
+    named = next((s for s, w in zip(serials, wanted, strict=True)
+                  if f.detected and np.array_equal(np.asarray(f.payload_bits), w)), None)
+    return named, bool(f.detected), f.to_json()
+
+
+def claimed(rgb: np.ndarray, serials) -> tuple[bool, bool]:
+    """(claimed with one of the works ``serials``, the owner's mark found at all)."""
+    named, found, _ = examined(rgb, serials)
+    return named is not None, found
+
+
+def content_flags(exhibit: np.ndarray, finding: dict, work: np.ndarray) -> tuple[bool, bool]:
+    """The second line on a transplant claimed as ``work`` (its published marked picture at
+    hand, as in a case): (content_mismatch, derivation claimed). The content line never reads
+    the mark; the evaluation is the one ``examine`` and the dossier report."""
+    w = lines.weigh(to_luma(exhibit), label="the attacked picture", mark=finding,
+                    threshold=1e-9, work_id="W-BENCH", work_record=None, owner=None,
+                    reference_luma=to_luma(work))
+    return bool(w["content_mismatch"]), bool(w["evaluation"].get("derivation_claimed"))
 
 
 def main() -> None:
@@ -137,30 +160,38 @@ def main() -> None:
             "fold 128, pool of 20": np.mean([fold_estimate(m, 128) for _, m in marked[:20]], axis=0),
             "fold 512, one photo": fold_estimate(marked[1][1], 512),
             "fold 512, pool of 20": np.mean([fold_estimate(m, 512) for _, m in marked[:20]], axis=0)}
-    for name, est in ests.items():
-        n = found = tried = 0
-        for u in unrelated():
-            d = tiled(est, u.shape[:2])
+    works_by_serial = dict(marked)
+
+    def attack(name: str, deltas) -> None:
+        # Each claim naming a work is then weighed as a case weighs it, against that work.
+        n = found = tried = flagged = derived = 0
+        for u, d in deltas:
             for want in (38.0, 42.0):
                 g = np.sqrt(255.0 ** 2 / 10 ** (want / 10) / np.mean(d ** 2))
                 tried += 1
-                ok, det = claimed(add(u, g * d), serials)
-                n, found = n + ok, found + det
-        print(f"  {name:24s}: claimed {found} of {tried} ({n} naming a work)", flush=True)
+                forged = add(u, g * d)
+                named, det, finding = examined(forged, serials)
+                found += det
+                if named is not None:
+                    n += 1
+                    mismatch, claim = content_flags(forged, finding, works_by_serial[named])
+                    flagged, derived = flagged + mismatch, derived + claim
+        print(f"  {name:26s}: claimed {found} of {tried} ({n} naming a work; of those "
+              f"{flagged} flagged content_mismatch, {derived} reported as derived)", flush=True)
+
+    for name, est in ests.items():
+        attack(name, [(u, tiled(est, u.shape[:2])) for u in unrelated()])
     # The whole residual of one marked photo, cut to the unrelated photo's size.
-    n = found = tried = 0
     src = marked[1][1]
+    whole = []
     for u in unrelated():
         h, w = min(u.shape[0], src.shape[0]), min(u.shape[1], src.shape[1])
         d = np.zeros(u.shape[:2])
         d[:h, :w] = residual(src)[:h, :w]
-        for want in (38.0, 42.0):
-            g = np.sqrt(255.0 ** 2 / 10 ** (want / 10) / np.mean(d ** 2))
-            tried += 1
-            ok, det = claimed(add(u, g * d), serials)
-            n, found = n + ok, found + det
-    print(f"  {'whole residual, one photo':24s}: claimed {found} of {tried} ({n} naming a work; "
-          "the content line's case)")
+        whole.append((u, d))
+    attack("whole residual, one photo", whole)
+    print("  (a claim the mark line makes on a transplant must be flagged by the content line "
+          "and never reported as derived)")
     print(f"\n{time.perf_counter() - t0:.0f} s")
 
 
