@@ -342,14 +342,17 @@ def _broad_one(args: tuple[str, bool]) -> dict:
     return {"null": null, "genuine": genuine}
 
 
+def _per_picture(one, quick: bool) -> tuple[list[dict], list[dict]]:
+    """``one`` run for every calibration picture on two processes: its null and genuine rows."""
+    with ProcessPoolExecutor(2) as pool:
+        parts = list(pool.map(one, [(k, quick) for k in calibration_pictures(quick)]))
+    return [r for p in parts for r in p["null"]], [r for p in parts for r in p["genuine"]]
+
+
 def broad_section(quick: bool) -> dict:
     """The broad-structure statistic's distributions and the refuting threshold."""
     t0 = time.perf_counter()
-    pics = calibration_pictures(quick)
-    with ProcessPoolExecutor(2) as pool:
-        parts = list(pool.map(_broad_one, [(k, quick) for k in pics]))
-    null = [r for p in parts for r in p["null"]]
-    gen = [r for p in parts for r in p["genuine"]]
+    null, gen = _per_picture(_broad_one, quick)
     gv = sorted(r["value"] for r in gen if r["value"] is not None)
     nv = sorted(r["value"] for r in null if r["value"] is not None)
     below = broad_threshold(gv)
@@ -458,11 +461,7 @@ def faint_threshold(genuine: list[float]) -> float:
 def faint_section(quick: bool) -> dict:
     """The faint share's distributions and its refuting limit, on the population it runs on."""
     t0 = time.perf_counter()
-    pics = calibration_pictures(quick)
-    with ProcessPoolExecutor(2) as pool:
-        parts = list(pool.map(_faint_one, [(k, quick) for k in pics]))
-    null = [r for p in parts for r in p["null"]]
-    gen = [r for p in parts for r in p["genuine"]]
+    null, gen = _per_picture(_faint_one, quick)
     found = [r for r in gen if r["mark_found"]]
     gv = sorted(r["value"] for r in found if r["value"] is not None)
     nv = sorted(r["value"] for r in null if r["value"] is not None)
