@@ -448,7 +448,7 @@ def prepare(luma: np.ndarray, *, tile: int = TILE, workers: int = 1,
     # hypotheses than the lattice search refines (on copies up to KEYED_MAX_PIXELS):
     # one pass over the grid keeps both.
     keyed = acf is not None and macro > 1
-    counts = KEYED_CANDIDATES if wh * ww <= KEYED_MAX_PIXELS else KEYED_LARGE
+    counts = KEYED_LARGE if _keyed_large(win) else KEYED_CANDIDATES
     coarse = None if acf is None else geometry.coarse_search(acf, tile, *(counts if keyed else ()))
     found_lattices = [] if acf is None else geometry.find_lattices(x, tile, workers=workers, acf=acf,
                                                                    coarse=coarse)
@@ -773,6 +773,13 @@ KEYED_CANDIDATES = (geometry.SIMILARITY_CANDIDATES, geometry.ASPECT_CANDIDATES)
 KEYED_MAX_PIXELS = 1_000_000
 KEYED_LARGE = (geometry.SIMILARITY_GRID[4], geometry.ASPECT_GRID[4])
 KEYED_LARGE_Z = 6.0
+
+
+def _keyed_large(window: tuple[int, int, int, int]) -> bool:
+    """Whether the examined window (row, col, height, width) is above :data:`KEYED_MAX_PIXELS`."""
+    return window[2] * window[3] > KEYED_MAX_PIXELS
+
+
 # Copies enlarged by more than KEYED_ENLARGED are read reduced by 4 (their synchronisation sits at
 # low frequencies, and a period spans more pixels), the others by 2.
 KEYED_REDUCTIONS = (2, 4)
@@ -841,7 +848,7 @@ def _keyed_geometries(prep: _Prepared, seed: bytes) -> list[np.ndarray]:
         if len(sel) and min(x.shape) >= 16:
             z[sel] = _keyed_scores(x, sims[sel] * (2.0 / r), seed)
     best = np.argsort(z)[::-1][:KEYED_PICKS]
-    least = KEYED_LARGE_Z if prep.window[2] * prep.window[3] > KEYED_MAX_PIXELS else -np.inf
+    least = KEYED_LARGE_Z if _keyed_large(prep.window) else -np.inf
     return [sims[i] for i in best if np.isfinite(z[i]) and z[i] >= least]
 
 
