@@ -46,6 +46,8 @@ import sys
 import tempfile
 from pathlib import Path
 
+from claimkit.cli import NUMERIC_THREAD_VARS
+
 QUALITY = 95      # what claimkit writes (workflow.mark_file's default; 4:4:4 at 90 and above)
 
 CHILD = r"""
@@ -241,8 +243,10 @@ def main() -> None:
             workflow.mark_file(p, src, work / "marked-cli.jpg")
         marked_cli = work / "marked-cli.jpg"
         print(f"mark format written: {formats.DEFAULT_WRITTEN} (the default)")
-        cli_env = dict(os.environ, CLAIMKIT_HOME=str(work / "home-cli"),
-                       CLAIMKIT_PASSPHRASE="bench", OMP_NUM_THREADS="1")
+        # The commands run as a user's would: no thread settings of ours (the console
+        # entry point starts BLAS single-threaded itself unless the environment says otherwise).
+        cli_env = {k: v for k, v in os.environ.items() if k not in NUMERIC_THREAD_VARS}
+        cli_env.update(CLAIMKIT_HOME=str(work / "home-cli"), CLAIMKIT_PASSPHRASE="bench")
         session_env = {k: v for k, v in cli_env.items() if k != "CLAIMKIT_PASSPHRASE"}
         session_env["CLAIMKIT_SESSION"] = session.token
         decode_cmd = [sys.executable, "-c",

@@ -42,6 +42,8 @@ from pathlib import Path
 # One whole-process timer for both benchmarks (its peak memory is not used here).
 from bench_engine import WRAP
 
+from claimkit.cli import NUMERIC_THREAD_VARS
+
 
 def run(argv: list[str], env: dict) -> dict:
     # cwd: the temporary folder, because `python -m` puts the current folder first on the
@@ -87,9 +89,12 @@ def main() -> None:
     with tempfile.TemporaryDirectory() as tmp:
         work = Path(tmp)
         home = work / "home"
+        # No thread settings of ours: the commands run as a user's would (the console entry
+        # point starts BLAS single-threaded itself; a --before checkout may not).
         env = {k: v for k, v in os.environ.items()
-               if k not in ("CLAIMKIT_TEST_FAST_KDF", "CLAIMKIT_SESSION", "PYTHONPATH")}
-        env.update(CLAIMKIT_HOME=str(home), XDG_RUNTIME_DIR=str(work), OMP_NUM_THREADS="1")
+               if k not in ("CLAIMKIT_TEST_FAST_KDF", "CLAIMKIT_SESSION", "PYTHONPATH",
+                            *NUMERIC_THREAD_VARS)}
+        env.update(CLAIMKIT_HOME=str(home), XDG_RUNTIME_DIR=str(work))
         os.environ.pop("CLAIMKIT_TEST_FAST_KDF", None)
         os.environ["XDG_RUNTIME_DIR"] = str(work)    # the session file, as the commands see it
         w = round((args.megapixels * 1e6 * 1.5) ** 0.5)

@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import argparse
 
+import pytest
+
 from claimkit.cli import build_parser
 
 
@@ -89,3 +91,33 @@ def test_examines_content_line_without_a_reference_loads_no_registration_code():
              "if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True, check=False)
     assert out.stdout.split() == ["[]"], out.stderr[-2000:]
+
+
+def test_the_command_line_starts_blas_single_threaded_unless_told_otherwise():
+    # OpenBLAS's own count, read through its C API (openblas_get_num_threads, as bundled
+    # in NumPy's wheels): without the entry point's default it starts one thread per core.
+    import glob
+    import os
+    import subprocess
+    import sys
+
+    import numpy
+
+    libs = glob.glob(os.path.join(os.path.dirname(numpy.__file__), os.pardir, "numpy.libs",
+                                  "libscipy_openblas*.so"))
+    if not libs or (os.cpu_count() or 1) < 2:
+        pytest.skip("NumPy without its bundled OpenBLAS, or one core: nothing to tell apart")
+    probe = ("import ctypes, sys; from claimkit.cli import single_threaded_numerics; "
+             "sys.argv[1] == 'yes' and single_threaded_numerics(); import numpy; "
+             f"lib = ctypes.CDLL({libs[0]!r}); print(lib.scipy_openblas_get_num_threads64_())")
+    env = {k: v for k, v in os.environ.items()
+           if k not in ("OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "OMP_NUM_THREADS")}
+
+    def threads(*argv: str, **extra: str) -> int:
+        out = subprocess.run([sys.executable, "-c", probe, *argv], capture_output=True,
+                             text=True, check=False, env={**env, **extra})
+        return int(out.stdout.strip() or -1)
+
+    assert threads("no") == os.cpu_count()
+    assert threads("yes") == 1
+    assert threads("yes", OPENBLAS_NUM_THREADS="2") == 2
