@@ -57,7 +57,9 @@ textures and a soft one):
    today (the source marked without binding, read without bits) and with
    unmarked pictures. A random-sign sum of N blocks that each carry the
    transplanted claim has standard deviation ``sqrt(1 + z_today^2 / N)``,
-   not 1: printed beside the measured z.
+   not 1: printed beside the measured z. Also: the share of the sky's bits
+   equal to a source's before and after the residual of the *unmarked*
+   source alone is added (where a flat host's bits come from).
 4. **The embedding's own effect on the bits**: the share of blocks whose bit
    differs between the original and the marked picture, for the high-passed
    prototype and for format 3's full-band mark.
@@ -628,6 +630,22 @@ def transplants(works: dict[str, Work], primary: Feature, noise: float, quick: b
         bound = [read_exhibit(v, primary, t) for v in targets.values()]
         print(f"  unmarked, read bound ({name}): own z {fmt_dist([n[0] for n in bound])}; "
               f"best {fmt_dist([n[1] for n in bound])}")
+    if "sky" in works:
+        # Where do a flat host's bits come from? The residual of an *unmarked* source alone.
+        host = works["sky"].rgb
+        hb = np.where(works["sky"].proj[primary] >= 0, 1.0, -1.0)
+        print("  the residual of the unmarked source alone onto the sky: share of the sky's bits equal to "
+              "the source's, before | after")
+        for sk, wk in works.items():
+            if sk == "sky":
+                continue
+            x = to_luma(forged(host, wk.rgb, "whole residual")).astype(np.float64)
+            px, _ = projections(x, np.ones(x.shape, dtype=bool), primary, x.shape)
+            sb = wk.bits[primary]
+            hh, ww = min(hb.shape[0], sb.shape[0]), min(hb.shape[1], sb.shape[1])
+            sb = sb[:hh, :ww]
+            print(f"    {sk:12s} {np.mean(hb[:hh, :ww] == sb):.2f} | "
+                  f"{np.mean(np.where(px[:hh, :ww] >= 0, 1.0, -1.0) == sb):.2f}")
     for attack in TRANSPLANTS:
         rows = []
         for sk, wk in works.items():
