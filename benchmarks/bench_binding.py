@@ -1,6 +1,6 @@
 """Would binding format 3's claim to the picture's own content stop the whole-residual copy attack?
 
-    python benchmarks/bench_binding.py [--quick] [--primary NAME] [--cut F] [--pairs]
+    python benchmarks/bench_binding.py [--quick] [--primary NAME] [--cut F] [--pairs] [--transplants-only]
 
 Issue 10's open target: the whole high-pass residual of one marked photo (and
 its 512-px fold when the photo is not much larger than 512 px) carries format
@@ -405,6 +405,7 @@ def main() -> None:
     ap.add_argument("--cut", type=float, default=LOW_CUT,
                     help="the prototype mark's lowest frequency (cycles/px; 0: format 3's full band)")
     ap.add_argument("--pairs", action="store_true", help="print every transplant, not only the summaries")
+    ap.add_argument("--transplants-only", action="store_true", help="leave out the genuine copies")
     args = ap.parse_args()
     t0 = time.perf_counter()
     primary = next(f for f in FEATURES if f.name == args.primary)
@@ -441,7 +442,8 @@ def main() -> None:
             cells.append(f"worst {max(row):.3f} mean {np.mean(row):.4f}")
         print(f"  {f.name:14s} " + " | ".join(cells))
 
-    genuine(works, primary, noise, args.quick)
+    if not args.transplants_only:
+        genuine(works, primary, noise, args.quick)
     transplants(works, primary, noise[primary], args.quick, args.pairs)
     print(f"\n{time.perf_counter() - t0:.0f} s")
 
