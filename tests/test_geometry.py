@@ -275,6 +275,24 @@ def test_whitening_in_strips_equals_whole_picture_filters():
     np.testing.assert_allclose(detect.whiten(luma), x / np.sqrt(var), rtol=1e-5, atol=1e-6)
 
 
+@pytest.mark.parametrize("shape", [(40, 33), (detect.WHITEN_ROWS, 70), (2 * detect.WHITEN_ROWS + 9, 51)])
+def test_whitening_into_reused_buffers_is_the_strip_formula_bit_for_bit(shape):
+    # The strips written plainly, each step a new array (scipy.ndimage.uniform_filter):
+    # whiten's buffers must give exactly these values.
+    luma = np.random.default_rng(3).integers(0, 256, shape).astype(np.uint8)
+    x = luma.astype(np.float32)
+    halo = detect.PREFILTER // 2 + detect.NORM_WINDOW // 2
+    want = np.empty_like(x)
+    for r0 in range(0, shape[0], detect.WHITEN_ROWS):
+        a0, a1 = max(0, r0 - halo), min(shape[0], r0 + detect.WHITEN_ROWS + halo)
+        y = x[a0:a1] - ndimage.uniform_filter(x[a0:a1], detect.PREFILTER, mode="reflect")
+        var = ndimage.uniform_filter(y * y, detect.NORM_WINDOW, mode="reflect") + np.float32(1e-3)
+        rows = min(detect.WHITEN_ROWS, shape[0] - r0)
+        want[r0:r0 + rows] = (y / np.sqrt(var))[r0 - a0:r0 - a0 + rows]
+    got = detect.whiten(luma)
+    assert got.dtype == np.float32 and np.array_equal(got, want)
+
+
 # ---------------------------------------------------------------- no examination can run away
 
 def test_degenerate_basis_gives_no_points_and_no_allocation():
