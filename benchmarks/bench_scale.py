@@ -1,6 +1,7 @@
 """Throughput at a photographer's scale (issue 6), printed as ratios measured in this one run.
 
     python benchmarks/bench_scale.py [--count12 N] [--scan-count N] [--quick] [--only SECTION]
+                                     [--before CHECKOUT]
 
 What it measures (nothing is asserted; targets are printed beside the numbers):
 
@@ -8,7 +9,9 @@ What it measures (nothing is asserted; targets are printed beside the numbers):
    recompressed): files per second on 2 worker processes, and the scan's
    wall time against the time Pillow takes just to decode the same files in
    one process (``Image.open(f).load()``, nothing more). Targets (issue 16):
-   >= 20 files/s, <= 6x the decode time.
+   >= 20 files/s, <= 6x the decode time. ``--before CHECKOUT`` also scans the
+   same files with another checkout's code (the two alternated, each in a
+   process of its own) and counts the reports that are identical.
 2. **batch mark** of 12-megapixel JPEGs: one worker on one core (in this process) against
    two worker processes, and the one-worker time per file against Pillow's
    decode + encode of the same file. Target: >= 1.8x faster on 2 cores.
@@ -246,8 +249,49 @@ def load() -> str:
     return f"load average {one:.2f} (1 min), {five:.2f} (5 min)"
 
 
-def bench_scan(profile, work: Path, count: int) -> None:
+def measure_scan(profile, files: list[Path]) -> dict:
+    """One process's scan of ``files``: CPU per file, files/s on 1 and 2 workers, the reports.
+
+    Best of 2 alternated runs (see bench_mark). ``reports``: each file's report as
+    JSON text (the same text whatever claimkit checkout made it, if nothing changed).
+    """
+    import json
+
     from claimkit import scan, workflow
+
+    seed, checker = workflow.mark_keys(profile), workflow.owner_payload_check(profile)
+    t_one = cpu_one = rate2 = 0.0
+    reports: dict[str, str] = {}
+    for _ in range(2):
+        cpu = time.process_time()
+        t = time.perf_counter()
+        for f in files:
+            rep = scan.scan_task(str(f), seed, checker, 1e-9, None)
+            reports[f.name] = json.dumps(rep, sort_keys=True, default=str)
+        dt = time.perf_counter() - t
+        if not t_one or dt < t_one:
+            t_one, cpu_one = dt, (time.process_time() - cpu) / len(files)
+        rate2 = max(rate2, steady_rate(files, scan.scan_task,
+                                       lambda f: (str(f), seed, checker, 1e-9, None), 2))
+    claimed = sum(bool(json.loads(r).get("detected")) for r in reports.values())
+    return {"t_one": t_one, "cpu_one": cpu_one, "rate2": rate2, "claimed": claimed,
+            "reports": reports}
+
+
+def scan_child(web: str, home: str) -> None:
+    """``--scan-child``: :func:`measure_scan` in this process (another checkout on PYTHONPATH)."""
+    import json
+
+    from claimkit.evidence.profile import Profile
+
+    with Profile.open(Path(home), b"bench") as profile:
+        print(json.dumps(measure_scan(profile, sorted(Path(web).glob("*.jpg")))))
+
+
+def bench_scan(profile, work: Path, count: int, before: Path | None = None) -> None:
+    import json
+    import subprocess
+
     from claimkit.cli import scale
 
     print(f"\n1. scan of {count} web-size JPEGs (1.2-1.9 MP, half marked and recompressed), "
@@ -265,37 +309,53 @@ def bench_scan(profile, work: Path, count: int) -> None:
     files = sorted(web.glob("*.jpg"))
     mp = np.mean([Image.open(f).size[0] * Image.open(f).size[1] for f in files]) / 1e6
     t_decode = min(pillow_decode(files) for _ in range(2))
-    seed, checker = workflow.mark_keys(profile), workflow.owner_payload_check(profile)
-    t_one = cpu_one = rate2 = 0.0
-    for _ in range(2):        # alternate and keep the best of each (see bench_mark)
-        cpu = time.process_time()
-        t = time.perf_counter()
-        claimed = sum(bool(scan.scan_task(str(f), seed, checker, 1e-9, None).get("detected"))
-                      for f in files)
-        dt = time.perf_counter() - t
-        if not t_one or dt < t_one:
-            t_one, cpu_one = dt, (time.process_time() - cpu) / len(files)
-        rate2 = max(rate2, steady_rate(files, scan.scan_task,
-                                       lambda f: (str(f), seed, checker, 1e-9, None), 2))
+    runs: dict[str, list[dict]] = {"this": [], "before": []}
+    # With --before: each checkout twice, alternated, each in a fresh process of its own
+    # (same files, same keys); the best of each is printed.
+    order = ["before", "this", "before", "this"] if before else ["this"]
+    for tree in order:
+        if not before:
+            runs[tree].append(measure_scan(profile, files))
+            continue
+        checkout = before if tree == "before" else Path(__file__).resolve().parents[1]
+        env = dict(os.environ, PYTHONPATH=str(checkout.resolve()))
+        out = subprocess.run([sys.executable, str(Path(__file__).resolve()), "--scan-child",
+                              str(web), str(work / "home")], capture_output=True, text=True,
+                             env=env, cwd=work, check=False)
+        if out.returncode != 0:
+            raise SystemExit(f"--before scan failed:\n{out.stderr[-2000:]}")
+        runs[tree].append(json.loads(out.stdout.strip().splitlines()[-1]))
     with quiet():
         t = time.perf_counter()
         scale.scan_folders(profile, [web], workers=2, json_lines=True)
         t_cmd = time.perf_counter() - t
     line("mean picture size", f"{mp:.2f} MP")
-    line("claimed (of the marked half)", f"{claimed}/{half}")
     line("Pillow decode, one process, per file", f"{1000 * t_decode / len(files):.0f} ms")
-    line("examine, one process: CPU time per file", f"{1000 * cpu_one:.0f} ms")
-    line("examine CPU per file / Pillow decode per file", f"{cpu_one * len(files) / t_decode:.1f}x",
-         f"target <= {TARGET_SCAN_VS_DECODE:.0f}x (on 2 cores: "
-         f"{cpu_one * len(files) / 2 / t_decode:.1f}x)")
-    line("scan, 1 worker (in process)", f"{len(files) / t_one:.1f} files/s")
-    line("scan, 2 worker processes, pool already up", f"{rate2:.1f} files/s",
-         f"target >= {TARGET_SCAN_RATE:.0f} files/s")
-    line("  the same with no other load (2 / CPU per file)", f"{2 / cpu_one:.1f} files/s")
+    for tree in ("before", "this") if before else ("this",):
+        rs = runs[tree]
+        cpu_one = min(r["cpu_one"] for r in rs)
+        t_one = min(r["t_one"] for r in rs)
+        rate2 = max(r["rate2"] for r in rs)
+        if before:
+            print(f"  -- {'this checkout' if tree == 'this' else f'BEFORE ({before})'}")
+        line("claimed (of the marked half)", f"{rs[0]['claimed']}/{half}")
+        line("examine, one process: CPU time per file", f"{1000 * cpu_one:.0f} ms")
+        line("examine CPU per file / Pillow decode per file",
+             f"{cpu_one * len(files) / t_decode:.1f}x",
+             f"target <= {TARGET_SCAN_VS_DECODE:.0f}x (on 2 cores: "
+             f"{cpu_one * len(files) / 2 / t_decode:.1f}x)")
+        line("scan, 1 worker (in process)", f"{len(files) / t_one:.1f} files/s")
+        line("scan, 2 worker processes, pool already up", f"{rate2:.1f} files/s",
+             f"target >= {TARGET_SCAN_RATE:.0f} files/s")
+        line("  the same with no other load (2 / CPU per file)", f"{2 / cpu_one:.1f} files/s")
+        line("scan wall time on 2 workers / Pillow decode time",
+             f"{len(files) / rate2 / t_decode:.1f}x", f"target <= {TARGET_SCAN_VS_DECODE:.0f}x")
+        line("speed-up of scan, 2 workers over 1", f"{rate2 * t_one / len(files):.2f}x")
     line("claimkit scan command, 2 workers, incl. pool start", f"{len(files) / t_cmd:.1f} files/s")
-    line("scan wall time on 2 workers / Pillow decode time", f"{len(files) / rate2 / t_decode:.1f}x",
-         f"target <= {TARGET_SCAN_VS_DECODE:.0f}x")
-    line("speed-up of scan, 2 workers over 1", f"{rate2 * t_one / len(files):.2f}x")
+    if before:
+        this, other = runs["this"][0]["reports"], runs["before"][0]["reports"]
+        same = sum(this[f] == other.get(f) for f in this)
+        line("reports identical to the --before checkout's", f"{same}/{len(this)}")
 
 
 def timed_mark_task(*args):
@@ -519,10 +579,17 @@ def main() -> int:
     ap.add_argument("--quick", action="store_true", help="small counts, sizes up to 12 MP")
     ap.add_argument("--only", choices=("scan", "mark", "growth", "memory"), action="append",
                     help="run only these sections (repeatable)")
+    ap.add_argument("--before", type=Path,
+                    help="a checkout of the commit to compare with: the scan section also runs "
+                         "its code on the same files and keys, and compares the reports")
     ap.add_argument("--growth-child", nargs=2, metavar=("FILE", "HOME"), help=argparse.SUPPRESS)
+    ap.add_argument("--scan-child", nargs=2, metavar=("WEB", "HOME"), help=argparse.SUPPRESS)
     args = ap.parse_args()
     if args.growth_child:
         growth_child(*args.growth_child)
+        return 0
+    if args.scan_child:
+        scan_child(*args.scan_child)
         return 0
     sizes = [(1200, 900), (2400, 1800), (4000, 3000), (6000, 4000)]
     if args.quick:
@@ -535,7 +602,7 @@ def main() -> int:
         only = set(args.only or ("scan", "mark", "growth", "memory"))
         with fresh_profile(work / "home") as profile:
             if "scan" in only:
-                bench_scan(profile, work, args.scan_count)
+                bench_scan(profile, work, args.scan_count, args.before)
             if "mark" in only:
                 bench_mark(profile, work, args.count12)
         if "growth" in only:
