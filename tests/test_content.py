@@ -460,7 +460,7 @@ def test_dense_reading_stays_below_the_band_of_the_mark():
     from claimkit.content import dense
 
     grey = np.full((480, 640, 3), 128, np.uint8)
-    assert dense.structure(to_luma(grey)) == 0.0
+    assert dense.structure(to_luma(grey)) < 1e-9
     assert dense.structure(to_luma(mark(grey))) < dense.MIN_STRUCTURE / 3
     assert dense.structure(to_luma(mark(sky()))) < dense.MIN_STRUCTURE
     assert dense.dense_register(to_luma(mark(sky())), to_luma(stress.jpeg(mark(sky()), 90)))[
@@ -468,11 +468,13 @@ def test_dense_reading_stays_below_the_band_of_the_mark():
 
 
 def test_dense_reading_is_not_carried_by_the_mark():
-    # A soft texture marked against another soft texture carrying its whole fine-detail residual
+    # A soft texture marked, against another soft texture carrying its whole fine-detail residual
     # (the copy attack's strongest form, numpy only: tests/engine_helpers.transplant_mark): the
-    # dense reading must not correspond, and must read what it reads without the mark (the
-    # unmarked texture against the other one as it is) to within 0.05. And a genuine copy
-    # (Pillow's JPEG 90) reads the same marked and unmarked to within 0.02.
+    # dense reading must not correspond, and carrying the work's mark must not move it by more
+    # than 0.02 from the same host without it. (Marking the work itself moves the search's
+    # maximum by a tenth here, 0.42 to 0.52, on both hosts alike: which placements hold eight
+    # patches shifts with any small change of the work; the mark the host carries adds nothing.)
+    # And a genuine copy (Pillow's JPEG 90) reads the same marked and unmarked to within 0.02.
     from engine_helpers import soft
 
     from claimkit.content import dense
@@ -481,9 +483,9 @@ def test_dense_reading_is_not_carried_by_the_mark():
     work, host = soft(5), soft(11)
     marked = mark(work)
     forged = dense.dense_register(to_luma(marked), to_luma(transplant_mark(marked, host, tile=None)))
-    plain = dense.dense_register(to_luma(work), to_luma(host))
+    plain = dense.dense_register(to_luma(marked), to_luma(host))
     assert forged["value"] < threshold
-    assert abs(forged["value"] - plain["value"]) <= 0.05
+    assert abs(forged["value"] - plain["value"]) <= 0.02
     copies = [dense.dense_register(to_luma(p), to_luma(stress.jpeg(p, 90)))["value"]
               for p in (marked, work)]
     assert abs(copies[0] - copies[1]) <= 0.02 and min(copies) >= threshold

@@ -17,8 +17,10 @@ those patches directly:
   :data:`SCALE_STEP` over the range where the exhibit shows between
   :data:`MIN_AREA` and :data:`MAX_AREA` of the registered picture's area, and
   for each every shift, by the masked normalised cross-correlation of Padfield
-  [1]_ computed with FFTs; the shift must keep :data:`INSIDE` of the exhibit
-  on the picture (a copy shows a part of the work, not a sliver of it);
+  [1]_ computed with FFTs; a shift counts only where :data:`INSIDE` of the
+  exhibit lies on the picture (a copy shows a part of the work, not a sliver of
+  it) and where the work under the exhibit, and the exhibit at the size the
+  placement gives it, each hold :data:`MIN_PATCHES` light or dark patches;
 * the :data:`KEEP` best hypotheses are searched again at :data:`FINE_GRID`
   around their turn and scale; the statistic is the highest correlation found,
   the same maximum over the same search for every pair of pictures, which is
@@ -27,12 +29,17 @@ those patches directly:
 What it does not use: the mark's key, payload or geometry. And what the mark
 leaves in the pixels does not reach it: the mark's tile repeats every 128
 pixels of the registered picture and spreads its power over every frequency of
-that tile, about one grey level in all on a plain picture; the Gaussian of
-:data:`SMOOTH` of the side (10 pixels on a 640-pixel picture) passes a few
-hundredths of a grey level of it. Where the pictures' own gradient field is
-under :data:`MIN_STRUCTURE` (grey levels per grid pixel, a hundred times what
-the mark leaves there), the reading says nothing: a clear sky, a plain or a
-ramp host.
+that tile, about one grey level in all on a plain picture; after the reduction
+and the Gaussian of :data:`SMOOTH` of the side (10 pixels on a 640-pixel
+picture) a plain grey picture, marked, varies by 0.077 grey levels. Where a
+picture's broad layout varies by less than :data:`MIN_STRUCTURE` grey levels
+about its best-fitting plane (:func:`structure`), the reading says nothing: a
+clear sky (0.08; 0.11 marked), a plain or a ramp host.
+
+It only ever supports correspondence: below its threshold the content line
+still cannot decide. Cost: about 1400 hypotheses at :data:`COARSE_GRID` and 90
+at :data:`FINE_GRID`, 2 to 3 seconds per pair on one core of a shared machine
+(``benchmarks/bench_content.py --dense-only`` records the whole run's time).
 
 References
 ----------
@@ -79,12 +86,15 @@ BATCH = 8
 #: 160 x 120 soft texture, two patches, reached 0.99 against another soft texture; scikit-image's
 #: clock, six patches, 0.89 against its cell).
 MIN_PATCHES = 8
+#: Least span (grey levels over 5 x 5 pixels of :data:`FINE_GRID`) around an extreme for it to be
+#: a patch: what :data:`MIN_STRUCTURE` asks of a whole picture.
 PATCH_CONTRAST = 0.25
 #: Longer side (pixels) both pictures are first reduced to: four times :data:`FINE_GRID`, so
 #: every grid is still reduced from a sharper picture.
 WORKING = 256
-#: Least structure (root-mean-square gradient, grey levels per pixel of :data:`FINE_GRID`, after
-#: its mean is removed) a picture needs for the reading to say anything.
+#: Least structure (:func:`structure`: grey levels about the best-fitting plane, at
+#: :data:`FINE_GRID`) a picture needs for the reading to say anything; three times what the mark
+#: alone leaves on a plain grey picture (0.077), above a clear sky (0.08, marked 0.11).
 MIN_STRUCTURE = 0.25
 
 
