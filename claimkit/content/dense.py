@@ -54,6 +54,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage
 
+from claimkit.content import register as reg
+
 __all__ = ["COARSE_GRID", "FINE_GRID", "dense_register", "structure"]
 
 #: Longer side (pixels) of the registered picture in the exhaustive search, and in the refinement.
@@ -342,8 +344,6 @@ def dense_register(reference_luma: np.ndarray, exhibit_luma: np.ndarray) -> dict
         ``rotation_deg``, ``scale``, ``flipped``, ``matrix``, ``translation_px``),
         ``hypotheses`` (how many the exhaustive search tried) and the settings.
     """
-    from claimkit.content import register as reg
-
     (ref, fr), (exh, fe) = _luma01(reference_luma), _luma01(exhibit_luma)
     ref_shape, exh_shape = np.shape(reference_luma)[:2], np.shape(exhibit_luma)[:2]
     out: dict = {"method": "gradient of the broad layout, exhaustive similarity search, "
