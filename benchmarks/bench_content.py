@@ -21,6 +21,11 @@ What is measured (every number the content line's likelihood ratio rests on):
   the first calibration pictures, registered to the picture itself and to a
   half-resolution reference.
 
+``--dense-only`` measures the dense reading (:mod:`claimkit.content.dense`) instead: its null
+over the calibration pictures and smooth and flat ones (soft textures, blobs, a dusk ramp, a
+colour gradient, a grey ramp, a vignette), the exhibit as is and as a 25 % crop, and each
+picture's two halves; its genuine copies on soft, smooth and other pictures.
+
 The statistic is the RANSAC inlier count of :func:`claimkit.content.register.register`.
 The file written keeps the sorted samples themselves (the empirical
 distributions), the threshold chosen from them and how, and the machine and
@@ -45,7 +50,7 @@ from PIL import Image
 from skimage import data
 
 from claimkit import __version__, stress
-from claimkit.content import assess, broad
+from claimkit.content import assess, broad, dense
 from claimkit.content import register as reg
 from claimkit.imageio import to_luma
 from claimkit.mark import detect, scales
@@ -57,9 +62,12 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "tests"))
 from engine_helpers import (  # noqa: E402 - the tests' helpers, on the path just above
     SEED,
+    blobs,
+    dusk,
     generated,
     mark,
     payload,
+    soft,
     transplant_mark,
 )
 
@@ -504,6 +512,150 @@ def faint_section(quick: bool) -> dict:
     }
 
 
+def smooth_pictures(quick: bool) -> dict[str, np.ndarray]:
+    """Smooth and flat pictures for the dense reading's null, seeds the held-out set does not use:
+    soft textures, blobs, a dusk ramp, a vertical colour gradient, a grey ramp and a vignette
+    (the last three with faint noise, as a sensor leaves)."""
+    rng = np.random.default_rng(51)
+    y, x = np.mgrid[0:480, 0:640] / 640.0
+    grey_ramp = 40 + 250 * (0.7 * x + 0.3 * y)
+    vignette = 200 - 300 * ((x - 0.5) ** 2 + (y - 0.375) ** 2)
+    made = {"gradient": np.stack([90 + 160 * y, 120 + 100 * y, 200 + 50 * y], -1),
+            "grey ramp": np.stack([grey_ramp] * 3, -1), "vignette": np.stack([vignette] * 3, -1)}
+    out = {"soft-21": soft(21), "soft-22": soft(22), "blobs-31": blobs(31), "dusk-41": dusk(41)}
+    if not quick:
+        out.update({"soft-23": soft(23, 400, 600), "blobs-32": blobs(32)})
+    for k, v in made.items():
+        out[k] = np.clip(v + rng.normal(0, 1.5, v.shape), 0, 255).astype(np.uint8)
+    return out
+
+
+#: Pictures whose genuine copies the dense reading is measured on (soft and smooth ones first:
+#: those the keypoint readings cannot decide).
+DENSE_GENUINE = ("soft-21", "soft-22", "blobs-31", "generated-0", "rocket", "moon")
+
+
+def _dense_pictures(quick: bool) -> dict[str, np.ndarray]:
+    return {**calibration_pictures(quick), **smooth_pictures(quick)}
+
+
+def _dense_null_one(args: tuple[str, bool]) -> list[dict]:
+    """Picture ``k`` as the exhibit against every other work, as is and as a 25 % crop (the crop
+    against the smooth and generated works), and its right part against its left part."""
+    k, quick = args
+    pics = _dense_pictures(quick)
+    smooth = set(smooth_pictures(quick)) | {n for n in pics if n.startswith("generated")}
+    lu = to_luma(pics[k])
+    crop = to_luma(stress.crop_fraction(pics[k], 0.25))
+    rows = []
+    for r, rv in pics.items():
+        if r == k:
+            continue
+        rl = to_luma(rv)
+        for how, ex in (("as is", lu), ("crop 25 %", crop)):
+            if how == "as is" or r in smooth:
+                rows.append({"work": r, "exhibit": k, "how": how,
+                             "value": dense.dense_register(rl, ex)["value"]})
+    w = lu.shape[1]
+    left, right = lu[:, : int(0.45 * w)], lu[:, int(0.55 * w):]
+    n = min(left.shape[1], right.shape[1])
+    corr = float(np.corrcoef(left[:, :n].ravel(), right[:, ::-1][:, :n].ravel())[0, 1])
+    if corr <= MIRROR_IMAGE_CORRELATION:
+        rows.append({"work": f"{k} (left part)", "exhibit": f"{k} (right part)", "how": "same owner",
+                     "value": dense.dense_register(left, right)["value"]})
+    return rows
+
+
+def _dense_genuine_one(args: tuple[str, bool]) -> list[dict]:
+    """Every attack of the stress battery (and an enlargement) on picture ``k`` marked."""
+    k, quick = args
+    pub = mark(_dense_pictures(quick)[k])
+    ref = to_luma(pub)
+    rows = []
+    for att in faint_attacks():
+        copy = att.apply(pub)
+        if min(copy.shape[:2]) < 16:
+            continue
+        res = dense.dense_register(ref, to_luma(copy))
+        truth = att.truth(pub.shape[:2], copy.shape[:2])
+        g = res.get("geometry") or {}
+        rows.append({"picture": k, "attack": att.name, "value": res["value"],
+                     "rotation_error_deg": None if not g else round(
+                         abs((g["rotation_deg"] - truth["rotation_deg"] + 180) % 360 - 180), 2),
+                     "scale_ratio": None if not g or truth.get("scale") is None else round(
+                         g["scale"] / truth["scale"], 4),
+                     "flipped_right": None if not g else g["flipped"] == truth["flipped"]})
+    return rows
+
+
+def dense_threshold(null: list[float]) -> float:
+    # Halfway from the highest value any unrelated or same-owner pair reached to 1 (a copy
+    # registers near 1): the best chance placement of the search falls well short.
+    return round((1.0 + max(null)) / 2.0, 3)
+
+
+def dense_section(quick: bool) -> dict:
+    """The dense reading's null (every hypothesis of its search counted: the statistic is the
+    search's own maximum), its genuine samples, and its threshold."""
+    t0 = time.perf_counter()
+    pics = _dense_pictures(quick)
+    genuine_names = [k for k in DENSE_GENUINE if k in pics]
+    with ProcessPoolExecutor(2) as pool:
+        null_futs = [pool.submit(_dense_null_one, (k, quick)) for k in pics]
+        gen_futs = [pool.submit(_dense_genuine_one, (k, quick)) for k in genuine_names]
+        null = []
+        for f in null_futs:
+            part = f.result()
+            null += part
+            known = [r["value"] for r in part if r["value"] is not None]
+            print(f"dense null {part[0]['exhibit']}: {len(known)} of {len(part)} comparable, "
+                  f"max {max(known, default=None)} ({time.perf_counter() - t0:.0f} s)", flush=True)
+        gen = [r for f in gen_futs for r in f.result()]
+    nv = sorted(r["value"] for r in null if r["value"] is not None)
+    gv = sorted(r["value"] for r in gen if r["value"] is not None)
+    threshold = dense_threshold(nv)
+    reached = [r for r in gen if r["value"] is not None and r["value"] >= threshold]
+    rot = [r["rotation_error_deg"] for r in reached if r["rotation_error_deg"] is not None]
+    sc = [abs(r["scale_ratio"] - 1) for r in reached if r["scale_ratio"] is not None]
+    return {
+        "statistic": "highest masked normalised cross-correlation of the broad layouts' gradients "
+                     "over every turn, scale, mirroring and shift searched "
+                     "(claimkit.content.dense.dense_register)",
+        "settings": {"grids_px": [dense.COARSE_GRID, dense.FINE_GRID], "smooth": dense.SMOOTH,
+                     "coarse_step_deg": dense.COARSE_STEP_DEG, "scale_step": dense.SCALE_STEP,
+                     "area_range": [dense.MIN_AREA, dense.MAX_AREA], "inside": dense.INSIDE,
+                     "keep": dense.KEEP, "min_structure": dense.MIN_STRUCTURE},
+        "threshold": threshold,
+        "threshold_rule": "halfway from the highest value any unrelated or same-owner pair "
+                          "reached to 1",
+        "null": {"count": len(nv), "samples": [round(v, 4) for v in nv],
+                 "not_comparable": sum(1 for r in null if r["value"] is None),
+                 "highest": sorted((r for r in null if r["value"] is not None),
+                                   key=lambda r: -r["value"])[:8],
+                 "what": "ordered pairs of distinct pictures (the calibration pictures and "
+                         f"smooth ones: {', '.join(smooth_pictures(quick))}), the exhibit as is, "
+                         "and as a 25 % crop against the smooth and generated works; and each "
+                         "picture's right part against its left part (the same owner's other "
+                         "frame); not comparable: a picture with less structure than the "
+                         "reading needs, where it says nothing"},
+        "genuine": {"count": len(gv), "samples": [round(v, 4) for v in gv],
+                    "reaching": len(reached),
+                    "not_comparable": sum(1 for r in gen if r["value"] is None),
+                    "lowest": sorted((r for r in gen if r["value"] is not None),
+                                     key=lambda r: r["value"])[:8],
+                    "what": "every attack of claimkit.stress.battery() and an enlargement to "
+                            f"200 % on {', '.join(genuine_names)}, each marked "
+                            "(tests/engine_helpers.mark), against the marked picture"},
+        "geometry_error_when_reached": {
+            "rotation_deg_max": max(rot, default=None),
+            "scale_relative_max": round(max(sc), 4) if sc else None,
+            "flip_wrong": sum(1 for r in reached if r["flipped_right"] is False)},
+        "measured": {"by": "benchmarks/bench_content.py --dense-only" + (" --quick" if quick else ""),
+                     "software": f"claimkit {__version__}", "skimage": skimage.__version__,
+                     "seconds": round(time.perf_counter() - t0)},
+    }
+
+
 def _coarse_genuine_one(args: tuple[str, bool]) -> list[dict]:
     k, quick = args
     rgb = calibration_pictures(quick)[k]
@@ -623,6 +775,8 @@ def main() -> None:
                     help="measure only the broad-structure statistic, into the existing file")
     ap.add_argument("--faint-only", action="store_true",
                     help="measure only the faint share (broad.faint_share), into the existing file")
+    ap.add_argument("--dense-only", action="store_true",
+                    help="measure only the dense reading (content.dense), into the existing file")
     ap.add_argument("--coarse-only", action="store_true",
                     help="measure only the coarse reading, into the existing file")
     ap.add_argument("--reduced", action="store_true",
@@ -654,6 +808,16 @@ def main() -> None:
         print(json.dumps({k: fa[k] for k in ("refute_above", "measured")}), "genuine",
               {k: fa["genuine"][k] for k in ("copies", "mark_found", "count", "highest")},
               "null", fa["null"]["count"], "above", fa["null"]["above_refute"])
+        return
+    if args.dense_only:
+        doc = json.loads(Path(args.out).read_text())
+        doc["dense"] = dense_section(args.quick)
+        Path(args.out).write_text(json.dumps(doc, indent=1, sort_keys=True) + "\n")
+        d = doc["dense"]
+        print(json.dumps({k: d[k] for k in ("threshold", "geometry_error_when_reached",
+                                            "measured")}), "null", d["null"]["count"],
+              "highest", d["null"]["highest"][:3], "genuine", d["genuine"]["count"], "reaching",
+              d["genuine"]["reaching"], "lowest", d["genuine"]["lowest"][:4])
         return
     if args.coarse_only:
         doc = json.loads(Path(args.out).read_text())
@@ -736,7 +900,8 @@ def main() -> None:
     }
     old = json.loads(Path(args.out).read_text()) if Path(args.out).exists() else {}
     keep = {"broad": "claimkit.content.broad", "coarse": "register.register_coarse",
-            "faint": "claimkit.content.broad.faint_share", "fingerprint": "mark.fingerprint"}
+            "faint": "claimkit.content.broad.faint_share", "fingerprint": "mark.fingerprint",
+            "dense": "claimkit.content.dense"}
     for key in keep:
         # Neither reads the fine reading (broad.broad_correlation; the coarse reading has its
         # own keypoints at COARSE_SIDE): kept as measured; only the coarse section's counts of

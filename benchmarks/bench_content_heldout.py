@@ -31,6 +31,10 @@ a fixed test key.
   with the ``lines-disagree`` warning beside it: that is a disagreement shown
   (the lead's decision), and the run says how many such claims there were.
 
+Where the keypoint readings cannot decide, the content line consults the dense reading of the
+broad layouts (``claimkit.content.dense``); the run prints how many copies it decided and its
+values on genuine copies and on the transplants where it was consulted.
+
 The layout at the mark's geometry, and the faint share beside it
 (``broad.faint_share``, consulted where the correlation does not refute), are
 measured on every genuine copy on which the mark was found, whether or not the
@@ -51,12 +55,12 @@ from pathlib import Path
 
 import numpy as np
 from PIL import Image
-from skimage import data, filters
+from skimage import data
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "tests"))
 from bench_content import _rgb
-from engine_helpers import generated, mark, payload, sky, soft, transplant_mark
+from engine_helpers import blobs, dusk, generated, mark, payload, sky, soft, transplant_mark
 
 from claimkit import stress
 from claimkit.content.assess import layout_check
@@ -87,23 +91,6 @@ def hosts() -> dict[str, np.ndarray]:
     return {"rocket": data.rocket(), "astronomy": data.hubble_deep_field()[:600, :800],
             "brick": np.stack([data.brick()] * 3, -1), "generated-998": generated(998),
             "coins": np.stack([data.coins()] * 3, -1)}
-
-
-def dusk(seed: int) -> np.ndarray:
-    """A flat host: a diagonal colour ramp with faint noise (no corners, a broad layout only)."""
-    rng = np.random.default_rng(seed)
-    y, x = np.mgrid[0:450, 0:600] / 600.0
-    ramp = 0.6 * x + 0.4 * y
-    base = np.stack([70 + 90 * ramp, 60 + 60 * ramp, 120 - 40 * ramp], axis=-1)
-    return np.clip(base + rng.normal(0, 1.5, base.shape), 0, 255).astype(np.uint8)
-
-
-def blobs(seed: int) -> np.ndarray:
-    """A flat host: scikit-image's generated blobs, smoothed into soft light and dark patches."""
-    b = data.binary_blobs(length=512, blob_size_fraction=0.2, volume_fraction=0.5, rng=seed)
-    soft_ = filters.gaussian(b.astype(float), sigma=12)
-    grey = (60 + 120 * soft_).astype(np.uint8)
-    return np.stack([grey, grey, (grey * 0.8).astype(np.uint8)], -1)
 
 
 def second_hosts() -> dict[str, np.ndarray]:
@@ -150,6 +137,8 @@ def _transplants(name: str, pub: np.ndarray, ref: np.ndarray, which: str) -> lis
                     "inliers": c["statistic"]["value"], "reading": c["statistic"].get("reading"),
                     "corresponds": c["corresponds"], "layout": lay.get("value"),
                     "faint": (lay.get("faint") or {}).get("value"),
+                    "dense": (c["statistic"].get("dense") or {}).get("value")
+                    if c["statistic"].get("reading") != "dense" else c["statistic"]["value"],
                     "flagged": bool(w["content_mismatch"]),
                     "reported_log10_lr": w["evaluation"]["reported_log10_lr"],
                     "derived": bool(w["evaluation"]["derivation_claimed"])})
@@ -194,6 +183,8 @@ def run_picture(args: tuple[str, bool]) -> dict:
                      "content_mismatch": w["content_mismatch"], "layout": lay,
                      "faint": (lay_res.get("faint") or {}).get("value"),
                      "reading": c["statistic"].get("reading"),
+                     "dense": (c["statistic"].get("dense") or {}).get("value")
+                     if c["statistic"].get("reading") != "dense" else c["statistic"]["value"],
                      "cannot_decide": c.get("cannot_decide"),
                      "warnings": codes, "derivation_claimed": bool(ev["derivation_claimed"]),
                      "shown": None if not found else (bool(codes) if outcome != "agrees" else True),
@@ -234,7 +225,12 @@ def main() -> None:
           f"highest {fa[-3:]}; transplants where it was measured: "
           f"{sorted(t['faint'] for t in trans if t.get('faint') is not None)}")
     print(f"the coarse reading decided {sum(r['reading'] == 'coarse' for r in found)} genuine "
-          "copies found")
+          f"copies found, the dense reading {sum(r['reading'] == 'dense' for r in found)}; "
+          f"transplants the dense reading was consulted on: "
+          f"{sum(t.get('dense') is not None for t in trans)}, highest value "
+          f"{max((t['dense'] for t in trans if t.get('dense') is not None), default=None)}")
+    ds = sorted((r["dense"], r["picture"], r["attack"]) for r in found if r["dense"] is not None)
+    print(f"dense reading on genuine copies found where consulted: {len(ds)}, lowest {ds[:4]}")
     by_att: dict[str, dict[str, int]] = defaultdict(lambda: defaultdict(int))
     for r in found:
         by_att[r["attack"]][r["outcome"]] += 1

@@ -80,6 +80,23 @@ def soft(seed: int, h: int = 480, w: int = 640) -> np.ndarray:
     return (base * 120 + 60).astype(np.uint8)
 
 
+def dusk(seed: int) -> np.ndarray:
+    """A flat host: a diagonal colour ramp with faint noise (no corners, a broad layout only)."""
+    rng = np.random.default_rng(seed)
+    y, x = np.mgrid[0:450, 0:600] / 600.0
+    ramp = 0.6 * x + 0.4 * y
+    base = np.stack([70 + 90 * ramp, 60 + 60 * ramp, 120 - 40 * ramp], axis=-1)
+    return np.clip(base + rng.normal(0, 1.5, base.shape), 0, 255).astype(np.uint8)
+
+
+def blobs(seed: int) -> np.ndarray:
+    """A flat host: scikit-image's generated blobs, smoothed into soft light and dark patches."""
+    b = data.binary_blobs(length=512, blob_size_fraction=0.2, volume_fraction=0.5, rng=seed)
+    soft_ = filters.gaussian(b.astype(float), sigma=12)
+    grey = (60 + 120 * soft_).astype(np.uint8)
+    return np.stack([grey, grey, (grey * 0.8).astype(np.uint8)], -1)
+
+
 def photos() -> dict[str, np.ndarray]:
     """Natural photos from 300 to 1411 px a side (scikit-image's data set) and a sky."""
     return {

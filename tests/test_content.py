@@ -447,3 +447,72 @@ def test_readings_are_not_carried_by_the_mark(reading, picture, edit):
     with_mark, without = points(mark(plain)), points(plain)
     assert abs(with_mark - without) <= max(0.1 * threshold, 0.1 * without)
     assert (with_mark >= threshold) == (without >= threshold)
+
+
+def test_dense_reading_stays_below_the_band_of_the_mark():
+    # The mark spreads about a grey level over every frequency of its 128-pixel tile; what the
+    # dense reading's smoothing passes of it on a plain grey picture (the mark alone) must stay
+    # under a third of the structure the reading needs, so that the mark can never be what it
+    # reads. A clear sky (a gradient with sensor noise), marked, has less than the limit too:
+    # the reading says nothing there (claimkit.content.dense.MIN_STRUCTURE).
+    from engine_helpers import sky
+
+    from claimkit.content import dense
+
+    grey = np.full((480, 640, 3), 128, np.uint8)
+    assert dense.structure(to_luma(grey)) < 1e-9
+    assert dense.structure(to_luma(mark(grey))) < dense.MIN_STRUCTURE / 3
+    assert dense.structure(to_luma(mark(sky()))) < dense.MIN_STRUCTURE
+    assert dense.dense_register(to_luma(mark(sky())), to_luma(stress.jpeg(mark(sky()), 90)))[
+        "value"] is None
+
+
+def test_dense_reading_is_not_carried_by_the_mark():
+    # A soft texture marked, against another soft texture carrying its whole fine-detail residual
+    # (the copy attack's strongest form, numpy only: tests/engine_helpers.transplant_mark): the
+    # dense reading must not correspond, and carrying the work's mark must not move it by more
+    # than 0.02 from the same host without it. (Marking the work itself moves the search's
+    # maximum by a tenth here, 0.42 to 0.52, on both hosts alike: which placements hold eight
+    # patches shifts with any small change of the work; the mark the host carries adds nothing.)
+    # And a genuine copy (Pillow's JPEG 90) reads the same marked and unmarked to within 0.02.
+    from engine_helpers import soft
+
+    from claimkit.content import dense
+
+    threshold = calibration()["dense"]["threshold"]
+    work, host = soft(5), soft(11)
+    marked = mark(work)
+    forged = dense.dense_register(to_luma(marked), to_luma(transplant_mark(marked, host, tile=None)))
+    plain = dense.dense_register(to_luma(marked), to_luma(host))
+    assert forged["value"] < threshold
+    assert abs(forged["value"] - plain["value"]) <= 0.02
+    copies = [dense.dense_register(to_luma(p), to_luma(stress.jpeg(p, 90)))["value"]
+              for p in (marked, work)]
+    assert abs(copies[0] - copies[1]) <= 0.02 and min(copies) >= threshold
+
+
+def test_a_soft_texture_copy_corresponds_by_the_dense_reading():
+    # A soft texture (smoothed noise, no corners: tests/engine_helpers.soft) marked, and its copy
+    # turned 45 degrees by Pillow (bicubic, cropped to no border, a third of the picture left):
+    # neither keypoint reading can use it once the mark is kept out of them, the dense reading
+    # of the broad layouts registers it at the true turn and scale; a clear sky's copy stays
+    # undecided, and the reason says that the dense reading had nothing to read either.
+    from engine_helpers import sky, soft
+
+    from claimkit.content.assess import agreement
+
+    pub = mark(soft(5))
+    att = next(a for a in stress.battery() if a.name == "rotate 45")
+    copy = att.apply(pub)
+    c = content_line(to_luma(copy), reference_luma=to_luma(pub))
+    st = c["statistic"]
+    assert st["reading"] == "dense" and c["corresponds"] is True
+    assert st["keypoints"]["value"] < st["keypoints"]["threshold"]
+    assert st["value"] >= st["threshold"] == calibration()["dense"]["threshold"]
+    truth = att.truth(pub.shape[:2], copy.shape[:2])
+    assert agreement(c, truth)["agree"]
+    assert c["log10_lr"] > 0 and not c["layout"]["refutes"]
+    blue = mark(sky())
+    s = content_line(to_luma(stress.jpeg(blue, 75)), reference_luma=to_luma(blue))
+    assert s["corresponds"] is None and s["statistic"]["dense"]["value"] is None
+    assert "dense reading" in s["reason"] and s["log10_lr"] == 0.0

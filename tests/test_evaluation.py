@@ -237,3 +237,23 @@ def test_the_bisection_stops_where_it_stands_still_with_the_same_bits():
         for k in sorted({0, 1, n // 3, n // 2, n - 1}):
             for confidence in (lr.CONFIDENCE, 0.99):
                 assert lr.binomial_upper(k, n, confidence) == full_loop(k, n, confidence), (k, n)
+
+
+def test_the_dense_reading_ratio_sums_the_two_null_bounds():
+    # Where the dense reading decides, the content line's ratio is its genuine rate's lower bound
+    # over the sum of the upper bounds of the keypoint readings' null and of its own (both
+    # Clopper-Pearson, from scipy.stats.beta.ppf here), capped; the counts are the stored ones.
+    from claimkit.content.assess import _either, _with_dense, calibration
+
+    cal = calibration()
+    either = _either(cal)
+    got = _with_dense(either, cal["dense"])
+    kd = sum(1 for v in cal["dense"]["null"]["samples"] if v >= cal["dense"]["threshold"])
+    nd = cal["dense"]["null"]["count"]
+    ke, ne = either["null"]["reaching_threshold"], either["null"]["count"]
+    bound = stats.beta.ppf(0.95, ke + 1, ne - ke) + stats.beta.ppf(0.95, kd + 1, nd - kd)
+    g = cal["dense"]["genuine"]
+    num = stats.beta.ppf(0.05, g["reaching"], g["count"] - g["reaching"] + 1)
+    assert got["null"]["rate_upper_95"] == pytest.approx(bound, abs=1e-6)
+    assert got["log10_lr"] == pytest.approx(min(6.0, math.log10(num / bound)), abs=1e-3)
+    assert got["null"]["count"] == ne + nd and got["genuine"]["reaching_threshold"] == g["reaching"]

@@ -24,7 +24,7 @@ from importlib import resources
 
 import numpy as np
 
-from claimkit.content import broad
+from claimkit.content import broad, dense
 from claimkit.content import register as reg
 from claimkit.evaluation import lr
 from claimkit.mark import fingerprint as fp
@@ -156,6 +156,65 @@ def _either(cal: dict) -> dict:
             "genuine": {"count": e["genuine_count"], "reaching_threshold": e["genuine_reaching"]}}
 
 
+def _dense_reading(reference_luma: np.ndarray, exhibit_luma: np.ndarray, res: dict,
+                   statistic: dict, reason: str | None,
+                   cal: dict) -> tuple[dict, dict, bool | None, str | None]:
+    """The dense reading (:func:`claimkit.content.dense.dense_register`) where the keypoint
+    readings cannot decide: it corresponds at or above its own threshold; otherwise the line
+    still cannot decide, and the reason says what the dense reading found."""
+    d = dense.dense_register(reference_luma, exhibit_luma)
+    threshold = float(cal["threshold"])
+    v = d["value"]
+    statistic = {**statistic, "dense": {"value": v, "threshold": threshold,
+                                        "structure": d["structure"],
+                                        "min_structure": d["min_structure"]}}
+    if v is not None and v >= threshold:
+        keypoints = {k: statistic[k] for k in ("name", "value", "threshold")}
+        keypoints.update({k: statistic[k] for k in ("coarse",) if k in statistic})
+        stat = {"name": "dense correlation of the broad layouts", "value": v,
+                "threshold": threshold, "higher_means": "closer correspondence",
+                "reading": "dense", "keypoints": keypoints}
+        return d, stat, True, None
+    if v is None and d.get("reason"):
+        said = f"the dense reading of the broad layouts cannot compare them: {d['reason']}"
+    elif v is None:
+        which = "the work" if d["structure"]["work"] < d["min_structure"] else "the exhibit"
+        said = (f"the dense reading of the broad layouts has nothing to read either: {which} "
+                f"varies by {d['structure'][which.split()[1]]:.2f} grey levels about a plane "
+                f"({d['min_structure']:g} needed)")
+    else:
+        said = (f"the dense reading of the broad layouts reached {v:.2f}, under its threshold "
+                f"{threshold:g}")
+    return res, statistic, None, f"{reason}; {said}" if reason else said
+
+
+def _with_dense(either: dict, cal: dict) -> dict:
+    """The counts and ratio of the event "a keypoint reading or the dense reading reached its
+    threshold", where the dense reading decided.
+
+    Under Hp, the dense reading's own genuine copies (mostly of smooth pictures, where it is
+    the reading that decides). Under Hd, the rate is bounded by the sum of the two bounds: the
+    keypoint readings' (on their null) and the dense reading's (on its own null, which adds
+    smooth and flat pictures); stated as such, which moves the ratio towards 1.
+    """
+    null = cal["null"]
+    k_dense = sum(1 for v in null["samples"] if v >= float(cal["threshold"]))
+    bound = lr.binomial_upper(either["null"]["reaching_threshold"], either["null"]["count"]) + \
+        lr.binomial_upper(k_dense, null["count"])
+    gen = cal["genuine"]
+    num = lr.binomial_lower(gen["reaching"], gen["count"])
+    ratio = 0.0 if num <= bound else lr.cap(float(np.log10(num) - np.log10(bound)))
+    return {"null": {"count": either["null"]["count"] + null["count"],
+                     "reaching_threshold": either["null"]["reaching_threshold"] + k_dense,
+                     "counted": (f"at most the keypoint readings' rate on their "
+                                 f"{either['null']['count']} pairs plus the dense reading's on "
+                                 f"its {null['count']} pairs, each bounded"),
+                     "rate_upper_95": round(min(1.0, bound), 6)},
+            "genuine": {"count": gen["count"], "reaching_threshold": gen["reaching"],
+                        "counted": "the dense reading's genuine copies"},
+            "log10_lr": round(ratio, 3)}
+
+
 def content_line(exhibit_luma: np.ndarray, *, reference_luma: np.ndarray | None = None,
                  reference: str = "registered marked file", reference_scale: float = 1.0,
                  work_fingerprint: str | None = None) -> dict:
@@ -194,8 +253,8 @@ def content_line(exhibit_luma: np.ndarray, *, reference_luma: np.ndarray | None 
         res = reg.register(ref, ex, exm)
         threshold = int(cal["threshold"])
         value = int(res["inliers"])
-        statistic = {"name": "RANSAC inliers", "value": value, "threshold": threshold,
-                     "higher_means": "closer correspondence", "reading": "fine"}
+        statistic: dict = {"name": "RANSAC inliers", "value": value, "threshold": threshold,
+                             "higher_means": "closer correspondence", "reading": "fine"}
         coarse_cal = cal.get("coarse")
         if value < threshold and coarse_cal:
             # The coarse reading, with its own measured null and threshold (register_coarse).
@@ -211,12 +270,17 @@ def content_line(exhibit_luma: np.ndarray, *, reference_luma: np.ndarray | None 
                              "threshold": int(coarse_cal["threshold"]),
                              "higher_means": "closer correspondence", "reading": "coarse",
                              "fine": {"value": value, "threshold": threshold}}
+        hit = statistic["value"] >= statistic["threshold"]
+        corresponds, checks, reason = _decide(hit, threshold, reference_luma, exhibit_luma)
+        if corresponds is None and cal.get("dense"):
+            # Neither keypoint reading can decide: the dense reading of the broad layouts, with
+            # its own measured null and threshold (content.dense).
+            res, statistic, corresponds, reason = _dense_reading(
+                reference_luma, exhibit_luma, res, statistic, reason, cal["dense"])
         if res.get("matched") and reference_scale != 1.0:
             g = res["geometry"]
             g["scale"] = round(g["scale"] * reference_scale, 5)
             g["matrix"] = [[round(v * reference_scale, 6) for v in row] for row in g["matrix"]]
-        hit = statistic["value"] >= statistic["threshold"]
-        corresponds, checks, reason = _decide(hit, threshold, reference_luma, exhibit_luma)
         layout = None
         if corresponds:
             # Points can match the work's fine detail alone (its residual lifted from a published
@@ -227,11 +291,15 @@ def content_line(exhibit_luma: np.ndarray, *, reference_luma: np.ndarray | None 
                                   uses_mark_geometry=False)
             if layout["refutes"]:
                 corresponds = False
-                reason = (f"{statistic['value']} matching points fit one transformation, but "
-                          + layout["reason"] + "; the work's fine detail without its layout is "
-                          "what a picture carrying a lifted residual of the work, mark "
+                found = (f"the dense reading placed it with correlation {statistic['value']:.2f}"
+                         if statistic["reading"] == "dense" else
+                         f"{statistic['value']} matching points fit one transformation")
+                reason = (found + ", but " + layout["reason"] + "; the work's fine detail "
+                          "without its layout is what a picture carrying a lifted residual of the work, mark "
                           "included, shows")
         either = _either(cal)
+        if statistic["reading"] == "dense":
+            either = _with_dense(either, cal["dense"])
         out = {
             "basis": reference, "limited_to_fingerprint": False,
             "statistic": statistic,
@@ -240,14 +308,21 @@ def content_line(exhibit_luma: np.ndarray, *, reference_luma: np.ndarray | None 
             "null": {**either["null"],
                      "rate_upper_95": round(lr.binomial_upper(either["null"]["reaching_threshold"],
                                                               either["null"]["count"]), 6),
-                     "highest": max(cal["null"]["samples"]) if statistic["reading"] == "fine"
-                     else max(cal["coarse"]["null"]["samples"])},
+                     "highest": {"fine": max(cal["null"]["samples"]),
+                                 "coarse": max((cal.get("coarse") or {}).get("null", {}).get(
+                                     "samples", [0])),
+                                 "dense": max((cal.get("dense") or {}).get("null", {}).get(
+                                     "samples", [0]))}[statistic["reading"]]},
             "genuine": either["genuine"],
-            "log10_lr": round(lr.log10_lr_counts(hit, either["genuine"]["reaching_threshold"],
+            "log10_lr": round(lr.log10_lr_counts(hit,
+                                                 either["genuine"]["reaching_threshold"],
                                                  either["genuine"]["count"],
                                                  either["null"]["reaching_threshold"],
                                                  either["null"]["count"]), 3),
         }
+        if "rate_upper_95" in either["null"]:     # the dense reading: the bound is a sum
+            out["null"]["rate_upper_95"] = either["null"]["rate_upper_95"]
+            out["log10_lr"] = either["log10_lr"]
         if layout is not None:
             out["layout"] = layout
             if layout["refutes"]:

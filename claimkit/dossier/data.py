@@ -18,7 +18,7 @@ from claimkit.capture.evidence import collection_data
 from claimkit.case import layout
 from claimkit.case.documents import CaseDoc, DossierDataDoc, ExhibitDoc, FindingDoc, WithdrawalDoc
 from claimkit.case.layout import CUSTODY_COPY, CUSTODY_COPY_V1, DISCLOSURES, PUBLIC_KEY, SOFTWARE
-from claimkit.content import assess, broad, register
+from claimkit.content import assess, broad, dense, register
 from claimkit.evaluation import lr
 from claimkit.evaluation.lines import content_warnings
 from claimkit.evaluation.timeline import build_timeline
@@ -222,6 +222,18 @@ def _content_parameters() -> dict:
             "either_null_at_most": cal["coarse"]["either"]["null_reaching_at_most"],
             "either_genuine": cal["coarse"]["either"]["genuine_reaching"],
             "genuine_copies": cal["coarse"]["either"]["genuine_count"]},
+        "dense": None if "dense" not in cal else {
+            "grids": f"{dense.COARSE_GRID} and then {dense.FINE_GRID}",
+            "smooth": f"1/{round(1 / dense.SMOOTH)}", "step_deg": f"{dense.COARSE_STEP_DEG:g}",
+            "scale_step": f"{dense.SCALE_STEP:g}",
+            "area": f"{100 * dense.MIN_AREA:g} to {100 * dense.MAX_AREA:g} %",
+            "keep": dense.KEEP, "inside": f"{100 * dense.INSIDE:g} %",
+            "min_patches": dense.MIN_PATCHES, "min_structure": f"{dense.MIN_STRUCTURE:g}",
+            "threshold": cal["dense"]["threshold"], "rule": cal["dense"]["threshold_rule"],
+            "null_pairs": cal["dense"]["null"]["count"],
+            "null_max": max(cal["dense"]["null"]["samples"]),
+            "genuine": cal["dense"]["genuine"]["count"],
+            "genuine_reaching": cal["dense"]["genuine"]["reaching"]},
         "fingerprint_genuine_max_bits": max(cal["fingerprint"]["genuine"]["samples"]),
         "second_view_inliers": cal["same_scene_second_view"]["inliers"],
         "fingerprint_null_min_bits": min(cal["fingerprint"]["null"]["samples"]),
