@@ -35,7 +35,7 @@ import numpy as np
 from scipy import ndimage
 
 __all__ = ["BROAD_SIDE", "FALLBACK_OVERLAP", "MIN_OVERLAP", "MIN_PIXELS", "broad_correlation",
-           "faint_share", "masked_ncc"]
+           "faint_share", "masked_ncc", "onto_grid"]
 
 #: Longer side, in pixels, the registered picture is reduced to; one pixel there spans
 #: 1/64 of the picture, far coarser than JPEG blocks, noise or a 2-pixel blur.
@@ -152,7 +152,18 @@ def _place(reference_luma: np.ndarray, exhibit_luma: np.ndarray, linear,
     # then turned and mirrored into the reference grid's orientation.
     exh = _reduce(exhibit_luma, s_ref / scale)
     # reference grid (x, y) -> reduced exhibit (x, y)
-    g = lin / scale
+    warped, inside, lo = onto_grid(exh, lin / scale, mode="constant")
+    return ref, warped, inside, lo, s_ref
+
+
+def onto_grid(exh: np.ndarray, g: np.ndarray, *,
+              mode: str) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """A reduced exhibit turned, scaled and mirrored onto a reference grid (bilinear).
+
+    ``g`` maps grid (x, y) to reduced-exhibit (x, y); ``mode`` is how
+    ``ndimage.affine_transform`` fills outside the exhibit. Returns the warped
+    exhibit, where it is defined (bool), and the grid position of its corner.
+    """
     eh, ew = exh.shape
     corners = np.array([[0, 0], [ew - 1, 0], [0, eh - 1], [ew - 1, eh - 1]], dtype=np.float64)
     back = corners @ np.linalg.inv(g).T            # the exhibit's corners on the reference grid
@@ -164,11 +175,11 @@ def _place(reference_luma: np.ndarray, exhibit_luma: np.ndarray, linear,
     g_rc = swap @ g @ swap
     offset = g_rc @ lo[::-1]
     warped = ndimage.affine_transform(exh, g_rc, offset=offset, output_shape=(ch, cw), order=1,
-                                      mode="constant", cval=0.0)
+                                      mode=mode, cval=0.0)
     inside = ndimage.affine_transform(np.ones_like(exh), g_rc, offset=offset,
                                       output_shape=(ch, cw), order=0, mode="constant",
                                       cval=0.0) > 0.5
-    return ref, warped, inside, lo, s_ref
+    return warped, inside, lo
 
 
 def broad_correlation(reference_luma: np.ndarray, exhibit_luma: np.ndarray,

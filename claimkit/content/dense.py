@@ -55,6 +55,7 @@ import numpy as np
 from scipy import ndimage
 
 from claimkit.content import register as reg
+from claimkit.content.broad import onto_grid
 
 __all__ = ["COARSE_GRID", "FINE_GRID", "dense_register", "structure"]
 
@@ -214,20 +215,7 @@ def _warp(exh: np.ndarray, g: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.nd
     exhibit, where it is defined (one pixel in from its border), and the grid position of
     the warped array's corner.
     """
-    eh, ew = exh.shape
-    corners = np.array([[0, 0], [ew - 1, 0], [0, eh - 1], [ew - 1, eh - 1]], dtype=np.float64)
-    back = corners @ np.linalg.inv(g).T
-    lo = np.floor(back.min(axis=0))
-    hi = np.ceil(back.max(axis=0))
-    cw, ch = int(hi[0] - lo[0]) + 1, int(hi[1] - lo[1]) + 1
-    swap = np.array([[0.0, 1.0], [1.0, 0.0]])
-    g_rc = swap @ g @ swap
-    offset = g_rc @ lo[::-1]
-    warped = ndimage.affine_transform(exh, g_rc, offset=offset, output_shape=(ch, cw), order=1,
-                                      mode="nearest")
-    inside = ndimage.affine_transform(np.ones_like(exh), g_rc, offset=offset,
-                                      output_shape=(ch, cw), order=0, mode="constant",
-                                      cval=0.0) > 0.5
+    warped, inside, lo = onto_grid(exh, g, mode="nearest")
     inside = ndimage.binary_erosion(inside, iterations=2).astype(np.float64)
     return _gradient(warped) * inside, inside, lo
 
