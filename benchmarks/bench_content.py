@@ -357,12 +357,30 @@ def _per_picture(one, quick: bool) -> tuple[list[dict], list[dict]]:
     return [r for p in parts for r in p["null"]], [r for p in parts for r in p["genuine"]]
 
 
+def _known(rows: list[dict]) -> list[float]:
+    """The rows' values where they were comparable (not None), in increasing order."""
+    return sorted(r["value"] for r in rows if r["value"] is not None)
+
+
+def _distribution(rows: list[dict], extreme: str | None = None, n: int = 8) -> dict:
+    """How a statistic spread over ``rows`` (``value`` None where not comparable): the count,
+    the values to four decimals, how many were not comparable, and the ``n`` rows with the
+    ``extreme`` ("lowest" or "highest") values where one is asked for."""
+    known = _known(rows)
+    out = {"count": len(known), "samples": [round(v, 4) for v in known],
+           "not_comparable": len(rows) - len(known)}
+    if extreme is not None:
+        sign = -1 if extreme == "highest" else 1
+        out[extreme] = sorted((r for r in rows if r["value"] is not None),
+                              key=lambda r: sign * r["value"])[:n]
+    return out
+
+
 def broad_section(quick: bool) -> dict:
     """The broad-structure statistic's distributions and the refuting threshold."""
     t0 = time.perf_counter()
     null, gen = _per_picture(_broad_one, quick)
-    gv = sorted(r["value"] for r in gen if r["value"] is not None)
-    nv = sorted(r["value"] for r in null if r["value"] is not None)
+    gv, nv = _known(gen), _known(null)
     below = broad_threshold(gv)
     return {
         "statistic": "highest masked normalised cross-correlation of the broad layouts over "
@@ -375,14 +393,10 @@ def broad_section(quick: bool) -> dict:
                        "true geometry and at every corner of the mark's tolerance "
                        f"({MARK_ROTATION_TOLERANCE_DEG} degrees, {MARK_SCALE_TOLERANCE:.0%} "
                        "in scale) and the lowest of these kept",
-        "genuine": {"count": len(gv), "samples": [round(v, 4) for v in gv],
-                    "not_comparable": sum(1 for r in gen if r["value"] is None),
-                    "lowest": sorted((r for r in gen if r["value"] is not None),
-                                     key=lambda r: r["value"])[:8],
+        "genuine": {**_distribution(gen, "lowest"),
                     "what": "every attack of the calibration's genuine battery on every "
                             "calibration picture"},
-        "null": {"count": len(nv), "samples": [round(v, 4) for v in nv],
-                 "not_comparable": sum(1 for r in null if r["value"] is None),
+        "null": {**_distribution(null),
                  "below_refute": sum(1 for v in nv if v < below),
                  "maps": sorted(BROAD_NULL_MAPS),
                  "what": "ordered pairs of distinct calibration pictures, the exhibit placed by "
@@ -471,8 +485,7 @@ def faint_section(quick: bool) -> dict:
     t0 = time.perf_counter()
     null, gen = _per_picture(_faint_one, quick)
     found = [r for r in gen if r["mark_found"]]
-    gv = sorted(r["value"] for r in found if r["value"] is not None)
-    nv = sorted(r["value"] for r in null if r["value"] is not None)
+    gv, nv = _known(found), _known(null)
     above = faint_threshold(gv)
     return {
         "statistic": "lowest share, over the shifts, of the work's strong-contrast windows under "
@@ -486,11 +499,8 @@ def faint_section(quick: bool) -> dict:
         "refute_above": above,
         "refute_rule": "twice the highest share any genuine copy on which the mark was found "
                        "reached, placed by the mark's own geometry, and at least 0.5",
-        "genuine": {"count": len(gv), "samples": [round(v, 4) for v in gv],
+        "genuine": {**_distribution(found, "highest", 5),
                     "copies": len(gen), "mark_found": len(found),
-                    "not_comparable": len(found) - len(gv),
-                    "highest": sorted((r for r in found if r["value"] is not None),
-                                      key=lambda r: -r["value"])[:5],
                     "what": "the population the check runs on: each calibration picture marked "
                             "(tests/engine_helpers.mark), every attack of "
                             "claimkit.stress.battery() and an enlargement to 200 %; the copies "
@@ -499,8 +509,7 @@ def faint_section(quick: bool) -> dict:
                             "mark read (the check runs only where the mark was found, and with "
                             "that geometry); not comparable: some placement puts too few of the "
                             "work's strong windows under the copy, where nothing is said"},
-        "null": {"count": len(nv), "samples": [round(v, 4) for v in nv],
-                 "not_comparable": sum(1 for r in null if r["value"] is None),
+        "null": {**_distribution(null),
                  "above_refute": sum(1 for v in nv if v > above),
                  "maps": sorted(BROAD_NULL_MAPS),
                  "what": "ordered pairs of distinct calibration pictures, the exhibit placed by "
@@ -611,8 +620,7 @@ def dense_section(quick: bool) -> dict:
             print(f"dense null {part[0]['exhibit']}: {len(known)} of {len(part)} comparable, "
                   f"max {max(known, default=None)} ({time.perf_counter() - t0:.0f} s)", flush=True)
         gen = [r for f in gen_futs for r in f.result()]
-    nv = sorted(r["value"] for r in null if r["value"] is not None)
-    gv = sorted(r["value"] for r in gen if r["value"] is not None)
+    nv = _known(null)
     threshold = dense_threshold(nv)
     reached = [r for r in gen if r["value"] is not None and r["value"] >= threshold]
     rot = [r["rotation_error_deg"] for r in reached if r["rotation_error_deg"] is not None]
@@ -628,21 +636,14 @@ def dense_section(quick: bool) -> dict:
         "threshold": threshold,
         "threshold_rule": "halfway from the highest value any unrelated or same-owner pair "
                           "reached to 1",
-        "null": {"count": len(nv), "samples": [round(v, 4) for v in nv],
-                 "not_comparable": sum(1 for r in null if r["value"] is None),
-                 "highest": sorted((r for r in null if r["value"] is not None),
-                                   key=lambda r: -r["value"])[:8],
+        "null": {**_distribution(null, "highest"),
                  "what": "ordered pairs of distinct pictures (the calibration pictures and "
                          f"smooth ones: {', '.join(smooth_pictures(quick))}), the exhibit as is, "
                          "and as a 25 % crop against the smooth and generated works; and each "
                          "picture's right part against its left part (the same owner's other "
                          "frame); not comparable: a picture with less structure than the "
                          "reading needs, where it says nothing"},
-        "genuine": {"count": len(gv), "samples": [round(v, 4) for v in gv],
-                    "reaching": len(reached),
-                    "not_comparable": sum(1 for r in gen if r["value"] is None),
-                    "lowest": sorted((r for r in gen if r["value"] is not None),
-                                     key=lambda r: r["value"])[:8],
+        "genuine": {**_distribution(gen, "lowest"), "reaching": len(reached),
                     "what": "every attack of claimkit.stress.battery() and an enlargement to "
                             f"200 % on {', '.join(genuine_names)}, each marked "
                             "(tests/engine_helpers.mark), against the marked picture"},
