@@ -11,7 +11,9 @@ What it measures (nothing is asserted; targets are printed beside the numbers):
    one process (``Image.open(f).load()``, nothing more). Targets (issue 16):
    >= 20 files/s, <= 6x the decode time. ``--before CHECKOUT`` also scans the
    same files with another checkout's code (the two alternated, each in a
-   process of its own) and counts the reports that are identical.
+   process of its own) and counts the reports that are identical. It ends
+   with the floor: the CPU per file of reading the copy and whitening its
+   luma, the two steps every examination starts with whatever the key.
 2. **batch mark** of 12-megapixel JPEGs: one worker on one core (in this process) against
    two worker processes, and the one-worker time per file against Pillow's
    decode + encode of the same file. Target: >= 1.8x faster on 2 cores.
@@ -278,6 +280,32 @@ def measure_scan(profile, files: list[Path]) -> dict:
             "reports": reports}
 
 
+def scan_floor(files: list[Path]) -> tuple[float, float]:
+    """CPU seconds per file of the two steps every examination starts with, best of 2:
+    reading the copy as the scan reads it, and whitening its luma (``detect.whiten``,
+    the detector's first pass over the picture; no mark can be read without it).
+
+    Neither depends on the key or on the mark, so this is a floor under any scan that
+    reads the picture this way, whatever the geometry search costs after it.
+    """
+    from claimkit import workflow
+    from claimkit.imageio import to_luma
+    from claimkit.mark import detect
+
+    best_read = best_whiten = float("inf")
+    for _ in range(2):
+        t_read = t_whiten = 0.0
+        for f in files:
+            t = time.thread_time()
+            luma = to_luma(workflow.read_for_examination(f).pixels)
+            t_read += time.thread_time() - t
+            t = time.thread_time()
+            detect.whiten(luma)
+            t_whiten += time.thread_time() - t
+        best_read, best_whiten = min(best_read, t_read), min(best_whiten, t_whiten)
+    return best_read / len(files), best_whiten / len(files)
+
+
 def scan_child(web: str, home: str) -> None:
     """``--scan-child``: :func:`measure_scan` in this process (another checkout on PYTHONPATH)."""
     import json
@@ -352,6 +380,15 @@ def bench_scan(profile, work: Path, count: int, before: Path | None = None) -> N
              f"{len(files) / rate2 / t_decode:.1f}x", f"target <= {TARGET_SCAN_VS_DECODE:.0f}x")
         line("speed-up of scan, 2 workers over 1", f"{rate2 * t_one / len(files):.2f}x")
     line("claimkit scan command, 2 workers, incl. pool start", f"{len(files) / t_cmd:.1f} files/s")
+    read, whiten = scan_floor(files)
+    per_decode = t_decode / len(files)
+    print("  the floor, this checkout (CPU per file; key- and mark-independent steps):")
+    line("  read the copy as scan reads it (luma window)", f"{1000 * read:.1f} ms",
+         f"{read / per_decode:.1f}x decode")
+    line("  whiten its luma (detect.whiten), the first pass", f"{1000 * whiten:.1f} ms",
+         f"{whiten / per_decode:.1f}x decode")
+    line("  the two together", f"{1000 * (read + whiten):.1f} ms",
+         f"{(read + whiten) / per_decode:.1f}x decode")
     if before:
         this, other = runs["this"][0]["reports"], runs["before"][0]["reports"]
         same = sum(this[f] == other.get(f) for f in this)
