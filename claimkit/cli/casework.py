@@ -311,7 +311,7 @@ def register(sub, common) -> None:
     p.add_argument("--decoys", type=int, default=None, metavar="N",
                    help="random decoy keys in the control (default 64)")
     p.add_argument("--workers", type=int, default=1, metavar="N",
-                   help="worker processes for the decoy control (default 1)")
+                   help="threads for the Fourier transforms (default 1)")
     p.add_argument("--no-robustness", action="store_true",
                    help="skip the robustness battery on the registered marked file")
     p.add_argument("--reference-from-master", action="store_true",
