@@ -30,7 +30,7 @@ from claimkit.imageio import (
     CURRENT_EXAMINATION_METHOD,
     LUMA_FROM_RGB,
     Picture,
-    add_luma_delta,
+    add_luma_delta_sse,
     canvas_like,
     check_output_path,
     output_format,
@@ -306,8 +306,7 @@ def _luma_band(pixels: np.ndarray, luma: np.ndarray, r0: int, r1: int) -> None:
 def _mark_band(plan: scales.ScalesPlan, pixels: np.ndarray, marked: np.ndarray, r0: int,
                r1: int) -> int:
     """Mark rows ``r0:r1`` into ``marked``; their exact sum of squared changes."""
-    add_luma_delta(pixels[r0:r1], plan.rows(r0, r1), out=marked[r0:r1])
-    return _squared_error(pixels[r0:r1], marked[r0:r1])
+    return add_luma_delta_sse(pixels[r0:r1], plan.rows(r0, r1), out=marked[r0:r1])
 
 
 def _squared_error(a: np.ndarray, b: np.ndarray) -> int:
