@@ -1141,13 +1141,15 @@ def _scale_of(dtype: np.dtype) -> float:
     raise ValueError(f"pixels must be uint8 or uint16, got {dtype}")
 
 
-def to_luma(pixels: np.ndarray) -> np.ndarray:
+def to_luma(pixels: np.ndarray, *, out: np.ndarray | None = None) -> np.ndarray:
     """Luma on a 0..255 scale, whatever the bit depth.
 
     Parameters
     ----------
     pixels : ndarray
         ``(H, W)`` grey or ``(H, W, 3)`` RGB, ``uint8`` or ``uint16``.
+    out : ndarray, optional
+        ``float32 (H, W)`` to write the luma into (a band of a larger array).
 
     Returns
     -------
@@ -1172,12 +1174,17 @@ def to_luma(pixels: np.ndarray) -> np.ndarray:
     """
     pixels = np.asarray(pixels)
     scale = _scale_of(pixels.dtype)
-    if pixels.ndim == 2:
-        luma = pixels.astype(np.float32)
-    elif pixels.ndim == 3 and pixels.shape[2] == 3:
-        luma = _rgb_luma(pixels)
-    else:
+    if pixels.ndim not in (2, 3) or (pixels.ndim == 3 and pixels.shape[2] != 3):
         raise ValueError(f"expected (H, W) or (H, W, 3) pixels, got shape {pixels.shape}")
+    if out is None:
+        out = np.empty(pixels.shape[:2], dtype=np.float32)
+    elif out.shape != pixels.shape[:2] or out.dtype != np.float32:
+        raise ValueError(f"out must be float32 {pixels.shape[:2]}, got {out.dtype} {out.shape}")
+    if pixels.ndim == 2:
+        luma = out
+        luma[...] = pixels
+    else:
+        luma = _rgb_luma(pixels, out)
     if scale != 1.0:
         luma /= np.float32(scale)
     return luma
@@ -1257,11 +1264,10 @@ def _add_padded(pixels: np.ndarray, delta: np.ndarray, out: np.ndarray, *,
     return total if sse else None
 
 
-def _rgb_luma(pixels: np.ndarray) -> np.ndarray:
-    """BT.601 luma of ``(H, W, 3)`` integer pixels in float32, band by band."""
+def _rgb_luma(pixels: np.ndarray, luma: np.ndarray) -> np.ndarray:
+    """BT.601 luma of ``(H, W, 3)`` integer pixels in float32 into ``luma``, band by band."""
     h, w = pixels.shape[:2]
     weights = np.asarray(_BT601, dtype=np.float32)
-    luma = np.empty((h, w), dtype=np.float32)
     # Whole RGBX rows convert as one contiguous block (the padding byte is converted and
     # not used); a strided three-byte view converts about three times slower.
     wide = padded_rows(pixels)

@@ -300,7 +300,7 @@ def mark_picture(pic: Picture, out: Path, seed: bytes | EmbedKeys, bits: np.ndar
 
 
 def _luma_band(pixels: np.ndarray, luma: np.ndarray, r0: int, r1: int) -> None:
-    luma[r0:r1] = to_luma(pixels[r0:r1])
+    to_luma(pixels[r0:r1], out=luma[r0:r1])
 
 
 def _mark_band(plan: scales.ScalesPlan, pixels: np.ndarray, marked: np.ndarray, r0: int,
