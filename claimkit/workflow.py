@@ -258,8 +258,12 @@ def mark_picture(pic: Picture, out: Path, seed: bytes | EmbedKeys, bits: np.ndar
     pixels = pic.pixels
     starts = range(0, pixels.shape[0], _MARK_BAND_ROWS)
     ends = [min(pixels.shape[0], r0 + _MARK_BAND_ROWS) for r0 in starts]
-    luma = np.empty(pixels.shape[:2], dtype=np.float32)
     marked = canvas_like(pixels)      # the encoder reads it in place (no copy into Pillow)
+    # An RGBX canvas holds four bytes a pixel, as a float32 plane does: the luma lives there
+    # until the plan is made, and the marked pixels then overwrite it (one full-size buffer
+    # fewer to allocate and fault in: 96 MB at 24 MP).
+    luma = (marked.base.view(np.float32)[..., 0] if padded_rows(marked) is not None
+            else np.empty(pixels.shape[:2], dtype=np.float32))
     threads = band_threads()
     with _helpers(threads if threads > 1 else 0, "claimkit-band") as pool:
         list(pool.map(_luma_band, repeat(pixels), repeat(luma), starts, ends))
