@@ -11,6 +11,7 @@ and the recorded measures against outside references named beside each check
 from __future__ import annotations
 
 import hashlib
+import time
 from itertools import pairwise
 
 import numpy as np
@@ -274,7 +275,41 @@ def test_a_16bit_photo_written_as_jpeg_is_measured_on_its_own_scale(tmp_path):
     assert facts["quality"]["psnr_db_file"] > 38.0      # not the 6 dB of comparing 16 with 8 bits
 
 
-def test_a_failure_while_measuring_leaves_no_marked_file(tmp_path, monkeypatch):
+@pytest.mark.parametrize("threads", ["1", "2"])
+def test_the_canvas_is_let_go_before_the_written_file_is_decoded(tmp_path, monkeypatch, threads):
+    """The decode for the PSNR as saved can reuse the marked canvas's memory: nothing holds
+    the canvas (nor the luma that lived in it) by then, with one thread or two."""
+    import weakref
+    monkeypatch.setenv(workflow.THREADS_ENV, threads)
+    src = tmp_path / "tidewater-copy.png"
+    Image.fromarray(data.chelsea()).save(src)
+    pic, _ = workflow.load_original(src)
+    canvases, alive = [], []
+    real_write, real_read = workflow.write_picture_keeping_bytes, workflow.read_picture
+
+    def write(out, pixels, **kw):
+        canvases.append(weakref.ref(pixels.base))
+        return real_write(out, pixels, **kw)
+
+    def read(*a, **kw):
+        if "data" in kw:       # the read-back
+            # the other thread may still be measuring SSIM: give it a moment to let go
+            for _ in range(200):
+                if canvases[0]() is None:
+                    break
+                time.sleep(0.01)
+            alive.append(canvases[0]() is not None)
+        return real_read(*a, **kw)
+
+    monkeypatch.setattr(workflow, "write_picture_keeping_bytes", write)
+    monkeypatch.setattr(workflow, "read_picture", read)
+    facts = workflow.mark_picture(pic, tmp_path / "marked.jpg", SEED, payload())
+    assert alive == [False] and facts["quality"]["psnr_db_file"] > 38.0
+
+
+@pytest.mark.parametrize("threads", ["1", "2"])
+def test_a_failure_while_measuring_leaves_no_marked_file(tmp_path, monkeypatch, threads):
+    monkeypatch.setenv(workflow.THREADS_ENV, threads)
     src = tmp_path / "tidewater-copy.png"
     Image.fromarray(data.chelsea()).save(src)
     pic, _ = workflow.load_original(src)
