@@ -33,6 +33,9 @@ second thread, so its CPU time can exceed its wall time.
 
 ``--breakdown`` also times the steps of one ``mark`` run one after another
 (thread pools replaced by direct calls) and prints each step's share.
+``--before DIR`` also times ``mark`` from another checkout in the same rounds;
+``--mark-only`` leaves out the examination rows (decode, decode + encode and
+mark only).
 """
 
 from __future__ import annotations
@@ -121,15 +124,20 @@ class Direct:
 
 workflow.ThreadPoolExecutor = Direct
 spent = {}
+inner = []      # time of the timed steps running inside the current one (not counted twice)
 # CPU time of this thread (all steps run in it): a loaded machine does not inflate it;
 # exiftool's own process is not in it.
 def timed(label, fn):
     def wrapper(*a, **k):
         t = time.thread_time()
+        inner.append(0.0)
         try:
             return fn(*a, **k)
         finally:
-            spent[label] = spent.get(label, 0.0) + time.thread_time() - t
+            took = time.thread_time() - t
+            spent[label] = spent.get(label, 0.0) + took - inner.pop()
+            if inner:
+                inner[-1] += took
     return wrapper
 
 reads = iter(["read + decode original", "decode marked bytes (from memory)"] * 9)
@@ -149,13 +157,13 @@ class Proxy:
 
 workflow.scales = Proxy(workflow.scales, scales_plan=timed(
     "plan: mask, coarse component, key pattern", workflow.scales.scales_plan))
-workflow.add_luma_delta = timed("add change to R,G,B (bands)", workflow.add_luma_delta)
-workflow._squared_error = timed("squared errors (marked bands + file as written)",
-                                workflow._squared_error)
+workflow.add_luma_delta_sse = timed("add change to R,G,B + squared changes (bands)",
+                                    workflow.add_luma_delta_sse)
+workflow._squared_error = timed("squared errors of the file as written", workflow._squared_error)
 workflow.write_picture_keeping_bytes = timed("encode JPEG q95 4:4:4 + exiftool + atomic write",
                                              workflow.write_picture_keeping_bytes)
 workflow.quality = Proxy(workflow.quality, ssim_estimate=timed(
-    "SSIM (8 patches of 512x512, luma included)", workflow.quality.ssim_estimate))
+    "SSIM (192 patches of 64x64, luma included)", workflow.quality.ssim_estimate))
 best = None
 for i in range(3):
     spent.clear()
@@ -169,8 +177,11 @@ print(json.dumps({"total": best[0], "steps": best[1]}))
 """
 
 
-def child(mode: str, src: Path, work: Path) -> dict:
+def child(mode: str, src: Path, work: Path, tree: Path | None = None) -> dict:
+    """One in-process measurement in its own child; ``tree``: a checkout to import instead."""
     env = dict(os.environ, CLAIMKIT_TEST_FAST_KDF="1", OMP_NUM_THREADS="1")
+    if tree is not None:
+        env["PYTHONPATH"] = str(tree.resolve())
     argv = ([sys.executable, "-c", BREAKDOWN, str(src), str(work)] if mode == "breakdown"
             else [sys.executable, "-c", CHILD, mode, str(src), str(work)])
     return _run(argv, env, mode)
@@ -181,7 +192,10 @@ def whole_process(argv: list[str], env: dict, label: str) -> dict:
 
 
 def _run(argv: list[str], env: dict, label: str) -> dict:
-    out = subprocess.run(argv, capture_output=True, text=True, env=env, check=False)
+    # cwd: the temporary folder, because `python -c` puts the current folder first on the path,
+    # before PYTHONPATH, and a run from a checkout would import that checkout.
+    out = subprocess.run(argv, capture_output=True, text=True, env=env, check=False,
+                         cwd=tempfile.gettempdir())
     if out.returncode != 0:
         raise SystemExit(f"{label} failed:\n{out.stderr[-2000:]}")
     return json.loads(out.stdout.strip().splitlines()[-1])
@@ -199,6 +213,11 @@ def main() -> None:
     ap.add_argument("--rounds", type=int, default=3, help="interleaved rounds (median taken)")
     ap.add_argument("--breakdown", action="store_true",
                     help="also time the steps of one mark, one after another")
+    ap.add_argument("--before", type=Path,
+                    help="a checkout of the commit to compare with: its mark is timed in the "
+                         "same rounds (row BEFORE)")
+    ap.add_argument("--mark-only", action="store_true",
+                    help="time decode, decode + encode and mark only (no examination rows)")
     args = ap.parse_args()
     import compileall
 
@@ -212,6 +231,8 @@ def main() -> None:
     from claimkit.mark import formats
 
     compileall.compile_dir(Path(claimkit.__file__).parent, quiet=1)
+    if args.before:
+        compileall.compile_dir(args.before / "claimkit", quiet=1)
 
     with tempfile.TemporaryDirectory() as tmp:
         work = Path(tmp)
@@ -269,7 +290,13 @@ def main() -> None:
                     "claimkit examine (unmarked, unlocked session)")),
                 ("decode_encode", lambda: child("decode_encode", src, work)),
                 ("mark", lambda: child("mark", src, work)),
+                ("mark_before", lambda: child("mark", src, work, args.before)),
             ):
+                if name == "mark_before" and not args.before:
+                    continue
+                if args.mark_only and name not in ("decode", "decode_encode", "mark",
+                                                    "mark_before"):
+                    continue
                 runs.setdefault(name, []).append(fn())
 
         def med(name: str, key: str = "seconds") -> float:
@@ -291,12 +318,16 @@ def main() -> None:
               "a median of 3):")
         show("Pillow decode (load only)", "decode")
         show(f"Pillow decode + encode q{QUALITY} 4:4:4", "decode_encode")
-        show("claimkit examine, in process", "examine", "decode", 2)
+        if not args.mark_only:
+            show("claimkit examine, in process", "examine", "decode", 2)
         show("claimkit mark, in process", "mark", "decode_encode", 3)
-        show("whole process: python -c decode", "proc_decode")
-        show("whole process: claimkit examine", "proc_examine", "proc_decode", 3)
-        show("  the same in an unlocked session", "proc_examine_session", "proc_decode", 3)
-        show("  session, the unmarked photo", "proc_examine_unmarked", "proc_decode", 3)
+        if args.before:
+            show(f"  BEFORE ({args.before.name})", "mark_before", "decode_encode", 3)
+        if not args.mark_only:
+            show("whole process: python -c decode", "proc_decode")
+            show("whole process: claimkit examine", "proc_examine", "proc_decode", 3)
+            show("  the same in an unlocked session", "proc_examine_session", "proc_decode", 3)
+            show("  session, the unmarked photo", "proc_examine_unmarked", "proc_decode", 3)
         print("peak memory target: < 1024 MB for any command")
         print("On a loaded machine the wall times wait for cores; the CPU-time ratios are the "
               "steadier ones\n(mark's CPU counts both of its threads, so its CPU ratio is an "

@@ -209,7 +209,7 @@ def run_demo(folder: Path | None = None, *, echo: Callable[[str], None] | None =
         published = studio / sc["work"]["published_name"]
         rep = mark_file(profile, original, published)
         say(f"2. marked {original.name} ({pixels.shape[1]}x{pixels.shape[0]}) as {rep['work_id']}: "
-            f"PSNR {rep['psnr_db']:.1f} dB, SSIM {rep['ssim']:.4f}; published {published.name}")
+            f"PSNR {rep['psnr_db']:.1f} dB, {words.ssim(rep)}; published {published.name}")
         reply = make_test_tsa(folder / "test-tsa", sc["tsa"])
         req = profile.stamp_request([rep["work_id"]])
         stamp = profile.stamp_attach(reply(req.tsq), (folder / "test-tsa" / "ca.pem").read_bytes())

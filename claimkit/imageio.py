@@ -35,6 +35,7 @@ from __future__ import annotations
 import hashlib
 import io
 import os
+import sys
 import tempfile
 import threading
 import warnings
@@ -49,6 +50,7 @@ from PIL.PngImagePlugin import PngInfo
 
 from claimkit.errors import AlreadyExists, InputError
 from claimkit.evidence.storage import atomic_write
+from claimkit.mark import quality
 
 __all__ = [
     "CURRENT_EXAMINATION_METHOD",
@@ -59,6 +61,7 @@ __all__ = [
     "MIN_SIDE",
     "Picture",
     "add_luma_delta",
+    "add_luma_delta_sse",
     "canvas_like",
     "read_picture",
     "resolve_max_pixels",
@@ -1138,13 +1141,15 @@ def _scale_of(dtype: np.dtype) -> float:
     raise ValueError(f"pixels must be uint8 or uint16, got {dtype}")
 
 
-def to_luma(pixels: np.ndarray) -> np.ndarray:
+def to_luma(pixels: np.ndarray, *, out: np.ndarray | None = None) -> np.ndarray:
     """Luma on a 0..255 scale, whatever the bit depth.
 
     Parameters
     ----------
     pixels : ndarray
         ``(H, W)`` grey or ``(H, W, 3)`` RGB, ``uint8`` or ``uint16``.
+    out : ndarray, optional
+        ``float32 (H, W)`` to write the luma into (a band of a larger array).
 
     Returns
     -------
@@ -1169,12 +1174,17 @@ def to_luma(pixels: np.ndarray) -> np.ndarray:
     """
     pixels = np.asarray(pixels)
     scale = _scale_of(pixels.dtype)
-    if pixels.ndim == 2:
-        luma = pixels.astype(np.float32)
-    elif pixels.ndim == 3 and pixels.shape[2] == 3:
-        luma = _rgb_luma(pixels)
-    else:
+    if pixels.ndim not in (2, 3) or (pixels.ndim == 3 and pixels.shape[2] != 3):
         raise ValueError(f"expected (H, W) or (H, W, 3) pixels, got shape {pixels.shape}")
+    if out is None:
+        out = np.empty(pixels.shape[:2], dtype=np.float32)
+    elif out.shape != pixels.shape[:2] or out.dtype != np.float32:
+        raise ValueError(f"out must be float32 {pixels.shape[:2]}, got {out.dtype} {out.shape}")
+    if pixels.ndim == 2:
+        luma = out
+        luma[...] = pixels
+    else:
+        luma = _rgb_luma(pixels, out)
     if scale != 1.0:
         luma /= np.float32(scale)
     return luma
@@ -1189,33 +1199,75 @@ def _band_rows(width: int, channels: int = 3) -> int:
     return max(1, _BAND_SAMPLES // max(1, width * channels))
 
 
-def _add_padded(pixels: np.ndarray, delta: np.ndarray, out: np.ndarray, top: np.float32) -> None:
-    """:func:`add_luma_delta` on whole RGBX rows (contiguous), the fourth byte copied over.
+# _add_padded: a change within this of a half is added the float way (see there).
+_NEAR_HALF = np.float32(0.5 - 2.0 ** -15)
+# One 16-bit value times this, as four 16-bit lanes (little-endian): the value in R, G, B; 0 in X.
+_RGB_LANES = np.uint64(0x0000_0001_0001_0001)
 
-    The same float32 operations on every R, G and B sample as the general
-    path, so the same bytes; the padding byte is changed too and then given
-    back its original value, which keeps ``out`` and ``pixels`` equal there
-    (a squared-error sum over whole rows is then that of R, G and B).
+
+def _add_padded(pixels: np.ndarray, delta: np.ndarray, out: np.ndarray, *,
+                sse: bool) -> int | None:
+    """:func:`add_luma_delta` on whole 8-bit RGBX rows; with ``sse``, the squared changes' sum.
+
+    Each sample is ``clip(p + rint(d))`` in 16-bit integers, the change rounded
+    once per pixel: that is ``clip(rint(float32(p) + d))`` exactly for every
+    ``p`` in 0..255 unless ``d`` is within 2**-15 of a half. (For ``|d| <=
+    255.5``, ``p + d`` is below 512, where float32 rounds by at most 2**-16, so
+    its rounding cannot reach or cross a half; beyond, both saturate; and
+    ``d - rint(d)`` is exact in float32.) The pixels whose change is that close
+    to a half (a tie of ``rint``, whose result depends on ``p``'s parity) or
+    not finite are computed the float way. The padding byte gets no change.
+    The same bytes as the float path (the reference the tests compare with),
+    without a float copy of four channels and without the inner loop of four
+    that broadcasting one change over them costs.
     """
     h, w = pixels.shape[:2]
     rows = _band_rows(w, 4)
-    buf = np.empty((min(rows, h), w, 4), dtype=np.float32)
+    n0 = min(rows, h)
+    rounded, frac = np.empty((n0, w), np.float32), np.empty((n0, w), np.float32)
+    whole, lanes = np.empty((n0, w), np.int16), np.empty((n0, w), np.uint64)
+    before, after = np.empty((n0, w, 4), np.int16), np.empty((n0, w, 4), np.int16)
+    per_sum = w * 4 if w * 4 <= quality.U32_SQUARES else None
+    total = 0
     for r0 in range(0, h, rows):
         n = min(rows, h - r0)
-        f = buf[:n]
-        f[...] = pixels[r0:r0 + n]
-        f += delta[r0:r0 + n, :, None]
-        np.rint(f, out=f)
-        np.clip(f, 0, top, out=f)
-        out[r0:r0 + n] = f
-        out[r0:r0 + n, :, 3] = pixels[r0:r0 + n, :, 3]
+        d, r, f, b, a = delta[r0:r0 + n], rounded[:n], frac[:n], before[:n], after[:n]
+        np.rint(d, out=r)
+        with np.errstate(invalid="ignore"):         # inf - inf
+            np.subtract(d, r, out=f)
+        np.abs(f, out=f)
+        near = ~(f < _NEAR_HALF)                    # NaN and infinities too
+        np.clip(r, -255, 255, out=r)                # beyond, every sample saturates anyway
+        np.copyto(whole[:n], r, casting="unsafe")   # whole numbers in range: exact
+        np.copyto(lanes[:n], whole[:n].view(np.uint16))
+        lanes[:n] *= _RGB_LANES
+        b[...] = pixels[r0:r0 + n]
+        np.add(b, lanes[:n].view(np.int16).reshape(n, w, 4), out=a)
+        np.clip(a, 0, 255, out=a)
+        if near.any():
+            k = np.flatnonzero(near)
+            g = b.reshape(-1, 4)[k, :3].astype(np.float32)
+            g += d.reshape(-1)[k, None]
+            np.rint(g, out=g)
+            np.clip(g, 0, 255, out=g)
+            a.reshape(-1, 4)[k, :3] = g
+        out[r0:r0 + n] = a
+        if sse:
+            np.subtract(a, b, out=a)
+            sq = a.view(np.uint16)                  # |change| < 2**8: its square is exact mod 2**16
+            np.multiply(sq, sq, out=sq)
+            if per_sum is None:
+                total += int(np.add.reduce(sq, axis=None, dtype=np.uint64))
+            else:
+                total += int(np.add.reduce(sq.reshape(n, per_sum), axis=1,
+                                           dtype=np.uint32).sum(dtype=np.uint64))
+    return total if sse else None
 
 
-def _rgb_luma(pixels: np.ndarray) -> np.ndarray:
-    """BT.601 luma of ``(H, W, 3)`` integer pixels in float32, band by band."""
+def _rgb_luma(pixels: np.ndarray, luma: np.ndarray) -> np.ndarray:
+    """BT.601 luma of ``(H, W, 3)`` integer pixels in float32 into ``luma``, band by band."""
     h, w = pixels.shape[:2]
     weights = np.asarray(_BT601, dtype=np.float32)
-    luma = np.empty((h, w), dtype=np.float32)
     # Whole RGBX rows convert as one contiguous block (the padding byte is converted and
     # not used); a strided three-byte view converts about three times slower.
     wide = padded_rows(pixels)
@@ -1266,24 +1318,42 @@ def add_luma_delta(pixels: np.ndarray, delta: np.ndarray, *,
 
     Each sample is ``clip(rint(float32(p) + float32(d)))``, computed in bands
     of rows that stay in cache (so peak memory is one band of floats, not one
-    plane per channel).
+    plane per channel). On 8-bit RGBX rows (:func:`canvas_like`, a decoded
+    colour JPEG) the same bytes come from 16-bit integers (:func:`_add_padded`).
     """
+    if out is None:
+        out = np.empty_like(np.asarray(pixels))
+    _add_luma_delta(pixels, delta, out, sse=False)
+    return out
+
+
+def add_luma_delta_sse(pixels: np.ndarray, delta: np.ndarray, *, out: np.ndarray) -> int:
+    """:func:`add_luma_delta` into ``out``; the exact sum of the squared changes of all samples.
+
+    The sum is ``claimkit.mark.quality.squared_error_sum(pixels, out)``; on
+    8-bit RGBX rows it is taken from each band as it is written, while it is
+    in cache, instead of in a second pass over both pictures.
+    """
+    sse = _add_luma_delta(pixels, delta, out, sse=True)
+    return quality.squared_error_sum(pixels, out) if sse is None else sse
+
+
+def _add_luma_delta(pixels: np.ndarray, delta: np.ndarray, out: np.ndarray, *,
+                    sse: bool) -> int | None:
+    """:func:`add_luma_delta` into ``out``; the sum of squared changes when asked and at hand."""
     pixels = np.asarray(pixels)
     scale = _scale_of(pixels.dtype)
     delta = np.asarray(delta, dtype=np.float32)
     if delta.shape != pixels.shape[:2]:
         raise ValueError(f"delta shape {delta.shape} does not match pixels {pixels.shape[:2]}")
-    if out is None:
-        out = np.empty_like(pixels)
-    elif out.shape != pixels.shape or out.dtype != pixels.dtype:
+    if out.shape != pixels.shape or out.dtype != pixels.dtype:
         raise ValueError(f"out must be {pixels.dtype} {pixels.shape}, got {out.dtype} {out.shape}")
     top = np.float32(np.iinfo(pixels.dtype).max)
     h, w = pixels.shape[:2]
     colour = pixels.ndim == 3
     wide_in, wide_out = padded_rows(pixels), padded_rows(out)
-    if wide_in is not None and wide_out is not None:
-        _add_padded(wide_in, delta, wide_out, top)
-        return out
+    if wide_in is not None and wide_out is not None and sys.byteorder == "little":
+        return _add_padded(wide_in, delta, wide_out, sse=sse)
     rows = _band_rows(w, pixels.shape[2] if colour else 1)
     buf = np.empty((min(rows, h),) + pixels.shape[1:], dtype=np.float32)
     step = np.empty((min(rows, h), w), dtype=np.float32) if scale != 1.0 else None
@@ -1298,4 +1368,4 @@ def add_luma_delta(pixels: np.ndarray, delta: np.ndarray, *,
         np.rint(f, out=f)
         np.clip(f, 0, top, out=f)
         out[r0:r0 + n] = f  # exact: whole numbers within the dtype's range
-    return out
+    return None

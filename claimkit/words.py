@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import math
 
-__all__ = ["FLOOR_LOG10", "MARK_FOUND", "NO_MARK", "geometry", "probability", "verdict"]
+__all__ = ["FLOOR_LOG10", "MARK_FOUND", "NO_MARK", "geometry", "probability", "ssim", "verdict"]
 
 #: Below this the words stop at "below 10^-12": smaller numbers tell a reader nothing more
 #: and rest ever harder on the model; the exact bound stays in the JSON (log10).
@@ -72,6 +72,22 @@ def probability(log10p: float) -> str:
             m, e = m / 10.0, e + 1
         return f"{m:.1f} x 10^{e}"
     return f"{10.0 ** log10p:.2g}"
+
+
+def ssim(quality: dict) -> str:
+    """A marked picture's SSIM as it was measured, for a line of text.
+
+    ``quality`` holds ``ssim`` and, from a large picture, ``ssim_sampled`` and
+    ``ssim_standard_error`` (a mark report or work record): "SSIM 0.9912"
+    when the whole picture was measured, "SSIM 0.9960 (sampled, standard
+    error 0.000082)" when it was estimated from patches.
+    """
+    text = f"SSIM {float(quality.get('ssim', float('nan'))):.4f}"
+    se = quality.get("ssim_standard_error")
+    if quality.get("ssim_sampled") and se:
+        digits = max(0, 1 - math.floor(math.log10(se)))    # two significant digits, no "e"
+        return f"{text} (sampled, standard error {se:.{digits}f})"
+    return f"{text} (sampled)" if quality.get("ssim_sampled") else text
 
 
 def _turn(geom: dict) -> tuple[float, float, float, bool]:

@@ -11,6 +11,7 @@ and the recorded measures against outside references named beside each check
 from __future__ import annotations
 
 import hashlib
+import time
 from itertools import pairwise
 
 import numpy as np
@@ -86,6 +87,37 @@ def test_add_luma_delta_is_the_per_sample_formula(dtype):
         assert quality.squared_error_sum(src, dst) == sse      # strided views too
 
 
+@pytest.mark.parametrize("shape", [(97, 613), (3, 16600)])   # the second: rows summed in uint64
+def test_rgbx_fast_path_is_the_float_formula_near_every_half(shape):
+    """``_add_padded`` rounds the change once per pixel in 16-bit integers; the bytes must be
+    those of ``clip(rint(float32(p) + d))`` even where ``d`` is at or next to a half, beyond
+    the 8-bit range, or infinite, and the sum of squared changes exact."""
+    from claimkit.imageio import add_luma_delta_sse
+    px = RNG.integers(0, 256, shape + (3,), dtype=np.uint8)
+    px[:, :40] = np.resize(np.array([0, 255, 128, 1], np.uint8), shape[0])[:, None, None]  # edges
+    halves = RNG.integers(-300, 300, shape).astype(np.float32) + np.float32(0.5)
+    delta = RNG.normal(0, 6, shape).astype(np.float32)
+    pick = RNG.random(shape)
+    delta = np.where(pick < 0.15, halves, delta)
+    delta = np.where((pick >= 0.15) & (pick < 0.3), np.nextafter(halves, np.float32(1e9)), delta)
+    delta = np.where((pick >= 0.3) & (pick < 0.45), np.nextafter(halves, np.float32(-1e9)), delta)
+    delta = np.where((pick >= 0.45) & (pick < 0.5), halves - np.float32(2.0 ** -14), delta)
+    delta = np.where((pick >= 0.5) & (pick < 0.55), RNG.normal(0, 400, shape), delta)
+    delta = delta.astype(np.float32)
+    delta[0, :4] = [np.inf, -np.inf, 3e38, -3e38]
+    ref = np.clip(np.rint(px.astype(np.float32) + delta[..., None]), 0, 255).astype(np.uint8)
+    src, dst = canvas_like(px), canvas_like(px)
+    src[...] = px
+    src.base[..., 3] = RNG.integers(0, 256, shape, dtype=np.uint8)
+    sse = add_luma_delta_sse(src, delta, out=dst)
+    assert np.array_equal(dst, ref)
+    assert np.array_equal(dst.base[..., 3], src.base[..., 3])
+    assert sse == sum(int(v) ** 2 for v in (ref.astype(np.int64) - px).ravel())
+    # the plain (strided, float) path gives the same through the same function
+    out = np.empty_like(px)
+    assert add_luma_delta_sse(px, delta, out=out) == sse and np.array_equal(out, ref)
+
+
 # ------------------------------------------------------------------ mask and change
 
 
@@ -156,10 +188,15 @@ def test_sampled_ssim_agrees_with_scikit_image_on_its_sample():
     b = np.clip(a + RNG.normal(0, 2.0, a.shape), 0, 255).astype(np.uint8)
     est = quality.ssim_estimate(a, b, grey=to_luma)
     assert est.sampled and quality.ssim(a, b, grey=to_luma) == (est.value, True)
-    # the documented sample: one patch per cell of a 4 x 2 grid (4 along the long side)
+    # the documented sample: one patch wholly inside each cell of a 16 x 12 grid (16 along
+    # the long side)
     corners = quality.sample_patches(a.shape[:2])
-    assert list(est.patches) == corners and len(corners) == 8
-    assert len({(r * 2 // a.shape[0], c * 4 // a.shape[1]) for r, c in corners}) == 8
+    assert list(est.patches) == corners and len(corners) == 192
+    (h, w), p = a.shape[:2], quality.PATCH
+    for k, (r, c) in enumerate(corners):       # row by row
+        i, j = divmod(k, 16)
+        assert i * h // 12 <= r and r + p <= (i + 1) * h // 12
+        assert j * w // 16 <= c and c + p <= (j + 1) * w // 16
     ref = []
     for r, c in corners:
         win = (slice(r, r + quality.PATCH), slice(c, c + quality.PATCH))
@@ -168,12 +205,12 @@ def test_sampled_ssim_agrees_with_scikit_image_on_its_sample():
             to_luma(a[win]).astype(np.float64), to_luma(b[win]).astype(np.float64),
             data_range=255, gaussian_weights=True, sigma=1.5, use_sample_covariance=False))
     assert est.value == pytest.approx(float(np.mean(ref)), abs=1e-5)
-    assert est.standard_error == pytest.approx(np.std(ref, ddof=1) / np.sqrt(8), rel=1e-3)
+    assert est.standard_error == pytest.approx(np.std(ref, ddof=1) / np.sqrt(192), rel=1e-3)
 
 
 def test_sampled_ssim_estimates_the_whole_picture_within_its_stated_error(monkeypatch):
     """Against scikit-image's SSIM of the whole picture (patches and threshold scaled down)."""
-    monkeypatch.setattr(quality, "PATCH", 128)
+    monkeypatch.setattr(quality, "PATCH", 32)
     monkeypatch.setattr(quality, "SAMPLE_ABOVE", 400_000)
     a = big_photo(700, 1000)
     rng = np.random.default_rng(5)
@@ -238,7 +275,41 @@ def test_a_16bit_photo_written_as_jpeg_is_measured_on_its_own_scale(tmp_path):
     assert facts["quality"]["psnr_db_file"] > 38.0      # not the 6 dB of comparing 16 with 8 bits
 
 
-def test_a_failure_while_measuring_leaves_no_marked_file(tmp_path, monkeypatch):
+@pytest.mark.parametrize("threads", ["1", "2"])
+def test_the_canvas_is_let_go_before_the_written_file_is_decoded(tmp_path, monkeypatch, threads):
+    """The decode for the PSNR as saved can reuse the marked canvas's memory: nothing holds
+    the canvas (nor the luma that lived in it) by then, with one thread or two."""
+    import weakref
+    monkeypatch.setenv(workflow.THREADS_ENV, threads)
+    src = tmp_path / "tidewater-copy.png"
+    Image.fromarray(data.chelsea()).save(src)
+    pic, _ = workflow.load_original(src)
+    canvases, alive = [], []
+    real_write, real_read = workflow.write_picture_keeping_bytes, workflow.read_picture
+
+    def write(out, pixels, **kw):
+        canvases.append(weakref.ref(pixels.base))
+        return real_write(out, pixels, **kw)
+
+    def read(*a, **kw):
+        if "data" in kw:       # the read-back
+            # the other thread may still be measuring SSIM: give it a moment to let go
+            for _ in range(200):
+                if canvases[0]() is None:
+                    break
+                time.sleep(0.01)
+            alive.append(canvases[0]() is not None)
+        return real_read(*a, **kw)
+
+    monkeypatch.setattr(workflow, "write_picture_keeping_bytes", write)
+    monkeypatch.setattr(workflow, "read_picture", read)
+    facts = workflow.mark_picture(pic, tmp_path / "marked.jpg", SEED, payload())
+    assert alive == [False] and facts["quality"]["psnr_db_file"] > 38.0
+
+
+@pytest.mark.parametrize("threads", ["1", "2"])
+def test_a_failure_while_measuring_leaves_no_marked_file(tmp_path, monkeypatch, threads):
+    monkeypatch.setenv(workflow.THREADS_ENV, threads)
     src = tmp_path / "tidewater-copy.png"
     Image.fromarray(data.chelsea()).save(src)
     pic, _ = workflow.load_original(src)

@@ -55,3 +55,14 @@ def test_a_found_mark_whose_derivation_is_not_claimed_says_so_in_the_verdict():
     assert verdict(rep, withheld, mismatch=False).endswith(
         "; the content line could not check the picture: no derivation claimed")
     assert verdict({"detected": False}, withheld) == NO_MARK
+
+
+def test_ssim_says_when_it_was_sampled_and_its_standard_error():
+    assert words.ssim({"ssim": 0.99123, "ssim_sampled": False, "ssim_standard_error": None}) \
+        == "SSIM 0.9912"
+    assert words.ssim({"ssim": 0.996, "ssim_sampled": True, "ssim_standard_error": 8.2e-05}) \
+        == "SSIM 0.9960 (sampled, standard error 0.000082)"
+    assert words.ssim({"ssim": 0.99, "ssim_sampled": True, "ssim_standard_error": 0.00015}) \
+        == "SSIM 0.9900 (sampled, standard error 0.00015)"
+    # an older work record without the error
+    assert words.ssim({"ssim": 0.99, "ssim_sampled": True}) == "SSIM 0.9900 (sampled)"

@@ -5,6 +5,7 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
+from claimkit import words
 from claimkit.cli.common import open_profile, print_json
 from claimkit.cli.rights import add_rights_options
 from claimkit.cli.scale import mark_many
@@ -41,7 +42,7 @@ def cmd_mark(args) -> int:
     else:
         extra = f", {rep['psnr_db_file']:.1f} dB as saved" if "psnr_db_file" in rep else ""
         print(f"{rep['output']}: marked as {rep['work_id']} "
-              f"(PSNR {rep['psnr_db']:.1f} dB{extra}, SSIM {rep['ssim']:.4f})")
+              f"(PSNR {rep['psnr_db']:.1f} dB{extra}, {words.ssim(rep)})")
         _metadata_lines(rep)
     return 0
 

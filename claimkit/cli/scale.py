@@ -21,6 +21,7 @@ import json
 import sys
 from pathlib import Path
 
+from claimkit import words
 from claimkit.cli.common import open_profile, print_json
 from claimkit.mark.stats import DEFAULT_THRESHOLD
 
@@ -56,7 +57,7 @@ def _mark_line(row: dict) -> str:
     status = row["status"]
     if status == "marked":
         return (f"marked    {row['file']} -> {row['output']}  {row['work_id']}  "
-                f"PSNR {row.get('psnr_db', float('nan')):.1f} dB  SSIM {row.get('ssim', 0):.4f}")
+                f"PSNR {row.get('psnr_db', float('nan')):.1f} dB  {words.ssim(row)}")
     if status == "skipped":
         return f"done      {row['file']}: {row['reason']} ({row['work_id']})"
     if status == "restored":

@@ -87,13 +87,12 @@ def mask_samples(luma: np.ndarray, *, local_ssim: float = DEFAULT_LOCAL_SSIM,
     step = mask_step(x.shape)
     xs = x[::step, ::step]
     size = MASK_WINDOW // step or 1
-    if executor is not None:
-        mean_job = executor.submit(ndimage.uniform_filter, xs, size)
-        m2 = ndimage.uniform_filter(xs * xs, size)
-        m = mean_job.result()
-    else:
-        m = ndimage.uniform_filter(xs, size)
-        m2 = ndimage.uniform_filter(xs * xs, size)
+    # The mean square is filtered in place (each line of the filter is read before it is
+    # written: the same numbers, one array fewer).
+    mean_job = executor.submit(ndimage.uniform_filter, xs, size) if executor is not None else None
+    m2 = np.square(xs)
+    ndimage.uniform_filter(m2, size, output=m2)
+    m = mean_job.result() if mean_job is not None else ndimage.uniform_filter(xs, size)
     # amp2 = (1/q - 1) (2 var + C2), var = max(m2 - m^2, 0), computed in place
     # (the same float32 operations as the out-of-place form, so the same bits).
     np.multiply(m, m, out=m)

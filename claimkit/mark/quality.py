@@ -21,7 +21,7 @@ from dataclasses import dataclass
 import numpy as np
 
 SAMPLE_ABOVE = 6_000_000     # beyond this many pixels, SSIM is computed on sampled patches
-PATCH = 512
+PATCH = 64
 
 
 def psnr(a: np.ndarray, b: np.ndarray, *, peak: float) -> float:
@@ -46,6 +46,8 @@ def psnr_from_sse(sse: int, count: int, *, peak: float) -> float:
 
 # Rows per piece below: ~256k samples, so the float copies stay in cache.
 _PIECE_SAMPLES = 262_144
+# Squares of 8-bit differences (each < 2**16) sum exactly in uint32 over this many samples.
+U32_SQUARES = (2 ** 32 - 1) // 255 ** 2
 
 
 def squared_error_sum(a: np.ndarray, b: np.ndarray) -> int:
@@ -63,17 +65,23 @@ def squared_error_sum(a: np.ndarray, b: np.ndarray) -> int:
                          f"and {b.dtype} {b.shape}")
     if a.ndim == 0 or a.size == 0:
         return int(np.sum((a.astype(np.int64) - b) ** 2))
-    rows = max(1, _PIECE_SAMPLES // max(1, a[0].size))
+    row = a[0].size
+    rows = max(1, _PIECE_SAMPLES // max(1, row))
     total = 0
     if a.dtype == np.uint8:
         # |a - b| fits in 8 bits and its square in 16: max - min, squared into uint16 and
-        # summed in uint64 (exact; ~3x fewer bytes moved than int16 differences in int64).
+        # summed exactly, per row in uint32 where a row's sum cannot reach 2**32, else in
+        # uint64 (~3x fewer bytes moved than int16 differences in int64).
         for r in range(0, a.shape[0], rows):
             pa, pb = a[r:r + rows], b[r:r + rows]
             d = np.maximum(pa, pb)
             d -= np.minimum(pa, pb)
-            total += int(np.add.reduce(np.multiply(d, d, dtype=np.uint16), axis=None,
-                                       dtype=np.uint64))
+            sq = np.multiply(d, d, dtype=np.uint16)
+            if row <= U32_SQUARES:
+                total += int(np.add.reduce(sq.reshape(sq.shape[0], row), axis=1,
+                                           dtype=np.uint32).sum(dtype=np.uint64))
+            else:
+                total += int(np.add.reduce(sq, axis=None, dtype=np.uint64))
         return total
     for r in range(0, a.shape[0], rows):
         d = np.subtract(a[r:r + rows], b[r:r + rows], dtype=np.int64).ravel()
@@ -89,19 +97,20 @@ _TAPS = (_TAPS / _TAPS.sum()).astype(np.float32)
 
 
 def _window_mean_valid(z: np.ndarray) -> np.ndarray:
-    """Gaussian-weighted local means where the whole window lies inside ``z`` (float32).
+    """Gaussian-weighted local means over the last two axes, where the whole window lies inside.
 
     The mean SSIM leaves out ``_RADIUS`` pixels at each border (as
     scikit-image does), and there a filter with reflected borders and this one
     agree: no reflected sample reaches the kept pixels. So only the kept
     part is computed, separably, pairing the symmetric taps; sums in float32
     (scipy's filters sum in float64: the mean SSIM moves by about 1e-9).
+    Leading axes (a stack of patches) are filtered each on its own.
     """
-    for axis in (0, 1):
+    for axis in (-2, -1):
         n = z.shape[axis] - 2 * _RADIUS
 
         def part(k: int, z=z, axis=axis, n=n) -> np.ndarray:
-            return z[k:k + n] if axis == 0 else z[:, k:k + n]
+            return z[..., k:k + n, :] if axis == -2 else z[..., k:k + n]
 
         out = part(_RADIUS) * _TAPS[_RADIUS]
         pair = np.empty_like(out)
@@ -113,25 +122,44 @@ def _window_mean_valid(z: np.ndarray) -> np.ndarray:
     return z
 
 
-def _ssim_map_mean(x: np.ndarray, y: np.ndarray, data_range: float) -> float:
+def _ssim_map(x: np.ndarray, y: np.ndarray, data_range: float) -> np.ndarray:
+    """The SSIM map over the last two axes, without the ``_RADIUS`` border (float32).
+
+    The five local moments are filtered as one stack (one pass of Python
+    calls for a whole stack of patches); each is the same float32
+    arithmetic as filtering it alone.
+    """
     x, y = np.asarray(x, dtype=np.float32), np.asarray(y, dtype=np.float32)
-    if min(x.shape) <= 2 * _RADIUS:
+    if min(x.shape[-2:]) <= 2 * _RADIUS:
         raise ValueError(f"SSIM needs more than {2 * _RADIUS} pixels a side, got {x.shape}")
-    f = _window_mean_valid
     c1, c2 = (0.01 * data_range) ** 2, (0.03 * data_range) ** 2
-    mx, my = f(x), f(y)
-    vx = f(x * x) - mx * mx
-    vy = f(y * y) - my * my
-    cxy = f(x * y) - mx * my
-    s = ((2 * mx * my + c1) * (2 * cxy + c2)) / ((mx * mx + my * my + c1) * (vx + vy + c2))
-    return float(s.astype(np.float64).mean())
+    z = np.empty((5,) + x.shape, dtype=np.float32)
+    z[0], z[1] = x, y
+    np.multiply(x, x, out=z[2])
+    np.multiply(y, y, out=z[3])
+    np.multiply(x, y, out=z[4])
+    mx, my, exx, eyy, exy = _window_mean_valid(z)
+    vx = exx - mx * mx
+    vy = eyy - my * my
+    cxy = exy - mx * my
+    return ((2 * mx * my + c1) * (2 * cxy + c2)) / ((mx * mx + my * my + c1) * (vx + vy + c2))
+
+
+def _ssim_map_mean(x: np.ndarray, y: np.ndarray, data_range: float) -> float:
+    return float(_ssim_map(x, y, data_range).astype(np.float64).mean())
 
 
 # Sampled SSIM: one PATCH x PATCH patch in each cell of a grid of SAMPLE_GRID cells
-# (long side x short side), at a seeded random place inside its cell. Spread over the
-# whole picture, 8 patches give the mean within a few 1e-4 on marked photos (whose
-# change is shaped to a local SSIM target), at a third of the cost of 24 random ones.
-SAMPLE_GRID = (4, 2)
+# (long side x short side), at a seeded random place inside its cell: 192 patches of
+# 64 x 64, 0.79 MP. Measured on five marked 24 MP pictures against their whole-picture
+# SSIM, 60 placements each: rms error 3.8e-5 to 1.0e-4, the stated standard error on
+# average 0.9 to 1.6 times the rms error, more than three of them off in 0 to 8 % of
+# placements; the earlier 8 patches of 512 x 512 (2.1 MP): 4.5e-5 to 2.0e-4, 0.86 to 1.7,
+# 0 to 22 %, at 2 to 2.5 times the CPU. A marked picture's SSIM has a long lower tail (a
+# few small areas lose far more than the rest), which a sample may miss.
+SAMPLE_GRID = (16, 12)
+# Patches per stack filtered at once: five float32 moments of 16 patches stay in cache.
+_STACK = 16
 
 
 @dataclass(frozen=True)
@@ -148,8 +176,8 @@ class SsimEstimate:
         With sampling, the standard error of ``value`` as an estimate of the
         whole picture's mean: the patches' sample standard deviation over
         the square root of their number (one patch per cell of a grid, so
-        this overstates the error where the picture's parts differ); None
-        when the whole picture was measured.
+        the spread between the picture's parts is counted too); None when
+        the whole picture was measured.
     patches : tuple of tuple of int
         ``(row, col)`` of each patch's top-left corner (empty when whole).
     """
@@ -177,20 +205,21 @@ def sample_patches(shape: tuple[int, int], rng: np.random.Generator | None = Non
     One ``PATCH x PATCH`` patch per cell of a :data:`SAMPLE_GRID` grid (more
     cells along the longer side), row by row, each placed by ``rng``
     (default ``np.random.default_rng(0)``, so the sample repeats) anywhere
-    that keeps it inside the picture and starting inside its cell.
+    inside its cell. Empty when a cell is smaller than a patch.
     """
     rng = rng or np.random.default_rng(0)
     h, w = shape
     long_cells, short_cells = SAMPLE_GRID
     rows, cols = (short_cells, long_cells) if w >= h else (long_cells, short_cells)
+    if h // rows < PATCH or w // cols < PATCH:
+        return []
     corners = []
     for i in range(rows):
         for j in range(cols):
             r_lo, r_hi = i * h // rows, (i + 1) * h // rows
             c_lo, c_hi = j * w // cols, (j + 1) * w // cols
-            r = min(int(rng.integers(r_lo, r_hi)), h - PATCH)
-            c = min(int(rng.integers(c_lo, c_hi)), w - PATCH)
-            corners.append((r, c))
+            corners.append((int(rng.integers(r_lo, r_hi - PATCH + 1)),
+                            int(rng.integers(c_lo, c_hi - PATCH + 1))))
     return corners
 
 
@@ -198,20 +227,24 @@ def ssim_estimate(a: np.ndarray, b: np.ndarray, *, data_range: float = 255.0, gr
                   rng: np.random.Generator | None = None) -> SsimEstimate:
     """Mean SSIM of two images, from sampled patches on large pictures, with its error.
 
-    ``grey`` (optional) turns a picture or a patch of it into a grey float
-    image (e.g. luma of RGB); it is applied to patches only when sampling, so
-    large photos are never converted whole. Pictures above ``SAMPLE_ABOVE``
-    pixels are measured on the patches of :func:`sample_patches` and the
-    standard error of that estimate is given.
+    ``grey`` (optional) turns a picture or a part of it into a grey float
+    image (e.g. luma of RGB); when sampling it is applied to the patches only
+    (stacked), so large photos are never converted whole. Pictures above
+    ``SAMPLE_ABOVE`` pixels are measured on the patches of
+    :func:`sample_patches` (each patch's mean SSIM, the mean of those) and
+    the standard error of that estimate is given.
     """
     grey = grey or (lambda z: np.asarray(z, dtype=np.float32))
     h, w = np.shape(a)[:2]
-    if h * w <= SAMPLE_ABOVE or min(h, w) < 2 * PATCH:
+    corners = sample_patches((h, w), rng) if h * w > SAMPLE_ABOVE else []
+    if not corners:
         return SsimEstimate(_ssim_map_mean(grey(a), grey(b), data_range), False)
-    corners = sample_patches((h, w), rng)
     vals = []
-    for r, c in corners:
-        win = (slice(r, r + PATCH), slice(c, c + PATCH))
-        vals.append(_ssim_map_mean(grey(a[win]), grey(b[win]), data_range))
-    se = float(np.std(vals, ddof=1) / np.sqrt(len(vals)))
-    return SsimEstimate(float(np.mean(vals)), True, se, tuple(corners))
+    for k in range(0, len(corners), _STACK):
+        part = corners[k:k + _STACK]
+        ga, gb = (grey(np.concatenate([z[r:r + PATCH, c:c + PATCH] for r, c in part]))
+                  .reshape(len(part), PATCH, PATCH) for z in (a, b))
+        vals.append(_ssim_map(ga, gb, data_range).astype(np.float64).mean(axis=(1, 2)))
+    per_patch = np.concatenate(vals)
+    se = float(np.std(per_patch, ddof=1) / np.sqrt(per_patch.size))
+    return SsimEstimate(float(np.mean(per_patch)), True, se, tuple(corners))
