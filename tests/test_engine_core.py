@@ -189,3 +189,17 @@ def test_fold_resampled_recovers_the_period_of_a_distorted_tiling(angle, scale):
 def ndi_smooth(x):
     from scipy import ndimage
     return ndimage.gaussian_filter(x, 2.0, mode="wrap")
+
+
+def test_a_perfectly_flat_picture_is_examined_not_a_fault():
+    # A blank frame whitens to zeros: every fold has no energy. It used to end in LAPACK's
+    # "SVD did not converge" (0 / 0 in the spectral weight and the scores); it must read as
+    # no mark, with finite numbers (JSON cannot hold NaN). Formats 1-2 and format 3 keys.
+    from tests.engine_helpers import BENCH_KEYS
+
+    flat = np.full((300, 400), 128.0, dtype=np.float32)
+    for keys in (SEED, BENCH_KEYS):
+        f = detect.examine_luma(flat, keys)
+        assert not f.detected
+        assert f.z_pilot == 0.0
+        assert all(math.isfinite(v) for v in (f.z_sync or 0.0, f.z_full or 0.0))

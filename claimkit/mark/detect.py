@@ -361,8 +361,10 @@ def spectral_weight(s: np.ndarray) -> np.ndarray:
     est = np.maximum(pbar, p)
     est = np.maximum(est, np.quantile(pbar, POWER_FLOOR_Q, axis=(1, 2), keepdims=True))
     w = 1.0 / (est + 1e-12)
-    # Scale so the weighted spectrum has unit mean magnitude (numbers stay O(1)).
-    return w / (np.mean(np.abs(s) * w) + 1e-30)
+    # Scale so the weighted spectrum has unit mean magnitude (numbers stay O(1)). A fold with
+    # no energy at all (a perfectly flat picture, whitened to zeros) has nothing to weigh.
+    scale = float(np.mean(np.abs(s) * w))
+    return w / scale if scale > 0 else np.zeros_like(w)
 
 
 @dataclass
@@ -557,7 +559,8 @@ def _surfaces(prep: _Prepared, pattern: KeyPattern, ramps: np.ndarray):
         prod = (s[:, :, :half] * kern[:, :half])[:, None] * ramps[None, :, :, :half]
         # complex64 transforms: 3x faster than numpy's complex128 ones here.
         out[g] = _irfft2(prod, n)
-        out[g] /= sigma[:, None, None, None].astype(np.float32)
+        # (a fold with no energy, a flat picture, scores 0, not 0 / 0)
+        out[g] /= np.maximum(sigma, 1e-30)[:, None, None, None].astype(np.float32)
     return out
 
 
@@ -587,7 +590,7 @@ def _decode_at(prep, patterns, ramps, g, d, ph, shift, payload_check, known_bits
         q_ft = _delta_ft(allpos, allsign, n)
         sigma = np.sqrt(np.sum(np.abs(prep.spectra[g][d] * weight * q_ft) ** 2)) / n ** 2
         p = (allpos + shift) % n
-        return float(np.sum(allsign * rec[p[:, 0], p[:, 1]]) / sigma)
+        return float(np.sum(allsign * rec[p[:, 0], p[:, 1]]) / max(sigma, 1e-30))
 
     first = None
     for pattern in patterns:

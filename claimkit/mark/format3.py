@@ -392,7 +392,7 @@ def score_families(y: np.ndarray, families: Mapping[int, bytes], tile: int = TIL
     sigma = np.sqrt(2.0 * np.einsum("fk,k->f", kpower, power)) / n ** 2
     v = np.vecdot(qc, yt[:, None, :]).T.reshape(len(names), MACRO, MACRO)
     c = np.fft.fft2(v, axes=(1, 2)) / (MACRO * MACRO)
-    z = 2.0 * c.real.reshape(len(names), -1) / (n ** 2 * sigma[:, None])
+    z = 2.0 * c.real.reshape(len(names), -1) / (n ** 2 * np.maximum(sigma, 1e-30)[:, None])
     return {f: z[i] for i, f in enumerate(names)}
 
 
@@ -463,7 +463,7 @@ def score_families_direct(spec: np.ndarray, families: Mapping[int, bytes]) -> di
             table = _class_table(offset)
             total = sum(np.sum(spec[t] * np.conj(carriers[table[t]] * p_ft)).real
                         for t in range(MACRO * MACRO))
-            z.append(total / n ** 2 / sigma)
+            z.append(total / n ** 2 / max(sigma, 1e-30))
         out[fam_idx] = np.asarray(z)
     return out
 
@@ -500,7 +500,7 @@ def decode_family(y: np.ndarray, seed: bytes, offset: tuple[int, int], *,
         q = (np.fft.fft2(_spots(pos, sign, n)).ravel()[idx]) * sp
         power = (y.real ** 2 + y.imag ** 2).sum(axis=0)
         sigma = np.sqrt(2.0 * float(np.sum(power * np.abs(q) ** 2))) / n ** 2
-        return float(np.sum(sign * rec[pos[:, 0], pos[:, 1]]) / sigma)
+        return float(np.sum(sign * rec[pos[:, 0], pos[:, 1]]) / max(sigma, 1e-30))
 
     if payload_check(bits):
         return bits, True, z_full_of(bits), rec
