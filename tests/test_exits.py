@@ -126,3 +126,12 @@ def test_withdraw_keeps_the_exhibit_and_logs_it(profile_home, marked, tmp_path, 
     assert main(["disclose", work_id, "--out", str(tmp_path / "keys" / work_id)]) == 0
     assert main(["verify", str(tmp_path / "b.zip"), "--disclosure",
                  str(tmp_path / "keys")]) == 0, capsys.readouterr().out
+
+
+def test_one_input_with_a_folder_for_out_says_so(marked, tmp_path, capsys):
+    # With one input --out names the marked file: an existing folder, or a path written as a
+    # folder (a trailing slash) that does not exist yet, gets the same line, and nothing is made.
+    for out in (str(tmp_path), str(tmp_path / "new-folder") + "/"):
+        assert main(["mark", str(marked), "--out", out]) == 2
+        assert "with one input, --out names the marked file" in _one_error_line(capsys)
+    assert not (tmp_path / "new-folder").exists()

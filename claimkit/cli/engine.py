@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import sys
 from pathlib import Path
 
@@ -32,7 +33,7 @@ def cmd_mark(args) -> int:
                              progress=not (args.json or getattr(args, "quiet", False)),
                              max_pixels=args.max_pixels,
                              rights=rights, mark_format=args.mark_format)
-        if out.is_dir():
+        if out.is_dir() or args.out.endswith(("/", os.sep)):
             raise InputError("is a folder; with one input, --out names the marked file", path=out)
         rep = workflow.mark_file(profile, inputs[0], out, force=args.force, strength=args.strength,
                                  jpeg_quality=args.quality, max_pixels=args.max_pixels,
