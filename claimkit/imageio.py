@@ -1227,7 +1227,6 @@ def _add_padded(pixels: np.ndarray, delta: np.ndarray, out: np.ndarray, *,
     rounded, frac = np.empty((n0, w), np.float32), np.empty((n0, w), np.float32)
     whole, lanes = np.empty((n0, w), np.int16), np.empty((n0, w), np.uint64)
     before, after = np.empty((n0, w, 4), np.int16), np.empty((n0, w, 4), np.int16)
-    per_sum = w * 4 if w * 4 <= quality.U32_SQUARES else None
     total = 0
     for r0 in range(0, h, rows):
         n = min(rows, h - r0)
@@ -1256,11 +1255,7 @@ def _add_padded(pixels: np.ndarray, delta: np.ndarray, out: np.ndarray, *,
             np.subtract(a, b, out=a)
             sq = a.view(np.uint16)                  # |change| < 2**8: its square is exact mod 2**16
             np.multiply(sq, sq, out=sq)
-            if per_sum is None:
-                total += int(np.add.reduce(sq, axis=None, dtype=np.uint64))
-            else:
-                total += int(np.add.reduce(sq.reshape(n, per_sum), axis=1,
-                                           dtype=np.uint32).sum(dtype=np.uint64))
+            total += quality.sum_of_squares_u8(sq)
     return total if sse else None
 
 
